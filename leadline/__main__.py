@@ -1,0 +1,3 @@
+from leadline.jobs.cli import main
+
+main()
