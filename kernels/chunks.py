@@ -1,0 +1,355 @@
+"""The chunk kernel: one pass over the paths of one chunk, forward or backward.
+
+A pass at depth p with exponent matrix M (complex symmetric, (2p+1)x(2p+1))
+weighs each path a in {+1,-1}^{2p+1} by
+
+    w(a) = f(a) * exp(-1/2 a^T M a)                (contour layout: contour.py)
+
+and returns moments of w.  The *forward* pass returns G[j,k] = sum_a w a_j a_k.
+The *backward* (adjoint) pass, given an adjoint matrix Gbar, returns
+Q[j,k] = sum_a w(a) s(a) a_j a_k with s(a) = a^T Gbar a, and for every link t
+of the chain the sum D_t = sum_a (d f / d b at link t)(a) exp(...) s(a),
+computed without dividing by a link factor (so it stays exact where sin b or
+cos b vanishes).
+
+Splitting (see plan.py): the exponent splits into a high-high part, a cross
+term sum_k v_k(aH) aL_k whose exponential is a Kronecker product of l
+two-vectors, and a low-low part computed once per pass; f splits into the
+high chain, the boundary link and the low chain.  A chunk's contribution is a
+(2p+2) x (2p+1) complex array: rows 0..2p are the partial moment matrix, row
+2p+1 holds D_0..D_{2p-1} (zero in the forward pass).  Partials of all chunks
+sum, in any order, to the full pass; callers sum them in chunk order so the
+result is bit-for-bit independent of scheduling.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .contour import link_derivative_table, link_table, sign_patterns
+from .plan import ChunkPlan
+
+__all__ = ["PassInput", "LowSide", "prepare_low_side", "chunk_partial", "pass_partials", "run_pass_inprocess"]
+
+
+@dataclass(frozen=True, eq=False)
+class PassInput:
+    """Everything a pass needs; small and picklable (shipped to workers).
+
+    Attributes
+    ----------
+    p : depth
+    M : (2p+1, 2p+1) complex, exponent matrix (Gamma_j Gamma_k xi'(G[j,k]))
+    beta : (p,) float, mixing angles (enter through f)
+    adjoint : (2p+1, 2p+1) complex or None; None means a forward pass
+    """
+
+    p: int
+    M: np.ndarray
+    beta: np.ndarray
+    adjoint: np.ndarray | None = None
+
+    @property
+    def backward(self) -> bool:
+        return self.adjoint is not None
+
+    def fingerprint(self) -> str:
+        """Stable hash of the inputs, used to match checkpointed partial sums."""
+        import hashlib
+
+        h = hashlib.sha256()
+        h.update(np.int64(self.p).tobytes())
+        for arr in (self.M, self.beta, self.adjoint):
+            if arr is None:
+                h.update(b"none")
+            else:
+                h.update(np.ascontiguousarray(arr).tobytes())
+        return h.hexdigest()[:32]
+
+
+@dataclass(eq=False)
+class LowSide:
+    """Per-pass quantities of the low sites, shared by every chunk of the pass.
+
+    All vectors have shape (2^l,), pattern order of contour.sign_patterns.
+    """
+
+    plan: ChunkPlan
+    exp_ll: np.ndarray  # exp(-1/2 aL^T M_LL aL)
+    f_low: np.ndarray  # product of the links inside the low block
+    s_ll: np.ndarray | None  # aL^T Gsym_LL aL (backward only)
+    links: np.ndarray  # (2p, 2) link table
+    dlinks: np.ndarray  # (2p, 2) link derivative table
+    extra: dict = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------- helpers
+def _quadratic_over_patterns(A: np.ndarray) -> np.ndarray:
+    """q(x) = s(x)^T A s(x) over all 2^m patterns of m sites, O(2^m) after O(m^2).
+
+    Sites are added from the last to the first (the new site is the MSB):
+    q(a_k, rest) = q(rest) + A_kk + 2 a_k sum_{i>k} A_ki a_i.
+    """
+    A = np.asarray(A)
+    m = A.shape[0]
+    q = np.zeros(1, dtype=np.result_type(A.dtype, np.float64))
+    lin = [None] * m
+    for k in range(m - 1, -1, -1):
+        # linear form sum_{i>k} A_ki a_i over the patterns of sites k+1..m-1
+        lf = np.zeros(1, dtype=q.dtype)
+        for i in range(m - 1, k, -1):
+            lf = np.concatenate([lf + A[k, i], lf - A[k, i]])
+        lin[k] = lf
+        q = np.concatenate([q + A[k, k] + 2 * lf, q + A[k, k] - 2 * lf])
+    return q
+
+
+def _linear_rows(V: np.ndarray, out: np.ndarray, op: str) -> np.ndarray:
+    """Fill ``out`` (c, 2^l) with the Kronecker structure of per-row 2-vectors.
+
+    op == "mul": out[y, x] = prod_k exp(V[y,k] * s_k(x))   (V already holds exp(+v), exp(-v))
+    op == "add": out[y, x] = sum_k V[y,k] * s_k(x)
+    For "mul", V is a pair (Ep, Em) of (c, l) arrays; for "add", V is (c, l).
+    Sites are added last to first so that site 0 ends as the MSB.
+    """
+    if op == "mul":
+        ep, em = V
+        c, l = ep.shape
+        out[:, 0] = 1.0
+        n = 1
+        for k in range(l - 1, -1, -1):
+            np.multiply(out[:, :n], em[:, k : k + 1], out=out[:, n : 2 * n])
+            out[:, :n] *= ep[:, k : k + 1]
+            n *= 2
+    else:
+        c, l = V.shape
+        out[:, 0] = 0.0
+        n = 1
+        for k in range(l - 1, -1, -1):
+            np.subtract(out[:, :n], V[:, k : k + 1], out=out[:, n : 2 * n])
+            out[:, :n] += V[:, k : k + 1]
+            n *= 2
+    return out
+
+
+def bit_sums(W: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Row totals and signed first moments over the bits of the column index.
+
+    W : (c, 2^l).  Returns total (c,) = sum_x W[:, x] and mom (c, l) with
+    mom[:, k] = sum_x W[:, x] s_k(x), s_k = spin of site k (site 0 = MSB).
+    Pairwise reduction, about 2 * 2^l additions per row.
+    """
+    c, N = W.shape
+    l = N.bit_length() - 1
+    mom = np.empty((c, l), dtype=W.dtype)
+    T = W
+    for k in range(l - 1, -1, -1):
+        Tr = T.reshape(c, 2**k, 2)
+        even, odd = Tr[:, :, 0], Tr[:, :, 1]
+        mom[:, k] = even.sum(axis=1) - odd.sum(axis=1)
+        T = even + odd
+    return T[:, 0], mom
+
+
+def second_moments(u: np.ndarray) -> np.ndarray:
+    """S[j,k] = sum_x u(x) s_j(x) s_k(x) for a vector over 2^l patterns; (l, l)."""
+    N = u.shape[0]
+    l = N.bit_length() - 1
+    S = np.empty((l, l), dtype=u.dtype)
+    for j in range(l):
+        uj = u.reshape(2**j, 2, N // 2 ** (j + 1)).copy()
+        uj[:, 1, :] *= -1
+        total, mom = bit_sums(uj.reshape(1, N))
+        S[j, :] = mom[0]
+    return S
+
+
+def _chain_derivative_sums(u0: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
+    """D_t = sum_x u0(x) * (d/db_t prod_k L_k(x_k x_{k+1})) for the links inside a block.
+
+    ``links``/``dlinks`` have shape (m-1, 2) for a block of m sites.  Computed
+    with left environments (partial contractions of u0 with the first links)
+    and right chains, O(2^m) in total, never dividing by a link factor.
+    Returns shape (m-1,).
+    """
+    N = u0.shape[0]
+    m = N.bit_length() - 1
+    nl = m - 1
+    out = np.zeros(nl, dtype=complex)
+    if nl == 0:
+        return out
+    # right chains R_k over sites k..m-1 (pattern order, site k = MSB)
+    right = [None] * (m + 1)
+    r = np.ones(2, dtype=complex)
+    right[m - 1] = r
+    for k in range(m - 2, -1, -1):
+        n = r.size
+        half = n // 2
+        new = np.empty(2 * n, dtype=complex)
+        new[:half] = r[:half] * links[k, 0]
+        new[half:n] = r[half:] * links[k, 1]
+        new[n : n + half] = r[:half] * links[k, 1]
+        new[n + half :] = r[half:] * links[k, 0]
+        r = new
+        right[k] = r
+    env = u0.astype(complex)  # over sites t..m-1, leading sites summed with their links
+    for t in range(nl):
+        # env has shape (2^(m-t),): site t is the MSB, site t+1 the next bit
+        e = env.reshape(2, 2, -1)  # [a_t, a_{t+1}, rest]
+        # derivative of link t: x = a_t a_{t+1}; same (0) for (+,+),(-,-)
+        rr = right[t + 1].reshape(2, -1)  # [a_{t+1}, rest]
+        same = (e[0, 0] * rr[0]).sum() + (e[1, 1] * rr[1]).sum()
+        diff = (e[0, 1] * rr[1]).sum() + (e[1, 0] * rr[0]).sum()
+        out[t] = dlinks[t, 0] * same + dlinks[t, 1] * diff
+        # absorb site t with link t into the environment
+        env = (e[0] * np.array([links[t, 0], links[t, 1]])[:, None]
+               + e[1] * np.array([links[t, 1], links[t, 0]])[:, None]).reshape(-1)
+    return out
+
+
+# --------------------------------------------------------------------------- low side
+def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
+    """Quantities of the low sites for one pass; O(2^l) memory and time (plus O(l^2))."""
+    p, h = inp.p, plan.n_high
+    links = link_table(p, inp.beta)
+    dlinks = link_derivative_table(p, inp.beta)
+    M_ll = np.asarray(inp.M)[h:, h:]
+    exp_ll = np.exp(-0.5 * _quadratic_over_patterns(M_ll))
+    from .contour import chain_weights
+
+    f_low = chain_weights(links[h:], plan.n_low)
+    s_ll = None
+    if inp.adjoint is not None:
+        Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
+        s_ll = _quadratic_over_patterns(Gs[h:, h:])
+    return LowSide(plan, exp_ll.astype(complex), f_low, s_ll, links, dlinks)
+
+
+# --------------------------------------------------------------------------- chunk kernel
+def _high_rows(plan: ChunkPlan, chunk: int) -> np.ndarray:
+    start, stop = plan.rows(chunk)
+    h = plan.n_high
+    y = np.arange(start, stop, dtype=np.int64)[:, None]
+    bits = (y >> np.arange(h - 1, -1, -1, dtype=np.int64)[None, :]) & 1
+    return (1 - 2 * bits).astype(np.float64)
+
+
+def _high_chain(AH: np.ndarray, links: np.ndarray) -> np.ndarray:
+    """1/2 * prod of the links inside the high block, per row; (c,) complex."""
+    c, h = AH.shape
+    fh = np.full(c, 0.5, dtype=complex)
+    for t in range(h - 1):
+        same = AH[:, t] == AH[:, t + 1]
+        fh *= np.where(same, links[t, 0], links[t, 1])
+    return fh
+
+
+def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
+    """(c, h-1): 1/2 * prod of high links with link t differentiated (no division)."""
+    c, h = AH.shape
+    out = np.empty((c, max(h - 1, 0)), dtype=complex)
+    same = [AH[:, t] == AH[:, t + 1] for t in range(h - 1)]
+    for t in range(h - 1):
+        v = np.full(c, 0.5, dtype=complex)
+        for k in range(h - 1):
+            table = dlinks if k == t else links
+            v *= np.where(same[k], table[k, 0], table[k, 1])
+        out[:, t] = v
+    return out
+
+
+def chunk_partial(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide | None = None) -> np.ndarray:
+    """Contribution of one chunk to a pass: (2p+2, 2p+1) complex (see module docstring)."""
+    if low is None:
+        low = prepare_low_side(inp, plan)
+    p, h, l = inp.p, plan.n_high, plan.n_low
+    n = 2 * p + 1
+    N = 2**l
+    half = N // 2
+    M = np.asarray(inp.M)
+    links, dlinks = low.links, low.dlinks
+
+    AH = _high_rows(plan, chunk)  # (c, h)
+    c = AH.shape[0]
+    v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
+    e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH)
+    row = _high_chain(AH, links) * np.exp(e_hh)  # (c,)
+    last = AH[:, h - 1]
+    # boundary link between site h-1 and h: x = aH_last * aL_0
+    lb_plus = np.where(last > 0, links[h - 1, 0], links[h - 1, 1])  # aL_0 = +1
+    lb_minus = np.where(last > 0, links[h - 1, 1], links[h - 1, 0])  # aL_0 = -1
+
+    W = np.empty((c, N), dtype=complex)
+    _linear_rows((np.exp(v), np.exp(-v)), W, "mul")
+    W *= low.exp_ll
+
+    out = np.zeros((n + 1, n), dtype=complex)
+    if inp.adjoint is None:
+        W *= low.f_low
+        W[:, :half] *= (row * lb_plus)[:, None]
+        W[:, half:] *= (row * lb_minus)[:, None]
+        u = W.sum(axis=0)
+        total, mom = bit_sums(W)
+    else:
+        Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
+        s_h = np.einsum("yi,ij,yj->y", AH, Gs[:h, :h], AH)
+        S = np.empty((c, N), dtype=complex)
+        _linear_rows(2.0 * (AH @ Gs[:h, h:]), S, "add")
+        S += s_h[:, None]
+        S += low.s_ll
+        W *= S  # exp parts times s, no chain factors yet
+        del S
+        # column sums without the low chain (for the low-link derivatives)
+        u0 = np.empty(N, dtype=complex)
+        u0[:half] = (row * lb_plus) @ W[:, :half]
+        u0[half:] = (row * lb_minus) @ W[:, half:]
+        W *= low.f_low
+        z_plus = W[:, :half].sum(axis=1)
+        z_minus = W[:, half:].sum(axis=1)
+        W[:, :half] *= lb_plus[:, None]
+        W[:, half:] *= lb_minus[:, None]
+        total0, mom0 = bit_sums(W)
+        total = row * total0
+        mom = row[:, None] * mom0
+        u = low.f_low * u0
+        # link derivatives: high links, boundary link, low links
+        D = np.zeros(2 * p, dtype=complex)
+        if h > 1:
+            dfh = _high_chain_derivatives(AH, links, dlinks)  # (c, h-1)
+            D[: h - 1] = (dfh * (np.exp(e_hh) * total0)[:, None]).sum(axis=0)
+        dlb_plus = np.where(last > 0, dlinks[h - 1, 0], dlinks[h - 1, 1])
+        dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
+        D[h - 1] = (row * (dlb_plus * z_plus + dlb_minus * z_minus)).sum()
+        if l > 1:
+            D[h:] = _chain_derivative_sums(u0, links[h:], dlinks[h:])
+        out[n, : 2 * p] = D
+
+    out[:h, :h] = AH.T @ (total[:, None] * AH)
+    hl = AH.T @ mom
+    out[:h, h:n] = hl
+    out[h:n, :h] = hl.T
+    out[h:n, h:n] = second_moments(u)
+    return out
+
+
+def pass_partials(inp: PassInput, plan: ChunkPlan, chunks) -> list[np.ndarray]:
+    """Partials of several chunks of one pass, sharing one low-side computation.
+
+    This is the unit of work an executor ships to a worker.
+    """
+    low = prepare_low_side(inp, plan)
+    return [chunk_partial(inp, plan, int(k), low) for k in chunks]
+
+
+def run_pass_inprocess(inp: PassInput, plan: ChunkPlan, progress=None) -> np.ndarray:
+    """Whole pass in this process; partials summed in chunk order."""
+    low = prepare_low_side(inp, plan)
+    n = 2 * inp.p + 1
+    acc = np.zeros((n + 1, n), dtype=complex)
+    for k in range(plan.n_chunks):
+        acc += chunk_partial(inp, plan, k, low)
+        if progress is not None:
+            progress(1)
+    return acc

@@ -1,0 +1,121 @@
+"""The one place where a pass over the 2^(2p+1) paths is cut into chunks.
+
+A path a = (aH, aL) is split into h "high" contour sites (positions 0..h-1)
+and l = 2p+1-h "low" sites (positions h..2p).  A chunk is a contiguous block
+of ``rows_per_chunk`` high patterns; within a chunk every high pattern meets
+all 2^l low patterns.  Work per chunk is ~rows * 2^l complex multiply-adds,
+memory ~ MATRICES_PER_CHUNK * rows * 2^l * 16 bytes plus a few low-side
+vectors of 2^l entries.
+
+The same :class:`ChunkPlan` is used by the in-process loop, the Dask executor,
+the checkpoint ledger and resume, so it is a frozen, JSON-able value.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+__all__ = ["ChunkPlan", "plan_chunks", "DEFAULT_MEMORY_BUDGET", "estimate_chunk_bytes"]
+
+#: default memory budget for one chunk task, bytes (fits a laptop worker)
+DEFAULT_MEMORY_BUDGET = 256 * 2**20
+
+#: complex (c x 2^l) work arrays alive at once in the backward chunk kernel
+MATRICES_PER_CHUNK = 5
+#: complex 2^l vectors alive at once on the low side (context + temporaries)
+LOW_VECTORS = 10
+#: bytes of one complex128 number
+_C16 = 16
+
+
+@dataclass(frozen=True)
+class ChunkPlan:
+    """How one pass is split: ``n_high`` high sites, blocks of ``rows_per_chunk`` rows."""
+
+    p: int
+    n_high: int
+    rows_per_chunk: int
+
+    def __post_init__(self) -> None:
+        n = 2 * self.p + 1
+        if self.p < 1:
+            raise ValueError("depth p must be >= 1")
+        if not 1 <= self.n_high <= n - 1:
+            raise ValueError(f"n_high must be in 1..{n - 1} for p = {self.p}, got {self.n_high}")
+        r = self.rows_per_chunk
+        if r < 1 or r & (r - 1) or r > 2**self.n_high:
+            raise ValueError(
+                f"rows_per_chunk must be a power of two <= 2^n_high = {2 ** self.n_high}, got {r}"
+            )
+
+    @property
+    def n_sites(self) -> int:
+        return 2 * self.p + 1
+
+    @property
+    def n_low(self) -> int:
+        return self.n_sites - self.n_high
+
+    @property
+    def n_chunks(self) -> int:
+        return 2**self.n_high // self.rows_per_chunk
+
+    @property
+    def n_paths(self) -> int:
+        return 2**self.n_sites
+
+    def rows(self, chunk: int) -> tuple[int, int]:
+        """Half-open range [start, stop) of high-pattern indices in ``chunk``."""
+        if not 0 <= chunk < self.n_chunks:
+            raise IndexError(f"chunk {chunk} out of range 0..{self.n_chunks - 1}")
+        start = chunk * self.rows_per_chunk
+        return start, start + self.rows_per_chunk
+
+    def chunk_bytes(self) -> int:
+        return estimate_chunk_bytes(self.n_low, self.rows_per_chunk)
+
+    def to_json(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_json(cls, data: dict) -> "ChunkPlan":
+        return cls(int(data["p"]), int(data["n_high"]), int(data["rows_per_chunk"]))
+
+
+def estimate_chunk_bytes(n_low: int, rows: int) -> int:
+    """Peak bytes of one chunk kernel call (backward pass, the larger one)."""
+    return _C16 * 2**n_low * (MATRICES_PER_CHUNK * rows + LOW_VECTORS)
+
+
+def plan_chunks(
+    p: int,
+    memory_budget: int = DEFAULT_MEMORY_BUDGET,
+    *,
+    n_high: int | None = None,
+    rows_per_chunk: int | None = None,
+    min_rows: int = 16,
+    max_low: int = 20,
+) -> ChunkPlan:
+    """Pick the high/low split and chunk size for depth ``p`` within ``memory_budget`` bytes.
+
+    The low side is made as large as the budget allows while a chunk keeps at
+    least ``min_rows`` rows (long vector operations amortize per-call costs;
+    several rows amortize the once-per-chunk low-side work), and never larger
+    than ``max_low`` sites.  Explicit ``n_high`` / ``rows_per_chunk`` override
+    the choice (tests use the smallest and largest plans).
+    """
+    n = 2 * p + 1
+    if p < 1:
+        raise ValueError("depth p must be >= 1")
+    if n_high is None:
+        n_low = min(n - 1, max_low)
+        while n_low > 1 and estimate_chunk_bytes(n_low, min(min_rows, 2 ** (n - n_low))) > memory_budget:
+            n_low -= 1
+        n_high = n - n_low
+    n_low = n - n_high
+    if rows_per_chunk is None:
+        rows = 2**n_high
+        while rows > 1 and estimate_chunk_bytes(n_low, rows) > memory_budget:
+            rows //= 2
+        rows_per_chunk = rows
+    return ChunkPlan(p, n_high, rows_per_chunk)
