@@ -1,0 +1,34 @@
+# Every target installs what it needs into .venv (only a Python >= 3.10 is required).
+PYTHON ?= python3
+VENV   ?= .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+
+.PHONY: install test test-fast demo bench clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e ".[test,fast]"
+	touch $(STAMP)
+
+install: $(STAMP)
+
+## Run the whole test suite (what CI runs).
+test: $(STAMP)
+	$(BIN)/python -m pytest -q tests
+
+## Quick loop while editing: skip the slower checks.
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -q -m "not slow" tests
+
+## The demo study end to end: sweep on a local Dask cluster, table, plots.
+demo: $(STAMP)
+	$(BIN)/python -m leadline.jobs.demo
+
+## Benchmarks (long timings live here, never in tests).
+bench: $(STAMP)
+	$(BIN)/python benchmarks/run.py
+
+clean:
+	rm -rf $(VENV) demo-output .pytest_cache

@@ -1,0 +1,89 @@
+"""The `leadline` command line: parse, validate, call jobs, print.
+
+Each command lives in its own module with a ``register(app)`` function; the
+list below is the only place that knows them all.
+"""
+
+from __future__ import annotations
+
+import importlib
+import sys
+
+import typer
+
+from .errors import InputError
+
+app = typer.Typer(
+    name="leadline",
+    help=(
+        "Exact infinite-size QAOA energies V_p(gamma, beta) for mixed-spin glasses: "
+        "evaluate, optimize angles per depth, run resumable depth sweeps, "
+        "and extrapolate the optimum in 1/p.\n\n"
+        "Example: leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.3927"
+    ),
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+    rich_markup_mode=None,
+)
+
+COMMAND_MODULES = [
+    "leadline.jobs.cmd_evaluate",
+]
+
+
+def _register() -> None:
+    for name in COMMAND_MODULES:
+        importlib.import_module(name).register(app)
+
+
+@app.callback()
+def _root() -> None:
+    """Exact infinite-size QAOA energies for mixed-spin glasses (see --help of each command)."""
+
+
+_register()
+
+
+def _exception_kinds(exc: BaseException) -> set[str]:
+    # typer may vendor its own copy of click, so match click's exception
+    # classes by name rather than by identity
+    return {cls.__name__ for cls in type(exc).__mro__}
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Console entry point: user errors become one stderr line and exit code 2."""
+    command = typer.main.get_command(app)
+    try:
+        rv = command.main(args=argv, prog_name="leadline", standalone_mode=False)
+    except InputError as exc:
+        print(f"leadline: error: {exc}", file=sys.stderr)
+        sys.exit(2)
+    except KeyboardInterrupt:
+        print("leadline: interrupted", file=sys.stderr)
+        sys.exit(130)
+    except Exception as exc:
+        kinds = _exception_kinds(exc)
+        if "NoArgsIsHelpError" in kinds:
+            exc.ctx and print(exc.ctx.get_help())
+            sys.exit(0)
+        if "UsageError" in kinds:
+            ctx = getattr(exc, "ctx", None)
+            where = ctx.command_path if ctx is not None else "leadline"
+            print(f"leadline: error: {exc.format_message()} (see: {where} --help)", file=sys.stderr)
+            sys.exit(2)
+        if "Abort" in kinds:
+            print("leadline: interrupted", file=sys.stderr)
+            sys.exit(130)
+        if "Exit" in kinds:
+            sys.exit(getattr(exc, "exit_code", 0))
+        if "ClickException" in kinds:
+            print(f"leadline: error: {exc.format_message()}", file=sys.stderr)
+            sys.exit(getattr(exc, "exit_code", 1))
+        raise
+    if isinstance(rv, int) and rv:
+        sys.exit(rv)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()
