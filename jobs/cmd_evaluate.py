@@ -10,6 +10,7 @@ import typer
 from leadline.kernels.iteration import evaluate as evaluate_kernel
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
+from .angles import read_angles
 from .errors import InputError
 from .parsing import angle_pair, mixture_arg
 
@@ -22,6 +23,7 @@ def evaluate_command(
         None, "--gamma", help="Phase angles g_1..g_p, comma-separated radians (t = 1 acts first). Negative values: --gamma=-0.3,0.5 or --gamma -0.3,0.5."
     ),
     beta: Optional[str] = typer.Option(None, "--beta", help="Mixing angles b_1..b_p, comma-separated radians."),
+    angles: Optional[str] = typer.Option(None, "--angles", help="Angle file (JSON written by `leadline optimize --output`) instead of --gamma/--beta; its xi is used when --xi is not given."),
     gradient: bool = typer.Option(False, "--gradient", help="Also compute dV/dgamma and dV/dbeta (reverse mode, about 3x one evaluation)."),
     fixed_point: bool = typer.Option(False, "--check-fixed-point", help="Run one extra pass and report max|G_(p+1) - G_p| (should be ~1e-15)."),
     memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB; sets the chunk plan."),
@@ -33,8 +35,15 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    mix = mixture_arg(xi)
-    g, b = angle_pair(gamma, beta)
+    if angles is not None:
+        if gamma is not None or beta is not None:
+            raise InputError("give either --angles FILE or --gamma/--beta, not both")
+        angle_set = read_angles(angles)
+        mix = mixture_arg(xi if xi is not None else angle_set.xi)
+        g, b = angle_set.gamma, angle_set.beta
+    else:
+        mix = mixture_arg(xi)
+        g, b = angle_pair(gamma, beta)
     if not memory_mb > 0:
         raise InputError("--memory-mb must be positive")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))

@@ -1,0 +1,118 @@
+"""`leadline optimize`: optimal angles and V_p* at one depth."""
+
+from __future__ import annotations
+
+import json
+import time
+from typing import Optional
+
+import typer
+
+from leadline.kernels.optimize import optimize_depth
+from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
+
+from .angles import AngleSet, check_writable, read_angles, write_angles
+from .errors import InputError
+from .parsing import mixture_arg
+
+
+def optimize_command(
+    xi: Optional[str] = typer.Option(None, "--xi", help="Mixture as q:w pairs, e.g. 2:0.5 (SK) or 3:1 (pure 3-spin)."),
+    depth: Optional[int] = typer.Option(None, "--depth", "-p", help="Depth p to optimize (>= 1)."),
+    start: Optional[str] = typer.Option(
+        None,
+        "--angles",
+        help="Angle file to start from: depth p-1 (warm start by interpolation) or depth p (used as is). "
+        "Without it, depths 1..p are optimized in turn, each warm-starting the next.",
+    ),
+    restarts: Optional[int] = typer.Option(
+        None, "--restarts", help="Extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, else 0)."
+    ),
+    seed: int = typer.Option(0, "--seed", help="Seed of the random and perturbed starts (results are reproducible)."),
+    gtol: float = typer.Option(1e-7, "--gtol", help="Stop when the largest gradient component is below this."),
+    maxiter: int = typer.Option(500, "--maxiter", help="Iteration cap of each local quasi-Newton run."),
+    output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
+    memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
+) -> None:
+    """Find the angles that maximize V_p and report V_p* in canonical form.
+
+    Examples:
+
+        leadline optimize --xi 2:0.5 --depth 5            # SK: V_5* = 0.5476
+
+        leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
+    """
+    mix = mixture_arg(xi)
+    if depth is None:
+        raise InputError("--depth is required (the depth p to optimize, >= 1)")
+    if depth < 1:
+        raise InputError(f"--depth must be >= 1, got {depth}")
+    if restarts is not None and restarts < 0:
+        raise InputError("--restarts must be >= 0")
+    if not gtol > 0:
+        raise InputError("--gtol must be positive")
+    if maxiter < 1:
+        raise InputError("--maxiter must be >= 1")
+    if not memory_mb > 0:
+        raise InputError("--memory-mb must be positive")
+    initial = read_angles(start) if start else None
+    if initial is not None and initial.p not in (depth - 1, depth):
+        raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
+    if output:
+        check_writable(output)
+
+    t0 = time.perf_counter()
+    ladder = []
+    budget = int(memory_mb * 2**20)
+    if initial is not None:
+        first = depth
+        previous = (initial.gamma, initial.beta)
+        previous_value = initial.value if initial.p == depth - 1 else None
+    else:
+        first, previous, previous_value = 1, None, None
+    result = None
+    for p in range(first, depth + 1):
+        result = optimize_depth(
+            mix,
+            p,
+            plan=plan_chunks(p, budget),
+            previous=previous,
+            previous_value=previous_value,
+            restarts=restarts,
+            seed=seed,
+            gtol=gtol,
+            maxiter=maxiter,
+        )
+        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
+        previous, previous_value = (result.gamma, result.beta), result.value
+    total_evals = sum(r["evaluations"] for r in ladder)
+    wall = time.perf_counter() - t0
+
+    if output:
+        write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
+    if as_json:
+        out = result.to_json()
+        out["evaluations_total"] = total_evals
+        out["wall_time_s"] = wall
+        out["ladder"] = ladder
+        typer.echo(json.dumps(out))
+        return
+    lines = [
+        f"xi(x)          = {mix.label()}",
+        f"depth p        = {depth}",
+        f"V_p*           = {result.value:.10f}",
+        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
+        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
+        f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
+        f"evaluations    = {total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s",
+    ]
+    if len(ladder) > 1:
+        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
+    if output:
+        lines.append(f"angles written to {output}")
+    typer.echo("\n".join(lines))
+
+
+def register(app: typer.Typer) -> None:
+    app.command("optimize")(optimize_command)
