@@ -1,0 +1,645 @@
+"""Exact QAOA value of Max-q-XORSAT on D-regular hypergraphs of large girth.
+
+Problem (conventions of the whole module).  Spins z in {+1,-1}^n; each of
+the m = nD/q constraints acts on q spins, c(z) = (1 + s z_1...z_q)/2 with a
+sign s = +-1, and C = sum of c counts the satisfied constraints.  QAOA:
+
+    |g,b> = prod_{t=1..p} exp(-i b_t B) exp(-i g_t C) |+>^n     (t = 1 acts first)
+
+When every radius-p neighbourhood is a hypertree (girth > 2p+1) the value is
+the same for every constraint and every sign pattern (gauge the signs away),
+and this module returns the satisfied fraction
+
+    nu_p(D; g, b) = <C>/m = 1/2 + <z_1...z_q>/2          (MaxCut: q = 2, cut fraction)
+
+Method (Basso, Farhi, Marwaha, Villalonga, Zhou, TQC 2022, arXiv:2110.14206
+for MaxCut on large-girth regular graphs; Basso, Gamarnik, Mei, Zhou, FOCS
+2022, arXiv:2204.10306 for Max-q-XORSAT), in the contour layout of
+:mod:`leadline.kernels.contour` (N = 2^(2p+1) paths, f and Gamma as there):
+
+    phase(c) = Gamma . c,   K(c) = cos(phase(c)/2),   S(c) = sin(phase(c)/2)
+    H_0 = 1
+    H_m(a) = [ sum_{b_1..b_{q-1}} prod_i f(b_i) H_{m-1}(b_i) K(a.b_1...b_{q-1}) ]^(D-1)
+    <z_1...z_q> = i sum_{a_1..a_q} prod_i f(a_i) H_p(a_i) (a_i)_0 S(a_1...a_q)
+
+(a.b is the elementwise product of paths = XOR of their bit patterns).  The
+inner sums are XOR-convolutions, so with the unnormalized Walsh-Hadamard
+transform W (W W = N):
+
+    V_m = W(f H_{m-1})                 V_m[0] = sum f H_{m-1} = 1  (exact identity)
+    message_m - 1 = W( V_m^(q-1) * W(K - 1) ) / N
+    H_m = exp( (D-1) log1p(message_m - 1) )
+    <z_1...z_q> = (i/N) sum_k W(f H_p a_0)[k]^q W(S)[k]
+
+Numerical stability at large D: message - 1 is computed directly from
+K - 1 = -2 sin^2(phase/4) (never as "1 + small" minus 1), and log1p of the
+complex message is taken with an accurate complex log1p (numpy's complex
+log1p loses the absolute precision of small arguments, which the power D-1
+would amplify by D).  This uses sum f H = 1, which is checked at every step
+(residual "sum_fH").
+
+Cost: O(p 4^p) time and O(4^p) memory for the value; the gradient (reverse
+mode through the transforms) stores one vector per step (or recomputes
+segments between checkpoints when a memory budget is given) and costs a
+small constant times one evaluation.
+
+Splitting: the transform of a vector viewed as a (2^h, 2^l) array is the
+row transform (over the low bits) followed by the column transform (over the
+high bits), like a four-step FFT.  :func:`wht_rows_chunk` and
+:func:`wht_columns_chunk` are the pure chunk functions; :func:`split_transform`
+maps them with an injected ``run_map(func, blocks) -> list of arrays``.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import numpy as np
+
+from .contour import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights, time0_index
+
+__all__ = [
+    "SparseEvaluation",
+    "SparseIntegrityError",
+    "RunMap",
+    "evaluate_sparse",
+    "value_and_grad",
+    "sparse_to_dense_angles",
+    "dense_to_sparse_angles",
+    "scaled_value",
+    "wht",
+    "wht_rows_chunk",
+    "wht_columns_chunk",
+    "split_transform",
+    "run_map_inprocess",
+    "complex_log1p",
+    "phase_vector",
+    "sum_fH_tolerance",
+    "optimize_sparse",
+    "SparseOptimization",
+    "check_problem",
+]
+
+RunMap = Callable[[Callable[[np.ndarray], np.ndarray], Sequence[np.ndarray]], list]
+
+
+class SparseIntegrityError(RuntimeError):
+    """A step whose normalization sum_a f(a) H(a) is not 1: corrupt transform or chunk."""
+
+
+def check_problem(q, degree) -> tuple[int, float]:
+    """Validate (q, D): q an integer >= 2, D a number >= 2 (real D allowed for scaling studies)."""
+    if isinstance(q, bool) or not float(q).is_integer() or int(q) < 2:
+        raise ValueError(f"constraint size q must be an integer >= 2, got {q!r}")
+    D = float(degree)
+    if not math.isfinite(D) or D < 2:
+        raise ValueError(f"degree D must be a finite number >= 2, got {degree!r}")
+    return int(q), D
+
+
+def sum_fH_tolerance(p: int) -> float:
+    """Allowed |sum_a f(a) H(a) - 1| per step (rounding of an N-term sum, common practice)."""
+    return 1e-10 * (2 * p + 1)
+
+
+# --------------------------------------------------------------------------- transforms
+def _wht_middle(x3: np.ndarray, scratch: np.ndarray | None = None) -> None:
+    """In-place unnormalized WHT along axis 1 of a 3-D array (pre, L, post), L a power of 2.
+
+    Radix-2 butterflies, one vectorized numpy pass per stage: O(L log L) per fibre.
+    """
+    pre, L, post = x3.shape
+    if L & (L - 1):
+        raise ValueError(f"transform length {L} is not a power of 2")
+    if scratch is None or scratch.size < x3.size // 2 or scratch.dtype != x3.dtype:
+        scratch = np.empty(x3.size // 2, dtype=x3.dtype)
+    h = 1
+    while h < L:
+        v = x3.reshape(pre, L // (2 * h), 2, h, post)
+        a = v[:, :, 0]
+        b = v[:, :, 1]
+        t = scratch[: a.size].reshape(a.shape)
+        np.subtract(a, b, out=t)
+        a += b
+        b[...] = t
+        h *= 2
+
+
+def wht(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
+    """Unnormalized Walsh-Hadamard transform of a 1-D vector, IN PLACE; returns x.
+
+    (W x)[k] = sum_j (-1)^popcount(j & k) x[j]; W W = N.  Length a power of 2,
+    any float or complex dtype.  ``scratch``: optional buffer of >= N/2 of x's dtype.
+    """
+    if x.ndim != 1:
+        raise ValueError("wht expects a 1-D array")
+    _wht_middle(x.reshape(1, x.size, 1), scratch)
+    return x
+
+
+def wht_rows_chunk(block: np.ndarray) -> np.ndarray:
+    """Chunk function: transform every row of a (rows, 2^l) block (the low bits). Pure."""
+    out = np.array(block, copy=True, order="C")
+    _wht_middle(out.reshape(out.shape[0], out.shape[1], 1))
+    return out
+
+
+def wht_columns_chunk(block: np.ndarray) -> np.ndarray:
+    """Chunk function: transform every column of a (2^h, cols) block (the high bits). Pure."""
+    out = np.array(block, copy=True, order="C")
+    _wht_middle(out.reshape(1, out.shape[0], out.shape[1]))
+    return out
+
+
+def run_map_inprocess(func, blocks):
+    """Default ``run_map``: apply ``func`` to each block in order, in this process."""
+    return [func(b) for b in blocks]
+
+
+def split_transform(
+    x: np.ndarray,
+    n_high: int,
+    *,
+    rows_per_chunk: int | None = None,
+    cols_per_chunk: int | None = None,
+    run_map: RunMap | None = None,
+) -> np.ndarray:
+    """WHT of x (length 2^n) in the four-step layout; writes the result into x and returns it.
+
+    x is viewed as a (2^h, 2^l) row-major array, h = ``n_high`` (index = row * 2^l + col):
+    1. rows (the l low bits) are transformed in chunks of ``rows_per_chunk`` rows,
+    2. columns (the h high bits) in chunks of ``cols_per_chunk`` columns.
+    Each chunk is a pure call ``func(block) -> block`` through ``run_map(func, blocks)``
+    (default: in-process), so an executor can run the chunks anywhere; results are
+    written back in chunk order.  Exactly equal (same butterflies) to :func:`wht`
+    up to the order of floating-point additions.
+    """
+    N = x.size
+    n = N.bit_length() - 1
+    if N != 1 << n:
+        raise ValueError(f"length {N} is not a power of 2")
+    if not 0 <= n_high <= n:
+        raise ValueError(f"n_high = {n_high} outside 0..{n}")
+    run_map = run_map or run_map_inprocess
+    R, Cn = 1 << n_high, 1 << (n - n_high)
+    A = x.reshape(R, Cn)
+    rows_per_chunk = max(1, min(R, rows_per_chunk or max(1, R // 4)))
+    cols_per_chunk = max(1, min(Cn, cols_per_chunk or max(1, Cn // 4)))
+    starts = list(range(0, R, rows_per_chunk))
+    outs = run_map(wht_rows_chunk, [A[s : s + rows_per_chunk] for s in starts])
+    for s, o in zip(starts, outs):
+        A[s : s + rows_per_chunk] = o
+    starts = list(range(0, Cn, cols_per_chunk))
+    outs = run_map(wht_columns_chunk, [A[:, s : s + cols_per_chunk] for s in starts])
+    for s, o in zip(starts, outs):
+        A[:, s : s + cols_per_chunk] = o
+    return x
+
+
+# --------------------------------------------------------------------------- helpers
+def phase_vector(gamma) -> np.ndarray:
+    """phase(c) = Gamma . c for all 2^(2p+1) paths, shape (N,), float; O(N) by doubling.
+
+    Pattern order as :func:`leadline.kernels.contour.sign_patterns` (first site = MSB,
+    set bit = spin -1).
+    """
+    Gam = gamma_vector(gamma)
+    out = np.array([Gam[-1], -Gam[-1]])
+    for k in range(Gam.size - 2, -1, -1):
+        out = np.concatenate([out + Gam[k], out - Gam[k]])
+    return out
+
+
+def _site_sums(vec: np.ndarray, n: int) -> np.ndarray:
+    """sum_c vec(c) c_t for every site t, shape (n,) of vec's dtype."""
+    out = np.empty(n, dtype=vec.dtype)
+    for t in range(n):
+        v = vec.reshape(1 << t, 2, 1 << (n - 1 - t))
+        out[t] = v[:, 0, :].sum() - v[:, 1, :].sum()
+    return out
+
+
+def _flip_time0(vec: np.ndarray, p: int) -> None:
+    """vec(a) *= a_0 in place (time 0 is site p, i.e. bit p counted from the LSB)."""
+    vec.reshape(1 << p, 2, 1 << p)[:, 1, :] *= -1
+
+
+def complex_log1p(z: np.ndarray) -> np.ndarray:
+    """log(1 + z) for complex z, accurate in absolute terms for small |z|.
+
+    Re = 1/2 log1p(2x + x^2 + y^2), Im = atan2(y, 1 + x).  (numpy's complex log1p
+    forms |1 + z| first and loses ~1e-16 absolutely, which the power D-1 turns
+    into ~1e-16 * D.)
+    """
+    x = z.real
+    y = z.imag
+    out = np.empty(z.shape, dtype=complex)
+    out.real = 0.5 * np.log1p(x * (2.0 + x) + y * y)
+    out.imag = np.arctan2(y, 1.0 + x)
+    return out
+
+
+# --------------------------------------------------------------------------- result
+@dataclass
+class SparseEvaluation:
+    """Result of one sparse evaluation (the object the CLI prints as JSON).
+
+    value      : nu_p(D; gamma, beta), satisfied fraction in [0, 1] (cut fraction for q = 2)
+    gradient   : None or {"gamma": (p,), "beta": (p,)} of d nu / d angle (radians^-1)
+    residuals  : "sum_fH" max |sum f H - 1| over steps, "imag_value" |Im nu|, and with a
+                 gradient "imag_gradient"
+    correlator : <z_1...z_q> = 2 nu - 1
+    """
+
+    value: float
+    p: int
+    q: int
+    degree: float
+    gamma: np.ndarray
+    beta: np.ndarray
+    residuals: dict
+    gradient: dict | None = None
+    wall_time: float = 0.0
+    transforms: int = 0
+    correlator: float = 0.0
+
+    def to_json(self) -> dict:
+        D = self.degree
+        out = {
+            "value": float(self.value),
+            "kind": "sparse",
+            "p": int(self.p),
+            "q": int(self.q),
+            "degree": int(D) if float(D).is_integer() else float(D),
+            "correlator": float(self.correlator),
+            "gamma": [float(x) for x in self.gamma],
+            "beta": [float(x) for x in self.beta],
+            "residuals": {k: float(v) for k, v in self.residuals.items()},
+            "wall_time_s": float(self.wall_time),
+            "transforms": int(self.transforms),
+        }
+        if self.gradient is not None:
+            out["gradient"] = {k: [float(x) for x in v] for k, v in self.gradient.items()}
+        return out
+
+
+# --------------------------------------------------------------------------- kernel
+class _Transformer:
+    """Applies the WHT in place, in-process or split through run_map; counts calls."""
+
+    def __init__(self, N: int, run_map: RunMap | None, n_high: int | None):
+        self.N = N
+        self.run_map = run_map
+        n = N.bit_length() - 1
+        self.n_high = (n // 2) if n_high is None else n_high
+        self.count = 0
+        self._scratch = {}
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        self.count += 1
+        if self.run_map is None:
+            s = self._scratch.get(x.dtype)
+            if s is None:
+                s = self._scratch[x.dtype] = np.empty(x.size // 2, dtype=x.dtype)
+            return wht(x, s)
+        return split_transform(x, self.n_high, run_map=self.run_map)
+
+
+def _step(f, H_prev, Kh, q, D, T, N):
+    """One recursion step; returns (L_m, V_m, dev) with H_m = exp((D-1) L_m)."""
+    v = f * H_prev if H_prev is not None else f.copy()
+    V = T(v)
+    dev = abs(V[0] - 1.0)
+    W = V ** (q - 1) if q > 2 else V.copy()
+    W *= Kh
+    T(W)
+    W /= N  # = message - 1
+    return complex_log1p(W), V, dev
+
+
+def evaluate_sparse(
+    q: int,
+    degree: float,
+    gamma,
+    beta,
+    *,
+    gradient: bool = False,
+    run_map: RunMap | None = None,
+    n_high: int | None = None,
+    memory_budget_bytes: int | None = None,
+) -> SparseEvaluation:
+    """Exact nu_p(D; gamma, beta) of Max-q-XORSAT on a D-regular hypertree, optionally with gradient.
+
+    Parameters
+    ----------
+    q : int >= 2, constraint size (q = 2: MaxCut, value is the cut fraction)
+    degree : D >= 2 (every spin in D constraints); real D is allowed (large-D scaling)
+    gamma, beta : array-like (p,), radians, t = 1 acts first; cost exp(-i g C) with C the
+        number of satisfied constraints, mixer exp(-i b B), B = sum X
+    gradient : also return d nu / d gamma and d nu / d beta (reverse mode)
+    run_map : executor of the transform chunks, ``run_map(func, blocks) -> list``; None
+        (default) transforms whole vectors in-process
+    n_high : high bits of the split layout (default n // 2) when ``run_map`` is given
+    memory_budget_bytes : with ``gradient``, bound on the per-step vectors kept for the
+        reverse sweep; steps between checkpoints are recomputed (default: keep all)
+    """
+    t0 = time.perf_counter()
+    q, D = check_problem(q, degree)
+    g, b = check_angles(gamma, beta)
+    p = g.size
+    n = n_sites(p)
+    N = 1 << n
+    T = _Transformer(N, run_map, n_high)
+
+    f = path_weights(p, b)
+    phase = phase_vector(g)
+    Kh = -2.0 * np.sin(phase / 4.0) ** 2  # K - 1, exact form
+    T(Kh)
+    Sh = np.sin(phase / 2.0)
+    T(Sh)
+    if not gradient:
+        del phase
+
+    tol = sum_fH_tolerance(p)
+    if gradient:
+        per_vec = 16 * N
+        if memory_budget_bytes is None or (p + 1) * per_vec <= memory_budget_bytes:
+            stride = 1
+        else:
+            stride = max(1, int(math.ceil(math.sqrt(p))))
+    else:
+        stride = None
+    stored: dict[int, np.ndarray] = {}
+
+    def checked(dev, m):
+        if not dev <= tol:
+            raise SparseIntegrityError(
+                f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} (allowed {tol:.1e})"
+            )
+        return dev
+
+    dev_max = 0.0
+    L = None
+    H = None
+    for m in range(1, p + 1):
+        L, V, dev = _step(f, H, Kh, q, D, T, N)
+        del V
+        dev_max = max(dev_max, checked(dev, m))
+        H = np.exp((D - 1.0) * L)
+        if stride is not None and (m % stride == 0 or m == p):
+            stored[m] = L
+
+    # root constraint
+    u = f * H
+    root_norm = abs(u.sum() - 1.0)
+    dev_max = max(dev_max, checked(root_norm, p + 1))
+    _flip_time0(u, p)
+    U = T(u)
+    Y = U**q
+    corr = 1j * np.dot(Y, Sh) / N
+    nu_c = 0.5 + 0.5 * corr
+    residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
+
+    grad = None
+    if gradient:
+        grad = _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H, U, stored, stride, T, residuals)
+        del U, Y
+
+    return SparseEvaluation(
+        value=float(nu_c.real),
+        p=p,
+        q=q,
+        degree=D,
+        gamma=g,
+        beta=b,
+        residuals=residuals,
+        gradient=grad,
+        wall_time=time.perf_counter() - t0,
+        transforms=T.count,
+        correlator=float(corr.real),
+    )
+
+
+def _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, residuals):
+    """Reverse sweep (holomorphic adjoints; the value is real for real angles)."""
+    n = n_sites(p)
+    # nu = 1/2 + (i / 2N) sum_k U^q Sh
+    coef = 0.5j / N
+    Shbar = coef * U**q
+    Ubar = coef * q * U ** (q - 1) * Sh
+    ubar = T(Ubar)  # adjoint of W is W
+    _flip_time0(ubar, p)  # u = f H a0
+    fbar = ubar * H_p
+    Hbar = ubar * f
+    del ubar
+    Khbar = np.zeros(N, dtype=complex)
+
+    cache = stored  # checkpoints; entries are dropped once the sweep is below them
+
+    def get_L(m):
+        """L_m (None for m = 0, H_0 = 1), recomputing from the last checkpoint."""
+        if m == 0:
+            return None
+        if m not in cache:
+            c = max(k for k in list(cache) + [0] if k < m)
+            H = None if c == 0 else np.exp((D - 1.0) * cache[c])
+            for k in range(c + 1, m + 1):
+                Lk, _, _ = _step(f, H, Kh, q, D, T, N)
+                cache[k] = Lk
+                H = np.exp((D - 1.0) * Lk)
+        return cache[m]
+
+    for m in range(p, 0, -1):
+        L_m = get_L(m)
+        L_prev = get_L(m - 1)
+        H_prev = None if L_prev is None else np.exp((D - 1.0) * L_prev)
+        # H_m = exp((D-1) log1p(mm1)) -> mm1bar = Hbar (D-1) exp((D-2) L_m)
+        Xbar = Hbar * ((D - 1.0) * np.exp((D - 2.0) * L_m))
+        del Hbar
+        T(Xbar)
+        Xbar /= N  # mm1 = W(X)/N
+        v = f * H_prev if H_prev is not None else f.copy()
+        V = T(v)
+        if q > 2:
+            Vq2 = V ** (q - 2)
+            Khbar += Xbar * (Vq2 * V)
+            Vbar = Xbar * Kh
+            Vbar *= (q - 1) * Vq2
+            del Vq2
+        else:
+            Khbar += Xbar * V
+            Vbar = Xbar * Kh
+        del V, Xbar
+        vbar = T(Vbar)
+        if H_prev is not None:
+            fbar += vbar * H_prev
+        else:
+            fbar += vbar
+        Hbar = vbar * f
+        del vbar
+        for k in [k for k in cache if k >= m]:  # no longer needed below step m
+            cache.pop(k)
+
+    # gamma: through Kh = W(cos(phase/2) - 1) and Sh = W(sin(phase/2))
+    T(Khbar)
+    T(Shbar)
+    phasebar = Shbar * (0.5 * np.cos(phase / 2.0)) - Khbar * (0.5 * np.sin(phase / 2.0))
+    del Khbar, Shbar
+    Gam_bar = _site_sums(phasebar, n)
+    gamma_bar = Gam_bar[:p] - Gam_bar[n - 1 : p : -1]
+    # beta: d f / d b_t (a) = sigma_t i f(a with the link-t spin product flipped)
+    beta_bar = np.zeros(p, dtype=complex)
+    for t in range(2 * p):
+        block = 1 << (n - 1 - t)
+        flipped = f.reshape(-1, block)[:, ::-1]
+        beta_bar[link_beta_index(p, t)] += link_sign(p, t) * 1j * np.sum(fbar.reshape(-1, block) * flipped)
+    residuals["imag_gradient"] = float(max(np.max(np.abs(gamma_bar.imag)), np.max(np.abs(beta_bar.imag))))
+    return {"gamma": gamma_bar.real.copy(), "beta": beta_bar.real.copy()}
+
+
+def value_and_grad(q: int, degree: float, gamma, beta, **kw) -> tuple[float, np.ndarray, np.ndarray]:
+    """(nu, d nu/d gamma (p,), d nu/d beta (p,)) -- the objective interface an optimizer takes."""
+    ev = evaluate_sparse(q, degree, gamma, beta, gradient=True, **kw)
+    return ev.value, ev.gradient["gamma"], ev.gradient["beta"]
+
+
+# --------------------------------------------------------------------------- universality
+def dense_to_sparse_angles(q: int, degree: float, gamma):
+    """Sparse angles g_t = 2 sqrt(q) gamma_t / sqrt(D) for dense q-spin angles gamma_t."""
+    return 2.0 * math.sqrt(q) * np.asarray(gamma, dtype=float) / math.sqrt(degree)
+
+
+def sparse_to_dense_angles(q: int, degree: float, gamma):
+    """Inverse of :func:`dense_to_sparse_angles`: gamma_t = g_t sqrt(D) / (2 sqrt(q))."""
+    return np.asarray(gamma, dtype=float) * math.sqrt(degree) / (2.0 * math.sqrt(q))
+
+
+def scaled_value(q: int, degree: float, nu: float) -> float:
+    """sqrt(D) (nu - 1/2) * 2 / sqrt(q): tends to the dense V_p of xi = x^q as D -> infinity.
+
+    Basso, Gamarnik, Mei, Zhou, FOCS 2022 (arXiv:2204.10306), with the sparse angles
+    g_t = 2 sqrt(q) gamma_t / sqrt(D) (:func:`dense_to_sparse_angles`).
+    """
+    return math.sqrt(degree) * (nu - 0.5) * 2.0 / math.sqrt(q)
+
+
+# --------------------------------------------------------------------------- optimizer
+@dataclass
+class SparseOptimization:
+    value: float
+    gamma: np.ndarray
+    beta: np.ndarray
+    p: int
+    q: int
+    degree: float
+    gradient_norm: float
+    evaluations: int
+    converged: bool
+    message: str
+    wall_time: float
+    history: list
+
+    def to_json(self) -> dict:
+        D = self.degree
+        return {
+            "value": float(self.value),
+            "kind": "sparse",
+            "p": int(self.p),
+            "q": int(self.q),
+            "degree": int(D) if float(D).is_integer() else float(D),
+            "gamma": [float(x) for x in self.gamma],
+            "beta": [float(x) for x in self.beta],
+            "gradient_norm": float(self.gradient_norm),
+            "evaluations": int(self.evaluations),
+            "converged": bool(self.converged),
+            "message": str(self.message),
+            "wall_time_s": float(self.wall_time),
+            "history": self.history,
+        }
+
+
+def _interpolate(x: np.ndarray, p: int) -> np.ndarray:
+    """Warm start at depth p from an optimum at depth p-1 (linear interpolation in t/p)."""
+    x = np.asarray(x, dtype=float)
+    if x.size == 1:
+        return np.full(p, x[0])
+    s_old = (np.arange(x.size) + 0.5) / x.size
+    s_new = (np.arange(p) + 0.5) / p
+    return np.interp(s_new, s_old, x)
+
+
+def optimize_sparse(
+    q: int,
+    degree: float,
+    p: int,
+    *,
+    previous=None,
+    starts=None,
+    restarts: int = 3,
+    seed: int = 0,
+    gtol: float = 1e-9,
+    maxiter: int = 500,
+    evaluate_kw: dict | None = None,
+) -> SparseOptimization:
+    """Maximize nu_p(D; gamma, beta) with scipy L-BFGS-B and the exact gradient.
+
+    Starts (deterministic for fixed inputs and ``seed``): the explicit ``starts``
+    list of (gamma, beta); else the interpolated ``previous`` optimum at depth p-1
+    (if given), a linear ramp scaled by 1/sqrt(D) (common practice for QAOA on
+    regular graphs), and ``restarts`` seeded random points.
+    """
+    from scipy.optimize import minimize
+
+    t0 = time.perf_counter()
+    q, D = check_problem(q, degree)
+    if p < 1:
+        raise ValueError("depth p must be >= 1")
+    evaluate_kw = evaluate_kw or {}
+    rng = np.random.default_rng(seed)
+    scale = 1.0 / math.sqrt(D)
+    if starts is None:
+        starts = []
+        if previous is not None:
+            starts.append((_interpolate(previous[0], p), _interpolate(previous[1], p)))
+        tt = (np.arange(p) + 0.5) / p
+        starts.append((0.8 * scale * tt * 2, 0.6 * (1 - tt)))
+        for _ in range(restarts):
+            starts.append((rng.uniform(0.1, 1.2, p) * scale, rng.uniform(0.05, 0.7, p)))
+    history = []
+    best = None
+    evaluations = 0
+    for i, (g0, b0) in enumerate(starts):
+        values = []
+
+        def fun(x):
+            nonlocal evaluations
+            evaluations += 1
+            val, gg, gb = value_and_grad(q, D, x[:p], x[p:], **evaluate_kw)
+            values.append(val)
+            return -val, -np.concatenate([gg, gb])
+
+        x0 = np.concatenate([np.asarray(g0, float), np.asarray(b0, float)])
+        res = minimize(fun, x0, jac=True, method="L-BFGS-B", options={"gtol": gtol, "maxiter": maxiter})
+        history.append({"start": i, "values": [float(v) for v in values], "value": float(-res.fun), "evaluations": int(res.nfev)})
+        if best is None or -res.fun > best[1]:
+            best = (res, -res.fun)
+    res = best[0]
+    gamma = res.x[:p].copy()
+    beta = res.x[p:].copy()
+    return SparseOptimization(
+        value=float(-res.fun),
+        gamma=gamma,
+        beta=beta,
+        p=p,
+        q=q,
+        degree=D,
+        gradient_norm=float(np.linalg.norm(res.jac)),
+        evaluations=evaluations,
+        converged=bool(res.success),
+        message=str(res.message),
+        wall_time=time.perf_counter() - t0,
+        history=history,
+    )
