@@ -31,6 +31,8 @@ COMMAND_MODULES = [
     "leadline.jobs.cmd_evaluate",
     "leadline.jobs.cmd_finite_size",
     "leadline.jobs.cmd_optimize",
+    "leadline.jobs.cmd_table",
+    "leadline.jobs.cmd_plot",
 ]
 
 

@@ -1,0 +1,41 @@
+"""`leadline plot`: V_p* against 1/p with fits and reference lines, and the angle schedules."""
+
+from __future__ import annotations
+
+from typing import List, Optional
+
+import typer
+
+from .errors import InputError
+from .report import angle_plot_path, build_report, check_output_path, load_study, parse_ground_state_options, write_plots
+
+
+def plot_command(
+    store: str = typer.Argument(..., help="Study store directory written by 'leadline sweep'."),
+    output: Optional[str] = typer.Option(None, "--output", help="PNG file for V_p* vs 1/p; the angle schedules go to FILE-angles.png beside it."),
+    ground_state: Optional[List[str]] = typer.Option(
+        None, "--ground-state", help="Reference ground-state energy density: VALUE or LABEL=VALUE, repeatable (drawn as a dashed line)."
+    ),
+) -> None:
+    """Two figures of a study: V_p* vs 1/p per ensemble, and the optimal angle schedules.
+
+    FILE.png: stored V_p* (markers), the representative polynomial fit in 1/p,
+    the extrapolated V_inf +- spread at 1/p = 0 (an estimate, not a bound), and
+    reference lines GS (dashed) and ALG (dotted) where known.
+    FILE-angles.png: gamma_t and beta_t against (t - 1/2)/p, one curve per depth.
+
+    Example: leadline plot study.zarr --output study.png
+    """
+    if output is None:
+        raise InputError("--output FILE.png is required (the angle schedules are written to FILE-angles.png)")
+    out_path = check_output_path(output, suffix=".png")
+    check_output_path(angle_plot_path(out_path), suffix=".png")
+    study = load_study(store)
+    overrides = parse_ground_state_options(ground_state, study.ensembles())
+    paths = write_plots(build_report(study, ground_states=overrides), out_path)
+    for path in paths:
+        typer.echo(f"wrote {path}")
+
+
+def register(app: typer.Typer) -> None:
+    app.command("plot")(plot_command)

@@ -1,0 +1,61 @@
+"""`leadline table`: per-depth V_p*, ratios to reference energies and extrapolations of a study."""
+
+from __future__ import annotations
+
+from typing import List, Optional
+
+import typer
+
+from .errors import InputError
+from .report import (
+    build_report,
+    check_output_path,
+    load_study,
+    parse_ground_state_options,
+    render_csv,
+    render_json,
+    render_markdown,
+    write_text_atomic,
+)
+
+FORMATS = {"markdown": render_markdown, "csv": render_csv, "json": render_json}
+
+
+def table_command(
+    store: str = typer.Argument(..., help="Study store directory written by 'leadline sweep'."),
+    fmt: str = typer.Option("markdown", "--format", help="markdown (reads well in a terminal), csv (one long table, column 'record' says what a row is) or json (one object)."),
+    output: Optional[str] = typer.Option(None, "--output", help="Write to this file instead of stdout."),
+    ground_state: Optional[List[str]] = typer.Option(
+        None, "--ground-state",
+        help="Reference ground-state energy density: VALUE (one-ensemble study) or LABEL=VALUE, repeatable. Overrides the spec, computed and shipped values.",
+    ),
+) -> None:
+    """Table of the optimal energies V_p* per depth, with extrapolations to p -> infinity.
+
+    Per ensemble: p, 1/p, V_p*, gain over p-1, V_p*/GS where a ground state is
+    known, V_p*/ALG and whether V_p* exceeds ALG where the algorithmic threshold
+    is known, the final gradient norm; then polynomial fits in 1/p (degree 1-3,
+    several windows) with the spread across them, and a power-law fit of the gap
+    to GS with the depths it predicts for ratios 0.95 and 0.99. Extrapolations
+    are estimates, not bounds.
+
+    Example: leadline table study.zarr --format csv --output table.csv
+    """
+    render = FORMATS.get(fmt.lower().strip())
+    if render is None:
+        raise InputError(f"--format {fmt!r}: choose one of {', '.join(FORMATS)}")
+    out_path = check_output_path(output) if output is not None else None
+    study = load_study(store)
+    overrides = parse_ground_state_options(ground_state, study.ensembles())
+    text = render(build_report(study, ground_states=overrides))
+    if not text.endswith("\n"):
+        text += "\n"
+    if out_path is None:
+        typer.echo(text, nl=False)
+    else:
+        write_text_atomic(out_path, text)
+        typer.echo(f"wrote {out_path}", err=True)
+
+
+def register(app: typer.Typer) -> None:
+    app.command("table")(table_command)
