@@ -10,6 +10,7 @@ import typer
 from leadline.kernels.iteration import evaluate as evaluate_kernel
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
+from . import sparse_cli
 from .angles import read_angles
 from .errors import InputError
 from .parsing import angle_pair, mixture_arg
@@ -28,6 +29,8 @@ def evaluate_command(
     fixed_point: bool = typer.Option(False, "--check-fixed-point", help="Run one extra pass and report max|G_(p+1) - G_p| (should be ~1e-15)."),
     memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB; sets the chunk plan."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object (value, p, xi, residuals, ...) instead of a report."),
+    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse_cli.XORSAT_HELP),
+    degree: Optional[str] = typer.Option(None, "--degree", help=sparse_cli.DEGREE_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -35,6 +38,8 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
+    if sparse_cli.sparse_requested(xorsat, degree):
+        return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles, gradient=gradient, as_json=as_json)
     if angles is not None:
         if gamma is not None or beta is not None:
             raise InputError("give either --angles FILE or --gamma/--beta, not both")

@@ -11,6 +11,7 @@ import typer
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
+from . import sparse_cli
 from .angles import AngleSet, check_writable, read_angles, write_angles
 from .errors import InputError
 from .parsing import mixture_arg
@@ -34,6 +35,8 @@ def optimize_command(
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
     memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
+    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse_cli.XORSAT_HELP),
+    degree: Optional[str] = typer.Option(None, "--degree", help=sparse_cli.DEGREE_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -43,6 +46,8 @@ def optimize_command(
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
+    if sparse_cli.sparse_requested(xorsat, degree):
+        return sparse_cli.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json, start=start)
     mix = mixture_arg(xi)
     if depth is None:
         raise InputError("--depth is required (the depth p to optimize, >= 1)")

@@ -561,16 +561,6 @@ class SparseOptimization:
         }
 
 
-def _interpolate(x: np.ndarray, p: int) -> np.ndarray:
-    """Warm start at depth p from an optimum at depth p-1 (linear interpolation in t/p)."""
-    x = np.asarray(x, dtype=float)
-    if x.size == 1:
-        return np.full(p, x[0])
-    s_old = (np.arange(x.size) + 0.5) / x.size
-    s_new = (np.arange(p) + 0.5) / p
-    return np.interp(s_new, s_old, x)
-
-
 def optimize_sparse(
     q: int,
     degree: float,
@@ -587,48 +577,58 @@ def optimize_sparse(
     """Maximize nu_p(D; gamma, beta) with scipy L-BFGS-B and the exact gradient.
 
     Starts (deterministic for fixed inputs and ``seed``): the explicit ``starts``
-    list of (gamma, beta); else the interpolated ``previous`` optimum at depth p-1
-    (if given), a linear ramp scaled by 1/sqrt(D) (common practice for QAOA on
-    regular graphs), and ``restarts`` seeded random points.
+    list of (gamma, beta) if given (then only those and ``previous``); else the
+    ``previous`` optimum at depth p-1 warm-started by INTERP
+    (:func:`leadline.kernels.optimize.interpolate_angles`), a linear ramp with gamma
+    scaled by 1/sqrt(D) (common practice for QAOA on regular graphs), and
+    ``restarts`` seeded random points.  The result is in the canonical form of
+    :func:`leadline.kernels.optimize.canonical_angles` for xi = x^q (same symmetries).
+    ``gradient_norm`` is the max-norm of the gradient at the optimum.
     """
     from scipy.optimize import minimize
+
+    from .mixture import parse_mixture
+    from .optimize import canonical_angles, interpolate_angles
 
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)
     if p < 1:
         raise ValueError("depth p must be >= 1")
     evaluate_kw = evaluate_kw or {}
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng([int(seed), int(p)])
     scale = 1.0 / math.sqrt(D)
+    candidates = [(np.asarray(g0, float), np.asarray(b0, float)) for g0, b0 in (starts or [])]
+    if previous is not None and len(previous[0]) == p - 1 and p > 1:
+        candidates.append(interpolate_angles(*previous))
+    elif previous is not None and len(previous[0]) == p:
+        candidates.append((np.asarray(previous[0], float), np.asarray(previous[1], float)))
     if starts is None:
-        starts = []
-        if previous is not None:
-            starts.append((_interpolate(previous[0], p), _interpolate(previous[1], p)))
         tt = (np.arange(p) + 0.5) / p
-        starts.append((0.8 * scale * tt * 2, 0.6 * (1 - tt)))
+        candidates.append((1.2 * scale * tt, 0.6 * (1.0 - tt)))  # linear ramp
         for _ in range(restarts):
-            starts.append((rng.uniform(0.1, 1.2, p) * scale, rng.uniform(0.05, 0.7, p)))
+            candidates.append((rng.uniform(0.1, 1.2, p) * scale, rng.uniform(0.05, 0.7, p)))
     history = []
     best = None
     evaluations = 0
-    for i, (g0, b0) in enumerate(starts):
+    for i, (g0, b0) in enumerate(candidates):
         values = []
 
         def fun(x):
             nonlocal evaluations
             evaluations += 1
             val, gg, gb = value_and_grad(q, D, x[:p], x[p:], **evaluate_kw)
-            values.append(val)
+            values.append(float(val))
             return -val, -np.concatenate([gg, gb])
 
-        x0 = np.concatenate([np.asarray(g0, float), np.asarray(b0, float)])
-        res = minimize(fun, x0, jac=True, method="L-BFGS-B", options={"gtol": gtol, "maxiter": maxiter})
-        history.append({"start": i, "values": [float(v) for v in values], "value": float(-res.fun), "evaluations": int(res.nfev)})
-        if best is None or -res.fun > best[1]:
-            best = (res, -res.fun)
-    res = best[0]
-    gamma = res.x[:p].copy()
-    beta = res.x[p:].copy()
+        x0 = np.concatenate([g0, b0])
+        res = minimize(fun, x0, jac=True, method="L-BFGS-B", options={"gtol": gtol, "ftol": 1e-15, "maxiter": maxiter})
+        gnorm = float(np.max(np.abs(res.jac)))
+        history.append({"start": i, "values": values, "value": float(-res.fun), "evaluations": int(res.nfev), "gradient_norm": gnorm})
+        if best is None or -res.fun > -best[0].fun + 1e-13:
+            best = (res, gnorm)
+    res, gnorm = best
+    # symmetries (g, b) -> (-g, -b) and b_t -> b_t + pi (pi/2 for even q) hold here too
+    gamma, beta = canonical_angles(parse_mixture(f"{q}:1"), res.x[:p], res.x[p:])
     return SparseOptimization(
         value=float(-res.fun),
         gamma=gamma,
@@ -636,9 +636,9 @@ def optimize_sparse(
         p=p,
         q=q,
         degree=D,
-        gradient_norm=float(np.linalg.norm(res.jac)),
+        gradient_norm=gnorm,
         evaluations=evaluations,
-        converged=bool(res.success),
+        converged=bool(gnorm <= max(10 * gtol, 1e-6)),
         message=str(res.message),
         wall_time=time.perf_counter() - t0,
         history=history,

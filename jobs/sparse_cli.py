@@ -1,0 +1,158 @@
+"""Command-line logic for sparse ensembles (--xorsat Q --degree D) of `evaluate` and `optimize`.
+
+The shared command modules call into here with a few lines, so everything about
+Max-q-XORSAT on D-regular hypertrees (validation, printing) lives in one place:
+
+    leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json]
+    leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE]
+
+"value" is the satisfied fraction nu_p(D; gamma, beta) (the cut fraction for Q = 2).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import time
+
+import typer
+
+from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
+
+from .errors import InputError
+
+__all__ = ["sparse_requested", "check_sparse", "evaluate_xorsat", "optimize_xorsat", "ensemble_json"]
+
+XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
+DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values such as 1e6 are fine."
+
+
+def sparse_requested(xorsat, degree) -> bool:
+    """True when the user asked for the sparse ensemble (either option given)."""
+    return xorsat is not None or degree is not None
+
+
+def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
+    """Validate --xorsat/--degree (and that --xi is absent); returns (q, D). Raises InputError."""
+    if xi is not None:
+        raise InputError("--xi and --xorsat are two different ensembles: give one of them")
+    if xorsat is None:
+        raise InputError("--degree needs --xorsat Q (the constraint size, Q >= 2)")
+    try:
+        q = int(xorsat)
+    except (TypeError, ValueError):
+        raise InputError(f"--xorsat must be an integer >= 2, got {xorsat!r}") from None
+    if q < 2:
+        raise InputError(f"--xorsat must be an integer >= 2 (constraint size), got {q}")
+    if degree is None:
+        raise InputError("--xorsat needs --degree D (every spin in D constraints, D >= 2)")
+    try:
+        d = float(str(degree).strip())
+    except ValueError:
+        raise InputError(f"--degree must be an integer >= 2, got {degree!r}") from None
+    if not math.isfinite(d) or not d.is_integer():
+        raise InputError(f"--degree must be an integer >= 2, got {degree!r}")
+    if d < 2:
+        raise InputError(f"--degree must be >= 2, got {degree}")
+    return q, int(d)
+
+
+def ensemble_json(q: int, degree: int) -> dict:
+    """The ensemble record used in angle files and JSON output."""
+    return {"kind": "sparse", "q": int(q), "degree": int(degree)}
+
+
+def _report(ev) -> str:
+    name = "cut fraction" if ev.q == 2 else "satisfied fraction"
+    lines = [
+        f"ensemble   = Max-{ev.q}-XORSAT{' (MaxCut)' if ev.q == 2 else ''}, {int(ev.degree)}-regular, large girth",
+        f"depth p    = {ev.p}",
+        f"{name} = {ev.value:.12f}",
+    ]
+    if ev.gradient is not None:
+        lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
+        lines.append("d/dbeta    = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["beta"]))
+    lines.append("invariants = " + ", ".join(f"{k} {v:.1e}" for k, v in ev.residuals.items()))
+    lines.append(f"work       = {ev.transforms} Walsh-Hadamard transforms of 2^{2 * ev.p + 1}, {ev.wall_time:.2f} s")
+    return "\n".join(lines)
+
+
+def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False) -> None:
+    """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
+    from .angles import read_angles
+    from .parsing import angle_pair
+
+    q, D = check_sparse(xorsat, degree, xi)
+    if angles is not None:
+        if gamma is not None or beta is not None:
+            raise InputError("give either --angles FILE or --gamma/--beta, not both")
+        aset = read_angles(angles)
+        g, b = aset.gamma, aset.beta
+    else:
+        g, b = angle_pair(gamma, beta)
+    ev = evaluate_sparse(q, D, g, b, gradient=gradient)
+    if as_json:
+        out = ev.to_json()
+        out["ensemble"] = ensemble_json(q, D)
+        typer.echo(json.dumps(out))
+    else:
+        typer.echo(_report(ev))
+
+
+def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e-7, maxiter=500, output=None, as_json=False, start=None) -> None:
+    """`leadline optimize --xorsat Q --degree D --depth P`: depths 1..P in turn (INTERP warm starts).
+
+    With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
+    """
+    from .angles import AngleSet, check_writable, read_angles, write_angles
+
+    q, D = check_sparse(xorsat, degree, xi)
+    if depth is None:
+        raise InputError("--depth is required (the depth p to optimize, >= 1)")
+    if depth < 1:
+        raise InputError(f"--depth must be >= 1, got {depth}")
+    if restarts is not None and restarts < 0:
+        raise InputError("--restarts must be >= 0")
+    if not gtol > 0:
+        raise InputError("--gtol must be positive")
+    if maxiter < 1:
+        raise InputError("--maxiter must be >= 1")
+    initial = read_angles(start) if start else None
+    if initial is not None and initial.p not in (depth - 1, depth):
+        raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
+    if output:
+        check_writable(output)
+    t0 = time.perf_counter()
+    first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
+    ladder = []
+    result = None
+    for p in range(first, depth + 1):
+        n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
+        result = optimize_sparse(q, D, p, previous=previous, restarts=n_restarts, seed=seed, gtol=gtol, maxiter=maxiter)
+        previous = (result.gamma, result.beta)
+        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
+    wall = time.perf_counter() - t0
+    if output:
+        write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))
+    if as_json:
+        out = result.to_json()
+        out["ensemble"] = ensemble_json(q, D)
+        out["ladder"] = ladder
+        out["wall_time_s"] = wall
+        typer.echo(json.dumps(out))
+        return
+    name = "cut fraction" if q == 2 else "satisfied fraction"
+    lines = [
+        f"ensemble       = Max-{q}-XORSAT{' (MaxCut)' if q == 2 else ''}, {D}-regular, large girth",
+        f"depth p        = {depth}",
+        f"{name} = {result.value:.10f}",
+        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
+        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
+        f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
+        f"evaluations    = {sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s",
+    ]
+    if len(ladder) > 1:
+        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
+    if output:
+        lines.append(f"angles written to {output}")
+    typer.echo("\n".join(lines))
