@@ -31,7 +31,18 @@ import numpy as np
 from .contour import link_derivative_table, link_table, sign_patterns
 from .plan import ChunkPlan
 
-__all__ = ["PassInput", "LowSide", "prepare_low_side", "chunk_partial", "pass_partials", "run_pass_inprocess"]
+__all__ = [
+    "PassInput",
+    "LowSide",
+    "prepare_low_side",
+    "chunk_partial",
+    "pass_partials",
+    "run_pass_inprocess",
+    "CHUNK_KERNELS",
+    "IMPLEMENTATIONS",
+    "DEFAULT_IMPLEMENTATION",
+    "resolve_implementation",
+]
 
 
 @dataclass(frozen=True, eq=False)
@@ -260,10 +271,8 @@ def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarra
     return out
 
 
-def chunk_partial(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide | None = None) -> np.ndarray:
-    """Contribution of one chunk to a pass: (2p+2, 2p+1) complex (see module docstring)."""
-    if low is None:
-        low = prepare_low_side(inp, plan)
+def _chunk_partial_rowwise(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
+    """Row-by-row kernel: the (c, 2^l) weight array built and reduced elementwise."""
     p, h, l = inp.p, plan.n_high, plan.n_low
     n = 2 * p + 1
     N = 2**l
@@ -274,7 +283,11 @@ def chunk_partial(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide | No
     AH = _high_rows(plan, chunk)  # (c, h)
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
-    e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH)
+    # exp(v_k s) = exp(|Re v_k|) * exp(v_k s - |Re v_k|): the two factors of each
+    # Kronecker pair then have modulus <= 1 and the row scale is carried in e_hh,
+    # so partial products cannot overflow where the full weight does not
+    shift = np.abs(v.real)
+    e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH) + shift.sum(axis=1)
     row = _high_chain(AH, links) * np.exp(e_hh)  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0
@@ -282,7 +295,7 @@ def chunk_partial(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide | No
     lb_minus = np.where(last > 0, links[h - 1, 1], links[h - 1, 0])  # aL_0 = -1
 
     W = np.empty((c, N), dtype=complex)
-    _linear_rows((np.exp(v), np.exp(-v)), W, "mul")
+    _linear_rows((np.exp(v - shift), np.exp(-v - shift)), W, "mul")
     W *= low.exp_ll
 
     out = np.zeros((n + 1, n), dtype=complex)
@@ -334,22 +347,79 @@ def chunk_partial(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide | No
     return out
 
 
-def pass_partials(inp: PassInput, plan: ChunkPlan, chunks) -> list[np.ndarray]:
+def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
+    from .blocked import chunk_partial_blocked
+
+    return chunk_partial_blocked(inp, plan, chunk, low)
+
+
+# --------------------------------------------------------------------------- implementations
+#: chunk kernels by name, each ``(inp, plan, chunk, low) -> (2p+2, 2p+1)``; all return the
+#: same partials to rounding (tests/test_kernel_impls.py checks every one against the
+#: dense reference and against each other).
+CHUNK_KERNELS = {
+    "rowwise": _chunk_partial_rowwise,  # elementwise numpy over a (rows, 2^l) array
+    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/blocked.py)
+}
+#: used when no implementation is named; the environment variable overrides it
+DEFAULT_IMPLEMENTATION = "blocked"
+#: environment variable naming the implementation (also seen by Dask workers it is set for)
+IMPLEMENTATION_ENV = "LEADLINE_KERNEL"
+
+
+def resolve_implementation(impl: str | None = None) -> str:
+    """Name of the chunk kernel to use: ``impl``, else $LEADLINE_KERNEL, else the default."""
+    import os
+
+    name = impl or os.environ.get(IMPLEMENTATION_ENV) or DEFAULT_IMPLEMENTATION
+    if name not in CHUNK_KERNELS:
+        raise ValueError(f"unknown kernel implementation {name!r}; choose one of {sorted(CHUNK_KERNELS)}")
+    return name
+
+
+def chunk_partial(
+    inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide | None = None, impl: str | None = None
+) -> np.ndarray:
+    """Contribution of one chunk to a pass: (2p+2, 2p+1) complex (see module docstring).
+
+    ``impl`` names the kernel (:data:`CHUNK_KERNELS`); see :func:`resolve_implementation`.
+    """
+    if low is None:
+        low = prepare_low_side(inp, plan)
+    return CHUNK_KERNELS[resolve_implementation(impl)](inp, plan, int(chunk), low)
+
+
+def pass_partials(inp: PassInput, plan: ChunkPlan, chunks, impl: str | None = None) -> list[np.ndarray]:
     """Partials of several chunks of one pass, sharing one low-side computation.
 
     This is the unit of work an executor ships to a worker.
     """
+    kernel = CHUNK_KERNELS[resolve_implementation(impl)]
     low = prepare_low_side(inp, plan)
-    return [chunk_partial(inp, plan, int(k), low) for k in chunks]
+    return [kernel(inp, plan, int(k), low) for k in chunks]
 
 
-def run_pass_inprocess(inp: PassInput, plan: ChunkPlan, progress=None) -> np.ndarray:
+def run_pass_inprocess(inp: PassInput, plan: ChunkPlan, progress=None, impl: str | None = None) -> np.ndarray:
     """Whole pass in this process; partials summed in chunk order."""
+    kernel = CHUNK_KERNELS[resolve_implementation(impl)]
     low = prepare_low_side(inp, plan)
     n = 2 * inp.p + 1
     acc = np.zeros((n + 1, n), dtype=complex)
     for k in range(plan.n_chunks):
-        acc += chunk_partial(inp, plan, k, low)
+        acc += kernel(inp, plan, k, low)
         if progress is not None:
             progress(1)
     return acc
+
+
+def _run_pass_with(name: str):
+    def run_pass(inp: PassInput, plan: ChunkPlan, progress=None) -> np.ndarray:
+        return run_pass_inprocess(inp, plan, progress, impl=name)
+
+    run_pass.__name__ = f"run_pass_{name}"
+    run_pass.__qualname__ = run_pass.__name__
+    return run_pass
+
+
+#: in-process ``run_pass(inp, plan)`` callables, one per implementation (for tests and benchmarks)
+IMPLEMENTATIONS = {name: _run_pass_with(name) for name in CHUNK_KERNELS}

@@ -37,9 +37,12 @@ from typing import Callable
 import numpy as np
 from scipy.optimize import minimize
 
-from .iteration import evaluate
+from .iteration import PassIntegrityError, evaluate
 from .mixture import Mixture
 from .plan import ChunkPlan, plan_chunks
+
+#: half-width of the gamma search box in units of 1/sqrt(xi'(1))
+GAMMA_BOX = 4.0
 
 __all__ = [
     "OptimizationResult",
@@ -214,6 +217,15 @@ def optimize_depth(
         g, b = _random_start(rng, mixture, p)
         candidates.append((g, b, "random"))
 
+    # search box: b over two periods (V is periodic in each b_t), |g| up to
+    # GAMMA_BOX / sqrt(xi'(1)), far beyond the optima (|g| sqrt(xi'(1)) < 1 in every
+    # case we computed) and short of where the path weights overflow
+    gmax = GAMMA_BOX / math.sqrt(float(mixture.dxi(1.0)))
+    P = beta_period(mixture)
+    lower = np.concatenate([np.full(p, -gmax), np.full(p, -P)])
+    upper = -lower
+    # |V_p| <= ground-state energy <= sqrt(2 xi(1) ln 2) (first-moment bound), so this is worse than any value
+    penalty = 10.0 * (1.0 + float(mixture.xi(1.0)))
     evaluations = 0
     history: list[dict] = []
     best = None
@@ -225,22 +237,33 @@ def optimize_depth(
 
         def fun(x):
             nonlocal evaluations
-            ev = evaluate(mixture, x[:p], x[p:], plan=plan, run_pass=run_pass, gradient=True)
             evaluations += 1
             record["evaluations"] += 1
+            try:
+                ev = evaluate(mixture, x[:p], x[p:], plan=plan, run_pass=run_pass, gradient=True)
+            except PassIntegrityError:
+                # weights overflow far from the useful region (huge gamma): report a
+                # value worse than any attainable one so the line search backs off
+                record["values"].append(None)
+                return penalty, np.zeros_like(x)
             grad = np.concatenate([ev.gradient["gamma"], ev.gradient["beta"]])
+            if not (np.isfinite(ev.value) and np.all(np.isfinite(grad))):
+                record["values"].append(None)
+                return penalty, np.zeros_like(x)
             last["x"], last["value"], last["grad"] = x.copy(), ev.value, grad
             record["values"].append(float(ev.value))
             if callback is not None:
                 callback({"start": index, "evaluation": evaluations, "value": float(ev.value)})
             return -ev.value, -grad
 
-        x0 = np.concatenate([g0, b0])
+        g0, b0 = canonical_angles(mixture, g0, b0)  # value-preserving, puts b inside the bounds
+        x0 = np.clip(np.concatenate([g0, b0]), lower, upper)
         res = minimize(
             fun,
             x0,
             jac=True,
             method="L-BFGS-B",
+            bounds=list(zip(lower, upper)),
             options={"maxiter": maxiter, "gtol": gtol, "ftol": 1e-15, "maxcor": 30},
         )
         value = -float(res.fun)
