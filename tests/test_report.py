@@ -1,0 +1,260 @@
+"""Tables and plots from a small real study store.
+
+The store is written by the storage layer with real optimizations (SK model,
+p = 1..3, and one mixture without a known ground state); the table must show
+exactly the stored values, every format must parse, the figures must open
+with the documented size, and the SK numbers must agree with the published
+ones.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+
+import numpy as np
+import pytest
+
+from leadline.jobs.cli import main
+from leadline.jobs.report import (
+    CSV_COLUMNS,
+    FIGURE_DPI,
+    FIGURE_SIZE_INCHES,
+    InMemoryStudy,
+    angle_plot_path,
+    build_report,
+    render_csv,
+    render_json,
+    render_markdown,
+    write_plots,
+)
+from leadline.kernels.mixture import parse_mixture
+from leadline.kernels.optimize import optimize_depth
+from leadline.storage import StudyStore, open_study
+
+# Farhi, Goldstone, Gutmann, Zhou, "The Quantum Approximate Optimization Algorithm and the
+# Sherrington-Kirkpatrick Model at Infinite Size", Quantum 6, 759 (2022), Table 1 (4 decimals).
+SK_PUBLISHED = {1: 0.3033, 2: 0.4075, 3: 0.4726, 4: 0.5157, 5: 0.5476, 6: 0.5721, 7: 0.5915, 8: 0.6073}
+# Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002): Parisi ground-state energy of SK, xi = x^2/2.
+SK_PARISI = 0.763166
+
+ENSEMBLES = [
+    {"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
+     "reference": {"ground_state": None, "source": None}},
+    {"label": "mix24", "kind": "dense", "xi": "2:0.5,4:0.25", "q": None, "degree": None,
+     "reference": {"ground_state": None, "source": None}},
+]
+PMAX = {"sk": 3, "mix24": 2}
+
+
+def _write_study(path):
+    spec = {"name": "report-test", "ensembles": ENSEMBLES, "depths": {"pmin": 1, "pmax": 3}}
+    with StudyStore.create(path, name="report-test", spec=spec, spec_toml="", ensembles=ENSEMBLES) as store:
+        for ens in ENSEMBLES:
+            mixture = parse_mixture(ens["xi"])
+            previous = None
+            for p in range(1, PMAX[ens["label"]] + 1):
+                res = optimize_depth(mixture, p, previous=previous, seed=0)
+                previous = (res.gamma, res.beta)
+                result = {
+                    "p": p,
+                    "value": float(res.value),
+                    "gamma": [float(x) for x in res.gamma],
+                    "beta": [float(x) for x in res.beta],
+                    "gradient_norm": float(res.gradient_norm),
+                    "evaluations": int(res.evaluations),
+                    "wall_time_s": float(res.wall_time),
+                    "converged": bool(res.converged),
+                }
+                from leadline.kernels.plan import plan_chunks
+
+                store.depth(ens["label"], p, plan_chunks(p, 2**26))
+                store.finish_depth(ens["label"], p, result, {"wall_s": float(res.wall_time)})
+
+
+@pytest.fixture(scope="module")
+def store_path(tmp_path_factory):
+    path = tmp_path_factory.mktemp("report") / "study.zarr"
+    _write_study(path)
+    return path
+
+
+@pytest.fixture(scope="module")
+def study(store_path):
+    return open_study(store_path)
+
+
+@pytest.fixture(scope="module")
+def report(study):
+    return build_report(study)
+
+
+def test_stored_sk_values_match_the_published_table(study):
+    depths = study.depths("sk")
+    assert [d["p"] for d in depths] == [1, 2, 3]
+    for d in depths:
+        # Farhi et al., Quantum 6, 759 (2022), Table 1, quoted to 4 decimals
+        assert d["value"] == pytest.approx(SK_PUBLISHED[d["p"]], abs=6e-5)
+    # p = 1 closed form 1/sqrt(4e) (Farhi et al. 2022, eq. for p = 1)
+    assert depths[0]["value"] == pytest.approx(1 / math.sqrt(4 * math.e), abs=1e-9)
+
+
+def test_report_rows_equal_the_stored_values(study, report):
+    for ens in report.ensembles:
+        stored = study.depths(ens.label)
+        assert [r.p for r in ens.rows] == [d["p"] for d in stored]
+        for row, d in zip(ens.rows, stored):
+            assert row.value == d["value"]
+            assert row.gradient_norm == d["gradient_norm"]
+            assert list(row.gamma) == d["gamma"] and list(row.beta) == d["beta"]
+        for a, b in zip(ens.rows, ens.rows[1:]):
+            assert b.gain == b.value - a.value
+            assert b.value >= a.value - 1e-12  # depth p can emulate depth p-1 (common practice)
+
+
+def test_sk_reference_is_the_parisi_value_and_bounds_every_depth(report):
+    sk = report.ensembles[0]
+    assert sk.references.ground_state == pytest.approx(SK_PARISI, abs=1e-9)
+    assert sk.references.ground_state_origin == "shipped table"
+    for row in sk.rows:
+        assert row.value < sk.references.ground_state
+        assert row.ratio_gs == row.value / sk.references.ground_state
+    mix = report.ensembles[1]
+    assert mix.references.ground_state is None
+    assert all(r.ratio_gs is None for r in mix.rows)
+    assert any("no reference ground-state energy" in n for n in mix.notes)
+
+
+def test_markdown_lists_values_ratios_fits_and_the_caveat(study, report):
+    text = render_markdown(report)
+    for d in study.depths("sk"):
+        assert f"{d['value']:.6f}" in text
+        assert f"{d['value'] / SK_PARISI:.4f}" in text
+    assert "V_p*/GS" in text and "Crisanti" in text
+    assert "estimates" in text and "not bounds" in text
+    assert "V_inf estimate" in text
+    assert "p for ratio 0.95" in text and "p for ratio 0.99" in text
+    mix_section = text.split("## mix24")[1]
+    assert "V_p*/GS" not in mix_section.split("Note:")[0]
+
+
+def test_csv_parses_and_holds_the_stored_values(study, report):
+    rows = list(csv.DictReader(io.StringIO(render_csv(report))))
+    assert rows and list(rows[0]) == CSV_COLUMNS
+    for label in study.ensembles():
+        depth_rows = [r for r in rows if r["ensemble"] == label and r["record"] == "depth"]
+        stored = study.depths(label)
+        assert [int(r["p"]) for r in depth_rows] == [d["p"] for d in stored]
+        for r, d in zip(depth_rows, stored):
+            assert float(r["value"]) == d["value"]  # full precision round trip
+            assert float(r["gradient_norm"]) == d["gradient_norm"]
+            assert float(r["inv_p"]) == 1.0 / d["p"]
+    sk_ref = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "reference"]
+    assert float(sk_ref[0]["value"]) == pytest.approx(SK_PARISI)
+    extrap = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "extrapolation"]
+    assert len(extrap) == 1 and float(extrap[0]["uncertainty"]) >= 0
+    assert any("not a bound" in r["note"] or "not bounds" in r["note"] for r in rows)
+    assert not [r for r in rows if r["ensemble"] == "mix24" and r["ratio_gs"]]
+
+
+def test_json_is_one_object_with_the_stored_values(study, report):
+    obj = json.loads(render_json(report))
+    assert obj["format"] == "leadline.table" and obj["version"] == 1
+    assert [e["label"] for e in obj["ensembles"]] == study.ensembles()
+    for ens in obj["ensembles"]:
+        stored = study.depths(ens["label"])
+        assert [d["value"] for d in ens["depths"]] == [d["value"] for d in stored]
+    assert "not bounds" in obj["note"]
+    sk = obj["ensembles"][0]
+    assert sk["extrapolation"]["fits"][0]["family"] == "polynomial in 1/p"
+    assert set(sk["power_law_gap"][0]["depth_for_ratio"]) == {"0.95", "0.99"}
+
+
+def test_plots_open_with_the_documented_size(report, tmp_path):
+    from matplotlib.image import imread
+
+    out = tmp_path / "study.png"
+    paths = write_plots(report, out)
+    assert paths == [out, angle_plot_path(out)] and paths[1].name == "study-angles.png"
+    main_img = imread(paths[0])
+    w, h = FIGURE_SIZE_INCHES
+    assert main_img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
+    angles = imread(paths[1])
+    assert angles.shape[:2] == (round(3.2 * FIGURE_DPI) * len(report.ensembles), 1000)
+    # not blank: the figure has drawn content of several colours
+    assert np.unique(main_img.reshape(-1, main_img.shape[-1]), axis=0).shape[0] > 20
+
+
+# ----------------------------------------------------------- command line
+def test_table_command_formats(store_path, tmp_path, capsys):
+    main(["table", str(store_path)])
+    out = capsys.readouterr().out
+    assert "## sk" in out and "not bounds" in out
+    target = tmp_path / "t.csv"
+    main(["table", str(store_path), "--format", "csv", "--output", str(target)])
+    rows = list(csv.DictReader(target.open()))
+    assert {r["ensemble"] for r in rows} >= {"sk", "mix24"}
+    main(["table", str(store_path), "--format", "json"])
+    assert json.loads(capsys.readouterr().out)["study"] == "report-test"
+
+
+def test_ground_state_override_wins(store_path, capsys):
+    main(["table", str(store_path), "--format", "json", "--ground-state", "mix24=0.9"])
+    obj = json.loads(capsys.readouterr().out)
+    mix = obj["ensembles"][1]
+    assert mix["references"]["ground_state"] == 0.9
+    assert mix["references"]["ground_state_origin"] == "command line"
+    assert mix["depths"][0]["ratio_gs"] == mix["depths"][0]["value"] / 0.9
+    sk = obj["ensembles"][0]
+    assert sk["references"]["ground_state_origin"] == "shipped table"
+
+
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (["table", "{store}", "--format", "xml"], "--format"),
+        (["table", "{store}", "--ground-state", "0.9"], "ambiguous"),
+        (["table", "{store}", "--ground-state", "nosuch=0.9"], "no ensemble"),
+        (["table", "{store}", "--ground-state", "sk=-1"], "positive"),
+        (["table", "{tmp}/missing.zarr"], "does not exist"),
+        (["table", "{tmp}", "--output", "{tmp}/out.txt"], "cannot read study store"),
+        (["table", "{store}", "--output", "{tmp}/nodir/out.txt"], "does not exist"),
+        (["plot", "{store}", "--output", "{tmp}/out.jpg"], ".png"),
+        (["plot", "{store}"], "--output"),
+    ],
+)
+def test_bad_input_exits_2_and_writes_nothing(store_path, tmp_path, capsys, args, message):
+    args = [a.format(store=store_path, tmp=tmp_path) for a in args]
+    before = sorted(p.name for p in tmp_path.iterdir())
+    with pytest.raises(SystemExit) as exc:
+        main(args)
+    assert exc.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and message in err[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+def test_plot_command(store_path, tmp_path, capsys):
+    out = tmp_path / "fig.png"
+    main(["plot", str(store_path), "--output", str(out)])
+    assert out.exists() and (tmp_path / "fig-angles.png").exists()
+
+
+# ------------------------------------------------- published numbers only
+def test_rendering_of_the_published_sk_series_held_in_memory():
+    """InMemoryStudy gives the same report path as a store: published values, no angles."""
+    from leadline.kernels.extrapolate import extrapolate
+
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in SK_PUBLISHED.items()]
+    study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    rep = build_report(study).ensembles[0]
+    assert [r.value for r in rep.rows] == list(SK_PUBLISHED.values())
+    # QAOA energies are averages of H, so they never exceed the ground state (V_p <= GS)
+    assert all(r.ratio_gs == r.value / SK_PARISI < 1 for r in rep.rows)
+    direct = extrapolate(list(SK_PUBLISHED), list(SK_PUBLISHED.values()))
+    assert rep.extrapolation.central == direct.central and len(rep.extrapolation.fits) == 12
+    assert [g.k for g in rep.gap_fits] == [3, 4, 5]
+    text = render_markdown(build_report(study))
+    assert "0.607300" in text and "0.7958" in text  # 0.6073 / 0.763166
