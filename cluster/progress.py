@@ -52,6 +52,7 @@ class ProgressDisplay:
         self._passes = 0
         self._best: float | None = None
         self._evaluations = 0
+        self._label: str | None = None
 
     # ------------------------------------------------------------------ setup
     def _ensure(self):
@@ -129,6 +130,8 @@ class ProgressDisplay:
         prog = self._ensure()
         if prog is None:
             return
+        if label != self._label:  # a new optimization (e.g. the next depth)
+            self._label, self._evaluations, self._best = label, 0, None
         self._evaluations += 1
         if value is not None and (self._best is None or value > self._best):
             self._best = float(value)

@@ -10,7 +10,7 @@ import typer
 from leadline.kernels.iteration import evaluate as evaluate_kernel
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
-from . import sparse_cli
+from . import compute, sparse_cli
 from .angles import read_angles
 from .errors import InputError
 from .parsing import angle_pair, mixture_arg
@@ -31,6 +31,12 @@ def evaluate_command(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object (value, p, xi, residuals, ...) instead of a report."),
     xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse_cli.XORSAT_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse_cli.DEGREE_HELP),
+    executor: str = compute.executor_option(),
+    scheduler: Optional[str] = compute.scheduler_option(),
+    workers: Optional[int] = compute.workers_option(),
+    threads_per_worker: int = compute.threads_option(),
+    cluster_config: Optional[str] = compute.cluster_config_option(),
+    quiet: bool = compute.quiet_option(),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -52,7 +58,11 @@ def evaluate_command(
     if not memory_mb > 0:
         raise InputError("--memory-mb must be positive")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
-    result = evaluate_kernel(mix, g, b, plan=plan, gradient=gradient, fixed_point_check=fixed_point)
+    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    with compute.open_compute(settings) as ex:
+        passes = g.size + (g.size + 1 if gradient else 0) + (1 if fixed_point else 0)
+        ex.progress.announce_job(f"evaluate p = {g.size}", passes, plan.n_chunks)
+        result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient, fixed_point_check=fixed_point)
     if as_json:
         typer.echo(json.dumps(result.to_json()))
         return

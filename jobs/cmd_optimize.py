@@ -11,7 +11,7 @@ import typer
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
-from . import sparse_cli
+from . import compute, sparse_cli
 from .angles import AngleSet, check_writable, read_angles, write_angles
 from .errors import InputError
 from .parsing import mixture_arg
@@ -37,6 +37,12 @@ def optimize_command(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
     xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse_cli.XORSAT_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse_cli.DEGREE_HELP),
+    executor: str = compute.executor_option(),
+    scheduler: Optional[str] = compute.scheduler_option(),
+    workers: Optional[int] = compute.workers_option(),
+    threads_per_worker: int = compute.threads_option(),
+    cluster_config: Optional[str] = compute.cluster_config_option(),
+    quiet: bool = compute.quiet_option(),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -66,6 +72,7 @@ def optimize_command(
         raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
     if output:
         check_writable(output)
+    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
 
     t0 = time.perf_counter()
     ladder = []
@@ -77,20 +84,23 @@ def optimize_command(
     else:
         first, previous, previous_value = 1, None, None
     result = None
-    for p in range(first, depth + 1):
-        result = optimize_depth(
-            mix,
-            p,
-            plan=plan_chunks(p, budget),
-            previous=previous,
-            previous_value=previous_value,
-            restarts=restarts,
-            seed=seed,
-            gtol=gtol,
-            maxiter=maxiter,
-        )
-        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
-        previous, previous_value = (result.gamma, result.beta), result.value
+    with compute.open_compute(settings) as ex:
+        for p in range(first, depth + 1):
+            result = optimize_depth(
+                mix,
+                p,
+                run_pass=ex.run_pass,
+                callback=lambda info, p=p: ex.progress.evaluation_done(info.get("value"), label=f"optimize p = {p}"),
+                plan=plan_chunks(p, budget),
+                previous=previous,
+                previous_value=previous_value,
+                restarts=restarts,
+                seed=seed,
+                gtol=gtol,
+                maxiter=maxiter,
+            )
+            ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
+            previous, previous_value = (result.gamma, result.beta), result.value
     total_evals = sum(r["evaluations"] for r in ladder)
     wall = time.perf_counter() - t0
 
