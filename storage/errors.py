@@ -1,0 +1,25 @@
+"""Errors of the checkpoint store; each message says what is wrong and what to do.
+
+The command line (jobs/) turns every :class:`StoreError` into one stderr line
+and exit code 2.
+"""
+
+from __future__ import annotations
+
+__all__ = ["StoreError", "StoreLockedError", "SchemaVersionError", "NotAStudyError"]
+
+
+class StoreError(RuntimeError):
+    """A store that cannot be used as asked."""
+
+
+class StoreLockedError(StoreError):
+    """Another live process holds the writer lock of the store."""
+
+
+class SchemaVersionError(StoreError):
+    """The store was written with a layout this version does not read."""
+
+
+class NotAStudyError(StoreError):
+    """The path is not a leadline study store (or was never fully created)."""

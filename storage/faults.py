@@ -1,0 +1,49 @@
+"""Fault injection for the kill tests: SIGKILL this process at a named point.
+
+``LEADLINE_CRASH_AT="chunk-written:7"`` makes the 7th arrival at the point
+named ``chunk-written`` kill the process with SIGKILL (no cleanup, no flush),
+exactly like ``kill -9`` at that instant.  Several points may be listed,
+comma-separated.  Unset (the normal case) the check is one dict lookup.
+
+Points (see storage/checkpoint.py and storage/study.py):
+  chunk-partial-written   a chunk's partial is on disk, its ledger row is not
+  chunk-recorded          a chunk's ledger row is on disk
+  pass-cached             a pass sum is in the pass cache (between passes)
+  depth-arrays-written    a depth's angle arrays are on disk, its done flag is not
+  depth-done              a depth's done flag is on disk
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+
+__all__ = ["crash_point", "ENV_VAR"]
+
+ENV_VAR = "LEADLINE_CRASH_AT"
+
+_targets: dict[str, int] | None = None
+_counts: dict[str, int] = {}
+
+
+def _parse() -> dict[str, int]:
+    out: dict[str, int] = {}
+    for item in os.environ.get(ENV_VAR, "").split(","):
+        item = item.strip()
+        if not item:
+            continue
+        name, _, count = item.partition(":")
+        out[name.strip()] = int(count or 1)
+    return out
+
+
+def crash_point(name: str) -> None:
+    """Kill this process with SIGKILL if ``name`` is armed and reached its count."""
+    global _targets
+    if _targets is None:
+        _targets = _parse()
+    if name not in _targets:
+        return
+    _counts[name] = _counts.get(name, 0) + 1
+    if _counts[name] == _targets[name]:
+        os.kill(os.getpid(), signal.SIGKILL)

@@ -1,0 +1,215 @@
+"""Reading a study store (no lock needed; safe while a writer runs).
+
+This is the API the tables and plots code against::
+
+    study = open_study("runs/sk.zarr")
+    study.name, study.spec
+    for label in study.ensembles():
+        study.ensemble(label)   # {"label", "kind", "xi", "q", "degree", "reference"}
+        study.depths(label)     # finished depths sorted by p
+
+Everything here can also be read with plain zarr (see /work/notes/store.md).
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+import zarr
+
+from . import layout as L
+from .lock import describe_holder, holder_alive, read_lock
+from .study import check_study, inflight_summary
+
+__all__ = ["open_study", "StudyReader"]
+
+#: the fields of one finished depth in :meth:`StudyReader.depths`
+DEPTH_FIELDS = ("p", "value", "gamma", "beta", "gradient_norm", "evaluations", "wall_time_s", "converged")
+
+
+def open_study(path: str | os.PathLike) -> "StudyReader":
+    """Open the study store at ``path`` for reading (format and schema version checked)."""
+    return StudyReader(path)
+
+
+class StudyReader:
+    """Read-only view of a study store.
+
+    Attributes
+    ----------
+    path : Path of the store
+    name : study name from the spec
+    spec : the validated spec (dict, the JSON form of the TOML)
+    spec_toml : the spec text as the user wrote it
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = Path(path)
+        attrs = check_study(self.path)
+        self.attrs = attrs
+        self.name: str = attrs["name"]
+        self.spec: dict = attrs["spec"]
+        self.spec_toml: str = attrs.get("spec_toml", "")
+        self.schema_version: int = attrs["schema_version"]
+        self.created_utc: str | None = attrs.get("created_utc")
+        self._root = zarr.open_group(str(self.path), mode="r", zarr_format=3)
+
+    # ---------------------------------------------------------------- ensembles
+    def ensembles(self) -> list[str]:
+        """Ensemble labels in spec order."""
+        return [e["label"] for e in self.spec["ensembles"]]
+
+    def ensemble(self, label: str) -> dict:
+        """{"label", "kind": "dense"|"sparse", "xi", "q", "degree", "reference": {...}}."""
+        for e in self.spec["ensembles"]:
+            if e["label"] == label:
+                try:
+                    stored = self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict()
+                except KeyError:
+                    stored = {}
+                return dict(stored) if stored.get("label") == label else _describe(e)
+        raise KeyError(f"no ensemble {label!r} in study {self.name!r} (have {', '.join(self.ensembles())})")
+
+    def _depth_groups(self, label: str) -> list[tuple[int, zarr.Group]]:
+        self.ensemble(label)  # KeyError for unknown labels
+        try:
+            ens = self._root[f"{L.ENSEMBLES}/{label}"]
+        except KeyError:
+            return []
+        out = []
+        for name in ens.group_keys():
+            p = L.parse_depth_name(name)
+            if p is not None:
+                out.append((p, ens[name]))
+        return sorted(out, key=lambda t: t[0])
+
+    def depths(self, label: str) -> list[dict]:
+        """Finished depths of ``label`` sorted by p: {"p", "value", "gamma", "beta",
+        "gradient_norm", "evaluations", "wall_time_s", "converged"} (angles as lists, radians)."""
+        out = []
+        for p, g in self._depth_groups(label):
+            attrs = g.attrs.asdict()
+            if attrs.get("state") != "done" or "result" not in attrs:
+                continue
+            r = attrs["result"]
+            out.append({k: r.get(k) for k in DEPTH_FIELDS} | {"p": p})
+        return out
+
+    def depth(self, label: str, p: int) -> dict | None:
+        """Everything stored about depth p: result (with optimizer history), timings, repairs, state."""
+        for q, g in self._depth_groups(label):
+            if q == p:
+                return g.attrs.asdict()
+        return None
+
+    # ---------------------------------------------------------------- progress
+    def lock_holder(self) -> dict | None:
+        """The writer lock holder with "alive": bool, or None when unlocked."""
+        holder = read_lock(self.path)
+        if holder is None:
+            return None
+        return dict(holder, alive=holder_alive(holder), description=describe_holder(holder))
+
+    def progress(self) -> dict:
+        """Per-ensemble progress and an estimated time left (what `leadline status` shows)."""
+        pmin, pmax = int(self.spec["depths"]["pmin"]), int(self.spec["depths"]["pmax"])
+        ensembles = []
+        finished_timings = []  # (p, evaluations, wall seconds)
+        pass_rates = []  # (seconds, path-passes)
+        for label in self.ensembles():
+            done, running = [], None
+            for p, g in self._depth_groups(label):
+                attrs = g.attrs.asdict()
+                if attrs.get("state") == "done" and "result" in attrs:
+                    r, t = attrs["result"], attrs.get("timings", {})
+                    done.append({"p": p, "value": r.get("value"), "evaluations": r.get("evaluations"),
+                                 "wall_time_s": r.get("wall_time_s")})
+                    finished_timings.append((p, r.get("evaluations") or 0, t.get("pass_compute_s", r.get("wall_time_s") or 0.0)))
+                    if t.get("pass_compute_s") and t.get("passes"):
+                        pass_rates.append((t["pass_compute_s"], t["passes"] * 2.0 ** (2 * p + 1)))
+                elif pmin <= p <= pmax:
+                    running = _running_info(p, g, attrs)
+                    if running["pass_compute_s"] > 0 and running["passes_cached"]:
+                        pass_rates.append((running["pass_compute_s"], running["passes_cached"] * 2.0 ** (2 * p + 1)))
+            done_ps = {d["p"] for d in done}
+            todo = [p for p in range(pmin, pmax + 1) if p not in done_ps]
+            ensembles.append({"label": label, "done": done, "running": running, "todo": todo})
+        eta = _estimate_seconds_left(ensembles, finished_timings, pass_rates, self.spec)
+        return {
+            "name": self.name,
+            "path": str(self.path),
+            "depths": [pmin, pmax],
+            "ensembles": ensembles,
+            "complete": all(not e["todo"] for e in ensembles),
+            "estimated_seconds_left": eta,
+            "lock": self.lock_holder(),
+        }
+
+
+def _describe(e: dict) -> dict:
+    ref = e.get("reference") or {}
+    return {
+        "label": e["label"],
+        "kind": e.get("kind", "dense"),
+        "xi": e.get("xi"),
+        "q": e.get("q"),
+        "degree": e.get("degree"),
+        "reference": {"ground_state": ref.get("ground_state"), "source": ref.get("source")},
+    }
+
+
+def _running_info(p: int, g: zarr.Group, attrs: dict) -> dict:
+    passes = 0
+    seconds = 0.0
+    try:
+        for _name, arr in g[L.PASSES].arrays():
+            a = arr.attrs.asdict()
+            passes += 1
+            seconds += float(a.get("wall_s", 0.0))
+    except KeyError:
+        pass
+    inflight = inflight_summary(g)
+    if inflight is not None:
+        seconds += inflight["wall_s"]
+    return {
+        "p": p,
+        "plan": attrs.get("plan"),
+        "started_utc": attrs.get("started_utc"),
+        "sessions": attrs.get("sessions"),
+        "passes_cached": passes,
+        "evaluations_done": passes // (2 * p + 1),
+        "pass_compute_s": seconds,
+        "inflight": inflight,
+        "repairs": len(attrs.get("repairs", [])),
+    }
+
+
+def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> float | None:
+    """Crude estimate: remaining passes times the measured seconds per path-pass.
+
+    Evaluations per depth are taken as the mean over finished depths (or
+    30 per start when none is finished); one evaluation with its gradient is
+    2p+1 passes of 2^(2p+1) paths each.
+    """
+    if not pass_rates:
+        return None if any(e["todo"] for e in ensembles) else 0.0
+    seconds = sum(s for s, _ in pass_rates)
+    work = sum(w for _, w in pass_rates)
+    if work <= 0:
+        return None
+    rate = seconds / work
+    if finished_timings:
+        evals = float(np.mean([e for _, e, _ in finished_timings]))
+    else:
+        restarts = spec.get("optimizer", {}).get("restarts")
+        evals = 30.0 * (1 + (restarts if restarts is not None else 2))
+    left = 0.0
+    for e in ensembles:
+        for p in e["todo"]:
+            passes = evals * (2 * p + 1)
+            if e["running"] is not None and e["running"]["p"] == p:
+                passes = max(passes - e["running"]["passes_cached"], (2 * p + 1))
+            left += passes * 2.0 ** (2 * p + 1) * rate
+    return left
