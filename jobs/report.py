@@ -802,10 +802,13 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         ax.plot(x, y, "o", color=color, label=f"{rep.label}: {rep.description}")
         ex = rep.extrapolation
         if ex is not None:
+            for other in ex.fits:  # the whole family, faint: their spread is the uncertainty
+                xs = np.linspace(0.0, 1.0 / other.depths[0], 100)
+                ax.plot(xs, other.predict(xs), "-", color=color, lw=0.6, alpha=0.25)
             fit = ex.representative
             xs = np.linspace(0.0, 1.0 / fit.depths[0], 200)
-            ax.plot(xs, fit.predict(xs), "-", color=color, lw=1.2, alpha=0.8,
-                    label=f"  fit: degree {fit.degree}, last {fit.k} depths")
+            ax.plot(xs, fit.predict(xs), "-", color=color, lw=1.5, alpha=0.9,
+                    label=f"  fits in 1/p (faint: all {len(ex.fits)}; bold: degree {fit.degree}, last {fit.k} depths)")
             ax.errorbar([0.0], [ex.central], yerr=[ex.spread], fmt="s", color=color, capsize=4, ms=5,
                         label=f"  V_inf ~ {ex.central:.4f} +- {ex.spread:.4f} (estimate)")
         refs = rep.references
@@ -817,12 +820,17 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
                        label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
     ax.set_xlabel("1/p  (inverse QAOA depth)")
     ax.set_ylabel("V_p*  (energy density per spin, dimensionless)")
-    ax.set_title(f"{report.name}: optimal QAOA energy vs 1/p (extrapolations are estimates)")
+    ax.set_title(f"{report.name}: optimal QAOA energy vs 1/p (extrapolations are estimates)", fontsize=10)
     ax.set_xlim(-0.03, 1.03)
     ax.grid(True, alpha=0.3)
+    top = ax.secondary_xaxis("top")
+    top_depths = [1, 2, 3, 4, 5, 7, 10, 20]
+    top.set_xticks([1.0 / d for d in top_depths], [str(d) for d in top_depths])
+    top.tick_params(labelsize=7)
+    top.set_xlabel("depth p", fontsize=8, labelpad=2)
     if report.ensembles:
-        ax.legend(fontsize=7, loc="lower left")
-    fig.subplots_adjust(left=0.1, right=0.97, top=0.93, bottom=0.1)
+        ax.legend(fontsize=6.5, loc="lower left", framealpha=0.85)
+    fig.subplots_adjust(left=0.1, right=0.97, top=0.86, bottom=0.1)
     fig.savefig(paths[0], dpi=FIGURE_DPI)
     plt.close(fig)
 
