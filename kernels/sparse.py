@@ -308,12 +308,22 @@ class _Transformer:
         return split_transform(x, self.n_high, run_map=self.run_map)
 
 
+def _ipow(x: np.ndarray, k: int) -> np.ndarray:
+    """x**k for an integer k >= 0 by repeated multiplication (numpy's complex power is slow)."""
+    if k == 0:
+        return np.ones_like(x)
+    out = x.copy()
+    for _ in range(k - 1):
+        out *= x
+    return out
+
+
 def _step(f, H_prev, Kh, q, D, T, N):
     """One recursion step; returns (L_m, V_m, dev) with H_m = exp((D-1) L_m)."""
     v = f * H_prev if H_prev is not None else f.copy()
     V = T(v)
     dev = abs(V[0] - 1.0)
-    W = V ** (q - 1) if q > 2 else V.copy()
+    W = _ipow(V, q - 1)
     W *= Kh
     T(W)
     W /= N  # = message - 1
@@ -398,7 +408,7 @@ def evaluate_sparse(
     dev_max = max(dev_max, checked(root_norm, p + 1))
     _flip_time0(u, p)
     U = T(u)
-    Y = U**q
+    Y = _ipow(U, q)
     corr = 1j * np.dot(Y, Sh) / N
     nu_c = 0.5 + 0.5 * corr
     residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
@@ -428,8 +438,10 @@ def _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, res
     n = n_sites(p)
     # nu = 1/2 + (i / 2N) sum_k U^q Sh
     coef = 0.5j / N
-    Shbar = coef * U**q
-    Ubar = coef * q * U ** (q - 1) * Sh
+    Ubar = _ipow(U, q - 1)
+    Shbar = (coef * Ubar) * U
+    Ubar *= coef * q
+    Ubar *= Sh
     ubar = T(Ubar)  # adjoint of W is W
     _flip_time0(ubar, p)  # u = f H a0
     fbar = ubar * H_p
@@ -464,7 +476,7 @@ def _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, res
         v = f * H_prev if H_prev is not None else f.copy()
         V = T(v)
         if q > 2:
-            Vq2 = V ** (q - 2)
+            Vq2 = _ipow(V, q - 2)
             Khbar += Xbar * (Vq2 * V)
             Vbar = Xbar * Kh
             Vbar *= (q - 1) * Vq2
