@@ -272,15 +272,31 @@ def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarra
 
 
 def _chunk_partial_rowwise(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
-    """Row-by-row kernel: the (c, 2^l) weight array built and reduced elementwise."""
+    """Row-by-row kernel: the (c, 2^l) weight array built and reduced elementwise.
+
+    Rows are taken in blocks of at most ``plan.ROWWISE_BLOCK_ENTRIES / 2^l`` so the
+    work arrays stay bounded whatever plan it is given; block partials are summed
+    in row order.
+    """
+    from .plan import ROWWISE_BLOCK_ENTRIES
+
+    AH = _high_rows(plan, chunk)  # (c, h)
+    step = max(1, ROWWISE_BLOCK_ENTRIES // 2**plan.n_low)
+    if AH.shape[0] <= step:
+        return _rowwise_block(inp, plan, AH, low)
+    out = _rowwise_block(inp, plan, AH[:step], low)
+    for start in range(step, AH.shape[0], step):
+        out += _rowwise_block(inp, plan, AH[start : start + step], low)
+    return out
+
+
+def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide) -> np.ndarray:
     p, h, l = inp.p, plan.n_high, plan.n_low
     n = 2 * p + 1
     N = 2**l
     half = N // 2
     M = np.asarray(inp.M)
     links, dlinks = low.links, low.dlinks
-
-    AH = _high_rows(plan, chunk)  # (c, h)
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
     # exp(v_k s) = exp(|Re v_k|) * exp(v_k s - |Re v_k|): the two factors of each

@@ -20,12 +20,33 @@ __all__ = ["ChunkPlan", "plan_chunks", "DEFAULT_MEMORY_BUDGET", "estimate_chunk_
 #: default memory budget for one chunk task, bytes (fits a laptop worker)
 DEFAULT_MEMORY_BUDGET = 256 * 2**20
 
-#: complex (c x 2^l) work arrays alive at once in the backward chunk kernel
+#: complex (c x 2^l) work arrays alive at once in the backward row kernel
 MATRICES_PER_CHUNK = 5
 #: complex 2^l vectors alive at once on the low side (context + temporaries)
 LOW_VECTORS = 10
+#: the row kernel works on at most this many complex entries (rows x 2^l) at a time
+ROWWISE_BLOCK_ENTRIES = 2**22
+#: blocked kernel: complex 2^l vectors alive at once (low side E, F, B, B s, s and the
+#: per-chunk column sums and their temporaries; measured with tracemalloc, see
+#: benchmarks/bench_kernel.py)
+BLOCKED_LOW_VECTORS = 12
+#: blocked kernel: complex (rows x (2^l1 + 2^l2)) arrays alive at once (Kronecker
+#: factors, products, marginals; backward pass)
+BLOCKED_ROW_ARRAYS = 14
+#: blocked kernel: rows per chunk the planner aims at.  Rows are the shared dimension
+#: of the column-sum product (R^T K2) and the row count of the two others; 256 keeps
+#: zgemm near its peak while a pass still splits into several tasks (benchmarks)
+BLOCKED_ROWS_TARGET = 256
 #: bytes of one complex128 number
 _C16 = 16
+
+
+def _default_impl(impl: str | None) -> str:
+    if impl is not None:
+        return impl
+    import os
+
+    return os.environ.get("LEADLINE_KERNEL") or "blocked"
 
 
 @dataclass(frozen=True)
@@ -71,8 +92,8 @@ class ChunkPlan:
         start = chunk * self.rows_per_chunk
         return start, start + self.rows_per_chunk
 
-    def chunk_bytes(self) -> int:
-        return estimate_chunk_bytes(self.n_low, self.rows_per_chunk)
+    def chunk_bytes(self, impl: str | None = None) -> int:
+        return estimate_chunk_bytes(self.n_low, self.rows_per_chunk, impl=impl)
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -82,9 +103,18 @@ class ChunkPlan:
         return cls(int(data["p"]), int(data["n_high"]), int(data["rows_per_chunk"]))
 
 
-def estimate_chunk_bytes(n_low: int, rows: int) -> int:
-    """Peak bytes of one chunk kernel call (backward pass, the larger one)."""
-    return _C16 * 2**n_low * (MATRICES_PER_CHUNK * rows + LOW_VECTORS)
+def estimate_chunk_bytes(n_low: int, rows: int, impl: str | None = None) -> int:
+    """Peak bytes of one chunk kernel call (backward pass, the larger one).
+
+    ``impl`` is the kernel implementation (default: $LEADLINE_KERNEL or "blocked").
+    """
+    N = 2**n_low
+    if _default_impl(impl) == "rowwise":
+        rows_at_once = min(rows, max(1, ROWWISE_BLOCK_ENTRIES // N))
+        return _C16 * N * (MATRICES_PER_CHUNK * rows_at_once + LOW_VECTORS)
+    l2 = n_low // 2
+    l1 = n_low - l2
+    return _C16 * (BLOCKED_LOW_VECTORS * N + BLOCKED_ROW_ARRAYS * rows * (2**l1 + 2**l2))
 
 
 def plan_chunks(
@@ -95,27 +125,51 @@ def plan_chunks(
     rows_per_chunk: int | None = None,
     min_rows: int = 16,
     max_low: int = 20,
+    impl: str | None = None,
 ) -> ChunkPlan:
     """Pick the high/low split and chunk size for depth ``p`` within ``memory_budget`` bytes.
 
-    The low side is made as large as the budget allows while a chunk keeps at
-    least ``min_rows`` rows (long vector operations amortize per-call costs;
-    several rows amortize the once-per-chunk low-side work), and never larger
-    than ``max_low`` sites.  Explicit ``n_high`` / ``rows_per_chunk`` override
-    the choice (tests use the smallest and largest plans).
+    Blocked kernel (default): the path index is cut in three nearly equal parts
+    (high rows, and the two halves of the low block), so the three matrix
+    products of a chunk are as square as possible; chunks of
+    ``BLOCKED_ROWS_TARGET`` rows.  Row kernel: the low side is made as large
+    as the budget allows while a chunk keeps at least ``min_rows`` rows.  In
+    both, never more than ``max_low`` low sites.  Explicit ``n_high`` /
+    ``rows_per_chunk`` override the choice (tests use the smallest and largest
+    plans).
     """
     n = 2 * p + 1
     if p < 1:
         raise ValueError("depth p must be >= 1")
+    kind = _default_impl(impl)
+
+    def fits(n_low: int, rows: int) -> bool:
+        return estimate_chunk_bytes(n_low, rows, impl=kind) <= memory_budget
+
+    if kind == "rowwise":
+        if n_high is None:
+            n_low = min(n - 1, max_low)
+            while n_low > 1 and not fits(n_low, min(min_rows, 2 ** (n - n_low))):
+                n_low -= 1
+            n_high = n - n_low
+        n_low = n - n_high
+        if rows_per_chunk is None:
+            rows = 2**n_high
+            while rows > 1 and not fits(n_low, rows):
+                rows //= 2
+            rows_per_chunk = rows
+        return ChunkPlan(p, n_high, rows_per_chunk)
+
     if n_high is None:
-        n_low = min(n - 1, max_low)
-        while n_low > 1 and estimate_chunk_bytes(n_low, min(min_rows, 2 ** (n - n_low))) > memory_budget:
-            n_low -= 1
-        n_high = n - n_low
+        h = max(1, n - max_low, -(-n // 3))
+        h = min(h, n - 1)
+        while h < n - 1 and not fits(n - h, min(BLOCKED_ROWS_TARGET, 2**h)):
+            h += 1
+        n_high = h
     n_low = n - n_high
     if rows_per_chunk is None:
-        rows = 2**n_high
-        while rows > 1 and estimate_chunk_bytes(n_low, rows) > memory_budget:
+        rows = min(2**n_high, BLOCKED_ROWS_TARGET)
+        while rows > 1 and not fits(n_low, rows):
             rows //= 2
         rows_per_chunk = rows
     return ChunkPlan(p, n_high, rows_per_chunk)
