@@ -227,18 +227,26 @@ def _flip_time0(vec: np.ndarray, p: int) -> None:
     vec.reshape(1 << p, 2, 1 << p)[:, 1, :] *= -1
 
 
-def complex_log1p(z: np.ndarray) -> np.ndarray:
+def complex_log1p(z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     """log(1 + z) for complex z, accurate in absolute terms for small |z|.
 
     Re = 1/2 log1p(2x + x^2 + y^2), Im = atan2(y, 1 + x).  (numpy's complex log1p
     forms |1 + z| first and loses ~1e-16 absolutely, which the power D-1 turns
-    into ~1e-16 * D.)
+    into ~1e-16 * D.)  ``out`` may be ``z`` itself (in place).
     """
-    x = z.real
-    y = z.imag
-    out = np.empty(z.shape, dtype=complex)
-    out.real = 0.5 * np.log1p(x * (2.0 + x) + y * y)
-    out.imag = np.arctan2(y, 1.0 + x)
+    x = z.real.copy()
+    y = z.imag.copy()
+    if out is None:
+        out = np.empty(z.shape, dtype=complex)
+    t = x + 2.0
+    t *= x
+    t += y * y
+    np.log1p(t, out=t)
+    t *= 0.5
+    out.real = t
+    x += 1.0
+    np.arctan2(y, x, out=t)
+    out.imag = t
     return out
 
 
@@ -318,6 +326,18 @@ def _ipow(x: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
+def _ipow_inplace(x: np.ndarray, k: int) -> None:
+    """x <- x**k in place (k >= 1)."""
+    if k == 1:
+        return
+    if k == 2:
+        x *= x
+        return
+    base = x.copy()
+    for _ in range(k - 1):
+        x *= base
+
+
 def _step(f, H_prev, Kh, q, D, T, N):
     """One recursion step; returns (L_m, V_m, dev) with H_m = exp((D-1) L_m)."""
     v = f * H_prev if H_prev is not None else f.copy()
@@ -368,8 +388,6 @@ def evaluate_sparse(
     phase = phase_vector(g)
     Kh = -2.0 * np.sin(phase / 4.0) ** 2  # K - 1, exact form
     T(Kh)
-    Sh = np.sin(phase / 2.0)
-    T(Sh)
     if not gradient:
         del phase
 
@@ -394,29 +412,60 @@ def evaluate_sparse(
     dev_max = 0.0
     L = None
     H = None
-    for m in range(1, p + 1):
-        L, V, dev = _step(f, H, Kh, q, D, T, N)
-        del V
-        dev_max = max(dev_max, checked(dev, m))
-        H = np.exp((D - 1.0) * L)
-        if stride is not None and (m % stride == 0 or m == p):
-            stored[m] = L
+    if gradient:
+        for m in range(1, p + 1):
+            L, V, dev = _step(f, H, Kh, q, D, T, N)
+            del V
+            dev_max = max(dev_max, checked(dev, m))
+            H = np.exp((D - 1.0) * L)
+            if m % stride == 0 or m == p:
+                stored[m] = L
+    else:
+        # value only: one working vector, every operation in place
+        H = f.copy()
+        for m in range(1, p + 1):
+            if m > 1:
+                H *= f  # v = f H_{m-1}
+            T(H)  # V_m
+            dev_max = max(dev_max, checked(abs(H[0] - 1.0), m))
+            _ipow_inplace(H, q - 1)
+            H *= Kh
+            T(H)
+            H /= N  # message - 1
+            complex_log1p(H, out=H)
+            H *= D - 1.0
+            np.exp(H, out=H)  # H_m
 
     # root constraint
-    u = f * H
+    H_p = H if gradient else None
+    if gradient:
+        u = f * H
+    else:
+        H *= f
+        u = H
+        del f
     root_norm = abs(u.sum() - 1.0)
     dev_max = max(dev_max, checked(root_norm, p + 1))
     _flip_time0(u, p)
     U = T(u)
-    Y = _ipow(U, q)
+    del H
+    if not gradient:
+        del Kh
+    Sh = np.sin(phase_vector(g) / 2.0)
+    T(Sh)
+    if gradient:
+        Y = _ipow(U, q)
+    else:
+        _ipow_inplace(U, q)
+        Y = U
     corr = 1j * np.dot(Y, Sh) / N
+    del Y
     nu_c = 0.5 + 0.5 * corr
     residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
 
     grad = None
     if gradient:
-        grad = _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H, U, stored, stride, T, residuals)
-        del U, Y
+        grad = _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, residuals)
 
     return SparseEvaluation(
         value=float(nu_c.real),

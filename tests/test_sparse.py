@@ -281,6 +281,7 @@ def test_gradient_matches_finite_differences(q, D):
     gamma = rng.uniform(0.2, 1.0, p) * (2 * math.sqrt(q) / math.sqrt(D) if D > 100 else 1)
     beta = rng.uniform(0.1, 0.7, p)
     val, gg, gb = value_and_grad(q, D, gamma, beta)
+    assert abs(val - evaluate_sparse(q, D, gamma, beta).value) < 1e-14  # in-place value-only path
     hg = 1e-6 * (gamma.mean())
     hb = 1e-6
     for i in range(p):
