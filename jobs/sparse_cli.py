@@ -124,12 +124,13 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
         check_writable(output)
     t0 = time.perf_counter()
     first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
+    previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
     ladder = []
     result = None
     for p in range(first, depth + 1):
         n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
-        result = optimize_sparse(q, D, p, previous=previous, restarts=n_restarts, seed=seed, gtol=gtol, maxiter=maxiter)
-        previous = (result.gamma, result.beta)
+        result = optimize_sparse(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts, seed=seed, gtol=gtol, maxiter=maxiter)
+        previous, previous_value = (result.gamma, result.beta), result.value
         ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
     wall = time.perf_counter() - t0
     if output:

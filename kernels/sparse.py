@@ -615,6 +615,7 @@ class SparseOptimization:
             "beta": [float(x) for x in self.beta],
             "gradient_norm": float(self.gradient_norm),
             "evaluations": int(self.evaluations),
+            "restarts": len(self.history),
             "converged": bool(self.converged),
             "message": str(self.message),
             "wall_time_s": float(self.wall_time),
@@ -628,6 +629,7 @@ def optimize_sparse(
     p: int,
     *,
     previous=None,
+    previous_value: float | None = None,
     starts=None,
     restarts: int = 3,
     seed: int = 0,
@@ -642,7 +644,8 @@ def optimize_sparse(
     ``previous`` optimum at depth p-1 warm-started by INTERP
     (:func:`leadline.kernels.optimize.interpolate_angles`), a linear ramp with gamma
     scaled by 1/sqrt(D) (common practice for QAOA on regular graphs), and
-    ``restarts`` seeded random points.  The result is in the canonical form of
+    ``restarts`` seeded random points.  With ``previous_value`` (nu*_{p-1}) the padded
+    start is added as a safety net, so nu*_p >= nu*_{p-1}.  The result is in the canonical form of
     :func:`leadline.kernels.optimize.canonical_angles` for xi = x^q (same symmetries).
     ``gradient_norm`` is the max-norm of the gradient at the optimum.
     """
@@ -671,7 +674,15 @@ def optimize_sparse(
     history = []
     best = None
     evaluations = 0
-    for i, (g0, b0) in enumerate(candidates):
+    if previous is not None and previous_value is not None and len(previous[0]) == p - 1:
+        # safety net (as in optimize_depth): the padded start (g_p = b_p = 0) reproduces
+        # nu*_{p-1}; it is tried last and only used if every other start ends below it
+        padded = (np.append(np.asarray(previous[0], float), 0.0), np.append(np.asarray(previous[1], float), 0.0))
+    else:
+        padded = None
+    for i, (g0, b0) in enumerate(candidates + ([padded] if padded is not None else [])):
+        if padded is not None and i == len(candidates) and best is not None and -best[0].fun >= previous_value - 1e-12:
+            break
         values = []
 
         def fun(x):

@@ -245,7 +245,7 @@ def test_maxcut_p1_closed_form(D):
 def test_maxcut_3regular_optimized_ladder():
     prev, values = None, []
     for p in (1, 2, 3, 4):
-        r = optimize_sparse(2, 3, p, previous=prev, restarts=2 if p <= 2 else 0, seed=0)
+        r = optimize_sparse(2, 3, p, previous=prev, previous_value=values[-1] if values else None, restarts=2 if p <= 2 else 0, seed=0)
         prev = (r.gamma, r.beta)
         values.append(r.value)
         assert r.converged
