@@ -33,6 +33,7 @@ COMMAND_MODULES = [
     "leadline.jobs.cmd_optimize",
     "leadline.jobs.cmd_table",
     "leadline.jobs.cmd_plot",
+    "leadline.jobs.cmd_sweep",
 ]
 
 

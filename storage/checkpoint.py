@@ -18,22 +18,21 @@ uninterrupted one, and never recomputes a finished chunk):
 
 Executors
 ---------
-A *chunk runner* computes a list of chunks of one pass and reports each as it
-finishes::
+A *chunk runner* computes the chunks of one pass that are not yet finished
+and reports each as it finishes::
 
-    runner.run_chunks(inp, plan, chunks, on_chunk)   # on_chunk(k, partial) once per k
+    runner.run_chunks(inp, plan, done, on_chunk)   # done: {k: partial}; on_chunk(k, partial) once per other k
 
 :class:`InProcessChunks` is the in-process one.  :func:`as_chunk_runner`
-adapts other executors: anything with ``run_chunks``; anything whose
-``run_pass`` accepts ``chunks=`` and ``on_chunk=`` keywords; or a plain
-``run_pass(inp, plan)`` callable (then passes are cached whole, without
-per-chunk checkpoints).
+adapts the executors of ``leadline.cluster`` (whose ``run_pass(inp, plan,
+done=..., on_chunk=...)`` is exactly this hook), anything with
+``run_chunks``, or a plain ``run_pass(inp, plan)`` callable (then passes are
+cached whole, without per-chunk checkpoints).
 """
 
 from __future__ import annotations
 
 import inspect
-import os
 import time
 from dataclasses import dataclass
 from typing import Callable
@@ -47,11 +46,7 @@ from leadline.kernels.plan import ChunkPlan
 from . import layout as L
 from .study import DepthStore
 
-__all__ = ["CheckpointedPasses", "InProcessChunks", "as_chunk_runner", "CheckpointStats", "AUDIT_ENV"]
-
-#: if set, every chunk recorded as finished appends "<pass key> <chunk>" to this file
-#: (an independent witness for the kill tests that no finished chunk is computed twice)
-AUDIT_ENV = "LEADLINE_CHUNK_AUDIT"
+__all__ = ["CheckpointedPasses", "InProcessChunks", "as_chunk_runner", "CheckpointStats"]
 
 OnChunk = Callable[[int, np.ndarray], None]
 
@@ -59,26 +54,26 @@ OnChunk = Callable[[int, np.ndarray], None]
 class InProcessChunks:
     """Chunk runner in this process; the low side is prepared once per call."""
 
-    def run_chunks(self, inp: PassInput, plan: ChunkPlan, chunks, on_chunk: OnChunk) -> None:
-        chunks = list(chunks)
-        if not chunks:
+    def run_chunks(self, inp: PassInput, plan: ChunkPlan, done, on_chunk: OnChunk) -> None:
+        todo = [k for k in range(plan.n_chunks) if k not in done]
+        if not todo:
             return
         low = prepare_low_side(inp, plan)
-        for k in chunks:
-            on_chunk(int(k), chunk_partial(inp, plan, int(k), low))
+        for k in todo:
+            on_chunk(k, chunk_partial(inp, plan, k, low))
 
     def close(self) -> None:
         pass
 
 
-class _RunPassHooks:
-    """Adapter for an executor whose run_pass takes ``chunks=`` and ``on_chunk=``."""
+class _DoneHook:
+    """Adapter for an executor whose run_pass takes ``done=`` and ``on_chunk=`` (leadline.cluster)."""
 
     def __init__(self, executor):
         self.executor = executor
 
-    def run_chunks(self, inp, plan, chunks, on_chunk):
-        self.executor.run_pass(inp, plan, chunks=list(chunks), on_chunk=on_chunk)
+    def run_chunks(self, inp, plan, done, on_chunk):
+        self.executor.run_pass(inp, plan, done=dict(done), on_chunk=on_chunk)
 
 
 class _WholePass:
@@ -101,8 +96,8 @@ def as_chunk_runner(executor):
         params = inspect.signature(run_pass).parameters
     except (TypeError, ValueError):
         params = {}
-    if "on_chunk" in params and "chunks" in params:
-        return _RunPassHooks(executor)
+    if "on_chunk" in params and "done" in params:
+        return _DoneHook(executor)
     if callable(run_pass):
         return _WholePass(run_pass)
     raise TypeError(f"cannot use {executor!r} as a pass executor")
@@ -139,7 +134,6 @@ class CheckpointedPasses:
         self.runner = as_chunk_runner(executor)
         self.progress = progress
         self.stats = CheckpointStats()
-        self._audit = os.environ.get(AUDIT_ENV)
 
     def __call__(self, inp: PassInput, plan: ChunkPlan) -> np.ndarray:
         return self.run_pass(inp, plan)
@@ -187,12 +181,11 @@ class CheckpointedPasses:
                 clock[0] = now
                 partials[k] = part
                 self.stats.chunks_computed += 1
-                self._witness(key, k)
                 if self.progress is not None:
                     self.progress({"event": "chunk", "key": key, "done": len(partials), "total": n_chunks})
 
             if missing:
-                self.runner.run_chunks(inp, plan, missing, on_chunk)
+                self.runner.run_chunks(inp, plan, dict(partials), on_chunk)
             lost = [k for k in range(n_chunks) if k not in partials]
             if lost:
                 raise PassIntegrityError(f"pass {key}: chunks {lost[:5]} were never reported by the executor")
@@ -213,7 +206,7 @@ class CheckpointedPasses:
             total = np.asarray(self.runner.run_pass(inp, plan))
         else:
             partials: dict[int, np.ndarray] = {}
-            self.runner.run_chunks(inp, plan, range(plan.n_chunks), lambda k, part: partials.__setitem__(k, part))
+            self.runner.run_chunks(inp, plan, {}, lambda k, part: partials.__setitem__(k, part))
             total = _sum_in_chunk_order(partials, plan.n_chunks, inp.p)
         wall = time.perf_counter() - t0
         problem = _check_total(total, inp)
@@ -222,18 +215,8 @@ class CheckpointedPasses:
         self.stats.chunks_computed += plan.n_chunks
         meta = self._meta(inp)
         meta.update(n_chunks=plan.n_chunks, completions=[1] * plan.n_chunks, wall_s=wall)
-        self.depth.store_pass(key, total, meta)
-        for k in range(plan.n_chunks):
-            self._witness(key, k)
+        self.depth.store_pass(key, total, meta, chunks_finished_here=range(plan.n_chunks))
         return total
-
-    def _witness(self, key: str, k: int) -> None:
-        if self._audit:
-            fd = os.open(self._audit, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
-            try:
-                os.write(fd, f"{key} {k}\n".encode())
-            finally:
-                os.close(fd)
 
 
 def _sum_in_chunk_order(partials: dict[int, np.ndarray], n_chunks: int, p: int) -> np.ndarray:

@@ -5,7 +5,11 @@ named ``chunk-written`` kill the process with SIGKILL (no cleanup, no flush),
 exactly like ``kill -9`` at that instant.  Several points may be listed,
 comma-separated.  Unset (the normal case) the check is one dict lookup.
 
-Points (see storage/checkpoint.py and storage/study.py):
+``LEADLINE_CHUNK_AUDIT=/path/file`` appends one line per chunk recorded as
+finished (see :func:`witness`), written right after the record and before
+the crash point that follows it.
+
+Points (see storage/study.py):
   chunk-partial-written   a chunk's partial is on disk, its ledger row is not
   chunk-recorded          a chunk's ledger row is on disk
   pass-cached             a pass sum is in the pass cache (between passes)
@@ -18,9 +22,12 @@ from __future__ import annotations
 import os
 import signal
 
-__all__ = ["crash_point", "ENV_VAR"]
+__all__ = ["crash_point", "witness", "ENV_VAR", "AUDIT_ENV"]
 
 ENV_VAR = "LEADLINE_CRASH_AT"
+#: if set, every chunk recorded as finished appends "<pass key> <chunk>" to this file
+#: (an independent witness for the kill tests that no finished chunk is computed twice)
+AUDIT_ENV = "LEADLINE_CHUNK_AUDIT"
 
 _targets: dict[str, int] | None = None
 _counts: dict[str, int] = {}
@@ -47,3 +54,18 @@ def crash_point(name: str) -> None:
     _counts[name] = _counts.get(name, 0) + 1
     if _counts[name] == _targets[name]:
         os.kill(os.getpid(), signal.SIGKILL)
+
+
+def witness(key: str, chunks) -> None:
+    """Append "<key> <k>" lines to $LEADLINE_CHUNK_AUDIT (one O_APPEND write; no-op if unset)."""
+    path = os.environ.get(AUDIT_ENV)
+    if not path:
+        return
+    text = "".join(f"{key} {int(k)}\n" for k in chunks)
+    if not text:
+        return
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, text.encode())
+    finally:
+        os.close(fd)

@@ -26,7 +26,7 @@ from leadline.kernels.plan import ChunkPlan
 
 from . import layout as L
 from .errors import NotAStudyError, SchemaVersionError, StoreError
-from .faults import crash_point
+from .faults import crash_point, witness
 from .lock import StoreLock
 
 __all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "utc_now", "inflight_summary"]
@@ -36,6 +36,13 @@ _ZARR_TEMP = re.compile(r"\.[0-9a-f]{32}\.partial$")
 
 #: chunk files named c.<k>.0.0 side by side (no folder per chunk: cheaper to create and delete)
 _FLAT_KEYS = {"name": "default", "separator": "."}
+
+
+def _run_async(coro) -> None:
+    """Run a coroutine of zarr's async API on zarr's own event loop (as its sync API does)."""
+    from zarr.core.sync import sync
+
+    sync(coro)
 
 
 def utc_now() -> str:
@@ -96,11 +103,13 @@ class StudyStore:
         ensembles: list[dict],
         writer: str = "leadline",
         command: str = "sweep",
+        extra: dict | None = None,
     ) -> "StudyStore":
         """Create a new store at ``path`` (which must not exist) and lock it.
 
         ``spec`` is the validated spec as JSON-able dict, ``spec_toml`` its
-        text, ``ensembles`` one description dict per ensemble (spec order).
+        text, ``ensembles`` one description dict per ensemble (spec order),
+        ``extra`` more root attributes (e.g. the chunk kernel in use).
         """
         path = Path(path)
         try:
@@ -117,6 +126,7 @@ class StudyStore:
                 "spec_toml": spec_toml,
                 "created_utc": utc_now(),
                 "writer": writer,
+                **(extra or {}),
             }
             root = zarr.create_group(store=str(path), zarr_format=3, attributes=attrs)
             store = cls(path, root, lock)
@@ -193,20 +203,19 @@ class StudyStore:
         return attrs["result"]
 
     def depth(self, label: str, p: int, plan: ChunkPlan) -> "DepthStore":
-        """The working record of depth p (created on first use; sessions counted)."""
+        """The working record of depth p (created on first use; sessions counted).
+
+        A depth already started keeps the chunk plan it was started with (its
+        pass keys and ledger depend on it); ``plan`` is used for a new depth.
+        """
         ens = self._ensemble_group(label)
         name = L.depth_name(p)
         group = None
         if name in ens:
             try:
                 group = ens[name]
-                attrs = group.attrs.asdict()
-                if attrs.get("plan") != plan.to_json():
-                    raise StoreError(
-                        f"depth {p} of {label!r} was started with chunk plan {attrs.get('plan')}, "
-                        f"now {plan.to_json()}: the store and spec disagree"
-                    )
-            except KeyError:
+                plan = ChunkPlan.from_json(group.attrs["plan"])
+            except (KeyError, TypeError, ValueError):
                 group = None
         if group is None:
             group = ens.create_group(
@@ -245,6 +254,14 @@ class DepthStore:
         self.plan = plan
         self.directory = Path(directory)
         self.repairs: list[dict] = []
+        self._seen: dict[str, float] = {}  # pass key -> compute seconds, passes used in this session
+
+    def pass_seconds(self) -> float:
+        """Compute seconds of the distinct passes used so far (including earlier sessions' work)."""
+        return float(sum(self._seen.values()))
+
+    def passes_used(self) -> int:
+        return len(self._seen)
 
     def _remove(self, relative: str) -> None:
         """Delete a subtree of this depth's folder (plain rmtree: zarr keeps no index of it)."""
@@ -285,6 +302,7 @@ class DepthStore:
         except Exception as exc:  # noqa: BLE001 - unreadable chunk or metadata
             problem = f"unreadable ({type(exc).__name__}: {exc})"
         if problem is None:
+            self._seen[key] = float(attrs.get("wall_s", 0.0))
             return total
         self.note_repair("pass cache entry dropped", key, detail=problem)
         self._remove(f"{L.PASSES}/{key}")
@@ -308,15 +326,21 @@ class DepthStore:
                 return f"sum of path weights deviates from 1 by {dev:.3e}"
         return None
 
-    def store_pass(self, key: str, total: np.ndarray, meta: dict) -> None:
-        """Add a verified pass sum to the cache (metadata and crc32 written, then data)."""
+    def store_pass(self, key: str, total: np.ndarray, meta: dict, chunks_finished_here=()) -> None:
+        """Add a verified pass sum to the cache (metadata and crc32 written, then data).
+
+        ``chunks_finished_here``: chunks that had no ledger row of their own
+        (a pass computed whole); they count as finished with this write.
+        """
         attrs = dict(meta)
         attrs["plan"] = self.plan.to_json()
         attrs["crc32"] = L.checksum(total)
         attrs["stored_utc"] = utc_now()
+        self._seen[key] = float(attrs.get("wall_s", 0.0))
         self._passes().create_array(
             key, data=np.asarray(total, dtype=np.complex128), attributes=attrs, overwrite=True, chunk_key_encoding=_FLAT_KEYS
         )
+        witness(key, chunks_finished_here)
         crash_point("pass-cached")
 
     def cached_pass_count(self) -> int:
@@ -484,14 +508,24 @@ class InflightPass:
         self.depth.note_repair("chunk recomputed", self.key, k, why)
 
     def record(self, k: int, partial: np.ndarray, wall_us: int) -> None:
-        """Persist one finished chunk: its partial first, then its ledger row."""
-        self.state.partials[k] = partial
-        crash_point("chunk-partial-written")
+        """Persist one finished chunk: its partial first, then its ledger row.
+
+        Both writes run in one trip to zarr's event loop (one thread hand-off
+        instead of two), strictly one after the other.
+        """
         same_pass = abs(int(self.rows[k, L.SERIAL])) == self.serial
         completions = int(self.rows[k, L.COMPLETIONS]) + 1 if same_pass else 1
         row = np.array([self.serial, L.checksum(partial), completions, int(wall_us)], dtype=np.int64)
-        self.state.ledger[k] = row
+        partials, ledger = self.state.partials, self.state.ledger
+
+        async def write_in_order() -> None:
+            await partials.async_array.setitem(k, partial)
+            crash_point("chunk-partial-written")
+            await ledger.async_array.setitem(k, row)
+
+        _run_async(write_in_order())
         self.rows[k] = row
+        witness(self.key, [k])
         crash_point("chunk-recorded")
 
     def completions(self) -> list[int]:

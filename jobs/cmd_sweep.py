@@ -1,0 +1,242 @@
+"""`leadline sweep SPEC.toml`, `leadline resume STORE`, `leadline status STORE`.
+
+Thin: validate (spec, store path, compute settings) before anything is
+written, then call jobs/sweep.py; store and lock problems become one
+stderr line with exit code 2.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from leadline import __version__ as _version
+from leadline.kernels.chunks import IMPLEMENTATION_ENV, resolve_implementation
+from leadline.storage import StoreError, StudyStore, check_study, open_study
+
+from . import compute
+from .errors import InputError
+from .spec import check_new_store, load_spec, spec_from_json
+from .sweep import depth_line, run_study
+
+
+def _store_errors(func):
+    """Turn store problems (locked, wrong schema, not a store) into one-line input errors."""
+    import functools
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except StoreError as exc:
+            raise InputError(str(exc)) from None
+
+    return wrapper
+
+
+def _run(store: StudyStore, spec, settings, as_json: bool, quiet: bool) -> None:
+    def report(line: dict) -> None:
+        if not as_json:
+            typer.echo(depth_line(line))
+
+    with compute.open_compute(settings) as executor:
+        lines = run_study(store, spec, executor, report=report)
+    if as_json:
+        typer.echo(json.dumps({"store": str(store.path), "finished_now": lines, "progress": open_study(store.path).progress()}))
+    elif not quiet:
+        typer.echo(status_text(open_study(store.path).progress()))
+
+
+@_store_errors
+def sweep_command(
+    spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); see the README for the layout."),
+    quiet: bool = compute.quiet_option(),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
+) -> None:
+    """Run a depth sweep: for each ensemble, optimize p = pmin..pmax with warm starts, checkpointing into a Zarr store.
+
+    Example:
+
+        leadline sweep study.toml          # creates the store named in [study] store
+
+    If it stops (killed, crashed, out of time), `leadline resume STORE` continues exactly where it was.
+    """
+    spec = load_spec(spec_path)
+    check_new_store(spec.store)
+    settings = spec.compute_settings(quiet=quiet or as_json)
+    store = StudyStore.create(
+        spec.store,
+        name=spec.name,
+        spec=spec.to_json(),
+        spec_toml=spec.source_text,
+        ensembles=[e.description() for e in spec.ensembles],
+        writer=f"leadline {_version}",
+        command="sweep",
+        extra={"kernel": resolve_implementation()},
+    )
+    with store:
+        _run(store, spec, settings, as_json, quiet)
+
+
+@_store_errors
+def resume_command(
+    store_path: Path = typer.Argument(..., metavar="STORE", help="Study store written by `leadline sweep`."),
+    executor: Optional[str] = typer.Option(None, "--executor", help="Override [compute] executor: auto, inprocess, local, scheduler, batch."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Override [compute] scheduler (address of a running Dask scheduler)."),
+    workers: Optional[int] = typer.Option(None, "--workers", help="Override [compute] workers."),
+    cluster_config: Optional[Path] = typer.Option(None, "--cluster-config", help="Override [compute] cluster-config (batch-cluster TOML)."),
+    quiet: bool = compute.quiet_option(),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
+) -> None:
+    """Continue a stopped sweep exactly where it was; finished depths, passes and chunks are not recomputed.
+
+    Example:
+
+        leadline resume runs/study.zarr
+
+    The chunk plan (memory-mb) stays the one of the spec; where passes run may be changed.
+    """
+    attrs = check_study(store_path)
+    spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
+    _pin_kernel(attrs.get("kernel"))
+    if workers is not None and workers < 1:
+        raise InputError(f"--workers must be >= 1, got {workers}")
+    if cluster_config is not None and not cluster_config.is_file():
+        raise InputError(f"--cluster-config: file {cluster_config} does not exist")
+    settings = _settings_with(spec, executor, scheduler, workers, cluster_config, quiet or as_json)
+    store = StudyStore.open(store_path, command="resume")
+    with store:
+        _run(store, spec, settings, as_json, quiet)
+
+
+def _pin_kernel(recorded: str | None) -> None:
+    """Resume with the chunk kernel the study started with, so replayed numbers match to the bit."""
+    if not recorded:
+        return
+    current = os.environ.get(IMPLEMENTATION_ENV)
+    if current is None:
+        os.environ[IMPLEMENTATION_ENV] = recorded  # also inherited by local Dask workers
+    elif current != recorded:
+        typer.echo(
+            f"leadline: warning: {IMPLEMENTATION_ENV}={current} but the study started with the {recorded!r} "
+            "kernel; new passes may differ from the uninterrupted run in the last digits",
+            err=True,
+        )
+
+
+def _settings_with(spec, executor, scheduler, workers, cluster_config, quiet):
+    """The spec's compute settings with the command-line overrides of `resume`."""
+    from dataclasses import replace
+
+    from leadline.cluster import ExecutorConfigError
+
+    settings = spec.compute_settings()
+    changes: dict = {"quiet": quiet}
+    if executor is not None:
+        changes["mode"] = executor
+        if executor not in ("scheduler", "batch"):
+            changes.update(scheduler=None, batch_config=None)
+    if scheduler is not None:
+        changes.update(mode=executor or "scheduler", scheduler=scheduler.strip(), batch_config=None)
+    if cluster_config is not None:
+        changes.update(mode=executor or "batch", batch_config=cluster_config.resolve(), scheduler=None)
+    if workers is not None:
+        changes["workers"] = workers
+    try:
+        if changes.get("batch_config") is not None:
+            from leadline.cluster.batch import load_batch_config
+
+            load_batch_config(changes["batch_config"])
+        return replace(settings, **changes).resolved()
+    except ExecutorConfigError as exc:
+        raise InputError(str(exc)) from None
+
+
+@_store_errors
+def status_command(
+    store_path: Path = typer.Argument(..., metavar="STORE", help="Study store written by `leadline sweep`."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of the report."),
+) -> None:
+    """Show which depths are done, the one in progress (chunks done of the pass in flight) and the time left.
+
+    Example:
+
+        leadline status runs/study.zarr --json
+    """
+    progress = open_study(store_path).progress()
+    if as_json:
+        typer.echo(json.dumps(progress))
+    else:
+        typer.echo(status_text(progress))
+
+
+def _duration(seconds: float | None) -> str:
+    if seconds is None:
+        return "unknown (no pass measured yet)"
+    if seconds < 90:
+        return f"~{seconds:.0f} s"
+    if seconds < 5400:
+        return f"~{seconds / 60:.0f} min"
+    return f"~{seconds / 3600:.1f} h"
+
+
+def _ranges(ps: list[int]) -> str:
+    if not ps:
+        return "-"
+    out, start, prev = [], ps[0], ps[0]
+    for p in ps[1:] + [None]:
+        if p is not None and p == prev + 1:
+            prev = p
+            continue
+        out.append(f"{start}" if start == prev else f"{start}..{prev}")
+        if p is not None:
+            start = prev = p
+    return ", ".join(out)
+
+
+def status_text(progress: dict) -> str:
+    """The `leadline status` report."""
+    pmin, pmax = progress["depths"]
+    lines = [f"study {progress['name']!r}  store {progress['path']}  depths {pmin}..{pmax}"]
+    lock = progress.get("lock")
+    if lock is None:
+        lines.append("writer: none (resume with `leadline resume STORE` if not complete)")
+    elif lock.get("alive"):
+        lines.append(f"writer: {lock['description']}, running")
+    else:
+        lines.append(f"writer: {lock['description']}, no longer running (stale lock; resume takes it over)")
+    for e in progress["ensembles"]:
+        done = e["done"]
+        lines.append(f"  {e['label']}")
+        if done:
+            values = "  ".join(f"p{d['p']}={d['value']:.6f}" for d in done)
+            lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
+        r = e["running"]
+        if r is not None:
+            text = (f"    running  p = {r['p']}: {r['passes_cached']} passes checkpointed "
+                    f"(~{r['evaluations_done']} evaluations), session {r['sessions']}")
+            if r["inflight"] is not None:
+                f = r["inflight"]
+                text += f"; pass in flight: {f['chunks_done']}/{f['n_chunks']} chunks done"
+            if r["repairs"]:
+                text += f"; {r['repairs']} repaired"
+            lines.append(text)
+        todo = [p for p in e["todo"] if r is None or p != r["p"]]
+        if todo:
+            lines.append(f"    to do    p = {_ranges(todo)}")
+    if progress["complete"]:
+        lines.append("complete")
+    else:
+        lines.append(f"estimated time left: {_duration(progress['estimated_seconds_left'])} "
+                     "(measured seconds per path x mean evaluations per depth)")
+    return "\n".join(lines)
+
+
+def register(app: typer.Typer) -> None:
+    app.command("sweep")(sweep_command)
+    app.command("resume")(resume_command)
+    app.command("status")(status_command)

@@ -1,0 +1,107 @@
+"""The depth sweep: for each ensemble, p = pmin..pmax, warm-started, checkpointed.
+
+A sweep and a resume run the same loop (:func:`run_study`): finished depths
+are read back from the store (their optimum warm-starts the next depth), and
+the first unfinished depth is optimized from its recorded start with a
+checkpointed run_pass, so the replay takes every finished pass from the pass
+cache and every finished chunk of the pass in flight from its ledger (see
+storage/checkpoint.py for why this reproduces the uninterrupted numbers).
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Callable
+
+import numpy as np
+
+from leadline.kernels.optimize import optimize_depth
+from leadline.kernels.plan import plan_chunks
+from leadline.storage import CheckpointedPasses, StudyStore
+
+from .spec import EnsembleSpec, StudySpec
+
+__all__ = ["run_study", "depth_line"]
+
+
+def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
+    plan = depth.plan
+    passes = CheckpointedPasses(depth, executor)
+    result = optimize_depth(
+        ens.mixture(),
+        p,
+        run_pass=passes.run_pass,
+        plan=plan,
+        previous=previous,
+        previous_value=previous_value,
+        restarts=spec.restarts,
+        seed=spec.seed,
+        gtol=spec.gtol,
+        maxiter=spec.maxiter,
+    )
+    return result, passes.stats
+
+
+#: how each ensemble kind optimizes one depth (extension point, see jobs/spec.py ENSEMBLE_KINDS)
+OPTIMIZERS = {"dense": _optimize_dense}
+
+
+def run_study(
+    store: StudyStore,
+    spec: StudySpec,
+    executor=None,
+    *,
+    report: Callable[[dict], None] | None = None,
+) -> list[dict]:
+    """Run (or continue) the sweep of ``spec`` into ``store``; returns one record per depth done now.
+
+    ``executor`` is a leadline.cluster executor (or None: in process).
+    ``report(record)`` is called after every finished depth.
+    """
+    done_now = []
+    for ens in spec.ensembles:
+        previous = previous_value = None
+        for p in range(spec.pmin, spec.pmax + 1):
+            stored = store.finished_depth(ens.label, p)
+            if stored is not None:
+                previous = (np.asarray(stored["gamma"], dtype=float), np.asarray(stored["beta"], dtype=float))
+                previous_value = float(stored["value"])
+                continue
+            plan = plan_chunks(p, spec.memory_budget)
+            depth = store.depth(ens.label, p, plan)
+            t0 = time.perf_counter()
+            result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
+            session_s = time.perf_counter() - t0
+            pass_compute_s = depth.pass_seconds()
+            overhead_s = max(0.0, session_s - stats.seconds_in_passes)
+            timings = {
+                "wall_time_s": pass_compute_s + overhead_s,
+                "pass_compute_s": pass_compute_s,
+                "optimizer_overhead_s": overhead_s,
+                "passes": depth.passes_used(),
+                "session_wall_s": session_s,
+                "sessions": int(depth.group.attrs.get("sessions", 1)),
+                "this_session": stats.to_json(),
+            }
+            record = result.to_json()
+            record["wall_time_s"] = timings["wall_time_s"]
+            record["plan"] = plan.to_json()
+            store.finish_depth(ens.label, p, record, timings)
+            previous = (result.gamma, result.beta)
+            previous_value = float(result.value)
+            line = {"label": ens.label, "p": p, "result": record, "timings": timings}
+            done_now.append(line)
+            if report is not None:
+                report(line)
+    return done_now
+
+
+def depth_line(line: dict) -> str:
+    """One human-readable line for a finished depth."""
+    r, t = line["result"], line["timings"]
+    s = t["this_session"]
+    return (
+        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  |grad| {r['gradient_norm']:.1e}  "
+        f"{r['evaluations']} evaluations, {s['passes_computed']} passes computed, "
+        f"{s['passes_from_cache']} from checkpoint, {t['wall_time_s']:.2f} s"
+    )
