@@ -41,42 +41,109 @@ def split_low(n_low: int) -> tuple[int, int]:
     return n_low - l2, l2
 
 
-def _kron_pairs(first: np.ndarray, rest: np.ndarray | None) -> np.ndarray:
-    """Kronecker product of per-row 2-vectors: out[y, x] = prod_k pair_k[y, bit_k(x)].
+# --------------------------------------------------------------------------- pattern builders
+def _kron_t(first: np.ndarray, rest: np.ndarray | None, op=np.multiply) -> np.ndarray:
+    """Kronecker combination of per-row 2-vectors in transposed layout, (2^m, c).
 
-    ``first`` (c, 2) is the pair of site 0 (the most significant bit), ``rest``
-    (c, m-1, 2) the pairs of sites 1..m-1 or None.  Built by outer products
-    along the contiguous axis, (c, 2^m) complex.
+    ``first`` (2, c) is site 0 (the most significant bit of the pattern index),
+    ``rest`` (m-1, 2, c) sites 1..m-1 or None.  out[x, y] = op-combination over
+    sites k of pair_k[bit_k(x), y]; the row index y is the contiguous axis.
     """
     out = first
-    c = first.shape[0]
+    c = first.shape[1]
     if rest is not None:
-        for k in range(rest.shape[1]):
-            out = (out[:, :, None] * rest[:, k, None, :]).reshape(c, -1)
+        for k in range(rest.shape[0]):
+            out = op(out[:, None, :], rest[k][None, :, :]).reshape(-1, c)
     return out
 
 
-def _exp_pairs(v: np.ndarray, shift: np.ndarray) -> np.ndarray:
-    """(c, m, 2): [exp(v - shift), exp(-v - shift)] per site (spin +1, -1)."""
-    return np.stack([np.exp(v - shift), np.exp(-v - shift)], axis=-1)
+def _exp_pairs_t(v: np.ndarray, shift: np.ndarray) -> np.ndarray:
+    """(m, 2, c): exp(v - shift) for spin +1 and exp(-v - shift) for spin -1; v is (c, m)."""
+    vt, st = v.T, shift.T
+    return np.stack([np.exp(vt - st), np.exp(-vt - st)], axis=1)
 
 
-def _kron_exp(v: np.ndarray, shift: np.ndarray) -> np.ndarray:
-    """out[y, x] = exp(sum_k (v[y,k] s_k(x) - shift[y,k])), (c, 2^m) complex, site 0 = MSB."""
-    c, m = v.shape
-    if m == 0:
-        return np.ones((c, 1), dtype=complex)
-    pairs = _exp_pairs(v, shift)
-    return _kron_pairs(pairs[:, 0, :], pairs[:, 1:, :])
+def _add_pairs_t(t: np.ndarray) -> np.ndarray:
+    """(m, 2, c): +t for spin +1 and -t for spin -1; t is (c, m)."""
+    tt = t.T
+    return np.stack([tt, -tt], axis=1)
 
 
-def _kron_add(t: np.ndarray) -> np.ndarray:
-    """out[y, x] = sum_k t[y,k] s_k(x), (c, 2^m), site 0 = MSB."""
+def _linear_t(t: np.ndarray, base: np.ndarray) -> np.ndarray:
+    """out[x, y] = base[y] + sum_k t[y,k] s_k(x), (2^m, c)."""
     c, m = t.shape
-    out = np.zeros((c, 1), dtype=np.result_type(t.dtype, np.float64))
-    for k in range(m):
-        pair = np.stack([t[:, k], -t[:, k]], axis=-1)  # (c, 2)
-        out = (out[:, :, None] + pair[:, None, :]).reshape(c, -1)
+    if m == 0:
+        return base[None, :].astype(np.result_type(t.dtype, base.dtype, np.float64))
+    pairs = _add_pairs_t(t)
+    first = pairs[0] + base[None, :]
+    return _kron_t(first, pairs[1:] if m > 1 else None, np.add)
+
+
+def bit_sums_t(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Column totals and signed first moments over the bits of the row index.
+
+    X : (2^m, c).  Returns total (c,) and mom (c, m), mom[:, k] = sum_x X[x, :] s_k(x)
+    (site 0 = most significant bit).  Pairwise reduction, contiguous inner loops.
+    """
+    N, c = X.shape
+    m = N.bit_length() - 1
+    mom = np.empty((c, m), dtype=X.dtype)
+    T = X
+    for k in range(m - 1, -1, -1):
+        Tr = T.reshape(2**k, 2, c)
+        even, odd = Tr[:, 0, :], Tr[:, 1, :]
+        mom[:, k] = even.sum(axis=0) - odd.sum(axis=0)
+        T = even + odd
+    return T[0], mom
+
+
+def quadratic_split(A: np.ndarray, l1: int) -> np.ndarray:
+    """q(x) = s(x)^T A s(x) for all patterns of m sites as a (2^l1, 2^(m-l1)) matrix.
+
+    A is (m, m) (symmetric or not: only A + A^T enters).  The sites split in the
+    x1 block (first l1) and the x2 block: q = q11(x1) + q22(x2) + 2 s1^T A12s s2,
+    the cross term one small matrix product.  Recursive on the blocks.
+    """
+    A = np.asarray(A)
+    m = A.shape[0]
+    dtype = np.result_type(A.dtype, np.float64)
+    if m <= 4 or l1 == 0 or l1 == m:
+        from .chunks import _quadratic_over_patterns
+
+        return _quadratic_over_patterns(A).astype(dtype).reshape(2**l1, 2 ** (m - l1))
+    from .contour import sign_patterns
+
+    l2 = m - l1
+    q11 = quadratic_split(A[:l1, :l1], (l1 + 1) // 2).reshape(-1)
+    q22 = quadratic_split(A[l1:, l1:], (l2 + 1) // 2).reshape(-1)
+    cross = (A[:l1, l1:] + A[l1:, :l1].T).astype(dtype)  # (l1, l2)
+    S1 = sign_patterns(l1)
+    S2 = sign_patterns(l2)
+    q = (S1 @ cross).astype(dtype) @ S2.T.astype(dtype)  # (2^l1, 2^l2)
+    q += q11[:, None]
+    q += q22[None, :]
+    return q
+
+
+def chain_split(links: np.ndarray, l1: int, l2: int) -> np.ndarray:
+    """Product of the links inside a block of l1 + l2 sites, as a (2^l1, 2^l2) matrix.
+
+    ``links`` (l1+l2-1, 2): rows of the link table inside the block.  The chain
+    factorizes as F1(x1) * L_mid(last x1 spin, first x2 spin) * F2(x2).
+    """
+    from .contour import chain_weights
+
+    F1 = chain_weights(links[: l1 - 1], l1)
+    if l2 == 0:
+        return F1.reshape(-1, 1).copy()
+    F2 = chain_weights(links[l1:], l2)
+    mid = links[l1 - 1]
+    # last x1 spin is the x1 LSB; first x2 spin is the x2 MSB; equal spins -> mid[0]
+    a = np.arange(2**l1) & 1
+    b = np.arange(2**l2) >> (l2 - 1)
+    Lm = np.where(a[:, None] == b[None, :], mid[0], mid[1])
+    out = F1[:, None] * F2[None, :]
+    out *= Lm
     return out
 
 
@@ -166,7 +233,12 @@ def _low_second_moments(u: np.ndarray, marg1: np.ndarray, marg2: np.ndarray, mat
 
 
 def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
-    """Contribution of one chunk to a pass, (2p+2, 2p+1) complex, by matrix products."""
+    """Contribution of one chunk to a pass, (2p+2, 2p+1) complex, by matrix products.
+
+    Work arrays are kept in transposed layout (pattern index first, the chunk's
+    rows contiguous), so the Kronecker builds and the bit reductions run along
+    contiguous memory and BLAS takes the transposes for free.
+    """
     p, h, l = inp.p, plan.n_high, plan.n_low
     n = 2 * p + 1
     M = np.asarray(inp.M)
@@ -187,68 +259,70 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     exp_hh = np.exp(e_hh)
     row = _chunks._high_chain(AH, links) * exp_hh  # (c,)
     last = AH[:, h - 1]
-    # boundary link between site h-1 and h: x = aH_last * aL_0
-    lb = np.stack(
-        [np.where(last > 0, links[h - 1, 0], links[h - 1, 1]), np.where(last > 0, links[h - 1, 1], links[h - 1, 0])],
-        axis=-1,
-    )  # (c, 2): aL_0 = +1, -1
-    pairs1 = _exp_pairs(v[:, :l1], shift[:, :l1])  # (c, l1, 2)
-    rest1 = pairs1[:, 1:, :] if l1 > 1 else None
-    K2 = _kron_exp(v[:, l1:], shift[:, l1:])  # (c, 2^l2)
+    # boundary link between site h-1 and h: x = aH_last * aL_0; rows: aL_0 = +1, -1
+    lbT = np.stack(
+        [np.where(last > 0, links[h - 1, 0], links[h - 1, 1]), np.where(last > 0, links[h - 1, 1], links[h - 1, 0])]
+    )  # (2, c)
+    pairs1 = _exp_pairs_t(v[:, :l1], shift[:, :l1])  # (l1, 2, c)
+    rest1 = pairs1[1:] if l1 > 1 else None
+    if l2:
+        pairs2 = _exp_pairs_t(v[:, l1:], shift[:, l1:])
+        K2 = _kron_t(pairs2[0], pairs2[1:] if l2 > 1 else None)  # (2^l2, c)
+    else:
+        K2 = np.ones((1, c), dtype=complex)
 
     out = np.zeros((n + 1, n), dtype=complex)
     if inp.adjoint is None:
         # R = row * boundary link * x1 cross factor, folded into the first site's pair
-        R = _kron_pairs(pairs1[:, 0, :] * lb * row[:, None], rest1)  # (c, 2^l1)
-        P = R * (K2 @ B.T)  # (c, 2^l1): sums over x2
-        C = K2 * (R @ B)  # (c, 2^l2): sums over x1
-        u = R.T @ K2  # (2^l1, 2^l2): sums over the rows
+        R = _kron_t(pairs1[0] * lbT * row[None, :], rest1)  # (2^l1, c)
+        P = R * (B @ K2)  # (2^l1, c): sums over x2
+        C = K2 * (B.T @ R)  # (2^l2, c): sums over x1
+        u = R @ K2.T  # (2^l1, 2^l2): sums over the rows
         u *= B
-        total, mom1 = _chunks.bit_sums(P)
-        _, mom2 = _chunks.bit_sums(C)
+        total, mom1 = bit_sums_t(P)
+        _, mom2 = bit_sums_t(C)
         mom = np.concatenate([mom1, mom2], axis=1)
-        LL = _low_second_moments(u, P.sum(axis=0), C.sum(axis=0), mats)
+        LL = _low_second_moments(u, P.sum(axis=1), C.sum(axis=1), mats)
     else:
         E, F, s_ll, Bs = mats["E"], mats["F"], mats["s"], mats["Bs"]
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
         s_h = np.einsum("yi,ij,yj->y", AH, Gs[:h, :h], AH)
         t = 2.0 * (AH @ Gs[:h, h:])  # (c, l)
-        A = _kron_add(t[:, :l1])
-        A += s_h[:, None]  # (c, 2^l1): the part of s from high sites and x1 sites
-        T2 = _kron_add(t[:, l1:])  # (c, 2^l2)
-        K2T = K2 * T2
-        K1 = _kron_pairs(pairs1[:, 0, :], rest1)  # x1 cross factor only
+        A = _linear_t(t[:, :l1], s_h)  # (2^l1, c): the part of s from high and x1 sites
+        T2 = _linear_t(t[:, l1:], np.zeros(c))  # (2^l2, c): the x2 cross part
+        K2T2 = K2 * T2
+        K1 = _kron_t(pairs1[0], rest1)  # x1 cross factor only
         # P-type: sums over x2 of K1 K2 B s (no boundary link, no row factor)
-        G1 = K2 @ B.T
+        G1 = B @ K2
         G1 *= A
-        G1 += K2T @ B.T
-        G1 += K2 @ Bs.T
+        G1 += B @ K2T2
+        G1 += Bs @ K2
         P0 = K1 * G1
-        z_plus = P0[:, :half1].sum(axis=1)
-        z_minus = P0[:, half1:].sum(axis=1)
-        P0[:, :half1] *= lb[:, 0:1]
-        P0[:, half1:] *= lb[:, 1:2]
-        total0, mom1 = _chunks.bit_sums(P0)
+        z_plus = P0[:half1].sum(axis=0)
+        z_minus = P0[half1:].sum(axis=0)
+        P0[:half1] *= lbT[0]
+        P0[half1:] *= lbT[1]
+        total0, mom1 = bit_sums_t(P0)
         # C-type: sums over x1 of R0 K2 B s, R0 = boundary link * K1
-        R0 = _kron_pairs(pairs1[:, 0, :] * lb, rest1)
+        R0 = _kron_t(pairs1[0] * lbT, rest1)
         RA = R0 * A
-        C0 = RA @ B
-        C0 += T2 * (R0 @ B)
-        C0 += R0 @ Bs
+        C0 = B.T @ RA
+        C0 += T2 * (B.T @ R0)
+        C0 += Bs.T @ R0
         C0 *= K2
-        _, mom2 = _chunks.bit_sums(C0)
+        _, mom2 = bit_sums_t(C0)
         total = row * total0
         mom = row[:, None] * np.concatenate([mom1, mom2], axis=1)
         # U-type: sums over rows of row R0 K2 E s (without the low chain)
-        R0 *= row[:, None]
-        RA *= row[:, None]
-        U0 = R0.T @ K2
+        R0 *= row
+        RA *= row
+        U0 = R0 @ K2.T
         U0 *= s_ll
-        U0 += RA.T @ K2
-        U0 += R0.T @ K2T
+        U0 += RA @ K2.T
+        U0 += R0 @ K2T2.T
         U0 *= E
         u = F * U0
-        LL = _low_second_moments(u, row @ P0, row @ C0, mats)
+        LL = _low_second_moments(u, P0 @ row, C0 @ row, mats)
         D = np.zeros(2 * p, dtype=complex)
         if h > 1:
             dfh = _chunks._high_chain_derivatives(AH, links, dlinks)  # (c, h-1)

@@ -222,20 +222,28 @@ def _chain_derivative_sums(u0: np.ndarray, links: np.ndarray, dlinks: np.ndarray
 
 # --------------------------------------------------------------------------- low side
 def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
-    """Quantities of the low sites for one pass; O(2^l) memory and time (plus O(l^2))."""
+    """Quantities of the low sites for one pass; O(2^l) memory and time (plus O(l^2)).
+
+    The quadratic forms and the low chain are built as (2^l1, 2^l2) matrices
+    (kernels/blocked.py: the two halves of the low block plus one small matrix
+    product for their coupling); the vectors here are flat views of them.
+    """
+    from .blocked import chain_split, quadratic_split, split_low
+
     p, h = inp.p, plan.n_high
+    l1, l2 = split_low(plan.n_low)
     links = link_table(p, inp.beta)
     dlinks = link_derivative_table(p, inp.beta)
-    M_ll = np.asarray(inp.M)[h:, h:]
-    exp_ll = np.exp(-0.5 * _quadratic_over_patterns(M_ll))
-    from .contour import chain_weights
-
-    f_low = chain_weights(links[h:], plan.n_low)
+    M_ll = np.asarray(inp.M, dtype=complex)[h:, h:]
+    q = quadratic_split(M_ll, l1)
+    q *= -0.5
+    exp_ll = np.exp(q, out=q).reshape(-1)
+    f_low = chain_split(links[h:], l1, l2).reshape(-1)
     s_ll = None
     if inp.adjoint is not None:
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
-        s_ll = _quadratic_over_patterns(Gs[h:, h:])
-    return LowSide(plan, exp_ll.astype(complex), f_low, s_ll, links, dlinks)
+        s_ll = quadratic_split(np.asarray(Gs, dtype=complex)[h:, h:], l1).reshape(-1)
+    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks)
 
 
 # --------------------------------------------------------------------------- chunk kernel
