@@ -214,6 +214,19 @@ def test_split_run_map_and_lost_chunk():
         evaluate_sparse(3, 4, g, b, run_map=losing)
 
 
+@pytest.mark.slow
+def test_split_transform_on_a_real_dask_cluster():
+    # the chunk functions are pure and picklable: run them on a real worker process
+    from distributed import Client, LocalCluster
+
+    g, b = [0.3, 0.5, 0.6, 0.7], [0.5, 0.4, 0.3, 0.1]
+    base = evaluate_sparse(3, 4, g, b, gradient=True)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, Client(cluster) as client:
+        ev = evaluate_sparse(3, 4, g, b, gradient=True, n_high=4, run_map=lambda f, blocks: client.gather(client.map(f, blocks)))
+    assert ev.value == base.value
+    assert np.array_equal(ev.gradient["gamma"], base.gradient["gamma"]) and np.array_equal(ev.gradient["beta"], base.gradient["beta"])
+
+
 def test_complex_log1p_small_arguments():
     # series log(1+z) = z - z^2/2 + z^3/3 (common practice) for |z| ~ 1e-9
     rng = np.random.default_rng(5)
