@@ -1,0 +1,350 @@
+"""The checkpoint store in one process: pass cache, ledger, verification, lock, read API.
+
+External references for the numbers checked here:
+- V_1 of the SK model at (gamma, beta) = (1/2, pi/8) is 1/sqrt(4e) (Farhi, Goldstone,
+  Gutmann, Zhou, "The QAOA and the SK model at infinite size", Quantum 6, 759 (2022)).
+- Optimal V_p of the SK model, same paper, Table 1: 0.3033, 0.4075, 0.4726 for p = 1, 2, 3.
+Everything else checks the store against the in-process evaluator itself: a checkpointed
+pass must reproduce ``kernels.iteration.evaluate`` bit for bit.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import socket
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import zarr
+
+from leadline.kernels.chunks import PassInput, chunk_partial
+from leadline.kernels.iteration import evaluate
+from leadline.kernels.mixture import parse_mixture
+from leadline.kernels.plan import ChunkPlan
+from leadline.storage import (
+    CheckpointedPasses,
+    InProcessChunks,
+    NotAStudyError,
+    SchemaVersionError,
+    StoreLock,
+    StoreLockedError,
+    StudyStore,
+    open_study,
+)
+from leadline.storage import layout as L
+from leadline.storage.lock import LOCK_NAME
+
+SK = parse_mixture("2:0.5")
+PLAN3 = ChunkPlan(3, 4, 2)  # 8 chunks of 2 high rows each, 2^3 low patterns
+G3 = np.array([0.41, 0.55, 0.62])
+B3 = np.array([0.52, 0.37, 0.19])
+
+
+def _spec(store: Path) -> dict:
+    return {
+        "spec_version": 1,
+        "name": "unit",
+        "store": str(store),
+        "depths": {"pmin": 1, "pmax": 3},
+        "optimizer": {"restarts": 0, "seed": 0, "gtol": 1e-7, "maxiter": 500},
+        "compute": {"executor": "inprocess"},
+        "ensembles": [{"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
+                       "reference": {"ground_state": None, "source": None}}],
+    }
+
+
+def new_store(tmp_path: Path) -> StudyStore:
+    path = tmp_path / "unit.zarr"
+    spec = _spec(path)
+    return StudyStore.create(path, name="unit", spec=spec, spec_toml="", ensembles=spec["ensembles"])
+
+
+class CountingRunner:
+    """In-process chunk runner that counts computed chunks and can stop after some."""
+
+    def __init__(self, stop_after: int | None = None):
+        self.inner = InProcessChunks()
+        self.computed: list[tuple[str, int]] = []
+        self.stop_after = stop_after
+
+    def run_chunks(self, inp, plan, done, on_chunk):
+        def counted(k, part):
+            if self.stop_after is not None and len(self.computed) >= self.stop_after:
+                raise KeyboardInterrupt("simulated stop")
+            self.computed.append((inp.fingerprint(), k))
+            on_chunk(k, part)
+
+        self.inner.run_chunks(inp, plan, done, counted)
+
+
+def test_checkpointed_pass_equals_inprocess_bit_for_bit(tmp_path):
+    with new_store(tmp_path) as store:
+        depth = store.depth("sk", 3, PLAN3)
+        runner = CountingRunner()
+        cp = CheckpointedPasses(depth, runner)
+        ref = evaluate(SK, G3, B3, plan=PLAN3, gradient=True)
+        ev = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert ev.value == ref.value
+        assert np.array_equal(ev.gradient["gamma"], ref.gradient["gamma"])
+        assert np.array_equal(ev.gradient["beta"], ref.gradient["beta"])
+        assert len(runner.computed) == 7 * PLAN3.n_chunks  # 3 forward + 4 backward passes
+        # asked again: every pass from the cache, nothing computed
+        again = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert again.value == ref.value and len(runner.computed) == 7 * PLAN3.n_chunks
+        assert cp.stats.passes_from_cache == 7
+
+
+def test_sk_p1_value_through_store(tmp_path):
+    # Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022): V_1(1/2, pi/8) = 1/sqrt(4e)
+    plan = ChunkPlan(1, 2, 1)  # 4 chunks
+    with new_store(tmp_path) as store:
+        cp = CheckpointedPasses(store.depth("sk", 1, plan))
+        ev = evaluate(SK, [0.5], [math.pi / 8], plan=plan, run_pass=cp.run_pass)
+    assert ev.value == pytest.approx(1 / math.sqrt(4 * math.e), abs=1e-13)
+
+
+def _forward_input(p=3):
+    from leadline.kernels.contour import gamma_vector, initial_correlations
+
+    Gam = gamma_vector(G3)
+    M = np.outer(Gam, Gam) * SK.dxi(initial_correlations(p, B3))
+    return PassInput(p, M, B3)
+
+
+def test_interrupted_pass_resumes_with_missing_chunks_only(tmp_path):
+    inp = _forward_input()
+    expected = sum((chunk_partial(inp, PLAN3, k) for k in range(PLAN3.n_chunks)), np.zeros((8, 7), complex))
+    with new_store(tmp_path) as store:
+        first = CountingRunner(stop_after=3)
+        with pytest.raises(KeyboardInterrupt):
+            CheckpointedPasses(store.depth("sk", 3, PLAN3), first).run_pass(inp, PLAN3)
+        assert [k for _, k in first.computed] == [0, 1, 2]
+    with StudyStore.open(tmp_path / "unit.zarr") as store:  # a new session
+        second = CountingRunner()
+        total = CheckpointedPasses(store.depth("sk", 3, PLAN3), second).run_pass(inp, PLAN3)
+        assert [k for _, k in second.computed] == [3, 4, 5, 6, 7]
+        assert np.array_equal(total, expected)  # chunk-order sum, bit for bit
+        attrs = store.root[f"ensembles/sk/p003/passes/{L.pass_key(inp, PLAN3)}"].attrs.asdict()
+        assert attrs["completions"] == [1] * PLAN3.n_chunks
+        assert attrs["crc32"] == L.checksum(total)
+
+
+def _chunk_file(store_path: Path, k: int) -> Path:
+    return store_path / "ensembles/sk/p003/inflight/partials" / f"c.{k}.0.0"
+
+
+@pytest.mark.parametrize("damage", ["flip", "truncate", "zero-length"])
+def test_damaged_partial_is_detected_and_recomputed(tmp_path, damage):
+    inp = _forward_input()
+    path = tmp_path / "unit.zarr"
+    with new_store(tmp_path) as store:
+        with pytest.raises(KeyboardInterrupt):
+            CheckpointedPasses(store.depth("sk", 3, PLAN3), CountingRunner(stop_after=5)).run_pass(inp, PLAN3)
+    f = _chunk_file(path, 2)
+    data = bytearray(f.read_bytes())
+    if damage == "flip":
+        data[len(data) // 2] ^= 0xFF
+        f.write_bytes(bytes(data))
+    elif damage == "truncate":
+        f.write_bytes(bytes(data[: len(data) // 2]))
+    else:
+        f.write_bytes(b"")
+    with StudyStore.open(path) as store:
+        runner = CountingRunner()
+        depth = store.depth("sk", 3, PLAN3)
+        total = CheckpointedPasses(depth, runner).run_pass(inp, PLAN3)
+        assert sorted(k for _, k in runner.computed) == [2, 5, 6, 7]
+        ref = sum((chunk_partial(inp, PLAN3, k) for k in range(PLAN3.n_chunks)), np.zeros((8, 7), complex))
+        assert np.array_equal(total, ref)
+        repairs = depth.group.attrs["repairs"]
+        assert [(r["what"], r["chunk"]) for r in repairs] == [("chunk recomputed", 2)]
+        completions = store.root[f"ensembles/sk/p003/passes/{L.pass_key(inp, PLAN3)}"].attrs["completions"]
+        assert completions == [1, 1, 2, 1, 1, 1, 1, 1]  # the repaired chunk is the only one computed twice
+
+
+def test_damaged_pass_cache_entry_is_dropped_and_recomputed(tmp_path):
+    inp = _forward_input()
+    path = tmp_path / "unit.zarr"
+    with new_store(tmp_path) as store:
+        good = CheckpointedPasses(store.depth("sk", 3, PLAN3)).run_pass(inp, PLAN3)
+    key = L.pass_key(inp, PLAN3)
+    chunk = path / "ensembles/sk/p003/passes" / key / "c.0.0"
+    data = bytearray(chunk.read_bytes())
+    data[-3] ^= 0x01
+    chunk.write_bytes(bytes(data))
+    with StudyStore.open(path) as store:
+        depth = store.depth("sk", 3, PLAN3)
+        assert depth.cached_pass(key, backward=False) is None  # detected, dropped
+        runner = CountingRunner()
+        again = CheckpointedPasses(depth, runner).run_pass(inp, PLAN3)
+        assert np.array_equal(again, good)
+        # this was the last pass in flight: its verified ledger still holds every chunk
+        assert runner.computed == []
+        assert depth.group.attrs["repairs"][0]["what"] == "pass cache entry dropped"
+        assert depth.cached_pass(key, backward=False) is not None  # stored again
+
+
+def test_cached_forward_pass_must_satisfy_sum_w(tmp_path):
+    """A cache entry whose checksum matches but whose sum of weights is off is not trusted."""
+    inp = _forward_input()
+    with new_store(tmp_path) as store:
+        depth = store.depth("sk", 3, PLAN3)
+        CheckpointedPasses(depth).run_pass(inp, PLAN3)
+        key = L.pass_key(inp, PLAN3)
+        arr = depth.group[f"passes/{key}"]
+        bad = np.array(arr[...])
+        bad[0, 0] += 1e-6  # a lost or doubled chunk would do this
+        arr[...] = bad
+        arr.attrs.update({"crc32": L.checksum(bad)})
+        assert depth.cached_pass(key, backward=False) is None
+        assert "sum of path weights" in depth.group.attrs["repairs"][-1]["detail"]
+
+
+def test_schema_version_checked_on_open(tmp_path):
+    path = tmp_path / "unit.zarr"
+    new_store(tmp_path).close()
+    meta = json.loads((path / "zarr.json").read_text())
+    meta["attributes"]["schema_version"] = 99
+    (path / "zarr.json").write_text(json.dumps(meta))
+    with pytest.raises(SchemaVersionError, match="schema version 99"):
+        open_study(path)
+    with pytest.raises(SchemaVersionError):
+        StudyStore.open(path)
+    with pytest.raises(NotAStudyError):
+        open_study(tmp_path / "nothing-here.zarr")
+
+
+# ---------------------------------------------------------------------------- lock
+def test_second_writer_refused_naming_the_holder(tmp_path):
+    with new_store(tmp_path):
+        with pytest.raises(StoreLockedError, match=f"pid {os.getpid()} on host {socket.gethostname()}"):
+            StudyStore.open(tmp_path / "unit.zarr")
+    # released on close: a new writer gets it
+    StudyStore.open(tmp_path / "unit.zarr").close()
+    assert not (tmp_path / "unit.zarr" / LOCK_NAME).exists()
+
+
+def _dead_pid() -> int:
+    proc = subprocess.Popen([sys.executable, "-c", "pass"])
+    proc.wait()
+    return proc.pid
+
+
+def _write_lock(directory: Path, **holder) -> None:
+    (directory / LOCK_NAME).write_text(json.dumps(holder))
+
+
+def test_stale_lock_taken_over(tmp_path):
+    d = tmp_path / "s"
+    d.mkdir()
+    _write_lock(d, pid=_dead_pid(), host=socket.gethostname(), process_start=1.0, token="old")
+    lock = StoreLock(d).acquire()
+    assert lock.took_over["token"] == "old"
+    assert json.loads((d / LOCK_NAME).read_text())["token"] == lock.token
+    lock.release()
+    assert not (d / LOCK_NAME).exists()
+
+
+def test_reused_pid_counts_as_stale(tmp_path):
+    d = tmp_path / "s"
+    d.mkdir()
+    # our own (live) pid, but recorded with another start time: the pid was reused
+    _write_lock(d, pid=os.getpid(), host=socket.gethostname(), process_start=12345.0, token="old")
+    with StoreLock(d) as lock:
+        assert lock.took_over is not None
+
+
+def test_lock_of_other_host_is_respected(tmp_path):
+    d = tmp_path / "s"
+    d.mkdir()
+    _write_lock(d, pid=1, host="some-other-node", process_start=1.0, token="theirs", command="sweep")
+    with pytest.raises(StoreLockedError, match="some-other-node"):
+        StoreLock(d).acquire()
+    assert json.loads((d / LOCK_NAME).read_text())["token"] == "theirs"
+
+
+def test_concurrent_takeover_of_a_stale_lock_has_one_winner(tmp_path):
+    """Several processes race for the same stale lock: exactly one gets it."""
+    d = tmp_path / "s"
+    d.mkdir()
+    _write_lock(d, pid=_dead_pid(), host=socket.gethostname(), process_start=1.0, token="old")
+    code = (
+        "import sys, time; from leadline.storage import StoreLock, StoreLockedError\n"
+        "print('ready', flush=True); sys.stdin.readline()\n"
+        "try:\n    StoreLock(sys.argv[1]).acquire(); print('won', flush=True); time.sleep(1.0)\n"
+        "except StoreLockedError: print('refused', flush=True)\n"
+    )
+    procs = [subprocess.Popen([sys.executable, "-c", code, str(d)], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                              text=True) for _ in range(3)]
+    for proc in procs:
+        assert proc.stdout.readline().strip() == "ready"
+    for proc in procs:  # release them together
+        proc.stdin.write("go\n")
+        proc.stdin.flush()
+    outcomes = sorted(p.communicate(timeout=60)[0].strip() for p in procs)
+    assert outcomes == ["refused", "refused", "won"]
+
+
+# ---------------------------------------------------------------------------- read API
+def test_read_api_and_plain_zarr_layout(tmp_path):
+    """A tiny sweep in process; then read it with the API and with plain zarr."""
+    from leadline.jobs.spec import parse_spec
+    from leadline.jobs.sweep import run_study
+
+    text = f"""
+[study]
+name = "api"
+store = "api.zarr"
+[depths]
+pmax = 2
+[optimizer]
+restarts = 0
+[compute]
+executor = "inprocess"
+memory-mb = 0.004
+[[ensemble]]
+label = "sk"
+xi = "2:0.5"
+[ensemble.reference]
+ground-state = 0.763166
+source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
+"""
+    spec = parse_spec(text, tmp_path)
+    with StudyStore.create(spec.store, name=spec.name, spec=spec.to_json(), spec_toml=text,
+                           ensembles=[e.description() for e in spec.ensembles]) as store:
+        run_study(store, spec, None)
+    study = open_study(tmp_path / "api.zarr")
+    assert study.name == "api" and study.ensembles() == ["sk"]
+    assert study.spec["depths"] == {"pmin": 1, "pmax": 2}
+    ens = study.ensemble("sk")
+    assert ens == {"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
+                   "reference": {"ground_state": 0.763166,
+                                 "source": "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"}}
+    depths = study.depths("sk")
+    assert [d["p"] for d in depths] == [1, 2]
+    assert set(depths[0]) == {"p", "value", "gamma", "beta", "gradient_norm", "evaluations", "wall_time_s", "converged"}
+    # Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Table 1
+    assert depths[0]["value"] == pytest.approx(0.3033, abs=5e-5)
+    assert depths[1]["value"] == pytest.approx(0.4075, abs=5e-5)
+    assert len(depths[1]["gamma"]) == 2 and all(d["converged"] for d in depths)
+    with pytest.raises(KeyError):
+        study.ensemble("nope")
+
+    # the same numbers with plain zarr, following the documented layout
+    root = zarr.open_group(str(tmp_path / "api.zarr"), mode="r")
+    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 1
+    g = root["ensembles/sk/p002"]
+    assert g.attrs["state"] == "done"
+    assert g.attrs["result"]["value"] == depths[1]["value"]
+    assert np.array_equal(g["gamma"][...], np.array(depths[1]["gamma"]))
+    assert np.array_equal(g["beta"][...], np.array(depths[1]["beta"]))
+    assert root["ensembles/sk"].attrs["reference"]["ground_state"] == 0.763166
+    ledger = root["ensembles/sk/p002/inflight/ledger"]
+    assert list(ledger.attrs["columns"]) == ["serial", "crc32", "completions", "wall_us"]
+    progress = study.progress()
+    assert progress["complete"] and progress["estimated_seconds_left"] == 0.0
