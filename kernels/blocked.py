@@ -51,6 +51,8 @@ def _kron_t(first: np.ndarray, rest: np.ndarray | None, op=np.multiply) -> np.nd
     """
     out = first
     c = first.shape[1]
+    if rest is None or rest.shape[0] == 0:
+        return first.copy()  # callers modify the result in place
     if rest is not None:
         for k in range(rest.shape[0]):
             out = op(out[:, None, :], rest[k][None, :, :]).reshape(-1, c)
@@ -210,12 +212,61 @@ def low_matrices(inp, plan, low) -> dict:
         "S1": sign_patterns(l1),
         "S2": sign_patterns(l2).astype(complex),
     }
+    from .contour import chain_weights
+
+    h = plan.n_high
+    mats["F1"] = chain_weights(low.links[h : h + l1 - 1], l1)
+    mats["F2"] = chain_weights(low.links[h + l1 :], l2) if l2 else np.ones(1, dtype=complex)
     if low.s_ll is not None:
+        B = mats["B"]
         s = low.s_ll.reshape(shape)
+        Bs = B * s
         mats["s"] = s
-        mats["Bs"] = mats["B"] * s
+        mats["Bs"] = Bs
+        mats["trivial"] = not np.any(inp.M)
+        if mats["trivial"]:
+            # M = 0: E = 1 and the cross factors are 1; the products collapse to sums
+            mats["b1"] = B.sum(axis=1)
+            mats["bs1"] = Bs.sum(axis=1)
+            mats["BS2"] = B @ mats["S2"]  # (2^l1, l2)
+            halves = B.reshape(2, 2 ** (l1 - 1), 2**l2)
+            mats["Bh"] = halves.sum(axis=1)  # (2, 2^l2)
+            mats["Bsh"] = Bs.reshape(2, 2 ** (l1 - 1), 2**l2).sum(axis=1)
+            S1h = mats["S1"].reshape(2, 2 ** (l1 - 1), l1)
+            mats["BS1h"] = np.stack([halves[a].T @ S1h[a] for a in (0, 1)])  # (2, 2^l2, l1)
+        else:
+            mats["Es"] = E * s
+            mats["BBs_cols"] = np.concatenate([B, Bs], axis=1)  # (2^l1, 2^(l2+1))
+            mats["BBs_rows"] = np.concatenate([B, Bs], axis=0)  # (2^(l1+1), 2^l2)
     low.extra[key] = mats
     return mats
+
+
+def _low_link_derivatives(V: np.ndarray, mats: dict, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
+    """D_t = sum_x V(x) d/db_t (low chain)(x) for the l-1 links inside the low block.
+
+    V is (2^l1, 2^l2) without the low chain.  The chain is F1(x1) L_mid F2(x2):
+    links inside x1 see the x1-marginal of V L_mid F2, links inside x2 the
+    x2-marginal of F1 L_mid V, the middle link the 2 x 2 table over its two
+    spins -- two passes over V, never dividing by a link factor.
+    """
+    l1, l2 = mats["l1"], mats["l2"]
+    if l2 == 0:
+        return _chunks._chain_derivative_sums(V.reshape(-1), links, dlinks)
+    I, J = 2 ** (l1 - 1), 2 ** (l2 - 1)
+    V4 = V.reshape(I, 2, 2, J)  # [x1 high bits, last x1 spin, first x2 spin, x2 low bits]
+    F1r = mats["F1"].reshape(I, 2)
+    F2r = mats["F2"].reshape(2, J)
+    Y = np.einsum("iabj,bj->iab", V4, F2r)
+    Z = np.einsum("ia,iabj->abj", F1r, V4)
+    mid, dmid = links[l1 - 1], dlinks[l1 - 1]
+    Lm = np.array([[mid[0], mid[1]], [mid[1], mid[0]]])
+    dLm = np.array([[dmid[0], dmid[1]], [dmid[1], dmid[0]]])
+    D = np.empty(l1 + l2 - 1, dtype=complex)
+    D[: l1 - 1] = _chunks._chain_derivative_sums(np.einsum("iab,ab->ia", Y, Lm).reshape(-1), links[: l1 - 1], dlinks[: l1 - 1])
+    D[l1 - 1] = np.einsum("ia,iab,ab->", F1r, Y, dLm)
+    D[l1:] = _chunks._chain_derivative_sums(np.einsum("abj,ab->bj", Z, Lm).reshape(-1), links[l1:], dlinks[l1:])
+    return D
 
 
 def _low_second_moments(u: np.ndarray, marg1: np.ndarray, marg2: np.ndarray, mats: dict) -> np.ndarray:
@@ -255,7 +306,7 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     # modulus <= 1 and the row scale rides in e_hh (as in the row kernel), so no
     # partial product overflows where the full weight does not
     shift = np.abs(v.real)
-    e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH) + shift.sum(axis=1)
+    e_hh = -0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1) + shift.sum(axis=1)
     exp_hh = np.exp(e_hh)
     row = _chunks._high_chain(AH, links) * exp_hh  # (c,)
     last = AH[:, h - 1]
@@ -285,43 +336,68 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
         LL = _low_second_moments(u, P.sum(axis=1), C.sum(axis=1), mats)
     else:
         E, F, s_ll, Bs = mats["E"], mats["F"], mats["s"], mats["Bs"]
+        trivial = mats["trivial"]
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
-        s_h = np.einsum("yi,ij,yj->y", AH, Gs[:h, :h], AH)
+        s_h = ((AH @ Gs[:h, :h]) * AH).sum(axis=1)
         t = 2.0 * (AH @ Gs[:h, h:])  # (c, l)
         A = _linear_t(t[:, :l1], s_h)  # (2^l1, c): the part of s from high and x1 sites
         T2 = _linear_t(t[:, l1:], np.zeros(c))  # (2^l2, c): the x2 cross part
-        K2T2 = K2 * T2
-        K1 = _kron_t(pairs1[0], rest1)  # x1 cross factor only
-        # P-type: sums over x2 of K1 K2 B s (no boundary link, no row factor)
-        G1 = B @ K2
-        G1 *= A
-        G1 += B @ K2T2
-        G1 += Bs @ K2
-        P0 = K1 * G1
+        if not trivial:
+            K2T2 = K2 * T2
+            # P-type: sums over x2 of K1 K2 B s (no boundary link, no row factor)
+            G1 = B @ K2
+            G1 *= A
+            G1 += mats["BBs_cols"] @ np.concatenate([K2T2, K2], axis=0)
+            P0 = _kron_t(pairs1[0], rest1)  # x1 cross factor only
+            P0 *= G1
+        else:
+            # M = 0: K1 = K2 = 1, E = 1, T2 = S2 t2^T
+            P0 = A * mats["b1"][:, None]
+            P0 += mats["BS2"] @ t[:, l1:].T
+            P0 += mats["bs1"][:, None]
         z_plus = P0[:half1].sum(axis=0)
         z_minus = P0[half1:].sum(axis=0)
         P0[:half1] *= lbT[0]
         P0[half1:] *= lbT[1]
         total0, mom1 = bit_sums_t(P0)
         # C-type: sums over x1 of R0 K2 B s, R0 = boundary link * K1
-        R0 = _kron_t(pairs1[0] * lbT, rest1)
-        RA = R0 * A
-        C0 = B.T @ RA
-        C0 += T2 * (B.T @ R0)
-        C0 += Bs.T @ R0
-        C0 *= K2
+        if not trivial:
+            R0 = _kron_t(pairs1[0] * lbT, rest1)
+            RA = R0 * A
+            C0 = mats["BBs_rows"].T @ np.concatenate([RA, R0], axis=0)
+            C0 += T2 * (B.T @ R0)
+            C0 *= K2
+        else:
+            R0 = np.empty((2**l1, c), dtype=complex)
+            R0[:half1] = lbT[0]
+            R0[half1:] = lbT[1]
+            RA = R0 * A
+            Bh, Bsh, BS1h = mats["Bh"], mats["Bsh"], mats["BS1h"]
+            t1 = t[:, :l1].T
+            C0 = T2 * (Bh[0][:, None] * lbT[0] + Bh[1][:, None] * lbT[1])
+            for a in (0, 1):
+                C0 += (Bh[a][:, None] * s_h + BS1h[a] @ t1 + Bsh[a][:, None]) * lbT[a]
         _, mom2 = bit_sums_t(C0)
+        # U-type: sums over rows of row R0 K2 E s (without the low chain)
+        R0 *= row
+        RA *= row
+        if not trivial:
+            V = R0 @ K2.T
+            V *= mats["Es"]
+            X2 = np.concatenate([RA, R0], axis=1) @ np.concatenate([K2, K2T2], axis=1).T
+            X2 *= E
+            V += X2
+            del X2
+        else:
+            V = (R0 @ t[:, l1:]) @ mats["S2"].T  # R0 T2^T, T2 = S2 t2^T
+            V += R0.sum(axis=1)[:, None] * s_ll
+            V += RA.sum(axis=1)[:, None]
         total = row * total0
         mom = row[:, None] * np.concatenate([mom1, mom2], axis=1)
         # U-type: sums over rows of row R0 K2 E s (without the low chain)
         R0 *= row
         RA *= row
-        U0 = R0 @ K2.T
-        U0 *= s_ll
-        U0 += RA @ K2.T
-        U0 += R0 @ K2T2.T
-        U0 *= E
-        u = F * U0
+        u = F * V
         LL = _low_second_moments(u, P0 @ row, C0 @ row, mats)
         D = np.zeros(2 * p, dtype=complex)
         if h > 1:
@@ -331,7 +407,7 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
         dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
         D[h - 1] = (row * (dlb_plus * z_plus + dlb_minus * z_minus)).sum()
         if l > 1:
-            D[h:] = _chunks._chain_derivative_sums(U0.reshape(-1), links[h:], dlinks[h:])
+            D[h:] = _low_link_derivatives(V, mats, links[h:], dlinks[h:])
         out[n, : 2 * p] = D
 
     out[:h, :h] = AH.T @ (total[:, None] * AH)
