@@ -234,7 +234,10 @@ class StudyStore:
         return DepthStore(group, p, plan, self.path / group.path)
 
     def finish_depth(self, label: str, p: int, result: dict, timings: dict) -> None:
-        """Record a finished depth: angle arrays first, then result + done flag in one write."""
+        """Record a finished depth: angle arrays first, then result + done flag in one write.
+
+        The in-flight ledger of the depth is deleted afterwards (its last pass is cached).
+        """
         group = self._ensemble_group(label)[L.depth_name(p)]
         group.create_array("gamma", data=np.asarray(result["gamma"], dtype=np.float64), overwrite=True)
         group.create_array("beta", data=np.asarray(result["beta"], dtype=np.float64), overwrite=True)
@@ -243,6 +246,8 @@ class StudyStore:
             {"state": "done", "result": result, "timings": timings, "finished_utc": utc_now()}
         )
         crash_point("depth-done")
+        # the last pass's partials are in the pass cache now; they can be large (n_chunks matrices)
+        shutil.rmtree(self.path / group.path / L.INFLIGHT, ignore_errors=True)
 
 
 class DepthStore:

@@ -344,7 +344,12 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
     assert np.array_equal(g["gamma"][...], np.array(depths[1]["gamma"]))
     assert np.array_equal(g["beta"][...], np.array(depths[1]["beta"]))
     assert root["ensembles/sk"].attrs["reference"]["ground_state"] == 0.763166
-    ledger = root["ensembles/sk/p002/inflight/ledger"]
-    assert list(ledger.attrs["columns"]) == ["serial", "crc32", "completions", "wall_us"]
+    assert "inflight" not in g  # removed once the depth is done
+    passes = list(g["passes"].arrays())
+    assert len(passes) == depths[1]["evaluations"] * 5  # 2p+1 passes per evaluation with gradient
+    for key, arr in passes:
+        attrs = arr.attrs.asdict()
+        assert key.startswith(attrs["fingerprint"]) and attrs["crc32"] >= 0
+        assert attrs["completions"] == [1] * attrs["n_chunks"] and arr.shape == (6, 5)
     progress = study.progress()
     assert progress["complete"] and progress["estimated_seconds_left"] == 0.0
