@@ -502,7 +502,9 @@ def extrapolate_in_steps(values) -> tuple[float, float, str]:
             prev = fit(K - 1) if K >= 4 else None
             if prev is not None:
                 unc = max(unc, abs(v_inf - prev))
-            return v_inf, max(unc, 1e-9), "power law in k through the last three step counts"
+            # never claim less than half the last change: the fit assumes the
+            # minima at every k were found, which a local optimizer cannot promise
+            return v_inf, max(unc, 0.5 * last_change, 1e-9), "power law in k through the last three step counts"
     return v[-1], last_change, "last value (no power-law fit)"
 
 
@@ -579,10 +581,14 @@ def _minimize_over_steps(
     converged = False
     for k in range(2, max_steps + 1):
         starts = _candidate_starts(problem, x)
-        start_values = [rec_search.functional(*problem.unpack(s)) for s in starts]
+        exact, nudged = starts[: k - 1], starts[k - 1 :]
+        # the exact split whose new direction pulls hardest, and the best nudged ones
+        chosen = [exact[int(np.argmax([np.linalg.norm(problem(s)[1]) for s in exact]))]]
+        nudged_values = [rec_search.functional(*problem.unpack(s)) for s in nudged]
+        chosen += [nudged[j] for j in np.argsort(nudged_values)[: max(1, tries - 1)]]
         best = None
-        for j in np.argsort(start_values)[:tries]:
-            r = problem.minimize(starts[j])
+        for start in chosen:
+            r = problem.minimize(start)
             if best is None or r.fun < best.fun:
                 best = r
         x = best.x

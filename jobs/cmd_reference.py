@@ -1,0 +1,89 @@
+"""`leadline reference`: ground-state energy and algorithmic threshold of a mixture."""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from leadline.kernels.reference import reference_energies
+
+from . import reference_cache
+from .errors import InputError
+from .parsing import mixture_arg
+
+
+def reference_command(
+    xi: Optional[str] = typer.Option(
+        None, "--xi", help="Mixture as q:w pairs, xi(x) = sum w x^q. SK with i<j pairs: 2:0.5; pure 3-spin: 3:1."
+    ),
+    gs_tol: float = typer.Option(1e-4, "--gs-tol", help="Stop adding steps to gamma when the ground state moves by less than this."),
+    alg_tol: float = typer.Option(1e-3, "--alg-tol", help="Same for the algorithmic threshold."),
+    max_steps: int = typer.Option(10, "--max-steps", help="Largest number k of steps of gamma tried."),
+    no_cache: bool = typer.Option(False, "--no-cache", help="Compute afresh and do not write the cache."),
+    cache_dir: Optional[Path] = typer.Option(
+        None, "--cache-dir", help="Cache directory (default $LEADLINE_CACHE_DIR, else $XDG_CACHE_HOME/leadline or ~/.cache/leadline)."
+    ),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
+) -> None:
+    """Ground-state energy density (GS) and algorithmic threshold (ALG) of a mixture.
+
+    GS is max H/n (Auffinger-Chen formula); ALG is the energy reached by the best
+    known polynomial-time algorithms, incremental AMP (El Alaoui-Montanari-Sellke).
+    Both are maximum energy densities in the normalization E[H H'] = n xi(R).
+
+    Example (SK model, GS = 0.763166):
+
+        leadline reference --xi 2:0.5
+    """
+    mix = mixture_arg(xi)
+    for name, tol in (("--gs-tol", gs_tol), ("--alg-tol", alg_tol)):
+        if not (math.isfinite(tol) and 1e-7 <= tol <= 0.1):
+            raise InputError(f"{name} must be between 1e-7 and 0.1, got {tol!r}")
+    if not 3 <= max_steps <= 30:
+        raise InputError(f"--max-steps must be between 3 and 30, got {max_steps}")
+    directory = None
+    if not no_cache:
+        directory = cache_dir if cache_dir is not None else reference_cache.default_cache_dir()
+        if directory.exists() and not directory.is_dir():
+            raise InputError(f"--cache-dir {directory} exists and is not a directory; give a directory or --no-cache")
+    key = reference_cache.cache_key(mix.spec(), gs_tol, alg_tol, max_steps)
+    refs = reference_cache.load(directory, key) if directory is not None else None
+    cached = refs is not None
+    if refs is None:
+        refs = reference_energies(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        if directory is not None:
+            try:
+                reference_cache.store(directory, key, refs)
+            except OSError as exc:
+                print(f"leadline: warning: could not write the cache in {directory}: {exc}", file=sys.stderr)
+    if as_json:
+        out = refs.to_json()
+        out["cached"] = cached
+        typer.echo(json.dumps(out))
+        return
+    typer.echo(report(mix, refs, cached))
+
+
+def report(mix, refs, cached: bool) -> str:
+    gs_d = refs.details.get("ground_state", {})
+    alg_d = refs.details.get("algorithmic_threshold", {})
+    lines = [
+        f"xi(x)                  = {mix.label()}",
+        f"ground state GS        = {refs.ground_state:.6f} +- {refs.ground_state_uncertainty:.1e}"
+        f"   (k = {len(refs.ground_state_k_sequence)} steps, best bound {gs_d.get('best_bound', float('nan')):.6f})",
+        f"algorithmic threshold  = {refs.algorithmic_threshold:.6f} +- {refs.algorithmic_threshold_uncertainty:.1e}"
+        f"   (k = {len(refs.algorithmic_threshold_k_sequence)} steps)",
+        "overlap gap            = "
+        + ("yes: ALG < GS beyond the uncertainties" if refs.overlap_gap else "not detected (ALG = GS within the uncertainties)"),
+        f"energies are max H/n with E[H H'] = n xi(R); {'from the cache' if cached else f'{refs.wall_time:.1f} s'}",
+    ]
+    return "\n".join(lines)
+
+
+def register(app: typer.Typer) -> None:
+    app.command("reference")(reference_command)

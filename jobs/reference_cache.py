@@ -1,0 +1,73 @@
+"""A small on-disk cache of reference energies, one JSON file per mixture and settings.
+
+Location: ``--cache-dir``, else ``$LEADLINE_CACHE_DIR``, else
+``$XDG_CACHE_HOME/leadline`` (``~/.cache/leadline``), under ``references/``.
+File name: sha256 of the canonical key {"xi", "gs_tol", "alg_tol", "max_steps",
+"method_version"}; content: {"key": ..., "references": References.to_json()}.
+A file whose key does not match is ignored (and overwritten on the next write).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from pathlib import Path
+
+from leadline.kernels.reference import METHOD_VERSION, References
+
+__all__ = ["default_cache_dir", "cache_key", "load", "store"]
+
+
+def default_cache_dir() -> Path:
+    env = os.environ.get("LEADLINE_CACHE_DIR")
+    if env:
+        return Path(env)
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "leadline"
+
+
+def cache_key(xi_spec: str, gs_tol: float, alg_tol: float, max_steps: int) -> dict:
+    return {
+        "xi": xi_spec,
+        "gs_tol": float(gs_tol),
+        "alg_tol": float(alg_tol),
+        "max_steps": int(max_steps),
+        "method_version": METHOD_VERSION,
+    }
+
+
+def _path(cache_dir: Path, key: dict) -> Path:
+    digest = hashlib.sha256(json.dumps(key, sort_keys=True).encode()).hexdigest()[:32]
+    return Path(cache_dir) / "references" / f"{digest}.json"
+
+
+def load(cache_dir: Path, key: dict) -> References | None:
+    """The cached References for key, or None (missing, unreadable or other key)."""
+    path = _path(cache_dir, key)
+    try:
+        data = json.loads(path.read_text())
+        if data.get("key") != key:
+            return None
+        return References.from_json(data["references"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def store(cache_dir: Path, key: dict, refs: References) -> Path:
+    """Write atomically (temporary file + rename); returns the path."""
+    path = _path(cache_dir, key)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".json")
+    try:
+        with os.fdopen(fd, "w") as fh:
+            json.dump({"key": key, "references": refs.to_json()}, fh, indent=1)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    return path
