@@ -29,6 +29,7 @@ app = typer.Typer(
 
 COMMAND_MODULES = [
     "leadline.jobs.cmd_evaluate",
+    "leadline.jobs.cmd_reference",
     "leadline.jobs.cmd_finite_size",
     "leadline.jobs.cmd_optimize",
     "leadline.jobs.cmd_table",
