@@ -74,6 +74,14 @@ def _write_study(path):
                 store.finish_depth(ens["label"], p, result, {"wall_s": float(res.wall_time)})
 
 
+@pytest.fixture(scope="module", autouse=True)
+def empty_reference_cache(tmp_path_factory):
+    """Keep a user's cache of computed references out of these tests (they would take precedence)."""
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("LEADLINE_CACHE_DIR", str(tmp_path_factory.mktemp("no-reference-cache")))
+        yield
+
+
 @pytest.fixture(scope="module")
 def store_path(tmp_path_factory):
     path = tmp_path_factory.mktemp("report") / "study.zarr"
@@ -258,3 +266,45 @@ def test_rendering_of_the_published_sk_series_held_in_memory():
     assert [g.k for g in rep.gap_fits] == [3, 4, 5]
     text = render_markdown(build_report(study))
     assert "0.607300" in text and "0.7958" in text  # 0.6073 / 0.763166
+
+
+# ------------------------------------------- computed GS / ALG (kernels.reference)
+@pytest.mark.slow
+def test_computed_references_fill_the_ratio_and_threshold_columns(study, tmp_path, capsys):
+    """GS and ALG computed by kernels.reference and cached are used, and bound every depth.
+
+    Coarse settings keep this quick; their uncertainties are reported with the values.
+    """
+    from leadline.jobs import reference_cache
+    from leadline.kernels.reference import COARSE, reference_energies
+
+    settings = dict(gs_tol=1e-2, alg_tol=1e-2, max_steps=3)
+    for label in study.ensembles():
+        xi = parse_mixture(study.ensemble(label)["xi"]).spec()
+        refs = reference_energies(xi, discretization=COARSE, **settings)
+        reference_cache.store(tmp_path, reference_cache.cache_key(xi, **settings), refs)
+
+    report = build_report(study, reference_cache_dir=tmp_path)
+    for ens in report.ensembles:
+        refs = ens.references
+        assert refs.ground_state_origin == "computed" and refs.threshold_origin == "computed"
+        # ALG <= GS: the threshold is an infimum over a larger class of gamma
+        # (El Alaoui, Montanari, Sellke, Ann. Probab. 49 (2021))
+        assert refs.threshold <= refs.ground_state + refs.ground_state_uncertainty
+        for row in ens.rows:
+            # a QAOA energy is an average of H, never above its maximum
+            assert row.value < refs.ground_state - refs.ground_state_uncertainty
+            assert row.ratio_alg == row.value / refs.threshold
+            assert row.exceeds_alg is False
+    sk = report.ensembles[0].references
+    # Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002): 0.763166; coarse steps stay within 2e-3
+    assert sk.ground_state == pytest.approx(SK_PARISI, abs=2e-3)
+    text = render_markdown(report)
+    assert "V_p*/ALG" in text and "> ALG" in text and "computed" in text
+    rows = list(csv.DictReader(io.StringIO(render_csv(report))))
+    assert {r["exceeds_alg"] for r in rows if r["record"] == "depth"} == {"false"}
+
+    # the command line value still overrides the computed one, and is labelled as given
+    over = build_report(study, ground_states={"sk": 0.77}, reference_cache_dir=tmp_path).ensembles[0]
+    assert over.references.ground_state == 0.77 and over.references.ground_state_origin == "command line"
+    assert over.references.threshold_origin == "computed"
