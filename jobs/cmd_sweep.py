@@ -38,13 +38,20 @@ def _store_errors(func):
     return wrapper
 
 
-def _run(store: StudyStore, spec, settings, as_json: bool, quiet: bool) -> None:
+def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
+    """Start the executor, then open (or create) the store and sweep holding its lock.
+
+    The executor comes first so that an unreachable scheduler or a bad batch
+    file is reported before the store is created.  The report is printed once
+    the lock is released.
+    """
     def report(line: dict) -> None:
         if not as_json:
             typer.echo(depth_line(line))
 
     with compute.open_compute(settings) as executor:
-        lines = run_study(store, spec, executor, report=report)
+        with open_store() as store:
+            lines = run_study(store, spec, executor, report=report)
     if as_json:
         typer.echo(json.dumps({"store": str(store.path), "finished_now": lines, "progress": open_study(store.path).progress()}))
     elif not quiet:
@@ -68,7 +75,7 @@ def sweep_command(
     spec = load_spec(spec_path)
     check_new_store(spec.store)
     settings = spec.compute_settings(quiet=quiet or as_json)
-    store = StudyStore.create(
+    open_store = lambda: StudyStore.create(  # noqa: E731
         spec.store,
         name=spec.name,
         spec=spec.to_json(),
@@ -78,8 +85,7 @@ def sweep_command(
         command="sweep",
         extra={"kernel": resolve_implementation()},
     )
-    with store:
-        _run(store, spec, settings, as_json, quiet)
+    _run(open_store, spec, settings, as_json, quiet)
 
 
 @_store_errors
@@ -108,9 +114,8 @@ def resume_command(
     if cluster_config is not None and not cluster_config.is_file():
         raise InputError(f"--cluster-config: file {cluster_config} does not exist")
     settings = _settings_with(spec, executor, scheduler, workers, cluster_config, quiet or as_json)
-    store = StudyStore.open(store_path, command="resume")
-    with store:
-        _run(store, spec, settings, as_json, quiet)
+    StudyStore.open(store_path, command="resume").close()  # refuse now if another writer holds it
+    _run(lambda: StudyStore.open(store_path, command="resume"), spec, settings, as_json, quiet)
 
 
 def _pin_kernel(recorded: str | None) -> None:
