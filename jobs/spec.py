@@ -32,10 +32,16 @@ Layout (version 1; every key is checked, unknown keys are errors)::
     ground-state = 0.763166          # reference ground-state energy density (same normalization as xi)
     source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"   # required with ground-state
 
-Extension point: ensemble kinds are the entries of :data:`ENSEMBLE_KINDS`;
-each maps the TOML table to the stored description.  Sparse ensembles
-(``kind = "sparse"``, keys ``q`` and ``degree``) are reserved: they are
-recognized and refused with a clear message until the sweep supports them.
+    [[ensemble]]                     # a sparse ensemble: Max-q-XORSAT on D-regular hypergraphs of large girth
+    label = "maxcut-d3"
+    kind = "sparse"
+    q = 2                            # constraint size (2 = MaxCut); value = satisfied fraction
+    degree = 3                       # D >= 2
+
+Extension point: ensemble kinds are the entries of :data:`ENSEMBLE_KINDS`
+(TOML table -> stored description) and of ``jobs.sweep.OPTIMIZERS`` (how a
+depth is optimized).  Sparse depths run in this process and are checkpointed
+per depth only (an interrupted sparse depth is re-run from its start).
 
 :func:`load_spec` validates everything and never writes anything; every
 problem is one :class:`~leadline.jobs.errors.InputError` line.
@@ -225,10 +231,20 @@ def _dense(item: dict, where: str, label: str) -> dict:
 
 
 def _sparse(item: dict, where: str, label: str) -> dict:
-    raise InputError(
-        f"{where}: kind = \"sparse\" (Max-q-XORSAT at finite degree) is not yet supported by sweeps; "
-        "use `leadline optimize --xorsat Q --degree D` for single depths"
-    )
+    from leadline.kernels.sparse import check_problem
+
+    _unknown(item, {"label", "kind", "q", "degree", "reference"}, where)
+    for key in ("q", "degree"):
+        if key not in item:
+            raise InputError(f"{where}: kind = \"sparse\" needs q (constraint size, 2 = MaxCut) and degree (D >= 2)")
+    q, degree = item["q"], item["degree"]
+    if isinstance(degree, bool) or not isinstance(degree, (int, float)) or isinstance(q, bool) or not isinstance(q, int):
+        raise InputError(f"{where}: q must be an integer and degree a number, got q = {q!r}, degree = {degree!r}")
+    try:
+        q, degree = check_problem(q, degree)
+    except ValueError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    return {"q": q, "degree": int(degree) if float(degree).is_integer() else degree}
 
 
 #: ensemble kinds: kind -> function(table, where, label) -> extra description fields

@@ -17,7 +17,7 @@ import numpy as np
 
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import plan_chunks
-from leadline.storage import CheckpointedPasses, StudyStore
+from leadline.storage import CheckpointedPasses, CheckpointStats, StudyStore
 
 from .spec import EnsembleSpec, StudySpec
 
@@ -42,8 +42,20 @@ def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor,
     return result, passes.stats
 
 
+def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
+    """Max-q-XORSAT on a D-regular hypertree: in process, checkpointed per depth only."""
+    from leadline.kernels.sparse import optimize_sparse
+
+    kwargs = {} if spec.restarts is None else {"restarts": spec.restarts}
+    result = optimize_sparse(
+        ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
+        seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter, **kwargs,
+    )
+    return result, CheckpointStats()
+
+
 #: how each ensemble kind optimizes one depth (extension point, see jobs/spec.py ENSEMBLE_KINDS)
-OPTIMIZERS = {"dense": _optimize_dense}
+OPTIMIZERS = {"dense": _optimize_dense, "sparse": _optimize_sparse}
 
 
 def run_study(
@@ -100,8 +112,9 @@ def depth_line(line: dict) -> str:
     """One human-readable line for a finished depth."""
     r, t = line["result"], line["timings"]
     s = t["this_session"]
+    passes = (f"{s['passes_computed']} passes computed, {s['passes_from_cache']} from checkpoint, "
+              if s["passes_requested"] else "")
     return (
         f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  |grad| {r['gradient_norm']:.1e}  "
-        f"{r['evaluations']} evaluations, {s['passes_computed']} passes computed, "
-        f"{s['passes_from_cache']} from checkpoint, {t['wall_time_s']:.2f} s"
+        f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
     )

@@ -191,7 +191,7 @@ def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> flo
 
     Evaluations per depth are taken as the mean over finished depths (or
     30 per start when none is finished); one evaluation with its gradient is
-    2p+1 passes of 2^(2p+1) paths each.
+    2p+1 passes of 2^(2p+1) paths each.  Dense ensembles only.
     """
     if not pass_rates:
         return None if any(e["todo"] for e in ensembles) else 0.0
@@ -206,7 +206,10 @@ def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> flo
         restarts = spec.get("optimizer", {}).get("restarts")
         evals = 30.0 * (1 + (restarts if restarts is not None else 2))
     left = 0.0
+    kinds = {e["label"]: e.get("kind", "dense") for e in spec.get("ensembles", [])}
     for e in ensembles:
+        if kinds.get(e["label"], "dense") != "dense":
+            continue  # sparse depths have no passes to measure; not estimated
         for p in e["todo"]:
             passes = evals * (2 * p + 1)
             if e["running"] is not None and e["running"]["p"] == p:

@@ -266,7 +266,12 @@ BAD_SPECS = {
     "bad label": (spec_text(ensemble='[[ensemble]]\nlabel = "../x"\nxi = "2:0.5"'), "label"),
     "reference without source": (spec_text(ensemble=ENSEMBLE + "\n[ensemble.reference]\nground-state = 0.76"),
                                  "source"),
-    "sparse kind reserved": (spec_text(ensemble='[[ensemble]]\nlabel = "mc"\nkind = "sparse"'), "sparse"),
+    "sparse without degree": (spec_text(ensemble='[[ensemble]]\nlabel = "mc"\nkind = "sparse"\nq = 2'), "degree"),
+    "sparse degree below 2": (spec_text(ensemble='[[ensemble]]\nlabel = "mc"\nkind = "sparse"\nq = 2\ndegree = 1'),
+                              "degree D must be"),
+    "sparse with xi": (spec_text(ensemble='[[ensemble]]\nlabel = "mc"\nkind = "sparse"\nq = 2\ndegree = 3\nxi = "2:1"'),
+                       "unknown key 'xi'"),
+    "unknown kind": (spec_text(ensemble='[[ensemble]]\nlabel = "mc"\nkind = "tree"'), "kind must be one of"),
     "missing name": (spec_text({"study": 'store = "s.zarr"'}), "[study] name is required"),
     "store folder missing": (spec_text({"study": 'name = "s"\nstore = "no/such/folder/s.zarr"'}), "does not exist"),
     "store parent is a file": (spec_text({"study": 'name = "s"\nstore = "afile/s.zarr"'}), "does not exist"),
@@ -332,3 +337,22 @@ def test_resume_on_a_local_dask_cluster_skips_finished_chunks(reference, tmp_pat
     _compare_with_reference(reference, store)
     counts = collections.Counter(audit_lines(audit))
     assert max(counts.values()) == 1  # no chunk recorded twice across the two executors
+
+
+def test_sparse_ensemble_sweep_matches_published_maxcut_values(tmp_path, capsys):
+    """MaxCut on 3-regular graphs of large girth (q = 2, D = 3), depth-level checkpoints only.
+
+    p = 1: 0.6925 (Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014));
+    p = 2: 0.7559 (Wurtz, Love, Phys. Rev. A 103, 042612 (2021)).
+    """
+    from leadline.jobs.cli import main
+
+    spec = tmp_path / "study.toml"
+    spec.write_text(spec_text({"study": 'name = "mc"\nstore = "mc.zarr"', "optimizer": "restarts = 1"},
+                              ensemble='[[ensemble]]\nlabel = "maxcut-d3"\nkind = "sparse"\nq = 2\ndegree = 3'))
+    main(["sweep", str(spec), "--quiet"])
+    study = open_study(tmp_path / "mc.zarr")
+    assert study.ensemble("maxcut-d3")["kind"] == "sparse" and study.ensemble("maxcut-d3")["degree"] == 3
+    values = {d["p"]: d["value"] for d in study.depths("maxcut-d3")}
+    assert values[1] == pytest.approx(0.6925, abs=5e-5)
+    assert values[2] == pytest.approx(0.7559, abs=5e-5)
