@@ -31,7 +31,8 @@ from .lock import StoreLock
 
 __all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "utc_now", "inflight_summary"]
 
-_ZARR_TEMP = re.compile(r"\.[0-9a-f]{32}\.partial$")
+#: leftovers of writes a kill interrupted: zarr's temporary files, and lock files not yet linked
+_ZARR_TEMP = re.compile(r"(\.[0-9a-f]{32}\.partial|^\.leadline\.lock\.[0-9a-f]{32}\.tmp)$")
 
 
 #: chunk files named c.<k>.0.0 side by side (no folder per chunk: cheaper to create and delete)
@@ -162,11 +163,17 @@ class StudyStore:
 
     def _remove_temp_files(self) -> None:
         """Temporary files of writes that a kill interrupted (never referenced by anything)."""
+        import time
+
         for dirpath, _dirs, files in os.walk(self.path):
             for f in files:
                 if _ZARR_TEMP.search(f):
+                    full = os.path.join(dirpath, f)
                     try:
-                        os.unlink(os.path.join(dirpath, f))
+                        # a lock candidate of another process may be seconds old; leave it to its owner
+                        if f.endswith(".tmp") and time.time() - os.stat(full).st_mtime < 60:
+                            continue
+                        os.unlink(full)
                     except OSError:
                         pass
 
