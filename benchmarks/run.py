@@ -1,0 +1,139 @@
+"""`make bench`: run the benchmarks, print a table, write benchmarks/results/latest.json.
+
+Benchmarks are the modules benchmarks/bench_<name>.py that define ``run()``
+returning a JSON-ready dict.  The kernel benchmark (bench_kernel.py) spawns a fresh
+process per measurement itself; every other module's ``run()`` is called in a fresh
+process of its own, so peak-memory figures never mix.
+
+    .venv/bin/python benchmarks/run.py                  # everything
+    .venv/bin/python benchmarks/run.py --only kernel    # one (repeatable flag)
+    .venv/bin/python benchmarks/run.py --quick          # shorter: fewer repetitions, smaller depths
+    .venv/bin/python benchmarks/run.py --list
+"""
+
+from __future__ import annotations
+
+import argparse
+import glob
+import importlib.util
+import inspect
+import json
+import os
+import subprocess
+import sys
+import time
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+RESULTS = os.path.join(HERE, "results")
+
+
+def available() -> list[str]:
+    """Names of the benchmark modules present (bench_<name>.py)."""
+    names = []
+    for path in sorted(glob.glob(os.path.join(HERE, "bench_*.py"))):
+        names.append(os.path.basename(path)[len("bench_") : -len(".py")])
+    return names
+
+
+def _load(name: str):
+    path = os.path.join(HERE, f"bench_{name}.py")
+    spec = importlib.util.spec_from_file_location(f"_leadline_bench_{name}", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def _kwargs_for(fn, quick: bool) -> dict:
+    """Pass ``quick=True`` to a module's run() only if it accepts it."""
+    try:
+        params = inspect.signature(fn).parameters
+    except (TypeError, ValueError):
+        return {}
+    return {"quick": True} if quick and "quick" in params else {}
+
+
+def _module_worker(name: str, quick: bool) -> int:
+    """In a fresh process: call bench_<name>.run() and print its JSON on the last line."""
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+    module = _load(name)
+    t0 = time.perf_counter()
+    out = module.run(**_kwargs_for(module.run, quick))
+    if isinstance(out, dict):
+        out.setdefault("elapsed_s", time.perf_counter() - t0)
+    print(json.dumps(out, default=float))
+    return 0
+
+
+def run_module(name: str, quick: bool, timeout: float = 4 * 3600) -> dict:
+    """Run one benchmark module in a fresh process; its stderr streams through."""
+    if name == "kernel":
+        module = _load("kernel")
+        return module.run(quick=quick, log=lambda s: print(s, file=sys.stderr, flush=True))
+    cmd = [sys.executable, os.path.abspath(__file__), "--module-worker", name] + (["--quick"] if quick else [])
+    proc = subprocess.run(cmd, stdout=subprocess.PIPE, text=True, timeout=timeout)
+    if proc.returncode != 0:
+        return {"benchmark": name, "error": f"exit code {proc.returncode}"}
+    lines = proc.stdout.strip().splitlines()
+    try:
+        return json.loads(lines[-1])
+    except (IndexError, json.JSONDecodeError):
+        return {"benchmark": name, "error": "no JSON result on the last output line", "output": proc.stdout[-2000:]}
+
+
+def _flat_table(name: str, result: dict) -> str:
+    """Generic key = value listing for modules without their own formatter."""
+    lines = [f"[{name}]"]
+    for key, value in result.items():
+        if isinstance(value, (dict, list)):
+            text = json.dumps(value, default=float)
+            if len(text) > 160:
+                text = text[:157] + "..."
+        else:
+            text = f"{value:.6g}" if isinstance(value, float) else str(value)
+        lines.append(f"  {key:40s} {text}")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description="Run leadline's benchmarks (make bench).")
+    ap.add_argument("--only", action="append", metavar="NAME", help="run only this benchmark (repeatable); see --list")
+    ap.add_argument("--quick", action="store_true", help="shorter runs (fewer repetitions, smaller sizes)")
+    ap.add_argument("--list", action="store_true", help="list the benchmark modules and exit")
+    ap.add_argument("--output", default=os.path.join(RESULTS, "latest.json"), help="JSON result file")
+    ap.add_argument("--module-worker", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.module_worker:
+        return _module_worker(args.module_worker, args.quick)
+    names = available()
+    if args.list:
+        print("\n".join(names))
+        return 0
+    chosen = args.only or names
+    unknown = [n for n in chosen if n not in names]
+    if unknown:
+        print(f"unknown benchmark {unknown[0]!r}; available: {', '.join(names)}", file=sys.stderr)
+        return 2
+    started = time.strftime("%Y-%m-%dT%H:%M:%S%z")
+    results = {}
+    for name in chosen:
+        print(f"== {name}", file=sys.stderr, flush=True)
+        results[name] = run_module(name, args.quick)
+    for name, result in results.items():
+        if name == "kernel" and "error" not in result:
+            print("[kernel]  (SK model; times are medians; per core = one BLAS thread; ratios measured in this run)")
+            print(_load("kernel").format_table(result))
+        else:
+            print(_flat_table(name, result))
+        print()
+    doc = {"format": "leadline.bench", "version": 1, "started": started, "quick": args.quick, "results": results}
+    os.makedirs(os.path.dirname(os.path.abspath(args.output)), exist_ok=True)
+    tmp = args.output + ".tmp"
+    with open(tmp, "w") as fh:
+        json.dump(doc, fh, indent=1, default=float)
+    os.replace(tmp, args.output)
+    print(f"wrote {os.path.relpath(args.output)}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
