@@ -31,6 +31,7 @@ nothing else (a scheduler reached by address is left running).
 
 from __future__ import annotations
 
+import asyncio
 import socket
 import sys
 import time
@@ -65,7 +66,7 @@ class Executor:
     mode = "?"
 
     def __init__(self, settings: ComputeSettings | None = None, progress: ProgressDisplay | None = None):
-        self.settings = settings or ComputeSettings(mode=self.mode).resolved()
+        self.settings = settings or ComputeSettings(mode="inprocess").resolved()
         self.progress = progress or ProgressDisplay(False)
         self.passes = 0
         self.pass_seconds = 0.0
@@ -257,11 +258,28 @@ def _host_port(address: str) -> tuple[str, str | None, int | None]:
     return parts.scheme, parts.hostname, port
 
 
+async def _identity_request(address: str, timeout: float):
+    from distributed.comm import connect
+
+    comm = await connect(address, timeout=timeout)
+    try:
+        await comm.write({"op": "identity", "reply": True})
+        return await comm.read()
+    finally:
+        comm.abort()
+
+
+def _identity(address: str, timeout: float) -> dict:
+    """The scheduler's identity message, within ``timeout`` seconds overall."""
+    return asyncio.run(asyncio.wait_for(_identity_request(address, timeout), timeout))
+
+
 def connect_scheduler(address: str, settings: ComputeSettings, progress: ProgressDisplay | None = None) -> DaskExecutor:
     """A client of the scheduler at ``address``; SchedulerUnreachable within the connect timeout.
 
     A plain TCP probe comes first so that a refused connection fails at once
-    (distributed itself retries refused connections until its timeout).
+    (distributed itself retries refused connections until its timeout), then
+    an identity request under a hard deadline (a silent peer fails too).
     """
     from distributed import Client
 
@@ -284,6 +302,17 @@ def connect_scheduler(address: str, settings: ComputeSettings, progress: Progres
         target = f"tcp://{host}:{port}"
     else:
         target = address.strip()
+    # distributed's Client can wait forever on a peer that accepts TCP but never
+    # answers, so ask for the scheduler's identity under a hard deadline first
+    try:
+        identity = _identity(target, timeout)
+    except (OSError, TimeoutError, asyncio.TimeoutError, ValueError) as exc:
+        raise SchedulerUnreachable(
+            f"no Dask scheduler answered at {address} within {timeout:g} s ({type(exc).__name__}); "
+            "check --scheduler"
+        ) from None
+    if not isinstance(identity, dict) or identity.get("type") != "Scheduler":
+        raise SchedulerUnreachable(f"the server at {address} is not a Dask scheduler; check --scheduler")
     try:
         client = Client(target, timeout=timeout, set_as_default=False)
     except (OSError, TimeoutError) as exc:
