@@ -5,8 +5,8 @@ Usage::
     python -m leadline.jobs.demo [--output DIR] [--pmax P]
 
 1. copies the shipped spec ``jobs/demo_study.toml`` (pure q = 2, 3, 4 and a 2+3 mixture,
-   p = 1..7, local Dask cluster with two workers) into DIR (default ``demo-output``),
-   with ``pmax`` lowered if asked;
+   p = 1..6, local Dask cluster with two workers) into DIR (default ``demo-output``),
+   with ``pmax`` changed if asked;
 2. runs ``leadline sweep DIR/demo_study.toml`` (or ``leadline resume DIR/demo.zarr`` when
    the store exists already, so an interrupted demo continues where it stopped and a finished
    one is not recomputed);
@@ -50,7 +50,7 @@ def _leadline(*args: str, capture: bool = False) -> subprocess.CompletedProcess:
 def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(prog="python -m leadline.jobs.demo", description=__doc__.split("\n")[0])
     parser.add_argument("--output", default="demo-output", help="output folder (default demo-output)")
-    parser.add_argument("--pmax", type=int, default=None, help="deepest depth (default: the spec's, 7)")
+    parser.add_argument("--pmax", type=int, default=None, help="deepest depth (default: the spec's, 6)")
     args = parser.parse_args(argv)
 
     out = Path(args.output).resolve()

@@ -308,3 +308,15 @@ def test_computed_references_fill_the_ratio_and_threshold_columns(study, tmp_pat
     over = build_report(study, ground_states={"sk": 0.77}, reference_cache_dir=tmp_path).ensembles[0]
     assert over.references.ground_state == 0.77 and over.references.ground_state_origin == "command line"
     assert over.references.threshold_origin == "computed"
+
+
+# ------------------------------------------------------------------- demo
+def test_shipped_demo_spec_is_valid(tmp_path):
+    from leadline.jobs.demo import shipped_spec_text
+    from leadline.jobs.spec import parse_spec
+
+    spec = parse_spec(shipped_spec_text(), tmp_path)
+    assert [e.label for e in spec.ensembles] == ["sk", "pure3", "pure4", "mixed23"]
+    assert spec.executor == "local" and spec.workers == 2
+    assert (spec.pmin, spec.pmax) == (1, 6)
+    assert spec.store == tmp_path / "demo.zarr"
