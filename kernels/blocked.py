@@ -283,6 +283,93 @@ def _low_second_moments(u: np.ndarray, marg1: np.ndarray, marg2: np.ndarray, mat
     return S
 
 
+def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
+    """(c, h-1): 1/2 * prod of the high links with link t differentiated, by prefix and
+    suffix products (O(c h), no division by a link factor)."""
+    c, h = AH.shape
+    nl = h - 1
+    same = AH[:, :-1] == AH[:, 1:]  # (c, h-1)
+    L = np.where(same, links[:nl, 0], links[:nl, 1])
+    dL = np.where(same, dlinks[:nl, 0], dlinks[:nl, 1])
+    left = np.ones((c, nl + 1), dtype=complex)
+    right = np.ones((c, nl + 1), dtype=complex)
+    for t in range(nl):
+        left[:, t + 1] = left[:, t] * L[:, t]
+        right[:, nl - 1 - t] = right[:, nl - t] * L[:, nl - 1 - t]
+    return 0.5 * left[:, :nl] * dL * right[:, 1:]
+
+
+class ProductCache:
+    """Bounded in-process memo of a forward pass's base products, for its adjoint pass.
+
+    The adjoint pass at step m uses the same M as forward pass m, so the two
+    products that do not involve s (B K2 and B^T R0, per chunk) are the forward
+    pass's own -- the "tape" of reverse-mode differentiation.  Kept per
+    (M, beta, plan, chunk), least recently used dropped beyond ``max_bytes``
+    (default $LEADLINE_PRODUCT_CACHE_MB, 384 MiB; 0 disables it).  A miss only costs the two
+    products again; results are the same either way (same code, same inputs).
+    Thread-safe (Dask workers run chunks in threads).
+    """
+
+    def __init__(self, max_bytes: int | None = None):
+        import os
+        import threading
+        from collections import OrderedDict
+
+        if max_bytes is None:
+            max_bytes = int(float(os.environ.get("LEADLINE_PRODUCT_CACHE_MB", "384")) * 2**20)
+        self.max_bytes = int(max_bytes)
+        self._items: "OrderedDict[tuple, tuple]" = OrderedDict()
+        self._bytes = 0
+        self._lock = threading.Lock()
+        self.hits = 0
+        self.misses = 0
+
+    @staticmethod
+    def _key(inp, plan, chunk: int) -> tuple:
+        import hashlib
+
+        h = hashlib.blake2b(digest_size=16)
+        h.update(np.ascontiguousarray(inp.M, dtype=complex).tobytes())
+        h.update(np.ascontiguousarray(inp.beta, dtype=float).tobytes())
+        return (h.digest(), int(inp.p), int(plan.n_high), int(plan.rows_per_chunk), int(chunk))
+
+    def put(self, inp, plan, chunk: int, *arrays: np.ndarray) -> None:
+        size = sum(a.nbytes for a in arrays)
+        if size > self.max_bytes:
+            return
+        key = self._key(inp, plan, chunk)
+        with self._lock:
+            old = self._items.pop(key, None)
+            if old is not None:
+                self._bytes -= sum(a.nbytes for a in old)
+            self._items[key] = arrays
+            self._bytes += size
+            while self._bytes > self.max_bytes and self._items:
+                _, dropped = self._items.popitem(last=False)
+                self._bytes -= sum(a.nbytes for a in dropped)
+
+    def get(self, inp, plan, chunk: int):
+        key = self._key(inp, plan, chunk)
+        with self._lock:
+            arrays = self._items.get(key)
+            if arrays is None:
+                self.misses += 1
+                return None
+            self._items.move_to_end(key)
+            self.hits += 1
+            return arrays
+
+    def clear(self) -> None:
+        with self._lock:
+            self._items.clear()
+            self._bytes = 0
+
+
+#: the process-wide product cache used by :func:`chunk_partial_blocked`
+PRODUCTS = ProductCache()
+
+
 def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     """Contribution of one chunk to a pass, (2p+2, 2p+1) complex, by matrix products.
 
@@ -325,9 +412,15 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     out = np.zeros((n + 1, n), dtype=complex)
     if inp.adjoint is None:
         # R = row * boundary link * x1 cross factor, folded into the first site's pair
-        R = _kron_t(pairs1[0] * lbT * row[None, :], rest1)  # (2^l1, c)
-        P = R * (B @ K2)  # (2^l1, c): sums over x2
-        C = K2 * (B.T @ R)  # (2^l2, c): sums over x1
+        R0 = _kron_t(pairs1[0] * lbT, rest1)  # (2^l1, c): boundary link * x1 cross factor
+        Pb = B @ K2  # (2^l1, c)
+        Cb = B.T @ R0  # (2^l2, c)
+        PRODUCTS.put(inp, plan, chunk, Pb, Cb)  # the adjoint pass at this M needs them again
+        R = R0
+        R *= row
+        P = R * Pb  # (2^l1, c): sums over x2
+        C = K2 * Cb  # (2^l2, c): sums over x1
+        C *= row
         u = R @ K2.T  # (2^l1, 2^l2): sums over the rows
         u *= B
         total, mom1 = bit_sums_t(P)
@@ -343,10 +436,11 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
         A = _linear_t(t[:, :l1], s_h)  # (2^l1, c): the part of s from high and x1 sites
         T2 = _linear_t(t[:, l1:], np.zeros(c))  # (2^l2, c): the x2 cross part
         if not trivial:
+            cached = PRODUCTS.get(inp, plan, chunk)
+            Pb, Cb = cached if cached is not None else (B @ K2, None)
             K2T2 = K2 * T2
             # P-type: sums over x2 of K1 K2 B s (no boundary link, no row factor)
-            G1 = B @ K2
-            G1 *= A
+            G1 = Pb * A
             G1 += mats["BBs_cols"] @ np.concatenate([K2T2, K2], axis=0)
             P0 = _kron_t(pairs1[0], rest1)  # x1 cross factor only
             P0 *= G1
@@ -365,7 +459,7 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
             R0 = _kron_t(pairs1[0] * lbT, rest1)
             RA = R0 * A
             C0 = mats["BBs_rows"].T @ np.concatenate([RA, R0], axis=0)
-            C0 += T2 * (B.T @ R0)
+            C0 += T2 * (Cb if Cb is not None else B.T @ R0)
             C0 *= K2
         else:
             R0 = np.empty((2**l1, c), dtype=complex)
@@ -401,7 +495,7 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
         LL = _low_second_moments(u, P0 @ row, C0 @ row, mats)
         D = np.zeros(2 * p, dtype=complex)
         if h > 1:
-            dfh = _chunks._high_chain_derivatives(AH, links, dlinks)  # (c, h-1)
+            dfh = _high_chain_derivatives(AH, links, dlinks)  # (c, h-1)
             D[: h - 1] = (dfh * (exp_hh * total0)[:, None]).sum(axis=0)
         dlb_plus = np.where(last > 0, dlinks[h - 1, 0], dlinks[h - 1, 1])
         dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
