@@ -236,3 +236,25 @@ def test_wide_dynamic_range_agrees(impl):
     got = chunks.run_pass_inprocess(inp, plan, impl=impl)
     assert np.all(np.isfinite(got))
     assert_close(got, want)
+
+
+def test_product_cache_hit_equals_miss():
+    """The adjoint pass gives the same partials whether the forward products are reused or not."""
+    from leadline.kernels import blocked
+
+    rng = np.random.default_rng(8)
+    p = 4
+    inp_b = random_pass_input(rng, p, adjoint=True)
+    inp_f = PassInput(p, inp_b.M, inp_b.beta)
+    for plan in (plan_chunks(p), ChunkPlan(p, 3, 2), ChunkPlan(p, 1, 2)):
+        blocked.PRODUCTS.clear()
+        miss = chunks.run_pass_inprocess(inp_b, plan, impl="blocked")
+        hits_before = blocked.PRODUCTS.hits
+        chunks.run_pass_inprocess(inp_f, plan, impl="blocked")  # fills the cache
+        hit = chunks.run_pass_inprocess(inp_b, plan, impl="blocked")
+        assert blocked.PRODUCTS.hits - hits_before == plan.n_chunks
+        assert_close(hit, miss, rtol=1e-14)
+        assert_close(hit, dense_pass(p, inp_b.M, inp_b.beta, inp_b.adjoint))
+    small = blocked.ProductCache(max_bytes=1000)
+    small.put(inp_f, plan, 0, np.zeros(100, complex))  # 1600 bytes: not kept
+    assert small.get(inp_f, plan, 0) is None
