@@ -8,6 +8,7 @@ process of its own, so peak-memory figures never mix.
     .venv/bin/python benchmarks/run.py                  # everything
     .venv/bin/python benchmarks/run.py --only kernel    # one (repeatable flag)
     .venv/bin/python benchmarks/run.py --quick          # shorter: fewer repetitions, smaller depths
+    .venv/bin/python benchmarks/run.py --optimize-p12   # kernel: also the p = 12 optimization
     .venv/bin/python benchmarks/run.py --list
 """
 
@@ -64,11 +65,12 @@ def _module_worker(name: str, quick: bool) -> int:
     return 0
 
 
-def run_module(name: str, quick: bool, timeout: float = 4 * 3600) -> dict:
+def run_module(name: str, quick: bool, timeout: float = 4 * 3600, optimize_p12: bool = False) -> dict:
     """Run one benchmark module in a fresh process; its stderr streams through."""
     if name == "kernel":
         module = _load("kernel")
-        return module.run(quick=quick, log=lambda s: print(s, file=sys.stderr, flush=True))
+        opt = (10, 12) if optimize_p12 else (10,)
+        return module.run(quick=quick, optimize_p=opt, log=lambda s: print(s, file=sys.stderr, flush=True))
     cmd = [sys.executable, os.path.abspath(__file__), "--module-worker", name] + (["--quick"] if quick else [])
     proc = subprocess.run(cmd, stdout=subprocess.PIPE, text=True, timeout=timeout)
     if proc.returncode != 0:
@@ -99,6 +101,7 @@ def main(argv=None) -> int:
     ap.add_argument("--only", action="append", metavar="NAME", help="run only this benchmark (repeatable); see --list")
     ap.add_argument("--quick", action="store_true", help="shorter runs (fewer repetitions, smaller sizes)")
     ap.add_argument("--list", action="store_true", help="list the benchmark modules and exit")
+    ap.add_argument("--optimize-p12", action="store_true", help="kernel: also time the SK optimization at p = 12 (minutes)")
     ap.add_argument("--output", default=os.path.join(RESULTS, "latest.json"), help="JSON result file")
     ap.add_argument("--module-worker", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -117,7 +120,7 @@ def main(argv=None) -> int:
     results = {}
     for name in chosen:
         print(f"== {name}", file=sys.stderr, flush=True)
-        results[name] = run_module(name, args.quick)
+        results[name] = run_module(name, args.quick, optimize_p12=args.optimize_p12)
     for name, result in results.items():
         if name == "kernel" and "error" not in result:
             print("[kernel]  (SK model; times are medians; per core = one BLAS thread; ratios measured in this run)")
