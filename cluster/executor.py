@@ -35,6 +35,7 @@ import asyncio
 import socket
 import sys
 import time
+from dataclasses import replace
 from typing import Mapping
 from urllib.parse import urlsplit
 
@@ -46,7 +47,7 @@ from leadline.kernels.plan import ChunkPlan, plan_chunks
 from .errors import ExecutorError, SchedulerUnreachable
 from .mapreduce import OnChunk, OrderedSum, check_done, map_reduce_pass
 from .progress import ProgressDisplay, progress_wanted
-from .settings import ComputeSettings, worker_memory_limit, worth_a_cluster
+from .settings import ComputeSettings, auto_workers, worker_memory_limit, worth_a_cluster
 from .workerenv import SINGLE_THREAD_ENV
 
 __all__ = [
@@ -190,7 +191,12 @@ class DaskExecutor(Executor):
 
 
 class AutoExecutor(Executor):
-    """In-process for small passes; a LocalCluster from the first pass that is worth one."""
+    """In-process for small passes; a LocalCluster from the first pass that is worth one.
+
+    "Worth one" is :func:`settings.worth_a_cluster` (measured switch point) and
+    at least two idle cores (:func:`settings.auto_workers`); the decision is
+    taken once per run.
+    """
 
     mode = "auto"
 
@@ -198,10 +204,15 @@ class AutoExecutor(Executor):
         super().__init__(settings, progress)
         self._inprocess = InProcessExecutor(settings, self.progress)
         self._local: DaskExecutor | None = None
+        self._declined = False
 
     def _run(self, inp, plan, done, on_chunk):
-        if self._local is None and worth_a_cluster(plan):
-            self._local = start_local_cluster(self.settings, self.progress)
+        if self._local is None and not self._declined and worth_a_cluster(plan):
+            workers = auto_workers(self.settings)
+            if workers >= 1:
+                self._local = start_local_cluster(replace(self.settings, workers=workers), self.progress)
+            else:
+                self._declined = True  # the cores are busy: stay in-process for this run
         target = self._local if self._local is not None else self._inprocess
         return target._run(inp, plan, done, on_chunk)
 

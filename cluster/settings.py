@@ -30,6 +30,8 @@ __all__ = [
     "AUTO_MIN_PATHS_PER_PASS",
     "AUTO_MIN_CHUNKS",
     "worth_a_cluster",
+    "idle_cores",
+    "auto_workers",
     "DEFAULT_CONNECT_TIMEOUT_S",
 ]
 
@@ -38,18 +40,25 @@ MODES = ("auto", "inprocess", "local", "scheduler", "batch")
 #: seconds to wait for a scheduler to answer before giving up
 DEFAULT_CONNECT_TIMEOUT_S = 10.0
 
-# Switch point of the auto mode (measured on a 2-core x86-64 machine with
-# benchmarks/bench_cluster.py; see /work/notes/cluster.md for the numbers):
-#   - starting a 2-worker LocalCluster costs ~1.5 s, once per run;
-#   - one pass on it costs ~15 ms more than in-process (submit, transfer,
-#     ordered reduction);
-#   - in-process throughput is ~5e7 paths/s, so a pass of 2^(2p+1) paths
-#     takes ~0.17 s at p = 11 and ~0.7 s at p = 12.
-# With w workers a pass of T seconds saves about T (1 - 1/w) - overhead; a
-# single p = 12 evaluation (12 passes) saves ~12 x 0.33 s = 4 s > 1.5 s of
-# start-up on 2 workers, a p = 11 one (11 x 0.07 s) does not.  Hence the
-# LocalCluster starts at the first pass with >= 2^25 paths (p >= 12).
-AUTO_MIN_PATHS_PER_PASS = 2**25
+# Switch point of the auto mode, measured with benchmarks/bench_cluster.py on
+# the 2-vCPU development machine (numbers in /work/notes/cluster.md):
+#   - starting a 2-worker LocalCluster: 1.3-2.3 s, once per run;
+#   - per-pass overhead of the LocalCluster (p = 6, where the work is ~1.4 ms):
+#     17-24 ms per pass (submit, transfer, ordered reduction);
+#   - in-process, one forward pass of 2^(2p+1) paths: 75 ms (p = 12, 2 chunks),
+#     ~0.2 s (p = 13, 2 chunks), 0.6 s (p = 14, 4 chunks), 2.5 s (p = 15, 16 chunks).
+# On w free cores a pass of T seconds saves about T (1 - 1/min(w, chunks)) - overhead:
+# at p = 14 that is ~0.3 s per pass, so one evaluation (14 passes) repays the
+# start-up; at p <= 13 the default plan has only 2 chunks and a value-only
+# evaluation saves less than the start-up.  Hence the LocalCluster starts at the
+# first pass with >= 2^29 paths (p >= 14) and >= 2 chunks.
+# The saving needs FREE cores: with the machine's other work at a load average of
+# ~5.5 on 2 vCPUs, two concurrent chunk computations each ran 1.5-2x slower and
+# the 2-worker cluster lost to in-process at every depth measured (ratio 0.54 at
+# p = 13, 0.63 at p = 14, 0.76 at p = 15).  So auto also requires >= 2 idle
+# cores (cores minus the 1-minute load average, counting this process as idle)
+# and gives the LocalCluster only that many workers unless --workers says otherwise.
+AUTO_MIN_PATHS_PER_PASS = 2**29
 #: and only when the plan can keep at least two workers busy
 AUTO_MIN_CHUNKS = 2
 
@@ -73,8 +82,29 @@ def worker_memory_limit(memory_budget: int, threads_per_worker: int) -> int:
 
 
 def worth_a_cluster(plan: ChunkPlan) -> bool:
-    """Auto mode: does a pass of this plan justify starting a LocalCluster?"""
+    """Auto mode: is a pass of this plan large enough to repay starting a LocalCluster?"""
     return plan.n_paths >= AUTO_MIN_PATHS_PER_PASS and plan.n_chunks >= AUTO_MIN_CHUNKS
+
+
+def idle_cores() -> int:
+    """Cores not busy with other work: usable cores - 1-minute load + 1 (this process)."""
+    cores = usable_cores()
+    try:
+        load = os.getloadavg()[0]
+    except (AttributeError, OSError):
+        return cores
+    return max(0, min(cores, int(cores - load + 1 + 0.5)))
+
+
+def auto_workers(settings: "ComputeSettings") -> int:
+    """Workers for the auto mode's LocalCluster, or 0 to stay in-process (fewer than 2 idle cores).
+
+    An explicit --workers is honoured as is.
+    """
+    if settings.workers_given:
+        return int(settings.workers)
+    idle = idle_cores() // max(1, settings.threads_per_worker)
+    return idle if idle >= 2 else 0
 
 
 @dataclass(frozen=True)
@@ -91,6 +121,7 @@ class ComputeSettings:
     batch_config : path of the batch-cluster TOML file (mode "batch")
     quiet : no progress bar
     connect_timeout : seconds to reach a scheduler
+    workers_given : True when the user chose the worker count (set by :meth:`resolved`)
     """
 
     mode: str = "auto"
@@ -101,6 +132,7 @@ class ComputeSettings:
     batch_config: Path | None = None
     quiet: bool = False
     connect_timeout: float = DEFAULT_CONNECT_TIMEOUT_S
+    workers_given: bool = False
 
     def resolved(self) -> "ComputeSettings":
         """Check the combination and fill defaults; raises ExecutorConfigError."""
@@ -130,11 +162,12 @@ class ComputeSettings:
         if not self.connect_timeout > 0:
             raise ExecutorConfigError("connect timeout must be positive")
         workers = self.workers
+        given = self.workers_given or workers is not None
         if workers is None:
             workers = max(1, usable_cores() // self.threads_per_worker)
         if mode in ("local", "auto"):
             self._check_memory(workers)
-        return replace(self, mode=mode, workers=workers)
+        return replace(self, mode=mode, workers=workers, workers_given=given)
 
     def _check_memory(self, workers: int) -> None:
         try:

@@ -54,8 +54,9 @@ def executor_option():
     return typer.Option(
         "auto",
         "--executor",
-        help="Where passes run: auto (in this process for small work, a local Dask cluster once a pass "
-        "has >= 2^25 paths, i.e. p >= 12), inprocess (never Dask), local (always a local Dask cluster). "
+        help="Where passes run: auto (in this process for small work; a local Dask cluster once a pass "
+        "has >= 2^29 paths, i.e. p >= 14, and >= 2 cores are idle), inprocess (never Dask), "
+        "local (always a local Dask cluster). "
         "--scheduler and --cluster-config choose the other two ways.",
     )
 

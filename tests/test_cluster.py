@@ -308,8 +308,8 @@ def test_batches_cover_every_chunk_once():
 
 
 def test_auto_switch_point_and_small_work_stays_inprocess():
-    assert not worth_a_cluster(plan_chunks(11))
-    assert worth_a_cluster(plan_chunks(12))
+    assert not worth_a_cluster(plan_chunks(13))
+    assert worth_a_cluster(plan_chunks(14))
     with open_executor(ComputeSettings(mode="auto", quiet=True)) as ex:
         ev = evaluate(parse_mixture("2:0.5"), [0.5], [math.pi / 8], run_pass=ex.run_pass)
         assert ex.describe()["executor"] == "auto (inprocess)"
