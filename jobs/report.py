@@ -46,7 +46,7 @@ from leadline.kernels.extrapolate import (
     extrapolate,
     power_law_gaps,
 )
-from leadline.kernels.ground_states import lookup_ground_state
+from leadline.kernels.ground_states import lookup_ground_state, union_bound
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
 __all__ = [
@@ -520,6 +520,15 @@ def build_ensemble_report(
             notes.append("some V_p* is at or above the reference ground state: gap fit skipped; check the reference")
         else:
             gap_fits = power_law_gaps(depths, values, gs, target_ratios=target_ratios, threshold=alg)
+    mixture = _ensemble_mixture(meta)
+    if extrap is not None and mixture is not None:
+        bound = union_bound(mixture)
+        if extrap.high > bound:
+            notes.append(
+                f"some fits extrapolate above the rigorous upper bound sqrt(2 ln 2 xi(1)) = {bound:.4f} on any "
+                f"energy density of this mixture (highest fit {extrap.high:.4f}): those fits are unphysical, "
+                "and the spread is a warning that V_p* is not yet in its asymptotic regime"
+            )
     reach_alg = extrap.depth_reaching(alg) if (extrap is not None and alg is not None) else None
     reach_gs = extrap.depth_reaching(gs) if (extrap is not None and gs is not None) else None
 
@@ -578,7 +587,7 @@ def _fmt(x: float | None, spec: str, missing: str = "-") -> str:
 
 def _fmt_depth(d: float | None) -> str:
     if d is None:
-        return "not reached"
+        return "never (fit saturates below)"
     return f"{d:.3g}" if d < 1e4 else f"{d:.2e}"
 
 
@@ -659,9 +668,13 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
             out.append(f"V_inf / GS estimate: {ex.central / refs.ground_state:.4f} +- {ex.spread / refs.ground_state:.4f}")
         for name, reach in (("ALG", rep.reach_threshold), ("GS", rep.reach_ground_state)):
             if reach is not None:
+                if reach["median_depth"] is not None:
+                    where = f"p ~ {_fmt_depth(reach['median_depth'])} (median over the fits that reach it)"
+                else:
+                    where = "not reached by most fits (their V_inf stays below)"
                 out.append(
                     f"depth where the polynomial fits reach {name} = {reach['level']:.6f} (estimate): "
-                    f"{_fmt_depth(reach['median_depth'])} ({reach['fits_reaching']} of {reach['fits']} fits reach it)"
+                    f"{where}; {reach['fits_reaching']} of {reach['fits']} fits reach it"
                 )
         out.append("")
     if rep.gap_fits:

@@ -320,3 +320,12 @@ def test_shipped_demo_spec_is_valid(tmp_path):
     assert spec.executor == "local" and spec.workers == 2
     assert (spec.pmin, spec.pmax) == (1, 6)
     assert spec.store == tmp_path / "demo.zarr"
+
+
+def test_fits_above_the_union_bound_are_flagged():
+    # stated synthetic model V_p = 1.5 - 1/p for xi = x^2/2: its limit 1.5 exceeds the bound
+    # sqrt(2 ln 2 xi(1)) = sqrt(ln 2) = 0.8326 (first-moment bound), so the report must say so
+    depths = [{"p": p, "value": 1.5 - 1.0 / p, "gamma": [], "beta": [], "gradient_norm": None} for p in range(1, 6)]
+    study = InMemoryStudy("bound", [({"label": "x", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    rep = build_report(study, ground_states={"x": 2.0}).ensembles[0]
+    assert any("upper bound" in n and "0.8326" in n for n in rep.notes)
