@@ -813,7 +813,7 @@ def render_json(report: StudyReport) -> str:
 
 
 # -------------------------------------------------------------------- plots
-FIGURE_SIZE_INCHES = (8.0, 5.5)
+FIGURE_SIZE_INCHES = (11.0, 5.5)
 FIGURE_DPI = 100
 ANGLE_PANEL_INCHES = (10.0, 3.2)  # width, height per ensemble row
 
@@ -827,7 +827,7 @@ def angle_plot_path(output: Path) -> Path:
 def write_plots(report: StudyReport, output: Path) -> list[Path]:
     """Write the two figures; return their paths.
 
-    ``output`` (FILE.png, 800 x 550 pixels): V_p* against 1/p per ensemble,
+    ``output`` (FILE.png, 1100 x 550 pixels, legend at the right): V_p* against 1/p per ensemble,
     markers for the stored values, the representative polynomial fit (the
     one whose V_inf is closest to the central estimate) extended to 1/p = 0,
     the extrapolated V_inf +- spread as an error bar at 1/p = 0, and
@@ -864,7 +864,7 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
             ax.plot(xs, fit.predict(xs), "-", color=color, lw=1.5, alpha=0.9,
                     label=f"  fits in 1/p (faint: all {len(ex.fits)}; bold: degree {fit.degree}, last {fit.k} depths)")
             ax.errorbar([0.0], [ex.central], yerr=[ex.spread], fmt="s", color=color, capsize=4, ms=5,
-                        label=f"  V_inf ~ {ex.central:.4f} +- {ex.spread:.4f} (estimate)")
+                        label=f"{rep.label}: V_inf ~ {ex.central:.4f} +- {ex.spread:.4f} (estimate)")
         refs = rep.references
         if refs.ground_state is not None:
             ax.axhline(refs.ground_state, color=color, ls="--", lw=1.0,
@@ -874,7 +874,7 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
                        label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
     ax.set_xlabel("1/p  (inverse QAOA depth)")
     ax.set_ylabel("V_p*  (energy density per spin, dimensionless)")
-    ax.set_title(f"{report.name}: optimal QAOA energy vs 1/p (extrapolations are estimates)", fontsize=10)
+    ax.set_title(f"{report.name}\noptimal QAOA energy vs 1/p (extrapolations are estimates, not bounds)", fontsize=9)
     ax.set_xlim(-0.03, 1.03)
     ax.grid(True, alpha=0.3)
     top = ax.secondary_xaxis("top")
@@ -883,8 +883,8 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     top.tick_params(labelsize=7)
     top.set_xlabel("depth p", fontsize=8, labelpad=2)
     if report.ensembles:
-        ax.legend(fontsize=6.5, loc="lower left", framealpha=0.85)
-    fig.subplots_adjust(left=0.1, right=0.97, top=0.86, bottom=0.1)
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0, frameon=False)
+    fig.subplots_adjust(left=0.075, right=0.63, top=0.86, bottom=0.1)
     fig.savefig(paths[0], dpi=FIGURE_DPI)
     plt.close(fig)
 
