@@ -45,7 +45,7 @@ from leadline.kernels.chunks import PassInput, chunk_partial, prepare_low_side
 from leadline.kernels.plan import ChunkPlan, plan_chunks
 
 from .errors import ExecutorError, SchedulerUnreachable
-from .mapreduce import OnChunk, OrderedSum, check_done, map_reduce_pass
+from .mapreduce import OnChunk, OrderedSum, Placement, check_done, map_reduce_pass
 from .progress import ProgressDisplay, progress_wanted
 from .settings import ComputeSettings, auto_workers, worker_memory_limit, worth_a_cluster
 from .workerenv import SINGLE_THREAD_ENV
@@ -152,6 +152,7 @@ class DaskExecutor(Executor):
         self.cluster = cluster
         self.expected_threads = max(1, int(expected_threads))
         self.wait_for_workers_s = float(wait_for_workers_s)
+        self.placement = Placement()
 
     def worker_threads(self) -> int:
         return int(sum(self.client.nthreads().values()))
@@ -168,7 +169,10 @@ class DaskExecutor(Executor):
                 ) from None
             threads = self.worker_threads()
         slots = max(threads, self.expected_threads)
-        return map_reduce_pass(self.client, inp, plan, slots=slots, done=done, on_chunk=on_chunk, progress=self.progress)
+        return map_reduce_pass(
+            self.client, inp, plan, slots=slots, done=done, on_chunk=on_chunk, progress=self.progress,
+            placement=self.placement,
+        )
 
     def describe(self) -> dict:
         info = self.client.scheduler_info() if self.client.status == "running" else {}

@@ -13,6 +13,10 @@ wait), exactly as ``kernels.chunks.run_pass_inprocess`` does, so the sum is
 bit-for-bit the same whatever the number of workers, batch sizes or
 completion order.
 
+Locality: the blocked kernel memoizes a forward pass's products in the worker
+process; :class:`Placement` sends each adjoint batch to the worker that ran
+the same forward batch (a hint only, results never depend on it).
+
 Failures: a task that raises is rerun by distributed (``retries=``); a task
 lost with its worker is rescheduled by the scheduler, and if the scheduler
 gives up on it (``KilledWorker``) or it is cancelled, it is resubmitted under
@@ -33,7 +37,7 @@ from leadline.kernels.plan import ChunkPlan
 
 from .errors import ChunkFailure, ExecutorError
 
-__all__ = ["TASKS_PER_SLOT", "batch_chunks", "OrderedSum", "map_reduce_pass", "pass_label", "check_done"]
+__all__ = ["TASKS_PER_SLOT", "batch_chunks", "OrderedSum", "map_reduce_pass", "pass_label", "check_done", "Placement"]
 
 #: tasks per worker thread and pass (load balance vs per-task overhead)
 TASKS_PER_SLOT = 4
@@ -44,6 +48,48 @@ TASK_RESUBMITS = 3
 
 OnChunk = Callable[[int, np.ndarray], None]
 _serial = itertools.count()
+
+
+def partials_and_worker(inp: PassInput, plan: ChunkPlan, chunks) -> tuple[list[np.ndarray], str | None]:
+    """The task: ``pass_partials`` plus the address of the worker that ran it."""
+    try:
+        from distributed import get_worker
+
+        where = get_worker().address
+    except (ImportError, ValueError):
+        where = None
+    return pass_partials(inp, plan, chunks), where
+
+
+class Placement:
+    """Where each batch of a forward pass ran, so its adjoint pass can go to the same worker.
+
+    The blocked kernel memoizes a forward pass's products per process
+    (kernels/blocked.py); an adjoint pass with the same M and beta on the same
+    worker reuses them.  Only a hint (``allow_other_workers``): results do not
+    depend on it.  Keeps the last ``capacity`` forward passes.
+    """
+
+    def __init__(self, capacity: int = 64):
+        self.capacity = int(capacity)
+        self._where: dict[str, dict[tuple, str]] = {}
+
+    @staticmethod
+    def forward_key(inp: PassInput, plan: ChunkPlan) -> str:
+        return PassInput(inp.p, inp.M, inp.beta).fingerprint() + repr(plan.to_json())
+
+    def record(self, inp: PassInput, plan: ChunkPlan, batch, worker: str | None) -> None:
+        if inp.backward or worker is None:
+            return
+        key = self.forward_key(inp, plan)
+        if key not in self._where and len(self._where) >= self.capacity:
+            self._where.pop(next(iter(self._where)))
+        self._where.setdefault(key, {})[tuple(batch)] = worker
+
+    def lookup(self, inp: PassInput, plan: ChunkPlan, batch) -> str | None:
+        if not inp.backward:
+            return None
+        return self._where.get(self.forward_key(inp, plan), {}).get(tuple(batch))
 
 
 def pass_label(inp: PassInput, plan: ChunkPlan) -> str:
@@ -120,6 +166,7 @@ def map_reduce_pass(
     progress=None,
     retries: int = TASK_RETRIES,
     resubmits: int = TASK_RESUBMITS,
+    placement: Placement | None = None,
 ) -> np.ndarray:
     """Run one pass on ``client`` and return the chunk-ordered sum, (2p+2, 2p+1) complex.
 
@@ -132,6 +179,7 @@ def map_reduce_pass(
     on_chunk : called as ``on_chunk(k, partial)`` in this thread for every newly
         computed chunk as its task arrives (arrival order, chunk order within a task)
     progress : a ProgressDisplay or None
+    placement : remembers where forward batches ran and steers adjoint batches there
     """
     from distributed import as_completed
     from distributed.scheduler import KilledWorker
@@ -156,7 +204,11 @@ def map_reduce_pass(
         attempts[b] = attempts.get(b, 0) + 1
         batch = batches[b]
         key = f"leadline-pass-{token}-{serial}-b{b}-a{attempts[b]}"
-        fut = client.submit(pass_partials, inp, plan, batch, key=key, retries=retries, pure=False)
+        hint = placement.lookup(inp, plan, batch) if placement is not None else None
+        fut = client.submit(
+            partials_and_worker, inp, plan, batch, key=key, retries=retries, pure=False,
+            workers=[hint] if hint else None, allow_other_workers=bool(hint),
+        )
         batch_of[fut.key] = b
         return fut
 
@@ -171,11 +223,13 @@ def map_reduce_pass(
             status = fut.status
             if status == "finished":
                 try:
-                    partials = fut.result()
+                    partials, worker = fut.result()
                 except Exception as exc:  # lost between completion and transfer
                     status, error = "lost", exc
                 else:
                     fut.release()
+                    if placement is not None:
+                        placement.record(inp, plan, batch, worker)
                     if len(partials) != len(batch):
                         raise ExecutorError(f"task for chunks {batch[0]}-{batch[-1]} returned {len(partials)} partials")
                     for k, part in zip(batch, partials):

@@ -76,9 +76,24 @@ def usable_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def product_cache_bytes() -> int:
+    """Bytes of the blocked kernel's per-process memo of forward products (kernels/blocked.py).
+
+    Read from $LEADLINE_PRODUCT_CACHE_MB like the kernel does (default 384 MiB there).
+    """
+    try:
+        return max(0, int(float(os.environ.get("LEADLINE_PRODUCT_CACHE_MB", "384")) * 2**20))
+    except ValueError:
+        return 384 * 2**20
+
+
 def worker_memory_limit(memory_budget: int, threads_per_worker: int) -> int:
-    """Bytes per worker process: base + threads x budget x headroom."""
-    return int(WORKER_BASE_MEMORY + threads_per_worker * memory_budget * CHUNK_MEMORY_HEADROOM)
+    """Bytes per worker process: base + kernel memo + threads x budget x headroom.
+
+    Dask pauses a worker at 80 % of this and restarts it at 95 %, so it must
+    cover the peak, not the average.
+    """
+    return int(WORKER_BASE_MEMORY + product_cache_bytes() + threads_per_worker * memory_budget * CHUNK_MEMORY_HEADROOM)
 
 
 def worth_a_cluster(plan: ChunkPlan) -> bool:

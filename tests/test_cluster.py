@@ -289,6 +289,20 @@ def test_done_and_on_chunk_hook(where, request):
         ex.run_pass(inp, plan, done={plan.n_chunks: partials[0]})
 
 
+def test_adjoint_batches_are_steered_to_the_forward_worker(local2):
+    from leadline.cluster.mapreduce import batch_chunks as batches_of
+
+    inp, plan = _reference_pass(p=4, n_high=5)
+    forward = PassInput(inp.p, inp.M, inp.beta)
+    ref_f = InProcessExecutor().run_pass(forward, plan)
+    ref_b = InProcessExecutor().run_pass(inp, plan)
+    np.testing.assert_array_equal(local2.run_pass(forward, plan), ref_f)
+    slots = local2.worker_threads()
+    hints = [local2.placement.lookup(inp, plan, b) for b in batches_of(range(plan.n_chunks), slots)]
+    assert all(h in local2.client.nthreads() for h in hints)  # every adjoint batch has a home
+    np.testing.assert_array_equal(local2.run_pass(inp, plan), ref_b)  # a hint never changes numbers
+
+
 # --------------------------------------------------------------------------- workers and settings
 def test_workers_run_single_threaded_blas(local2):
     reports = local2.client.run(worker_report)
