@@ -20,7 +20,15 @@ is one complex matrix product:
 so a path visit costs three complex multiply-adds inside BLAS (zgemm) instead
 of about a dozen memory-bound elementwise operations.  The backward pass has
 s(a) = A(y,x1) + T2(y,x2) + s_LL(x1,x2) (A = s_HH + x1 cross term), and each
-marginal of W s needs three products (nine in all).
+marginal of W s needs three products (nine in all).  Two of them (B K2 and
+B^T R0) do not involve s and are the forward pass's own at the same M: they are
+reused from a bounded in-process tape (:class:`ProductCache`), so an adjoint
+pass costs seven products after its forward pass ran in the same process.  The
+last adjoint pass of a gradient has M = 0; there the products collapse to sums.
+
+Layout: work arrays are (pattern, row) -- the chunk's rows on the contiguous
+axis -- so Kronecker builds and bit reductions stream through memory and BLAS
+takes the transposes for free.
 
 Nothing here is approximate: every number is the same finite sum of the same
 products as in the row kernel, added in a different order.
@@ -32,7 +40,16 @@ import numpy as np
 
 from . import chunks as _chunks
 
-__all__ = ["chunk_partial_blocked", "split_low", "second_moments_fast", "low_matrices"]
+__all__ = [
+    "chunk_partial_blocked",
+    "split_low",
+    "second_moments_fast",
+    "low_matrices",
+    "quadratic_split",
+    "chain_split",
+    "ProductCache",
+    "PRODUCTS",
+]
 
 
 def split_low(n_low: int) -> tuple[int, int]:
@@ -53,9 +70,8 @@ def _kron_t(first: np.ndarray, rest: np.ndarray | None, op=np.multiply) -> np.nd
     c = first.shape[1]
     if rest is None or rest.shape[0] == 0:
         return first.copy()  # callers modify the result in place
-    if rest is not None:
-        for k in range(rest.shape[0]):
-            out = op(out[:, None, :], rest[k][None, :, :]).reshape(-1, c)
+    for k in range(rest.shape[0]):
+        out = op(out[:, None, :], rest[k][None, :, :]).reshape(-1, c)
     return out
 
 
