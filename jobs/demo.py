@@ -10,7 +10,10 @@ Usage::
 2. runs ``leadline sweep DIR/demo_study.toml`` (or ``leadline resume DIR/demo.zarr`` when
    the store exists already, so an interrupted demo continues where it stopped and a finished
    one is not recomputed);
-3. prints the table (Markdown) and writes DIR/table.md, table.csv, table.json, and the figures
+3. with ``--references``, computes the ground state GS and the algorithmic threshold ALG of
+   every ensemble with ``leadline reference`` (cached in DIR/reference-cache; minutes per
+   mixture, so off by default), which adds the V_p*/GS, V_p*/ALG and "> ALG" columns;
+4. prints the table (Markdown) and writes DIR/table.md, table.csv, table.json, and the figures
    DIR/demo.png (V_p* vs 1/p) and DIR/demo-angles.png (angle schedules).
 
 Each step runs the real command line in a subprocess, exactly as a user would.
@@ -19,7 +22,9 @@ Each step runs the real command line in a subprocess, exactly as a user would.
 from __future__ import annotations
 
 import argparse
+import os
 import re
+import tomllib
 import subprocess
 import sys
 import time
@@ -36,10 +41,10 @@ def shipped_spec_text() -> str:
     return path.read_text(encoding="utf-8")
 
 
-def _leadline(*args: str, capture: bool = False) -> subprocess.CompletedProcess:
+def _leadline(*args: str, capture: bool = False, env: dict | None = None) -> subprocess.CompletedProcess:
     cmd = [sys.executable, "-m", "leadline", *args]
-    print("$ leadline " + " ".join(args), flush=True)
-    result = subprocess.run(cmd, text=True, capture_output=capture)
+    print("$ " + (" ".join(f"{k}={v}" for k, v in (env or {}).items()) + " " if env else "") + "leadline " + " ".join(args), flush=True)
+    result = subprocess.run(cmd, text=True, capture_output=capture, env={**os.environ, **env} if env else None)
     if result.returncode != 0:
         if capture:
             sys.stderr.write(result.stderr)
@@ -51,6 +56,10 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(prog="python -m leadline.jobs.demo", description=__doc__.split("\n")[0])
     parser.add_argument("--output", default="demo-output", help="output folder (default demo-output)")
     parser.add_argument("--pmax", type=int, default=None, help="deepest depth (default: the spec's, 6)")
+    parser.add_argument(
+        "--references", action="store_true",
+        help="also compute GS and ALG of every ensemble (leadline reference; minutes per mixture)",
+    )
     args = parser.parse_args(argv)
 
     out = Path(args.output).resolve()
@@ -73,9 +82,16 @@ def main(argv: list[str] | None = None) -> None:
         _leadline("sweep", str(spec_path))
     sweep_seconds = time.perf_counter() - start
 
+    env = None
+    if args.references:
+        cache = out / "reference-cache"
+        for ensemble in tomllib.loads(text)["ensemble"]:
+            _leadline("reference", "--xi", ensemble["xi"], "--cache-dir", str(cache))
+        env = {"LEADLINE_CACHE_DIR": str(cache)}
+
     for fmt, suffix in (("csv", "csv"), ("json", "json"), ("markdown", "md")):
-        _leadline("table", str(store), "--format", fmt, "--output", str(out / f"table.{suffix}"))
-    _leadline("plot", str(store), "--output", str(out / "demo.png"))
+        _leadline("table", str(store), "--format", fmt, "--output", str(out / f"table.{suffix}"), env=env)
+    _leadline("plot", str(store), "--output", str(out / "demo.png"), env=env)
     print()
     print((out / "table.md").read_text(encoding="utf-8"))
     print(f"sweep wall time {sweep_seconds:.0f} s; total {time.perf_counter() - start:.0f} s")
