@@ -511,6 +511,15 @@ def build_ensemble_report(
         notes.append("the ground-state value is recalled (from memory), not checked against its source")
     if alg is None:
         notes.append("algorithmic threshold not known for this ensemble: V_p*/ALG columns left out")
+    mixture = _ensemble_mixture(meta)
+    shipped = lookup_ground_state(mixture) if mixture is not None else None
+    if gs is not None and shipped is not None and refs.ground_state_origin != "shipped table":
+        allowed = shipped.uncertainty + (refs.ground_state_uncertainty or 0.0)
+        verdict = "agrees with" if abs(gs - shipped.ground_state) <= allowed else "DIFFERS from"
+        notes.append(
+            f"GS ({refs.ground_state_origin}) {verdict} the shipped value {shipped.ground_state:.6f} "
+            f"+- {shipped.uncertainty:.1g} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
+        )
 
     depths = [r.p for r in rows]
     values = [r.value for r in rows]
@@ -523,7 +532,6 @@ def build_ensemble_report(
             notes.append("some V_p* is at or above the reference ground state: gap fit skipped; check the reference")
         else:
             gap_fits = power_law_gaps(depths, values, gs, target_ratios=target_ratios, threshold=alg)
-    mixture = _ensemble_mixture(meta)
     if extrap is not None and mixture is not None:
         bound = union_bound(mixture)
         if extrap.high > bound:

@@ -299,6 +299,8 @@ def test_computed_references_fill_the_ratio_and_threshold_columns(study, tmp_pat
     sk = report.ensembles[0].references
     # Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002): 0.763166; coarse steps stay within 2e-3
     assert sk.ground_state == pytest.approx(SK_PARISI, abs=2e-3)
+    # the shipped value is still shown as a cross-check next to the computed one
+    assert any("shipped value 0.763166" in n for n in report.ensembles[0].notes)
     text = render_markdown(report)
     assert "V_p*/ALG" in text and "> ALG" in text and "computed" in text
     rows = list(csv.DictReader(io.StringIO(render_csv(report))))
