@@ -1,4 +1,4 @@
-# Every target installs what it needs into .venv (only a Python >= 3.10 is required).
+# Every target installs what it needs into .venv (only a Python >= 3.11 is required).
 PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin
