@@ -72,14 +72,24 @@ def run_module(name: str, quick: bool, timeout: float = 4 * 3600, optimize_p12: 
         opt = (10, 12) if optimize_p12 else (10,)
         return module.run(quick=quick, optimize_p=opt, log=lambda s: print(s, file=sys.stderr, flush=True))
     cmd = [sys.executable, os.path.abspath(__file__), "--module-worker", name] + (["--quick"] if quick else [])
-    proc = subprocess.run(cmd, stdout=subprocess.PIPE, text=True, timeout=timeout)
+    lines: list[str] = []
+    with subprocess.Popen(cmd, stdout=subprocess.PIPE, text=True) as proc:
+        for line in proc.stdout:  # progress lines stream through; the last one is the JSON result
+            if lines:
+                sys.stderr.write("  " + lines[-1])
+                sys.stderr.flush()
+            lines.append(line)
+        try:
+            proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            return {"benchmark": name, "error": f"timed out after {timeout:.0f} s"}
     if proc.returncode != 0:
         return {"benchmark": name, "error": f"exit code {proc.returncode}"}
-    lines = proc.stdout.strip().splitlines()
     try:
         return json.loads(lines[-1])
     except (IndexError, json.JSONDecodeError):
-        return {"benchmark": name, "error": "no JSON result on the last output line", "output": proc.stdout[-2000:]}
+        return {"benchmark": name, "error": "no JSON result on the last output line", "output": "".join(lines)[-2000:]}
 
 
 def _flat_table(name: str, result: dict) -> str:
@@ -121,6 +131,7 @@ def main(argv=None) -> int:
     for name in chosen:
         print(f"== {name}", file=sys.stderr, flush=True)
         results[name] = run_module(name, args.quick, optimize_p12=args.optimize_p12)
+        _write(args.output + ".partial", {"format": "leadline.bench", "version": 1, "started": started, "quick": args.quick, "results": results})
     for name, result in results.items():
         if name == "kernel" and "error" not in result:
             print("[kernel]  (SK model; times are medians; per core = one BLAS thread; ratios measured in this run)")
@@ -129,13 +140,19 @@ def main(argv=None) -> int:
             print(_flat_table(name, result))
         print()
     doc = {"format": "leadline.bench", "version": 1, "started": started, "quick": args.quick, "results": results}
-    os.makedirs(os.path.dirname(os.path.abspath(args.output)), exist_ok=True)
-    tmp = args.output + ".tmp"
-    with open(tmp, "w") as fh:
-        json.dump(doc, fh, indent=1, default=float)
-    os.replace(tmp, args.output)
+    _write(args.output, doc)
+    if os.path.exists(args.output + ".partial"):
+        os.remove(args.output + ".partial")
     print(f"wrote {os.path.relpath(args.output)}")
     return 0
+
+
+def _write(path: str, doc: dict) -> None:
+    os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)
+    tmp = path + ".tmp"
+    with open(tmp, "w") as fh:
+        json.dump(doc, fh, indent=1, default=float)
+    os.replace(tmp, path)
 
 
 if __name__ == "__main__":
