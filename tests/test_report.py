@@ -1,7 +1,7 @@
 """Tables and plots from a small real study store.
 
-The store is written by the storage layer with real optimizations (SK model,
-p = 1..3, and one mixture without a known ground state); the table must show
+The store is written by a real in-process sweep (SK model and one mixture
+without a shipped ground state, p = 1..3); the table must show
 exactly the stored values, every format must parse, the figures must open
 with the documented size, and the SK numbers must agree with the published
 ones.
@@ -31,8 +31,7 @@ from leadline.jobs.report import (
     write_plots,
 )
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.optimize import optimize_depth
-from leadline.storage import StudyStore, open_study
+from leadline.storage import open_study
 
 # Farhi, Goldstone, Gutmann, Zhou, "The Quantum Approximate Optimization Algorithm and the
 # Sherrington-Kirkpatrick Model at Infinite Size", Quantum 6, 759 (2022), Table 1 (4 decimals).
@@ -40,38 +39,36 @@ SK_PUBLISHED = {1: 0.3033, 2: 0.4075, 3: 0.4726, 4: 0.5157, 5: 0.5476, 6: 0.5721
 # Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002): Parisi ground-state energy of SK, xi = x^2/2.
 SK_PARISI = 0.763166
 
-ENSEMBLES = [
-    {"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
-     "reference": {"ground_state": None, "source": None}},
-    {"label": "mix24", "kind": "dense", "xi": "2:0.5,4:0.25", "q": None, "degree": None,
-     "reference": {"ground_state": None, "source": None}},
-]
-PMAX = {"sk": 3, "mix24": 2}
+SPEC = """
+[study]
+name = "report-test"
+store = "study.zarr"
+
+[depths]
+pmax = 3
+
+[optimizer]
+restarts = 1
+
+[compute]
+executor = "inprocess"
+
+[[ensemble]]
+label = "sk"
+xi = "2:0.5"
+
+[[ensemble]]
+label = "mix24"
+xi = "2:0.5,4:0.25"
+"""
 
 
-def _write_study(path):
-    spec = {"name": "report-test", "ensembles": ENSEMBLES, "depths": {"pmin": 1, "pmax": 3}}
-    with StudyStore.create(path, name="report-test", spec=spec, spec_toml="", ensembles=ENSEMBLES) as store:
-        for ens in ENSEMBLES:
-            mixture = parse_mixture(ens["xi"])
-            previous = None
-            for p in range(1, PMAX[ens["label"]] + 1):
-                res = optimize_depth(mixture, p, previous=previous, seed=0)
-                previous = (res.gamma, res.beta)
-                result = {
-                    "p": p,
-                    "value": float(res.value),
-                    "gamma": [float(x) for x in res.gamma],
-                    "beta": [float(x) for x in res.beta],
-                    "gradient_norm": float(res.gradient_norm),
-                    "evaluations": int(res.evaluations),
-                    "wall_time_s": float(res.wall_time),
-                    "converged": bool(res.converged),
-                }
-                from leadline.kernels.plan import plan_chunks
-
-                store.depth(ens["label"], p, plan_chunks(p, 2**26))
-                store.finish_depth(ens["label"], p, result, {"wall_s": float(res.wall_time)})
+def _write_study(folder):
+    """A real store written by a real sweep (in-process executor, SK and a mixture, p = 1..3)."""
+    spec = folder / "study.toml"
+    spec.write_text(SPEC)
+    main(["sweep", str(spec), "--quiet"])
+    return folder / "study.zarr"
 
 
 @pytest.fixture(scope="module", autouse=True)
@@ -84,9 +81,7 @@ def empty_reference_cache(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def store_path(tmp_path_factory):
-    path = tmp_path_factory.mktemp("report") / "study.zarr"
-    _write_study(path)
-    return path
+    return _write_study(tmp_path_factory.mktemp("report"))
 
 
 @pytest.fixture(scope="module")
