@@ -521,6 +521,13 @@ def build_ensemble_report(
             f"+- {shipped.uncertainty:.1g} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
         )
 
+    # ALG below GS beyond both uncertainties (an overlap gap): only then is "the depth where
+    # V_p* reaches ALG" a different question from reaching GS
+    separated = None
+    if gs is not None and alg is not None:
+        separated = gs - alg > (refs.ground_state_uncertainty or 0.0) + (refs.threshold_uncertainty or 0.0)
+        if not separated:
+            notes.append("ALG equals GS within their uncertainties (no overlap gap): no separate depth to reach ALG")
     depths = [r.p for r in rows]
     values = [r.value for r in rows]
     extrap = extrapolate(depths, values) if len(rows) >= 2 else None
@@ -531,7 +538,9 @@ def build_ensemble_report(
         if any(v >= gs for v in values):
             notes.append("some V_p* is at or above the reference ground state: gap fit skipped; check the reference")
         else:
-            gap_fits = power_law_gaps(depths, values, gs, target_ratios=target_ratios, threshold=alg)
+            gap_fits = power_law_gaps(
+                depths, values, gs, target_ratios=target_ratios, threshold=alg if separated else None
+            )
     if extrap is not None and mixture is not None:
         bound = union_bound(mixture)
         if extrap.high > bound:
@@ -540,7 +549,7 @@ def build_ensemble_report(
                 f"energy density of this mixture (highest fit {extrap.high:.4f}): those fits are unphysical, "
                 "and the spread is a warning that V_p* is not yet in its asymptotic regime"
             )
-    reach_alg = extrap.depth_reaching(alg) if (extrap is not None and alg is not None) else None
+    reach_alg = extrap.depth_reaching(alg) if (extrap is not None and alg is not None and separated) else None
     reach_gs = extrap.depth_reaching(gs) if (extrap is not None and gs is not None) else None
 
     return EnsembleReport(
@@ -701,7 +710,7 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
             cells = [str(g.k), f"{g.depths[0]}..{g.depths[-1]}", f"{g.amplitude:.4f}", f"{g.exponent:.4f}"]
             cells += [_fmt_depth(d) for d in g.ratio_depths.values()]
             if has_alg:
-                cells.append(_fmt_depth(g.threshold_depth) if refs.threshold < refs.ground_state else "n/a (ALG = GS)")
+                cells.append(_fmt_depth(g.threshold_depth) if g.threshold is not None else "n/a (ALG = GS)")
             g_rows.append(cells)
         out += _markdown_table(header, g_rows, align)
         out.append("")
