@@ -382,8 +382,12 @@ class ProductCache:
             self._bytes = 0
 
 
-#: the process-wide product cache used by :func:`chunk_partial_blocked`
+#: the process-wide product cache used by :func:`chunk_partial_blocked`: the two row
+#: products B K2 and B^T R0 of each chunk, (2^l1 + 2^l2) x rows entries
 PRODUCTS = ProductCache()
+#: the column-sum product R K2^T of each chunk (2^l entries, larger): its own cache,
+#: so it never evicts the row products ($LEADLINE_COLUMN_CACHE_MB, default 256 MiB)
+COLUMNS = ProductCache(int(float(__import__("os").environ.get("LEADLINE_COLUMN_CACHE_MB", "256")) * 2**20))
 
 
 def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
@@ -437,8 +441,9 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
         P = R * Pb  # (2^l1, c): sums over x2
         C = K2 * Cb  # (2^l2, c): sums over x1
         C *= row
-        u = R @ K2.T  # (2^l1, 2^l2): sums over the rows
-        u *= B
+        U = R @ K2.T  # (2^l1, 2^l2): sums over the rows
+        COLUMNS.put(inp, plan, chunk, U)
+        u = U * B
         total, mom1 = bit_sums_t(P)
         _, mom2 = bit_sums_t(C)
         mom = np.concatenate([mom1, mom2], axis=1)
@@ -492,8 +497,10 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
         R0 *= row
         RA *= row
         if not trivial:
-            V = R0 @ K2.T
-            V *= mats["Es"]
+            cachedU = COLUMNS.get(inp, plan, chunk)
+            V = cachedU[0] * mats["Es"] if cachedU is not None else R0 @ K2.T
+            if cachedU is None:
+                V *= mats["Es"]
             X2 = np.concatenate([RA, R0], axis=1) @ np.concatenate([K2, K2T2], axis=1).T
             X2 *= E
             V += X2

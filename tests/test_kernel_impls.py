@@ -248,11 +248,13 @@ def test_product_cache_hit_equals_miss():
     inp_f = PassInput(p, inp_b.M, inp_b.beta)
     for plan in (plan_chunks(p), ChunkPlan(p, 3, 2), ChunkPlan(p, 1, 2)):
         blocked.PRODUCTS.clear()
+        blocked.COLUMNS.clear()
         miss = chunks.run_pass_inprocess(inp_b, plan, impl="blocked")
-        hits_before = blocked.PRODUCTS.hits
-        chunks.run_pass_inprocess(inp_f, plan, impl="blocked")  # fills the cache
+        hits_before = blocked.PRODUCTS.hits, blocked.COLUMNS.hits
+        chunks.run_pass_inprocess(inp_f, plan, impl="blocked")  # fills the caches
         hit = chunks.run_pass_inprocess(inp_b, plan, impl="blocked")
-        assert blocked.PRODUCTS.hits - hits_before == plan.n_chunks
+        assert blocked.PRODUCTS.hits - hits_before[0] == plan.n_chunks
+        assert blocked.COLUMNS.hits - hits_before[1] == plan.n_chunks
         assert_close(hit, miss, rtol=1e-14)
         assert_close(hit, dense_pass(p, inp_b.M, inp_b.beta, inp_b.adjoint))
     small = blocked.ProductCache(max_bytes=1000)
