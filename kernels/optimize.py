@@ -22,7 +22,10 @@ in tests/test_optimize.py):
        (X^{(x)n} commutes with H when H(z) = H(-z) and fixes |+>);
   (S3) (g, b) -> (-g, -b) (complex conjugation: H, B and |+> are real);
   (S4) g -> -g alone flips the sign of V (J -> -J leaves the ensemble invariant),
-       so a maximizer never has a sign-flipped twin with the same value.
+       so a maximizer never has a sign-flipped twin with the same value;
+  (S5) if xi has only odd powers: b_t -> b_t + pi/2 together with
+       g_s -> -g_s for s <= t (the inserted X^{(x)n} moves to |+>, turning H into
+       H(-z) = -H in the layers before it).
 Everything is deterministic for fixed inputs and seed, so a run that is
 interrupted and restarted replays exactly the same sequence of evaluations.
 """
@@ -49,6 +52,7 @@ __all__ = [
     "optimize_depth",
     "canonical_angles",
     "beta_period",
+    "canonical_width",
     "interpolate_angles",
     "default_restarts",
 ]
@@ -100,21 +104,33 @@ def _wrap(b: np.ndarray, period: float) -> np.ndarray:
     return r
 
 
+def canonical_width(mixture: Mixture) -> float:
+    """Width of the interval that canonical b_t lie in: pi/2 if xi has one parity, else pi."""
+    return math.pi if (mixture.has_odd and mixture.has_even) else math.pi / 2
+
+
 def canonical_angles(mixture: Mixture, gamma, beta) -> tuple[np.ndarray, np.ndarray]:
     """One representative of the symmetry class of (gamma, beta); V_p is unchanged.
 
-    Each b_t is reduced into (-P/2, P/2] with P = :func:`beta_period`; then the
-    overall sign (S3) is chosen so that the first nonzero gamma is positive
-    (if all gamma vanish, so that the first nonzero beta is positive).
+    Each b_t is reduced into (-W/2, W/2] with W = :func:`canonical_width`: by the
+    period (S1/S2) and, when xi has only odd powers, by (S5) b_t -> b_t +- pi/2 with
+    g_1..g_t -> -g_1..-g_t.  Then the overall sign (S3) is chosen so that the first
+    nonzero gamma is positive (if all gamma vanish, the first nonzero beta).
     """
     g = np.asarray(gamma, dtype=float).copy()
     P = beta_period(mixture)
+    W = canonical_width(mixture)
     b = _wrap(np.asarray(beta, dtype=float), P)
+    if W < P:  # odd powers only: fold b_t by pi/2, flipping the phases before it
+        for t in range(b.size):
+            if not (-W / 2 < b[t] <= W / 2):
+                b[t] -= math.copysign(W, b[t])
+                g[: t + 1] *= -1
     lead = next((x for x in g if abs(x) > 1e-15), None)
     if lead is None:
-        lead = next((x for x in b if abs(x) > 1e-15 and not np.isclose(abs(x), P / 2)), 0.0)
+        lead = next((x for x in b if abs(x) > 1e-15 and not np.isclose(abs(x), W / 2)), 0.0)
     if lead < 0:
-        g, b = -g, _wrap(-b, P)
+        g, b = -g, _wrap(-b, W)
     return g, b
 
 

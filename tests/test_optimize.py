@@ -23,6 +23,7 @@ from leadline.kernels.mixture import Mixture, parse_mixture
 from leadline.kernels.optimize import (
     beta_period,
     canonical_angles,
+    canonical_width,
     interpolate_angles,
     optimize_depth,
 )
@@ -83,7 +84,7 @@ def _angles(data, p):
     return g, b
 
 
-MIXES = [parse_mixture(s) for s in ("2:0.5", "2:0.3,4:0.6", "3:1", "1:0.3,2:0.5", "2:0.4,3:0.4,5:0.2")]
+MIXES = [parse_mixture(s) for s in ("2:0.5", "2:0.3,4:0.6", "3:1", "1:0.3,3:0.5,5:0.2", "1:0.3,2:0.5", "2:0.4,3:0.4,5:0.2")]
 
 
 @settings(max_examples=30, deadline=None)
@@ -104,11 +105,16 @@ def test_symmetries_property(p, k, which, data):
     assert evaluate(mix, -g, -b).value == pytest.approx(V, abs=1e-12)
     # (S4) g -> -g flips the sign
     assert evaluate(mix, -g, b).value == pytest.approx(-V, abs=1e-12)
+    # (S5) odd powers only: b_t -> b_t + pi/2 with g_1..g_t negated
+    if not mix.has_even:
+        g5 = g.copy()
+        g5[: t + 1] *= -1
+        assert evaluate(mix, g5, b + shift / 2).value == pytest.approx(V, abs=1e-12)
     # canonical form keeps the value and is idempotent
     cg, cb = canonical_angles(mix, g, b)
     assert evaluate(mix, cg, cb).value == pytest.approx(V, abs=1e-12)
-    P = beta_period(mix)
-    assert np.all(cb > -P / 2 - 1e-12) and np.all(cb <= P / 2 + 1e-12)
+    W = canonical_width(mix)
+    assert np.all(cb > -W / 2 - 1e-12) and np.all(cb <= W / 2 + 1e-12)
     cg2, cb2 = canonical_angles(mix, cg, cb)
     np.testing.assert_allclose(cg2, cg, atol=1e-14)
     np.testing.assert_allclose(cb2, cb, atol=1e-12)
@@ -181,6 +187,21 @@ def test_pure_3spin_p1_matches_closed_form_maximum():
     )
     r = optimize_depth(parse_mixture("3:1"), 1)
     assert r.value == pytest.approx(-best.fun, abs=1e-9)
+
+
+def test_warm_start_beats_cold_search_for_odd_q():
+    # the warm-started ladder must find the best optimum that many independent random
+    # starts find at p = 3 (pure 3-spin: two equivalent p = 1 optima, b and pi/2 - b, are
+    # identified by (S5), so INTERP follows one smooth schedule)
+    mix = parse_mixture("3:1")
+    previous = previous_value = None
+    for p in range(1, 4):
+        r = optimize_depth(mix, p, previous=previous, previous_value=previous_value)
+        previous, previous_value = (r.gamma, r.beta), r.value
+    cold = optimize_depth(mix, 3, restarts=16, seed=1)
+    assert r.value >= cold.value - 1e-9
+    # a smooth schedule: gamma increasing, beta decreasing (common practice for optimal schedules)
+    assert np.all(np.diff(r.gamma) > 0) and np.all(np.diff(r.beta) < 0)
 
 
 @pytest.mark.parametrize("spec", ["3:1", "2:0.5,4:0.5", "1:0.3,3:0.7"])
