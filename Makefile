@@ -9,7 +9,7 @@ STAMP  := $(VENV)/.installed
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e ".[test,fast]"
+	$(BIN)/python -m pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
 install: $(STAMP)
@@ -28,6 +28,7 @@ demo: $(STAMP)
 
 ## Benchmarks (long timings live here, never in tests).
 bench: $(STAMP)
+	$(BIN)/python -m pip install --quiet -e ".[bench]"
 	$(BIN)/python benchmarks/run.py
 
 clean:
