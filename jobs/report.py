@@ -47,7 +47,9 @@ from leadline.kernels.extrapolate import (
     power_law_gaps,
 )
 from leadline.kernels.ground_states import lookup_ground_state, union_bound
+from leadline.kernels.sparse import scaled_value
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
+from .universality import render_universality_markdown, universality_views
 
 __all__ = [
     "InMemoryStudy",
@@ -421,12 +423,16 @@ class EnsembleReport:
     reach_threshold: dict | None
     reach_ground_state: dict | None
     notes: list[str] = field(default_factory=list)
+    q: int | None = None
+    degree: float | None = None
 
     def to_json(self) -> dict:
         return {
             "label": self.label,
             "kind": self.kind,
             "xi": self.xi,
+            "q": self.q,
+            "degree": self.degree,
             "description": self.description,
             "references": self.references.to_json(),
             "depths": [r.to_json() for r in self.rows],
@@ -444,6 +450,11 @@ class StudyReport:
     ensembles: list[EnsembleReport]
     note: str = ESTIMATE_NOTE
 
+    @property
+    def universality(self) -> list[dict]:
+        """Sparse ensembles scaled next to the dense q-spin V_p* (jobs/universality.py)."""
+        return universality_views(self.ensembles)
+
     def to_json(self) -> dict:
         return {
             "format": TABLE_FORMAT,
@@ -452,6 +463,7 @@ class StudyReport:
             "units": "energy density per spin, dimensionless; E[H(z)H(z')] = n xi(R); V_p is maximized",
             "note": self.note,
             "ensembles": [e.to_json() for e in self.ensembles],
+            "universality": self.universality,
         }
 
 
@@ -564,6 +576,8 @@ def build_ensemble_report(
         reach_threshold=reach_alg,
         reach_ground_state=reach_gs,
         notes=notes,
+        q=int(meta["q"]) if meta.get("q") is not None else None,
+        degree=float(meta["degree"]) if meta.get("degree") is not None else None,
     )
 
 
@@ -732,6 +746,7 @@ def render_markdown(report: StudyReport) -> str:
     ]
     for rep in report.ensembles:
         out += _ensemble_markdown(rep)
+    out += render_universality_markdown(report.universality)
     out.append(f"Caveat: {report.note}")
     return "\n".join(out) + "\n"
 
@@ -823,6 +838,14 @@ def render_csv(report: StudyReport) -> str:
                      note=f"estimate; {reach['fits_reaching']} of {reach['fits']} polynomial fits reach it")
         for note in rep.notes:
             emit(ensemble=rep.label, record="note", note=note)
+    for view in report.universality:
+        for row in view["rows"]:
+            for e in row["sparse"]:
+                if e["scaled"] is not None:
+                    emit(ensemble=e["label"], record="universality", quantity=f"scaled_q{view['q']}", p=row["p"],
+                         inv_p=1.0 / row["p"], value=e["scaled"], gain=None,
+                         uncertainty=None, note=(f"scaled - V_p*(x^{view['q']}) = {e['difference']!r}"
+                                                 if e["difference"] is not None else "no dense x^q value"))
     emit(ensemble="", record="note", note=report.note)
     return buf.getvalue()
 
@@ -873,6 +896,13 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
             continue
         x = np.array([r.inverse_depth for r in rep.rows])
         y = np.array([r.value for r in rep.rows])
+        if rep.kind == "sparse":
+            # a satisfied fraction is not an energy: show the scaled value, which tends
+            # to V_p* of xi = x^q as D grows (universality view)
+            y = np.array([scaled_value(rep.q, rep.degree, v) for v in y])
+            ax.plot(x, y, "x--", color=color, lw=0.8,
+                    label=f"{rep.label}: q = {rep.q}, D = {rep.degree:g}, sqrt(D)(nu*-1/2)2/sqrt(q)")
+            continue
         ax.plot(x, y, "o", color=color, label=f"{rep.label}: {rep.description}")
         ex = rep.extrapolation
         if ex is not None:
