@@ -28,6 +28,13 @@ def reference_command(
     cache_dir: Optional[Path] = typer.Option(
         None, "--cache-dir", help="Cache directory (default $LEADLINE_CACHE_DIR, else $XDG_CACHE_HOME/leadline or ~/.cache/leadline)."
     ),
+    store: Optional[Path] = typer.Option(
+        None,
+        "--store",
+        help="A study store: compute GS and ALG for each of its dense ensembles (or only --ensemble) and cache "
+        "them in the store, where `leadline table` and `plot` find them. Takes the store's writer lock.",
+    ),
+    ensemble: Optional[str] = typer.Option(None, "--ensemble", help="With --store: only this ensemble label."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
 ) -> None:
     """Ground-state energy density (GS) and algorithmic threshold (ALG) of a mixture.
@@ -40,12 +47,16 @@ def reference_command(
 
         leadline reference --xi 2:0.5
     """
+    if store is not None:
+        if xi is not None:
+            raise InputError("give either --xi or --store, not both")
+        _check_settings(gs_tol, alg_tol, max_steps)
+        _store_references(store, ensemble, gs_tol, alg_tol, max_steps, as_json)
+        return
+    if ensemble is not None:
+        raise InputError("--ensemble goes with --store")
     mix = mixture_arg(xi)
-    for name, tol in (("--gs-tol", gs_tol), ("--alg-tol", alg_tol)):
-        if not (math.isfinite(tol) and 1e-7 <= tol <= 0.1):
-            raise InputError(f"{name} must be between 1e-7 and 0.1, got {tol!r}")
-    if not 3 <= max_steps <= 30:
-        raise InputError(f"--max-steps must be between 3 and 30, got {max_steps}")
+    _check_settings(gs_tol, alg_tol, max_steps)
     directory = None
     if not no_cache:
         directory = cache_dir if cache_dir is not None else reference_cache.default_cache_dir()
@@ -67,6 +78,47 @@ def reference_command(
         typer.echo(json.dumps(out))
         return
     typer.echo(report(mix, refs, cached))
+
+
+def _check_settings(gs_tol: float, alg_tol: float, max_steps: int) -> None:
+    for name, tol in (("--gs-tol", gs_tol), ("--alg-tol", alg_tol)):
+        if not (math.isfinite(tol) and 1e-7 <= tol <= 0.1):
+            raise InputError(f"{name} must be between 1e-7 and 0.1, got {tol!r}")
+    if not 3 <= max_steps <= 30:
+        raise InputError(f"--max-steps must be between 3 and 30, got {max_steps}")
+
+
+def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: float, max_steps: int, as_json: bool) -> None:
+    """Compute and cache GS/ALG in a study store (one writer at a time: takes the lock)."""
+    from leadline.kernels.mixture import parse_mixture
+    from leadline.storage import StoreError, StudyStore, open_study
+
+    try:
+        reader = open_study(path)
+    except StoreError as exc:
+        raise InputError(str(exc)) from None
+    labels = reader.ensembles()
+    if only is not None and only not in labels:
+        raise InputError(f"--ensemble {only!r} is not in the study (have {', '.join(labels)})")
+    chosen = [lab for lab in labels if (only is None or lab == only) and reader.ensemble(lab).get("xi")]
+    if not chosen:
+        raise InputError("no dense ensemble (with a mixture xi) to compute references for")
+    try:
+        writer = StudyStore.open(path, command="reference")
+    except StoreError as exc:
+        raise InputError(str(exc)) from None
+    results = {}
+    with writer:
+        for label in chosen:
+            mix = parse_mixture(reader.ensemble(label)["xi"])
+            refs = reference_energies(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+            writer.save_references(label, refs.to_json())
+            results[label] = refs
+            if not as_json:
+                typer.echo(f"[{label}]")
+                typer.echo(report(mix, refs, False))
+    if as_json:
+        typer.echo(json.dumps({label: r.to_json() for label, r in results.items()}))
 
 
 def report(mix, refs, cached: bool) -> str:

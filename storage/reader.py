@@ -72,6 +72,20 @@ class StudyReader:
                 return dict(stored) if stored.get("label") == label else _describe(e)
         raise KeyError(f"no ensemble {label!r} in study {self.name!r} (have {', '.join(self.ensembles())})")
 
+    def references(self, label: str):
+        """Computed GS/ALG cached in the store by `leadline reference --store`, or None.
+
+        Returns a kernels.reference.References (attribute ``references`` of the
+        ensemble group holds its JSON form).
+        """
+        from leadline.kernels.reference import References
+
+        try:
+            data = self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict().get("references")
+        except KeyError:
+            return None
+        return References.from_json(data) if data else None
+
     def _depth_groups(self, label: str) -> list[tuple[int, zarr.Group]]:
         self.ensemble(label)  # KeyError for unknown labels
         try:

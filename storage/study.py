@@ -198,6 +198,13 @@ class StudyStore:
     def _ensemble_group(self, label: str) -> zarr.Group:
         return self.root[f"{L.ENSEMBLES}/{label}"]
 
+    def save_references(self, label: str, references: dict) -> None:
+        """Cache computed reference energies (kernels.reference.References.to_json())
+        in the ensemble's attribute ``references``."""
+        self.root.require_group(L.ENSEMBLES)
+        group = self.root.require_group(f"{L.ENSEMBLES}/{label}")
+        group.attrs["references"] = references
+
     def finished_depth(self, label: str, p: int) -> dict | None:
         """The stored result of depth p (attrs "result"), or None if not done."""
         try:
