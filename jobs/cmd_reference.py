@@ -123,7 +123,6 @@ def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: floa
 
 def report(mix, refs, cached: bool) -> str:
     gs_d = refs.details.get("ground_state", {})
-    alg_d = refs.details.get("algorithmic_threshold", {})
     lines = [
         f"xi(x)                  = {mix.label()}",
         f"ground state GS        = {refs.ground_state:.6f} +- {refs.ground_state_uncertainty:.1e}"

@@ -11,7 +11,7 @@ Usage::
    the store exists already, so an interrupted demo continues where it stopped and a finished
    one is not recomputed);
 3. computes the ground state GS and the algorithmic threshold ALG of every ensemble with
-   ``leadline reference`` (cached in DIR/reference-cache; 10-20 s per mixture here; skip
+   ``leadline reference --store`` (cached in the store; 10-20 s per mixture here; skip
    with ``--no-references``), which gives every ensemble the V_p*/GS, V_p*/ALG and "> ALG"
    columns and the GS/ALG lines of the plot;
 4. prints the table (Markdown) and writes DIR/table.md, table.csv, table.json, and the figures
@@ -25,7 +25,6 @@ from __future__ import annotations
 import argparse
 import os
 import re
-import tomllib
 import subprocess
 import sys
 import time
@@ -83,12 +82,10 @@ def main(argv: list[str] | None = None) -> None:
         _leadline("sweep", str(spec_path))
     sweep_seconds = time.perf_counter() - start
 
+    # GS and ALG of every ensemble, cached in the store itself (table and plot read them there)
     env = None
-    if args.references:
-        cache = out / "reference-cache"
-        for ensemble in tomllib.loads(text)["ensemble"]:
-            _leadline("reference", "--xi", ensemble["xi"], "--cache-dir", str(cache))
-        env = {"LEADLINE_CACHE_DIR": str(cache)}
+    if args.references and not _store_has_references(store):
+        _leadline("reference", "--store", str(store))
 
     for fmt, suffix in (("csv", "csv"), ("json", "json"), ("markdown", "md")):
         _leadline("table", str(store), "--format", fmt, "--output", str(out / f"table.{suffix}"), env=env)
@@ -97,6 +94,13 @@ def main(argv: list[str] | None = None) -> None:
     print((out / "table.md").read_text(encoding="utf-8"))
     print(f"sweep wall time {sweep_seconds:.0f} s; total {time.perf_counter() - start:.0f} s")
     print(f"wrote {out / 'table.md'}, table.csv, table.json, demo.png, demo-angles.png in {out}")
+
+
+def _store_has_references(store: Path) -> bool:
+    from leadline.storage import open_study
+
+    study = open_study(store)
+    return all(study.references(label) is not None for label in study.ensembles())
 
 
 if __name__ == "__main__":

@@ -247,9 +247,8 @@ def optimize_depth(
     best = None
 
     def local_run(index: int, g0, b0, kind: str):
-        nonlocal evaluations, best
+        nonlocal best
         record = {"start": index, "kind": kind, "values": [], "evaluations": 0}
-        last = {}
 
         def fun(x):
             nonlocal evaluations
@@ -266,7 +265,6 @@ def optimize_depth(
             if not (np.isfinite(ev.value) and np.all(np.isfinite(grad))):
                 record["values"].append(None)
                 return penalty, np.zeros_like(x)
-            last["x"], last["value"], last["grad"] = x.copy(), ev.value, grad
             record["values"].append(float(ev.value))
             if callback is not None:
                 callback({"start": index, "evaluation": evaluations, "value": float(ev.value)})
