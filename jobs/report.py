@@ -514,14 +514,16 @@ def build_ensemble_report(
         )
 
     notes: list[str] = []
-    if gs is None:
+    if meta.get("kind") == "sparse":
+        pass  # a satisfied fraction has no ground-state ratio; the universality view compares it
+    elif gs is None:
         notes.append(
             "no reference ground-state energy known for this ensemble: ratio columns and the "
             "gap fit are left out (give one with --ground-state or in the spec)"
         )
     elif refs.ground_state_origin == "shipped table" and "from memory" in (refs.ground_state_source or ""):
         notes.append("the ground-state value is recalled (from memory), not checked against its source")
-    if alg is None:
+    if alg is None and meta.get("kind") != "sparse":
         notes.append("algorithmic threshold not known for this ensemble: V_p*/ALG columns left out")
     mixture = _ensemble_mixture(meta)
     shipped = lookup_ground_state(mixture) if mixture is not None else None
@@ -656,10 +658,15 @@ def _reference_lines(refs: References) -> list[str]:
 def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
     refs = rep.references
     out = [f"## {rep.label}: {rep.description}", ""]
-    out += _reference_lines(refs)
+    sparse = rep.kind == "sparse"
+    if sparse:
+        out.append("- value: nu_p*, the optimal satisfied fraction per constraint (cut fraction for q = 2), "
+                   "exact on hypergraphs of girth > 2p+1; not an energy density (see the universality view)")
+    else:
+        out += _reference_lines(refs)
     out.append("")
     has_gs, has_alg = refs.ground_state is not None, refs.threshold is not None
-    header = ["p", "1/p", "V_p*", "gain"]
+    header = ["p", "1/p", "nu_p*" if sparse else "V_p*", "gain"]
     align = ["r", "r", "r", "r"]
     if has_gs:
         header.append("V_p*/GS")

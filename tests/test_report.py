@@ -313,7 +313,7 @@ def test_shipped_demo_spec_is_valid(tmp_path):
     from leadline.jobs.spec import parse_spec
 
     spec = parse_spec(shipped_spec_text(), tmp_path)
-    assert [e.label for e in spec.ensembles] == ["sk", "pure3", "pure4", "mixed23"]
+    assert [e.label for e in spec.ensembles] == ["sk", "pure3", "pure4", "mixed23", "xorsat3-d4"]
     assert spec.executor == "local" and spec.workers == 2
     assert (spec.pmin, spec.pmax) == (1, 6)
     assert spec.store == tmp_path / "demo.zarr"
