@@ -20,10 +20,11 @@ is one complex matrix product:
 so a path visit costs three complex multiply-adds inside BLAS (zgemm) instead
 of about a dozen memory-bound elementwise operations.  The backward pass has
 s(a) = A(y,x1) + T2(y,x2) + s_LL(x1,x2) (A = s_HH + x1 cross term), and each
-marginal of W s needs three products (nine in all).  Two of them (B K2 and
-B^T R0) do not involve s and are the forward pass's own at the same M: they are
-reused from a bounded in-process tape (:class:`ProductCache`), so an adjoint
-pass costs seven products after its forward pass ran in the same process.  The
+marginal of W s needs three products (nine in all).  Three of them (B K2,
+B^T R0 and R K2^T) do not involve s and are the forward pass's own at the same
+M: they are reused from bounded in-process tapes (:class:`ProductCache`:
+PRODUCTS and COLUMNS), so an adjoint pass costs six products after its forward
+pass ran in the same process (nine on a miss, same result).  The
 last adjoint pass of a gradient has M = 0; there the products collapse to sums.
 
 Layout: work arrays are (pattern, row) -- the chunk's rows on the contiguous
