@@ -79,12 +79,11 @@ def usable_cores() -> int:
 def product_cache_bytes() -> int:
     """Bytes of the blocked kernel's per-process memo of forward products (kernels/blocked.py).
 
-    Read from $LEADLINE_PRODUCT_CACHE_MB like the kernel does (default 384 MiB there).
+    Both tapes: $LEADLINE_PRODUCT_CACHE_MB (default 384 MiB) + $LEADLINE_COLUMN_CACHE_MB (256).
     """
-    try:
-        return max(0, int(float(os.environ.get("LEADLINE_PRODUCT_CACHE_MB", "384")) * 2**20))
-    except ValueError:
-        return 384 * 2**20
+    from leadline.kernels.blocked import tape_capacity_bytes
+
+    return tape_capacity_bytes()
 
 
 def worker_memory_limit(memory_budget: int, threads_per_worker: int) -> int:

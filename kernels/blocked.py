@@ -50,6 +50,8 @@ __all__ = [
     "chain_split",
     "ProductCache",
     "PRODUCTS",
+    "COLUMNS",
+    "tape_capacity_bytes",
 ]
 
 
@@ -316,6 +318,16 @@ def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarra
     return 0.5 * left[:, :nl] * dL * right[:, 1:]
 
 
+def _env_mib(name: str, default_mib: float) -> int:
+    """Bytes from an environment variable in MiB (default if unset or not a number; >= 0)."""
+    import os
+
+    try:
+        return max(0, int(float(os.environ.get(name, default_mib)) * 2**20))
+    except ValueError:
+        return int(default_mib * 2**20)
+
+
 class ProductCache:
     """Bounded in-process memo of a forward pass's base products, for its adjoint pass.
 
@@ -334,7 +346,7 @@ class ProductCache:
         from collections import OrderedDict
 
         if max_bytes is None:
-            max_bytes = int(float(os.environ.get("LEADLINE_PRODUCT_CACHE_MB", "384")) * 2**20)
+            max_bytes = _env_mib("LEADLINE_PRODUCT_CACHE_MB", 384)
         self.max_bytes = int(max_bytes)
         self._items: "OrderedDict[tuple, tuple]" = OrderedDict()
         self._bytes = 0
@@ -388,7 +400,12 @@ class ProductCache:
 PRODUCTS = ProductCache()
 #: the column-sum product R K2^T of each chunk (2^l entries, larger): its own cache,
 #: so it never evicts the row products ($LEADLINE_COLUMN_CACHE_MB, default 256 MiB)
-COLUMNS = ProductCache(int(float(__import__("os").environ.get("LEADLINE_COLUMN_CACHE_MB", "256")) * 2**20))
+COLUMNS = ProductCache(_env_mib("LEADLINE_COLUMN_CACHE_MB", 256))
+
+
+def tape_capacity_bytes() -> int:
+    """Most bytes the two tapes (PRODUCTS + COLUMNS) may hold in one process (for memory limits)."""
+    return PRODUCTS.max_bytes + COLUMNS.max_bytes
 
 
 def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
