@@ -33,7 +33,6 @@ from __future__ import annotations
 
 import asyncio
 import socket
-import sys
 import time
 from dataclasses import replace
 from typing import Mapping
@@ -94,6 +93,14 @@ class Executor:
 
     def _run(self, inp, plan, done, on_chunk) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
+
+    def run_map(self, func, blocks) -> list:
+        """Apply a pure function to each block and return the results in block order.
+
+        The generic map used by non-pass work (the split Walsh-Hadamard transforms
+        of the sparse recursion, kernels.sparse ``run_map=``).  In-process here.
+        """
+        return [func(b) for b in blocks]
 
     def describe(self) -> dict:
         return {"executor": self.mode}
@@ -173,6 +180,24 @@ class DaskExecutor(Executor):
             self.client, inp, plan, slots=slots, done=done, on_chunk=on_chunk, progress=self.progress,
             placement=self.placement,
         )
+
+    def run_map(self, func, blocks) -> list:
+        """Blocks as Dask tasks (retried like pass tasks), gathered in block order."""
+        blocks = list(blocks)
+        if not blocks:
+            return []
+        try:
+            self.client.wait_for_workers(1, timeout=self.wait_for_workers_s)
+        except Exception:
+            raise ExecutorError(f"no Dask worker joined the scheduler at {self.client.scheduler.address}") from None
+        futures = self.client.map(func, blocks, retries=2, pure=False)
+        try:
+            return self.client.gather(futures)
+        except Exception as exc:  # a block that failed after its retries
+            raise ExecutorError(f"a transform block failed {3} times; last error: {exc}") from None
+        finally:
+            for f in futures:
+                f.release()
 
     def describe(self) -> dict:
         info = self.client.scheduler_info() if self.client.status == "running" else {}

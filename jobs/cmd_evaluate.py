@@ -45,7 +45,9 @@ def evaluate_command(
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
     if sparse_cli.sparse_requested(xorsat, degree):
-        return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles, gradient=gradient, as_json=as_json)
+        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+        return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
+                                          gradient=gradient, as_json=as_json, settings=settings)
     if angles is not None:
         if gamma is not None or beta is not None:
             raise InputError("give either --angles FILE or --gamma/--beta, not both")

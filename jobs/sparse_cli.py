@@ -77,7 +77,8 @@ def _report(ev) -> str:
     return "\n".join(lines)
 
 
-def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False) -> None:
+def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
+                    settings=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
     from .angles import read_angles
     from .parsing import angle_pair
@@ -90,7 +91,14 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
-    ev = evaluate_sparse(q, D, g, b, gradient=gradient)
+    if settings is not None and settings.mode in ("local", "scheduler", "batch"):
+        # the transforms are split into row and column blocks that run as tasks
+        from . import compute
+
+        with compute.open_compute(settings) as ex:
+            ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=ex.run_map)
+    else:
+        ev = evaluate_sparse(q, D, g, b, gradient=gradient)
     if as_json:
         out = ev.to_json()
         out["ensemble"] = ensemble_json(q, D)
