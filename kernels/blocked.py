@@ -341,7 +341,6 @@ class ProductCache:
     """
 
     def __init__(self, max_bytes: int | None = None):
-        import os
         import threading
         from collections import OrderedDict
 

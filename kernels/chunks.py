@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .contour import link_derivative_table, link_table, sign_patterns
+from .contour import link_derivative_table, link_table
 from .plan import ChunkPlan
 
 __all__ = [

@@ -59,7 +59,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .contour import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights, time0_index
+from .contour import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights
 
 __all__ = [
     "SparseEvaluation",

@@ -19,7 +19,6 @@ import json
 import math
 import os
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np

@@ -296,7 +296,7 @@ def test_read_api_and_plain_zarr_layout(tmp_path):
     from leadline.jobs.spec import parse_spec
     from leadline.jobs.sweep import run_study
 
-    text = f"""
+    text = """
 [study]
 name = "api"
 store = "api.zarr"
