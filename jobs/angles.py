@@ -110,3 +110,23 @@ def check_writable(path: str | os.PathLike) -> None:
         raise InputError(f"cannot write {path}: folder {parent} does not exist")
     if not os.access(parent, os.W_OK):
         raise InputError(f"cannot write {path}: folder {parent} is not writable")
+
+
+def optimum_report(header: list[str], result, evaluations: str, ladder: list[dict], output) -> str:
+    """Human-readable report of an optimization (shared by dense and sparse `optimize`).
+
+    ``header`` are the first lines (ensemble, depth, value), ``result`` has gamma,
+    beta, gradient_norm and converged; ``ladder`` lists {"p", "value"} per depth run.
+    """
+    lines = list(header) + [
+        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
+        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
+        f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
+        f"evaluations    = {evaluations}",
+    ]
+    if len(ladder) > 1:
+        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
+    if output:
+        lines.append(f"angles written to {output}")
+    return "\n".join(lines)
+

@@ -12,7 +12,7 @@ from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
-from .angles import AngleSet, check_writable, read_angles, write_angles
+from .angles import AngleSet, check_writable, optimum_report, read_angles, write_angles
 from .errors import InputError
 from .parsing import mixture_arg
 
@@ -113,20 +113,9 @@ def optimize_command(
         out["ladder"] = ladder
         typer.echo(json.dumps(out))
         return
-    lines = [
-        f"xi(x)          = {mix.label()}",
-        f"depth p        = {depth}",
-        f"V_p*           = {result.value:.10f}",
-        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
-        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
-        f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
-        f"evaluations    = {total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s",
-    ]
-    if len(ladder) > 1:
-        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
-    if output:
-        lines.append(f"angles written to {output}")
-    typer.echo("\n".join(lines))
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
+    evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
+    typer.echo(optimum_report(header, result, evaluations, ladder, output))
 
 
 def register(app: typer.Typer) -> None:

@@ -112,7 +112,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
-    from .angles import AngleSet, check_writable, read_angles, write_angles
+    from .angles import AngleSet, check_writable, optimum_report, read_angles, write_angles
 
     q, D = check_sparse(xorsat, degree, xi)
     if depth is None:
@@ -151,17 +151,10 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
         typer.echo(json.dumps(out))
         return
     name = "cut fraction" if q == 2 else "satisfied fraction"
-    lines = [
+    header = [
         f"ensemble       = Max-{q}-XORSAT{' (MaxCut)' if q == 2 else ''}, {D}-regular, large girth",
         f"depth p        = {depth}",
         f"{name} = {result.value:.10f}",
-        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
-        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
-        f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
-        f"evaluations    = {sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s",
     ]
-    if len(ladder) > 1:
-        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
-    if output:
-        lines.append(f"angles written to {output}")
-    typer.echo("\n".join(lines))
+    evaluations = f"{sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s"
+    typer.echo(optimum_report(header, result, evaluations, ladder, output))
