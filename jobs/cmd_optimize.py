@@ -12,9 +12,9 @@ from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
-from .angles import AngleSet, check_writable, optimum_report, read_angles, write_angles
+from .angles import AngleSet, check_writable, optimum_report, write_angles
 from .errors import InputError
-from .parsing import mixture_arg
+from .parsing import check_optimizer_options, mixture_arg, warm_start
 
 
 def optimize_command(
@@ -55,21 +55,10 @@ def optimize_command(
     if sparse_cli.sparse_requested(xorsat, degree):
         return sparse_cli.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json, start=start)
     mix = mixture_arg(xi)
-    if depth is None:
-        raise InputError("--depth is required (the depth p to optimize, >= 1)")
-    if depth < 1:
-        raise InputError(f"--depth must be >= 1, got {depth}")
-    if restarts is not None and restarts < 0:
-        raise InputError("--restarts must be >= 0")
-    if not gtol > 0:
-        raise InputError("--gtol must be positive")
-    if maxiter < 1:
-        raise InputError("--maxiter must be >= 1")
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
     if not memory_mb > 0:
         raise InputError("--memory-mb must be positive")
-    initial = read_angles(start) if start else None
-    if initial is not None and initial.p not in (depth - 1, depth):
-        raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
+    initial = warm_start(start, depth)
     if output:
         check_writable(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)

@@ -10,7 +10,7 @@ from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
 from .errors import InputError
 
-__all__ = ["mixture_arg", "angles_arg", "angle_pair"]
+__all__ = ["mixture_arg", "angles_arg", "angle_pair", "check_optimizer_options", "warm_start"]
 
 
 def mixture_arg(spec: str | None, option: str = "--xi") -> Mixture:
@@ -45,3 +45,29 @@ def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndar
     if g.size != b.size:
         raise InputError(f"--gamma has {g.size} angles but --beta has {b.size}; both need p values")
     return g, b
+
+
+def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float, maxiter: int) -> int:
+    """Validate the options shared by dense and sparse `optimize`; returns the depth."""
+    if depth is None:
+        raise InputError("--depth is required (the depth p to optimize, >= 1)")
+    if depth < 1:
+        raise InputError(f"--depth must be >= 1, got {depth}")
+    if restarts is not None and restarts < 0:
+        raise InputError("--restarts must be >= 0")
+    if not gtol > 0:
+        raise InputError("--gtol must be positive")
+    if maxiter < 1:
+        raise InputError("--maxiter must be >= 1")
+    return depth
+
+
+def warm_start(path: str | None, depth: int):
+    """The angle file given with --angles (depth p-1 or p), or None."""
+    from .angles import read_angles
+
+    initial = read_angles(path) if path else None
+    if initial is not None and initial.p not in (depth - 1, depth):
+        raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
+    return initial
+

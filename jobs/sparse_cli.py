@@ -112,22 +112,12 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
-    from .angles import AngleSet, check_writable, optimum_report, read_angles, write_angles
+    from .angles import AngleSet, check_writable, optimum_report, write_angles
+    from .parsing import check_optimizer_options, warm_start
 
     q, D = check_sparse(xorsat, degree, xi)
-    if depth is None:
-        raise InputError("--depth is required (the depth p to optimize, >= 1)")
-    if depth < 1:
-        raise InputError(f"--depth must be >= 1, got {depth}")
-    if restarts is not None and restarts < 0:
-        raise InputError("--restarts must be >= 0")
-    if not gtol > 0:
-        raise InputError("--gtol must be positive")
-    if maxiter < 1:
-        raise InputError("--maxiter must be >= 1")
-    initial = read_angles(start) if start else None
-    if initial is not None and initial.p not in (depth - 1, depth):
-        raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
+    initial = warm_start(start, depth)
     if output:
         check_writable(output)
     t0 = time.perf_counter()
