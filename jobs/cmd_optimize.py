@@ -53,7 +53,9 @@ def optimize_command(
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
     if sparse_cli.sparse_requested(xorsat, degree):
-        return sparse_cli.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json, start=start)
+        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+        return sparse_cli.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
+                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings)
     mix = mixture_arg(xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter)
     if not memory_mb > 0:

@@ -11,6 +11,7 @@ Max-q-XORSAT on D-regular hypertrees (validation, printing) lives in one place:
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import time
@@ -77,6 +78,22 @@ def _report(ev) -> str:
     return "\n".join(lines)
 
 
+@contextlib.contextmanager
+def transform_map(settings):
+    """run_map of the executor the user asked for (local, scheduler, batch), else None.
+
+    With one, the sparse recursion's Walsh-Hadamard transforms are split into row and
+    column blocks that run as tasks; in-process (and in auto mode) they run whole.
+    """
+    if settings is None or settings.mode not in ("local", "scheduler", "batch"):
+        yield None
+        return
+    from . import compute
+
+    with compute.open_compute(settings) as ex:
+        yield ex.run_map
+
+
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
                     settings=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
@@ -91,14 +108,8 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
-    if settings is not None and settings.mode in ("local", "scheduler", "batch"):
-        # the transforms are split into row and column blocks that run as tasks
-        from . import compute
-
-        with compute.open_compute(settings) as ex:
-            ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=ex.run_map)
-    else:
-        ev = evaluate_sparse(q, D, g, b, gradient=gradient)
+    with transform_map(settings) as run_map:
+        ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
     if as_json:
         out = ev.to_json()
         out["ensemble"] = ensemble_json(q, D)
@@ -107,7 +118,8 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         typer.echo(_report(ev))
 
 
-def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e-7, maxiter=500, output=None, as_json=False, start=None) -> None:
+def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e-7, maxiter=500, output=None, as_json=False, start=None,
+                    settings=None) -> None:
     """`leadline optimize --xorsat Q --degree D --depth P`: depths 1..P in turn (INTERP warm starts).
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
@@ -125,11 +137,14 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
     ladder = []
     result = None
-    for p in range(first, depth + 1):
-        n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
-        result = optimize_sparse(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts, seed=seed, gtol=gtol, maxiter=maxiter)
-        previous, previous_value = (result.gamma, result.beta), result.value
-        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
+    with transform_map(settings) as run_map:
+        evaluate_kw = {"run_map": run_map} if run_map is not None else None
+        for p in range(first, depth + 1):
+            n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
+            result = optimize_sparse(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
+                                     seed=seed, gtol=gtol, maxiter=maxiter, evaluate_kw=evaluate_kw)
+            previous, previous_value = (result.gamma, result.beta), result.value
+            ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
     wall = time.perf_counter() - t0
     if output:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))

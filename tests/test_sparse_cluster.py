@@ -34,3 +34,13 @@ def test_executor_map_keeps_block_order():
 
     with InProcessExecutor() as ex:
         assert ex.run_map(lambda b: b * 2, [1, 2, 3]) == [2, 4, 6]
+
+
+def test_optimize_on_local_cluster_reproduces_published_maxcut():
+    # MaxCut, 3-regular, triangle-free, p = 1 optimum 0.6925 (Farhi, Goldstone, Gutmann,
+    # arXiv:1411.4028 (2014)); one start keeps the number of Dask round trips small
+    args = ["optimize", "--xorsat", "2", "--degree", "3", "--depth", "1", "--restarts", "0", "--json",
+            "--executor", "local", "--workers", "1", "--quiet"]
+    r = subprocess.run([sys.executable, "-m", "leadline", *args], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert round(json.loads(r.stdout)["value"], 4) == 0.6925
