@@ -259,9 +259,20 @@ class AutoExecutor(Executor):
 
 
 # --------------------------------------------------------------------------- builders
+def _client_for(cluster):
+    """A client of a cluster this tool started; the cluster is closed if connecting fails."""
+    from distributed import Client
+
+    try:
+        return Client(cluster, set_as_default=False)
+    except BaseException:
+        cluster.close()
+        raise
+
+
 def start_local_cluster(settings: ComputeSettings, progress: ProgressDisplay | None = None) -> DaskExecutor:
     """A LocalCluster of ``settings.workers`` processes on 127.0.0.1 with single-threaded BLAS."""
-    from distributed import Client, LocalCluster
+    from distributed import LocalCluster
 
     settings = settings.resolved() if settings.workers is None else settings
     cluster = LocalCluster(
@@ -274,11 +285,7 @@ def start_local_cluster(settings: ComputeSettings, progress: ProgressDisplay | N
         env=dict(SINGLE_THREAD_ENV),
         silence_logs=50,  # CRITICAL only: worker chatter would garble the progress bar
     )
-    try:
-        client = Client(cluster, set_as_default=False)
-    except BaseException:
-        cluster.close()
-        raise
+    client = _client_for(cluster)
     return DaskExecutor(
         client, cluster=cluster, mode="local", settings=settings, progress=progress,
         expected_threads=settings.workers * settings.threads_per_worker,
@@ -368,17 +375,12 @@ def connect_scheduler(address: str, settings: ComputeSettings, progress: Progres
 
 def start_batch_cluster(settings: ComputeSettings, progress: ProgressDisplay | None = None) -> DaskExecutor:
     """Submit the batch jobs described by ``settings.batch_config`` and connect to them."""
-    from distributed import Client
 
     from .batch import load_batch_config, make_batch_cluster
 
     config = load_batch_config(settings.batch_config)
     cluster = make_batch_cluster(config, submit=True)
-    try:
-        client = Client(cluster, set_as_default=False)
-    except BaseException:
-        cluster.close()
-        raise
+    client = _client_for(cluster)
     return DaskExecutor(
         client, cluster=cluster, mode="batch", settings=settings, progress=progress,
         expected_threads=config.total_threads, wait_for_workers_s=config.wait_for_workers_s,
