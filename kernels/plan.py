@@ -15,7 +15,13 @@ from __future__ import annotations
 
 from dataclasses import asdict, dataclass
 
-__all__ = ["ChunkPlan", "plan_chunks", "DEFAULT_MEMORY_BUDGET", "estimate_chunk_bytes"]
+__all__ = [
+    "ChunkPlan",
+    "plan_chunks",
+    "DEFAULT_MEMORY_BUDGET",
+    "estimate_chunk_bytes",
+    "evaluation_path_visits",
+]
 
 #: default memory budget for one chunk task, bytes (fits a laptop worker)
 DEFAULT_MEMORY_BUDGET = 256 * 2**20
@@ -173,3 +179,21 @@ def plan_chunks(
             rows //= 2
         rows_per_chunk = rows
     return ChunkPlan(p, n_high, rows_per_chunk)
+
+
+def evaluation_path_visits(p: int, method: str = "growing") -> int:
+    """Path visits of one forward evaluation of V_p (the cost users are shown).
+
+    ``"growing"``: step m = 1..p is a pass over the 2^(2m+1) paths of a depth-m
+    contour, and the global flip a -> -a halves each pass:
+    sum_m 2^(2m) = (4/3)(4^p - 1) ~ (2/3) 2^(2p+1).
+    ``"full"``: the baseline, p passes over all 2^(2p+1) paths.
+    A gradient adds about the same again (one adjoint pass per step).
+    """
+    if p < 1:
+        raise ValueError("depth p must be >= 1")
+    if method == "full":
+        return p * 2 ** (2 * p + 1)
+    if method == "growing":
+        return sum(2 ** (2 * m) for m in range(1, p + 1))
+    raise ValueError(f"unknown method {method!r} (growing or full)")
