@@ -610,36 +610,71 @@ class _Transformers:
 
 
 def _lift(H: np.ndarray | None, m: int) -> np.ndarray | float:
-    """H_{m-1} on the depth-(m-1) contour read on the depth-m contour (2^(2m+1) points).
+    """H_{m-1} on the depth-(m-1) contour read on the depth-m contour (half vectors).
 
     H_{m-1} does not depend on its merged middle site, nor (on the new contour)
     on times +-m or the new merged site: those three new sites replace the old
-    middle one (its +1 half is read).  H_0 = 1.
+    middle one (its +1 half is read).  Both vectors are the halves with the
+    first site +1 (see :func:`_evaluate_growing`).  H_0 = 1.
     """
     if H is None:
         return 1.0
-    half = 1 << (m - 1)
-    A = H.reshape(half, 2, half)[:, 0, :]
-    return np.broadcast_to(A[:, None, :], (half, 8, half)).reshape(-1)
+    lo, hi = 1 << (m - 2), 1 << (m - 1)
+    A = H.reshape(lo, 2, hi)[:, 0, :]
+    return np.broadcast_to(A[:, None, :], (lo, 8, hi)).reshape(-1)
 
 
 def _lift_adjoint(Hbar: np.ndarray, m: int) -> np.ndarray:
-    """Adjoint of :func:`_lift`: (2^(2m+1),) -> (2^(2m-1),), summing the replicated sites."""
-    half = 1 << (m - 1)
-    out = np.zeros((half, 2, half), dtype=Hbar.dtype)
-    out[:, 0, :] = Hbar.reshape(half, 8, half).sum(axis=1)
+    """Adjoint of :func:`_lift`: (2^(2m),) -> (2^(2m-2),), summing the replicated sites."""
+    lo, hi = 1 << (m - 2), 1 << (m - 1)
+    out = np.zeros((lo, 2, hi), dtype=Hbar.dtype)
+    out[:, 0, :] = Hbar.reshape(lo, 8, hi).sum(axis=1)
     return out.reshape(-1)
 
 
-def _step_inputs(g, b, m):
-    """(f, phase, K - 1 transformed) of step m on the depth-m contour."""
-    f = path_weights(m, b[:m])
-    phase = phase_vector(g[:m])
-    return f, phase
+def _half_chain(m: int, beta) -> np.ndarray:
+    """f(a) of the depth-m contour for the paths with a_1 = +1, shape (2^(2m),) complex."""
+    from .contour import chain_weights, link_table
+
+    links = link_table(m, beta)
+    n = n_sites(m)
+    rest = chain_weights(links[1:], n - 1)  # sites 2..n, site 2 the MSB
+    half = rest.size // 2
+    out = np.empty_like(rest)
+    out[:half] = rest[:half] * (0.5 * links[0, 0])  # a_2 = +1 = a_1
+    out[half:] = rest[half:] * (0.5 * links[0, 1])
+    return out
+
+
+def _half_phase(gamma) -> np.ndarray:
+    """Gamma . c for the paths with c_1 = +1, shape (2^(2m),) float."""
+    Gam = gamma_vector(gamma)
+    out = np.array([Gam[-1], -Gam[-1]])
+    for k in range(Gam.size - 2, 0, -1):
+        out = np.concatenate([out + Gam[k], out - Gam[k]])
+    out += Gam[0]
+    return out
+
+
+def _site_sums_half(vec: np.ndarray, n: int) -> np.ndarray:
+    """sum_c vec(c) c_t over the half with c_1 = +1 (site 0 of the index is site 1)."""
+    out = np.empty(n, dtype=vec.dtype)
+    out[0] = vec.sum()
+    out[1:] = _site_sums(vec, n - 1)
+    return out
+
+
+def _flip_time0_half(vec: np.ndarray, p: int) -> None:
+    """vec(a) *= a_0 on a half vector (time 0 is site p: bit p from the LSB)."""
+    vec.reshape(1 << (p - 1), 2, 1 << p)[:, 1, :] *= -1
 
 
 def _beta_bar_from_f(fbar, f, m, beta_bar):
-    """beta_bar += d/db of sum fbar * f over the links of the depth-m contour (no division)."""
+    """beta_bar += d/db of sum fbar * f over the links of the depth-m contour (half vectors).
+
+    d f / d b_t (a) = sigma_t i f(a with the spins after link t flipped); flipping
+    them keeps the first site, so it stays inside the half.  No division.
+    """
     n = n_sites(m)
     for t in range(2 * m):
         block = 1 << (n - 1 - t)
@@ -648,7 +683,17 @@ def _beta_bar_from_f(fbar, f, m, beta_bar):
 
 
 def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvaluation:
-    """The recursion on the growing contour (module docstring), value and optional gradient."""
+    """The recursion on the growing contour with the global flip (module docstring).
+
+    Flip: f, K and every H_m are even under a -> -a (K = cos(phase/2) and the
+    XOR product of flipped paths is flipped), and the root's f H a_0 and
+    sin(phase/2) are both odd.  So every vector is kept as its half with the
+    first site +1 (2^(2m) points), and the transform of an even (or odd)
+    function is twice the half-length transform of its half, supported on the
+    wave vectors of even (odd) weight, which the half-length index enumerates
+    once each; the transform back of such a spectrum is the plain half-length
+    transform.  Sums over the spectrum are sums over the half index.
+    """
     p = g.size
     T = _Transformers(run_map, n_high)
     dev_max = 0.0
@@ -656,13 +701,15 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     H = None
     for m in range(1, p + 1):
         N = 1 << n_sites(m)
-        f, phase = _step_inputs(g, b, m)
+        phase = _half_phase(g[:m])
         Kh = -2.0 * np.sin(phase / 4.0) ** 2  # K - 1, exact form
         del phase
         T(Kh)
-        v = f * _lift(H, m)
-        del f
-        T(v)  # V_m
+        Kh *= 2.0
+        v = _half_chain(m, b[:m])
+        v *= _lift(H, m)
+        T(v)
+        v *= 2.0  # V_m (even-weight wave vectors)
         dev = abs(v[0] - 1.0)
         if not dev <= sum_fH_tolerance(m):
             raise SparseIntegrityError(
@@ -681,19 +728,25 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
         L *= D - 1.0
         H = np.exp(L, out=L)
     N = 1 << n_sites(p)
-    f = path_weights(p, b)
+    f = _half_chain(p, b)
     u = f * H
-    root_norm = abs(u.sum() - 1.0)
+    root_norm = abs(2.0 * u.sum() - 1.0)
     if not root_norm <= sum_fH_tolerance(p):
         raise SparseIntegrityError(
             f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p):.1e})"
         )
     dev_max = max(dev_max, root_norm)
-    _flip_time0(u, p)
+    if not gradient:
+        del H, f
+    _flip_time0_half(u, p)
     U = T(u)
-    phase = phase_vector(g)
+    U *= 2.0
+    phase = _half_phase(g)
     Sh = np.sin(phase / 2.0)
+    if not gradient:
+        del phase
     T(Sh)
+    Sh *= 2.0
     Y = _ipow(U, q)
     corr = 1j * np.dot(Y, Sh) / N
     del Y
@@ -718,50 +771,55 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
 
 
 def _backward_growing(q, D, g, b, f_p, phase_p, Sh, H_p, U, Ls, T, residuals):
-    """Reverse sweep over the growing contours (holomorphic adjoints; real result)."""
+    """Reverse sweep over the growing contours on half vectors (holomorphic adjoints)."""
     p = g.size
     gamma_bar = np.zeros(p, dtype=complex)
     beta_bar = np.zeros(p, dtype=complex)
 
     def add_phase_bar(phasebar, m):
         n = n_sites(m)
-        Gam_bar = _site_sums(phasebar, n)
+        Gam_bar = _site_sums_half(phasebar, n)
         gamma_bar[:m] += Gam_bar[:m] - Gam_bar[n - 1 : m : -1]
 
-    # nu = 1/2 + (i / 2N) sum_k U^q Sh
+    # nu = 1/2 + (i / 2N) sum_k U^q Sh, U = 2 W(u), Sh = 2 W(sin(phase/2))
     N = 1 << n_sites(p)
     coef = 0.5j / N
     Ubar = _ipow(U, q - 1)
     Shbar = (coef * Ubar) * U
-    Ubar *= coef * q
+    Ubar *= 2.0 * coef * q
     Ubar *= Sh
     ubar = T(Ubar)
-    _flip_time0(ubar, p)  # u = f H a0
+    _flip_time0_half(ubar, p)  # u = f H a0
     _beta_bar_from_f(ubar * H_p, f_p, p, beta_bar)
     Hbar = ubar * f_p
     del ubar
     T(Shbar)
+    Shbar *= 2.0
     add_phase_bar(Shbar * (0.5 * np.cos(phase_p / 2.0)), p)
     del Shbar
     for m in range(p, 0, -1):
         N = 1 << n_sites(m)
         L_m = Ls[m - 1]
         Hl = _lift(None if m == 1 else np.exp((D - 1.0) * Ls[m - 2]), m)
-        f, phase = _step_inputs(g, b, m)
+        f = _half_chain(m, b[:m])
+        phase = _half_phase(g[:m])
         Kh = -2.0 * np.sin(phase / 4.0) ** 2
         T(Kh)
+        Kh *= 2.0
         # H_m = exp((D-1) log1p(mm1)) -> mm1bar = Hbar (D-1) exp((D-2) L_m); mm1 = W(X)/N
         Xbar = Hbar * ((D - 1.0) * np.exp((D - 2.0) * L_m))
         del Hbar
         T(Xbar)
         Xbar /= N
         V = T(f * Hl)
+        V *= 2.0
         Vq2 = _ipow(V, q - 2)
         Khbar = Xbar * (Vq2 * V)
         Vbar = Xbar * Kh
-        Vbar *= (q - 1) * Vq2
+        Vbar *= 2.0 * (q - 1) * Vq2
         del Vq2, V, Xbar, Kh
-        T(Khbar)  # K - 1 = W(-2 sin^2(phase/4)): its adjoint through the transform
+        T(Khbar)  # K - 1 = 2 W(-2 sin^2(phase/4)): adjoint through the transform
+        Khbar *= 2.0
         add_phase_bar(-Khbar * (0.5 * np.sin(phase / 2.0)), m)
         del Khbar
         vbar = T(Vbar)
