@@ -581,8 +581,9 @@ def _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, res
 
 
 #: transforms shorter than this run in the calling process even when a run_map is
-#: given: a split transform costs two map round trips, more than the arithmetic of a
-#: vector of 2^20 points (about 10 ms in-process here)
+#: given (unless an explicit ``n_high`` asks for the split): a split transform costs
+#: two map round trips, more than the arithmetic of a vector of 2^20 points (about
+#: 10 ms in-process on the 2-core development machine)
 SPLIT_MIN_POINTS = 1 << 20
 
 
@@ -599,7 +600,9 @@ class _Transformers:
         T = self._by_size.get(N)
         if T is None:
             n = N.bit_length() - 1
-            run_map = self.run_map if N >= SPLIT_MIN_POINTS else None
+            # an explicit layout asks for the split at every length it fits
+            wanted = N >= SPLIT_MIN_POINTS or (self.n_high is not None and self.n_high <= n)
+            run_map = self.run_map if wanted else None
             high = self.n_high if self.n_high is not None and self.n_high <= n else None
             T = self._by_size[N] = _Transformer(N, run_map, high)
         return T(x)
