@@ -58,6 +58,31 @@ def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
     return q, int(d)
 
 
+#: complex vectors of 2^(2p+1) entries the recursion keeps at once (at least; a lower bound)
+SPARSE_VECTORS = 4
+
+
+def check_sparse_depth(p: int, settings, option: str) -> None:
+    """Refuse depths whose whole-vector recursion cannot fit (InputError, one line)."""
+    from .spec import MAX_DEPTH
+
+    if p > MAX_DEPTH:
+        raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
+    need = SPARSE_VECTORS * 16 * 2 ** (2 * p + 1)
+    distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
+    try:
+        import psutil
+
+        total = psutil.virtual_memory().total
+    except Exception:  # pragma: no cover - psutil is a dependency
+        return
+    if need > 0.8 * total and not distributed:
+        raise InputError(
+            f"{option}: the sparse recursion at p = {p} keeps vectors of 2^{2 * p + 1} complex entries "
+            f"(at least {need / 2**30:.0f} GiB), more than this machine's {total / 2**30:.0f} GiB; lower the depth"
+        )
+
+
 def ensemble_json(q: int, degree: int) -> dict:
     """The ensemble record used in angle files and JSON output."""
     return {"kind": "sparse", "q": int(q), "degree": int(degree)}
@@ -108,6 +133,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
+    check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta")
     with transform_map(settings) as run_map:
         ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
     if as_json:
@@ -128,9 +154,10 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     from .parsing import check_optimizer_options, warm_start
 
     q, D = check_sparse(xorsat, degree, xi)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
-    if output:
+    check_sparse_depth(depth, settings, "--depth")
+    if output is not None:
         check_writable(output)
     t0 = time.perf_counter()
     first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
@@ -146,7 +173,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
             previous, previous_value = (result.gamma, result.beta), result.value
             ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
     wall = time.perf_counter() - t0
-    if output:
+    if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))
     if as_json:
         out = result.to_json()

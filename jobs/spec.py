@@ -59,6 +59,7 @@ from pathlib import Path
 from leadline.kernels.mixture import MixtureError, parse_mixture
 
 from .errors import InputError
+from .parsing import MAX_GTOL
 
 __all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
@@ -322,6 +323,8 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
     restarts = _int(opt, "optimizer", "restarts", None, minimum=0)
     seed = _int(opt, "optimizer", "seed", 0, minimum=0)
     gtol = _float(opt, "optimizer", "gtol", 1e-7, positive=True)
+    if gtol > MAX_GTOL:
+        raise InputError(f"[optimizer] gtol must be at most {MAX_GTOL:g}, got {gtol!r}: a larger tolerance stops before a stationary point")
     maxiter = _int(opt, "optimizer", "maxiter", 500, minimum=1)
 
     executor = _text(comp, "compute", "executor", "auto")
