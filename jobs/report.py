@@ -337,6 +337,7 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
     if mixture is None:
         return None
     try:
+        from leadline.kernels.mixture import parse_mixture
         from leadline.kernels.reference import METHOD_VERSION, References as Computed
 
         from . import reference_cache
@@ -351,7 +352,8 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
         try:
             data = json.loads(path.read_text())
             key = data["key"]
-            if key.get("xi") != mixture.spec() or key.get("method_version") != METHOD_VERSION:
+            # compare mixtures, not spellings (older caches wrote weights as "1.0")
+            if parse_mixture(key.get("xi")) != mixture or key.get("method_version") != METHOD_VERSION:
                 continue
             refs = Computed.from_json(data["references"])
         except (OSError, ValueError, KeyError, TypeError, AttributeError):

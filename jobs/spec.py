@@ -169,7 +169,9 @@ class StudySpec:
 
 # --------------------------------------------------------------------------- checks
 def _where(section: str, key: str | None = None) -> str:
-    return f"[{section}] {key}" if key else f"[{section}]"
+    # "study" -> "[study] key"; a place already spelled out ("[[ensemble]] 'sk'") is kept as is
+    where = section if section.startswith("[") else f"[{section}]"
+    return f"{where} {key}" if key else where
 
 
 def _int(table: dict, section: str, key: str, default=None, *, minimum=None, required=False):
@@ -223,7 +225,7 @@ def _table(doc: dict, name: str) -> dict:
 
 def _dense(item: dict, where: str, label: str) -> dict:
     _unknown(item, {"label", "kind", "xi", "reference"}, where)
-    xi = _text(item, where.strip("[]"), "xi", required=True)
+    xi = _text(item, where, "xi", required=True)
     try:
         mixture = parse_mixture(xi)
     except MixtureError as exc:
@@ -245,6 +247,10 @@ def _sparse(item: dict, where: str, label: str) -> dict:
         q, degree = check_problem(q, degree)
     except ValueError as exc:
         raise InputError(f"{where}: {exc}") from None
+    from .sparse_cli import MAX_DEGREE, degree_limit_message
+
+    if degree > MAX_DEGREE:
+        raise InputError(f"{where}: {degree_limit_message(degree)}")
     return {"q": q, "degree": int(degree) if float(degree).is_integer() else degree}
 
 
@@ -261,7 +267,7 @@ def _ensembles(doc: dict) -> tuple[EnsembleSpec, ...]:
     out, seen = [], set()
     for i, item in enumerate(items, 1):
         where = f"[[ensemble]] #{i}"
-        label = _text(item, f"[ensemble] #{i}", "label", required=True)
+        label = _text(item, where, "label", required=True)
         if not _LABEL.match(label):
             raise InputError(
                 f"{where} label {label!r}: use letters, digits, '-', '_' and '.' (at most 64, not starting with '-', '_' or '.')"
@@ -280,8 +286,8 @@ def _ensembles(doc: dict) -> tuple[EnsembleSpec, ...]:
             if not isinstance(ref, dict):
                 raise InputError(f"{where} reference must be a table with ground-state and source")
             _unknown(ref, {"ground-state", "source"}, f"{where} reference")
-            ground_state = _float(ref, f"{label}.reference", "ground-state", positive=True)
-            source = _text(ref, f"{label}.reference", "source")
+            ground_state = _float(ref, f"{where} reference", "ground-state", positive=True)
+            source = _text(ref, f"{where} reference", "source")
             if ground_state is not None and source is None:
                 raise InputError(f"{where} reference: give the source of ground-state (paper, table, or 'from memory')")
             if ground_state is None and source is not None:
