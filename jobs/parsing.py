@@ -18,6 +18,7 @@ __all__ = [
     "warm_start",
     "check_representable",
     "file_mixture",
+    "refuse_sparse_ground_states",
 ]
 
 
@@ -110,3 +111,22 @@ def file_mixture(xi: str | None, angle_set, path) -> Mixture:
         return parse_mixture(angle_set.xi)
     except MixtureError as exc:
         raise InputError(f"angle file {path}: \"xi\": {exc}") from None
+
+
+def refuse_sparse_ground_states(overrides: dict, study) -> None:
+    """--ground-state is an energy density: refuse it for sparse ensembles (their value is a
+    satisfied fraction, and a ratio of the two would mean nothing)."""
+    for label in study.ensembles():
+        kind = study.ensemble(label).get("kind", "dense")
+        if kind != "sparse":
+            continue
+        if label in overrides or (None in overrides and len(study.ensembles()) == 1):
+            raise InputError(
+                f"--ground-state: ensemble {label!r} is sparse (its value is a satisfied fraction, not an "
+                "energy density); ground-state energies apply to dense ensembles only"
+            )
+        if None in overrides:
+            raise InputError(
+                f"--ground-state VALUE would also apply to the sparse ensemble {label!r}; "
+                "write LABEL=VALUE for the dense ensembles"
+            )

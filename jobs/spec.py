@@ -282,6 +282,11 @@ def _ensembles(doc: dict) -> tuple[EnsembleSpec, ...]:
         fields = ENSEMBLE_KINDS[kind](item, where, label)
         ref = item.get("reference")
         ground_state = source = None
+        if ref is not None and kind == "sparse":
+            raise InputError(
+                f"{where} reference: a sparse ensemble's value is a satisfied fraction, not an energy "
+                "density; ground-state references apply to dense ensembles only"
+            )
         if ref is not None:
             if not isinstance(ref, dict):
                 raise InputError(f"{where} reference must be a table with ground-state and source")
