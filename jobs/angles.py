@@ -152,6 +152,16 @@ def check_writable(path: str | os.PathLike, option: str = "--output") -> None:
     check_output_file(path, option=option)
 
 
+def convergence_warning(result) -> str | None:
+    """One stderr line when the optimizer stopped away from a stationary point, else None."""
+    if result.converged:
+        return None
+    return (
+        f"leadline: warning: the optimizer did not converge (largest gradient component "
+        f"{result.gradient_norm:.1e}; {result.message}); the angles are the best found, not an optimum"
+    )
+
+
 def optimum_report(header: list[str], result, evaluations: str, ladder: list[dict], output) -> str:
     """Human-readable report of an optimization (shared by dense and sparse `optimize`).
 

@@ -12,7 +12,7 @@ from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
-from .angles import AngleSet, check_writable, optimum_report, write_angles
+from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
 from .cost import COST_NOTE_SECONDS, check_cost
 from .errors import InputError
 from .parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
@@ -106,6 +106,9 @@ def optimize_command(
 
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
+    warning = convergence_warning(result)
+    if warning:
+        typer.echo(warning, err=True)
     if as_json:
         out = result.to_json()
         out["evaluations_total"] = total_evals

@@ -165,7 +165,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
-    from .angles import AngleSet, check_writable, optimum_report, write_angles
+    from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
     from .parsing import check_optimizer_options, warm_start
 
     q, D = check_sparse(xorsat, degree, xi)
@@ -190,6 +190,9 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     wall = time.perf_counter() - t0
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))
+    warning = convergence_warning(result)
+    if warning:
+        typer.echo(warning, err=True)
     if as_json:
         out = result.to_json()
         out["ensemble"] = ensemble_json(q, D)
