@@ -36,8 +36,8 @@ def degree_limit_message(degree) -> str:
     """Why a degree beyond MAX_DEGREE is refused (one line, shared with the study spec)."""
     return (
         f"degree D = {degree:g} is beyond {MAX_DEGREE:.0e}: the recursion's rounding grows like "
-        f"D x 2.2e-16 ({2.2e-16 * degree:.0e} here), past what double precision supports; "
-        "the D -> infinity limit is the dense q-spin model (--xi q:1)"
+        f"D x 2.2e-16 ({2.2e-16 * degree:.0e} here) and its integrity check could no longer tell "
+        "rounding from a lost block; the D -> infinity limit is the dense q-spin model (--xi q:1)"
     )
 
 

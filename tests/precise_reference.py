@@ -75,3 +75,55 @@ def precise_run(weights: dict, gamma, beta, dps: int = 60) -> dict:
             G = [[sum(wa * a[j] * a[k] for wa, a in zip(w, paths)) for k in range(n)] for j in range(n)]
         V = 1j * sum(Gam[j] * _poly(weights, G[p][j], 0) for j in range(n))
         return {"value": +V.real, "imag": +V.imag, "max_abs_w": max_abs, "sum_abs_w": sum_abs}
+
+
+def precise_sparse(q: int, degree, gamma, beta, dps: int = 50):
+    """nu_p(D; gamma, beta) of Max-q-XORSAT on a D-regular hypertree, at ``dps`` digits.
+
+    The tree recursion of Basso, Farhi, Marwaha, Villalonga, Zhou (TQC 2022, arXiv:2110.14206)
+    and Basso, Gamarnik, Mei, Zhou (FOCS 2022, arXiv:2204.10306), written as plain XOR sums
+    over the 2^(2p+1) paths (no transforms, no log1p):
+
+        H_0 = 1;  H_m(a) = [ sum_{b_1..b_{q-1}} prod_i f(b_i) H_{m-1}(b_i) cos(phase(a b_1 .. b_{q-1}) / 2) ]^(D-1)
+        <Z> = sum_{a_1..a_q} prod_i f(a_i) H_p(a_i) (a_i)_0  i sin(phase(a_1 .. a_q) / 2);  nu = 1/2 + <Z>/2
+
+    with phase(c) = Gamma . c.  Returns (nu as mpf, max_m |sum_a f H_m - 1|).  p <= 2 only.
+    """
+    with mpmath.workdps(dps):
+        g = [mpmath.mpf(x) for x in gamma]
+        b = [mpmath.mpf(x) for x in beta]
+        D = mpmath.mpf(degree)
+        p = len(g)
+        n = 2 * p + 1
+        N = 2**n
+        Gam = g + [mpmath.mpf(0)] + [-x for x in reversed(g)]
+        paths = _paths(p)  # index x <-> bits of x, first site = most significant bit
+        f = [_f(a, p, b) for a in paths]
+        phase = [sum(G * s for G, s in zip(Gam, a)) for a in paths]
+
+        def xor_conv(u, v):
+            out = [mpmath.mpc(0)] * N
+            for x in range(N):
+                if u[x] == 0:
+                    continue
+                for y in range(N):
+                    out[x ^ y] += u[x] * v[y]
+            return out
+
+        H = [mpmath.mpf(1)] * N
+        dev = mpmath.mpf(0)
+        for _ in range(p):
+            u = [fa * h for fa, h in zip(f, H)]
+            dev = max(dev, abs(sum(u) - 1))
+            conv = u
+            for _ in range(q - 2):
+                conv = xor_conv(conv, u)
+            H = [sum(conv[c] * mpmath.cos(phase[a ^ c] / 2) for c in range(N)) ** (D - 1) for a in range(N)]
+        u = [fa * h for fa, h in zip(f, H)]
+        dev = max(dev, abs(sum(u) - 1))
+        u0 = [x * paths[i][p] for i, x in enumerate(u)]  # times the spin at time 0 (position p)
+        conv = u0
+        for _ in range(q - 1):
+            conv = xor_conv(conv, u0)
+        corr = sum(conv[x] * 1j * mpmath.sin(phase[x] / 2) for x in range(N))
+        return +(mpmath.mpf("0.5") + corr.real / 2), dev
