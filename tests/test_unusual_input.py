@@ -333,3 +333,24 @@ def test_read_only_store(stores, tmp_path):
     assert r.returncode == 0 and "x3" in r.stdout, r.stderr
     r = command("table", "sparse.zarr", "--format", "csv")
     assert r.returncode == 0 and "x3,depth" in r.stdout, r.stderr
+
+
+def test_sweep_integrity_failure_is_one_line(tmp_path, monkeypatch, capsys):
+    # in-process: make the sweep's pass fail its integrity check and read what the user sees
+    from leadline.jobs import cli, cmd_sweep
+    from leadline.kernels.sparse import SparseIntegrityError
+
+    def failing(*args, **kwargs):
+        raise SparseIntegrityError("step 2 at p = 2: sum_a f(a) H(a) deviates from 1 by 2.0e-09 (allowed 5.0e-10)")
+
+    monkeypatch.setattr(cmd_sweep, "run_study", failing)
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "s.toml").write_text(
+        '[study]\nname = "t"\nstore = "s.zarr"\n[depths]\npmax = 1\n[[ensemble]]\nlabel = "sk"\nxi = "2:0.5"\n'
+        "[compute]\nexecutor = \"inprocess\"\n"
+    )
+    with pytest.raises(SystemExit) as info:
+        cli.main(["sweep", "s.toml", "--quiet"])
+    assert info.value.code == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "leadline resume" in err[0] and "deviates from 1" in err[0]
