@@ -223,6 +223,8 @@ def test_output_path_messages(tmp_path):
     refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--output", "afile/out.json"],
                "'afile' is a file, not a folder")
     refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--output", ""], "needs a file name")
+    refused_in(tmp_path, ["plot", "any.zarr", "--output", ".png"], "has no file name before .png")
+    refused_in(tmp_path, ["table", "any.zarr", "--output", "afile/t.md"], "'afile' is a file, not a folder")
 
 
 def test_spec_ensemble_place_is_spelled_right(tmp_path):
