@@ -117,7 +117,7 @@ def sum_fH_tolerance(p: int, degree: float = 2.0) -> float:
     rounding of the exponent (D-1) log1p(message - 1), whose absolute error is about
     (D-1) times the unit roundoff 2.2e-16 (the messages carry O(1/D) information and the
     power D-1 magnifies their rounding).  Measured deviations stay below 1.1 x 2.2e-16 x D
-    for q = 2, 3, 9, p = 1..4, D = 3..1e12 (tests/test_sparse_ranges.py); the factor
+    for q = 2, 3, 9, p = 1..4, D = 3..1e12 (tests/test_sparse_ranges.py; full and growing contour); the factor
     4 (2p+1) leaves room, and a lost or doubled transform block still shows up as an
     O(1) deviation.
     """
@@ -723,10 +723,10 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
         T(v)
         v *= 2.0  # V_m (even-weight wave vectors)
         dev = abs(v[0] - 1.0)
-        if not dev <= sum_fH_tolerance(m):
+        if not dev <= sum_fH_tolerance(m, D):
             raise SparseIntegrityError(
                 f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} "
-                f"(allowed {sum_fH_tolerance(m):.1e})"
+                f"(allowed {sum_fH_tolerance(m, D):.1e})"
             )
         dev_max = max(dev_max, dev)
         _ipow_inplace(v, q - 1)
@@ -743,9 +743,9 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     f = _half_chain(p, b)
     u = f * H
     root_norm = abs(2.0 * u.sum() - 1.0)
-    if not root_norm <= sum_fH_tolerance(p):
+    if not root_norm <= sum_fH_tolerance(p, D):
         raise SparseIntegrityError(
-            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p):.1e})"
+            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p, D):.1e})"
         )
     dev_max = max(dev_max, root_norm)
     if not gradient:
