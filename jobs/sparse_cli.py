@@ -27,8 +27,10 @@ __all__ = ["sparse_requested", "check_sparse", "evaluate_xorsat", "optimize_xors
 XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
 DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
 
-#: largest degree accepted: the recursion's rounding grows like D x 2.2e-16 (the messages are
-#: 1 - O(1/D) raised to the power D - 1), about 2e-7 in the value at D = 1e9
+#: largest degree accepted: the rounding of sum_a f(a) H(a) grows like D x 2.2e-16 (the messages
+#: are 1 - O(1/D) raised to the power D - 1), about 2e-7 at D = 1e9, where the integrity check
+#: must still tell rounding from a lost transform block (values agree with a 50-digit reference
+#: to 1e-14 up to there: tests/test_sparse_ranges.py)
 MAX_DEGREE = 10**9
 
 
@@ -73,8 +75,9 @@ def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
     return q, int(d)
 
 
-#: complex vectors of 2^(2p+1) entries the recursion keeps at once (at least; a lower bound)
-SPARSE_VECTORS = 4
+#: complex vectors of 2^(2p) entries (half the paths, by the flip symmetry) the recursion
+#: keeps at once at its last step: a lower bound of its memory
+SPARSE_VECTORS = 2
 
 
 def check_sparse_depth(p: int, settings, option: str) -> None:
@@ -83,7 +86,7 @@ def check_sparse_depth(p: int, settings, option: str) -> None:
 
     if p > MAX_DEPTH:
         raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
-    need = SPARSE_VECTORS * 16 * 2 ** (2 * p + 1)
+    need = SPARSE_VECTORS * 16 * 2 ** (2 * p)
     distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
     try:
         import psutil
@@ -93,7 +96,7 @@ def check_sparse_depth(p: int, settings, option: str) -> None:
         return
     if need > 0.8 * total and not distributed:
         raise InputError(
-            f"{option}: the sparse recursion at p = {p} keeps vectors of 2^{2 * p + 1} complex entries "
+            f"{option}: the sparse recursion at p = {p} keeps vectors of 2^{2 * p} complex entries "
             f"(at least {need / 2**30:.0f} GiB), more than this machine's {total / 2**30:.0f} GiB; lower the depth"
         )
 
