@@ -144,6 +144,13 @@ def test_markdown_lists_values_ratios_fits_and_the_caveat(study, report):
     assert "V_p*/GS" not in mix_section.split("Note:")[0]
 
 
+def test_same_store_gives_the_same_extrapolation_numbers(store_path, report):
+    """Back-test errors and every extrapolated number are reproducible from the store."""
+    again = build_report(open_study(store_path))
+    assert render_json(again) == render_json(report)
+    assert render_csv(again) == render_csv(report)
+
+
 def test_csv_parses_and_holds_the_stored_values(study, report):
     rows = list(csv.DictReader(io.StringIO(render_csv(report))))
     assert rows and list(rows[0]) == CSV_COLUMNS
@@ -347,3 +354,20 @@ def test_fits_above_the_union_bound_are_flagged():
     study = InMemoryStudy("bound", [({"label": "x", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
     rep = build_report(study, ground_states={"x": 2.0}).ensembles[0]
     assert any("upper bound" in n and "0.8326" in n for n in rep.notes)
+
+
+def test_plot_draws_every_family_and_the_back_test(tmp_path):
+    """The figure of a back-tested extrapolation (published SK values, in memory) has the documented size."""
+    from matplotlib.image import imread
+
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in SK_PUBLISHED.items()]
+    study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    report = build_report(study)
+    ex = report.ensembles[0].extrapolation
+    assert ex.limit is not None and {w.family for w in ex.fits} == {"poly1", "poly2", "poly3", "power", "power-gs"}
+    out = tmp_path / "sk.png"
+    write_plots(report, out)
+    img = imread(out)
+    w, h = FIGURE_SIZE_INCHES
+    assert img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
+    assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 20
