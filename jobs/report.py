@@ -568,7 +568,8 @@ def build_ensemble_report(
             depths, values,
             ground_state=gs if dense else None,
             ground_state_uncertainty=(refs.ground_state_uncertainty or 0.0) if dense else 0.0,
-            upper_bound=union_bound(mixture) if mixture is not None else None,
+            upper_bound=union_bound(mixture) if mixture is not None else (1.0 if not dense else None),
+            upper_bound_name="the first-moment bound" if mixture is not None else "a satisfied fraction's maximum",
             threshold=alg if (dense and separated) else None,
             target_ratios=target_ratios,
             at_depths=at_depths,
@@ -978,6 +979,19 @@ FAMILY_LINESTYLES = {"poly1": (0, (1, 1.5)), "poly2": (0, (4, 2)), "poly3": (0, 
                      "power": "-", "power-gs": (0, (3, 1, 1, 1))}
 
 
+def _drawn_fits(ex: Extrapolation) -> list:
+    """[(WindowFit, used)]: per family its used window with the smallest back-test error, else
+    (family not used) its window with the smallest back-test error."""
+    best = ex.best_by_family()
+    out = []
+    for fam in FAMILIES:
+        cands = [w for w in ex.fits if w.family == fam]
+        if cands:
+            w = best.get(fam) or min(cands, key=lambda c: (c.backtest_error if c.backtest else math.inf, c.fit.k))
+            out.append((w, fam in best))
+    return out
+
+
 def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None:
     """Each family's curve out to 1/p = 0, its back-test, and the headline at 1/p = 0.
 
@@ -987,13 +1001,8 @@ def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None
     back-test predictions at them are marked with x.  The headline V_inf
     (central, range) is an error bar at 1/p = 0.
     """
-    best = ex.best_by_family()
-    for fam in FAMILIES:
-        cands = [w for w in ex.fits if w.family == fam]
-        if not cands:
-            continue
-        w = best.get(fam) or min(cands, key=lambda c: (c.backtest_error if c.backtest else math.inf, c.fit.k))
-        fit, used = w.fit, fam in best
+    for w, used in _drawn_fits(ex):
+        fit, fam = w.fit, w.family
         xs = np.linspace(0.0, 1.0 / fit.depths[0], 200)
         ax.plot(xs, fit.predict(np.where(xs > 0, 1.0 / np.maximum(xs, 1e-300), np.inf)), color=color,
                 ls=FAMILY_LINESTYLES[fam], lw=1.4 if used else 0.8, alpha=0.9 if used else 0.35)
@@ -1014,7 +1023,7 @@ def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None
 
 def _draw_zoom(ax, zoomed) -> None:
     """Inset (upper right) magnifying 1/p from 0 to just beyond the earliest fitted window."""
-    firsts = [min(w.fit.depths[0] for w in rep.extrapolation.fits) for rep, _ in zoomed if rep.extrapolation.fits]
+    firsts = [w.fit.depths[0] for rep, _ in zoomed for w, _ in _drawn_fits(rep.extrapolation)]
     if not firsts:
         return
     x_max = 1.15 / min(firsts)

@@ -642,6 +642,7 @@ def extrapolate(
     ground_state: float | None = None,
     ground_state_uncertainty: float = 0.0,
     upper_bound: float | None = None,
+    upper_bound_name: str = "the first-moment bound",
     threshold: float | None = None,
     target_ratios: Iterable[float] = DEFAULT_TARGET_RATIOS,
     at_depths: Iterable[int] = (),
@@ -659,7 +660,10 @@ def extrapolate(
     ground_state_uncertainty : float
         A fit counts as above GS only beyond this margin.
     upper_bound : float, optional
-        Rigorous bound on any energy density (used for the unphysical flag when GS is unknown).
+        Rigorous bound on any value (for energies the first-moment bound); a fit above the lower
+        of it and GS is unphysical.
+    upper_bound_name : str
+        How notes name ``upper_bound``.
     threshold : float, optional
         Algorithmic threshold ALG; when given (and below GS), the depth reaching it is predicted.
     target_ratios : ratios of GS whose depth is predicted (needs GS).
@@ -691,7 +695,7 @@ def extrapolate(
     if gs is not None:
         candidates.append((gs + float(ground_state_uncertainty), "GS"))
     if upper_bound is not None:
-        candidates.append((float(upper_bound), "the first-moment bound"))
+        candidates.append((float(upper_bound), upper_bound_name))
     bound, bound_name = min(candidates) if candidates else (None, None)
 
     raw: list[tuple[Fit, Backtest | None]] = []
