@@ -293,7 +293,13 @@ def test_sk_backtest_numbers_are_reproducible():
     assert a.holdout == 3 and a.fits[0].backtest.held_out == (10, 11, 12)
     # regression values recorded from this code on tests/sk_optima.csv (not an external source):
     # a change in the fitting or the back-test rule shows up here
-    recorded = {}
+    recorded = {
+        ("poly1", 3): 3.5469786668145264e-03,
+        ("poly2", 4): 4.488151666051099e-04,
+        ("poly3", 5): 5.582089246347621e-05,
+        ("power", 4): 6.862319941126627e-04,
+        ("power-gs", 3): 1.5309058119988839e-03,
+    }
     got = {(w.family, w.fit.k): w.backtest_error for w in a.fits if w.backtest is not None}
     for key, value in recorded.items():
         assert got[key] == pytest.approx(value, rel=1e-6), key
