@@ -340,3 +340,19 @@ def test_every_shipped_value_is_sourced_and_below_the_union_bound():
     q3 = lookup_ground_state(parse_mixture("3:1")).ground_state
     assert q2 < q3 < math.sqrt(2 * math.log(2))
     assert union_bound(parse_mixture("3:1")) == pytest.approx(1.177410, abs=1e-6)
+
+
+def test_depth_to_reach_a_threshold_below_gs_uses_the_same_rule():
+    # a level below GS (as an algorithmic threshold ALG would be): each used fit's crossing, the
+    # anchored one in closed form p = (A / (GS - level))^(1/alpha)
+    depths, values = load_sk_fixture()
+    ex = extrapolate(depths, values, ground_state=PARISI, threshold=0.74, target_ratios=())
+    (level,) = ex.levels
+    assert level.name == "ALG" and level.level == 0.74
+    anchored = ex.best_by_family()["power-gs"].fit
+    _, amp, alpha = anchored.params
+    assert level.by_family["power-gs"] == pytest.approx((amp / (PARISI - 0.74)) ** (1 / alpha), rel=1e-9)
+    crossings = [w.fit.depth_reaching(0.74) for w in ex.used]
+    assert level.fits_reaching == sum(d is not None for d in crossings)
+    assert level.low <= min(d for d in crossings if d is not None)
+    assert extrapolate(depths, values, ground_state=PARISI, threshold=0.8).levels[-1].name != "ALG"
