@@ -20,9 +20,11 @@ def plot_command(
 ) -> None:
     """Two figures of a study: V_p* vs 1/p per ensemble, and the optimal angle schedules.
 
-    FILE.png: stored V_p* (markers), the representative polynomial fit in 1/p,
-    the extrapolated V_inf +- spread at 1/p = 0 (an estimate, not a bound), and
-    reference lines GS (dashed) and ALG (dotted) where known.
+    FILE.png: stored V_p* (markers), each extrapolation family's curve out to
+    1/p = 0 (one line style per family), the held-out depths of the back-test
+    (rings) with the back-test predictions (x), the headline V_inf and its range
+    at 1/p = 0 (an estimate, not a bound), and reference lines GS (dashed) and
+    ALG (dotted) where known.
     FILE-angles.png: gamma_t and beta_t against (t - 1/2)/p, one curve per depth.
 
     Example: leadline plot study.zarr --output study.png
