@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 from collections import deque
 from dataclasses import dataclass
 from typing import Callable
@@ -68,6 +69,7 @@ __all__ = [
     "statevector_bytes",
     "StatevectorCheck",
     "statevector_check",
+    "evolve",
     "Rescaling",
     "rescale_angles",
     "sparse_reference",
@@ -324,7 +326,7 @@ def statevector_bytes(n: int) -> int:
     Building the diagonal needs 20 B per amplitude before the state exists, and the
     in-place layers add at most a few MiB of temporaries.
     """
-    return 24 * (1 << n) + 64 * 2**20
+    return 24 * (1 << n) + 32 * 2**20
 
 
 def instance_diagonal(instance: Instance) -> np.ndarray:
@@ -337,6 +339,34 @@ def instance_diagonal(instance: Instance) -> np.ndarray:
     for S, w in instance.terms.items():
         coefficients[sum(1 << i for i in S)] += w
     return walsh_hadamard(coefficients)
+
+
+def evolve(diagonal: np.ndarray, gamma, beta, *, progress: Callable[[int, int], None] | None = None) -> np.ndarray:
+    """prod_t exp(-i b_t B) exp(-i g_t C) |+>^n (t = 1 first) for C given by its diagonal (2^n,).
+
+    One complex128 state of 2^n amplitudes, updated in place layer by layer
+    (:func:`leadline.kernels.finite_size.apply_phase` and ``mix_qubit``).
+    progress : called as progress(done, total) after each of the p (n + 1) layer steps.
+    """
+    g = np.asarray(gamma, dtype=float).reshape(-1)
+    b = np.asarray(beta, dtype=float).reshape(-1)
+    if g.size != b.size or g.size < 1:
+        raise ValueError("gamma and beta need the same length p >= 1")
+    n = diagonal.size.bit_length() - 1
+    psi = np.full(1 << n, 2.0 ** (-n / 2), dtype=complex)
+    total = g.size * (n + 1)
+    done = 0
+    for t in range(g.size):
+        apply_phase(psi, diagonal, g[t])
+        done += 1
+        if progress:
+            progress(done, total)
+        for j in range(n):
+            mix_qubit(psi, j, b[t])
+            done += 1
+            if progress:
+                progress(done, total)
+    return psi
 
 
 @dataclass
@@ -373,28 +403,10 @@ def statevector_check(
     gamma, beta : shape (p,), radians, in the units of this instance's C.
     progress : called as progress(done, total) after each of the p (n + 1) layer steps.
     """
-    import time
-
     t0 = time.perf_counter()
-    g = np.asarray(gamma, dtype=float).reshape(-1)
-    b = np.asarray(beta, dtype=float).reshape(-1)
-    if g.size != b.size or g.size < 1:
-        raise ValueError("gamma and beta need the same length p >= 1")
-    n = instance.n
     diagonal = instance_diagonal(instance)
-    psi = np.full(1 << n, 2.0 ** (-n / 2), dtype=complex)
-    total = g.size * (n + 1)
-    done = 0
-    for t in range(g.size):
-        apply_phase(psi, diagonal, g[t])
-        done += 1
-        if progress:
-            progress(done, total)
-        for j in range(n):
-            mix_qubit(psi, j, b[t])
-            done += 1
-            if progress:
-                progress(done, total)
+    psi = evolve(diagonal, gamma, beta, progress=progress)
+    n = instance.n
     best = float(diagonal.max())
     worst = float(diagonal.min())
     scale = max(1.0, abs(instance.constant) + sum(abs(w) for w in instance.terms.values()))
