@@ -44,6 +44,8 @@ from .errors import InputError
 
 #: largest depth for which the finite-degree prediction (cost ~ p 4^p) is computed
 SPARSE_PREDICTION_MAX_P = 10
+#: cycles up to this length are searched for (longer when 2p + 2 is larger)
+GIRTH_SEARCH = 16
 #: default largest total-variation distance between normalized mixtures counted as "same shape"
 DEFAULT_SHAPE_TOLERANCE = 0.02
 
@@ -122,6 +124,7 @@ def transfer_command(
         "sparse": None,
         "predicted_finite_degree": None,
         "girth": None,
+        "girth_above": None,
         "expectation": None,
         "best": None,
         "worst": None,
@@ -175,10 +178,10 @@ def transfer_command(
     if structure is not None:
         out["sparse"] = {"q": structure.q, "degree": structure.degree, "weight": structure.magnitude, "terms": structure.terms}
         if structure.q == 2:
-            limit = 2 * int(gamma.size) + 2 if gamma is not None else None
+            limit = max(GIRTH_SEARCH, 2 * int(gamma.size) + 2) if gamma is not None else GIRTH_SEARCH
             found = girth(inst.n, inst.edges(), limit=limit)
             out["girth"] = found
-            if found is None and limit is not None:
+            if found is None:
                 out["girth_above"] = limit
         if gamma is not None:
             p = gamma.size
@@ -205,10 +208,8 @@ def transfer_command(
         out["statevector_memory_bytes"] = memory
         if not quiet:
             print(f"leadline: exact check on n = {inst.n} spins (2^{inst.n} amplitudes), about {_mib(memory)} of memory", file=sys.stderr)
-        check_gamma = gamma if gamma is not None else np.zeros(1)
-        check_beta = beta if beta is not None else np.zeros(1)
         with _progress_bar(quiet, inst.n) as advance:
-            check = statevector_check(inst, check_gamma, check_beta, progress=advance)
+            check = statevector_check(inst, gamma, beta, progress=advance)
         out.update(best=check.best, worst=check.worst, best_string=check.best_string)
         if gamma is not None:
             out.update(expectation=check.expectation, ratio=check.ratio, p_best=check.p_best)
@@ -386,7 +387,7 @@ def report(out: dict, xi: Mixture) -> str:
         lines.append(f"sparse          = every spin in {s['degree']} terms of order {s['q']}, weights +-{s['weight']:g}")
         if out["girth"] is not None:
             lines.append(f"girth           = {out['girth']}")
-        elif "girth_above" in out:
+        elif out["girth_above"] is not None:
             lines.append(f"girth           > {out['girth_above']}")
     if out["gamma"] is not None:
         lines += [
@@ -395,7 +396,9 @@ def report(out: dict, xi: Mixture) -> str:
             f"lambda          = {out['lambda']:.6f}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
             "gamma           = " + ", ".join(f"{x:.6f}" for x in out["gamma"]) + "   (instance units: source gamma / lambda)",
             "beta            = " + ", ".join(f"{x:.6f}" for x in out["beta"]),
-            f"predicted <C>   = {_fmt(out['predicted'])}   (constant + n lambda V_p, infinite-size ensemble)",
+            f"predicted <C>   = {_fmt(out['predicted'])}   "
+            + ("(constant + n lambda V_p, infinite-size ensemble)" if out["same_shape"]
+               else "(constant + n V_p of the instance's own mixture at these angles)"),
         ]
         if out["predicted_finite_degree"] is not None:
             lines.append(f"finite degree   = {_fmt(out['predicted_finite_degree'])}   (sparse ensemble of the same q and D)")

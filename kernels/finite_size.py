@@ -228,16 +228,19 @@ def mix_qubit(psi: np.ndarray, j: int, beta, block: int = LAYER_BLOCK) -> None:
     c, s = np.cos(b), -1j * np.sin(b)
     rows = psi if psi.ndim == 2 else psi[None, :]
     m, size = rows.shape
-    view = rows.reshape(m, size >> (j + 1), 2, 1 << j)
-    step = max(1, block // (m << j))
-    for k in range(0, view.shape[1], step):
-        low = view[:, k : k + step, 0, :]
-        high = view[:, k : k + step, 1, :]
-        saved = low.copy()
-        low *= c
-        low += s * high
-        high *= c
-        high += s * saved
+    inner = 1 << j
+    view = rows.reshape(m, size >> (j + 1), 2, inner)
+    row_step = max(1, block // (m * inner))
+    col_step = inner if m * inner <= block else max(1, block // m)
+    for k in range(0, view.shape[1], row_step):
+        for l in range(0, inner, col_step):
+            low = view[:, k : k + row_step, 0, l : l + col_step]
+            high = view[:, k : k + row_step, 1, l : l + col_step]
+            saved = low.copy()
+            low *= c
+            low += s * high
+            high *= c
+            high += s * saved
 
 
 def energy_density(diagonal: np.ndarray, gamma, beta) -> np.ndarray | float:

@@ -373,20 +373,20 @@ def evolve(diagonal: np.ndarray, gamma, beta, *, progress: Callable[[int, int], 
 class StatevectorCheck:
     """Exact QAOA on one instance.
 
-    expectation : <g,b| C |g,b>
+    expectation : <g,b| C |g,b> (None without angles)
     best        : max over all 2^n strings of C
     worst       : min over all 2^n strings of C
-    ratio       : expectation / best (None when best <= 0)
-    p_best      : probability of measuring a string with C = best
+    ratio       : expectation / best (None without angles or when best <= 0)
+    p_best      : probability of measuring a string with C = best (None without angles)
     best_string : one maximizing string as '+-' characters, spin 0 first
     """
 
     n: int
-    expectation: float
+    expectation: float | None
     best: float
     worst: float
     ratio: float | None
-    p_best: float
+    p_best: float | None
     best_string: str
     wall_time: float = 0.0
 
@@ -400,15 +400,21 @@ def statevector_check(
 ) -> StatevectorCheck:
     """The state prod_t exp(-i b_t B) exp(-i g_t C) |+>^n (t = 1 first) and its statistics.
 
-    gamma, beta : shape (p,), radians, in the units of this instance's C.
+    gamma, beta : shape (p,), radians, in the units of this instance's C; both None: only
+        the best and worst values (no state; expectation, ratio and p_best are None).
     progress : called as progress(done, total) after each of the p (n + 1) layer steps.
     """
     t0 = time.perf_counter()
     diagonal = instance_diagonal(instance)
-    psi = evolve(diagonal, gamma, beta, progress=progress)
     n = instance.n
     best = float(diagonal.max())
     worst = float(diagonal.min())
+    x = int(diagonal.argmax())
+    best_string = "".join("-" if (x >> j) & 1 else "+" for j in range(n))
+    if gamma is None and beta is None:
+        return StatevectorCheck(n=n, expectation=None, best=best, worst=worst, ratio=None, p_best=None,
+                                best_string=best_string, wall_time=time.perf_counter() - t0)
+    psi = evolve(diagonal, gamma, beta, progress=progress)
     scale = max(1.0, abs(instance.constant) + sum(abs(w) for w in instance.terms.values()))
     tolerance = 1e-9 * scale
     expectation = 0.0
@@ -419,8 +425,6 @@ def statevector_check(
         d = diagonal[k : k + block]
         expectation += float(prob @ d)
         p_best += float(prob[d >= best - tolerance].sum())
-    x = int(diagonal.argmax())
-    best_string = "".join("-" if (x >> j) & 1 else "+" for j in range(n))
     return StatevectorCheck(
         n=n,
         expectation=expectation,

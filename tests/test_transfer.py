@@ -448,7 +448,7 @@ def test_cli_above_the_spin_limit_skips_the_check(tmp_path):
     # the ring is sparse (D = 2) with girth 30 > 3: the finite-degree prediction is exact there;
     # the infinite-size one is not, and both are reported
     assert out["sparse"] == {"q": 2, "degree": 2, "weight": 1.0, "terms": 30}
-    assert out["girth"] is None and out["girth_above"] == 4
+    assert out["girth"] is None and out["girth_above"] == 16
     assert out["predicted_finite_degree"] is not None
 
 
@@ -501,3 +501,46 @@ def test_cli_store_optimum_matches_the_angle_file_route(tmp_path):
     assert at_one["predicted"] == pytest.approx(inst.constant + 9 * scale.lam * SK_V1, abs=1e-8)
     missing = run_cli("transfer", "i.json", "--store", "study.zarr", "--depth", "3", cwd=tmp_path)
     assert missing.returncode == 2 and "no finished depth 3" in missing.stderr
+
+
+@pytest.mark.parametrize("block", [1, 4, 64])
+def test_layers_in_small_blocks_equal_one_block(block):
+    """The in-place layers bound their temporaries by splitting into blocks (rows and, for high
+    qubits, columns); every split must give the same state as one block (2^7 amplitudes)."""
+    from leadline.kernels.finite_size import apply_phase, mix_qubit
+
+    rng = np.random.default_rng(block)
+    inst = random_instance(rng, 7)
+    diagonal = instance_diagonal(inst)
+    whole = evolve(diagonal, [0.3, -0.7], [0.2, 0.5])
+    psi = np.full(1 << 7, 2.0 ** (-3.5), dtype=complex)
+    for g, b in [(0.3, 0.2), (-0.7, 0.5)]:
+        apply_phase(psi, diagonal, g, block=block)
+        for j in range(7):
+            mix_qubit(psi, j, b, block=block)
+    np.testing.assert_allclose(psi, whole, rtol=0, atol=1e-14)
+
+
+def test_cli_sparse_angle_file_on_the_petersen_graph(tmp_path):
+    """A MaxCut angle file of the 3-regular large-girth ensemble acts on the satisfied (cut) count,
+    which is this instance's C exactly: gamma carries over unchanged, and with girth 5 > 2p+1 the
+    exact <C> equals m nu at p = 1 (Basso et al., TQC 2022)."""
+    from leadline.kernels.sparse import evaluate_sparse
+
+    g, b = 0.6, 0.35
+    nu = evaluate_sparse(2, 3, [g], [b]).value
+    angles = tmp_path / "maxcut3.json"
+    angles.write_text(json.dumps({"format": "leadline.angles", "version": 1, "xi": None,
+                                  "ensemble": {"kind": "sparse", "q": 2, "degree": 3}, "p": 1,
+                                  "gamma": [g], "beta": [b], "value": nu}))
+    path = tmp_path / "petersen.txt"
+    path.write_text("".join(f"0.5\n-0.5 {u} {v}\n" for u, v in PETERSEN))
+    done = run_cli("transfer", path, "--angles", angles, "--json")
+    assert done.returncode == 0, done.stderr
+    out = json.loads(done.stdout)
+    assert out["lambda"] == pytest.approx(0.5, rel=1e-14) and out["gamma"] == pytest.approx([g], rel=1e-14)
+    assert out["girth"] == 5
+    assert out["predicted_finite_degree"] == pytest.approx(15 * nu, abs=1e-10)
+    assert out["expectation"] == pytest.approx(15 * nu, abs=1e-10)
+    # the infinite-size prediction uses the file's finite-degree value per spin, lambda (D/q)(2 nu - 1)
+    assert out["predicted"] == pytest.approx(7.5 + 10 * 0.5 * 1.5 * (2 * nu - 1), abs=1e-10)
