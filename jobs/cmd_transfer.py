@@ -121,6 +121,7 @@ def transfer_command(
         "gamma": None,
         "beta": None,
         "predicted": None,
+        "predicted_from": None,
         "sparse": None,
         "predicted_finite_degree": None,
         "girth": None,
@@ -147,7 +148,9 @@ def transfer_command(
         out["reference_xi"] = reference["xi"].spec()
         if same and reference["value"] is not None:
             per_spin = scale.lam * reference["value"]
+            out["predicted_from"] = f"constant + n lambda V_p, {reference['kind']}"
         else:
+            out["predicted_from"] = "constant + n V_p of the instance's own mixture at these angles (infinite size)"
             per_spin = _dense_value(xi, gamma, beta)
         if not same:
             notes.append(
@@ -167,6 +170,7 @@ def transfer_command(
         out.update(source=f"optimized for the instance's mixture {xi.spec()}", p=depth, shape_distance=0.0, same_shape=True)
         out["lambda"] = 1.0
         out["predicted"] = inst.constant + inst.n * result.value
+        out["predicted_from"] = "constant + n V_p*, infinite-size ensemble of the instance's mixture"
     else:
         notes.append("no angles given (--angles, --store or --depth): only the mixture and the best value are reported")
     if gamma is not None:
@@ -259,9 +263,10 @@ def _reference(kind, xi_spec, q, degree, gamma, beta, value, source: str) -> dic
         except (TypeError, ValueError):
             raise InputError(f"{source}: sparse ensemble without a usable q and degree") from None
         xi, gamma, per_spin = sparse_reference(q, degree, gamma, value)
-        return {"xi": xi, "gamma": gamma, "beta": beta, "value": per_spin, "source": source}
+        return {"xi": xi, "gamma": gamma, "beta": beta, "value": per_spin, "source": source,
+                "kind": f"sparse ensemble q = {q}, D = {degree:g}, large girth"}
     xi = _mixture(xi_spec, source)
-    return {"xi": xi, "gamma": gamma, "beta": beta, "value": value, "source": source}
+    return {"xi": xi, "gamma": gamma, "beta": beta, "value": value, "source": source, "kind": "infinite-size ensemble"}
 
 
 def _reference_from_file(path: str, depth: int | None) -> dict:
@@ -396,9 +401,7 @@ def report(out: dict, xi: Mixture) -> str:
             f"lambda          = {out['lambda']:.6f}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
             "gamma           = " + ", ".join(f"{x:.6f}" for x in out["gamma"]) + "   (instance units: source gamma / lambda)",
             "beta            = " + ", ".join(f"{x:.6f}" for x in out["beta"]),
-            f"predicted <C>   = {_fmt(out['predicted'])}   "
-            + ("(constant + n lambda V_p, infinite-size ensemble)" if out["same_shape"]
-               else "(constant + n V_p of the instance's own mixture at these angles)"),
+            f"predicted <C>   = {_fmt(out['predicted'])}   ({out['predicted_from']})",
         ]
         if out["predicted_finite_degree"] is not None:
             lines.append(f"finite degree   = {_fmt(out['predicted_finite_degree'])}   (sparse ensemble of the same q and D)")
