@@ -116,6 +116,7 @@ def transfer_command(
         "source": None,
         "p": None,
         "lambda": None,
+        "reference_xi": None,
         "shape_distance": None,
         "same_shape": None,
         "gamma": None,
@@ -169,6 +170,7 @@ def transfer_command(
         gamma, beta = result.gamma, result.beta
         out.update(source=f"optimized for the instance's mixture {xi.spec()}", p=depth, shape_distance=0.0, same_shape=True)
         out["lambda"] = 1.0
+        out["reference_xi"] = xi.spec()
         out["predicted"] = inst.constant + inst.n * result.value
         out["predicted_from"] = "constant + n V_p*, infinite-size ensemble of the instance's mixture"
     else:
