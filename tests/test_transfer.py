@@ -365,7 +365,7 @@ def test_bad_instance_raises_instance_error(name):
         parse_instance(BAD_FILES[name])
 
 
-@pytest.mark.parametrize("name", ["repeated index", "non-number weight", "negative index", "blank", "JSON version"])
+@pytest.mark.parametrize("name", ["repeated index", "non-number weight", "non-number index", "negative index", "blank", "JSON version"])
 def test_cli_bad_instance_file_exits_2_with_one_line_and_writes_nothing(tmp_path, name):
     path = tmp_path / "bad.txt"
     path.write_text(BAD_FILES[name])
@@ -544,3 +544,13 @@ def test_cli_sparse_angle_file_on_the_petersen_graph(tmp_path):
     assert out["expectation"] == pytest.approx(15 * nu, abs=1e-10)
     # the infinite-size prediction uses the file's finite-degree value per spin, lambda (D/q)(2 nu - 1)
     assert out["predicted"] == pytest.approx(7.5 + 10 * 0.5 * 1.5 * (2 * nu - 1), abs=1e-10)
+
+
+def test_the_command_module_imports_no_heavy_library():
+    code = (
+        "import sys, leadline.jobs.cmd_transfer, leadline.kernels.instance\n"
+        "print(sorted(m for m in ('dask', 'distributed', 'zarr', 'matplotlib', 'scipy.optimize') if m in sys.modules))"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[]"
