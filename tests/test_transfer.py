@@ -462,6 +462,31 @@ def test_cli_shape_mismatch_says_so_and_still_predicts(tmp_path):
     assert done.returncode == 0, done.stderr
     assert "differs in shape" in done.stdout and "--depth 1" in done.stdout
     assert "exact <C>" in done.stdout
+    out = json.loads(run_cli("transfer", path, "--angles", angles, "--json").stdout)
+    inst = parse_instance(path.read_text())
+    xi = empirical_mixture(inst)
+    scale = rescale_angles(xi, SK, [0.5])
+    assert out["same_shape"] is False and out["shape_distance"] == pytest.approx(scale.distance)
+    from leadline.kernels.iteration import evaluate
+
+    # the prediction is V_p of the instance's own mixture at the rescaled angles
+    assert out["predicted"] == pytest.approx(inst.n * evaluate(xi, scale.gamma, [math.pi / 8]).value, rel=1e-12)
+
+
+def test_cli_depth_alone_gives_the_sk_optimum_in_instance_units(tmp_path):
+    """A +-1 instance on all pairs has xi = ((n-1)/2) x^2, a multiple of SK's x^2/2, so the p = 1
+    optimum for it is SK's gamma = 1/2, beta = pi/8 with gamma divided by lambda, and the
+    predicted <C> is n lambda / sqrt(4e) (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022))."""
+    rng = np.random.default_rng(12)
+    n = 8
+    path = tmp_path / "pm1.txt"
+    path.write_text("".join(f"{int(rng.choice([-1, 1]))} {i} {j}\n" for i, j in complete(n)))
+    out = json.loads(run_cli("transfer", path, "--depth", "1", "--json").stdout)
+    lam = math.sqrt((n - 1) / 2 / 0.5)
+    assert out["xi"] == "2:3.5" and out["lambda"] == 1.0
+    assert out["gamma"][0] == pytest.approx(0.5 / lam, abs=1e-6)
+    assert out["beta"][0] == pytest.approx(math.pi / 8, abs=1e-6)
+    assert out["predicted"] == pytest.approx(n * lam * SK_V1, rel=1e-9)
 
 
 SPEC = """
