@@ -14,7 +14,6 @@ n <= --max-spins the exact statevector QAOA.
 from __future__ import annotations
 
 import json
-import math
 import os
 import sys
 import tempfile
