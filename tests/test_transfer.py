@@ -8,6 +8,8 @@ External references used here:
   022304 (2018), Sec. III, the p = 1 formula with no triangles);
 - p = 1 expectations of Z_u and Z_u Z_v for Ising costs with fields (Ozaeta, van Dam, McMahon,
   Quantum Sci. Technol. 7, 045036 (2022), the single-layer formula for sum h Z + sum J Z Z);
+  both closed forms are written here from memory of the papers (equation numbers not checked),
+  in the convention exp(-i beta B) exp(-i gamma C) |+>^n with C maximized;
 - maximum cuts in closed form: K_n cuts floor(n^2/4) edges, bipartite graphs (even cycles,
   K_{a,b}) cut every edge (handbook facts, common practice);
 - girths: Petersen graph 5, cycle C_n n, K_4 3, cube graph Q_3 4, trees none (handbook facts,
