@@ -19,7 +19,6 @@ import json
 import math
 import subprocess
 import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -40,7 +39,7 @@ from leadline.kernels.finite_size import (
 from leadline.kernels.iteration import evaluate
 from leadline.kernels.mixture import parse_mixture
 
-LEADLINE = Path(sys.executable).with_name("leadline")
+LEADLINE = [sys.executable, "-m", "leadline"]  # the interpreter running the tests, from any environment
 
 MIXTURES = ["2:0.5", "3:1", "1:0.3,2:0.5,3:1", "2:0.25,4:0.5,5:0.2,6:0.1"]
 
@@ -303,7 +302,7 @@ def test_the_approach_check_would_catch_a_reversed_layer_order():
 
 # ------------------------------------------------------------ (d) the CLI
 def run_cli(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([str(LEADLINE), *args], capture_output=True, text=True, timeout=120)
+    return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, timeout=120)
 
 
 def test_cli_json_output_is_reproducible_and_matches_the_kernel():
