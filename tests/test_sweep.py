@@ -88,29 +88,45 @@ def all_completions(store: Path) -> list[int]:
     return out
 
 
+def wait_for_file(path: Path, proc: subprocess.Popen, limit_s: float = 120.0) -> dict:
+    """Wait until ``proc`` writes its hold file (an event written by the code, not a delay).
+
+    The limit only guards against a hang; returns the file's content (pid, point, count).
+    """
+    deadline = time.monotonic() + limit_s
+    while not path.exists():
+        assert proc.poll() is None, f"the process ended (rc {proc.returncode}) before reaching its hold point"
+        assert time.monotonic() < deadline, f"no hold file {path.name} after {limit_s:.0f} s"
+        time.sleep(0.02)
+    return json.loads(path.read_text())
+
+
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory):
-    """An uninterrupted sweep; while it runs, a second writer tries the same store."""
+    """An uninterrupted sweep; held mid-run, a second writer tries the same store and status reads it."""
     folder = tmp_path_factory.mktemp("reference")
     spec = write_spec(folder, "ref.zarr")
     store = folder / "ref.zarr"
     audit = folder / "audit.txt"
+    hold = folder / "held"
+    # held at its 3rd recorded chunk (inside the first p = 3 pass): surely running, lock held
     proc = subprocess.Popen([*LEADLINE, "sweep", str(spec), "--quiet"], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, env=env_with(LEADLINE_CHUNK_AUDIT=audit))
-    deadline = time.time() + 60
-    while not ((store / LOCK_NAME).exists() and (store / "zarr.json").exists()) and time.time() < deadline:
-        time.sleep(0.05)
-    first_running = proc.poll() is None
-    # the second writers and a reader, started together while the first one runs
+                            stderr=subprocess.PIPE, text=True,
+                            env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_HOLD_AT="chunk-recorded:3",
+                                         LEADLINE_HOLD_FILE=hold))
+    held = wait_for_file(hold, proc)
+    # the second writers and readers, started together while the first one is held
     started = {
         name: subprocess.Popen([*LEADLINE, *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         for name, args in (("resume", ["resume", str(store)]), ("sweep", ["sweep", str(spec)]),
-                           ("status", ["status", str(store), "--json"]))
+                           ("status", ["status", str(store), "--json"]), ("status_human", ["status", str(store)]))
     }
-    probes = {"first_running": first_running}
+    probes = {"held": held}
     for name, p in started.items():
         out, err = p.communicate(timeout=120)
         probes[name] = subprocess.CompletedProcess(p.args, p.returncode, out, err)
+    probes["first_running"] = proc.poll() is None
+    hold.unlink()  # let the first writer go on
     out, err = proc.communicate(timeout=180)
     return {"folder": folder, "store": store, "spec": spec, "audit": audit, "rc": proc.returncode,
             "stdout": out, "stderr": err, "probes": probes, "pid": proc.pid}
@@ -124,9 +140,10 @@ def test_second_writer_refused_first_unharmed(reference):
     assert f"in use by pid {reference['pid']}" in resume.stderr and len(resume.stderr.strip().splitlines()) == 1
     sweep = probes["sweep"]
     assert sweep.returncode == 2 and "already exists" in sweep.stderr and "leadline resume" in sweep.stderr
+    assert probes["held"]["pid"] == reference["pid"]
     status = json.loads(probes["status"].stdout)
-    if status["lock"] is not None:  # (the first writer may just have finished)
-        assert status["lock"]["pid"] == reference["pid"] and status["lock"]["alive"]
+    assert status["lock"]["pid"] == reference["pid"] and status["lock"]["alive"]
+    assert not status["complete"]
     # the first writer is unharmed: finished, lock released, published values
     assert reference["rc"] == 0, reference["stderr"]
     assert not (reference["store"] / LOCK_NAME).exists()
@@ -135,6 +152,33 @@ def test_second_writer_refused_first_unharmed(reference):
     for d in depths:
         assert d["value"] == pytest.approx(SK_TABLE_1[d["p"]], abs=5e-5)
     assert sorted(collections.Counter(audit_lines(reference["audit"])).values())[-1] == 1
+
+
+def test_status_during_a_run_human_and_json(reference):
+    """`status` of a store whose writer is held inside the first p = 3 pass, after its 3rd chunk."""
+    probes = reference["probes"]
+    assert probes["held"]["point"] == "chunk-recorded" and probes["held"]["count"] == 3
+    status = json.loads(probes["status"].stdout)
+    (sk,) = status["ensembles"]
+    assert [d["p"] for d in sk["done"]] == [1, 2] and sk["todo"] == [3]
+    for d in sk["done"]:
+        assert d["value"] == pytest.approx(SK_TABLE_1[d["p"]], abs=5e-5)
+    assert sk["running"]["p"] == 3
+    assert sk["running"]["inflight"]["chunks_done"] == 3 and sk["running"]["inflight"]["n_chunks"] == 4
+    human = probes["status_human"]
+    assert human.returncode == 0, human.stderr
+    lines = human.stdout.splitlines()
+    assert lines[0].startswith("study 'kill-test'") and "depths 1..3" in lines[0]
+    assert any(line.startswith("writer: ") and f"pid {reference['pid']}" in line and line.endswith("running")
+               for line in lines), human.stdout
+    done = next(line.strip() for line in lines if line.strip().startswith("done"))
+    # the values shown are the stored ones, to 6 decimals (Table 1 to 4)
+    shown = dict(item.split("=") for item in done.split(":", 1)[1].split())
+    assert done.startswith("done     p = 1..2") and set(shown) == {"p1", "p2"}
+    for p in (1, 2):
+        assert float(shown[f"p{p}"]) == pytest.approx(SK_TABLE_1[p], abs=5e-5)
+    running = next(line.strip() for line in lines if line.strip().startswith("running"))
+    assert running.startswith("running  p = 3:") and "pass in flight: 3/4 chunks done" in running
 
 
 def _compare_with_reference(reference, store: Path) -> None:
@@ -154,28 +198,39 @@ def test_kill_at_random_moments_then_resume_matches_uninterrupted(reference, tmp
     spec = write_spec(tmp_path, "killed.zarr")
     store = tmp_path / "killed.zarr"
     audit = tmp_path / "audit.txt"
-    # (crash point, count) chosen by the seeded generator; None = kill -9 after a random delay.
+    # (crash point, count, how) with counts chosen by the seeded generator. "self": the process
+    # kills itself at the point (LEADLINE_CRASH_AT); "external": it holds at the point and this
+    # test sends the SIGKILL (a kill from outside, at a moment the code announced, not a delay).
     # Counts are per process; p = 1 and 2 passes are single-chunk, p = 3 passes have 4 chunks.
     kills = [
-        ("pass-cached", int(rng.integers(5, 30))),            # between passes: inside the optimizer
-        ("depth-arrays-written", 1),                          # while a depth's result is being written
-        ("chunk-partial-written", int(rng.integers(20, 120))),  # mid pass, between data and ledger row
-        (None, float(rng.uniform(0.5, 2.0))),                 # anywhere
-        ("chunk-recorded", int(rng.integers(20, 120))),       # mid pass, right after a ledger row
+        ("pass-cached", int(rng.integers(5, 30)), "self"),            # between passes: inside the optimizer
+        ("depth-arrays-written", 1, "self"),                          # while a depth's result is being written
+        ("depth-done", 1, "self"),                                    # done flag written, in-flight ledger not yet removed
+        ("chunk-partial-written", int(rng.integers(20, 120)), "self"),  # mid pass, between data and ledger row
+        ("pass-cached", int(rng.integers(2, 20)), "external"),         # anywhere between passes, from outside
+        ("chunk-recorded", int(rng.integers(20, 120)), "self"),       # mid pass, right after a ledger row
     ]
-    for i, (point, when) in enumerate(kills):
+    for i, (point, when, how) in enumerate(kills):
         args = ["sweep", str(spec)] if i == 0 else ["resume", str(store)]
         env = env_with(LEADLINE_CHUNK_AUDIT=audit)
-        if point is not None:
+        if how == "self":
             env["LEADLINE_CRASH_AT"] = f"{point}:{when}"
             r = run([*args, "--quiet"], env=env)
             assert r.returncode == -signal.SIGKILL, (point, when, r.returncode, r.stderr)
         else:
+            hold = tmp_path / "held"
+            env.update(LEADLINE_HOLD_AT=f"{point}:{when}", LEADLINE_HOLD_FILE=str(hold))
             proc = subprocess.Popen([*LEADLINE, *args, "--quiet"], env=env, stdout=subprocess.DEVNULL,
                                     stderr=subprocess.DEVNULL)
-            time.sleep(when)
-            proc.send_signal(signal.SIGKILL)
-            proc.wait(timeout=60)
+            try:
+                assert wait_for_file(hold, proc)["pid"] == proc.pid
+                proc.send_signal(signal.SIGKILL)
+                assert proc.wait(timeout=60) == -signal.SIGKILL
+            finally:
+                if proc.poll() is None:
+                    proc.kill()
+                    proc.wait()
+            hold.unlink()
         status = run(["status", str(store), "--json"])
         assert status.returncode == 0, status.stderr
         progress = json.loads(status.stdout)
