@@ -44,7 +44,7 @@ restarts = 0
 seed = 0
 
 [compute]
-executor = "inprocess"
+{compute}
 memory-mb = {memory_mb}
 
 [[ensemble]]
@@ -53,10 +53,10 @@ xi = "2:0.5"
 """
 
 
-def write_spec(folder: Path, store: str, memory_mb: float = 0.016) -> Path:
+def write_spec(folder: Path, store: str, memory_mb: float = 0.016, compute: str = 'executor = "inprocess"') -> Path:
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "study.toml"
-    path.write_text(SPEC.format(store=store, memory_mb=memory_mb))
+    path.write_text(SPEC.format(store=store, memory_mb=memory_mb, compute=compute))
     return path
 
 
@@ -374,24 +374,47 @@ def test_resume_and_status_of_a_non_store_exit_2(tmp_path):
 
 
 @pytest.mark.slow
-def test_resume_on_a_local_dask_cluster_skips_finished_chunks(reference, tmp_path):
-    """Killed in process mid-pass, resumed on a real Dask LocalCluster (the executor's done/on_chunk hook)."""
-    spec = write_spec(tmp_path, "dask.zarr")
+def test_sweep_killed_while_on_a_local_dask_cluster_then_resumed(reference, tmp_path):
+    """The writer is SIGKILLed mid-pass while its passes run on a Dask LocalCluster; its worker
+    processes go with it, and a resume on a new cluster ends with the uninterrupted numbers."""
+    import psutil
+
+    spec = write_spec(tmp_path, "dask.zarr", compute='executor = "local"\nworkers = 1')
     store = tmp_path / "dask.zarr"
     audit = tmp_path / "audit.txt"
-    r = run(["sweep", str(spec), "--quiet"], env=env_with(LEADLINE_CRASH_AT="chunk-recorded:10",
-                                                           LEADLINE_CHUNK_AUDIT=audit))
-    assert r.returncode == -signal.SIGKILL
-    before = len(audit_lines(audit))
+    hold = tmp_path / "held"
+    proc = subprocess.Popen([*LEADLINE, "sweep", str(spec), "--quiet"], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL,
+                            env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_HOLD_AT="chunk-recorded:6",
+                                         LEADLINE_HOLD_FILE=hold))
+    cluster_procs = []
+    try:
+        wait_for_file(hold, proc)
+        cluster_procs = psutil.Process(proc.pid).children(recursive=True)
+        assert cluster_procs, "no Dask worker processes under the sweep"
+        proc.send_signal(signal.SIGKILL)
+        assert proc.wait(timeout=60) == -signal.SIGKILL
+        # no orphaned worker: the processes of the killed writer's cluster end by themselves
+        _, alive = psutil.wait_procs(cluster_procs, timeout=90)
+        assert not alive, [p.pid for p in alive]
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        for child in cluster_procs:  # only the processes this test's sweep started
+            if child.is_running():
+                child.kill()
+    hold.unlink()
+    progress = json.loads(run(["status", str(store), "--json"]).stdout)
+    assert not progress["complete"] and not progress["lock"]["alive"]
+    assert progress["ensembles"][0]["running"]["inflight"]["chunks_done"] > 0  # killed mid-pass
     r = run(["resume", str(store), "--executor", "local", "--workers", "1", "--quiet"],
             env=env_with(LEADLINE_CHUNK_AUDIT=audit))
     assert r.returncode == 0, r.stderr
-    assert len(audit_lines(audit)) > before
-    # worker processes run BLAS single-threaded, so the last bits may differ from the
-    # in-process reference; the numbers agree to rounding
     _compare_with_reference(reference, store)
     counts = collections.Counter(audit_lines(audit))
-    assert max(counts.values()) == 1  # no chunk recorded twice across the two executors
+    assert max(counts.values()) == 1  # no finished chunk computed again after the kill
+    assert set(counts) == set(audit_lines(reference["audit"]))
 
 
 def test_sparse_ensemble_sweep_matches_published_maxcut_values(tmp_path, capsys):
