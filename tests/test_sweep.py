@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import collections
 import json
+import math
 import os
 import signal
 import subprocess
@@ -417,20 +418,72 @@ def test_sweep_killed_while_on_a_local_dask_cluster_then_resumed(reference, tmp_
     assert set(counts) == set(audit_lines(reference["audit"]))
 
 
-def test_sparse_ensemble_sweep_matches_published_maxcut_values(tmp_path, capsys):
-    """MaxCut on 3-regular graphs of large girth (q = 2, D = 3), depth-level checkpoints only.
+SPARSE_SPEC = spec_text({"study": 'name = "mc"\nstore = "mc.zarr"', "optimizer": "restarts = 1"},
+                        ensemble='[[ensemble]]\nlabel = "maxcut-d3"\nkind = "sparse"\nq = 2\ndegree = 3')
+# MaxCut on D-regular triangle-free graphs at p = 1: the optimum 1/2 + (1/2) D^(-1/2) ((D-1)/D)^((D-1)/2)
+# (Wang, Hadfield, Jiang, Rieffel, Phys. Rev. A 97, 022304 (2018)); D = 3 gives 0.692450, quoted
+# as 0.6925 by Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014).
+MAXCUT_D3_P1 = 0.5 + 0.5 / math.sqrt(3) * (2 / 3)
+# p = 2, optimized: 0.7559 (Wurtz, Love, Phys. Rev. A 103, 042612 (2021)), 4 decimals
+MAXCUT_D3_P2 = 0.7559
 
-    p = 1: 0.6925 (Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014));
-    p = 2: 0.7559 (Wurtz, Love, Phys. Rev. A 103, 042612 (2021)).
-    """
-    from leadline.jobs.cli import main
 
-    spec = tmp_path / "study.toml"
-    spec.write_text(spec_text({"study": 'name = "mc"\nstore = "mc.zarr"', "optimizer": "restarts = 1"},
-                              ensemble='[[ensemble]]\nlabel = "maxcut-d3"\nkind = "sparse"\nq = 2\ndegree = 3'))
-    main(["sweep", str(spec), "--quiet"])
-    study = open_study(tmp_path / "mc.zarr")
+@pytest.fixture(scope="module")
+def sparse_reference(tmp_path_factory):
+    """An uninterrupted sweep of a sparse ensemble (MaxCut, D = 3, p = 1..2), with --json."""
+    folder = tmp_path_factory.mktemp("sparse")
+    (folder / "study.toml").write_text(SPARSE_SPEC)
+    r = run(["sweep", str(folder / "study.toml"), "--json"])
+    assert r.returncode == 0, r.stderr
+    return {"store": folder / "mc.zarr", "json": json.loads(r.stdout)}
+
+
+def test_sparse_ensemble_sweep_matches_published_maxcut_values(sparse_reference):
+    """MaxCut on 3-regular graphs of large girth (q = 2, D = 3), depth-level checkpoints only;
+    `sweep --json` reports what the store holds."""
+    assert MAXCUT_D3_P1 == pytest.approx(0.692450, abs=5e-7)
+    study = open_study(sparse_reference["store"])
     assert study.ensemble("maxcut-d3")["kind"] == "sparse" and study.ensemble("maxcut-d3")["degree"] == 3
     values = {d["p"]: d["value"] for d in study.depths("maxcut-d3")}
-    assert values[1] == pytest.approx(0.6925, abs=5e-5)
-    assert values[2] == pytest.approx(0.7559, abs=5e-5)
+    assert abs(values[1] - MAXCUT_D3_P1) < 1e-6
+    assert values[2] == pytest.approx(MAXCUT_D3_P2, abs=5e-5)
+    out = sparse_reference["json"]
+    assert Path(out["store"]).resolve() == sparse_reference["store"].resolve()
+    assert [(line["label"], line["p"]) for line in out["finished_now"]] == [("maxcut-d3", 1), ("maxcut-d3", 2)]
+    assert [line["result"]["value"] for line in out["finished_now"]] == [values[1], values[2]]
+    assert out["progress"]["complete"] and out["progress"]["lock"] is None
+
+
+def test_sparse_ensemble_killed_mid_depth_then_resumed(sparse_reference, tmp_path):
+    """SIGKILL while p = 2 is running (depth marked running, optimizer under way), then
+    `resume --json`: p = 1 is kept, p = 2 is redone to the uninterrupted value."""
+    (tmp_path / "study.toml").write_text(SPARSE_SPEC)
+    store = tmp_path / "mc.zarr"
+    hold = tmp_path / "held"
+    proc = subprocess.Popen([*LEADLINE, "sweep", str(tmp_path / "study.toml"), "--quiet"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            env=env_with(LEADLINE_HOLD_AT="depth-started:2", LEADLINE_HOLD_FILE=hold))
+    try:
+        assert wait_for_file(hold, proc)["point"] == "depth-started"
+        proc.send_signal(signal.SIGKILL)
+        assert proc.wait(timeout=60) == -signal.SIGKILL
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    hold.unlink()
+    progress = json.loads(run(["status", str(store), "--json"]).stdout)
+    (ens,) = progress["ensembles"]
+    assert [d["p"] for d in ens["done"]] == [1] and ens["running"]["p"] == 2 and not progress["complete"]
+    r = run(["resume", str(store), "--json"])
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert [(line["label"], line["p"]) for line in out["finished_now"]] == [("maxcut-d3", 2)]
+    assert out["progress"]["complete"] and out["progress"]["lock"] is None
+    got = {d["p"]: d for d in open_study(store).depths("maxcut-d3")}
+    want = {d["p"]: d for d in open_study(sparse_reference["store"]).depths("maxcut-d3")}
+    for p in (1, 2):
+        assert abs(got[p]["value"] - want[p]["value"]) <= 1e-10
+        assert np.max(np.abs(np.subtract(got[p]["gamma"], want[p]["gamma"]))) <= 1e-10
+    assert got[2]["value"] == pytest.approx(MAXCUT_D3_P2, abs=5e-5)
+    assert out["finished_now"][0]["result"]["value"] == got[2]["value"]
