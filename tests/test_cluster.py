@@ -4,7 +4,7 @@ a scheduler and workers started as separate processes on 127.0.0.1, a real SIGKI
 External anchors:
 - SK p = 1 closed form V_1(g, b) = g sin(4b) exp(-2 g^2), so
   dV/dg = (1 - 4 g^2) sin(4b) exp(-2 g^2) and dV/db = 4 g cos(4b) exp(-2 g^2)
-  (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Sec. 4; SK normalized
+  (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), the p = 1 case; SK normalized
   with i<j pairs, xi(x) = x^2/2).
 - Every forward pass has sum_a w(a) = 1, i.e. unit diagonal of G (ibid., and Basso,
   Gamarnik, Mei, Zhou, FOCS 2022, arXiv:2204.10306, for any mixture xi).
@@ -183,7 +183,7 @@ def test_local_cluster_same_value_and_gradient(which, request, reference_p5):
 
 
 def test_local_cluster_reproduces_sk_p1_closed_form(local2):
-    # Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Sec. 4: V_1 = g sin(4b) exp(-2 g^2)
+    # Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), p = 1: V_1 = g sin(4b) exp(-2 g^2)
     g, b = 0.37, 0.23
     plan = plan_chunks(1, n_high=2, rows_per_chunk=1)  # 4 chunks of one path pair each
     ev = evaluate(parse_mixture("2:0.5"), [g], [b], plan=plan, run_pass=local2.run_pass, gradient=True)

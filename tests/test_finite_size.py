@@ -8,7 +8,7 @@ External references used here:
   (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022) for SK; Basso, Gamarnik,
   Mei, Zhou, FOCS 2022, arXiv:2204.10306 for mixed spins), checked against brute-force
   enumeration and brute-force sampling of the coupling tensor;
-- SK p = 1 optimum g = 1/2, b = pi/8, V_1 = 1/sqrt(4e) (Farhi et al. 2022, Sec. 4).
+- SK p = 1 optimum g = 1/2, b = pi/8, V_1 = 1/sqrt(4e) (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), the p = 1 case).
 """
 
 from __future__ import annotations
@@ -172,7 +172,8 @@ def test_odd_set_count_small_closed_forms():
 @pytest.mark.parametrize("spec", MIXTURES)
 @pytest.mark.parametrize("n", [4, 7])
 def test_sampler_covariance_is_exactly_n_xi_of_overlap(spec, n):
-    """Cov(H(z), H(z')) = n xi(R) for every pair of states (model definition, formula.md;
+    """Cov(H(z), H(z')) = n xi(R) for every pair of states (the model definition of Basso, Gamarnik,
+    Mei, Zhou, FOCS 2022;
     with all ordered tuples sum_tuples prod z z' = (n R)^q exactly)."""
     mixture = parse_mixture(spec)
     expected = n * mixture.xi(overlap_matrix(n))

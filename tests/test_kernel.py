@@ -2,11 +2,12 @@
 
 Sources:
 - SK p = 1 closed form V_1 = g sin(4b) exp(-2 g^2), maximum 1/sqrt(4e) at g = 1/2,
-  b = pi/8: Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Sec. 3.
+  b = pi/8: Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), the p = 1 case
+  of their formula (section numbers are not cited: not checked against the published text).
 - Mixed-spin p = 1: G_1[0,1] = cos 2b - i sin 2b exp(-2 g^2 xi'(1)) and
   V_1 = -2 g Im xi(G_1[0,1]): Claes, van Dam, Quantum 5, 542 (2021).
 - Invariants (sum w = 1, G[-j,-k] = conj G[j,k], unit diagonal, fixed point,
-  real V): Farhi, Goldstone, Gutmann, Zhou (2022), Sec. 4 and App. A.
+  real V): Farhi, Goldstone, Gutmann, Zhou (2022), properties of their iteration.
 """
 
 from __future__ import annotations
