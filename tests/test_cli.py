@@ -175,3 +175,18 @@ def test_help_teaches():
     assert r.returncode == 0 and "evaluate" in r.stdout and "optimize" in r.stdout
     r = run("evaluate", "--help")
     assert r.returncode == 0 and "Example" in r.stdout and "--xi" in r.stdout
+
+
+def test_dense_optimize_on_a_local_cluster_matches_in_process():
+    """`optimize` with its passes on a Dask LocalCluster (worker processes on 127.0.0.1):
+    the same optimum as in process, and the published value (Quantum 6, 759 (2022), Table 1:
+    V_2* = 0.4075 for SK)."""
+    args = ["optimize", "--xi", "2:0.5", "--depth", "2", "--restarts", "0", "--memory-mb", "0.004", "--json"]
+    here = run(*args)
+    assert here.returncode == 0, here.stderr
+    there = run(*args, "--executor", "local", "--workers", "1", "--quiet")
+    assert there.returncode == 0, there.stderr
+    a, b = json.loads(here.stdout), json.loads(there.stdout)
+    assert round(b["value"], 4) == 0.4075
+    assert abs(a["value"] - b["value"]) <= 1e-10
+    assert max(abs(x - y) for x, y in zip(a["gamma"] + a["beta"], b["gamma"] + b["beta"])) <= 1e-8

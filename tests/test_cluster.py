@@ -312,6 +312,24 @@ def test_adjoint_batches_are_steered_to_the_forward_worker(local2):
     np.testing.assert_array_equal(local2.run_pass(inp, plan), ref_b)  # a hint never changes numbers
 
 
+def test_local_cluster_listens_on_loopback_only(local2):
+    """Every socket the local cluster listens on (scheduler and workers, comms and HTTP) is
+    bound to 127.0.0.1: nothing is exposed on the host's other interfaces."""
+
+    def http_sockets(server):
+        http = getattr(server, "http_server", None)
+        return [s.getsockname()[0] for s in http._sockets.values()] if http is not None else []
+
+    client = local2.client
+    hosts = [client.scheduler.address.split("://")[1].rsplit(":", 1)[0]]
+    hosts += list(client.nthreads())  # worker comm addresses
+    hosts = [h.split("://")[-1].rsplit(":", 1)[0] for h in hosts]
+    hosts += client.run_on_scheduler(lambda dask_scheduler: http_sockets(dask_scheduler))
+    for found in client.run(lambda dask_worker: http_sockets(dask_worker)).values():
+        hosts += found
+    assert len(hosts) >= 3 and set(hosts) == {"127.0.0.1"}, hosts
+
+
 def test_executor_map_keeps_block_order_on_a_local_cluster(local2):
     """run_map on real worker processes returns results in block order, whatever order the
     blocks finish in: early blocks carry the most work, and both workers take part."""
