@@ -444,9 +444,14 @@ setup = ["module load python/3.11"]
 def test_batch_config_slurm_job_script(tmp_path):
     import tomllib
 
+    import dask
+    import dask_jobqueue  # noqa: F401  (registers the jobqueue config defaults)
+
     cfg = parse_batch_config(tomllib.loads(OVERNIGHT_SLURM), "overnight.toml")
     assert (cfg.jobs, cfg.processes, cfg.threads_per_worker, cfg.total_threads) == (8, 16, 2, 256)
-    cluster = make_batch_cluster(cfg, submit=False)  # builds the job script, submits nothing
+    # the cluster object starts a real scheduler here: keep it (and its dashboard) on loopback
+    with dask.config.set({"jobqueue.slurm.scheduler-options": {"host": "127.0.0.1", "dashboard_address": "127.0.0.1:0"}}):
+        cluster = make_batch_cluster(cfg, submit=False)  # builds the job script, submits nothing
     try:
         script = cluster.job_script()
         assert len(cluster.workers) == 0

@@ -86,7 +86,13 @@ def batch(tmp_path):
         subprocess.run(["scancel", *left], timeout=30)
 
 
+# the scheduler of the batch cluster runs in the tool's process: its comms follow the job's
+# interface ("lo"), its dashboard is put on loopback too (dask-jobqueue's own config key)
+LOOPBACK_ENV = {"DASK_JOBQUEUE__SLURM__SCHEDULER_OPTIONS": '{"dashboard_address": "127.0.0.1:0"}'}
+
+
 def _run(args, env=None, timeout=300):
+    env = {**(env or os.environ), **LOOPBACK_ENV}
     return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, timeout=timeout, env=env)
 
 
@@ -136,7 +142,7 @@ def test_sweep_killed_on_slurm_resumes_to_in_process_values(batch, tmp_path):
     assert ref.returncode == 0, ref.stderr
 
     hold = tmp_path / "held"
-    env = {**os.environ, HOLD_ENV: "chunk-recorded:6", HOLD_FILE_ENV: str(hold)}
+    env = {**os.environ, **LOOPBACK_ENV, HOLD_ENV: "chunk-recorded:6", HOLD_FILE_ENV: str(hold)}
     proc = subprocess.Popen([*LEADLINE, "sweep", str(tmp_path / "study.toml"), "--quiet"], env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     try:
         _wait_for(lambda: hold.exists() or proc.poll() is not None, "the sweep to reach its 6th recorded chunk")

@@ -225,7 +225,7 @@ def test_split_transform_on_a_real_dask_cluster():
     g, b = [0.3, 0.5, 0.6, 0.7], [0.5, 0.4, 0.3, 0.1]
     base = evaluate_sparse(3, 4, g, b, gradient=True)
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as cluster, Client(cluster) as client:
+                      dashboard_address="127.0.0.1:0") as cluster, Client(cluster) as client:
         ev = evaluate_sparse(3, 4, g, b, gradient=True, n_high=4, run_map=lambda f, blocks: client.gather(client.map(f, blocks)))
     assert ev.value == base.value
     assert np.array_equal(ev.gradient["gamma"], base.gradient["gamma"]) and np.array_equal(ev.gradient["beta"], base.gradient["beta"])
