@@ -7,6 +7,7 @@ from typing import List, Optional
 import typer
 
 from .errors import InputError
+from .parsing import refuse_sparse_ground_states
 from .report import angle_plot_path, build_report, check_output_path, load_study, parse_ground_state_options, write_plots
 
 
@@ -31,7 +32,12 @@ def plot_command(
     out_path = check_output_path(output, suffix=".png")
     check_output_path(angle_plot_path(out_path), suffix=".png")
     study = load_study(store)
+    if not any(study.depths(label) for label in study.ensembles()):
+        raise InputError(
+            f"nothing to plot yet: no depth of {store} has finished (`leadline status {store}` shows the progress)"
+        )
     overrides = parse_ground_state_options(ground_state, study.ensembles())
+    refuse_sparse_ground_states(overrides, study)
     paths = write_plots(build_report(study, ground_states=overrides), out_path)
     for path in paths:
         typer.echo(f"wrote {path}")

@@ -7,6 +7,7 @@ from typing import List, Optional
 import typer
 
 from .errors import InputError
+from .parsing import refuse_sparse_ground_states
 from .report import (
     build_report,
     check_output_path,
@@ -47,6 +48,7 @@ def table_command(
     out_path = check_output_path(output) if output is not None else None
     study = load_study(store)
     overrides = parse_ground_state_options(ground_state, study.ensembles())
+    refuse_sparse_ground_states(overrides, study)
     text = render(build_report(study, ground_states=overrides))
     if not text.endswith("\n"):
         text += "\n"

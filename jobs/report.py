@@ -158,22 +158,10 @@ def parse_ground_state_options(values: Sequence[str] | None, labels: Sequence[st
 
 
 def check_output_path(path: str | Path, suffix: str | None = None, option: str = "--output") -> Path:
-    """Validate an output file path before any work: parent directory exists and is writable."""
-    import os
+    """Validate an output file path before any work (see :func:`jobs.paths.check_output_file`)."""
+    from .paths import check_output_file
 
-    from .errors import InputError
-
-    path = Path(path)
-    if suffix is not None and path.suffix.lower() != suffix:
-        raise InputError(f"{option} {str(path)!r} must end with {suffix}")
-    parent = path.parent if str(path.parent) else Path(".")
-    if not parent.is_dir():
-        raise InputError(f"{option}: directory {str(parent)!r} does not exist")
-    if not os.access(parent, os.W_OK):
-        raise InputError(f"{option}: directory {str(parent)!r} is not writable")
-    if path.is_dir():
-        raise InputError(f"{option} {str(path)!r} is a directory; give a file name")
-    return path
+    return check_output_file(path, suffix=suffix, option=option)
 
 
 def write_text_atomic(path: Path, text: str) -> None:
@@ -349,6 +337,7 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
     if mixture is None:
         return None
     try:
+        from leadline.kernels.mixture import parse_mixture
         from leadline.kernels.reference import METHOD_VERSION, References as Computed
 
         from . import reference_cache
@@ -363,7 +352,8 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
         try:
             data = json.loads(path.read_text())
             key = data["key"]
-            if key.get("xi") != mixture.spec() or key.get("method_version") != METHOD_VERSION:
+            # compare mixtures, not spellings (older caches wrote weights as "1.0")
+            if parse_mixture(key.get("xi")) != mixture or key.get("method_version") != METHOD_VERSION:
                 continue
             refs = Computed.from_json(data["references"])
         except (OSError, ValueError, KeyError, TypeError, AttributeError):
