@@ -87,8 +87,11 @@ def batch(tmp_path):
 
 
 # the scheduler of the batch cluster runs in the tool's process: its comms follow the job's
-# interface ("lo"), its dashboard is put on loopback too (dask-jobqueue's own config key)
-LOOPBACK_ENV = {"DASK_JOBQUEUE__SLURM__SCHEDULER_OPTIONS": '{"dashboard_address": "127.0.0.1:0"}'}
+# interface ("lo"), its dashboard is put on loopback too (dask-jobqueue's own config key);
+# and every pass is shipped to the batch job, however small (by default small passes stay
+# in the calling process)
+LOOPBACK_ENV = {"DASK_JOBQUEUE__SLURM__SCHEDULER_OPTIONS": '{"dashboard_address": "127.0.0.1:0"}',
+                "LEADLINE_SHIP_MIN_VISITS": "0"}
 
 
 def _run(args, env=None, timeout=300):

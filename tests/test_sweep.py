@@ -377,7 +377,8 @@ def test_resume_and_status_of_a_non_store_exit_2(tmp_path):
 @pytest.mark.slow
 def test_sweep_killed_while_on_a_local_dask_cluster_then_resumed(reference, tmp_path):
     """The writer is SIGKILLed mid-pass while its passes run on a Dask LocalCluster; its worker
-    processes go with it, and a resume on a new cluster ends with the uninterrupted numbers."""
+    processes go with it, and a resume on a new cluster ends with the uninterrupted numbers.
+    (LEADLINE_SHIP_MIN_VISITS=0: these small passes are shipped to the workers too.)"""
     import psutil
 
     spec = write_spec(tmp_path, "dask.zarr", compute='executor = "local"\nworkers = 1')
@@ -387,7 +388,7 @@ def test_sweep_killed_while_on_a_local_dask_cluster_then_resumed(reference, tmp_
     proc = subprocess.Popen([*LEADLINE, "sweep", str(spec), "--quiet"], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL,
                             env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_HOLD_AT="chunk-recorded:6",
-                                         LEADLINE_HOLD_FILE=hold))
+                                         LEADLINE_HOLD_FILE=hold, LEADLINE_SHIP_MIN_VISITS=0))
     cluster_procs = []
     try:
         wait_for_file(hold, proc)
@@ -410,7 +411,7 @@ def test_sweep_killed_while_on_a_local_dask_cluster_then_resumed(reference, tmp_
     assert not progress["complete"] and not progress["lock"]["alive"]
     assert progress["ensembles"][0]["running"]["inflight"]["chunks_done"] > 0  # killed mid-pass
     r = run(["resume", str(store), "--executor", "local", "--workers", "1", "--quiet"],
-            env=env_with(LEADLINE_CHUNK_AUDIT=audit))
+            env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_SHIP_MIN_VISITS=0))
     assert r.returncode == 0, r.stderr
     _compare_with_reference(reference, store)
     counts = collections.Counter(audit_lines(audit))
