@@ -88,10 +88,11 @@ def batch(tmp_path):
 
 # the scheduler of the batch cluster runs in the tool's process: its comms follow the job's
 # interface ("lo"), its dashboard is put on loopback too (dask-jobqueue's own config key);
-# and every pass is shipped to the batch job, however small (by default small passes stay
-# in the calling process)
+# every pass is shipped to the batch job, however small (by default small passes stay in the
+# calling process); and a worker whose scheduler is gone gives up after 15 s instead of
+# dask-jobqueue's default 60 s, so the job of a killed sweep leaves the queue sooner
 LOOPBACK_ENV = {"DASK_JOBQUEUE__SLURM__SCHEDULER_OPTIONS": '{"dashboard_address": "127.0.0.1:0"}',
-                "LEADLINE_SHIP_MIN_VISITS": "0"}
+                "LEADLINE_SHIP_MIN_VISITS": "0", "DASK_JOBQUEUE__SLURM__DEATH_TIMEOUT": "15"}
 
 
 def _run(args, env=None, timeout=300):
