@@ -227,8 +227,11 @@ def test_split_transform_on_a_real_dask_cluster():
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address="127.0.0.1:0") as cluster, Client(cluster) as client:
         ev = evaluate_sparse(3, 4, g, b, gradient=True, n_high=4, run_map=lambda f, blocks: client.gather(client.map(f, blocks)))
-    assert ev.value == base.value
-    assert np.array_equal(ev.gradient["gamma"], base.gradient["gamma"]) and np.array_equal(ev.gradient["beta"], base.gradient["beta"])
+    # the worker runs BLAS single-threaded (the Hadamard blocks are BLAS products), this process
+    # may not: the sums can round differently in the last bit, never more
+    assert abs(ev.value - base.value) <= 1e-14
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(ev.gradient[k], base.gradient[k], rtol=0, atol=1e-13)
 
 
 def test_complex_log1p_small_arguments():
