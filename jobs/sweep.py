@@ -25,20 +25,30 @@ __all__ = ["run_study", "depth_line"]
 
 
 def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
-    plan = depth.plan
+    plan = plan_chunks(p, spec.memory_budget)
     passes = CheckpointedPasses(depth, executor)
-    result = optimize_depth(
-        ens.mixture(),
-        p,
-        run_pass=passes.run_pass,
-        plan=plan,
-        previous=previous,
-        previous_value=previous_value,
-        restarts=spec.restarts,
-        seed=spec.seed,
-        gtol=spec.gtol,
-        maxiter=spec.maxiter,
-    )
+    try:
+        result = optimize_depth(
+            ens.mixture(),
+            p,
+            run_pass=passes.run_pass,
+            plan=plan,
+            previous=previous,
+            previous_value=previous_value,
+            restarts=spec.restarts,
+            seed=spec.seed,
+            gtol=spec.gtol,
+            maxiter=spec.maxiter,
+        )
+        if depth.policy.keep_passes:
+            passes.flush()
+    except BaseException:
+        # stopped (Ctrl-C, SIGTERM from a batch system, an executor failure): keep what was computed
+        try:
+            passes.flush()
+        except Exception:  # noqa: BLE001 - the original error is the one to report
+            pass
+        raise
     return result, passes.stats
 
 
@@ -91,6 +101,7 @@ def run_study(
                 "pass_compute_s": pass_compute_s,
                 "optimizer_overhead_s": overhead_s,
                 "passes": depth.passes_used(),
+                "paths": depth.paths_used(),
                 "session_wall_s": session_s,
                 "sessions": int(depth.group.attrs.get("sessions", 1)),
                 "this_session": stats.to_json(),

@@ -45,7 +45,8 @@ G3 = np.array([0.41, 0.55, 0.62])
 B3 = np.array([0.52, 0.37, 0.19])
 
 
-def _spec(store: Path) -> dict:
+def _spec(store: Path, interval_s: float = 0.0) -> dict:
+    # interval 0: every pass and every chunk is written at once (the mechanics under test here)
     return {
         "spec_version": 1,
         "name": "unit",
@@ -53,15 +54,26 @@ def _spec(store: Path) -> dict:
         "depths": {"pmin": 1, "pmax": 3},
         "optimizer": {"restarts": 0, "seed": 0, "gtol": 1e-7, "maxiter": 500},
         "compute": {"executor": "inprocess"},
+        "checkpoint": {"interval_s": interval_s, "keep_passes": False},
         "ensembles": [{"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
                        "reference": {"ground_state": None, "source": None}}],
     }
 
 
-def new_store(tmp_path: Path) -> StudyStore:
+def new_store(tmp_path: Path, interval_s: float = 0.0) -> StudyStore:
     path = tmp_path / "unit.zarr"
-    spec = _spec(path)
+    spec = _spec(path, interval_s)
     return StudyStore.create(path, name="unit", spec=spec, spec_toml="", ensembles=spec["ensembles"])
+
+
+def pass_record(store_path: Path, p: int, key: str) -> dict:
+    """The record of cached pass ``key`` of depth p, found in the batch arrays with plain zarr."""
+    root = zarr.open_group(str(store_path), mode="r")
+    for _name, arr in root[f"ensembles/sk/{L.depth_name(p)}/passes"].arrays():
+        for entry in arr.attrs["entries"]:
+            if entry["key"] == key:
+                return entry
+    raise KeyError(key)
 
 
 class CountingRunner:
@@ -129,7 +141,8 @@ def test_interrupted_pass_resumes_with_missing_chunks_only(tmp_path):
         total = CheckpointedPasses(store.depth("sk", 3, PLAN3), second).run_pass(inp, PLAN3)
         assert [k for _, k in second.computed] == [3, 4, 5, 6, 7]
         assert np.array_equal(total, expected)  # chunk-order sum, bit for bit
-        attrs = store.root[f"ensembles/sk/p003/passes/{L.pass_key(inp, PLAN3)}"].attrs.asdict()
+        attrs = pass_record(store.path, 3, L.pass_key(inp, PLAN3))
+        assert attrs["step"] == 3 and attrs["plan"] == L.plan_json(PLAN3) and attrs["plan"]["flip"] is False
         assert attrs["completions"] == [1] * PLAN3.n_chunks
         assert attrs["crc32"] == L.checksum(total)
 
@@ -163,7 +176,7 @@ def test_damaged_partial_is_detected_and_recomputed(tmp_path, damage):
         assert np.array_equal(total, ref)
         repairs = depth.group.attrs["repairs"]
         assert [(r["what"], r["chunk"]) for r in repairs] == [("chunk recomputed", 2)]
-        completions = store.root[f"ensembles/sk/p003/passes/{L.pass_key(inp, PLAN3)}"].attrs["completions"]
+        completions = pass_record(store.path, 3, L.pass_key(inp, PLAN3))["completions"]
         assert completions == [1, 1, 2, 1, 1, 1, 1, 1]  # the repaired chunk is the only one computed twice
 
 
@@ -173,7 +186,7 @@ def test_damaged_pass_cache_entry_is_dropped_and_recomputed(tmp_path):
     with new_store(tmp_path) as store:
         good = CheckpointedPasses(store.depth("sk", 3, PLAN3)).run_pass(inp, PLAN3)
     key = L.pass_key(inp, PLAN3)
-    chunk = path / "ensembles/sk/p003/passes" / key / "c.0.0"
+    chunk = path / "ensembles/sk/p003/passes" / L.batch_name(1) / "c.0"
     data = bytearray(chunk.read_bytes())
     data[-3] ^= 0x01
     chunk.write_bytes(bytes(data))
@@ -193,14 +206,18 @@ def test_cached_forward_pass_must_satisfy_sum_w(tmp_path):
     """A cache entry whose checksum matches but whose sum of weights is off is not trusted."""
     inp = _forward_input()
     with new_store(tmp_path) as store:
-        depth = store.depth("sk", 3, PLAN3)
-        CheckpointedPasses(depth).run_pass(inp, PLAN3)
+        CheckpointedPasses(store.depth("sk", 3, PLAN3)).run_pass(inp, PLAN3)
         key = L.pass_key(inp, PLAN3)
-        arr = depth.group[f"passes/{key}"]
+        depth = store.depth("sk", 3, PLAN3)  # a new session reads the batch from disk
+        arr = depth.group[f"passes/{L.batch_name(1)}"]
+        entries = arr.attrs["entries"]
+        assert [e["key"] for e in entries] == [key] and entries[0]["offset"] == 0
         bad = np.array(arr[...])
-        bad[0, 0] += 1e-6  # a lost or doubled chunk would do this
+        bad[0] += 1e-6  # entry (0, 0) of the only pass: a lost or doubled chunk would do this
         arr[...] = bad
-        arr.attrs.update({"crc32": L.checksum(bad)})
+        entries[0]["crc32"] = L.checksum(bad.reshape(entries[0]["shape"]))
+        arr.attrs.update({"entries": entries})
+        depth = store.depth("sk", 3, PLAN3)
         assert depth.cached_pass(key, backward=False) is None
         assert "sum of path weights" in depth.group.attrs["repairs"][-1]["detail"]
 
@@ -307,6 +324,8 @@ restarts = 0
 [compute]
 executor = "inprocess"
 memory-mb = 0.004
+[checkpoint]
+keep-passes = true
 [[ensemble]]
 label = "sk"
 xi = "2:0.5"
@@ -337,7 +356,7 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
 
     # the same numbers with plain zarr, following the documented layout
     root = zarr.open_group(str(tmp_path / "api.zarr"), mode="r")
-    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 1
+    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 2
     g = root["ensembles/sk/p002"]
     assert g.attrs["state"] == "done"
     assert g.attrs["result"]["value"] == depths[1]["value"]
@@ -345,11 +364,23 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
     assert np.array_equal(g["beta"][...], np.array(depths[1]["beta"]))
     assert root["ensembles/sk"].attrs["reference"]["ground_state"] == 0.763166
     assert "inflight" not in g  # removed once the depth is done
-    passes = list(g["passes"].arrays())
-    assert len(passes) == depths[1]["evaluations"] * 5  # 2p+1 passes per evaluation with gradient
-    for key, arr in passes:
-        attrs = arr.attrs.asdict()
-        assert key.startswith(attrs["fingerprint"]) and attrs["crc32"] >= 0
-        assert attrs["completions"] == [1] * attrs["n_chunks"] and arr.shape == (6, 5)
+    # keep-passes: the depth's passes stay, in batch arrays; their entries index the flat data
+    entries = []
+    for name, arr in g["passes"].arrays():
+        assert L.parse_batch_name(name) is not None
+        flat = arr[...]
+        assert arr.attrs["crc32"] == L.checksum(flat)
+        for e in arr.attrs["entries"]:
+            m = e["step"]
+            assert e["shape"] == [2 * m + 2, 2 * m + 1] and 1 <= m <= 2
+            matrix = flat[e["offset"]: e["offset"] + (2 * m + 2) * (2 * m + 1)].reshape(e["shape"])
+            assert L.checksum(matrix) == e["crc32"] and e["key"].startswith(e["fingerprint"])
+            assert e["completions"] == [1] * e["n_chunks"] and e["kind"] in ("forward", "backward")
+            if e["kind"] == "forward":  # sum of the path weights is 1 (every pass checks it)
+                assert np.allclose(np.diag(matrix[: 2 * m + 1]), 1.0, atol=1e-12)
+            entries.append(e)
+    assert len(entries) == g.attrs["timings"]["passes"]
     progress = study.progress()
     assert progress["complete"] and progress["estimated_seconds_left"] == 0.0
+    files = [f for f in (tmp_path / "api.zarr").rglob("*") if f.is_file()]
+    assert progress["store"] == {"files": len(files), "bytes": sum(f.stat().st_size for f in files)}
