@@ -47,6 +47,7 @@ from leadline.kernels.iteration import PassIntegrityError, sum_w_tolerance
 from leadline.kernels.plan import ChunkPlan
 
 from . import layout as L
+from .faults import crash_point
 from .policy import DEFAULT_SECONDS_PER_PATH
 from .study import DepthStore
 
@@ -173,6 +174,7 @@ class CheckpointedPasses:
             else:
                 total = self._compute_whole(inp, plan, key)
             self.stats.passes_computed += 1
+            crash_point("pass-computed")
             if self.policy.flush_after(self.depth.pending_seconds):
                 self.flush()
             return total

@@ -9,10 +9,12 @@ comma-separated.  Unset (the normal case) the check is one dict lookup.
 finished (see :func:`witness`), written right after the record and before
 the crash point that follows it.
 
-Points (see storage/study.py):
+Points (see storage/study.py and storage/checkpoint.py):
+  store-built             a new store is complete under its temporary name, not yet renamed
   chunk-partial-written   a chunk's partial is on disk, its ledger row is not
   chunk-recorded          a chunk's ledger row is on disk
-  pass-cached             a pass sum is in the pass cache (between passes)
+  pass-computed           a pass is computed and verified, not yet written (it waits for its batch)
+  pass-cached             a batch of pass sums is on disk (between passes)
   depth-arrays-written    a depth's angle arrays are on disk, its done flag is not
   depth-done              a depth's done flag is on disk
 """
