@@ -279,7 +279,8 @@ class StudyStore:
         for label, p, d in self._depth_dirs():
             for sub in (L.PASSES, L.INFLIGHT):
                 if (d / sub).exists():
-                    dropped += sum(1 for _ in (d / sub).iterdir()) if sub == L.PASSES else 0
+                    if sub == L.PASSES:
+                        dropped += sum(1 for e in (d / sub).iterdir() if e.is_dir())
                     shutil.rmtree(d / sub, ignore_errors=True)
                     depths.add((label, p))
         migrated = list(self.root.attrs.get("migrated", []))
