@@ -12,7 +12,12 @@ checkpoint settings) for p = 1..pmax in a fresh process, then reads the store:
 
     .venv/bin/python benchmarks/bench_store.py              # p = 1..8
     .venv/bin/python benchmarks/bench_store.py --pmax 12    # minutes
+    .venv/bin/python benchmarks/bench_store.py --baseline 3dc20bf   # also the same sweep with that commit's code
     .venv/bin/python benchmarks/run.py --only store --quick # p = 1..6
+
+``--baseline REF`` extracts commit REF of this repository (``git archive``) into a
+temporary folder and runs the same sweep with it first, in the same run, so the
+before/after ratios come from one run on one machine state.
 """
 
 from __future__ import annotations
@@ -58,15 +63,34 @@ def tree_size(path: Path) -> tuple[int, int]:
     return files, size
 
 
-def sweep(pmax: int, log=None) -> dict:
+def baseline_tree(ref: str, folder: Path) -> Path:
+    """An importable ``leadline`` package of commit ``ref`` under ``folder`` (for PYTHONPATH)."""
+    repo = Path(__file__).resolve().parents[1]
+    src = folder / "src"
+    src.mkdir()
+    archive = subprocess.run(["git", "-C", str(repo), "archive", ref], capture_output=True, check=True).stdout
+    subprocess.run(["tar", "-x", "-C", str(src)], input=archive, check=True)
+    pkg = folder / "pkg" / "leadline"
+    pkg.mkdir(parents=True)
+    for f in (src / "leadline").iterdir():
+        (pkg / f.name).symlink_to(f)
+    for sub in ("kernels", "storage", "cluster", "jobs", "tests"):
+        (pkg / sub).symlink_to(src / sub)
+    return folder / "pkg"
+
+
+def sweep(pmax: int, log=None, pythonpath: Path | None = None, label: str = "this code") -> dict:
     """One sweep p = 1..pmax in a fresh process; wall, optimizer time, files."""
     with tempfile.TemporaryDirectory(prefix="leadline-bench-store-") as tmp:
         folder = Path(tmp)
         spec = folder / "study.toml"
         spec.write_text(SPEC.format(pmax=pmax))
+        env = dict(os.environ)
+        if pythonpath is not None:
+            env["PYTHONPATH"] = str(pythonpath)
         t0 = time.perf_counter()
         r = subprocess.run([sys.executable, "-m", "leadline", "sweep", str(spec), "--quiet"], capture_output=True,
-                           text=True)
+                           text=True, env=env, cwd=folder)
         wall = time.perf_counter() - t0
         if r.returncode != 0:
             return {"error": r.stderr[-2000:]}
@@ -77,6 +101,7 @@ def sweep(pmax: int, log=None) -> dict:
         optimizer = sum(float(d["wall_time_s"]) for d in depths)
         files, size = tree_size(store)
         out = {
+            "code": label,
             "pmax": pmax,
             "wall_s": wall,
             "optimizer_s": optimizer,
@@ -87,7 +112,7 @@ def sweep(pmax: int, log=None) -> dict:
             "values": {d["p"]: d["value"] for d in depths},
         }
         if log:
-            log(f"sweep p = 1..{pmax}: wall {wall:.1f} s, optimizer {optimizer:.1f} s "
+            log(f"[{label}] sweep p = 1..{pmax}: wall {wall:.1f} s, optimizer {optimizer:.1f} s "
                 f"(ratio {out['wall_over_optimizer']:.2f}), {files} files, {size / 1e6:.2f} MB")
         return out
 
@@ -106,10 +131,23 @@ def write_costs(repeats: int = 200) -> dict:
         return write_cost_probe(Path(tmp), repeats=repeats, median=statistics.median, rng=np.random.default_rng(0))
 
 
-def run(quick: bool = False, pmax: int | None = None, log=None) -> dict:
+def run(quick: bool = False, pmax: int | None = None, log=None, baseline: str | None = None) -> dict:
     log = log or (lambda s: print(s, file=sys.stderr, flush=True))
     pmax = pmax or (6 if quick else 8)
-    return {"sweep": sweep(pmax, log), "write_costs": write_costs(50 if quick else 200)}
+    out = {}
+    if baseline:
+        with tempfile.TemporaryDirectory(prefix="leadline-bench-baseline-") as tmp:
+            out["baseline"] = sweep(pmax, log, pythonpath=baseline_tree(baseline, Path(tmp)), label=baseline)
+    out["sweep"] = sweep(pmax, log)
+    if baseline and "error" not in out["baseline"] and "error" not in out["sweep"]:
+        b, a = out["baseline"], out["sweep"]
+        out["after_vs_before"] = {
+            "wall_ratio": a["wall_s"] / b["wall_s"],
+            "files_ratio": a["files"] / b["files"],
+            "same_values": a["values"] == b["values"],
+        }
+    out["write_costs"] = write_costs(50 if quick else 200)
+    return out
 
 
 def main(argv=None) -> int:
@@ -117,8 +155,9 @@ def main(argv=None) -> int:
     ap.add_argument("--pmax", type=int, default=8)
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--json", help="also write the result to this file")
+    ap.add_argument("--baseline", metavar="REF", help="also run the sweep with the code of git commit REF, first")
     args = ap.parse_args(argv)
-    out = run(quick=args.quick, pmax=args.pmax)
+    out = run(quick=args.quick, pmax=args.pmax, baseline=args.baseline)
     text = json.dumps(out, indent=1, default=float)
     print(text)
     if args.json:
