@@ -22,6 +22,7 @@ import os
 import re
 import shutil
 import sys
+import time
 import uuid
 from pathlib import Path
 
@@ -34,7 +35,7 @@ from leadline.kernels.iteration import sum_w_tolerance
 from . import layout as L
 from .errors import NotAStudyError, SchemaVersionError, StoreError
 from .faults import crash_point, witness
-from .lock import LOCK_NAME, StoreLock, holder_alive, read_lock
+from .lock import StoreLock, holder_alive, read_lock
 from .policy import CheckpointPolicy
 
 __all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "utc_now", "inflight_summary", "store_usage",
@@ -124,10 +125,17 @@ def _remove_abandoned_creations(path: Path) -> None:
         if not entry.name.startswith(prefix) or not entry.is_dir():
             continue
         holder = read_lock(entry)
-        if holder is None and (entry / f".{LOCK_NAME}").exists():
+        if holder is None:
+            # the creator died before it locked the folder, or is locking it right now
+            try:
+                young = time.time() - entry.stat().st_mtime < 60
+            except OSError:
+                continue
+            if young:
+                continue
+        elif holder_alive(holder):
             continue
-        if holder is None or not holder_alive(holder):
-            shutil.rmtree(entry, ignore_errors=True)
+        shutil.rmtree(entry, ignore_errors=True)
 
 
 class StudyStore:
@@ -237,8 +245,6 @@ class StudyStore:
 
     def _remove_temp_files(self) -> None:
         """Temporary files of writes that a kill interrupted (never referenced by anything)."""
-        import time
-
         for dirpath, _dirs, files in os.walk(self.path):
             for f in files:
                 if _ZARR_TEMP.search(f):
@@ -786,8 +792,6 @@ def write_cost_probe(folder: Path, *, repeats: int, median, rng) -> dict:
     ``batch_of_N_p8``: one batch of N pass sums of depth 8 ((18, 17) complex each);
     ``chunk_record_p8`` / ``_p16``: one chunk partial plus its ledger row.
     """
-    import time
-
     out = {}
     group = zarr.create_group(store=str(folder / "probe.zarr"), zarr_format=3, attributes={"p": 8, "repairs": []})
     depth = DepthStore(group, 8, folder / "probe.zarr")

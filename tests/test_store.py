@@ -384,3 +384,63 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
     assert progress["complete"] and progress["estimated_seconds_left"] == 0.0
     files = [f for f in (tmp_path / "api.zarr").rglob("*") if f.is_file()]
     assert progress["store"] == {"files": len(files), "bytes": sum(f.stat().st_size for f in files)}
+
+
+# ---------------------------------------------------------------------------- checkpoint policy
+def test_small_passes_wait_for_their_batch_and_are_recomputed_to_the_same_bits(tmp_path):
+    """Default kind of policy: passes far cheaper than the interval are written in one batch."""
+    path = tmp_path / "unit.zarr"
+    ref = evaluate(SK, G3, B3, plan=PLAN3, gradient=True)
+    with new_store(tmp_path, interval_s=30.0) as store:
+        runner = CountingRunner()
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
+        ev = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert ev.value == ref.value and len(runner.computed) == 7 * PLAN3.n_chunks
+        assert cp.stats.batches_written == 0 and cp.stats.passes_ledgered == 0
+        assert not (path / "ensembles/sk/p003/passes").exists()  # nothing written yet
+        assert not (path / "ensembles/sk/p003/inflight").exists()
+    # a kill now loses the 7 passes: the next session computes them again, to the same bits
+    with StudyStore.open(path) as store:
+        runner = CountingRunner()
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
+        again = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert again.value == ref.value and np.array_equal(again.gradient["beta"], ref.gradient["beta"])
+        assert len(runner.computed) == 7 * PLAN3.n_chunks
+        cp.flush()  # what the sweep does when stopped cleanly (or when the interval is reached)
+        batches = sorted(p.name for p in (path / "ensembles/sk/p003/passes").iterdir() if p.is_dir())
+        assert batches == [L.batch_name(1)]
+        assert len([f for f in (path / "ensembles/sk/p003/passes").rglob("*") if f.is_file()]) == 3  # 2 + group
+    with StudyStore.open(path) as store:
+        runner = CountingRunner()
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
+        third = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert third.value == ref.value and runner.computed == [] and cp.stats.passes_from_cache == 7
+
+
+@pytest.mark.parametrize("seconds_per_path, ledger", [(1e-2, True), (1e-9, False)])
+def test_a_pass_expected_to_take_the_interval_keeps_a_chunk_ledger(tmp_path, seconds_per_path, ledger):
+    inp = _forward_input()
+    with new_store(tmp_path, interval_s=1.0) as store:
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), CountingRunner())
+        cp._rate = (1.0, seconds_per_path)  # as if measured on an earlier pass
+        assert (cp.expected_seconds(PLAN3) >= 1.0) is ledger
+        cp.run_pass(inp, PLAN3)
+        inflight = tmp_path / "unit.zarr/ensembles/sk/p003/inflight"
+        assert inflight.exists() is ledger
+        assert cp.stats.passes_ledgered == int(ledger)
+        # a ledgered pass's sum is written at once; a short one waits for its batch
+        assert (tmp_path / "unit.zarr/ensembles/sk/p003/passes").exists() is ledger
+
+
+def test_policy_flushes_before_a_pass_that_would_exceed_the_interval():
+    from leadline.storage import CheckpointPolicy
+
+    policy = CheckpointPolicy(interval_s=30.0)
+    assert not policy.flush_before(0.0, 100.0)  # nothing waiting
+    assert policy.flush_before(20.0, 15.0) and not policy.flush_before(20.0, 5.0)
+    assert policy.flush_after(30.0) and not policy.flush_after(29.9)
+    assert not policy.chunk_ledger(100.0, 1)  # one chunk: nothing to save inside the pass
+    every = CheckpointPolicy(interval_s=0.0)
+    assert every.flush_after(0.0) and every.chunk_ledger(0.0, 2)
+    assert CheckpointPolicy.from_spec({"checkpoint": {"interval_s": 5, "keep_passes": True}}) == CheckpointPolicy(5.0, True)
+    assert CheckpointPolicy.from_spec({}) == CheckpointPolicy()
