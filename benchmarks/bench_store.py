@@ -4,8 +4,9 @@ Runs ``leadline sweep`` (in-process executor, one SK ensemble, default optimizer
 checkpoint settings) for p = 1..pmax in a fresh process, then reads the store:
 
 - wall time of the whole command versus the optimizer's own time (the sum of the
-  finished depths' ``wall_time_s``: passes plus optimizer arithmetic), and their ratio
-  measured in the same run;
+  finished depths' ``wall_time_s``: passes plus optimizer arithmetic, without checkpoint
+  writes), and their ratio measured in the same run; the CPU time of the sweep process
+  (less disturbed than wall time when other jobs share the machine);
 - files and bytes in the store when the sweep is done, per finished depth;
 - the cost of one checkpoint write of each kind (a batch of pass sums, one chunk
   record), the numbers behind the default checkpoint thresholds (docs/store.md).
@@ -88,10 +89,15 @@ def sweep(pmax: int, log=None, pythonpath: Path | None = None, label: str = "thi
         env = dict(os.environ)
         if pythonpath is not None:
             env["PYTHONPATH"] = str(pythonpath)
+        import resource
+
+        before = resource.getrusage(resource.RUSAGE_CHILDREN)
         t0 = time.perf_counter()
         r = subprocess.run([sys.executable, "-m", "leadline", "sweep", str(spec), "--quiet"], capture_output=True,
                            text=True, env=env, cwd=folder)
         wall = time.perf_counter() - t0
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
+        cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
         if r.returncode != 0:
             return {"error": r.stderr[-2000:]}
         store = folder / "bench.zarr"
@@ -106,6 +112,8 @@ def sweep(pmax: int, log=None, pythonpath: Path | None = None, label: str = "thi
             "wall_s": wall,
             "optimizer_s": optimizer,
             "wall_over_optimizer": wall / optimizer if optimizer > 0 else None,
+            "process_cpu_s": cpu,
+            "cpu_over_optimizer": cpu / optimizer if optimizer > 0 else None,
             "files": files,
             "bytes": size,
             "files_per_depth": files / max(1, len(depths)),
@@ -113,7 +121,7 @@ def sweep(pmax: int, log=None, pythonpath: Path | None = None, label: str = "thi
         }
         if log:
             log(f"[{label}] sweep p = 1..{pmax}: wall {wall:.1f} s, optimizer {optimizer:.1f} s "
-                f"(ratio {out['wall_over_optimizer']:.2f}), {files} files, {size / 1e6:.2f} MB")
+                f"(ratio {out['wall_over_optimizer']:.2f}), process CPU {cpu:.1f} s, {files} files, {size / 1e6:.2f} MB")
         return out
 
 
@@ -143,6 +151,7 @@ def run(quick: bool = False, pmax: int | None = None, log=None, baseline: str | 
         b, a = out["baseline"], out["sweep"]
         out["after_vs_before"] = {
             "wall_ratio": a["wall_s"] / b["wall_s"],
+            "cpu_ratio": a["process_cpu_s"] / b["process_cpu_s"],
             "files_ratio": a["files"] / b["files"],
             "same_values": a["values"] == b["values"],
         }

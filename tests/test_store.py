@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 import zarr
 
-from leadline.kernels.chunks import PassInput, chunk_partial
+from leadline.kernels.chunks import PassInput, chunk_partial, run_pass_inprocess
 from leadline.kernels.iteration import evaluate
 from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.plan import ChunkPlan
@@ -94,21 +94,47 @@ class CountingRunner:
         self.inner.run_chunks(inp, plan, done, counted)
 
 
-def test_checkpointed_pass_equals_inprocess_bit_for_bit(tmp_path):
+def pass_log(plan, gradient=True):
+    """(step, plan) of every pass an in-process evaluation at (G3, B3) runs, in order."""
+    log = []
+
+    def logged(inp, step_plan):
+        log.append((inp.p, step_plan))
+        return run_pass_inprocess(inp, step_plan)
+
+    evaluate(SK, G3, B3, plan=plan, run_pass=logged, gradient=gradient)
+    return log
+
+
+@pytest.mark.parametrize("plan", [PLAN3, ChunkPlan(3, 4, 2, flip=True)], ids=["no-flip", "flip"])
+def test_checkpointed_pass_equals_inprocess_bit_for_bit(tmp_path, plan):
+    log = pass_log(plan)
+    assert [m for m, _ in log] == [1, 2, 3, 3, 2, 1]  # growing contour: each step on its own contour
+    chunks = sum(q.n_chunks for _, q in log)
     with new_store(tmp_path) as store:
-        depth = store.depth("sk", 3, PLAN3)
+        depth = store.depth("sk", 3, plan)
         runner = CountingRunner()
         cp = CheckpointedPasses(depth, runner)
-        ref = evaluate(SK, G3, B3, plan=PLAN3, gradient=True)
-        ev = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        ref = evaluate(SK, G3, B3, plan=plan, gradient=True)
+        ev = evaluate(SK, G3, B3, plan=plan, run_pass=cp.run_pass, gradient=True)
         assert ev.value == ref.value
         assert np.array_equal(ev.gradient["gamma"], ref.gradient["gamma"])
         assert np.array_equal(ev.gradient["beta"], ref.gradient["beta"])
-        assert len(runner.computed) == 7 * PLAN3.n_chunks  # 3 forward + 4 backward passes
-        # asked again: every pass from the cache, nothing computed
-        again = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
-        assert again.value == ref.value and len(runner.computed) == 7 * PLAN3.n_chunks
-        assert cp.stats.passes_from_cache == 7
+        assert len(runner.computed) == chunks
+        # asked again: every pass from the store, nothing computed
+        again = evaluate(SK, G3, B3, plan=plan, run_pass=cp.run_pass, gradient=True)
+        assert again.value == ref.value and len(runner.computed) == chunks
+        assert cp.stats.passes_from_cache == len(log)
+    # every pass recorded with its own step and its own plan (flip explicit)
+    with StudyStore.open(tmp_path / "unit.zarr") as store:
+        records = store.depth("sk", 3, plan).pass_records()
+        assert sorted((r["step"], r["kind"]) for r in records) == sorted(
+            (m, kind) for (m, _), kind in zip(log, ["forward"] * 3 + ["backward"] * 3))
+        for r in records:
+            step_plan = next(q for m, q in log if m == r["step"])
+            assert r["plan"] == L.plan_json(step_plan) and r["plan"]["flip"] is plan.flip
+            assert r["shape"] == [2 * r["step"] + 2, 2 * r["step"] + 1]
+            assert r["paths"] == step_plan.path_visits
 
 
 def test_sk_p1_value_through_store(tmp_path):
@@ -391,21 +417,23 @@ def test_small_passes_wait_for_their_batch_and_are_recomputed_to_the_same_bits(t
     """Default kind of policy: passes far cheaper than the interval are written in one batch."""
     path = tmp_path / "unit.zarr"
     ref = evaluate(SK, G3, B3, plan=PLAN3, gradient=True)
+    log = pass_log(PLAN3)
+    chunks = sum(q.n_chunks for _, q in log)
     with new_store(tmp_path, interval_s=30.0) as store:
         runner = CountingRunner()
         cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
         ev = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
-        assert ev.value == ref.value and len(runner.computed) == 7 * PLAN3.n_chunks
+        assert ev.value == ref.value and len(runner.computed) == chunks
         assert cp.stats.batches_written == 0 and cp.stats.passes_ledgered == 0
         assert not (path / "ensembles/sk/p003/passes").exists()  # nothing written yet
         assert not (path / "ensembles/sk/p003/inflight").exists()
-    # a kill now loses the 7 passes: the next session computes them again, to the same bits
+    # a kill now loses these passes: the next session computes them again, to the same bits
     with StudyStore.open(path) as store:
         runner = CountingRunner()
         cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
         again = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
         assert again.value == ref.value and np.array_equal(again.gradient["beta"], ref.gradient["beta"])
-        assert len(runner.computed) == 7 * PLAN3.n_chunks
+        assert len(runner.computed) == chunks
         cp.flush()  # what the sweep does when stopped cleanly (or when the interval is reached)
         batches = sorted(p.name for p in (path / "ensembles/sk/p003/passes").iterdir() if p.is_dir())
         assert batches == [L.batch_name(1)]
@@ -414,7 +442,7 @@ def test_small_passes_wait_for_their_batch_and_are_recomputed_to_the_same_bits(t
         runner = CountingRunner()
         cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
         third = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
-        assert third.value == ref.value and runner.computed == [] and cp.stats.passes_from_cache == 7
+        assert third.value == ref.value and runner.computed == [] and cp.stats.passes_from_cache == len(log)
 
 
 @pytest.mark.parametrize("seconds_per_path, ledger", [(1e-2, True), (1e-9, False)])
