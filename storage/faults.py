@@ -27,7 +27,7 @@ import signal
 __all__ = ["crash_point", "witness", "ENV_VAR", "AUDIT_ENV"]
 
 ENV_VAR = "LEADLINE_CRASH_AT"
-#: if set, every chunk recorded as finished appends "<pass key> <chunk>" to this file
+#: if set, every chunk recorded as finished appends "<depth group>/<pass key> <chunk>" to this file
 #: (an independent witness for the kill tests that no finished chunk is computed twice)
 AUDIT_ENV = "LEADLINE_CHUNK_AUDIT"
 

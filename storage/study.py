@@ -572,7 +572,7 @@ class DepthStore:
         for record in records:
             self._index[record["key"]] = _Entry(name, record)
         for key, (_, _, chunks) in self._pending.items():
-            witness(key, chunks)
+            witness(f"{self.group.path}/{key}", chunks)
         count = len(self._pending)
         self._pending.clear()
         self.pending_seconds = 0.0
@@ -751,7 +751,7 @@ class InflightPass:
 
         _run_async(write_in_order())
         self.rows[k] = row
-        witness(self.key, [k])
+        witness(f"{self.depth.group.path}/{self.key}", [k])
         crash_point("chunk-recorded")
 
     def completions(self) -> list[int]:

@@ -57,7 +57,7 @@ xi = "2:0.5"
 """
 
 
-def write_spec(folder: Path, store: str, memory_mb: float = 0.016, interval_s: float = 0,
+def write_spec(folder: Path, store: str, memory_mb: float = 0.004, interval_s: float = 0,
                keep_passes: bool = False) -> Path:
     """The kill-test spec; interval-s = 0 writes every pass and every chunk as soon as it is done."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -167,7 +167,9 @@ def test_kill_at_random_moments_then_resume_matches_uninterrupted(reference, tmp
     store = tmp_path / "killed.zarr"
     audit = tmp_path / "audit.txt"
     # (crash point, count) chosen by the seeded generator; None = kill -9 after a random delay.
-    # Counts are per process; p = 1 and 2 passes are single-chunk, p = 3 passes have 4 chunks.
+    # Counts are per process. With memory-mb = 0.004 and the growing contour, the passes of
+    # step 1 are single-chunk, step 2 has 2 chunks and step 3 has 8 (p = 2: ~50 chunk records,
+    # p = 3: ~240).
     kills = [
         ("pass-cached", int(rng.integers(5, 30))),            # between passes: inside the optimizer
         ("depth-arrays-written", 1),                          # while a depth's result is being written
@@ -210,9 +212,13 @@ def test_damaged_chunk_arrays_detected_and_repaired_on_resume(reference, tmp_pat
     spec = write_spec(tmp_path, "damaged.zarr")
     store = tmp_path / "damaged.zarr"
     audit = tmp_path / "audit.txt"
-    # stop inside a p = 3 pass after some chunks are recorded
-    r = run(["sweep", str(spec), "--quiet"], env=env_with(LEADLINE_CRASH_AT="chunk-recorded:3",
+    # stop right after p = 2 is done, then inside the first step-3 pass of p = 3 after 3 of its
+    # 8 chunks are recorded (the step-2 pass before it has 2 chunks; step 1 keeps no ledger)
+    r = run(["sweep", str(spec), "--quiet"], env=env_with(LEADLINE_CRASH_AT="depth-done:2",
                                                            LEADLINE_CHUNK_AUDIT=audit))
+    assert r.returncode == -signal.SIGKILL
+    r = run(["resume", str(store), "--quiet"], env=env_with(LEADLINE_CRASH_AT="chunk-recorded:5",
+                                                            LEADLINE_CHUNK_AUDIT=audit))
     assert r.returncode == -signal.SIGKILL
     inflight = store / "ensembles/sk/p003/inflight"
     rows = zarr.open_array(str(inflight / "ledger"), mode="r")[...]
