@@ -14,6 +14,7 @@ checkpoint settings) for p = 1..pmax in a fresh process, then reads the store:
     .venv/bin/python benchmarks/bench_store.py              # p = 1..8
     .venv/bin/python benchmarks/bench_store.py --pmax 12    # minutes
     .venv/bin/python benchmarks/bench_store.py --baseline 3dc20bf   # also the same sweep with that commit's code
+    .venv/bin/python benchmarks/bench_store.py --baseline 3dc20bf --after cebf7b5   # two commits
     .venv/bin/python benchmarks/run.py --only store --quick # p = 1..6
 
 ``--baseline REF`` extracts commit REF of this repository (``git archive``) into a
@@ -103,8 +104,11 @@ def sweep(pmax: int, log=None, pythonpath: Path | None = None, label: str = "thi
         store = folder / "bench.zarr"
         from leadline.storage import open_study
 
-        depths = open_study(store).depths("sk")
+        study = open_study(store)
+        depths = study.depths("sk")
         optimizer = sum(float(d["wall_time_s"]) for d in depths)
+        timings = [study.depth("sk", d["p"]).get("timings", {}) for d in depths]
+        optimizer_cpu = sum(float(t.get("optimizer_cpu_s", "nan")) for t in timings)
         files, size = tree_size(store)
         out = {
             "code": label,
@@ -113,7 +117,8 @@ def sweep(pmax: int, log=None, pythonpath: Path | None = None, label: str = "thi
             "optimizer_s": optimizer,
             "wall_over_optimizer": wall / optimizer if optimizer > 0 else None,
             "process_cpu_s": cpu,
-            "cpu_over_optimizer": cpu / optimizer if optimizer > 0 else None,
+            "optimizer_cpu_s": optimizer_cpu,
+            "cpu_over_optimizer_cpu": cpu / optimizer_cpu if optimizer_cpu > 0 else None,
             "files": files,
             "bytes": size,
             "files_per_depth": files / max(1, len(depths)),
@@ -139,14 +144,20 @@ def write_costs(repeats: int = 200) -> dict:
         return write_cost_probe(Path(tmp), repeats=repeats, median=statistics.median, rng=np.random.default_rng(0))
 
 
-def run(quick: bool = False, pmax: int | None = None, log=None, baseline: str | None = None) -> dict:
+def run(quick: bool = False, pmax: int | None = None, log=None, baseline: str | None = None,
+        after: str | None = None) -> dict:
     log = log or (lambda s: print(s, file=sys.stderr, flush=True))
     pmax = pmax or (6 if quick else 8)
     out = {}
-    if baseline:
-        with tempfile.TemporaryDirectory(prefix="leadline-bench-baseline-") as tmp:
-            out["baseline"] = sweep(pmax, log, pythonpath=baseline_tree(baseline, Path(tmp)), label=baseline)
-    out["sweep"] = sweep(pmax, log)
+    with tempfile.TemporaryDirectory(prefix="leadline-bench-baseline-") as tmp:
+        if baseline:
+            (Path(tmp) / "before").mkdir()
+            out["baseline"] = sweep(pmax, log, pythonpath=baseline_tree(baseline, Path(tmp) / "before"), label=baseline)
+        if after:
+            (Path(tmp) / "after").mkdir()
+            out["sweep"] = sweep(pmax, log, pythonpath=baseline_tree(after, Path(tmp) / "after"), label=after)
+        else:
+            out["sweep"] = sweep(pmax, log)
     if baseline and "error" not in out["baseline"] and "error" not in out["sweep"]:
         b, a = out["baseline"], out["sweep"]
         out["after_vs_before"] = {
@@ -165,8 +176,9 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--json", help="also write the result to this file")
     ap.add_argument("--baseline", metavar="REF", help="also run the sweep with the code of git commit REF, first")
+    ap.add_argument("--after", metavar="REF", help="compare with the code of git commit REF instead of this tree")
     args = ap.parse_args(argv)
-    out = run(quick=args.quick, pmax=args.pmax, baseline=args.baseline)
+    out = run(quick=args.quick, pmax=args.pmax, baseline=args.baseline, after=args.after)
     text = json.dumps(out, indent=1, default=float)
     print(text)
     if args.json:

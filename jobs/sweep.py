@@ -91,9 +91,10 @@ def run_study(
                 continue
             plan = plan_chunks(p, spec.memory_budget)
             depth = store.depth(ens.label, p, plan)
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
             session_s = time.perf_counter() - t0
+            session_cpu_s = time.process_time() - c0
             pass_compute_s = depth.pass_seconds()
             overhead_s = max(0.0, session_s - stats.seconds_in_passes)
             timings = {
@@ -103,6 +104,8 @@ def run_study(
                 "passes": depth.passes_used(),
                 "paths": depth.paths_used(),
                 "session_wall_s": session_s,
+                "session_cpu_s": session_cpu_s,
+                "optimizer_cpu_s": max(0.0, session_cpu_s - stats.cpu_writing_s),
                 "sessions": int(depth.group.attrs.get("sessions", 1)),
                 "this_session": stats.to_json(),
             }

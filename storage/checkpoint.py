@@ -122,6 +122,7 @@ class CheckpointStats:
     batches_written: int = 0
     seconds_in_passes: float = 0.0
     seconds_writing: float = 0.0
+    cpu_writing_s: float = 0.0
 
     def to_json(self) -> dict:
         return dict(self.__dict__)
@@ -184,10 +185,11 @@ class CheckpointedPasses:
 
     def flush(self) -> None:
         """Write the passes computed since the last write (one batch)."""
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         if self.depth.flush():
             self.stats.batches_written += 1
         self.stats.seconds_writing += time.perf_counter() - t0
+        self.stats.cpu_writing_s += time.process_time() - c0
 
     # ------------------------------------------------------------------ policy
     def expected_seconds(self, plan: ChunkPlan) -> float:
@@ -211,9 +213,10 @@ class CheckpointedPasses:
         n_chunks = plan.n_chunks
         shape = (2 * inp.p + 2, 2 * inp.p + 1)
         self.flush()  # nothing pending may depend on the ledger this pass is about to reuse
-        t_write = time.perf_counter()
+        t_write, c_write = time.perf_counter(), time.process_time()
         inflight = self.depth.inflight(key, self._meta(inp, plan), n_chunks, shape)
         self.stats.seconds_writing += time.perf_counter() - t_write
+        self.stats.cpu_writing_s += time.process_time() - c_write
         for attempt in (1, 2):
             partials = inflight.verified_partials()
             self.stats.chunks_reused += len(partials)
@@ -223,9 +226,11 @@ class CheckpointedPasses:
             def on_chunk(k: int, part: np.ndarray) -> None:
                 if k in partials:
                     raise PassIntegrityError(f"chunk {k} of pass {key} reported twice")
-                now = time.perf_counter()
+                now, c_write = time.perf_counter(), time.process_time()
                 inflight.record(k, part, int(round((now - clock[0]) * 1e6)))
-                clock[0] = now
+                clock[0] = time.perf_counter()
+                self.stats.seconds_writing += clock[0] - now
+                self.stats.cpu_writing_s += time.process_time() - c_write
                 partials[k] = part
                 self.stats.chunks_computed += 1
                 if self.progress is not None:
