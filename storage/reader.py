@@ -200,7 +200,7 @@ def _running_info(p: int, g: zarr.Group, attrs: dict) -> dict:
         "started_utc": attrs.get("started_utc"),
         "sessions": attrs.get("sessions"),
         "passes_cached": passes,
-        "evaluations_done": passes // (2 * p + 1),
+        "evaluations_done": passes // (2 * p),  # p forward and p adjoint passes per evaluation
         "pass_compute_s": seconds,
         "paths": paths,
         "inflight": inflight,
