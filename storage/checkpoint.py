@@ -205,8 +205,8 @@ class CheckpointedPasses:
             self._rate = (paths, seconds)
 
     # ------------------------------------------------------------------ compute
-    def _meta(self, inp: PassInput, plan: ChunkPlan) -> dict:
-        return {"fingerprint": inp.fingerprint(), "kind": "backward" if inp.backward else "forward",
+    def _meta(self, inp: PassInput, plan: ChunkPlan, key: str) -> dict:
+        return {"fingerprint": key.split("-")[0], "kind": "backward" if inp.backward else "forward",
                 "step": int(inp.p), "plan": L.plan_json(plan)}
 
     def _compute_ledgered(self, inp: PassInput, plan: ChunkPlan, key: str) -> np.ndarray:
@@ -214,7 +214,7 @@ class CheckpointedPasses:
         shape = (2 * inp.p + 2, 2 * inp.p + 1)
         self.flush()  # nothing pending may depend on the ledger this pass is about to reuse
         t_write, c_write = time.perf_counter(), time.process_time()
-        inflight = self.depth.inflight(key, self._meta(inp, plan), n_chunks, shape)
+        inflight = self.depth.inflight(key, self._meta(inp, plan, key), n_chunks, shape)
         self.stats.seconds_writing += time.perf_counter() - t_write
         self.stats.cpu_writing_s += time.process_time() - c_write
         for attempt in (1, 2):
@@ -247,7 +247,7 @@ class CheckpointedPasses:
             total = _sum_in_chunk_order(partials, n_chunks, inp.p)
             problem = _check_total(total, inp)
             if problem is None:
-                meta = self._meta(inp, plan)
+                meta = self._meta(inp, plan, key)
                 meta.update(n_chunks=n_chunks, completions=inflight.completions(), wall_s=inflight.wall_seconds(),
                             paths=_paths(plan))
                 self.depth.add_pass(key, total, meta)
@@ -274,7 +274,7 @@ class CheckpointedPasses:
         if problem is not None:
             raise PassIntegrityError(f"pass {key} at p = {inp.p}: {problem}")
         self.stats.chunks_computed += plan.n_chunks
-        meta = self._meta(inp, plan)
+        meta = self._meta(inp, plan, key)
         meta.update(n_chunks=plan.n_chunks, completions=[1] * plan.n_chunks, wall_s=wall, paths=_paths(plan))
         self.depth.add_pass(key, total, meta, chunks_to_witness=range(plan.n_chunks))
         return total

@@ -105,6 +105,25 @@ def plan_json(plan) -> dict:
     return data
 
 
+_PLAN_TAGS: dict = {}
+
+
+def _plan_tag(plan) -> str:
+    """12 hex digits of SHA-256 of the plan's canonical JSON (memoized per plan value)."""
+    try:
+        return _PLAN_TAGS[plan]
+    except (KeyError, TypeError):
+        pass
+    text = json.dumps(plan_json(plan), sort_keys=True, separators=(",", ":"))
+    tag = hashlib.sha256(text.encode()).hexdigest()[:12]
+    try:
+        if len(_PLAN_TAGS) < 4096:
+            _PLAN_TAGS[plan] = tag
+    except TypeError:  # a plan given as a dict
+        pass
+    return tag
+
+
 def pass_key(inp, plan) -> str:
     """Name of a pass: content fingerprint of its input (step p, M, beta, adjoint) plus its plan.
 
@@ -113,8 +132,7 @@ def pass_key(inp, plan) -> str:
     a flipped plan enumerates other paths.  Any plan field (including ones
     added later) changes the key.
     """
-    text = json.dumps(plan_json(plan), sort_keys=True, separators=(",", ":"))
-    return f"{inp.fingerprint()}-{hashlib.sha256(text.encode()).hexdigest()[:12]}"
+    return f"{inp.fingerprint()}-{_plan_tag(plan)}"
 
 
 def checksum(array: np.ndarray) -> int:
