@@ -2,8 +2,10 @@
 
 ``LEADLINE_CRASH_AT="chunk-written:7"`` makes the 7th arrival at the point
 named ``chunk-written`` kill the process with SIGKILL (no cleanup, no flush),
-exactly like ``kill -9`` at that instant.  Several points may be listed,
-comma-separated.  Unset (the normal case) the check is one dict lookup.
+exactly like ``kill -9`` at that instant; ``"chunk-written:7:TERM"`` sends
+SIGTERM instead (what a batch system sends at its time limit).  Several
+points may be listed, comma-separated.  Unset (the normal case) the check is
+one dict lookup.
 
 ``LEADLINE_CHUNK_AUDIT=/path/file`` appends one line per chunk recorded as
 finished (see :func:`witness`), written right after the record and before
@@ -31,31 +33,34 @@ ENV_VAR = "LEADLINE_CRASH_AT"
 #: (an independent witness for the kill tests that no finished chunk is computed twice)
 AUDIT_ENV = "LEADLINE_CHUNK_AUDIT"
 
-_targets: dict[str, int] | None = None
+_targets: dict[str, tuple[int, int]] | None = None
 _counts: dict[str, int] = {}
 
 
-def _parse() -> dict[str, int]:
-    out: dict[str, int] = {}
+def _parse() -> dict[str, tuple[int, int]]:
+    out: dict[str, tuple[int, int]] = {}
     for item in os.environ.get(ENV_VAR, "").split(","):
         item = item.strip()
         if not item:
             continue
-        name, _, count = item.partition(":")
-        out[name.strip()] = int(count or 1)
+        name, _, rest = item.partition(":")
+        count, _, sig = rest.partition(":")
+        signum = signal.SIGTERM if sig.strip().upper() == "TERM" else signal.SIGKILL
+        out[name.strip()] = (int(count or 1), signum)
     return out
 
 
 def crash_point(name: str) -> None:
-    """Kill this process with SIGKILL if ``name`` is armed and reached its count."""
+    """Signal this process (SIGKILL unless armed with TERM) if ``name`` is armed and reached its count."""
     global _targets
     if _targets is None:
         _targets = _parse()
     if name not in _targets:
         return
     _counts[name] = _counts.get(name, 0) + 1
-    if _counts[name] == _targets[name]:
-        os.kill(os.getpid(), signal.SIGKILL)
+    count, signum = _targets[name]
+    if _counts[name] == count:
+        os.kill(os.getpid(), signum)
 
 
 def witness(key: str, chunks) -> None:

@@ -424,3 +424,20 @@ def test_kill_while_creating_the_store_leaves_no_store(tmp_path):
     assert r.returncode == 0, r.stderr
     assert [d["p"] for d in open_study(tmp_path / "created.zarr").depths("sk")] == [1]
     assert sorted(p.name for p in tmp_path.iterdir()) == ["created.zarr", "study.toml"]
+
+
+def test_sigterm_writes_the_waiting_passes_and_releases_the_lock(reference, tmp_path):
+    """SIGTERM (a batch system's time limit) mid-depth under the default interval: the passes
+    waiting for their batch are written, the lock is released, and resume takes them from the store."""
+    spec = write_spec(tmp_path, "term.zarr", interval_s=30)
+    store = tmp_path / "term.zarr"
+    # p = 1 runs 22 passes (11 evaluations, each 1 forward + 1 adjoint pass): the 30th is in p = 2
+    r = run(["sweep", str(spec)], env=env_with(LEADLINE_CRASH_AT="pass-computed:30:TERM"))
+    assert r.returncode == 128 + signal.SIGTERM, (r.returncode, r.stderr)
+    assert not (store / LOCK_NAME).exists()
+    batches = [e for e in zarr.open_group(str(store / "ensembles/sk/p002/passes"), mode="r").arrays()]
+    assert len(batches) == 1 and len(batches[0][1].attrs["entries"]) == 8
+    r = run(["resume", str(store)])
+    assert r.returncode == 0, r.stderr
+    assert "8 from checkpoint" in [line for line in r.stdout.splitlines() if "p = 2" in line][0]
+    _compare_with_reference(reference, store)
