@@ -387,7 +387,7 @@ def test_kills_between_batched_checkpoints_resume_bit_for_bit(reference, tmp_pat
     same bits); passes in a written batch are never computed again.
     """
     rng = np.random.default_rng(20261202)
-    spec = write_spec(tmp_path, "batched.zarr", interval_s=0.02)
+    spec = write_spec(tmp_path, "batched.zarr", interval_s=0.002)  # batches of a few passes, idle or loaded
     store = tmp_path / "batched.zarr"
     audit = tmp_path / "audit.txt"
     kills = [("pass-computed", int(rng.integers(20, 60))), ("pass-cached", int(rng.integers(2, 6))),
