@@ -167,16 +167,16 @@ def test_second_writer_refused_first_unharmed(reference):
 
 
 def test_status_during_a_run_human_and_json(reference):
-    """`status` of a store whose writer is held inside the first p = 3 pass, after its 3rd chunk."""
+    """`status` of a store whose writer is held after its 3rd chunk record: inside the second
+    two-chunk pass of step 2 at p = 2 (step 1 passes are single-chunk and keep no ledger)."""
     probes = reference["probes"]
     assert probes["held"]["point"] == "chunk-recorded" and probes["held"]["count"] == 3
     status = json.loads(probes["status"].stdout)
     (sk,) = status["ensembles"]
-    assert [d["p"] for d in sk["done"]] == [1, 2] and sk["todo"] == [3]
-    for d in sk["done"]:
-        assert d["value"] == pytest.approx(SK_TABLE_1[d["p"]], abs=5e-5)
-    assert sk["running"]["p"] == 3
-    assert sk["running"]["inflight"]["chunks_done"] == 3 and sk["running"]["inflight"]["n_chunks"] == 4
+    assert [d["p"] for d in sk["done"]] == [1] and sk["todo"] == [2, 3]
+    assert sk["done"][0]["value"] == pytest.approx(SK_TABLE_1[1], abs=5e-5)
+    assert sk["running"]["p"] == 2
+    assert sk["running"]["inflight"]["chunks_done"] == 1 and sk["running"]["inflight"]["n_chunks"] == 2
     human = probes["status_human"]
     assert human.returncode == 0, human.stderr
     lines = human.stdout.splitlines()
@@ -186,11 +186,10 @@ def test_status_during_a_run_human_and_json(reference):
     done = next(line.strip() for line in lines if line.strip().startswith("done"))
     # the values shown are the stored ones, to 6 decimals (Table 1 to 4)
     shown = dict(item.split("=") for item in done.split(":", 1)[1].split())
-    assert done.startswith("done     p = 1..2") and set(shown) == {"p1", "p2"}
-    for p in (1, 2):
-        assert float(shown[f"p{p}"]) == pytest.approx(SK_TABLE_1[p], abs=5e-5)
+    assert done.startswith("done     p = 1") and set(shown) == {"p1"}
+    assert float(shown["p1"]) == pytest.approx(SK_TABLE_1[1], abs=5e-5)
     running = next(line.strip() for line in lines if line.strip().startswith("running"))
-    assert running.startswith("running  p = 3:") and "pass in flight: 3/4 chunks done" in running
+    assert running.startswith("running  p = 2:") and "pass in flight: 1/2 chunks done" in running
 
 
 def _compare_with_reference(reference, store: Path, exact: bool = True) -> None:
@@ -411,7 +410,7 @@ def test_sweep_killed_while_on_a_local_dask_cluster_then_resumed(reference, tmp_
     hold = tmp_path / "held"
     proc = subprocess.Popen([*LEADLINE, "sweep", str(spec), "--quiet"], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL,
-                            env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_HOLD_AT="chunk-recorded:6",
+                            env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_HOLD_AT="chunk-recorded:5",
                                          LEADLINE_HOLD_FILE=hold, LEADLINE_SHIP_MIN_VISITS=0))
     cluster_procs = []
     try:
