@@ -10,7 +10,7 @@ import typer
 from leadline.kernels.iteration import evaluate as evaluate_kernel
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
-from . import compute, sparse_cli
+from . import bath_cli, compute, sparse_cli
 from .angles import read_angles
 from .errors import InputError
 from .parsing import angle_pair, mixture_arg
@@ -37,6 +37,10 @@ def evaluate_command(
     threads_per_worker: int = compute.threads_option(),
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
+    method: str = typer.Option("exact", "--method", help=bath_cli.METHOD_HELP),
+    fock: Optional[int] = typer.Option(None, "--fock", help=bath_cli.FOCK_HELP),
+    bond: Optional[int] = typer.Option(None, "--bond", help=bath_cli.BOND_HELP),
+    basis: Optional[str] = typer.Option(None, "--basis", help=bath_cli.BASIS_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -44,6 +48,8 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
+    use_bath = bath_cli.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
+                                     sparse=sparse_cli.sparse_requested(xorsat, degree))
     if sparse_cli.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
@@ -57,6 +63,8 @@ def evaluate_command(
     else:
         mix = mixture_arg(xi)
         g, b = angle_pair(gamma, beta)
+    if use_bath:
+        return bath_cli.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
     if not memory_mb > 0:
         raise InputError("--memory-mb must be positive")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
