@@ -83,10 +83,11 @@ def test_mps_matches_dense_without_truncation(spec, basis, p):
     g, b = angles(3, mix, p)
     fock = 6
     dense = run_bath(mix, g, b, fock=fock, tail=3, basis=basis, engine="dense")
-    mps = run_bath(mix, g, b, fock=fock, tail=3, basis=basis, engine="mps", chi=None, cutoff=0.0)
-    assert mps.discarded == 0.0
-    assert mps.value == pytest.approx(dense.value, abs=1e-10)
-    assert np.max(np.abs(mps.correlations - dense.correlations)) < 1e-10
+    for reverse in (False, True):  # both chain orders of the modes
+        mps = run_bath(mix, g, b, fock=fock, tail=3, basis=basis, engine="mps", chi=None, cutoff=0.0, reverse=reverse)
+        assert mps.discarded == 0.0
+        assert mps.value == pytest.approx(dense.value, abs=1e-10)
+        assert np.max(np.abs(mps.correlations - dense.correlations)) < 1e-10
 
 
 @pytest.mark.parametrize("spec,p", [("2:0.5", 5), ("3:1", 5), ("2:0.5,4:0.5", 6), ("1:0.2,5:0.8", 4)])

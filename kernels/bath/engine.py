@@ -68,12 +68,14 @@ class BathRun:
     step_change: float
     wall_time: float
     eigenvalues: list | None = None
+    reverse: bool = False
 
     def to_json(self) -> dict:
         return {
             "value": float(self.value),
             "p": self.p,
             "basis": self.basis,
+            "mode_order": _order_label(self.basis, self.reverse),
             "engine": self.engine,
             "fock_levels": [int(d) for d in self.fock],
             "bond_cap": self.chi,
@@ -83,6 +85,12 @@ class BathRun:
             "step_change": float(self.step_change),
             "wall_time_s": float(self.wall_time),
         }
+
+
+def _order_label(basis: str, reverse: bool) -> str:
+    if basis == "cholesky":
+        return "newest-first" if reverse else "oldest-first"
+    return "smallest-first" if reverse else "largest-first"
 
 
 def _make_state(engine: str, dims, chi, cutoff):
@@ -98,11 +106,14 @@ def _mixer(b: float) -> np.ndarray:
     return np.array([[c, -1j * s], [-1j * s, c]])
 
 
-def bath_correlations(mixture, g, b, *, C=None, dims=None, engine="mps", chi=None, cutoff=1e-16, fock=None):
+def bath_correlations(mixture, g, b, *, C=None, dims=None, engine="mps", chi=None, cutoff=1e-16, fock=None,
+                      reverse=False):
     """Spin correlations W (p+1 x p+1) of one spin coupled to a bath.
 
     C given (p x K): the bath B_t = sum_k C[t,k] b_k + h.c. with modes cut to dims[k] levels.
     C None: the causal Cholesky sweep, modes 1..p cut to ``fock`` levels each.
+    reverse: chain order spin, mode K, ..., mode 1 instead of spin, mode 1, ..., mode K (the
+    result is the same; the MPS bonds needed are not).
     Returns (W, states) where states lists the final psi and chi_s (for bonds and discarded weight).
     """
     p = len(g)
@@ -110,7 +121,8 @@ def bath_correlations(mixture, g, b, *, C=None, dims=None, engine="mps", chi=Non
     if causal:
         dims = [int(fock)] * p
         C = np.zeros((p, p), complex)
-    psi = _make_state(engine, dims, chi, cutoff)
+    chain = (lambda xs: list(xs)[::-1]) if reverse else list
+    psi = _make_state(engine, chain(dims), chi, cutoff)
     chis = []
     W = np.eye(p + 1, dtype=complex)
     for t in range(p):
@@ -121,7 +133,7 @@ def bath_correlations(mixture, g, b, *, C=None, dims=None, engine="mps", chi=Non
             row = mixture.dxi(W[t, : t + 1])
             row[t] = np.real(row[t])
             cholesky_row(C, t, row)
-        ops = layer_unitaries(g[t], C[t], dims)
+        ops = chain(layer_unitaries(g[t], C[t], dims))
         U = _mixer(b[t])
         chis.append(psi.copy().apply_z())
         for st in [psi, *chis]:
@@ -152,6 +164,7 @@ def run_bath(
     max_steps: int | None = None,
     step_tol: float = 1e-12,
     guess: np.ndarray | None = None,
+    reverse: bool | None = None,
 ) -> BathRun:
     """V_p(gamma, beta) from the bath form at one truncation.
 
@@ -161,6 +174,9 @@ def run_bath(
     basis : "principal" (step-by-step, eigenmodes) or "cholesky" (one causal sweep)
     guess : starting W for the step-by-step form (default: the free spin); any guess gives
             the exact W after p steps
+    reverse : MPS chain order.  Default: Cholesky modes newest first (spin, mode p, ..., mode 1:
+            the spin sits beside the modes it is creating, measured to need about half the
+            bond of the creation order); principal modes largest first (spin, largest, ...).
     """
     t0 = time.perf_counter()
     g, b = check_angles(gamma, beta)
@@ -169,11 +185,13 @@ def run_bath(
         raise ValueError(f"unknown basis {basis!r}: use one of {', '.join(BASES)}")
     if fock < 1:
         raise ValueError("fock must be >= 1")
+    if reverse is None:
+        reverse = basis == "cholesky"
     if basis == "cholesky":
-        W, states = bath_correlations(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock)
+        W, states = bath_correlations(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, reverse=reverse)
         run = BathRun(_value(mixture, g, W), p, basis, engine, W, [fock] * p, chi,
                       max(max(s.bond_dimensions(), default=1) for s in states),
-                      sum(s.discarded for s in states), 1, 0.0, 0.0)
+                      sum(s.discarded for s in states), 1, 0.0, 0.0, reverse=reverse)
         run.wall_time = time.perf_counter() - t0
         return run
     if guess is None:
@@ -189,11 +207,12 @@ def run_bath(
         WB = bath_matrix(mixture, W[:p, :p])
         C, lam = principal_factor(WB)
         dims = fock_levels(mode_amplitudes(g, C), fock, tail)
-        Wn, states = bath_correlations(mixture, g, b, C=C, dims=dims, engine=engine, chi=chi, cutoff=cutoff)
+        Wn, states = bath_correlations(mixture, g, b, C=C, dims=dims, engine=engine, chi=chi, cutoff=cutoff,
+                                       reverse=reverse)
         change = float(np.max(np.abs(Wn - W)))
         W = Wn
         steps += 1
         max_bond = max(max(s.bond_dimensions(), default=1) for s in states)
         discarded = sum(s.discarded for s in states)
     return BathRun(_value(mixture, g, W), p, basis, engine, W, dims, chi, max_bond, discarded, steps,
-                   change, time.perf_counter() - t0, [float(x) for x in lam])
+                   change, time.perf_counter() - t0, [float(x) for x in lam], reverse)
