@@ -72,8 +72,8 @@ def _one(mix, g, b, exact, d, chi, basis="cholesky", tail=None, reverse=None) ->
             "wall_s": round(r.wall_time, 3)}
 
 
-def error_table(angles, names, ps, truncations, record) -> list:
-    rows = []
+def error_table(angles, names, ps, truncations, record, result_rows=None) -> list:
+    rows = result_rows if result_rows is not None else []
     for name in names:
         for p in ps:
             if str(p) not in angles[name]["depths"]:
@@ -88,8 +88,8 @@ def error_table(angles, names, ps, truncations, record) -> list:
     return rows
 
 
-def chi_needed(angles, names, ps, d, ladder, target, record, stop_after_s=300.0) -> list:
-    rows = []
+def chi_needed(angles, names, ps, d, ladder, target, record, stop_after_s=300.0, result_rows=None) -> list:
+    rows = result_rows if result_rows is not None else []
     for name in names:
         for p in ps:
             mix, g, b, exact = _case(angles, name, p)
@@ -109,8 +109,8 @@ def chi_needed(angles, names, ps, d, ladder, target, record, stop_after_s=300.0)
     return rows
 
 
-def basis_table(angles, names, ps, settings, record) -> list:
-    rows = []
+def basis_table(angles, names, ps, settings, record, result_rows=None) -> list:
+    rows = result_rows if result_rows is not None else []
     for name in names:
         for p in ps:
             mix, g, b, exact = _case(angles, name, p)
@@ -123,8 +123,8 @@ def basis_table(angles, names, ps, settings, record) -> list:
     return rows
 
 
-def growth_table(angles, names, ps, d, chi, record, stop_after_s) -> list:
-    rows = []
+def growth_table(angles, names, ps, d, chi, record, stop_after_s, result_rows=None) -> list:
+    rows = result_rows if result_rows is not None else []
     for name in names:
         depths = sorted(int(k) for k in angles[name]["depths"])
         top = depths[-1]
@@ -147,7 +147,41 @@ def growth_table(angles, names, ps, d, chi, record, stop_after_s) -> list:
     return rows
 
 
-SECTIONS = ("chi", "errors", "bases", "growth")
+def deep_table(angles, names, ps, d, ladder, record, stop_after_s, result_rows=None) -> list:
+    """Beyond the stored optima: INTERP angles, a chi ladder at fixed d, each value compared
+    with the largest chi that ran (a self-reference: it tells how fast V converges in chi);
+    plus the largest chi at d + 4 levels, to show the Fock cut-off is not what limits."""
+    rows = result_rows if result_rows is not None else []
+    for name in names:
+        top = max(int(k) for k in angles[name]["depths"])
+        g0, b0 = (np.array(angles[name]["depths"][str(top)][k]) for k in ("gamma", "beta"))
+        mix = parse_mixture(angles[name]["xi"])
+        for p in ps:
+            g, b = g0, b0
+            while g.size < p:
+                g, b = interpolate_angles(g, b)
+            runs = []
+            for chi in ladder:
+                r = _one(mix, g, b, None, d, chi)
+                runs.append(r)
+                _log(f"deep {name} p={p} d={d} chi={chi}: V {r['value']:.12f} bond {r['max_bond']} disc {r['discarded']:.1e} "
+                     f"{r['seconds']:.1f}s")
+                if r["seconds"] > stop_after_s:
+                    break
+            more_d = _one(mix, g, b, None, d + 4, runs[-1]["chi"])
+            _log(f"deep {name} p={p} d={d + 4} chi={runs[-1]['chi']}: V {more_d['value']:.12f} {more_d['seconds']:.1f}s")
+            ref = runs[-1]["value"]
+            for r in runs:
+                r["diff_to_largest"] = abs(r["value"] - ref)
+            rows.append({"mixture": name, "p": p, "d": d, "runs": runs, "more_fock": more_d,
+                         "fock_diff": abs(more_d["value"] - ref)})
+            record()
+            if runs[-1]["seconds"] > stop_after_s:
+                break
+    return rows
+
+
+SECTIONS = ("chi", "errors", "bases", "growth", "deep")
 
 
 def run(quick: bool = False, full: bool = False, out_path: str | None = None, sections=SECTIONS) -> dict:
@@ -162,24 +196,27 @@ def run(quick: bool = False, full: bool = False, out_path: str | None = None, se
             os.replace(out_path + ".tmp", out_path)
 
     if quick:
-        result["errors"] = error_table(angles, ("sk", "q3"), range(2, 7), [(8, 16)], record)
-        result["chi_needed"] = chi_needed(angles, ("sk",), range(2, 7), 10, (4, 8, 16, 32), 1e-6, record)
-        result["bases"] = basis_table(angles, ("sk",), (4,), [("cholesky", True, 12, 12, 16), ("principal", False, 16, 4, 16)], record)
+        error_table(angles, ("sk", "q3"), range(2, 7), [(8, 16)], record, result_rows=result.setdefault("errors", []))
+        chi_needed(angles, ("sk",), range(2, 7), 10, (4, 8, 16, 32), 1e-6, record, result_rows=result.setdefault("chi_needed", []))
+        basis_table(angles, ("sk",), (4,), [("cholesky", True, 12, 12, 16), ("principal", False, 16, 4, 16)], record, result_rows=result.setdefault("bases", []))
         return result
     pmax = 12 if full else 9
     if "chi" in sections:
-        result["chi_needed"] = chi_needed(angles, ("sk", "q3"), range(2, pmax + (3 if full else 1)), 10,
-                                          (4, 6, 8, 12, 16, 24, 32, 48, 64, 96), 1e-6, record)
+        chi_needed(angles, ("sk", "q3"), range(2, pmax + (3 if full else 1)), 10,
+                                          (4, 6, 8, 12, 16, 24, 32, 48, 64, 96), 1e-6, record, result_rows=result.setdefault("chi_needed", []))
     if "errors" in sections:
-        result["errors"] = error_table(angles, MIXTURES, range(2, pmax + 1, 2 if full else 1),
-                                       [(8, 16), (10, 32), (12, 64)], record)
+        error_table(angles, MIXTURES, range(2, pmax + 1, 2 if full else 1),
+                                       [(8, 16), (10, 32), (12, 64)], record, result_rows=result.setdefault("errors", []))
     if "bases" in sections:
-        result["bases"] = basis_table(angles, ("sk",), (4, 6, 8) if full else (4, 6),
+        basis_table(angles, ("sk",), (4, 6, 8) if full else (4, 6),
                                       [(basis, rev, d, tail, chi) for chi in (8, 16, 32)
                                        for basis, d, tail in (("cholesky", 12, 12), ("principal", 20, 4))
-                                       for rev in (True, False)], record)
+                                       for rev in (True, False)], record, result_rows=result.setdefault("bases", []))
+    if full and "deep" in sections:
+        deep_table(angles, ("sk", "q3"), (14, 16, 20, 24, 28, 32, 40, 50), 10,
+                                    (16, 24, 32, 48, 64, 96), record, stop_after_s=400, result_rows=result.setdefault("deep", []))
     if full and "growth" in sections:
-        result["growth"] = growth_table(angles, ("sk", "q3"), (12, 16, 20, 24, 28, 32), 8, 16, record, stop_after_s=600)
+        growth_table(angles, ("sk", "q3"), (12, 16, 20, 24, 28, 32), 8, 16, record, stop_after_s=600, result_rows=result.setdefault("growth", []))
     return result
 
 
@@ -189,10 +226,68 @@ def main(argv=None) -> int:
     ap.add_argument("--full", action="store_true", help="p up to 12, basis comparison to p = 8, growth beyond exact reach")
     ap.add_argument("--json", default=None, help="write the result to this file (updated after every measurement)")
     ap.add_argument("--section", action="append", choices=SECTIONS, help="only these parts (repeatable)")
+    ap.add_argument("--tables", nargs="+", metavar="JSON", help="print markdown tables of result files and exit")
     a = ap.parse_args(argv)
+    if a.tables:
+        for path in a.tables:
+            with open(path) as fh:
+                print(format_tables(json.load(fh)))
+        return 0
     out = run(quick=a.quick, full=a.full, out_path=a.json, sections=a.section or SECTIONS)
     print(json.dumps(out, default=float))
     return 0
+
+
+
+def format_tables(result: dict) -> str:
+    """Markdown tables of a result (the form pasted into docs/bath.md)."""
+    out = []
+    if result.get("chi_needed"):
+        out += ["| mixture | p | d | chi for 1e-6 | error at that chi | CPU s | ladder tried (chi: error) |",
+                "|---|---|---|---|---|---|---|"]
+        for r in result["chi_needed"]:
+            last = r["tried"][-1]
+            ladder = ", ".join(f"{t['chi']}: {t['error']:.1e}" for t in r["tried"])
+            out.append(f"| {r['mixture']} | {r['p']} | {r['d']} | {r['chi'] if r['chi'] else '> ' + str(last['chi'])} | "
+                       f"{last['error']:.1e} | {last['seconds']:.1f} | {ladder} |")
+        out.append("")
+    if result.get("errors"):
+        truncs = sorted({(r["d"], r["chi"]) for r in result["errors"]})
+        out += ["| mixture | p | V_p* (exact) | " + " | ".join(f"error d={d}, chi={c}" for d, c in truncs)
+                + " | CPU s (largest) |", "|---|---|---|" + "---|" * len(truncs) + "---|"]
+        keys = sorted({(r["mixture"], r["p"]) for r in result["errors"]}, key=lambda k: (MIXTURES.index(k[0]), k[1]))
+        for name, p in keys:
+            rows = {(r["d"], r["chi"]): r for r in result["errors"] if r["mixture"] == name and r["p"] == p}
+            cells = [f"{rows[t]['error']:.1e}" if t in rows else "" for t in truncs]
+            last = rows[truncs[-1]] if truncs[-1] in rows else None
+            exact = next(iter(rows.values()))["exact"]
+            out.append(f"| {name} | {p} | {exact:.8f} | " + " | ".join(cells) + f" | {last['seconds']:.1f} |" if last else "")
+        out.append("")
+    if result.get("bases"):
+        out += ["| mixture | p | basis | chain order | d (top/rest) | chi | error | CPU s |", "|---|---|---|---|---|---|---|---|"]
+        for r in result["bases"]:
+            out.append(f"| {r['mixture']} | {r['p']} | {r['basis']} | {r['order']} | {r['d']}/{r['tail']} | {r['chi']} | "
+                       f"{r['error']:.1e} | {r['seconds']:.1f} |")
+        out.append("")
+    if result.get("deep"):
+        chis = sorted({r["chi"] for row in result["deep"] for r in row["runs"]})
+        out += ["| mixture | p | V_p (largest chi) | " + " | ".join(f"chi={c}" for c in chis)
+                + " | d+4 at largest chi | CPU s (largest chi) |", "|---|---|---|" + "---|" * len(chis) + "---|---|"]
+        for row in result["deep"]:
+            by = {r["chi"]: r for r in row["runs"]}
+            cells = [f"{by[c]['diff_to_largest']:.1e}" if c in by and c != row["runs"][-1]["chi"] else ("ref" if c in by else "")
+                     for c in chis]
+            out.append(f"| {row['mixture']} | {row['p']} | {row['runs'][-1]['value']:.10f} | " + " | ".join(cells)
+                       + f" | {row['fock_diff']:.1e} | {row['runs'][-1]['seconds']:.0f} |")
+        out.append("")
+    if result.get("growth"):
+        out += ["| mixture | p | V_p (d=12, chi=32) | error estimate | check run (d=8, chi=16) | bond reached | CPU s (both runs) |",
+                "|---|---|---|---|---|---|---|"]
+        for r in result["growth"]:
+            out.append(f"| {r['mixture']} | {r['p']} | {r['value']:.8f} | {r['error_estimate']:.1e} | {r['check_value']:.8f} | "
+                       f"{r['max_bond']} | {r['seconds_both']:.0f} |")
+        out.append("")
+    return "\n".join(out)
 
 
 if __name__ == "__main__":
