@@ -15,8 +15,8 @@ from .errors import InputError
 
 METHODS = ("exact", "bath")
 METHOD_HELP = "exact (default): the exact path-sum iteration. bath: the bosonic-bath engine (matrix product state, any depth, with a truncation error estimate; see docs/bath.md)."
-FOCK_HELP = "--method bath: Fock levels of the most driven bath mode (default 10); weaker modes get fewer, down to 3."
-BOND_HELP = "--method bath: largest bond dimension chi of the matrix product state (default 32)."
+FOCK_HELP = "--method bath: Fock levels d of each bath mode in the first run (default 10; principal basis: of the most driven mode, weaker ones down to 3). The value comes from a second run at 1.5 d levels and 2 chi; the difference of the two runs is the error estimate."
+BOND_HELP = "--method bath: bond dimension cap chi of the matrix product state in the first run (default 32)."
 BASIS_HELP = "--method bath: bath mode basis, cholesky (default: one causal sweep) or principal (eigenmodes, step by step)."
 
 DEFAULT_FOCK = 10
