@@ -38,7 +38,7 @@ from .mps import MPSState
 
 __all__ = ["BathRun", "bath_correlations", "run_bath", "BASES"]
 
-BASES = ("principal", "cholesky")
+BASES = ("cholesky", "principal")
 
 
 @dataclass
@@ -158,7 +158,7 @@ def run_bath(
     fock: int = 8,
     tail: int = 2,
     chi: int | None = 32,
-    basis: str = "principal",
+    basis: str = "cholesky",
     engine: str = "mps",
     cutoff: float = 1e-16,
     max_steps: int | None = None,

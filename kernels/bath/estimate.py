@@ -42,7 +42,7 @@ class BathEvaluation:
 
 
 def evaluate_bath(mixture, gamma, beta, *, fock: int = 8, tail: int = 2, chi: int | None = 32,
-                  basis: str = "principal", engine: str = "mps") -> BathEvaluation:
+                  basis: str = "cholesky", engine: str = "mps") -> BathEvaluation:
     """V_p at (fock, tail, chi) and at :func:`larger_truncation`; value of the larger run.
 
     The larger run starts its step-by-step iteration from the smaller run's correlations.
