@@ -198,11 +198,32 @@ def run(quick: bool = False, full: bool = False, out_path: str | None = None, se
                 json.dump(result, fh, indent=1, default=float)
             os.replace(out_path + ".tmp", out_path)
 
+    def rows(key):
+        return result.setdefault(key, [])
+
     if quick:
-        error_table(angles, ("sk", "q3"), range(2, 7), [(8, 16)], record, result_rows=result.setdefault("errors", []))
-        chi_needed(angles, ("sk",), range(2, 7), 10, (4, 8, 16, 32), 1e-6, record, result_rows=result.setdefault("chi_needed", []))
-        basis_table(angles, ("sk",), (4,), [("cholesky", True, 12, 12, 16), ("principal", False, 16, 4, 16)], record, result_rows=result.setdefault("bases", []))
+        error_table(angles, ("sk", "q3"), range(2, 7), [(8, 16)], record, result_rows=rows("errors"))
+        chi_needed(angles, ("sk",), range(2, 7), 10, (4, 8, 16, 32), 1e-6, record, result_rows=rows("chi_needed"))
+        basis_table(angles, ("sk",), (4,), [("cholesky", True, 12, 12, 16), ("principal", False, 16, 4, 16)], record,
+                    result_rows=rows("bases"))
         return result
+    pmax = 12 if full else 9
+    if "chi" in sections:
+        chi_needed(angles, ("sk", "q3"), range(2, pmax + (3 if full else 1)), 10, (4, 6, 8, 12, 16, 24, 32, 48, 64, 96),
+                   1e-6, record, result_rows=rows("chi_needed"))
+    if "errors" in sections:
+        error_table(angles, MIXTURES, range(2, pmax + 1, 2 if full else 1), [(8, 16), (10, 32), (12, 64)], record,
+                    result_rows=rows("errors"))
+    if "bases" in sections:
+        settings = [(basis, rev, d, tail, chi) for chi in (8, 16, 32)
+                    for basis, d, tail in (("cholesky", 12, 12), ("principal", 20, 4)) for rev in (True, False)]
+        basis_table(angles, ("sk",), (4, 6, 8) if full else (4, 6), settings, record, result_rows=rows("bases"))
+    if full and "deep" in sections:
+        deep_table(angles, deep_names, deep_ps, 10, (16, 32, 48, 64), record, stop_after_s=300, result_rows=rows("deep"))
+    if full and "growth" in sections:
+        growth_table(angles, ("sk", "q3"), (12, 16, 20, 24, 28, 32), 8, 16, record, stop_after_s=600,
+                     result_rows=rows("growth"))
+    return result
     pmax = 12 if full else 9
     if "chi" in sections:
         chi_needed(angles, ("sk", "q3"), range(2, pmax + (3 if full else 1)), 10,
