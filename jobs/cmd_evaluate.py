@@ -12,8 +12,9 @@ from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import bath_cli, compute, sparse_cli
 from .angles import read_angles
+from .cost import COST_NOTE_SECONDS, check_cost
 from .errors import InputError
-from .parsing import angle_pair, mixture_arg
+from .parsing import angle_pair, check_representable, file_mixture, mixture_arg
 
 
 def evaluate_command(
@@ -48,29 +49,38 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
+    if not memory_mb > 0 or memory_mb == float("inf"):
+        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    angle_set = None
+    if angles is not None:
+        if gamma is not None or beta is not None:
+            raise InputError("give either --angles FILE or --gamma/--beta, not both")
+        angle_set = read_angles(angles)
+        if angle_set.ensemble is not None and xi is None and not sparse_cli.sparse_requested(xorsat, degree):
+            # a file written by `optimize --xorsat`: evaluate on its own sparse ensemble
+            xorsat, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
     use_bath = bath_cli.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
                                      sparse=sparse_cli.sparse_requested(xorsat, degree))
     if sparse_cli.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
                                           gradient=gradient, as_json=as_json, settings=settings)
-    if angles is not None:
-        if gamma is not None or beta is not None:
-            raise InputError("give either --angles FILE or --gamma/--beta, not both")
-        angle_set = read_angles(angles)
-        mix = mixture_arg(xi if xi is not None else angle_set.xi)
+    if angle_set is not None:
+        mix = file_mixture(xi, angle_set, angles)
         g, b = angle_set.gamma, angle_set.beta
     else:
         mix = mixture_arg(xi)
         g, b = angle_pair(gamma, beta)
+    check_representable(mix, g, "--angles" if angle_set is not None else "--gamma")
     if use_bath:
         return bath_cli.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
-    if not memory_mb > 0:
-        raise InputError("--memory-mb must be positive")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")
+    if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
+        typer.echo(f"leadline: {cost.line()}", err=True)
     with compute.open_compute(settings) as ex:
-        passes = g.size + (g.size + 1 if gradient else 0) + (1 if fixed_point else 0)
+        passes = g.size * (2 if gradient else 1) + (1 if fixed_point else 0)  # one pass per step and direction
         ex.progress.announce_job(f"evaluate p = {g.size}", passes, plan.n_chunks)
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient, fixed_point_check=fixed_point)
     if as_json:
@@ -92,8 +102,9 @@ def report(result) -> str:
     lines.append(f"invariants = {res}")
     plan = result.plan
     lines.append(
-        f"work       = {result.passes} passes x {plan.n_chunks} chunks "
-        f"(2^{plan.n_high} x 2^{plan.n_low} paths), {result.wall_time:.2f} s"
+        f"work       = {result.passes} passes on growing contours, {result.path_visits:.3g} path visits "
+        f"forward; last step {plan.n_chunks} chunks (2^{plan.n_high} x 2^{plan.n_low} paths"
+        f"{', half by the flip' if plan.flip else ''}), {result.wall_time:.2f} s"
     )
     return "\n".join(lines)
 

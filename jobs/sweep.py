@@ -18,6 +18,7 @@ import numpy as np
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import plan_chunks
 from leadline.storage import CheckpointedPasses, CheckpointStats, StudyStore
+from leadline.storage.faults import crash_point
 
 from .spec import EnsembleSpec, StudySpec
 
@@ -81,6 +82,7 @@ def run_study(
                 continue
             plan = plan_chunks(p, spec.memory_budget)
             depth = store.depth(ens.label, p, plan)
+            crash_point("depth-started")
             t0 = time.perf_counter()
             result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
             session_s = time.perf_counter() - t0

@@ -137,10 +137,18 @@ def test_markdown_lists_values_ratios_fits_and_the_caveat(study, report):
         assert f"{d['value'] / SK_PARISI:.4f}" in text
     assert "V_p*/GS" in text and "Crisanti" in text
     assert "estimates" in text and "not bounds" in text
-    assert "V_inf estimate" in text
-    assert "p for ratio 0.95" in text and "p for ratio 0.99" in text
+    # three depths leave nothing to hold out for a back-test: fits are listed, no headline
+    assert "Back-test: too few depths" in text and "No headline" in text
+    assert "no back-test" in text
     mix_section = text.split("## mix24")[1]
     assert "V_p*/GS" not in mix_section.split("Note:")[0]
+
+
+def test_same_store_gives_the_same_extrapolation_numbers(store_path, report):
+    """Back-test errors and every extrapolated number are reproducible from the store."""
+    again = build_report(open_study(store_path))
+    assert render_json(again) == render_json(report)
+    assert render_csv(again) == render_csv(report)
 
 
 def test_csv_parses_and_holds_the_stored_values(study, report):
@@ -156,26 +164,73 @@ def test_csv_parses_and_holds_the_stored_values(study, report):
             assert float(r["inv_p"]) == 1.0 / d["p"]
     sk_ref = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "reference"]
     assert float(sk_ref[0]["value"]) == pytest.approx(SK_PARISI)
-    extrap = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "extrapolation"]
-    assert len(extrap) == 1 and float(extrap[0]["uncertainty"]) >= 0
+    fits = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "fit"]
+    assert fits and {r["status"] for r in fits} == {"no back-test"}
+    assert not [r for r in rows if r["record"] == "extrapolation"]  # no headline from 3 depths
     assert any("not a bound" in r["note"] or "not bounds" in r["note"] for r in rows)
     assert not [r for r in rows if r["ensemble"] == "mix24" and r["ratio_gs"]]
 
 
 def test_json_is_one_object_with_the_stored_values(study, report):
     obj = json.loads(render_json(report))
-    assert obj["format"] == "leadline.table" and obj["version"] == 1
+    assert obj["format"] == "leadline.table" and obj["version"] == 2
     assert [e["label"] for e in obj["ensembles"]] == study.ensembles()
     for ens in obj["ensembles"]:
         stored = study.depths(ens["label"])
         assert [d["value"] for d in ens["depths"]] == [d["value"] for d in stored]
     assert "not bounds" in obj["note"]
     sk = obj["ensembles"][0]
-    assert sk["extrapolation"]["fits"][0]["family"] == "polynomial in 1/p"
-    assert set(sk["power_law_gap"][0]["depth_for_ratio"]) == {"0.95", "0.99"}
+    assert sk["extrapolation"]["fits"][0]["family"] == "poly1"
+    assert sk["extrapolation"]["limit"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
 
 
-def test_plots_open_with_the_documented_size(report, tmp_path):
+@pytest.fixture()
+def drawn(monkeypatch):
+    """The matplotlib figures written by write_plots, captured as they are saved (in order)."""
+    from matplotlib.figure import Figure
+
+    figures = []
+    save = Figure.savefig
+
+    def recording_savefig(fig, *args, **kwargs):
+        figures.append(fig)
+        return save(fig, *args, **kwargs)
+
+    monkeypatch.setattr(Figure, "savefig", recording_savefig)
+    return figures
+
+
+def _value_markers(ax):
+    """The marker-only series of the value plot (one per dense ensemble): label -> (x, y)."""
+    return {line.get_label().split(":")[0]: (list(line.get_xdata()), list(line.get_ydata()))
+            for line in ax.get_lines() if line.get_linestyle() == "None" and line.get_marker() == "o"}
+
+
+def check_figures(figures, study, report):
+    """Axes, series count and plotted data of both figures against the stored values."""
+    value_fig, angle_fig = figures
+    (ax,) = [a for a in value_fig.axes if a.get_xlabel()]  # (the secondary depth axis has no data)
+    assert ax.get_xlabel().startswith("1/p") and ax.get_ylabel().startswith("V_p*")
+    dense = [e.label for e in report.ensembles if e.kind == "dense" and e.rows]
+    markers = _value_markers(ax)
+    assert sorted(markers) == sorted(dense)  # one series of stored values per dense ensemble
+    for label in dense:
+        stored = study.depths(label)
+        assert markers[label][0] == [1.0 / d["p"] for d in stored]
+        assert markers[label][1] == [d["value"] for d in stored]
+    # the SK ground state line, dashed, at the Parisi value (Crisanti, Rizzo 2002)
+    horizontal = [line for line in ax.get_lines() if line.get_linestyle() == "--" and len(set(line.get_ydata())) == 1]
+    assert any(line.get_ydata()[0] == pytest.approx(SK_PARISI) for line in horizontal)
+    # angle schedules: a row of (gamma, beta) panels per ensemble, one curve per finished depth
+    assert len(angle_fig.axes) == 2 * len(report.ensembles)
+    for row, ens in enumerate(report.ensembles):
+        ax_g, ax_b = angle_fig.axes[2 * row], angle_fig.axes[2 * row + 1]
+        stored = study.depths(ens.label)
+        assert [list(line.get_ydata()) for line in ax_g.get_lines()] == [d["gamma"] for d in stored]
+        assert [list(line.get_ydata()) for line in ax_b.get_lines()] == [d["beta"] for d in stored]
+
+
+def test_plots_open_with_the_documented_size_and_show_the_stored_values(study, report, tmp_path, drawn):
     from matplotlib.image import imread
 
     out = tmp_path / "study.png"
@@ -186,8 +241,7 @@ def test_plots_open_with_the_documented_size(report, tmp_path):
     assert main_img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
     angles = imread(paths[1])
     assert angles.shape[:2] == (round(3.2 * FIGURE_DPI) * len(report.ensembles), 1000)
-    # not blank: the figure has drawn content of several colours
-    assert np.unique(main_img.reshape(-1, main_img.shape[-1]), axis=0).shape[0] > 20
+    check_figures(drawn, study, report)
 
 
 # ----------------------------------------------------------- command line
@@ -218,6 +272,8 @@ def test_ground_state_override_wins(store_path, capsys):
     "args, message",
     [
         (["table", "{store}", "--format", "xml"], "--format"),
+        (["table", "{store}", "--at-depth", "50,x"], "--at-depth"),
+        (["table", "{store}", "--at-depth", "0,100"], ">= 1"),
         (["table", "{store}", "--ground-state", "0.9"], "ambiguous"),
         (["table", "{store}", "--ground-state", "nosuch=0.9"], "no ensemble"),
         (["table", "{store}", "--ground-state", "sk=-1"], "positive"),
@@ -239,10 +295,70 @@ def test_bad_input_exits_2_and_writes_nothing(store_path, tmp_path, capsys, args
     assert sorted(p.name for p in tmp_path.iterdir()) == before
 
 
-def test_plot_command(store_path, tmp_path, capsys):
+def test_plot_command(store_path, study, report, tmp_path, capsys, drawn):
     out = tmp_path / "fig.png"
     main(["plot", str(store_path), "--output", str(out)])
-    assert out.exists() and (tmp_path / "fig-angles.png").exists()
+    assert capsys.readouterr().out.splitlines() == [f"wrote {out}", f"wrote {tmp_path / 'fig-angles.png'}"]
+    check_figures(drawn, study, report)
+
+
+INCOMPLETE_SPEC = """
+[study]
+name = "incomplete"
+store = "inc.zarr"
+[depths]
+pmax = 2
+[optimizer]
+restarts = 0
+[compute]
+executor = "inprocess"
+[[ensemble]]
+label = "sk"
+xi = "2:0.5"
+[[ensemble]]
+label = "mc"
+kind = "sparse"
+q = 2
+degree = 3
+"""
+
+
+@pytest.fixture(scope="module")
+def incomplete_store(tmp_path_factory):
+    """A store whose sweep was killed (SIGKILL) as its last depth started: sk p = 1, 2 and
+    mc p = 1 finished, mc p = 2 marked running."""
+    import os
+    import signal
+    import subprocess
+    import sys
+
+    folder = tmp_path_factory.mktemp("incomplete")
+    (folder / "study.toml").write_text(INCOMPLETE_SPEC)
+    env = {**os.environ, "LEADLINE_CRASH_AT": "depth-started:4"}
+    r = subprocess.run([sys.executable, "-m", "leadline", "sweep", str(folder / "study.toml"), "--quiet"],
+                       env=env, capture_output=True, text=True, timeout=300)
+    assert r.returncode == -signal.SIGKILL, r.stderr
+    assert not open_study(folder / "inc.zarr").progress()["complete"]
+    return folder / "inc.zarr"
+
+
+def test_table_and_plot_of_an_incomplete_store_show_the_finished_depths(incomplete_store, tmp_path, capsys, drawn):
+    study = open_study(incomplete_store)
+    assert [d["p"] for d in study.depths("sk")] == [1, 2] and [d["p"] for d in study.depths("mc")] == [1]
+    main(["table", str(incomplete_store), "--format", "json"])
+    obj = json.loads(capsys.readouterr().out)
+    sk, mc = obj["ensembles"]
+    assert [d["p"] for d in sk["depths"]] == [1, 2] and [d["p"] for d in mc["depths"]] == [1]
+    # Quantum 6, 759 (2022), Table 1; MaxCut p = 1: 1/2 + 1/(3 sqrt 3) (Wang, Hadfield, Jiang,
+    # Rieffel, Phys. Rev. A 97, 022304 (2018))
+    assert [d["value"] for d in sk["depths"]] == pytest.approx([SK_PUBLISHED[1], SK_PUBLISHED[2]], abs=6e-5)
+    assert abs(mc["depths"][0]["value"] - (0.5 + 1 / (3 * math.sqrt(3)))) < 1e-6
+    main(["table", str(incomplete_store)])
+    text = capsys.readouterr().out
+    assert "fewer than two finished depths: no extrapolation" in text.split("## mc")[1]
+    out = tmp_path / "inc.png"
+    main(["plot", str(incomplete_store), "--output", str(out)])
+    check_figures(drawn, study, build_report(study))
 
 
 # ------------------------------------------------- published numbers only
@@ -252,15 +368,32 @@ def test_rendering_of_the_published_sk_series_held_in_memory():
 
     depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in SK_PUBLISHED.items()]
     study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
-    rep = build_report(study).ensembles[0]
+    report = build_report(study, at_depths=(50, 160))
+    rep = report.ensembles[0]
     assert [r.value for r in rep.rows] == list(SK_PUBLISHED.values())
     # QAOA energies are averages of H, so they never exceed the ground state (V_p <= GS)
     assert all(r.ratio_gs == r.value / SK_PARISI < 1 for r in rep.rows)
-    direct = extrapolate(list(SK_PUBLISHED), list(SK_PUBLISHED.values()))
-    assert rep.extrapolation.central == direct.central and len(rep.extrapolation.fits) == 12
-    assert [g.k for g in rep.gap_fits] == [3, 4, 5]
-    text = render_markdown(build_report(study))
+    refs = rep.references
+    direct = extrapolate(list(SK_PUBLISHED), list(SK_PUBLISHED.values()), ground_state=SK_PARISI,
+                         ground_state_uncertainty=refs.ground_state_uncertainty,
+                         upper_bound=math.sqrt(math.log(2)), at_depths=(50, 160))
+    assert json.dumps(rep.extrapolation.to_json()) == json.dumps(direct.to_json())
+    assert rep.extrapolation.holdout == 2  # 8 depths: p = 7, 8 held out
+    assert rep.extrapolation.limit is not None and rep.extrapolation.limit.high <= SK_PARISI + 1e-6
+    assert [lv.name for lv in rep.extrapolation.levels] == ["ratio 0.95", "ratio 0.99"]
+    text = render_markdown(report)
     assert "0.607300" in text and "0.7958" in text  # 0.6073 / 0.763166
+    assert "V_inf estimate" in text and "Headline rule" in text and "not a confidence interval" in text
+    assert "Predicted at given depths" in text and "| 160 |" in text and "ratio 0.99" in text
+    rows = list(csv.DictReader(io.StringIO(render_csv(report))))
+    kinds = {r["record"] for r in rows}
+    assert {"fit", "backtest", "extrapolation", "at_depth", "depth_for"} <= kinds
+    for r in rows:
+        if r["record"] == "backtest":
+            assert float(r["backtest_error"]) == pytest.approx(float(r["value"]) - SK_PUBLISHED[int(r["p"])], abs=1e-15)
+    obj = json.loads(render_json(report))
+    fits = obj["ensembles"][0]["extrapolation"]["fits"]
+    assert all(f["backtest"]["held_out"] == [7, 8] for f in fits if f["backtest"])
 
 
 # ------------------------------------------- computed GS / ALG (kernels.reference)
@@ -326,3 +459,20 @@ def test_fits_above_the_union_bound_are_flagged():
     study = InMemoryStudy("bound", [({"label": "x", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
     rep = build_report(study, ground_states={"x": 2.0}).ensembles[0]
     assert any("upper bound" in n and "0.8326" in n for n in rep.notes)
+
+
+def test_plot_draws_every_family_and_the_back_test(tmp_path):
+    """The figure of a back-tested extrapolation (published SK values, in memory) has the documented size."""
+    from matplotlib.image import imread
+
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in SK_PUBLISHED.items()]
+    study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    report = build_report(study)
+    ex = report.ensembles[0].extrapolation
+    assert ex.limit is not None and {w.family for w in ex.fits} == {"poly1", "poly2", "poly3", "power", "power-gs"}
+    out = tmp_path / "sk.png"
+    write_plots(report, out)
+    img = imread(out)
+    w, h = FIGURE_SIZE_INCHES
+    assert img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
+    assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 20

@@ -269,25 +269,37 @@ def test_lock_of_other_host_is_respected(tmp_path):
 
 
 def test_concurrent_takeover_of_a_stale_lock_has_one_winner(tmp_path):
-    """Several processes race for the same stale lock: exactly one gets it."""
+    """Several processes race for the same stale lock: exactly one gets it.
+
+    The winner keeps the lock (and stays alive) until every racer has answered, so a late
+    racer cannot find a lock gone stale again; no step depends on elapsed time.
+    """
     d = tmp_path / "s"
     d.mkdir()
     _write_lock(d, pid=_dead_pid(), host=socket.gethostname(), process_start=1.0, token="old")
     code = (
-        "import sys, time; from leadline.storage import StoreLock, StoreLockedError\n"
+        "import sys; from leadline.storage import StoreLock, StoreLockedError\n"
         "print('ready', flush=True); sys.stdin.readline()\n"
-        "try:\n    StoreLock(sys.argv[1]).acquire(); print('won', flush=True); time.sleep(1.0)\n"
-        "except StoreLockedError: print('refused', flush=True)\n"
+        "try:\n    lock = StoreLock(sys.argv[1]).acquire(); print('won', flush=True)\n"
+        "except StoreLockedError: lock = None; print('refused', flush=True)\n"
+        "sys.stdin.readline()\n"
+        "if lock is not None: lock.release()\n"
     )
     procs = [subprocess.Popen([sys.executable, "-c", code, str(d)], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                               text=True) for _ in range(3)]
-    for proc in procs:
-        assert proc.stdout.readline().strip() == "ready"
-    for proc in procs:  # release them together
-        proc.stdin.write("go\n")
-        proc.stdin.flush()
-    outcomes = sorted(p.communicate(timeout=60)[0].strip() for p in procs)
-    assert outcomes == ["refused", "refused", "won"]
+    try:
+        for proc in procs:
+            assert proc.stdout.readline().strip() == "ready"
+        for proc in procs:  # release them together
+            proc.stdin.write("go\n")
+            proc.stdin.flush()
+        outcomes = sorted(proc.stdout.readline().strip() for proc in procs)  # every racer has answered
+        assert outcomes == ["refused", "refused", "won"]
+        assert json.loads((d / LOCK_NAME).read_text())["token"] != "old"
+    finally:
+        for proc in procs:
+            proc.communicate("done\n", timeout=60)
+    assert not (d / LOCK_NAME).exists()  # the winner released it
 
 
 # ---------------------------------------------------------------------------- read API
