@@ -3,15 +3,14 @@
 from __future__ import annotations
 
 import json
-import time
 from typing import Optional
 
 import typer
 
-from leadline.kernels.optimize import optimize_depth
-from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET
 
 from . import compute, sparse_cli
+from .api import optimize_ladder
 from .angles import AngleSet, check_writable, optimum_report, write_angles
 from .errors import InputError
 from .parsing import check_optimizer_options, mixture_arg, warm_start
@@ -65,44 +64,25 @@ def optimize_command(
         check_writable(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
 
-    t0 = time.perf_counter()
-    ladder = []
-    budget = int(memory_mb * 2**20)
-    if initial is not None:
-        first = depth
-        previous = (initial.gamma, initial.beta)
-        previous_value = initial.value if initial.p == depth - 1 else None
-    else:
-        first, previous, previous_value = 1, None, None
-    result = None
     with compute.open_compute(settings) as ex:
-        for p in range(first, depth + 1):
-            result = optimize_depth(
-                mix,
-                p,
-                run_pass=ex.run_pass,
-                callback=lambda info, p=p: ex.progress.evaluation_done(info.get("value"), label=f"optimize p = {p}"),
-                plan=plan_chunks(p, budget),
-                previous=previous,
-                previous_value=previous_value,
-                restarts=restarts,
-                seed=seed,
-                gtol=gtol,
-                maxiter=maxiter,
-            )
-            ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
-            previous, previous_value = (result.gamma, result.beta), result.value
-    total_evals = sum(r["evaluations"] for r in ladder)
-    wall = time.perf_counter() - t0
+        run = optimize_ladder(
+            mix,
+            depth,
+            initial,
+            run_pass=ex.run_pass,
+            budget=int(memory_mb * 2**20),
+            restarts=restarts,
+            seed=seed,
+            gtol=gtol,
+            maxiter=maxiter,
+            on_evaluation=lambda value, p: ex.progress.evaluation_done(value, label=f"optimize p = {p}"),
+        )
+    result, ladder, first, total_evals, wall = run.result, run.ladder, run.first_depth, run.evaluations_total, run.wall_time
 
     if output:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
     if as_json:
-        out = result.to_json()
-        out["evaluations_total"] = total_evals
-        out["wall_time_s"] = wall
-        out["ladder"] = ladder
-        typer.echo(json.dumps(out))
+        typer.echo(json.dumps(run.to_json()))
         return
     header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"

@@ -1,7 +1,7 @@
 """Every path and attribute name of a study store, in one place.
 
-A study store is a Zarr (format 3) directory hierarchy; /work/notes/store.md
-(merged into the README) documents it for readers without leadline::
+A study store is a Zarr (format 3) directory hierarchy; docs/store.md
+documents it for readers without leadline::
 
     <store>/                                 root group
         attrs: format, schema_version, name, spec, spec_toml, created_utc, writer

@@ -8,7 +8,7 @@ This is the API the tables and plots code against::
         study.ensemble(label)   # {"label", "kind", "xi", "q", "degree", "reference"}
         study.depths(label)     # finished depths sorted by p
 
-Everything here can also be read with plain zarr (see /work/notes/store.md).
+Everything here can also be read with plain zarr (see docs/store.md).
 """
 
 from __future__ import annotations

@@ -173,7 +173,7 @@ def test_odd_set_count_small_closed_forms():
 @pytest.mark.parametrize("spec", MIXTURES)
 @pytest.mark.parametrize("n", [4, 7])
 def test_sampler_covariance_is_exactly_n_xi_of_overlap(spec, n):
-    """Cov(H(z), H(z')) = n xi(R) for every pair of states (model definition, formula.md;
+    """Cov(H(z), H(z')) = n xi(R) for every pair of states (model definition, docs/method.md;
     with all ordered tuples sum_tuples prod z z' = (n R)^q exactly)."""
     mixture = parse_mixture(spec)
     expected = n * mixture.xi(overlap_matrix(n))

@@ -266,7 +266,7 @@ def test_maxcut_3regular_optimized_ladder():
     assert abs(values[0] - wang_p1(3)) < 1e-10  # Wang et al., PRA 97, 022304 (2018)
     assert round(values[1], 4) == 0.7559  # Wurtz, Love, PRA 103, 042612 (2021)
     assert round(values[2], 4) == 0.7924  # Wurtz, Love, PRA 103, 042612 (2021)
-    assert abs(values[3] - 0.8169) < 1e-4  # p = 4 value from memory (design note sparse.md)
+    assert abs(values[3] - 0.8169) < 1e-4  # p = 4 value from memory
 
 
 # ----------------------------------------------------------------------------- universality
