@@ -150,14 +150,17 @@ def run_page(path: Path, workdir: Path, *, regenerate: bool = False) -> list[str
             target.write_text(block.text)
             continue
         if block.lang == "python":
-            old = os.getcwd()
+            old_dir, old_env = os.getcwd(), dict(os.environ)
             os.chdir(workdir)
+            os.environ.update(environment(workdir))
             try:
                 exec(compile(block.text, block.name, "exec"), namespace)
             except Exception as exc:  # report and go on with the page
                 failures.append(f"{block.name}: python block raised {type(exc).__name__}: {exc}")
             finally:
-                os.chdir(old)
+                os.chdir(old_dir)
+                os.environ.clear()
+                os.environ.update(old_env)
             continue
         if block.lang != "console":
             continue
