@@ -63,7 +63,7 @@ def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
 
 @_store_errors
 def sweep_command(
-    spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); see the README for the layout."),
+    spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); every key is described in docs/cli.md."),
     quiet: bool = compute.quiet_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
 ) -> None:

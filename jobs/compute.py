@@ -87,7 +87,7 @@ def cluster_config_option():
         None,
         "--cluster-config",
         help="TOML file describing a SLURM or PBS batch cluster; batch jobs are submitted for this run "
-        "(layout: cluster/batch.py and the README).",
+        "(layout: docs/clusters.md).",
     )
 
 

@@ -246,7 +246,7 @@ APPROACH_CASES = [
 ]
 # Sizes and instances per size.  The spread of <H>/n between instances is about 0.4/n (SK,
 # constant term dropped) and 0.2-0.3/n (3-spin), so these counts give standard errors of
-# 0.001-0.002; n = 16..20 is left to the command (see the README material), for test speed.
+# 0.001-0.002; n = 16..20 is left to the command (docs/validation.md, finite-size cross-check), for test speed.
 SMALL_N, LARGE_N = 8, 14
 APPROACH_SIZES = {SMALL_N: 1000, 12: 200, LARGE_N: 200}
 # Finite-size allowance 1/n (energy density units).  With the exact covariance the finite-n
