@@ -46,7 +46,7 @@ from leadline.kernels.plan import ChunkPlan, plan_chunks
 from .errors import ExecutorError, SchedulerUnreachable
 from .mapreduce import OnChunk, OrderedSum, Placement, check_done, map_reduce_pass
 from .progress import ProgressDisplay, progress_wanted
-from .settings import ComputeSettings, auto_workers, worker_memory_limit, worth_a_cluster
+from .settings import ComputeSettings, auto_workers, worker_memory_limit, worth_a_cluster, worth_a_round_trip
 from .workerenv import SINGLE_THREAD_ENV
 
 __all__ = [
@@ -121,23 +121,28 @@ class InProcessExecutor(Executor):
     mode = "inprocess"
 
     def _run(self, inp, plan, done, on_chunk):
-        if plan.p != inp.p:
-            raise ValueError(f"chunk plan is for p = {plan.p}, pass input has p = {inp.p}")
-        done = check_done(done, plan)
-        total = OrderedSum(plan, done)
-        self.progress.pass_started(plan.n_chunks, already_done=len(done))
-        low = None
-        for k in range(plan.n_chunks):
-            if k in done:
-                continue
-            if low is None:
-                low = prepare_low_side(inp, plan)
-            part = chunk_partial(inp, plan, k, low)
-            if on_chunk is not None:
-                on_chunk(k, part)
-            total.add(k, part)
-            self.progress.chunks_done(1)
-        return total.acc
+        return _run_here(inp, plan, done, on_chunk, self.progress)
+
+
+def _run_here(inp, plan, done, on_chunk, progress) -> np.ndarray:
+    """One pass chunk by chunk in this process (same contract as every executor's pass)."""
+    if plan.p != inp.p:
+        raise ValueError(f"chunk plan is for p = {plan.p}, pass input has p = {inp.p}")
+    done = check_done(done, plan)
+    total = OrderedSum(plan, done)
+    progress.pass_started(plan.n_chunks, already_done=len(done))
+    low = None
+    for k in range(plan.n_chunks):
+        if k in done:
+            continue
+        if low is None:
+            low = prepare_low_side(inp, plan)
+        part = chunk_partial(inp, plan, k, low)
+        if on_chunk is not None:
+            on_chunk(k, part)
+        total.add(k, part)
+        progress.chunks_done(1)
+    return total.acc
 
 
 class DaskExecutor(Executor):
@@ -160,11 +165,18 @@ class DaskExecutor(Executor):
         self.expected_threads = max(1, int(expected_threads))
         self.wait_for_workers_s = float(wait_for_workers_s)
         self.placement = Placement()
+        #: passes kept in the calling process because they were too small to ship
+        self.local_passes = 0
 
     def worker_threads(self) -> int:
         return int(sum(self.client.nthreads().values()))
 
     def _run(self, inp, plan, done, on_chunk):
+        if not worth_a_round_trip(plan):
+            # the growing contour's small steps: the arithmetic is cheaper than one
+            # scheduler round trip, so they never leave this process
+            self.local_passes += 1
+            return _run_here(inp, plan, done, on_chunk, self.progress)
         threads = self.worker_threads()
         if threads == 0:
             try:

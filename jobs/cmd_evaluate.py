@@ -62,7 +62,7 @@ def evaluate_command(
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     with compute.open_compute(settings) as ex:
-        passes = g.size + (g.size + 1 if gradient else 0) + (1 if fixed_point else 0)
+        passes = g.size * (2 if gradient else 1) + (1 if fixed_point else 0)  # one pass per step and direction
         ex.progress.announce_job(f"evaluate p = {g.size}", passes, plan.n_chunks)
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient, fixed_point_check=fixed_point)
     if as_json:
@@ -84,8 +84,9 @@ def report(result) -> str:
     lines.append(f"invariants = {res}")
     plan = result.plan
     lines.append(
-        f"work       = {result.passes} passes x {plan.n_chunks} chunks "
-        f"(2^{plan.n_high} x 2^{plan.n_low} paths), {result.wall_time:.2f} s"
+        f"work       = {result.passes} passes on growing contours, {result.path_visits:.3g} path visits "
+        f"forward; last step {plan.n_chunks} chunks (2^{plan.n_high} x 2^{plan.n_low} paths"
+        f"{', half by the flip' if plan.flip else ''}), {result.wall_time:.2f} s"
     )
     return "\n".join(lines)
 

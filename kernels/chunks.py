@@ -410,7 +410,20 @@ def chunk_partial(
     """
     if low is None:
         low = prepare_low_side(inp, plan)
-    return CHUNK_KERNELS[resolve_implementation(impl)](inp, plan, int(chunk), low)
+    return _scaled(CHUNK_KERNELS[resolve_implementation(impl)](inp, plan, int(chunk), low), plan)
+
+
+def _scaled(partial: np.ndarray, plan: ChunkPlan) -> np.ndarray:
+    """A chunk's partial as its share of the whole pass: doubled under the global flip.
+
+    w(-a) = w(a), and every moment the pass returns (a_j a_k, s(a), the link
+    derivatives) is even in a, so the unvisited mirrored half contributes the
+    same again.  Multiplying by 2 is exact, so results do not depend on where
+    it happens.
+    """
+    if plan.flip:
+        partial *= 2.0
+    return partial
 
 
 def pass_partials(inp: PassInput, plan: ChunkPlan, chunks, impl: str | None = None) -> list[np.ndarray]:
@@ -420,7 +433,7 @@ def pass_partials(inp: PassInput, plan: ChunkPlan, chunks, impl: str | None = No
     """
     kernel = CHUNK_KERNELS[resolve_implementation(impl)]
     low = prepare_low_side(inp, plan)
-    return [kernel(inp, plan, int(k), low) for k in chunks]
+    return [_scaled(kernel(inp, plan, int(k), low), plan) for k in chunks]
 
 
 def run_pass_inprocess(inp: PassInput, plan: ChunkPlan, progress=None, impl: str | None = None) -> np.ndarray:
@@ -430,7 +443,7 @@ def run_pass_inprocess(inp: PassInput, plan: ChunkPlan, progress=None, impl: str
     n = 2 * inp.p + 1
     acc = np.zeros((n + 1, n), dtype=complex)
     for k in range(plan.n_chunks):
-        acc += kernel(inp, plan, k, low)
+        acc += _scaled(kernel(inp, plan, k, low), plan)
         if progress is not None:
             progress(1)
     return acc

@@ -3,7 +3,13 @@
 A path a = (aH, aL) is split into h "high" contour sites (positions 0..h-1)
 and l = 2p+1-h "low" sites (positions h..2p).  A chunk is a contiguous block
 of ``rows_per_chunk`` high patterns; within a chunk every high pattern meets
-all 2^l low patterns.  Work per chunk is ~rows * 2^l complex multiply-adds,
+all 2^l low patterns.
+
+Global flip (``flip=True``, the default of :func:`plan_chunks`): the path
+weight and every moment a pass returns are even under a -> -a, so only the
+high patterns whose first site is +1 (pattern index below 2^(h-1)) are
+enumerated and each chunk's partial is doubled (exact: a power of two).  The
+chunk count halves and each chunk is still a whole contribution of its own.  Work per chunk is ~rows * 2^l complex multiply-adds,
 memory ~ MATRICES_PER_CHUNK * rows * 2^l * 16 bytes plus a few low-side
 vectors of 2^l entries.
 
@@ -21,6 +27,7 @@ __all__ = [
     "DEFAULT_MEMORY_BUDGET",
     "estimate_chunk_bytes",
     "evaluation_path_visits",
+    "step_plans",
 ]
 
 #: default memory budget for one chunk task, bytes (fits a laptop worker)
@@ -57,11 +64,18 @@ def _default_impl(impl: str | None) -> str:
 
 @dataclass(frozen=True)
 class ChunkPlan:
-    """How one pass is split: ``n_high`` high sites, blocks of ``rows_per_chunk`` rows."""
+    """How one pass is split: ``n_high`` high sites, blocks of ``rows_per_chunk`` rows.
+
+    ``p`` is the depth of the contour the pass runs on (2p+1 sites); in the
+    growing-contour iteration that is the step m, not the depth of the
+    evaluation.  ``flip``: only half of the high patterns are enumerated
+    (module docstring).
+    """
 
     p: int
     n_high: int
     rows_per_chunk: int
+    flip: bool = False
 
     def __post_init__(self) -> None:
         n = 2 * self.p + 1
@@ -70,10 +84,17 @@ class ChunkPlan:
         if not 1 <= self.n_high <= n - 1:
             raise ValueError(f"n_high must be in 1..{n - 1} for p = {self.p}, got {self.n_high}")
         r = self.rows_per_chunk
-        if r < 1 or r & (r - 1) or r > 2**self.n_high:
+        top = 2 ** self.n_rows_bits
+        if r < 1 or r & (r - 1) or r > top:
             raise ValueError(
-                f"rows_per_chunk must be a power of two <= 2^n_high = {2 ** self.n_high}, got {r}"
+                f"rows_per_chunk must be a power of two <= {top} "
+                f"(2^n_high{' / 2 with the flip' if self.flip else ''}), got {r}"
             )
+
+    @property
+    def n_rows_bits(self) -> int:
+        """log2 of the number of high patterns enumerated (n_high, one less with the flip)."""
+        return self.n_high - 1 if self.flip else self.n_high
 
     @property
     def n_sites(self) -> int:
@@ -85,11 +106,22 @@ class ChunkPlan:
 
     @property
     def n_chunks(self) -> int:
-        return 2**self.n_high // self.rows_per_chunk
+        return 2**self.n_rows_bits // self.rows_per_chunk
 
     @property
     def n_paths(self) -> int:
+        """Paths of the contour, 2^(2p+1)."""
         return 2**self.n_sites
+
+    @property
+    def path_visits(self) -> int:
+        """Paths the pass actually enumerates (half of them with the flip)."""
+        return self.n_paths >> 1 if self.flip else self.n_paths
+
+    @property
+    def partial_scale(self) -> float:
+        """Factor on every chunk partial: 2 with the flip (the mirrored half), else 1."""
+        return 2.0 if self.flip else 1.0
 
     def rows(self, chunk: int) -> tuple[int, int]:
         """Half-open range [start, stop) of high-pattern indices in ``chunk``."""
@@ -106,7 +138,8 @@ class ChunkPlan:
 
     @classmethod
     def from_json(cls, data: dict) -> "ChunkPlan":
-        return cls(int(data["p"]), int(data["n_high"]), int(data["rows_per_chunk"]))
+        """Inverse of :meth:`to_json`; a plan written before the flip existed has none."""
+        return cls(int(data["p"]), int(data["n_high"]), int(data["rows_per_chunk"]), bool(data.get("flip", False)))
 
 
 def estimate_chunk_bytes(n_low: int, rows: int, impl: str | None = None) -> int:
@@ -132,6 +165,7 @@ def plan_chunks(
     min_rows: int = 16,
     max_low: int = 20,
     impl: str | None = None,
+    flip: bool = True,
 ) -> ChunkPlan:
     """Pick the high/low split and chunk size for depth ``p`` within ``memory_budget`` bytes.
 
@@ -142,7 +176,7 @@ def plan_chunks(
     as the budget allows while a chunk keeps at least ``min_rows`` rows.  In
     both, never more than ``max_low`` low sites.  Explicit ``n_high`` /
     ``rows_per_chunk`` override the choice (tests use the smallest and largest
-    plans).
+    plans).  ``flip`` (default) enumerates half of the high patterns.
     """
     n = 2 * p + 1
     if p < 1:
@@ -160,11 +194,11 @@ def plan_chunks(
             n_high = n - n_low
         n_low = n - n_high
         if rows_per_chunk is None:
-            rows = 2**n_high
+            rows = 2 ** (n_high - flip)
             while rows > 1 and not fits(n_low, rows):
                 rows //= 2
             rows_per_chunk = rows
-        return ChunkPlan(p, n_high, rows_per_chunk)
+        return ChunkPlan(p, n_high, rows_per_chunk, flip)
 
     if n_high is None:
         h = max(1, n - max_low, -(-n // 3))
@@ -174,11 +208,29 @@ def plan_chunks(
         n_high = h
     n_low = n - n_high
     if rows_per_chunk is None:
-        rows = min(2**n_high, BLOCKED_ROWS_TARGET)
+        rows = min(2 ** (n_high - flip), BLOCKED_ROWS_TARGET)
         while rows > 1 and not fits(n_low, rows):
             rows //= 2
         rows_per_chunk = rows
-    return ChunkPlan(p, n_high, rows_per_chunk)
+    return ChunkPlan(p, n_high, rows_per_chunk, flip)
+
+
+def step_plans(final: ChunkPlan, impl: str | None = None):
+    """Chunk plans of the steps m = 1..p of a growing-contour evaluation, as ``plan_for(m)``.
+
+    Step p (the full contour) uses ``final``; a smaller step m gets
+    :func:`plan_chunks` for depth m with ``final``'s flip, under a budget of
+    ``final``'s own per-chunk bytes, so no step needs more memory per chunk
+    than the last one.
+    """
+    budget = final.chunk_bytes(impl)
+
+    def plan_for(m: int) -> ChunkPlan:
+        if m == final.p:
+            return final
+        return plan_chunks(m, budget, impl=impl, flip=final.flip)
+
+    return plan_for
 
 
 def evaluation_path_visits(p: int, method: str = "growing") -> int:

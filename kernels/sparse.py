@@ -38,10 +38,20 @@ log1p loses the absolute precision of small arguments, which the power D-1
 would amplify by D).  This uses sum f H = 1, which is checked at every step
 (residual "sum_fH").
 
-Cost: O(p 4^p) time and O(4^p) memory for the value; the gradient (reverse
-mode through the transforms) stores one vector per step (or recomputes
-segments between checkpoints when a memory budget is given) and costs a
-small constant times one evaluation.
+Growing contour (default).  Causality: H_m is a function of the path at times
+|t| <= m only, and the sum over the leaves' paths in step m sees Gamma only at
+|t| <= m.  Summing the path variables at later times (unitarity of the mixer)
+forces a_{m+1} = a_{-(m+1)}, so step m is the same recursion on the contour of
+a depth-m problem (times 1..m, a merged middle site standing for +-(m+1),
+-m..-1; its chain is the depth-m f), and H_{m-1} is lifted to it unchanged
+(it does not depend on times +-m or the merged site).  The root uses the full
+depth-p contour.  The transforms of step m have 2^(2m+1) points, so one
+evaluation costs about (4/3 + root) full-size transforms' work instead of
+2p + 3 (``contour="full"`` keeps the old recursion as the baseline).
+
+Cost: O(4^p) time and memory for the value (O(p 4^p) on the full contour); the
+gradient (reverse mode through the transforms, step by step on the same
+contours) costs a small constant times one evaluation.
 
 Splitting: the transform of a vector viewed as a (2^h, 2^l) array is the
 row transform (over the low bits) followed by the column transform (over the
@@ -360,6 +370,7 @@ def evaluate_sparse(
     run_map: RunMap | None = None,
     n_high: int | None = None,
     memory_budget_bytes: int | None = None,
+    contour: str = "growing",
 ) -> SparseEvaluation:
     """Exact nu_p(D; gamma, beta) of Max-q-XORSAT on a D-regular hypertree, optionally with gradient.
 
@@ -373,13 +384,21 @@ def evaluate_sparse(
     run_map : executor of the transform chunks, ``run_map(func, blocks) -> list``; None
         (default) transforms whole vectors in-process
     n_high : high bits of the split layout (default n // 2) when ``run_map`` is given
-    memory_budget_bytes : with ``gradient``, bound on the per-step vectors kept for the
-        reverse sweep; steps between checkpoints are recomputed (default: keep all)
+    memory_budget_bytes : with ``gradient`` and ``contour="full"``, bound on the per-step
+        vectors kept for the reverse sweep; steps between checkpoints are recomputed
+        (default: keep all).  The growing contour keeps all steps: together they hold
+        about 4/3 of one full-size vector.
+    contour : "growing" (default: step m on the depth-m contour, transforms of
+        2^(2m+1) points) or "full" (every step on all 2^(2p+1) paths; the baseline)
     """
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)
     g, b = check_angles(gamma, beta)
     p = g.size
+    if contour == "growing":
+        return _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0)
+    if contour != "full":
+        raise ValueError(f"unknown contour {contour!r}; choose 'growing' or 'full'")
     n = n_sites(p)
     N = 1 << n
     T = _Transformer(N, run_map, n_high)
@@ -557,6 +576,260 @@ def _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, res
         block = 1 << (n - 1 - t)
         flipped = f.reshape(-1, block)[:, ::-1]
         beta_bar[link_beta_index(p, t)] += link_sign(p, t) * 1j * np.sum(fbar.reshape(-1, block) * flipped)
+    residuals["imag_gradient"] = float(max(np.max(np.abs(gamma_bar.imag)), np.max(np.abs(beta_bar.imag))))
+    return {"gamma": gamma_bar.real.copy(), "beta": beta_bar.real.copy()}
+
+
+#: transforms shorter than this run in the calling process even when a run_map is
+#: given (unless an explicit ``n_high`` asks for the split): a split transform costs
+#: two map round trips, more than the arithmetic of a vector of 2^20 points (about
+#: 10 ms in-process on the 2-core development machine)
+SPLIT_MIN_POINTS = 1 << 20
+
+
+class _Transformers:
+    """A :class:`_Transformer` per vector length (the growing contour's sizes); one call count."""
+
+    def __init__(self, run_map: RunMap | None, n_high: int | None):
+        self.run_map = run_map
+        self.n_high = n_high
+        self._by_size: dict[int, _Transformer] = {}
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        N = x.size
+        T = self._by_size.get(N)
+        if T is None:
+            n = N.bit_length() - 1
+            # an explicit layout asks for the split at every length it fits
+            wanted = N >= SPLIT_MIN_POINTS or (self.n_high is not None and self.n_high <= n)
+            run_map = self.run_map if wanted else None
+            high = self.n_high if self.n_high is not None and self.n_high <= n else None
+            T = self._by_size[N] = _Transformer(N, run_map, high)
+        return T(x)
+
+    @property
+    def count(self) -> int:
+        return sum(T.count for T in self._by_size.values())
+
+
+def _lift(H: np.ndarray | None, m: int) -> np.ndarray | float:
+    """H_{m-1} on the depth-(m-1) contour read on the depth-m contour (half vectors).
+
+    H_{m-1} does not depend on its merged middle site, nor (on the new contour)
+    on times +-m or the new merged site: those three new sites replace the old
+    middle one (its +1 half is read).  Both vectors are the halves with the
+    first site +1 (see :func:`_evaluate_growing`).  H_0 = 1.
+    """
+    if H is None:
+        return 1.0
+    lo, hi = 1 << (m - 2), 1 << (m - 1)
+    A = H.reshape(lo, 2, hi)[:, 0, :]
+    return np.broadcast_to(A[:, None, :], (lo, 8, hi)).reshape(-1)
+
+
+def _lift_adjoint(Hbar: np.ndarray, m: int) -> np.ndarray:
+    """Adjoint of :func:`_lift`: (2^(2m),) -> (2^(2m-2),), summing the replicated sites."""
+    lo, hi = 1 << (m - 2), 1 << (m - 1)
+    out = np.zeros((lo, 2, hi), dtype=Hbar.dtype)
+    out[:, 0, :] = Hbar.reshape(lo, 8, hi).sum(axis=1)
+    return out.reshape(-1)
+
+
+def _half_chain(m: int, beta) -> np.ndarray:
+    """f(a) of the depth-m contour for the paths with a_1 = +1, shape (2^(2m),) complex."""
+    from .contour import chain_weights, link_table
+
+    links = link_table(m, beta)
+    n = n_sites(m)
+    rest = chain_weights(links[1:], n - 1)  # sites 2..n, site 2 the MSB
+    half = rest.size // 2
+    out = np.empty_like(rest)
+    out[:half] = rest[:half] * (0.5 * links[0, 0])  # a_2 = +1 = a_1
+    out[half:] = rest[half:] * (0.5 * links[0, 1])
+    return out
+
+
+def _half_phase(gamma) -> np.ndarray:
+    """Gamma . c for the paths with c_1 = +1, shape (2^(2m),) float."""
+    Gam = gamma_vector(gamma)
+    out = np.array([Gam[-1], -Gam[-1]])
+    for k in range(Gam.size - 2, 0, -1):
+        out = np.concatenate([out + Gam[k], out - Gam[k]])
+    out += Gam[0]
+    return out
+
+
+def _site_sums_half(vec: np.ndarray, n: int) -> np.ndarray:
+    """sum_c vec(c) c_t over the half with c_1 = +1 (site 0 of the index is site 1)."""
+    out = np.empty(n, dtype=vec.dtype)
+    out[0] = vec.sum()
+    out[1:] = _site_sums(vec, n - 1)
+    return out
+
+
+def _flip_time0_half(vec: np.ndarray, p: int) -> None:
+    """vec(a) *= a_0 on a half vector (time 0 is site p: bit p from the LSB)."""
+    vec.reshape(1 << (p - 1), 2, 1 << p)[:, 1, :] *= -1
+
+
+def _beta_bar_from_f(fbar, f, m, beta_bar):
+    """beta_bar += d/db of sum fbar * f over the links of the depth-m contour (half vectors).
+
+    d f / d b_t (a) = sigma_t i f(a with the spins after link t flipped); flipping
+    them keeps the first site, so it stays inside the half.  No division.
+    """
+    n = n_sites(m)
+    for t in range(2 * m):
+        block = 1 << (n - 1 - t)
+        flipped = f.reshape(-1, block)[:, ::-1]
+        beta_bar[link_beta_index(m, t)] += link_sign(m, t) * 1j * np.sum(fbar.reshape(-1, block) * flipped)
+
+
+def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvaluation:
+    """The recursion on the growing contour with the global flip (module docstring).
+
+    Flip: f, K and every H_m are even under a -> -a (K = cos(phase/2) and the
+    XOR product of flipped paths is flipped), and the root's f H a_0 and
+    sin(phase/2) are both odd.  So every vector is kept as its half with the
+    first site +1 (2^(2m) points), and the transform of an even (or odd)
+    function is twice the half-length transform of its half, supported on the
+    wave vectors of even (odd) weight, which the half-length index enumerates
+    once each; the transform back of such a spectrum is the plain half-length
+    transform.  Sums over the spectrum are sums over the half index.
+    """
+    p = g.size
+    T = _Transformers(run_map, n_high)
+    dev_max = 0.0
+    Ls: list[np.ndarray] = []
+    H = None
+    for m in range(1, p + 1):
+        N = 1 << n_sites(m)
+        phase = _half_phase(g[:m])
+        Kh = -2.0 * np.sin(phase / 4.0) ** 2  # K - 1, exact form
+        del phase
+        T(Kh)
+        Kh *= 2.0
+        v = _half_chain(m, b[:m])
+        v *= _lift(H, m)
+        T(v)
+        v *= 2.0  # V_m (even-weight wave vectors)
+        dev = abs(v[0] - 1.0)
+        if not dev <= sum_fH_tolerance(m):
+            raise SparseIntegrityError(
+                f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} "
+                f"(allowed {sum_fH_tolerance(m):.1e})"
+            )
+        dev_max = max(dev_max, dev)
+        _ipow_inplace(v, q - 1)
+        v *= Kh
+        del Kh
+        T(v)
+        v /= N  # message - 1
+        L = complex_log1p(v, out=v)
+        if gradient:
+            Ls.append(L.copy())
+        L *= D - 1.0
+        H = np.exp(L, out=L)
+    N = 1 << n_sites(p)
+    f = _half_chain(p, b)
+    u = f * H
+    root_norm = abs(2.0 * u.sum() - 1.0)
+    if not root_norm <= sum_fH_tolerance(p):
+        raise SparseIntegrityError(
+            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p):.1e})"
+        )
+    dev_max = max(dev_max, root_norm)
+    if not gradient:
+        del H, f
+    _flip_time0_half(u, p)
+    U = T(u)
+    U *= 2.0
+    phase = _half_phase(g)
+    Sh = np.sin(phase / 2.0)
+    if not gradient:
+        del phase
+    T(Sh)
+    Sh *= 2.0
+    Y = _ipow(U, q)
+    corr = 1j * np.dot(Y, Sh) / N
+    del Y
+    nu_c = 0.5 + 0.5 * corr
+    residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
+    grad = None
+    if gradient:
+        grad = _backward_growing(q, D, g, b, f, phase, Sh, H, U, Ls, T, residuals)
+    return SparseEvaluation(
+        value=float(nu_c.real),
+        p=p,
+        q=q,
+        degree=D,
+        gamma=g,
+        beta=b,
+        residuals=residuals,
+        gradient=grad,
+        wall_time=time.perf_counter() - t0,
+        transforms=T.count,
+        correlator=float(corr.real),
+    )
+
+
+def _backward_growing(q, D, g, b, f_p, phase_p, Sh, H_p, U, Ls, T, residuals):
+    """Reverse sweep over the growing contours on half vectors (holomorphic adjoints)."""
+    p = g.size
+    gamma_bar = np.zeros(p, dtype=complex)
+    beta_bar = np.zeros(p, dtype=complex)
+
+    def add_phase_bar(phasebar, m):
+        n = n_sites(m)
+        Gam_bar = _site_sums_half(phasebar, n)
+        gamma_bar[:m] += Gam_bar[:m] - Gam_bar[n - 1 : m : -1]
+
+    # nu = 1/2 + (i / 2N) sum_k U^q Sh, U = 2 W(u), Sh = 2 W(sin(phase/2))
+    N = 1 << n_sites(p)
+    coef = 0.5j / N
+    Ubar = _ipow(U, q - 1)
+    Shbar = (coef * Ubar) * U
+    Ubar *= 2.0 * coef * q
+    Ubar *= Sh
+    ubar = T(Ubar)
+    _flip_time0_half(ubar, p)  # u = f H a0
+    _beta_bar_from_f(ubar * H_p, f_p, p, beta_bar)
+    Hbar = ubar * f_p
+    del ubar
+    T(Shbar)
+    Shbar *= 2.0
+    add_phase_bar(Shbar * (0.5 * np.cos(phase_p / 2.0)), p)
+    del Shbar
+    for m in range(p, 0, -1):
+        N = 1 << n_sites(m)
+        L_m = Ls[m - 1]
+        Hl = _lift(None if m == 1 else np.exp((D - 1.0) * Ls[m - 2]), m)
+        f = _half_chain(m, b[:m])
+        phase = _half_phase(g[:m])
+        Kh = -2.0 * np.sin(phase / 4.0) ** 2
+        T(Kh)
+        Kh *= 2.0
+        # H_m = exp((D-1) log1p(mm1)) -> mm1bar = Hbar (D-1) exp((D-2) L_m); mm1 = W(X)/N
+        Xbar = Hbar * ((D - 1.0) * np.exp((D - 2.0) * L_m))
+        del Hbar
+        T(Xbar)
+        Xbar /= N
+        V = T(f * Hl)
+        V *= 2.0
+        Vq2 = _ipow(V, q - 2)
+        Khbar = Xbar * (Vq2 * V)
+        Vbar = Xbar * Kh
+        Vbar *= 2.0 * (q - 1) * Vq2
+        del Vq2, V, Xbar, Kh
+        T(Khbar)  # K - 1 = 2 W(-2 sin^2(phase/4)): adjoint through the transform
+        Khbar *= 2.0
+        add_phase_bar(-Khbar * (0.5 * np.sin(phase / 2.0)), m)
+        del Khbar
+        vbar = T(Vbar)
+        _beta_bar_from_f(vbar * Hl, f, m, beta_bar)
+        if m > 1:
+            Hbar = _lift_adjoint(vbar * f, m)
+        del vbar
     residuals["imag_gradient"] = float(max(np.max(np.abs(gamma_bar.imag)), np.max(np.abs(beta_bar.imag))))
     return {"gamma": gamma_bar.real.copy(), "beta": beta_bar.real.copy()}
 

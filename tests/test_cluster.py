@@ -50,6 +50,7 @@ from leadline.kernels.contour import gamma_vector, initial_correlations
 from leadline.kernels.iteration import evaluate
 from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.plan import plan_chunks
+from leadline.cluster.settings import SHIP_MIN_VISITS_ENV, worth_a_round_trip
 
 VENV_BIN = Path(sys.executable).parent
 DASK = str(VENV_BIN / "dask")
@@ -133,6 +134,20 @@ def _reference_pass(p: int, n_high: int, seed: int = 0, backward: bool = True):
 
 
 # --------------------------------------------------------------------------- fixtures
+@pytest.fixture(scope="module", autouse=True)
+def ship_every_pass():
+    """These tests check where work runs with passes small enough to be fast, so every
+    pass is shipped to the workers (by default a pass below 2^25 path visits stays in the
+    calling process: test_small_passes_stay_in_the_calling_process)."""
+    old = os.environ.get(SHIP_MIN_VISITS_ENV)
+    os.environ[SHIP_MIN_VISITS_ENV] = "0"
+    yield
+    if old is None:
+        os.environ.pop(SHIP_MIN_VISITS_ENV, None)
+    else:
+        os.environ[SHIP_MIN_VISITS_ENV] = old
+
+
 @pytest.fixture(scope="module")
 def local1():
     ex = start_local_cluster(ComputeSettings(mode="local", workers=1))
@@ -278,7 +293,8 @@ def test_done_and_on_chunk_hook(where, request):
     for k in range(plan.n_chunks):
         full += partials[k]
     ex = InProcessExecutor() if where == "inprocess" else request.getfixturevalue("local2")
-    done = {k: partials[k] for k in (0, 3, 4, 5, 17, 31)}
+    assert plan.n_chunks == 16  # 2^5 high patterns, half of them with the flip, one row each
+    done = {k: partials[k] for k in (0, 3, 4, 5, 11, 15)}
     arrived = []
     got = ex.run_pass(inp, plan, done=done, on_chunk=lambda k, part: arrived.append((k, part)))
     assert sorted(k for k, _ in arrived) == sorted(set(range(plan.n_chunks)) - set(done))
@@ -321,9 +337,12 @@ def test_batches_cover_every_chunk_once():
     assert batch_chunks([5], 4) == [[5]]
 
 
-def test_auto_switch_point_and_small_work_stays_inprocess():
-    assert not worth_a_cluster(plan_chunks(13))
-    assert worth_a_cluster(plan_chunks(14))
+def test_auto_switch_point_and_small_work_stays_inprocess(monkeypatch):
+    monkeypatch.delenv(SHIP_MIN_VISITS_ENV)
+    # the growing contour's last pass visits 2^(2p) paths with the flip: p >= 15 starts a cluster
+    assert not worth_a_cluster(plan_chunks(14))
+    assert worth_a_cluster(plan_chunks(15))
+    assert not worth_a_round_trip(plan_chunks(12)) and worth_a_round_trip(plan_chunks(14))
     with open_executor(ComputeSettings(mode="auto", quiet=True)) as ex:
         ev = evaluate(parse_mixture("2:0.5"), [0.5], [math.pi / 8], run_pass=ex.run_pass)
         assert ex.describe()["executor"] == "auto (inprocess)"
@@ -448,3 +467,13 @@ def test_cli_batch_mode_refuses_without_submit_command(tmp_path):
         capture_output=True, text=True, timeout=60,
     )
     assert out.returncode == 2 and "jobs must be an integer" in out.stderr
+
+
+def test_small_passes_stay_in_the_calling_process(local2, reference_p5, monkeypatch):
+    """With the default threshold the small steps of a growing-contour evaluation never
+    pay a round trip; the value and gradient are the same as on the workers."""
+    monkeypatch.delenv(SHIP_MIN_VISITS_ENV)
+    before = local2.local_passes
+    ev = evaluate(MIXED, *P5_ANGLES, plan=P5_PLAN, run_pass=local2.run_pass, gradient=True)
+    assert local2.local_passes - before == 10  # p = 5: 5 forward + 5 adjoint passes
+    _assert_same(ev, reference_p5)

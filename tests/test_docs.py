@@ -19,9 +19,6 @@ from . import doc_examples as D
 PAGES = D.page_paths()
 #: pages other branches add (linked from the README before they land)
 PENDING_PAGES = {"docs/transfer.md", "docs/extrapolation.md", "docs/bath.md"}
-#: files being rewritten on another branch, which drops their last such pointer
-#: (kernels/iteration.py: the `residuals` line of Evaluation's docstring); remove on merge
-POINTER_PENDING = {"kernels/iteration.py"}
 
 
 def _skipped_blocks():
@@ -122,7 +119,7 @@ def test_no_pointer_outside_the_repository():
     for path in D.ROOT.rglob("*"):
         if path.suffix not in {".py", ".md", ".toml"} or ".venv" in path.parts or not path.is_file():
             continue
-        if path.resolve() == Path(__file__).resolve() or str(path.relative_to(D.ROOT)) in POINTER_PENDING:
+        if path.resolve() == Path(__file__).resolve():
             continue
         for n, line in enumerate(path.read_text(errors="replace").splitlines(), 1):
             if patterns.search(line):

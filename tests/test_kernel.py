@@ -144,24 +144,30 @@ def test_invariants_property(p, data, qs):
         np.testing.assert_allclose(G[np.ix_(rev, rev)], np.conj(G), atol=1e-12)
 
 
-def test_lost_chunk_is_detected():
+@pytest.mark.parametrize("flip", [False, True])
+@pytest.mark.parametrize("contour", ["growing", "full"])
+def test_lost_chunk_is_detected(flip, contour):
+    """Invariant 1 (sum_a w = 1; with the flip 2 sum_half w = 1) catches a lost or doubled chunk."""
     mix = parse_mixture("2:0.5,3:0.5")
     p = 3
-    plan = ChunkPlan(p, 3, 2)
+    plan = ChunkPlan(p, 3, 2, flip)
+    assert plan.n_chunks == (2 if flip else 4)
 
     def lossy(inp, plan):
+        if inp.p < p:  # the small steps of the growing contour have one chunk
+            return chunks.run_pass_inprocess(inp, plan)
         partials = chunks.pass_partials(inp, plan, range(1, plan.n_chunks))  # chunk 0 lost
         return np.sum(partials, axis=0)
 
     with pytest.raises(PassIntegrityError, match="sum of path weights"):
-        evaluate(mix, [0.3, 0.4, 0.5], [0.5, 0.4, 0.3], plan=plan, run_pass=lossy)
+        evaluate(mix, [0.3, 0.4, 0.5], [0.5, 0.4, 0.3], plan=plan, run_pass=lossy, contour=contour)
 
     def doubled(inp, plan):
         partials = chunks.pass_partials(inp, plan, [0] + list(range(plan.n_chunks)))
         return np.sum(partials, axis=0)
 
     with pytest.raises(PassIntegrityError):
-        evaluate(mix, [0.3, 0.4, 0.5], [0.5, 0.4, 0.3], plan=plan, run_pass=doubled)
+        evaluate(mix, [0.3, 0.4, 0.5], [0.5, 0.4, 0.3], plan=plan, run_pass=doubled, contour=contour)
 
 
 def test_partials_sum_in_any_order():
@@ -182,7 +188,7 @@ def test_planner_respects_budget():
         for budget in (16 * 2**20, 256 * 2**20, 1024 * 2**20):
             plan = plan_chunks(p, budget)
             assert plan.chunk_bytes() <= budget
-            assert plan.n_chunks * plan.rows_per_chunk == 2**plan.n_high
+            assert plan.n_chunks * plan.rows_per_chunk == 2 ** (plan.n_high - plan.flip)
     # p = 12 must fit under 1 GB with the default budget
     assert plan_chunks(12).chunk_bytes() < 2**30
 

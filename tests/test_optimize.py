@@ -30,7 +30,10 @@ from leadline.kernels.optimize import (
 from leadline.kernels.plan import ChunkPlan
 
 # Quantum 6, 759 (2022), Table 1 (SK model, i<j pairs, xi = x^2/2)
-SK_TABLE_1 = {1: 0.3033, 2: 0.4075, 3: 0.4726, 4: 0.5157, 5: 0.5476, 6: 0.5721, 7: 0.5915, 8: 0.6073}
+SK_TABLE_1 = {
+    1: 0.3033, 2: 0.4075, 3: 0.4726, 4: 0.5157, 5: 0.5476, 6: 0.5721, 7: 0.5915, 8: 0.6073,
+    9: 0.6203, 10: 0.6314, 11: 0.6408,
+}
 
 
 # ----------------------------------------------------------------------------- gradient
@@ -68,10 +71,13 @@ def test_gradient_matches_finite_differences(p, spec):
 
 
 def test_gradient_costs_a_constant_number_of_passes():
-    # p forward + (p+1) adjoint passes, never 2p+1 evaluations
+    # growing contour: p forward + p adjoint passes (G_0 = 1 needs none); full contour:
+    # p forward + (p+1) adjoint passes; never 2p+1 evaluations
     p = 5
     ev = evaluate(parse_mixture("2:0.5"), np.full(p, 0.3), np.full(p, 0.2), gradient=True)
-    assert ev.passes == 2 * p + 1
+    assert ev.passes == 2 * p
+    full = evaluate(parse_mixture("2:0.5"), np.full(p, 0.3), np.full(p, 0.2), gradient=True, contour="full")
+    assert full.passes == 2 * p + 1
 
 
 # ----------------------------------------------------------------------------- symmetries
@@ -165,10 +171,10 @@ def test_sk_optimized_values_table1(sk_ladder, p):
 
 @pytest.mark.slow
 def test_sk_optimized_values_table1_deeper(sk_ladder):
-    # same table, p = 6..8, warm-started from p = 5 with no extra restarts
+    # same table, p = 6..11, warm-started from p = 5 with no extra restarts
     mix = parse_mixture("2:0.5")
     r = sk_ladder[5]
-    for p in (6, 7, 8):
+    for p in range(6, 12):
         r = optimize_depth(mix, p, previous=(r.gamma, r.beta), previous_value=r.value, restarts=0)
         assert round(r.value, 4) == SK_TABLE_1[p], p
 

@@ -211,7 +211,7 @@ def test_split_run_map_and_lost_chunk():
         return out
 
     with pytest.raises(SparseIntegrityError):
-        evaluate_sparse(3, 4, g, b, run_map=losing)
+        evaluate_sparse(3, 4, g, b, run_map=losing, n_high=3)
 
 
 @pytest.mark.slow
