@@ -45,20 +45,21 @@ DEFAULT_CONNECT_TIMEOUT_S = 10.0
 #   - starting a 2-worker LocalCluster: 1.3-2.3 s, once per run;
 #   - per-pass overhead of the LocalCluster (p = 6, where the work is ~1.4 ms):
 #     17-24 ms per pass (submit, transfer, ordered reduction);
-#   - in-process, one forward pass of 2^(2p+1) paths: 75 ms (p = 12, 2 chunks),
-#     ~0.2 s (p = 13, 2 chunks), 0.6 s (p = 14, 4 chunks), 2.5 s (p = 15, 16 chunks).
-# On w free cores a pass of T seconds saves about T (1 - 1/min(w, chunks)) - overhead:
-# at p = 14 that is ~0.3 s per pass, so one evaluation (14 passes) repays the
-# start-up; at p <= 13 the default plan has only 2 chunks and a value-only
-# evaluation saves less than the start-up.  Hence the LocalCluster starts at the
-# first pass with >= 2^29 paths (p >= 14) and >= 2 chunks.
+#   - the kernel visits about 1.4e9 paths per second and core.
+# With the growing contour and the flip one evaluation visits (4/3) 4^p paths,
+# almost all in its last two steps: ~0.26 s at p = 14, ~1 s at p = 15, ~4 s at
+# p = 16 on one core.  On w free cores the saving is about T (1 - 1/w) minus the
+# per-pass overhead, so a run whose largest pass visits >= 2^30 paths (step 15
+# with the flip) repays the start-up within its first evaluations; smaller runs
+# stay in-process.  The LocalCluster starts at the first such pass with >= 2
+# chunks.
 # The saving needs FREE cores: with the machine's other work at a load average of
 # ~5.5 on 2 vCPUs, two concurrent chunk computations each ran 1.5-2x slower and
-# the 2-worker cluster lost to in-process at every depth measured (ratio 0.54 at
-# p = 13, 0.63 at p = 14, 0.76 at p = 15).  So auto also requires >= 2 idle
-# cores (cores minus the 1-minute load average, counting this process as idle)
-# and gives the LocalCluster only that many workers unless --workers says otherwise.
-AUTO_MIN_PATHS_PER_PASS = 2**29
+# the 2-worker cluster lost to in-process at every depth measured.  So auto also
+# requires >= 2 idle cores (cores minus the 1-minute load average, counting this
+# process as idle) and gives the LocalCluster only that many workers unless
+# --workers says otherwise.
+AUTO_MIN_PATHS_PER_PASS = 2**30
 #: and only when the plan can keep at least two workers busy
 AUTO_MIN_CHUNKS = 2
 
@@ -95,9 +96,35 @@ def worker_memory_limit(memory_budget: int, threads_per_worker: int) -> int:
     return int(WORKER_BASE_MEMORY + product_cache_bytes() + threads_per_worker * memory_budget * CHUNK_MEMORY_HEADROOM)
 
 
+#: A pass that visits fewer paths than this runs in the calling process even when a
+#: Dask cluster is in use.  Measured on the development machine (2 vCPUs): one
+#: LocalCluster round trip costs 17-24 ms per pass (submit, transfer, ordered
+#: reduction), while the kernel visits about 1.4e9 paths per second and core, so a
+#: pass of 2^25 visits (~24 ms, step 13 of the growing contour with the flip) is
+#: where shipping starts to pay on two workers.  The small steps of the growing
+#: contour (all but the last two or three of an evaluation) stay local.
+MIN_VISITS_PER_SHIPPED_PASS = 2**25
+
+
+#: development switch: another threshold (0 ships every pass; the cluster tests use it
+#: to exercise the workers with passes small enough to be fast)
+SHIP_MIN_VISITS_ENV = "LEADLINE_SHIP_MIN_VISITS"
+
+
+def worth_a_round_trip(plan: ChunkPlan) -> bool:
+    """Is a pass of this plan large enough to send to Dask workers at all?"""
+    try:
+        threshold = int(os.environ.get(SHIP_MIN_VISITS_ENV, MIN_VISITS_PER_SHIPPED_PASS))
+    except ValueError:
+        threshold = MIN_VISITS_PER_SHIPPED_PASS
+    if threshold <= 0:
+        return True
+    return plan.path_visits >= threshold and plan.n_chunks >= AUTO_MIN_CHUNKS
+
+
 def worth_a_cluster(plan: ChunkPlan) -> bool:
     """Auto mode: is a pass of this plan large enough to repay starting a LocalCluster?"""
-    return plan.n_paths >= AUTO_MIN_PATHS_PER_PASS and plan.n_chunks >= AUTO_MIN_CHUNKS
+    return plan.path_visits >= AUTO_MIN_PATHS_PER_PASS and plan.n_chunks >= AUTO_MIN_CHUNKS
 
 
 def idle_cores() -> int:
