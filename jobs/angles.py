@@ -56,13 +56,49 @@ class AngleSet:
         }
 
 
+def _is_number(x) -> bool:
+    return isinstance(x, (int, float)) and not isinstance(x, bool)
+
+
+def _angle_list(data: dict, key: str, path) -> np.ndarray:
+    values = data.get(key)
+    if not isinstance(values, list):
+        raise InputError(f"angle file {path}: \"{key}\" must be a list of numbers (radians), got {json.dumps(values)}")
+    for x in values:
+        if not _is_number(x):
+            raise InputError(f"angle file {path}: \"{key}\" must hold numbers (radians), found {json.dumps(x)}")
+        if not math.isfinite(x):
+            raise InputError(f"angle file {path}: angles must be finite, found {x!r} in \"{key}\"")
+    return np.array(values, dtype=float)
+
+
+def _ensemble(data: dict, path) -> dict | None:
+    ens = data.get("ensemble")
+    if ens is None:
+        return None
+    if not isinstance(ens, dict) or ens.get("kind") != "sparse":
+        raise InputError(f"angle file {path}: \"ensemble\" must be null or {{\"kind\": \"sparse\", \"q\": Q, \"degree\": D}}")
+    q, d = ens.get("q"), ens.get("degree")
+    if not (isinstance(q, int) and not isinstance(q, bool) and q >= 2):
+        raise InputError(f"angle file {path}: ensemble \"q\" must be an integer >= 2, got {json.dumps(q)}")
+    if not (_is_number(d) and math.isfinite(d) and float(d).is_integer() and d >= 2):
+        raise InputError(f"angle file {path}: ensemble \"degree\" must be an integer >= 2, got {json.dumps(d)}")
+    return {"kind": "sparse", "q": int(q), "degree": int(d)}
+
+
 def read_angles(path: str | os.PathLike) -> AngleSet:
-    """Read and validate an angle file; raises InputError with the reason."""
+    """Read and validate an angle file strictly (the layout above); raises InputError with the reason."""
+    if not str(path).strip():
+        raise InputError("--angles needs a file name (an angle file written by `leadline optimize --output`)")
     path = Path(path)
+    if path.is_dir():
+        raise InputError(f"angle file {path} is a folder; give the JSON file written by `leadline optimize --output`")
     try:
-        data = json.loads(path.read_text())
+        data = json.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
         raise InputError(f"angle file {path} does not exist") from None
+    except UnicodeDecodeError:
+        raise InputError(f"angle file {path} is not UTF-8 text (an angle file is JSON)") from None
     except (OSError, json.JSONDecodeError) as exc:
         raise InputError(f"angle file {path} is not readable JSON: {exc}") from None
     if not isinstance(data, dict) or data.get("format") != FORMAT:
@@ -72,20 +108,26 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
     unknown = set(data) - _KEYS
     if unknown:
         raise InputError(f"angle file {path} has unknown keys: {', '.join(sorted(unknown))}")
-    try:
-        g = np.asarray(data["gamma"], dtype=float).reshape(-1)
-        b = np.asarray(data["beta"], dtype=float).reshape(-1)
-        p = int(data["p"])
-    except (KeyError, TypeError, ValueError) as exc:
-        raise InputError(f"angle file {path}: needs numeric p, gamma and beta ({exc})") from None
+    missing = [k for k in ("p", "gamma", "beta") if k not in data]
+    if missing:
+        raise InputError(f"angle file {path}: needs {', '.join(missing)} (the depth p and p angles each)")
+    p = data["p"]
+    if not (isinstance(p, int) and not isinstance(p, bool)) or p < 1:
+        raise InputError(f"angle file {path}: \"p\" must be an integer >= 1, got {json.dumps(p)}")
+    g = _angle_list(data, "gamma", path)
+    b = _angle_list(data, "beta", path)
     if g.size != p or b.size != p:
         raise InputError(f"angle file {path}: p = {p} but gamma has {g.size} and beta {b.size} angles")
-    if not (np.all(np.isfinite(g)) and np.all(np.isfinite(b))):
-        raise InputError(f"angle file {path}: angles must be finite")
+    xi = data.get("xi")
+    if xi is not None and not isinstance(xi, str):
+        raise InputError(f"angle file {path}: \"xi\" must be a mixture such as \"2:0.5\" or null, got {json.dumps(xi)}")
+    ensemble = _ensemble(data, path)
+    if xi is not None and ensemble is not None:
+        raise InputError(f"angle file {path}: gives both \"xi\" and a sparse \"ensemble\"; an angle set belongs to one")
     value = data.get("value")
-    if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value)):
+    if value is not None and not (_is_number(value) and math.isfinite(value)):
         raise InputError(f"angle file {path}: value must be a finite number or null")
-    return AngleSet(p=p, gamma=g, beta=b, xi=data.get("xi"), value=value, ensemble=data.get("ensemble"))
+    return AngleSet(p=p, gamma=g, beta=b, xi=xi, value=value, ensemble=ensemble)
 
 
 def write_angles(path: str | os.PathLike, angles: AngleSet) -> None:
@@ -103,13 +145,21 @@ def write_angles(path: str | os.PathLike, angles: AngleSet) -> None:
         raise
 
 
-def check_writable(path: str | os.PathLike) -> None:
-    """Raise InputError now if ``path`` could not be written later."""
-    parent = Path(path).resolve().parent
-    if not parent.is_dir():
-        raise InputError(f"cannot write {path}: folder {parent} does not exist")
-    if not os.access(parent, os.W_OK):
-        raise InputError(f"cannot write {path}: folder {parent} is not writable")
+def check_writable(path: str | os.PathLike, option: str = "--output") -> None:
+    """Raise InputError now if ``path`` could not be written later (a folder, a missing folder, ...)."""
+    from .paths import check_output_file
+
+    check_output_file(path, option=option)
+
+
+def convergence_warning(result) -> str | None:
+    """One stderr line when the optimizer stopped away from a stationary point, else None."""
+    if result.converged:
+        return None
+    return (
+        f"leadline: warning: the optimizer did not converge (largest gradient component "
+        f"{result.gradient_norm:.1e}; {result.message}); the angles are the best found, not an optimum"
+    )
 
 
 def optimum_report(header: list[str], result, evaluations: str, ladder: list[dict], output) -> str:

@@ -290,7 +290,7 @@ def optimize(
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = _start(angles, depth)
     budget = _budget(memory_mb)
     with _executor(executor, scheduler, workers, memory_mb) as ex:
@@ -358,7 +358,7 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
     from .sparse_cli import ensemble_json
 
     q, D = _sparse_problem(q, degree)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = _start(angles, depth)
     return sparse_ladder(kernel, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter,
                          ensemble=ensemble_json(q, D))

@@ -41,6 +41,7 @@ COMMAND_MODULES = [
     "leadline.jobs.cmd_table",
     "leadline.jobs.cmd_plot",
     "leadline.jobs.cmd_sweep",
+    "leadline.jobs.cmd_transfer",
 ]
 
 

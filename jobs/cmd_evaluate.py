@@ -12,8 +12,9 @@ from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
 from .angles import read_angles
+from .cost import COST_NOTE_SECONDS, check_cost
 from .errors import InputError
-from .parsing import angle_pair, mixture_arg
+from .parsing import angle_pair, check_representable, file_mixture, mixture_arg
 
 
 def evaluate_command(
@@ -44,23 +45,32 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    if sparse_cli.sparse_requested(xorsat, degree):
-        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-        return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
-                                          gradient=gradient, as_json=as_json, settings=settings)
+    if not memory_mb > 0 or memory_mb == float("inf"):
+        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    angle_set = None
     if angles is not None:
         if gamma is not None or beta is not None:
             raise InputError("give either --angles FILE or --gamma/--beta, not both")
         angle_set = read_angles(angles)
-        mix = mixture_arg(xi if xi is not None else angle_set.xi)
+        if angle_set.ensemble is not None and xi is None and not sparse_cli.sparse_requested(xorsat, degree):
+            # a file written by `optimize --xorsat`: evaluate on its own sparse ensemble
+            xorsat, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
+    if sparse_cli.sparse_requested(xorsat, degree):
+        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+        return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
+                                          gradient=gradient, as_json=as_json, settings=settings)
+    if angle_set is not None:
+        mix = file_mixture(xi, angle_set, angles)
         g, b = angle_set.gamma, angle_set.beta
     else:
         mix = mixture_arg(xi)
         g, b = angle_pair(gamma, beta)
-    if not memory_mb > 0:
-        raise InputError("--memory-mb must be positive")
+    check_representable(mix, g, "--angles" if angle_set is not None else "--gamma")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")
+    if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
+        typer.echo(f"leadline: {cost.line()}", err=True)
     with compute.open_compute(settings) as ex:
         passes = g.size * (2 if gradient else 1) + (1 if fixed_point else 0)  # one pass per step and direction
         ex.progress.announce_job(f"evaluate p = {g.size}", passes, plan.n_chunks)

@@ -11,9 +11,11 @@ import typer
 
 from leadline.kernels.finite_size import estimate_energy_density
 from leadline.kernels.iteration import evaluate as evaluate_kernel
+from leadline.kernels.plan import plan_chunks
 
+from .cost import check_cost
 from .errors import InputError
-from .parsing import angle_pair, mixture_arg
+from .parsing import angle_pair, check_representable, mixture_arg
 
 MIN_SPINS = 2
 MAX_SPINS = 22  # 2^22 complex128 = 64 MiB per state; larger n is hours of work
@@ -69,6 +71,8 @@ def finite_size_command(
     """
     mix = mixture_arg(xi)
     g, b = angle_pair(gamma, beta)
+    check_representable(mix, g)  # the exact infinite-size column needs the passes in range
+    check_cost(g.size, plan_chunks(g.size), None, gradient=False, option="--gamma/--beta")
     sizes = spins_arg(spins)
     if not 2 <= instances <= MAX_INSTANCES:
         raise InputError(f"--instances must be between 2 and {MAX_INSTANCES}, got {instances}")

@@ -7,13 +7,14 @@ from typing import Optional
 
 import typer
 
-from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET
+from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
+from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
 from .api import optimize_ladder
-from .angles import AngleSet, check_writable, optimum_report, write_angles
+from .cost import COST_NOTE_SECONDS, check_cost
 from .errors import InputError
-from .parsing import check_optimizer_options, mixture_arg, warm_start
+from .parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 
 
 def optimize_command(
@@ -51,18 +52,26 @@ def optimize_command(
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
+    if not (memory_mb > 0 and memory_mb < float("inf")):
+        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    initial = warm_start(start, depth)
+    if initial is not None and initial.ensemble is not None and xi is None and not sparse_cli.sparse_requested(xorsat, degree):
+        # a file written by `optimize --xorsat`: continue on its own sparse ensemble
+        xorsat, degree = initial.ensemble["q"], str(initial.ensemble["degree"])
     if sparse_cli.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse_cli.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
                                           maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings)
-    mix = mixture_arg(xi)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
-    if not memory_mb > 0:
-        raise InputError("--memory-mb must be positive")
-    initial = warm_start(start, depth)
-    if output:
+    mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
+    if initial is not None:
+        check_representable(mix, initial.gamma, "--angles")
+    if output is not None:
         check_writable(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
+    if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
+        typer.echo(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", err=True)
 
     with compute.open_compute(settings) as ex:
         run = optimize_ladder(
@@ -79,8 +88,11 @@ def optimize_command(
         )
     result, ladder, first, total_evals, wall = run.result, run.ladder, run.first_depth, run.evaluations_total, run.wall_time
 
-    if output:
+    if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
+    warning = convergence_warning(result)
+    if warning:
+        typer.echo(warning, err=True)
     if as_json:
         typer.echo(json.dumps(run.to_json()))
         return

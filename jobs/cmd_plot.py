@@ -7,6 +7,7 @@ from typing import List, Optional
 import typer
 
 from .errors import InputError
+from .parsing import refuse_sparse_ground_states
 from .report import angle_plot_path, build_report, check_output_path, load_study, parse_ground_state_options, write_plots
 
 
@@ -19,9 +20,11 @@ def plot_command(
 ) -> None:
     """Two figures of a study: V_p* vs 1/p per ensemble, and the optimal angle schedules.
 
-    FILE.png: stored V_p* (markers), the representative polynomial fit in 1/p,
-    the extrapolated V_inf +- spread at 1/p = 0 (an estimate, not a bound), and
-    reference lines GS (dashed) and ALG (dotted) where known.
+    FILE.png: stored V_p* (markers), each extrapolation family's curve out to
+    1/p = 0 (one line style per family), the held-out depths of the back-test
+    (rings) with the back-test predictions (x), the headline V_inf and its range
+    at 1/p = 0 (an estimate, not a bound), and reference lines GS (dashed) and
+    ALG (dotted) where known.
     FILE-angles.png: gamma_t and beta_t against (t - 1/2)/p, one curve per depth.
 
     Example: leadline plot study.zarr --output study.png
@@ -31,7 +34,12 @@ def plot_command(
     out_path = check_output_path(output, suffix=".png")
     check_output_path(angle_plot_path(out_path), suffix=".png")
     study = load_study(store)
+    if not any(study.depths(label) for label in study.ensembles()):
+        raise InputError(
+            f"nothing to plot yet: no depth of {store} has finished (`leadline status {store}` shows the progress)"
+        )
     overrides = parse_ground_state_options(ground_state, study.ensembles())
+    refuse_sparse_ground_states(overrides, study)
     paths = write_plots(build_report(study, ground_states=overrides), out_path)
     for path in paths:
         typer.echo(f"wrote {path}")

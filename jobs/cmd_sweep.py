@@ -24,15 +24,26 @@ from .spec import check_new_store, load_spec, spec_from_json
 
 
 def _store_errors(func):
-    """Turn store problems (locked, wrong schema, not a store) into one-line input errors."""
+    """Turn store problems (locked, wrong schema, not a store) into one-line input errors,
+    and a failed integrity check of a pass into one error line (exit 1)."""
     import functools
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
+        from leadline.kernels.iteration import PassIntegrityError
+        from leadline.kernels.sparse import SparseIntegrityError
+
         try:
             return func(*args, **kwargs)
         except StoreError as exc:
             raise InputError(str(exc)) from None
+        except (PassIntegrityError, SparseIntegrityError) as exc:
+            import click
+
+            # one line, exit 1: the finished chunks and depths are kept; the depth stays "running"
+            raise click.ClickException(
+                f"{exc}; the store keeps every finished depth and chunk, and `leadline resume` recomputes the rest"
+            ) from None
 
     return wrapper
 

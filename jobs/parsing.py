@@ -10,7 +10,16 @@ from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
 from .errors import InputError
 
-__all__ = ["mixture_arg", "angles_arg", "angle_pair", "check_optimizer_options", "warm_start"]
+__all__ = [
+    "mixture_arg",
+    "angles_arg",
+    "angle_pair",
+    "check_optimizer_options",
+    "warm_start",
+    "check_representable",
+    "file_mixture",
+    "refuse_sparse_ground_states",
+]
 
 
 def mixture_arg(spec: str | None, option: str = "--xi") -> Mixture:
@@ -47,7 +56,12 @@ def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndar
     return g, b
 
 
-def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float, maxiter: int) -> int:
+#: largest --gtol accepted: a gradient max-norm above it is not a stationary point of V_p
+#: (values are O(1); common practice for double-precision quasi-Newton runs is 1e-5..1e-8)
+MAX_GTOL = 1e-4
+
+
+def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float, maxiter: int, seed: int = 0) -> int:
     """Validate the options shared by dense and sparse `optimize`; returns the depth."""
     if depth is None:
         raise InputError("--depth is required (the depth p to optimize, >= 1)")
@@ -55,10 +69,15 @@ def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float
         raise InputError(f"--depth must be >= 1, got {depth}")
     if restarts is not None and restarts < 0:
         raise InputError("--restarts must be >= 0")
-    if not gtol > 0:
-        raise InputError("--gtol must be positive")
+    if not (gtol > 0 and gtol <= MAX_GTOL):
+        raise InputError(
+            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol}: a larger tolerance stops the "
+            "optimizer before a stationary point"
+        )
     if maxiter < 1:
         raise InputError("--maxiter must be >= 1")
+    if seed < 0:
+        raise InputError(f"--seed must be >= 0, got {seed}")
     return depth
 
 
@@ -66,8 +85,48 @@ def warm_start(path: str | None, depth: int):
     """The angle file given with --angles (depth p-1 or p), or None."""
     from .angles import read_angles
 
-    initial = read_angles(path) if path else None
+    initial = read_angles(path) if path is not None else None
     if initial is not None and initial.p not in (depth - 1, depth):
         raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
     return initial
 
+
+def check_representable(mixture: Mixture, gamma, where: str = "--gamma") -> None:
+    """InputError (one line with the range) when a pass at these angles would leave double precision."""
+    from leadline.kernels.ranges import RangeError, check_range
+
+    try:
+        check_range(mixture, gamma)
+    except RangeError as exc:
+        raise InputError(f"{where}: {exc}") from None
+
+
+def file_mixture(xi: str | None, angle_set, path) -> Mixture:
+    """The mixture of a dense run: --xi when given, else the angle file's own "xi"."""
+    if xi is not None:
+        return mixture_arg(xi)
+    if angle_set.xi is None:
+        raise InputError(f"--xi is required: the angle file {path} names no mixture (\"xi\": null)")
+    try:
+        return parse_mixture(angle_set.xi)
+    except MixtureError as exc:
+        raise InputError(f"angle file {path}: \"xi\": {exc}") from None
+
+
+def refuse_sparse_ground_states(overrides: dict, study) -> None:
+    """--ground-state is an energy density: refuse it for sparse ensembles (their value is a
+    satisfied fraction, and a ratio of the two would mean nothing)."""
+    for label in study.ensembles():
+        kind = study.ensemble(label).get("kind", "dense")
+        if kind != "sparse":
+            continue
+        if label in overrides or (None in overrides and len(study.ensembles()) == 1):
+            raise InputError(
+                f"--ground-state: ensemble {label!r} is sparse (its value is a satisfied fraction, not an "
+                "energy density); ground-state energies apply to dense ensembles only"
+            )
+        if None in overrides:
+            raise InputError(
+                f"--ground-state VALUE would also apply to the sparse ensemble {label!r}; "
+                "write LABEL=VALUE for the dense ensembles"
+            )

@@ -41,10 +41,12 @@ import numpy as np
 from leadline.kernels.extrapolate import (
     DEFAULT_TARGET_RATIOS,
     ESTIMATE_NOTE,
+    FAMILIES,
+    SE_FACTOR,
+    SPREAD_MEANING,
+    UNPHYSICAL,
     Extrapolation,
-    PowerLawGap,
     extrapolate,
-    power_law_gaps,
 )
 from leadline.kernels.ground_states import lookup_ground_state, union_bound
 from leadline.kernels.sparse import scaled_value
@@ -67,6 +69,7 @@ __all__ = [
     "CSV_COLUMNS",
     "load_study",
     "parse_ground_state_options",
+    "parse_at_depths",
     "check_output_path",
     "write_text_atomic",
     "FIGURE_SIZE_INCHES",
@@ -74,7 +77,7 @@ __all__ = [
 ]
 
 TABLE_FORMAT = "leadline.table"
-TABLE_VERSION = 1
+TABLE_VERSION = 2  # 2: extrapolation by fit families with back-tests
 
 
 # ------------------------------------------------------------------ sources
@@ -157,23 +160,30 @@ def parse_ground_state_options(values: Sequence[str] | None, labels: Sequence[st
     return out
 
 
-def check_output_path(path: str | Path, suffix: str | None = None, option: str = "--output") -> Path:
-    """Validate an output file path before any work: parent directory exists and is writable."""
-    import os
-
+def parse_at_depths(text: str | None) -> tuple[int, ...]:
+    """'50,100,160' -> (50, 100, 160); InputError on anything but positive integers."""
     from .errors import InputError
 
-    path = Path(path)
-    if suffix is not None and path.suffix.lower() != suffix:
-        raise InputError(f"{option} {str(path)!r} must end with {suffix}")
-    parent = path.parent if str(path.parent) else Path(".")
-    if not parent.is_dir():
-        raise InputError(f"{option}: directory {str(parent)!r} does not exist")
-    if not os.access(parent, os.W_OK):
-        raise InputError(f"{option}: directory {str(parent)!r} is not writable")
-    if path.is_dir():
-        raise InputError(f"{option} {str(path)!r} is a directory; give a file name")
-    return path
+    if text is None:
+        return ()
+    out = []
+    for part in str(text).split(","):
+        part = part.strip()
+        try:
+            depth = int(part)
+        except ValueError:
+            raise InputError(f"--at-depth {text!r}: expected comma-separated positive integers, e.g. --at-depth 50,100,160") from None
+        if depth < 1:
+            raise InputError(f"--at-depth {text!r}: depths must be >= 1")
+        out.append(depth)
+    return tuple(sorted(set(out)))
+
+
+def check_output_path(path: str | Path, suffix: str | None = None, option: str = "--output") -> Path:
+    """Validate an output file path before any work (see :func:`jobs.paths.check_output_file`)."""
+    from .paths import check_output_file
+
+    return check_output_file(path, suffix=suffix, option=option)
 
 
 def write_text_atomic(path: Path, text: str) -> None:
@@ -349,6 +359,7 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
     if mixture is None:
         return None
     try:
+        from leadline.kernels.mixture import parse_mixture
         from leadline.kernels.reference import METHOD_VERSION, References as Computed
 
         from . import reference_cache
@@ -363,7 +374,8 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
         try:
             data = json.loads(path.read_text())
             key = data["key"]
-            if key.get("xi") != mixture.spec() or key.get("method_version") != METHOD_VERSION:
+            # compare mixtures, not spellings (older caches wrote weights as "1.0")
+            if parse_mixture(key.get("xi")) != mixture or key.get("method_version") != METHOD_VERSION:
                 continue
             refs = Computed.from_json(data["references"])
         except (OSError, ValueError, KeyError, TypeError, AttributeError):
@@ -419,9 +431,6 @@ class EnsembleReport:
     references: References
     rows: list[DepthRow]
     extrapolation: Extrapolation | None
-    gap_fits: list[PowerLawGap]
-    reach_threshold: dict | None
-    reach_ground_state: dict | None
     notes: list[str] = field(default_factory=list)
     q: int | None = None
     degree: float | None = None
@@ -437,9 +446,6 @@ class EnsembleReport:
             "references": self.references.to_json(),
             "depths": [r.to_json() for r in self.rows],
             "extrapolation": self.extrapolation.to_json() if self.extrapolation else None,
-            "power_law_gap": [g.to_json() for g in self.gap_fits],
-            "polynomial_depth_to_reach_threshold": self.reach_threshold,
-            "polynomial_depth_to_reach_ground_state": self.reach_ground_state,
             "notes": list(self.notes),
         }
 
@@ -487,8 +493,9 @@ def build_ensemble_report(
     ground_state: float | None = None,
     computed: Any = None,
     target_ratios: Iterable[float] = DEFAULT_TARGET_RATIOS,
+    at_depths: Iterable[int] = (),
 ) -> EnsembleReport:
-    """Rows, extrapolation and gap fits of one ensemble (see module docstring)."""
+    """Rows and extrapolation (``kernels.extrapolate``) of one ensemble (see module docstring)."""
     refs = resolve_references(meta, ground_state=ground_state, computed=computed)
     gs, alg = refs.ground_state, refs.threshold
     records = sorted(depth_records, key=lambda r: int(r["p"]))
@@ -544,27 +551,36 @@ def build_ensemble_report(
             notes.append("ALG equals GS within their uncertainties (no overlap gap): no separate depth to reach ALG")
     depths = [r.p for r in rows]
     values = [r.value for r in rows]
-    extrap = extrapolate(depths, values) if len(rows) >= 2 else None
-    if len(rows) < 2:
+    dense = meta.get("kind", "dense") == "dense"
+    extrap = None
+    if len(rows) >= 2:
+        extrap = extrapolate(
+            depths, values,
+            ground_state=gs if dense else None,
+            ground_state_uncertainty=(refs.ground_state_uncertainty or 0.0) if dense else 0.0,
+            upper_bound=union_bound(mixture) if mixture is not None else (1.0 if not dense else None),
+            upper_bound_name="the first-moment bound" if mixture is not None else "a satisfied fraction's maximum",
+            threshold=alg if (dense and separated) else None,
+            target_ratios=target_ratios,
+            at_depths=at_depths,
+        )
+    else:
         notes.append("fewer than two finished depths: no extrapolation")
-    gap_fits: list[PowerLawGap] = []
-    if gs is not None and len(rows) >= 2:
-        if any(v >= gs for v in values):
-            notes.append("some V_p* is at or above the reference ground state: gap fit skipped; check the reference")
-        else:
-            gap_fits = power_law_gaps(
-                depths, values, gs, target_ratios=target_ratios, threshold=alg if separated else None
-            )
-    if extrap is not None and mixture is not None:
-        bound = union_bound(mixture)
-        if extrap.high > bound:
+    if dense and gs is not None and any(v >= gs for v in values):
+        notes.append("some V_p* is at or above the reference ground state: anchored power law skipped; check the reference")
+    if extrap is not None:
+        flagged = [w for w in extrap.fits if w.status == UNPHYSICAL]
+        if flagged:
+            top = max(w.fit.peak_beyond(float(depths[-1])) for w in flagged)
+            names = sorted({w.family for w in flagged}, key=list(FAMILIES).index)
             notes.append(
-                f"some fits extrapolate above the rigorous upper bound sqrt(2 ln 2 xi(1)) = {bound:.4f} on any "
-                f"energy density of this mixture (highest fit {extrap.high:.4f}): those fits are unphysical, "
-                "and the spread is a warning that V_p* is not yet in its asymptotic regime"
+                f"{len(flagged)} fit(s) that pass the back-test ({', '.join(names)}) extrapolate above the upper "
+                f"bound {extrap.bound_name} = {extrap.upper_bound:.4f} (up to {top:.4f}): flagged unphysical and "
+                "left out of the headline"
             )
-    reach_alg = extrap.depth_reaching(alg) if (extrap is not None and alg is not None and separated) else None
-    reach_gs = extrap.depth_reaching(gs) if (extrap is not None and gs is not None) else None
+        if extrap.limit is None:
+            notes.append("no fit passes the back-test and stays physical (or too few depths for a back-test): "
+                         "no headline extrapolation")
 
     return EnsembleReport(
         label=str(meta.get("label")),
@@ -574,9 +590,6 @@ def build_ensemble_report(
         references=refs,
         rows=rows,
         extrapolation=extrap,
-        gap_fits=gap_fits,
-        reach_threshold=reach_alg,
-        reach_ground_state=reach_gs,
         notes=notes,
         q=int(meta["q"]) if meta.get("q") is not None else None,
         degree=float(meta["degree"]) if meta.get("degree") is not None else None,
@@ -589,6 +602,7 @@ def build_report(
     ground_states: Mapping[str | None, float] | None = None,
     target_ratios: Iterable[float] = DEFAULT_TARGET_RATIOS,
     reference_cache_dir: str | Path | None = None,
+    at_depths: Iterable[int] = (),
 ) -> StudyReport:
     """Report of every ensemble of ``study`` (StudyReader or InMemoryStudy), in spec order.
 
@@ -600,7 +614,10 @@ def build_report(
     reference_cache_dir : path, optional
         Cache of ``leadline reference`` to read computed GS/ALG from (default:
         its default location).
+    at_depths : iterable of int
+        Depths at which V_p (and V_p/GS) is predicted from the extrapolation.
     """
+    at_depths = tuple(at_depths)
     ground_states = dict(ground_states or {})
     reports = []
     for label in study.ensembles():
@@ -610,7 +627,8 @@ def build_report(
         computed = _computed_references(study, label, meta, reference_cache_dir)
         reports.append(
             build_ensemble_report(
-                meta, study.depths(label), ground_state=override, computed=computed, target_ratios=target_ratios
+                meta, study.depths(label), ground_state=override, computed=computed, target_ratios=target_ratios,
+                at_depths=at_depths,
             )
         )
     return StudyReport(name=str(getattr(study, "name", "study")), ensembles=reports)
@@ -619,12 +637,6 @@ def build_report(
 # ----------------------------------------------------------------- markdown
 def _fmt(x: float | None, spec: str, missing: str = "-") -> str:
     return missing if x is None else format(x, spec)
-
-
-def _fmt_depth(d: float | None) -> str:
-    if d is None:
-        return "never (fit saturates below)"
-    return f"{d:.3g}" if d < 1e4 else f"{d:.2e}"
 
 
 def _markdown_table(header: list[str], rows: list[list[str]], align: list[str]) -> list[str]:
@@ -652,6 +664,97 @@ def _reference_lines(refs: References) -> list[str]:
         out.append(f"- algorithmic threshold ALG = {refs.threshold:.6f}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
     else:
         out.append("- algorithmic threshold ALG: not known")
+    return out
+
+
+def _fmt_range(low: float | None, high: float | None, spec: str, capped: bool = False) -> str:
+    lo = "never" if low is None else format(low, spec)
+    hi = "never" if high is None else format(high, spec)
+    return f"{lo} .. {hi}" + (" (capped at GS)" if capped else "")
+
+
+def _fmt_level_depth(d: float | None) -> str:
+    if d is None:
+        return "never"
+    return f"{d:.3g}" if d < 1e4 else f"{d:.2e}"
+
+
+def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[str]:
+    """The extrapolation block: every fit with its back-test, the headline, predictions."""
+    out = [f"Extrapolation of {value_name}_p* to p -> infinity (fit families over windows of the last k depths):", ""]
+    tested = [w for w in ex.fits if w.backtest is not None]
+    if tested:
+        bt = tested[0].backtest
+        held = f"p = {bt.held_out[0]}" + (f"..{bt.held_out[-1]}" if len(bt.held_out) > 1 else "")
+        out.append(
+            f"Back-test: each fit is refitted on the same number of depths ending at p = {bt.fit.depths[-1]} and "
+            f"predicts the held-out {held}; it passes when its largest error is <= {ex.pass_threshold:.2e} "
+            f"= max(0.1 x the rise over the held-out depths, 3 x the smallest error)."
+        )
+    else:
+        out.append("Back-test: too few depths to hold any out; no fit can pass.")
+    if ex.upper_bound is not None:
+        out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {ex.upper_bound:.6f} "
+                   "is flagged unphysical.")
+    out.append("")
+    rows = []
+    for w in ex.fits:
+        f = w.fit
+        rows.append([
+            w.family, str(f.k), f"{f.depths[0]}..{f.depths[-1]}", f"{f.limit:.5f}",
+            "GS given" if w.family == "power-gs" else f"{f.standard_error(math.inf):.1e}",
+            _fmt(w.backtest_error, ".2e"), w.status,
+        ])
+    out += _markdown_table(["family", "k", "depths", f"{value_name}_inf", "std err", "back-test error", "status"],
+                           rows, ["l", "r", "l", "r", "r", "r", "l"])
+    out.append("")
+    out.append("Families: " + "; ".join(f"{f.name}: {f.description}" for f in FAMILIES.values()) + ".")
+    out.append("")
+    lim = ex.limit
+    if lim is None:
+        out.append("No headline: no fit passes the back-test and stays physical.")
+        out.append("")
+        return out
+    best = ex.best_by_family()
+    fams = ", ".join(f"{fam} k = {w.fit.k}: {w.fit.limit:.4f}" for fam, w in best.items())
+    out.append(
+        f"{value_name}_inf estimate: {lim.central:.4f}, range {_fmt_range(lim.low, lim.high, '.4f', lim.capped)} "
+        f"({lim.n_fits} used fits of {len(best)} families)"
+    )
+    if ex.ground_state is not None:
+        r = lim.scaled(1.0 / ex.ground_state)
+        out.append(f"{value_name}_inf / GS estimate: {r.central:.4f}, range {_fmt_range(r.low, r.high, '.4f', r.capped)}")
+    out.append(
+        f"Headline rule: central = median over families of each family's best back-tested window ({fams}); "
+        f"range = smallest and largest over every used fit, each +- {SE_FACTOR:g} least-squares standard errors."
+    )
+    out.append(f"What the range means: {SPREAD_MEANING}")
+    out.append("")
+    if ex.at_depth:
+        ratio = ex.ratio_at_depth()
+        header = ["p", f"{value_name}_p", "range"] + ([f"{value_name}_p/GS", "range (ratio)"] if ratio else [])
+        p_rows = []
+        for p, est in ex.at_depth.items():
+            cells = [str(p), f"{est.central:.5f}", _fmt_range(est.low, est.high, ".5f", est.capped)]
+            if ratio:
+                rr = ratio[p]
+                cells += [f"{rr.central:.4f}", _fmt_range(rr.low, rr.high, ".4f", rr.capped)]
+            p_rows.append(cells)
+        out.append("Predicted at given depths (same headline rule):")
+        out.append("")
+        out += _markdown_table(header, p_rows, ["r"] * len(header))
+        out.append("")
+    if ex.levels:
+        l_rows = [
+            [lv.name, f"{lv.level:.6f}", _fmt_level_depth(lv.central),
+             f"{_fmt_level_depth(lv.low)} .. {_fmt_level_depth(lv.high)}", f"{lv.fits_reaching} of {lv.fits}"]
+            for lv in ex.levels
+        ]
+        out.append("Predicted depth to reach a target (same headline rule; never = the fit saturates below it):")
+        out.append("")
+        out += _markdown_table(["target", "level", "depth p", "range", "fits reaching"], l_rows,
+                               ["l", "r", "r", "r", "r"])
+        out.append("")
     return out
 
 
@@ -691,50 +794,8 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
         out.append("(no finished depth yet)")
     out.append("")
 
-    ex = rep.extrapolation
-    if ex is not None:
-        out.append("Extrapolation of V_p* to p -> infinity (least-squares polynomials in 1/p over the last k depths):")
-        out.append("")
-        fit_rows = [
-            [str(f.degree), str(f.k), f"{f.depths[0]}..{f.depths[-1]}", f"{f.limit:.5f}", f"{f.rms_residual:.1e}"]
-            for f in ex.fits
-        ]
-        out += _markdown_table(["degree", "k", "depths", "V_inf", "rms resid"], fit_rows, ["r", "r", "l", "r", "r"])
-        out.append("")
-        out.append(
-            f"V_inf estimate: {ex.central:.4f} +- {ex.spread:.4f} (median of {len(ex.fits)} fits +- half their range;"
-            f" fits range {ex.low:.4f} .. {ex.high:.4f})"
-        )
-        if has_gs:
-            out.append(f"V_inf / GS estimate: {ex.central / refs.ground_state:.4f} +- {ex.spread / refs.ground_state:.4f}")
-        for name, reach in (("ALG", rep.reach_threshold), ("GS", rep.reach_ground_state)):
-            if reach is not None:
-                if reach["median_depth"] is not None:
-                    where = f"p ~ {_fmt_depth(reach['median_depth'])} (median over the fits that reach it)"
-                else:
-                    where = "not reached by most fits (their V_inf stays below)"
-                out.append(
-                    f"depth where the polynomial fits reach {name} = {reach['level']:.6f} (estimate): "
-                    f"{where}; {reach['fits_reaching']} of {reach['fits']} fits reach it"
-                )
-        out.append("")
-    if rep.gap_fits:
-        out.append("Power-law fit of the gap GS - V_p* = A p^(-alpha) (log-log least squares over the last k depths):")
-        out.append("")
-        header = ["k", "depths", "A", "alpha"] + [f"p for ratio {r:g}" for r in rep.gap_fits[0].ratio_depths]
-        align = ["r", "l", "r", "r"] + ["r"] * len(rep.gap_fits[0].ratio_depths)
-        if has_alg:
-            header.append("p to reach ALG")
-            align.append("r")
-        g_rows = []
-        for g in rep.gap_fits:
-            cells = [str(g.k), f"{g.depths[0]}..{g.depths[-1]}", f"{g.amplitude:.4f}", f"{g.exponent:.4f}"]
-            cells += [_fmt_depth(d) for d in g.ratio_depths.values()]
-            if has_alg:
-                cells.append(_fmt_depth(g.threshold_depth) if g.threshold is not None else "n/a (ALG = GS)")
-            g_rows.append(cells)
-        out += _markdown_table(header, g_rows, align)
-        out.append("")
+    if rep.extrapolation is not None:
+        out += _extrapolation_markdown(rep.extrapolation, value_name="nu" if sparse else "V")
     for note in rep.notes:
         out.append(f"Note: {note}.")
     if rep.notes:
@@ -776,6 +837,11 @@ CSV_COLUMNS = [
     "k",
     "depths",
     "note",
+    "family",
+    "status",
+    "backtest_error",
+    "low",
+    "high",
 ]
 
 
@@ -789,18 +855,63 @@ def _csv_value(x: Any) -> str:
     return str(x)
 
 
+def _emit_extrapolation(emit, label: str, ex: Extrapolation) -> None:
+    """CSV records of one extrapolation (see :func:`render_csv`)."""
+    for w in ex.fits:
+        f = w.fit
+        span = f"{f.depths[0]}-{f.depths[-1]}"
+        params = ("coefficients " + " ".join(f"{c:.6g}" for c in f.params) if f.is_polynomial
+                  else f"A = {f.params[1]:.6g}, alpha = {f.params[2]:.6g}")
+        emit(ensemble=label, record="fit", quantity="V_inf", value=f.limit, uncertainty=f.standard_error(math.inf),
+             family=w.family, degree=int(w.family[4:]) if f.is_polynomial else None, k=f.k, depths=span,
+             backtest_error=w.backtest_error, status=w.status, note="; ".join(x for x in (params, w.reason) if x))
+        if w.backtest is not None:
+            bt = w.backtest
+            fitted = f"{bt.fit.depths[0]}-{bt.fit.depths[-1]}"
+            for p, pred, err in zip(bt.held_out, bt.predicted, bt.errors):
+                emit(ensemble=label, record="backtest", quantity="V_p", p=p, inv_p=1.0 / p, value=pred,
+                     backtest_error=err, family=w.family, k=f.k, depths=fitted, status=w.status,
+                     note="predicted from the fitted depths; backtest_error = predicted - stored")
+    lim = ex.limit
+    if lim is not None:
+        rule = "central: median over families of the best back-tested windows; low/high: extremes over used fits"
+        emit(ensemble=label, record="extrapolation", quantity="V_inf", value=lim.central, low=lim.low, high=lim.high,
+             note=f"{rule}; an estimate, not a bound")
+        if ex.ground_state is not None:
+            r = lim.scaled(1.0 / ex.ground_state)
+            emit(ensemble=label, record="extrapolation", quantity="ratio_gs_inf", value=r.central, low=r.low,
+                 high=r.high, note="V_inf / GS; an estimate, not a bound")
+    ratio = ex.ratio_at_depth()
+    for p, est in ex.at_depth.items():
+        emit(ensemble=label, record="at_depth", quantity="V_p", p=p, inv_p=1.0 / p, value=est.central,
+             low=est.low, high=est.high, note="estimate")
+        if p in ratio:
+            emit(ensemble=label, record="at_depth", quantity="ratio_gs", p=p, inv_p=1.0 / p, value=ratio[p].central,
+                 low=ratio[p].low, high=ratio[p].high, note="estimate")
+    for lv in ex.levels:
+        name = "ALG" if lv.name == "ALG" else lv.name.replace("ratio ", "ratio_")
+        emit(ensemble=label, record="depth_for", quantity=f"depth_for_{name}", value=lv.central, low=lv.low,
+             high=lv.high, note=f"estimate at level {lv.level!r}; empty = never; "
+                                f"{lv.fits_reaching} of {lv.fits} used fits reach it")
+
+
 def render_csv(report: StudyReport) -> str:
     """One long CSV table; column ``record`` says what a row is.
 
     record = "depth": p, inv_p, value (V_p*), gain, ratio_gs, ratio_alg,
     exceeds_alg, gradient_norm.  "reference": quantity ground_state or
-    algorithmic_threshold, value, uncertainty, note (source).  "fit": one
-    polynomial fit, degree, k, depths, value (V_inf).  "extrapolation":
-    value (central V_inf), uncertainty (spread; an estimate, not a bound).
-    "power_law": quantity amplitude / exponent / depth_for_ratio_R /
-    depth_for_threshold for the window k.  "reach": quantity
-    depth_to_reach_threshold / depth_to_reach_ground_state from the polynomial
-    fits.  "note": a caveat in ``note``.  Floats are written at full precision.
+    algorithmic_threshold, value, uncertainty, note (source).  "fit": one fit
+    of one family over the last k depths: family, degree (polynomials), k,
+    depths, value (V_inf), uncertainty (its standard error), backtest_error
+    (largest absolute error on the held-out depths), status (used / failed
+    back-test / unphysical / no back-test), note (why).  "backtest": one
+    held-out depth p of one fit: value (predicted V_p), backtest_error
+    (predicted - stored), depths (the depths the back-test fit used).
+    "extrapolation": quantity V_inf or ratio_gs_inf, value (central), low,
+    high.  "at_depth": quantity V_p or ratio_gs at depth p, value, low, high.
+    "depth_for": quantity depth_for_ratio_R or depth_for_ALG, value (central
+    depth), low, high (empty = never reached), note.  "note": a caveat in
+    ``note``.  Floats are written at full precision.
     """
     buf = io.StringIO()
     writer = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\n")
@@ -822,27 +933,7 @@ def render_csv(report: StudyReport) -> str:
                  gain=r.gain, ratio_gs=r.ratio_gs, ratio_alg=r.ratio_alg, exceeds_alg=r.exceeds_alg,
                  gradient_norm=r.gradient_norm)
         if rep.extrapolation is not None:
-            for f in rep.extrapolation.fits:
-                emit(ensemble=rep.label, record="fit", quantity="V_inf", value=f.limit, degree=f.degree, k=f.k,
-                     depths=f"{f.depths[0]}-{f.depths[-1]}", note=f"polynomial in 1/p, rms residual {f.rms_residual:.3e}")
-            ex = rep.extrapolation
-            emit(ensemble=rep.label, record="extrapolation", quantity="V_inf", value=ex.central, uncertainty=ex.spread,
-                 note="median of fits +- half their range; an estimate, not a bound")
-        for g in rep.gap_fits:
-            span = f"{g.depths[0]}-{g.depths[-1]}"
-            emit(ensemble=rep.label, record="power_law", quantity="amplitude", value=g.amplitude, k=g.k, depths=span,
-                 note="GS - V_p = A p^-alpha")
-            emit(ensemble=rep.label, record="power_law", quantity="exponent", value=g.exponent, k=g.k, depths=span)
-            for ratio, d in g.ratio_depths.items():
-                emit(ensemble=rep.label, record="power_law", quantity=f"depth_for_ratio_{ratio:g}", value=d, k=g.k,
-                     depths=span, note="estimate")
-            if g.threshold_depth is not None:
-                emit(ensemble=rep.label, record="power_law", quantity="depth_for_threshold", value=g.threshold_depth,
-                     k=g.k, depths=span, note="estimate")
-        for name, reach in (("threshold", rep.reach_threshold), ("ground_state", rep.reach_ground_state)):
-            if reach is not None:
-                emit(ensemble=rep.label, record="reach", quantity=f"depth_to_reach_{name}", value=reach["median_depth"],
-                     note=f"estimate; {reach['fits_reaching']} of {reach['fits']} polynomial fits reach it")
+            _emit_extrapolation(emit, rep.label, rep.extrapolation)
         for note in rep.notes:
             emit(ensemble=rep.label, record="note", note=note)
     for view in report.universality:
@@ -858,7 +949,7 @@ def render_csv(report: StudyReport) -> str:
 
 
 def render_json(report: StudyReport) -> str:
-    """One JSON object (format "leadline.table", version 1)."""
+    """One JSON object (format "leadline.table", version 2)."""
     return json.dumps(report.to_json(), indent=1, allow_nan=False)
 
 
@@ -874,14 +965,94 @@ def angle_plot_path(output: Path) -> Path:
     return output.with_name(output.stem + "-angles" + output.suffix)
 
 
+FAMILY_LINESTYLES = {"poly1": (0, (1, 1.5)), "poly2": (0, (4, 2)), "poly3": (0, (6, 2, 1, 2)),
+                     "power": "-", "power-gs": (0, (3, 1, 1, 1))}
+
+
+def _drawn_fits(ex: Extrapolation) -> list:
+    """[(WindowFit, used)]: per family its used window with the smallest back-test error, else
+    (family not used) its window with the smallest back-test error."""
+    best = ex.best_by_family()
+    out = []
+    for fam in FAMILIES:
+        cands = [w for w in ex.fits if w.family == fam]
+        if cands:
+            w = best.get(fam) or min(cands, key=lambda c: (c.backtest_error if c.backtest else math.inf, c.fit.k))
+            out.append((w, fam in best))
+    return out
+
+
+def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None:
+    """Each family's curve out to 1/p = 0, its back-test, and the headline at 1/p = 0.
+
+    Per family the used window with the smallest back-test error is drawn
+    (bold); a family with no used window is drawn thin and faint with its best
+    back-tested window.  The held-out depths are ringed, and each drawn fit's
+    back-test predictions at them are marked with x.  The headline V_inf
+    (central, range) is an error bar at 1/p = 0.
+    """
+    for w, used in _drawn_fits(ex):
+        fit, fam = w.fit, w.family
+        xs = np.linspace(0.0, 1.0 / fit.depths[0], 200)
+        ax.plot(xs, fit.predict(np.where(xs > 0, 1.0 / np.maximum(xs, 1e-300), np.inf)), color=color,
+                ls=FAMILY_LINESTYLES[fam], lw=1.4 if used else 0.8, alpha=0.9 if used else 0.35)
+        if w.backtest is not None:
+            bt = w.backtest
+            ax.plot([1.0 / p for p in bt.held_out], bt.predicted, "x", color=color, ms=5 if used else 3,
+                    alpha=0.9 if used else 0.35)
+    tested = [w for w in ex.fits if w.backtest is not None]
+    if tested:
+        bt = tested[0].backtest
+        ax.plot([1.0 / p for p in bt.held_out], bt.actual, "o", mfc="none", mec=color, ms=10, mew=1.0)
+    if ex.limit is not None:
+        lim = ex.limit
+        text = f"{label}: V_inf ~ {lim.central:.4f} ({lim.low:.4f}..{lim.high:.4f}, estimate)" if label else None
+        ax.errorbar([0.0], [lim.central], yerr=[[lim.central - lim.low], [lim.high - lim.central]], fmt="s",
+                    color=color, capsize=4, ms=5, label=text)
+
+
+def _draw_zoom(ax, zoomed) -> None:
+    """Inset (upper right) magnifying 1/p from 0 to just beyond the earliest fitted window."""
+    firsts = [w.fit.depths[0] for rep, _ in zoomed for w, _ in _drawn_fits(rep.extrapolation)]
+    if not firsts:
+        return
+    x_max = 1.15 / min(firsts)
+    inset = ax.inset_axes([0.47, 0.47, 0.5, 0.48])
+    for rep, color in zoomed:
+        rows = [r for r in rep.rows if r.inverse_depth <= x_max]
+        inset.plot([r.inverse_depth for r in rows], [r.value for r in rows], "o", color=color, ms=4)
+        _draw_extrapolation(inset, rep.extrapolation, color, None)
+        if rep.references.ground_state is not None:
+            inset.axhline(rep.references.ground_state, color=color, ls="--", lw=1.0)
+    inset.set_xlim(-0.02 * x_max, x_max)
+    inset.tick_params(labelsize=7)
+    inset.grid(True, alpha=0.3)
+    inset.set_title("zoom: fits out to 1/p = 0", fontsize=7, pad=2)
+
+
+def _family_legend_handles():
+    """Proxy artists explaining the line styles, the back-test marks and the headline bar (grey)."""
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color="0.3", ls=FAMILY_LINESTYLES[f.name], lw=1.4, label=f"{f.name}: {f.description}")
+               for f in FAMILIES.values()]
+    handles.append(Line2D([], [], color="0.3", ls="none", marker="o", mfc="none", ms=9,
+                          label="held-out depths of the back-test"))
+    handles.append(Line2D([], [], color="0.3", ls="none", marker="x", label="back-test predictions (fit on earlier depths)"))
+    handles.append(Line2D([], [], color="0.3", lw=0.8, alpha=0.35, label="faint: family not used (failed / unphysical)"))
+    return handles
+
+
 def write_plots(report: StudyReport, output: Path) -> list[Path]:
     """Write the two figures; return their paths.
 
     ``output`` (FILE.png, 1100 x 550 pixels, legend at the right): V_p* against 1/p per ensemble,
-    markers for the stored values, the representative polynomial fit (the
-    one whose V_inf is closest to the central estimate) extended to 1/p = 0,
-    the extrapolated V_inf +- spread as an error bar at 1/p = 0, and
-    horizontal reference lines: GS dashed, ALG dotted, in the ensemble's colour.
+    markers for the stored values, each fit family's curve out to 1/p = 0 (one
+    line style per family, its best back-tested window; faint when the family
+    is not used), the held-out depths of the back-test ringed with the
+    back-test predictions marked x, the headline V_inf and its range as an
+    error bar at 1/p = 0, and horizontal reference lines: GS dashed, ALG
+    dotted, in the ensemble's colour.
 
     ``FILE-angles.png`` (1000 x 320*n_ensembles pixels): optimal gamma_t and
     beta_t against (t - 1/2)/p, one curve per depth p (darker = deeper), one
@@ -897,6 +1068,7 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
 
     fig, ax = plt.subplots(figsize=FIGURE_SIZE_INCHES, dpi=FIGURE_DPI)
     colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    zoomed = []  # dense ensembles with an extrapolation, drawn again in the inset
     for i, rep in enumerate(report.ensembles):
         color = colors[i % len(colors)]
         if not rep.rows:
@@ -911,17 +1083,9 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
                     label=f"{rep.label}: q = {rep.q}, D = {rep.degree:g}, sqrt(D)(nu*-1/2)2/sqrt(q)")
             continue
         ax.plot(x, y, "o", color=color, label=f"{rep.label}: {rep.description}")
-        ex = rep.extrapolation
-        if ex is not None:
-            for other in ex.fits:  # the whole family, faint: their spread is the uncertainty
-                xs = np.linspace(0.0, 1.0 / other.depths[0], 100)
-                ax.plot(xs, other.predict(xs), "-", color=color, lw=0.6, alpha=0.25)
-            fit = ex.representative
-            xs = np.linspace(0.0, 1.0 / fit.depths[0], 200)
-            ax.plot(xs, fit.predict(xs), "-", color=color, lw=1.5, alpha=0.9,
-                    label=f"  fits in 1/p (faint: all {len(ex.fits)}; bold: degree {fit.degree}, last {fit.k} depths)")
-            ax.errorbar([0.0], [ex.central], yerr=[ex.spread], fmt="s", color=color, capsize=4, ms=5,
-                        label=f"{rep.label}: V_inf ~ {ex.central:.4f} +- {ex.spread:.4f} (estimate)")
+        if rep.extrapolation is not None:
+            _draw_extrapolation(ax, rep.extrapolation, color, rep.label)
+            zoomed.append((rep, color))
         refs = rep.references
         if refs.ground_state is not None:
             ax.axhline(refs.ground_state, color=color, ls="--", lw=1.0,
@@ -929,6 +1093,8 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         if refs.threshold is not None:
             ax.axhline(refs.threshold, color=color, ls=":", lw=1.2,
                        label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
+    if zoomed:
+        _draw_zoom(ax, zoomed)
     ax.set_xlabel("1/p  (inverse QAOA depth)")
     ax.set_ylabel("V_p*  (energy density per spin, dimensionless)")
     ax.set_title(f"{report.name}\noptimal QAOA energy vs 1/p (extrapolations are estimates, not bounds)", fontsize=9)
@@ -940,7 +1106,11 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     top.tick_params(labelsize=7)
     top.set_xlabel("depth p", fontsize=8, labelpad=2)
     if report.ensembles:
-        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0, frameon=False)
+        handles, _ = ax.get_legend_handles_labels()
+        if any(rep.extrapolation is not None for rep in report.ensembles):
+            handles += _family_legend_handles()
+        ax.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
+                  frameon=False)
     fig.subplots_adjust(left=0.075, right=0.63, top=0.86, bottom=0.1)
     fig.savefig(paths[0], dpi=FIGURE_DPI)
     plt.close(fig)

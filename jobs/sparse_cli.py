@@ -24,7 +24,22 @@ from .errors import InputError
 __all__ = ["sparse_requested", "check_sparse", "evaluate_xorsat", "optimize_xorsat", "ensemble_json"]
 
 XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
-DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values such as 1e6 are fine."
+DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
+
+#: largest degree accepted: the rounding of sum_a f(a) H(a) grows like D x 2.2e-16 (the messages
+#: are 1 - O(1/D) raised to the power D - 1), about 2e-7 at D = 1e9, where the integrity check
+#: must still tell rounding from a lost transform block (values agree with a 50-digit reference
+#: to 1e-14 up to there: tests/test_sparse_ranges.py)
+MAX_DEGREE = 10**9
+
+
+def degree_limit_message(degree) -> str:
+    """Why a degree beyond MAX_DEGREE is refused (one line, shared with the study spec)."""
+    return (
+        f"degree D = {degree:g} is beyond {MAX_DEGREE:.0e}: the recursion's rounding grows like "
+        f"D x 2.2e-16 ({2.2e-16 * degree:.0e} here) and its integrity check could no longer tell "
+        "rounding from a lost block; the D -> infinity limit is the dense q-spin model (--xi q:1)"
+    )
 
 
 def sparse_requested(xorsat, degree) -> bool:
@@ -54,7 +69,35 @@ def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
         raise InputError(f"--degree must be an integer >= 2, got {degree!r}")
     if d < 2:
         raise InputError(f"--degree must be >= 2, got {degree}")
+    if d > MAX_DEGREE:
+        raise InputError(f"--degree: {degree_limit_message(d)}")
     return q, int(d)
+
+
+#: complex vectors of 2^(2p) entries (half the paths, by the flip symmetry) the recursion
+#: keeps at once at its last step: a lower bound of its memory
+SPARSE_VECTORS = 2
+
+
+def check_sparse_depth(p: int, settings, option: str) -> None:
+    """Refuse depths whose whole-vector recursion cannot fit (InputError, one line)."""
+    from .spec import MAX_DEPTH
+
+    if p > MAX_DEPTH:
+        raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
+    need = SPARSE_VECTORS * 16 * 2 ** (2 * p)
+    distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
+    try:
+        import psutil
+
+        total = psutil.virtual_memory().total
+    except Exception:  # pragma: no cover - psutil is a dependency
+        return
+    if need > 0.8 * total and not distributed:
+        raise InputError(
+            f"{option}: the sparse recursion at p = {p} keeps vectors of 2^{2 * p} complex entries "
+            f"(at least {need / 2**30:.0f} GiB), more than this machine's {total / 2**30:.0f} GiB; lower the depth"
+        )
 
 
 def ensemble_json(q: int, degree: int) -> dict:
@@ -107,6 +150,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
+    check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta")
     with transform_map(settings) as run_map:
         ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
     if as_json:
@@ -123,22 +167,26 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
-    from .angles import AngleSet, check_writable, optimum_report, write_angles
+    from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
     from .api import sparse_ladder
     from .parsing import check_optimizer_options, warm_start
 
     q, D = check_sparse(xorsat, degree, xi)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter)
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
-    if output:
+    check_sparse_depth(depth, settings, "--depth")
+    if output is not None:
         check_writable(output)
     with transform_map(settings) as run_map:
         run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
                             maxiter=maxiter, ensemble=ensemble_json(q, D),
                             evaluate_kw={"run_map": run_map} if run_map is not None else None)
     result, ladder, first, wall = run.result, run.ladder, run.first_depth, run.wall_time
-    if output:
+    if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))
+    warning = convergence_warning(result)
+    if warning:
+        typer.echo(warning, err=True)
     if as_json:
         typer.echo(json.dumps(run.to_json()))
         return

@@ -59,6 +59,7 @@ from pathlib import Path
 from leadline.kernels.mixture import MixtureError, parse_mixture
 
 from .errors import InputError
+from .parsing import MAX_GTOL
 
 __all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
@@ -168,7 +169,9 @@ class StudySpec:
 
 # --------------------------------------------------------------------------- checks
 def _where(section: str, key: str | None = None) -> str:
-    return f"[{section}] {key}" if key else f"[{section}]"
+    # "study" -> "[study] key"; a place already spelled out ("[[ensemble]] 'sk'") is kept as is
+    where = section if section.startswith("[") else f"[{section}]"
+    return f"{where} {key}" if key else where
 
 
 def _int(table: dict, section: str, key: str, default=None, *, minimum=None, required=False):
@@ -222,7 +225,7 @@ def _table(doc: dict, name: str) -> dict:
 
 def _dense(item: dict, where: str, label: str) -> dict:
     _unknown(item, {"label", "kind", "xi", "reference"}, where)
-    xi = _text(item, where.strip("[]"), "xi", required=True)
+    xi = _text(item, where, "xi", required=True)
     try:
         mixture = parse_mixture(xi)
     except MixtureError as exc:
@@ -244,6 +247,10 @@ def _sparse(item: dict, where: str, label: str) -> dict:
         q, degree = check_problem(q, degree)
     except ValueError as exc:
         raise InputError(f"{where}: {exc}") from None
+    from .sparse_cli import MAX_DEGREE, degree_limit_message
+
+    if degree > MAX_DEGREE:
+        raise InputError(f"{where}: {degree_limit_message(degree)}")
     return {"q": q, "degree": int(degree) if float(degree).is_integer() else degree}
 
 
@@ -260,7 +267,7 @@ def _ensembles(doc: dict) -> tuple[EnsembleSpec, ...]:
     out, seen = [], set()
     for i, item in enumerate(items, 1):
         where = f"[[ensemble]] #{i}"
-        label = _text(item, f"[ensemble] #{i}", "label", required=True)
+        label = _text(item, where, "label", required=True)
         if not _LABEL.match(label):
             raise InputError(
                 f"{where} label {label!r}: use letters, digits, '-', '_' and '.' (at most 64, not starting with '-', '_' or '.')"
@@ -275,12 +282,17 @@ def _ensembles(doc: dict) -> tuple[EnsembleSpec, ...]:
         fields = ENSEMBLE_KINDS[kind](item, where, label)
         ref = item.get("reference")
         ground_state = source = None
+        if ref is not None and kind == "sparse":
+            raise InputError(
+                f"{where} reference: a sparse ensemble's value is a satisfied fraction, not an energy "
+                "density; ground-state references apply to dense ensembles only"
+            )
         if ref is not None:
             if not isinstance(ref, dict):
                 raise InputError(f"{where} reference must be a table with ground-state and source")
             _unknown(ref, {"ground-state", "source"}, f"{where} reference")
-            ground_state = _float(ref, f"{label}.reference", "ground-state", positive=True)
-            source = _text(ref, f"{label}.reference", "source")
+            ground_state = _float(ref, f"{where} reference", "ground-state", positive=True)
+            source = _text(ref, f"{where} reference", "source")
             if ground_state is not None and source is None:
                 raise InputError(f"{where} reference: give the source of ground-state (paper, table, or 'from memory')")
             if ground_state is None and source is not None:
@@ -322,6 +334,8 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
     restarts = _int(opt, "optimizer", "restarts", None, minimum=0)
     seed = _int(opt, "optimizer", "seed", 0, minimum=0)
     gtol = _float(opt, "optimizer", "gtol", 1e-7, positive=True)
+    if gtol > MAX_GTOL:
+        raise InputError(f"[optimizer] gtol must be at most {MAX_GTOL:g}, got {gtol!r}: a larger tolerance stops before a stationary point")
     maxiter = _int(opt, "optimizer", "maxiter", 500, minimum=1)
 
     executor = _text(comp, "compute", "executor", "auto")

@@ -56,6 +56,8 @@ __all__ = [
     "sample_couplings",
     "sample_diagonal",
     "qaoa_state",
+    "apply_phase",
+    "mix_qubit",
     "energy_density",
     "FiniteSizeEstimate",
     "estimate_energy_density",
@@ -193,16 +195,52 @@ def qaoa_state(diagonal: np.ndarray, gamma, beta) -> np.ndarray:
     m, p = g2.shape
     psi = np.full((m, size), 2.0 ** (-n / 2), dtype=complex)
     for t in range(p):
-        psi *= np.exp(-1j * np.outer(g2[:, t], diagonal))
-        c = np.cos(b2[:, t])[:, None, None]
-        s = -1j * np.sin(b2[:, t])[:, None, None]
+        apply_phase(psi, diagonal, g2[:, t])
         for j in range(n):
-            # exp(-i b X_j) = cos b - i sin b X_j on qubit j (bit j of the index)
-            view = psi.reshape(m, size >> (j + 1), 2, 1 << j)
-            up = view[:, :, 0, :].copy()
-            view[:, :, 0, :] = c * up + s * view[:, :, 1, :]
-            view[:, :, 1, :] = s * up + c * view[:, :, 1, :]
+            mix_qubit(psi, j, b2[:, t])
     return psi if batched else psi[0]
+
+
+#: elements touched per numpy call in the in-place layer routines (bounds their temporaries)
+LAYER_BLOCK = 1 << 18
+
+
+def apply_phase(psi: np.ndarray, diagonal: np.ndarray, gamma, block: int = LAYER_BLOCK) -> None:
+    """In place: psi <- exp(-i gamma H) psi, H diagonal; temporaries bounded by ``block`` amplitudes.
+
+    psi : complex128, shape (2^n,) or (m, 2^n); gamma : scalar, or shape (m,) for batched psi.
+    """
+    g = np.atleast_1d(np.asarray(gamma, dtype=float))[:, None]
+    rows = psi if psi.ndim == 2 else psi[None, :]
+    size = rows.shape[-1]
+    step = max(1, block // rows.shape[0])
+    for k in range(0, size, step):
+        rows[:, k : k + step] *= np.exp(-1j * g * diagonal[k : k + step])
+
+
+def mix_qubit(psi: np.ndarray, j: int, beta, block: int = LAYER_BLOCK) -> None:
+    """In place: psi <- exp(-i beta X_j) psi = (cos beta - i sin beta X_j) psi on qubit j (bit j).
+
+    psi : complex128, shape (2^n,) or (m, 2^n); beta : scalar, or shape (m,) for batched psi.
+    Temporaries are bounded by ``block`` amplitudes, so a 2^26 state needs no second copy.
+    """
+    b = np.atleast_1d(np.asarray(beta, dtype=float))[:, None, None]
+    c, s = np.cos(b), -1j * np.sin(b)
+    rows = psi if psi.ndim == 2 else psi[None, :]
+    m, size = rows.shape
+    inner = 1 << j
+    view = rows.reshape(m, size >> (j + 1), 2, inner)
+    row_step = max(1, block // (m * inner))
+    col_step = inner if m * inner <= block else max(1, block // m)
+    for k in range(0, view.shape[1], row_step):
+        for l in range(0, inner, col_step):
+            low = view[:, k : k + row_step, 0, l : l + col_step]
+            high = view[:, k : k + row_step, 1, l : l + col_step]
+            saved = low.copy()
+            low *= c
+            low += s * high
+            high *= c
+            high += s * saved
 
 
 def energy_density(diagonal: np.ndarray, gamma, beta) -> np.ndarray | float:

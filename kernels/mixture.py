@@ -120,7 +120,7 @@ class Mixture:
     # -------------------------------------------------------------- spelling
     def spec(self) -> str:
         """Canonical text form, the inverse of :func:`parse_mixture`."""
-        return ",".join(f"{q}:{w!r}" for q, w in self.terms)
+        return ",".join(f"{q}:{_weight_text(w)}" for q, w in self.terms)
 
     def label(self) -> str:
         """Human-readable form such as ``0.5 x^2 + x^3``."""
@@ -176,6 +176,13 @@ def parse_mixture(spec: str) -> Mixture:
             raise MixtureError(f"power q = {q} appears twice in mixture {spec!r}")
         weights[q] = w
     return Mixture.from_weights(weights)
+
+
+def _weight_text(w: float) -> str:
+    """Shortest text that reads back as exactly w: "1" for 1.0, "0.5", "1e-06"."""
+    if float(w).is_integer() and abs(w) < 2**53:
+        return str(int(w))
+    return repr(float(w))
 
 
 def _looks_integer(text: str) -> bool:

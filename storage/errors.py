@@ -6,7 +6,7 @@ and exit code 2.
 
 from __future__ import annotations
 
-__all__ = ["StoreError", "StoreLockedError", "SchemaVersionError", "NotAStudyError"]
+__all__ = ["StoreError", "StoreLockedError", "StoreReadOnlyError", "SchemaVersionError", "NotAStudyError"]
 
 
 class StoreError(RuntimeError):
@@ -15,6 +15,10 @@ class StoreError(RuntimeError):
 
 class StoreLockedError(StoreError):
     """Another live process holds the writer lock of the store."""
+
+
+class StoreReadOnlyError(StoreError):
+    """The store cannot be written (read-only file system or no write permission)."""
 
 
 class SchemaVersionError(StoreError):

@@ -26,13 +26,14 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
+import errno
 import json
 import os
 import socket
 import uuid
 from pathlib import Path
 
-from .errors import StoreLockedError
+from .errors import StoreLockedError, StoreReadOnlyError
 
 __all__ = ["StoreLock", "LOCK_NAME", "read_lock", "holder_alive", "describe_holder"]
 
@@ -152,7 +153,15 @@ class StoreLock:
         if self.held:
             return self
         tmp = self.directory / f".{LOCK_NAME}.{self.token}.tmp"
-        tmp.write_text(self._content())
+        try:
+            tmp.write_text(self._content())
+        except OSError as exc:
+            if exc.errno in (errno.EROFS, errno.EACCES, errno.EPERM):
+                raise StoreReadOnlyError(
+                    f"store {self.directory} is read-only ({exc.strerror.lower()}): it can be read "
+                    "(leadline status, table, plot) but not written; copy it to a writable place to continue"
+                ) from None
+            raise
         try:
             with _guard(self.directory):
                 try:

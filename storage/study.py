@@ -63,11 +63,12 @@ def check_study(path: str | os.PathLike) -> dict:
     path = Path(path)
     if not path.exists():
         raise NotAStudyError(f"no study store at {path}")
+    # say only what was found: the path may be the user's own folder or file
+    looks_like = f"a study store is the folder `leadline sweep` creates, with zarr.json and format {L.FORMAT!r}"
+    if not path.is_dir():
+        raise NotAStudyError(f"{path} is a file, not a study store ({looks_like})")
     if not (path / "zarr.json").is_file():
-        raise NotAStudyError(
-            f"{path} is not a leadline study store (no zarr.json); if a sweep was stopped "
-            "while creating it, delete the folder and start the sweep again"
-        )
+        raise NotAStudyError(f"{path} is a folder without zarr.json, not a study store ({looks_like})")
     try:
         root = zarr.open_group(str(path), mode="r", zarr_format=3)
         attrs = root.attrs.asdict()

@@ -206,3 +206,20 @@ def test_sparse_corrupt_step_fails_loudly():
 
     with pytest.raises(SparseIntegrityError):
         evaluate_sparse(3, 4, g, b, run_map=losing, n_high=2)
+
+
+def test_blocked_transform_equals_butterflies():
+    """The matrix-product Walsh-Hadamard transform against the radix-2 butterflies and,
+    at small size, against scipy.linalg.hadamard (Sylvester's construction)."""
+    from scipy.linalg import hadamard
+
+    from leadline.kernels.sparse import wht, wht_blocked
+
+    rng = np.random.default_rng(8)
+    for n in (0, 1, 3, 5, 6, 7, 11, 16):
+        x = rng.normal(size=2**n) + 1j * rng.normal(size=2**n)
+        ref = wht(x.copy())
+        got = wht_blocked(x.copy())
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * max(1.0, np.max(np.abs(ref))))
+        if n <= 7:
+            np.testing.assert_allclose(got, hadamard(2**n) @ x, rtol=0, atol=1e-12 * max(1.0, np.max(np.abs(ref))))

@@ -137,10 +137,18 @@ def test_markdown_lists_values_ratios_fits_and_the_caveat(study, report):
         assert f"{d['value'] / SK_PARISI:.4f}" in text
     assert "V_p*/GS" in text and "Crisanti" in text
     assert "estimates" in text and "not bounds" in text
-    assert "V_inf estimate" in text
-    assert "p for ratio 0.95" in text and "p for ratio 0.99" in text
+    # three depths leave nothing to hold out for a back-test: fits are listed, no headline
+    assert "Back-test: too few depths" in text and "No headline" in text
+    assert "no back-test" in text
     mix_section = text.split("## mix24")[1]
     assert "V_p*/GS" not in mix_section.split("Note:")[0]
+
+
+def test_same_store_gives_the_same_extrapolation_numbers(store_path, report):
+    """Back-test errors and every extrapolated number are reproducible from the store."""
+    again = build_report(open_study(store_path))
+    assert render_json(again) == render_json(report)
+    assert render_csv(again) == render_csv(report)
 
 
 def test_csv_parses_and_holds_the_stored_values(study, report):
@@ -156,23 +164,24 @@ def test_csv_parses_and_holds_the_stored_values(study, report):
             assert float(r["inv_p"]) == 1.0 / d["p"]
     sk_ref = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "reference"]
     assert float(sk_ref[0]["value"]) == pytest.approx(SK_PARISI)
-    extrap = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "extrapolation"]
-    assert len(extrap) == 1 and float(extrap[0]["uncertainty"]) >= 0
+    fits = [r for r in rows if r["ensemble"] == "sk" and r["record"] == "fit"]
+    assert fits and {r["status"] for r in fits} == {"no back-test"}
+    assert not [r for r in rows if r["record"] == "extrapolation"]  # no headline from 3 depths
     assert any("not a bound" in r["note"] or "not bounds" in r["note"] for r in rows)
     assert not [r for r in rows if r["ensemble"] == "mix24" and r["ratio_gs"]]
 
 
 def test_json_is_one_object_with_the_stored_values(study, report):
     obj = json.loads(render_json(report))
-    assert obj["format"] == "leadline.table" and obj["version"] == 1
+    assert obj["format"] == "leadline.table" and obj["version"] == 2
     assert [e["label"] for e in obj["ensembles"]] == study.ensembles()
     for ens in obj["ensembles"]:
         stored = study.depths(ens["label"])
         assert [d["value"] for d in ens["depths"]] == [d["value"] for d in stored]
     assert "not bounds" in obj["note"]
     sk = obj["ensembles"][0]
-    assert sk["extrapolation"]["fits"][0]["family"] == "polynomial in 1/p"
-    assert set(sk["power_law_gap"][0]["depth_for_ratio"]) == {"0.95", "0.99"}
+    assert sk["extrapolation"]["fits"][0]["family"] == "poly1"
+    assert sk["extrapolation"]["limit"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
 
 
 def test_plots_open_with_the_documented_size(report, tmp_path):
@@ -218,6 +227,8 @@ def test_ground_state_override_wins(store_path, capsys):
     "args, message",
     [
         (["table", "{store}", "--format", "xml"], "--format"),
+        (["table", "{store}", "--at-depth", "50,x"], "--at-depth"),
+        (["table", "{store}", "--at-depth", "0,100"], ">= 1"),
         (["table", "{store}", "--ground-state", "0.9"], "ambiguous"),
         (["table", "{store}", "--ground-state", "nosuch=0.9"], "no ensemble"),
         (["table", "{store}", "--ground-state", "sk=-1"], "positive"),
@@ -252,15 +263,32 @@ def test_rendering_of_the_published_sk_series_held_in_memory():
 
     depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in SK_PUBLISHED.items()]
     study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
-    rep = build_report(study).ensembles[0]
+    report = build_report(study, at_depths=(50, 160))
+    rep = report.ensembles[0]
     assert [r.value for r in rep.rows] == list(SK_PUBLISHED.values())
     # QAOA energies are averages of H, so they never exceed the ground state (V_p <= GS)
     assert all(r.ratio_gs == r.value / SK_PARISI < 1 for r in rep.rows)
-    direct = extrapolate(list(SK_PUBLISHED), list(SK_PUBLISHED.values()))
-    assert rep.extrapolation.central == direct.central and len(rep.extrapolation.fits) == 12
-    assert [g.k for g in rep.gap_fits] == [3, 4, 5]
-    text = render_markdown(build_report(study))
+    refs = rep.references
+    direct = extrapolate(list(SK_PUBLISHED), list(SK_PUBLISHED.values()), ground_state=SK_PARISI,
+                         ground_state_uncertainty=refs.ground_state_uncertainty,
+                         upper_bound=math.sqrt(math.log(2)), at_depths=(50, 160))
+    assert json.dumps(rep.extrapolation.to_json()) == json.dumps(direct.to_json())
+    assert rep.extrapolation.holdout == 2  # 8 depths: p = 7, 8 held out
+    assert rep.extrapolation.limit is not None and rep.extrapolation.limit.high <= SK_PARISI + 1e-6
+    assert [lv.name for lv in rep.extrapolation.levels] == ["ratio 0.95", "ratio 0.99"]
+    text = render_markdown(report)
     assert "0.607300" in text and "0.7958" in text  # 0.6073 / 0.763166
+    assert "V_inf estimate" in text and "Headline rule" in text and "not a confidence interval" in text
+    assert "Predicted at given depths" in text and "| 160 |" in text and "ratio 0.99" in text
+    rows = list(csv.DictReader(io.StringIO(render_csv(report))))
+    kinds = {r["record"] for r in rows}
+    assert {"fit", "backtest", "extrapolation", "at_depth", "depth_for"} <= kinds
+    for r in rows:
+        if r["record"] == "backtest":
+            assert float(r["backtest_error"]) == pytest.approx(float(r["value"]) - SK_PUBLISHED[int(r["p"])], abs=1e-15)
+    obj = json.loads(render_json(report))
+    fits = obj["ensembles"][0]["extrapolation"]["fits"]
+    assert all(f["backtest"]["held_out"] == [7, 8] for f in fits if f["backtest"])
 
 
 # ------------------------------------------- computed GS / ALG (kernels.reference)
@@ -326,3 +354,20 @@ def test_fits_above_the_union_bound_are_flagged():
     study = InMemoryStudy("bound", [({"label": "x", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
     rep = build_report(study, ground_states={"x": 2.0}).ensembles[0]
     assert any("upper bound" in n and "0.8326" in n for n in rep.notes)
+
+
+def test_plot_draws_every_family_and_the_back_test(tmp_path):
+    """The figure of a back-tested extrapolation (published SK values, in memory) has the documented size."""
+    from matplotlib.image import imread
+
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in SK_PUBLISHED.items()]
+    study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    report = build_report(study)
+    ex = report.ensembles[0].extrapolation
+    assert ex.limit is not None and {w.family for w in ex.fits} == {"poly1", "poly2", "poly3", "power", "power-gs"}
+    out = tmp_path / "sk.png"
+    write_plots(report, out)
+    img = imread(out)
+    w, h = FIGURE_SIZE_INCHES
+    assert img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
+    assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 20
