@@ -4,7 +4,10 @@ Conventions of the Markdown pages (kept deliberately small):
 
 * a fenced block tagged ``console`` holds commands, each on a line starting
   with ``$ `` (a trailing backslash continues it), followed by the output the
-  command printed in a real run;
+  command printed in a real run (stdout and stderr, as a terminal shows them);
+  the commands of one block run in one shell (variables carry over); each must
+  exit 0, except one whose shown output starts with ``leadline: error:``, which
+  must exit 2;
 * a fenced block tagged ``python`` is run with ``exec`` (one namespace per page);
 * a ``<!-- file: NAME -->`` comment right before a fenced block writes the
   block's text to NAME in the page's working folder (specs, batch files);
@@ -15,7 +18,9 @@ Conventions of the Markdown pages (kept deliberately small):
   real output pasted there when the page is regenerated.
 
 Blocks of one page run in order, in one temporary folder, so a later block can
-use what an earlier one wrote.
+use what an earlier one wrote.  The folder holds a link ``tests`` to the
+repository's tests/ (data files) and an empty ``docs/``, so snippets written to
+run from the repository root run unchanged without touching the repository.
 
 Regenerate the pasted output of a page from a real run of the current code::
 
@@ -131,6 +136,33 @@ def run_command(cmd: str, workdir: Path, timeout: float = 600) -> subprocess.Com
                           capture_output=True, text=True, timeout=timeout)
 
 
+_RC = "__leadline_doc_exit__"
+
+
+def run_block(cmds: list[str], workdir: Path, timeout: float = 900) -> list[tuple[int, str]]:
+    """Run a block's commands in one bash session (variables carry over); (exit code, output) each.
+
+    Output is stdout and stderr together, as a terminal shows them.
+    """
+    script = ["exec 2>&1", "set -o pipefail"]
+    for cmd in cmds:
+        # report the exit code, then restore it so that `echo $?` on the page still works
+        script += [cmd, f"__rc=$?; printf '\\n{_RC} %d\\n' $__rc; ( exit $__rc )"]
+    proc = subprocess.run(["bash", "-c", "\n".join(script)], cwd=workdir, env=environment(workdir),
+                          capture_output=True, text=True, timeout=timeout)
+    results, chunk = [], []
+    for line in proc.stdout.split("\n"):
+        if line.startswith(_RC + " "):
+            text = "\n".join(chunk)
+            results.append((int(line.split()[1]), text[:-1] if text.endswith("\n") else text))
+            chunk = []
+        else:
+            chunk.append(line)
+    while len(results) < len(cmds):
+        results.append((-1, "\n".join(chunk) + proc.stderr))
+    return results
+
+
 def run_page(path: Path, workdir: Path, *, regenerate: bool = False) -> list[str]:
     """Run every block of a page that is not skipped; returns failure messages.
 
@@ -138,6 +170,11 @@ def run_page(path: Path, workdir: Path, *, regenerate: bool = False) -> list[str
     what the command printed, and the page is rewritten.
     """
     failures: list[str] = []
+    # snippets written to run from the repository root read tests/ data and write into docs/:
+    # give them a link to the repository's tests/ and an empty docs/ here
+    if not (workdir / "tests").exists():
+        (workdir / "tests").symlink_to(ROOT / "tests", target_is_directory=True)
+    (workdir / "docs").mkdir(exist_ok=True)
     lines = path.read_text().splitlines()
     replacements: list[tuple[int, int, list[str]]] = []
     namespace: dict = {"__name__": "__docs__"}
@@ -165,13 +202,15 @@ def run_page(path: Path, workdir: Path, *, regenerate: bool = False) -> list[str
         if block.lang != "console":
             continue
         new_text: list[str] = []
-        for c in commands(block):
-            proc = run_command(c.command, workdir)
-            if proc.returncode != 0:
-                failures.append(f"{block.name}: `{c.command}` exited {proc.returncode}: {proc.stderr.strip()[-2000:]}")
+        cmds = commands(block)
+        results = run_block([c.command for c in cmds], workdir)
+        for c, (code, out) in zip(cmds, results):
+            expected = 2 if c.output and c.output[0].startswith("leadline: error:") else 0
+            if code != expected:
+                failures.append(f"{block.name}: `{c.command}` exited {code} (expected {expected}): {out.strip()[-2000:]}")
             new_text.extend(c.raw)
             if block.output != "none" and c.output:
-                new_text.extend(proc.stdout.rstrip("\n").splitlines())
+                new_text.extend(out.rstrip("\n").splitlines())
         replacements.append((block.start, block.end, new_text))
     if regenerate and not failures:
         for start, end, text in reversed(replacements):
