@@ -18,7 +18,7 @@ from . import doc_examples as D
 
 PAGES = D.page_paths()
 #: pages other branches add (linked from the README before they land)
-PENDING_PAGES = {"docs/transfer.md", "docs/extrapolation.md", "docs/bath.md"}
+PENDING_PAGES = {"docs/bath.md"}
 
 
 def _skipped_blocks():
