@@ -292,7 +292,9 @@ def start_local_cluster(settings: ComputeSettings, progress: ProgressDisplay | N
         threads_per_worker=settings.threads_per_worker,
         processes=True,
         host="127.0.0.1",
-        dashboard_address=None,
+        # (None still starts the scheduler's HTTP server, on port 8787: a second cluster on
+        # the machine then warns about the port on stderr; a free loopback port never collides)
+        dashboard_address="127.0.0.1:0",
         memory_limit=worker_memory_limit(settings.memory_budget, settings.threads_per_worker),
         env=dict(SINGLE_THREAD_ENV),
         silence_logs=50,  # CRITICAL only: worker chatter would garble the progress bar

@@ -63,13 +63,42 @@ def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
         if not as_json:
             typer.echo(depth_line(line))
 
-    with compute.open_compute(settings) as executor:
+    with _sigterm_as_exit(), compute.open_compute(settings) as executor:
         with open_store() as store:
             lines = run_study(store, spec, executor, report=report)
     if as_json:
         typer.echo(json.dumps({"store": str(store.path), "finished_now": lines, "progress": open_study(store.path).progress()}))
     elif not quiet:
         typer.echo(status_text(open_study(store.path).progress()))
+
+
+class _Terminated(SystemExit):
+    pass
+
+
+def _sigterm_as_exit():
+    """SIGTERM (a batch system's time limit, `kill`) unwinds like Ctrl-C: passes computed
+    since the last checkpoint are written and the lock is released."""
+    import contextlib
+    import signal
+    import threading
+
+    @contextlib.contextmanager
+    def guard():
+        if threading.current_thread() is not threading.main_thread():
+            yield
+            return
+
+        def handler(signum, frame):
+            raise _Terminated(128 + signum)
+
+        previous = signal.signal(signal.SIGTERM, handler)
+        try:
+            yield
+        finally:
+            signal.signal(signal.SIGTERM, previous)
+
+    return guard()
 
 
 @_store_errors
@@ -209,6 +238,13 @@ def _duration(seconds: float | None) -> str:
     return f"~{seconds / 3600:.1f} h"
 
 
+def _size(n: int) -> str:
+    for unit, scale in (("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if n >= scale:
+            return f"{n / scale:.1f} {unit}"
+    return f"{n} bytes"
+
+
 def _ranges(ps: list[int]) -> str:
     if not ps:
         return "-"
@@ -227,6 +263,9 @@ def status_text(progress: dict) -> str:
     """The `leadline status` report."""
     pmin, pmax = progress["depths"]
     lines = [f"study {progress['name']!r}  store {progress['path']}  depths {pmin}..{pmax}"]
+    usage = progress.get("store")
+    if usage is not None:
+        lines.append(f"store size: {_size(usage['bytes'])} in {usage['files']} files")
     lock = progress.get("lock")
     if lock is None:
         lines.append("writer: none (resume with `leadline resume STORE` if not complete)")

@@ -24,6 +24,10 @@ Layout (version 1; every key is checked, unknown keys are errors)::
     threads-per-worker = 1
     memory-mb = 256                  # memory budget of one chunk task; sets the chunk plan
 
+    [checkpoint]                     # all optional (docs/store.md)
+    interval-s = 30                  # a kill loses at most about max(one pass, this) of computing; 0 = write every pass
+    keep-passes = false              # keep the pass batches of finished depths (default: dropped)
+
     [[ensemble]]                     # one or more, swept in this order
     label = "sk"                     # required; letters, digits, - _ . (it names a folder in the store)
     kind = "dense"                   # default "dense" (a mixed-spin glass given by xi)
@@ -74,6 +78,7 @@ _SECTIONS = {
     "depths": {"pmin", "pmax"},
     "optimizer": {"restarts", "seed", "gtol", "maxiter"},
     "compute": {"executor", "scheduler", "cluster-config", "workers", "threads-per-worker", "memory-mb"},
+    "checkpoint": {"interval-s", "keep-passes"},
     "ensemble": None,  # array of tables, checked per kind
 }
 
@@ -123,6 +128,8 @@ class StudySpec:
     workers: int | None = None
     threads_per_worker: int = 1
     memory_mb: float = 256.0
+    checkpoint_interval_s: float = 30.0
+    keep_passes: bool = False
     source_text: str = field(default="", repr=False, compare=False)
 
     @property
@@ -145,6 +152,7 @@ class StudySpec:
                 "threads_per_worker": self.threads_per_worker,
                 "memory_mb": self.memory_mb,
             },
+            "checkpoint": {"interval_s": self.checkpoint_interval_s, "keep_passes": self.keep_passes},
             "ensembles": [e.description() for e in self.ensembles],
         }
 
@@ -317,6 +325,7 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
     depths = _table(doc, "depths")
     opt = _table(doc, "optimizer")
     comp = _table(doc, "compute")
+    ckpt = _table(doc, "checkpoint")
 
     name = _text(study, "study", "name", required=True)
     store = _resolve(base, _text(study, "study", "store", required=True))
@@ -347,6 +356,12 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
     workers = _int(comp, "compute", "workers", None, minimum=1)
     threads = _int(comp, "compute", "threads-per-worker", 1, minimum=1)
     memory_mb = _float(comp, "compute", "memory-mb", 256.0, positive=True)
+    interval_s = _float(ckpt, "checkpoint", "interval-s", 30.0)
+    if interval_s < 0:
+        raise InputError(f"[checkpoint] interval-s must be >= 0 seconds, got {interval_s!r}")
+    keep_passes = ckpt.get("keep-passes", False)
+    if not isinstance(keep_passes, bool):
+        raise InputError(f"[checkpoint] keep-passes must be true or false, got {keep_passes!r}")
     if cluster_config is not None:
         from leadline.cluster import ExecutorConfigError
         from leadline.cluster.batch import load_batch_config
@@ -372,6 +387,8 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
         workers=workers,
         threads_per_worker=threads,
         memory_mb=memory_mb,
+        checkpoint_interval_s=interval_s,
+        keep_passes=keep_passes,
         source_text=text,
     )
     spec.compute_settings()  # the combination (executor with scheduler/cluster-config, memory)
@@ -393,6 +410,7 @@ def load_spec(path: str | os.PathLike) -> StudySpec:
 def spec_from_json(data: dict, text: str = "") -> StudySpec:
     """Rebuild a StudySpec from its stored normalized form (the store's "spec" attribute)."""
     d, o, c = data["depths"], data["optimizer"], data["compute"]
+    k = data.get("checkpoint") or {}
     ensembles = []
     for e in data["ensembles"]:
         ref = e.get("reference") or {}
@@ -418,6 +436,8 @@ def spec_from_json(data: dict, text: str = "") -> StudySpec:
         workers=c.get("workers"),
         threads_per_worker=int(c.get("threads_per_worker", 1)),
         memory_mb=float(c.get("memory_mb", 256.0)),
+        checkpoint_interval_s=float(k.get("interval_s", 30.0)),
+        keep_passes=bool(k.get("keep_passes", False)),
         source_text=text,
     )
 

@@ -18,6 +18,7 @@ import numpy as np
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import plan_chunks
 from leadline.storage import CheckpointedPasses, CheckpointStats, StudyStore
+from leadline.storage.faults import crash_point
 
 from .spec import EnsembleSpec, StudySpec
 
@@ -25,20 +26,30 @@ __all__ = ["run_study", "depth_line"]
 
 
 def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
-    plan = depth.plan
+    plan = plan_chunks(p, spec.memory_budget)
     passes = CheckpointedPasses(depth, executor)
-    result = optimize_depth(
-        ens.mixture(),
-        p,
-        run_pass=passes.run_pass,
-        plan=plan,
-        previous=previous,
-        previous_value=previous_value,
-        restarts=spec.restarts,
-        seed=spec.seed,
-        gtol=spec.gtol,
-        maxiter=spec.maxiter,
-    )
+    try:
+        result = optimize_depth(
+            ens.mixture(),
+            p,
+            run_pass=passes.run_pass,
+            plan=plan,
+            previous=previous,
+            previous_value=previous_value,
+            restarts=spec.restarts,
+            seed=spec.seed,
+            gtol=spec.gtol,
+            maxiter=spec.maxiter,
+        )
+        if depth.policy.keep_passes:
+            passes.flush()
+    except BaseException:
+        # stopped (Ctrl-C, SIGTERM from a batch system, an executor failure): keep what was computed
+        try:
+            passes.flush()
+        except Exception:  # noqa: BLE001 - the original error is the one to report
+            pass
+        raise
     return result, passes.stats
 
 
@@ -81,9 +92,11 @@ def run_study(
                 continue
             plan = plan_chunks(p, spec.memory_budget)
             depth = store.depth(ens.label, p, plan)
-            t0 = time.perf_counter()
+            crash_point("depth-started")
+            t0, c0 = time.perf_counter(), time.process_time()
             result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
             session_s = time.perf_counter() - t0
+            session_cpu_s = time.process_time() - c0
             pass_compute_s = depth.pass_seconds()
             overhead_s = max(0.0, session_s - stats.seconds_in_passes)
             timings = {
@@ -91,7 +104,10 @@ def run_study(
                 "pass_compute_s": pass_compute_s,
                 "optimizer_overhead_s": overhead_s,
                 "passes": depth.passes_used(),
+                "paths": depth.paths_used(),
                 "session_wall_s": session_s,
+                "session_cpu_s": session_cpu_s,
+                "optimizer_cpu_s": max(0.0, session_cpu_s - stats.cpu_writing_s),
                 "sessions": int(depth.group.attrs.get("sessions", 1)),
                 "this_session": stats.to_json(),
             }

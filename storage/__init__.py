@@ -1,7 +1,7 @@
-"""The Zarr checkpoint store of a study: spec, per-depth results, pass cache, ledger, lock.
+"""The Zarr checkpoint store of a study: spec, per-depth results, pass batches, ledger, lock.
 
-Imports only ``leadline.kernels``.  Layout: :mod:`.layout`; the user-facing
-description of every path and attribute is docs/store.md.
+Imports only ``leadline.kernels``.  Layout: :mod:`.layout` (and docs/store.md); when what
+is written: :mod:`.policy`.
 
 The names below are imported on first use (PEP 562), so ``import
 leadline.storage`` (and the command line's ``--help``) does not load zarr;
@@ -15,6 +15,7 @@ import importlib
 _WHERE = {
     "CheckpointedPasses": "checkpoint",
     "CheckpointStats": "checkpoint",
+    "CheckpointPolicy": "policy",
     "InProcessChunks": "checkpoint",
     "as_chunk_runner": "checkpoint",
     "StoreError": "errors",

@@ -1,52 +1,66 @@
 """Every path and attribute name of a study store, in one place.
 
-A study store is a Zarr (format 3) directory hierarchy; docs/store.md
-documents it for readers without leadline::
+A study store is a Zarr (format 3) directory hierarchy, documented for readers
+without leadline in docs/store.md::
 
     <store>/                                 root group
-        attrs: format, schema_version, name, spec, spec_toml, created_utc, writer
+        attrs: format, schema_version, name, spec, spec_toml, created_utc, writer,
+               kernel, migrated (list of layout upgrades, when any)
     <store>/ensembles/<label>/               one group per ensemble of the spec
-        attrs: label, kind, xi, q, degree, reference
+        attrs: label, kind, xi, q, degree, reference[, references]
     <store>/ensembles/<label>/p003/          one group per depth started (3 digits)
         attrs: p, plan, state ("running" | "done"), started_utc, sessions, repairs,
-               result (when done), timings (when done)
+               result, timings, finished_utc (when done)
         gamma, beta                          float64 (p,) optimal angles (when done)
-        passes/<key>                         complex128 (2p+2, 2p+1) summed pass
-            attrs: fingerprint, plan, kind, crc32, n_chunks, completions, wall_s, stored_utc
-        inflight/                            the pass being computed (reused pass after pass)
-            attrs: key, fingerprint, kind, serial, n_chunks, started_utc
-            partials                         complex128 (n_chunks, 2p+2, 2p+1), one zarr chunk per plan chunk
+        passes/b000001                       one batch of summed passes: complex128 (n,), the
+                                             entries' matrices flattened one after the other
+            attrs: entries (list of {key, step, kind, plan, shape, offset, crc32, n_chunks,
+                   completions, paths, wall_s}), crc32 (of the whole batch), stored_utc
+        inflight/                            the chunk ledger of the pass in flight (only for
+                                             passes long enough to checkpoint chunk by chunk)
+            attrs: key, fingerprint, kind, step, plan, serial, n_chunks, started_utc
+            partials                         complex128 (n_chunks, 2m+2, 2m+1), one zarr chunk per plan chunk
             ledger                           int64 (n_chunks, 4): serial, crc32, completions, wall_us
                                              chunk k is finished iff ledger[k, 0] == attrs serial
     <store>/leadline.lock                    JSON writer lock (only while a writer runs or after a kill)
+
+``passes`` and ``inflight`` are dropped once the depth is done (unless the spec
+keeps them).  Schema version 1 (before the growing-contour iteration) stored one
+array per pass, ``passes/<fingerprint>-h<n_high>r<rows>``; its finished depths
+read unchanged, its pass caches are dropped when the store is resumed.
 """
 
 from __future__ import annotations
 
+import hashlib
+import json
 import zlib
 
 import numpy as np
 
-from leadline.kernels.chunks import PassInput
-from leadline.kernels.plan import ChunkPlan
-
 __all__ = [
     "FORMAT",
     "SCHEMA_VERSION",
+    "READABLE_SCHEMAS",
     "ENSEMBLES",
     "PASSES",
     "INFLIGHT",
     "LEDGER_COLUMNS",
     "depth_name",
     "parse_depth_name",
+    "batch_name",
+    "parse_batch_name",
+    "plan_json",
     "pass_key",
     "checksum",
 ]
 
 #: value of the root attribute "format"
 FORMAT = "leadline.study"
-#: layout version; readers refuse any other value
-SCHEMA_VERSION = 1
+#: layout version this release writes
+SCHEMA_VERSION = 2
+#: layout versions this release reads (1: one array per cached pass; upgraded on resume)
+READABLE_SCHEMAS = (1, 2)
 
 ENSEMBLES = "ensembles"
 PASSES = "passes"
@@ -69,13 +83,56 @@ def parse_depth_name(name: str) -> int | None:
     return None
 
 
-def pass_key(inp: PassInput, plan: ChunkPlan) -> str:
-    """Name of a pass in the store: input fingerprint plus the chunk plan.
+def batch_name(n: int) -> str:
+    """Array name of the n-th batch of cached passes of a depth: 'b000001'."""
+    return f"b{int(n):06d}"
+
+
+def parse_batch_name(name: str) -> int | None:
+    if len(name) == 7 and name[0] == "b" and name[1:].isdigit():
+        return int(name[1:])
+    return None
+
+
+def plan_json(plan) -> dict:
+    """The JSON form of a chunk plan with every field explicit.
+
+    Plans written before the global flip existed have no "flip" field; they
+    enumerate every high pattern, which is ``flip = False``.
+    """
+    data = dict(plan if isinstance(plan, dict) else plan.to_json())
+    data["flip"] = bool(data.get("flip", False))
+    return data
+
+
+_PLAN_TAGS: dict = {}
+
+
+def _plan_tag(plan) -> str:
+    """12 hex digits of SHA-256 of the plan's canonical JSON (memoized per plan value)."""
+    try:
+        return _PLAN_TAGS[plan]
+    except (KeyError, TypeError):
+        pass
+    text = json.dumps(plan_json(plan), sort_keys=True, separators=(",", ":"))
+    tag = hashlib.sha256(text.encode()).hexdigest()[:12]
+    try:
+        if len(_PLAN_TAGS) < 4096:
+            _PLAN_TAGS[plan] = tag
+    except TypeError:  # a plan given as a dict
+        pass
+    return tag
+
+
+def pass_key(inp, plan) -> str:
+    """Name of a pass: content fingerprint of its input (step p, M, beta, adjoint) plus its plan.
 
     The plan is part of the key because the chunk-order sum of the partials
-    (and so the last bits of the result) depends on where chunks are cut.
+    (and so the last bits of the result) depends on where chunks are cut, and
+    a flipped plan enumerates other paths.  Any plan field (including ones
+    added later) changes the key.
     """
-    return f"{inp.fingerprint()}-h{plan.n_high}r{plan.rows_per_chunk}"
+    return f"{inp.fingerprint()}-{_plan_tag(plan)}"
 
 
 def checksum(array: np.ndarray) -> int:

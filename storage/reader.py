@@ -21,7 +21,7 @@ import zarr
 
 from . import layout as L
 from .lock import describe_holder, holder_alive, read_lock
-from .study import check_study, inflight_summary
+from .study import check_study, inflight_summary, store_usage
 
 __all__ = ["open_study", "StudyReader"]
 
@@ -140,13 +140,15 @@ class StudyReader:
                     r, t = attrs["result"], attrs.get("timings", {})
                     done.append({"p": p, "value": r.get("value"), "evaluations": r.get("evaluations"),
                                  "wall_time_s": r.get("wall_time_s")})
-                    finished_timings.append((p, r.get("evaluations") or 0, t.get("pass_compute_s", r.get("wall_time_s") or 0.0)))
+                    finished_timings.append((p, r.get("evaluations") or 0, t.get("pass_compute_s", r.get("wall_time_s") or 0.0),
+                                             t.get("paths")))
                     if t.get("pass_compute_s") and t.get("passes"):
-                        pass_rates.append((t["pass_compute_s"], t["passes"] * 2.0 ** (2 * p + 1)))
+                        paths = t.get("paths") or t["passes"] * 2.0 ** (2 * p + 1)
+                        pass_rates.append((t["pass_compute_s"], paths))
                 elif pmin <= p <= pmax:
                     running = _running_info(p, g, attrs)
-                    if running["pass_compute_s"] > 0 and running["passes_cached"]:
-                        pass_rates.append((running["pass_compute_s"], running["passes_cached"] * 2.0 ** (2 * p + 1)))
+                    if running["pass_compute_s"] > 0 and running["paths"]:
+                        pass_rates.append((running["pass_compute_s"], running["paths"]))
             done_ps = {d["p"] for d in done}
             todo = [p for p in range(pmin, pmax + 1) if p not in done_ps]
             ensembles.append({"label": label, "done": done, "running": running, "todo": todo})
@@ -159,6 +161,7 @@ class StudyReader:
             "complete": all(not e["todo"] for e in ensembles),
             "estimated_seconds_left": eta,
             "lock": self.lock_holder(),
+            "store": store_usage(self.path),
         }
 
 
@@ -177,12 +180,16 @@ def _describe(e: dict) -> dict:
 def _running_info(p: int, g: zarr.Group, attrs: dict) -> dict:
     passes = 0
     seconds = 0.0
+    paths = 0.0
     try:
-        for _name, arr in g[L.PASSES].arrays():
-            a = arr.attrs.asdict()
-            passes += 1
-            seconds += float(a.get("wall_s", 0.0))
-    except KeyError:
+        for name, arr in g[L.PASSES].arrays():
+            if L.parse_batch_name(name) is None:
+                continue
+            for entry in arr.attrs.asdict().get("entries", []):
+                passes += 1
+                seconds += float(entry.get("wall_s", 0.0))
+                paths += float(entry.get("paths") or 2.0 ** (2 * int(entry.get("step", p)) + 1))
+    except (KeyError, TypeError, ValueError):
         pass
     inflight = inflight_summary(g)
     if inflight is not None:
@@ -193,8 +200,9 @@ def _running_info(p: int, g: zarr.Group, attrs: dict) -> dict:
         "started_utc": attrs.get("started_utc"),
         "sessions": attrs.get("sessions"),
         "passes_cached": passes,
-        "evaluations_done": passes // (2 * p + 1),
+        "evaluations_done": passes // (2 * p),  # p forward and p adjoint passes per evaluation
         "pass_compute_s": seconds,
+        "paths": paths,
         "inflight": inflight,
         "repairs": len(attrs.get("repairs", [])),
     }
@@ -204,8 +212,11 @@ def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> flo
     """Crude estimate: remaining passes times the measured seconds per path-pass.
 
     Evaluations per depth are taken as the mean over finished depths (or
-    30 per start when none is finished); one evaluation with its gradient is
-    2p+1 passes of 2^(2p+1) paths each.  Dense ensembles only.
+    30 per start when none is finished).  Path visits of one evaluation with
+    its gradient: measured at the deepest finished depth (the stored timings
+    count them) and scaled by 4 per depth (every pass visits 2^(2m+1) paths of
+    a depth-m contour); without such a record, 2p+1 passes of 2^(2p+1) paths.
+    Dense ensembles only.
     """
     if not pass_rates:
         return None if any(e["todo"] for e in ensembles) else 0.0
@@ -215,18 +226,26 @@ def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> flo
         return None
     rate = seconds / work
     if finished_timings:
-        evals = float(np.mean([e for _, e, _ in finished_timings]))
+        evals = float(np.mean([e for _, e, *_ in finished_timings]))
     else:
         restarts = spec.get("optimizer", {}).get("restarts")
         evals = 30.0 * (1 + (restarts if restarts is not None else 2))
+    measured = [(p, paths / e) for p, e, _, paths in finished_timings if paths and e]
+    base = max(measured) if measured else None
+
+    def paths_per_evaluation(p: int) -> float:
+        if base is not None:
+            return base[1] * 4.0 ** (p - base[0])
+        return (2 * p + 1) * 2.0 ** (2 * p + 1)
+
     left = 0.0
     kinds = {e["label"]: e.get("kind", "dense") for e in spec.get("ensembles", [])}
     for e in ensembles:
         if kinds.get(e["label"], "dense") != "dense":
             continue  # sparse depths have no passes to measure; not estimated
         for p in e["todo"]:
-            passes = evals * (2 * p + 1)
+            work = evals * paths_per_evaluation(p)
             if e["running"] is not None and e["running"]["p"] == p:
-                passes = max(passes - e["running"]["passes_cached"], (2 * p + 1))
-            left += passes * 2.0 ** (2 * p + 1) * rate
+                work = max(work - e["running"]["paths"], paths_per_evaluation(p))
+            left += work * rate
     return left

@@ -1,20 +1,29 @@
-"""Writing a study store: spec, ensembles, per-depth results, pass cache, in-flight ledger.
+"""Writing a study store: spec, ensembles, per-depth results, pass batches, in-flight ledger.
 
 Only one process writes a store at a time (:class:`~leadline.storage.lock.StoreLock`).
 Every write is ordered so that a SIGKILL at any instant leaves a store that
 resume can use: data first, then the record that vouches for it (a ledger row
-with the data's CRC-32, a pass's CRC-32 attribute, a depth's ``state = "done"``).
+with the data's CRC-32, a batch's CRC-32 attributes, a depth's ``state = "done"``).
 Zarr's local store replaces files atomically (temporary file + rename), and
 whatever a half-finished write leaves behind fails its checksum and is
-recomputed, never trusted.
+recomputed, never trusted.  A new store is built under a hidden temporary name
+next to its final path and renamed into place, so a store path either does not
+exist or holds a complete, locked store.
+
+What is written when is decided by :class:`~leadline.storage.policy.CheckpointPolicy`
+(see storage/checkpoint.py and docs/store.md).
 """
 
 from __future__ import annotations
 
+import collections
 import datetime as _dt
 import os
 import re
 import shutil
+import sys
+import time
+import uuid
 from pathlib import Path
 
 import numpy as np
@@ -22,21 +31,25 @@ import zarr
 from zarr.codecs import ZstdCodec
 
 from leadline.kernels.iteration import sum_w_tolerance
-from leadline.kernels.plan import ChunkPlan
 
 from . import layout as L
 from .errors import NotAStudyError, SchemaVersionError, StoreError
 from .faults import crash_point, witness
-from .lock import StoreLock
+from .lock import StoreLock, holder_alive, read_lock
+from .policy import CheckpointPolicy
 
-__all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "utc_now", "inflight_summary"]
+__all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "utc_now", "inflight_summary", "store_usage",
+           "write_cost_probe"]
 
 #: leftovers of writes a kill interrupted: zarr's temporary files, and lock files not yet linked
 _ZARR_TEMP = re.compile(r"(\.[0-9a-f]{32}\.partial|^\.leadline\.lock\.[0-9a-f]{32}\.tmp)$")
-
+#: a store being created: built as "<parent>/.<name>.creating-<hex>", then renamed to "<parent>/<name>"
+_CREATING = ".creating-"
 
 #: chunk files named c.<k>.0.0 side by side (no folder per chunk: cheaper to create and delete)
 _FLAT_KEYS = {"name": "default", "separator": "."}
+#: recently computed pass sums kept in memory (the optimizer may ask for one again)
+_RECENT_PASSES = 64
 
 
 def _run_async(coro) -> None:
@@ -53,6 +66,10 @@ def utc_now() -> str:
 def _compressor():
     # zstd's own frame checksum makes most damaged chunk files fail to decode at all
     return ZstdCodec(level=1, checksum=True)
+
+
+def _stderr_notice(text: str) -> None:
+    print(f"leadline: {text}", file=sys.stderr, flush=True)
 
 
 def check_study(path: str | os.PathLike) -> dict:
@@ -77,21 +94,59 @@ def check_study(path: str | os.PathLike) -> dict:
     if attrs.get("format") != L.FORMAT:
         raise NotAStudyError(f"{path} is a Zarr group but not a leadline study store (format {attrs.get('format')!r})")
     version = attrs.get("schema_version")
-    if version != L.SCHEMA_VERSION:
+    if version not in L.READABLE_SCHEMAS:
         raise SchemaVersionError(
-            f"store {path} has schema version {version!r}, this leadline reads version "
-            f"{L.SCHEMA_VERSION}; use the leadline release that wrote it"
+            f"store {path} has schema version {version!r}, this leadline reads versions "
+            f"{', '.join(map(str, L.READABLE_SCHEMAS))}; use the leadline release that wrote it"
         )
     return attrs
+
+
+def store_usage(path: str | os.PathLike) -> dict:
+    """{"files", "bytes"} of everything under the store folder (what `leadline status` shows)."""
+    files = size = 0
+    for dirpath, _dirs, names in os.walk(path):
+        for name in names:
+            try:
+                size += os.lstat(os.path.join(dirpath, name)).st_size
+            except OSError:
+                continue
+            files += 1
+    return {"files": files, "bytes": size}
+
+
+def _remove_abandoned_creations(path: Path) -> None:
+    """Delete half-built stores of ``path`` left by killed creators (their lock holder is dead)."""
+    prefix = f".{path.name}{_CREATING}"
+    try:
+        entries = list(path.parent.iterdir())
+    except OSError:
+        return
+    for entry in entries:
+        if not entry.name.startswith(prefix) or not entry.is_dir():
+            continue
+        holder = read_lock(entry)
+        if holder is None:
+            # the creator died before it locked the folder, or is locking it right now
+            try:
+                young = time.time() - entry.stat().st_mtime < 60
+            except OSError:
+                continue
+            if young:
+                continue
+        elif holder_alive(holder):
+            continue
+        shutil.rmtree(entry, ignore_errors=True)
 
 
 class StudyStore:
     """A study store opened for writing (holds the writer lock until :meth:`close`)."""
 
-    def __init__(self, path: Path, root: zarr.Group, lock: StoreLock):
+    def __init__(self, path: Path, root: zarr.Group, lock: StoreLock, policy: CheckpointPolicy | None = None):
         self.path = path
         self.root = root
         self.lock = lock
+        self.policy = policy or CheckpointPolicy.from_spec(root.attrs.asdict().get("spec"))
 
     # ------------------------------------------------------------ open/create
     @classmethod
@@ -112,13 +167,20 @@ class StudyStore:
         ``spec`` is the validated spec as JSON-able dict, ``spec_toml`` its
         text, ``ensembles`` one description dict per ensemble (spec order),
         ``extra`` more root attributes (e.g. the chunk kernel in use).
+
+        The store is built under a hidden name in the same folder and renamed
+        to ``path`` when complete (rename is atomic within a file system): a
+        kill during creation leaves no folder at ``path``, and the next
+        creation removes the abandoned one.
         """
         path = Path(path)
-        try:
-            os.mkdir(path)
-        except FileExistsError:
-            raise StoreError(f"{path} already exists; continue it with `leadline resume {path}` or choose a new store path") from None
-        lock = StoreLock(path, command).acquire()
+        exists = StoreError(f"{path} already exists; continue it with `leadline resume {path}` or choose a new store path")
+        if path.exists():
+            raise exists
+        _remove_abandoned_creations(path)
+        building = path.parent / f".{path.name}{_CREATING}{uuid.uuid4().hex[:12]}"
+        os.mkdir(building)
+        lock = StoreLock(building, command).acquire()
         try:
             attrs = {
                 "format": L.FORMAT,
@@ -130,17 +192,35 @@ class StudyStore:
                 "writer": writer,
                 **(extra or {}),
             }
-            root = zarr.create_group(store=str(path), zarr_format=3, attributes=attrs)
-            store = cls(path, root, lock)
-            store.ensure_ensembles(ensembles)
+            root = zarr.create_group(store=str(building), zarr_format=3, attributes=attrs)
+            top = root.require_group(L.ENSEMBLES)
+            for desc in ensembles:
+                top.create_group(desc["label"], attributes=dict(desc))
+            crash_point("store-built")
+            try:
+                if path.exists():
+                    raise FileExistsError(path)
+                os.rename(building, path)
+            except OSError:
+                raise exists from None
+            lock.directory = path
+            store = cls(path, zarr.open_group(str(path), mode="r+", zarr_format=3), lock)
             return store
         except BaseException:
-            lock.release()
+            if lock.directory == building:
+                lock.release()
+                shutil.rmtree(building, ignore_errors=True)
+            else:
+                lock.release()
             raise
 
     @classmethod
-    def open(cls, path: str | os.PathLike, *, command: str = "resume") -> "StudyStore":
-        """Open an existing store for writing: schema check, lock, cleanup of temp files."""
+    def open(cls, path: str | os.PathLike, *, command: str = "resume", notice=_stderr_notice) -> "StudyStore":
+        """Open an existing store for writing: schema check, lock, cleanup, layout upgrade.
+
+        ``notice(text)`` receives one line when something the user should know
+        happened (old-layout pass caches dropped); default: stderr.
+        """
         path = Path(path)
         check_study(path)
         lock = StoreLock(path, command).acquire()
@@ -148,6 +228,8 @@ class StudyStore:
             root = zarr.open_group(str(path), mode="r+", zarr_format=3)
             store = cls(path, root, lock)
             store._remove_temp_files()
+            store._upgrade(notice)
+            store._drop_finished_caches()
             return store
         except BaseException:
             lock.release()
@@ -164,8 +246,6 @@ class StudyStore:
 
     def _remove_temp_files(self) -> None:
         """Temporary files of writes that a kill interrupted (never referenced by anything)."""
-        import time
-
         for dirpath, _dirs, files in os.walk(self.path):
             for f in files:
                 if _ZARR_TEMP.search(f):
@@ -177,6 +257,63 @@ class StudyStore:
                         os.unlink(full)
                     except OSError:
                         pass
+
+    def _depth_dirs(self):
+        """(label, p, directory) of every depth group on disk."""
+        top = self.path / L.ENSEMBLES
+        if not top.is_dir():
+            return
+        for ens in sorted(top.iterdir()):
+            if not ens.is_dir():
+                continue
+            for d in sorted(ens.iterdir()):
+                p = L.parse_depth_name(d.name)
+                if p is not None and d.is_dir():
+                    yield ens.name, p, d
+
+    def _upgrade(self, notice) -> None:
+        """Schema 1 -> 2: keep every depth record, drop the pass caches and ledgers of the old layout.
+
+        Old cached passes were keyed for the full-contour iteration (one plan
+        per depth); the current iteration never asks for them, and reusing them
+        would mix results of different plans.  Safe to repeat after a kill.
+        """
+        version = self.root.attrs.get("schema_version")
+        if version == L.SCHEMA_VERSION:
+            return
+        dropped = 0
+        depths = set()
+        for label, p, d in self._depth_dirs():
+            for sub in (L.PASSES, L.INFLIGHT):
+                if (d / sub).exists():
+                    if sub == L.PASSES:
+                        dropped += sum(1 for e in (d / sub).iterdir() if e.is_dir())
+                    shutil.rmtree(d / sub, ignore_errors=True)
+                    depths.add((label, p))
+        migrated = list(self.root.attrs.get("migrated", []))
+        migrated.append({"from": version, "to": L.SCHEMA_VERSION, "utc": utc_now(), "passes_dropped": dropped})
+        self.root.attrs.update({"schema_version": L.SCHEMA_VERSION, "migrated": migrated})
+        if depths:
+            notice(
+                f"store {self.path} was written by an older leadline (schema {version}): finished depths are "
+                f"kept; {dropped} cached passes of {len(depths)} depths no longer apply and were dropped "
+                "(an unfinished depth restarts from its recorded start)"
+            )
+
+    def _drop_finished_caches(self) -> None:
+        """Pass batches and ledgers of finished depths (left by a kill right after a depth finished)."""
+        if self.policy.keep_passes:
+            return
+        for _label, _p, d in self._depth_dirs():
+            if not ((d / L.PASSES).exists() or (d / L.INFLIGHT).exists()):
+                continue
+            try:
+                state = zarr.open_group(str(d), mode="r", zarr_format=3).attrs.get("state")
+            except Exception:  # noqa: BLE001
+                continue
+            if state == "done":
+                shutil.rmtree(d / L.PASSES, ignore_errors=True)
+                shutil.rmtree(d / L.INFLIGHT, ignore_errors=True)
 
     # ------------------------------------------------------------ contents
     @property
@@ -217,11 +354,12 @@ class StudyStore:
             return None
         return attrs["result"]
 
-    def depth(self, label: str, p: int, plan: ChunkPlan) -> "DepthStore":
+    def depth(self, label: str, p: int, plan=None) -> "DepthStore":
         """The working record of depth p (created on first use; sessions counted).
 
-        A depth already started keeps the chunk plan it was started with (its
-        pass keys and ledger depend on it); ``plan`` is used for a new depth.
+        ``plan`` (optional) is recorded in the depth's attribute "plan" for
+        information only: every cached pass and ledger carries its own plan
+        (each step of an evaluation may have its own).
         """
         ens = self._ensemble_group(label)
         name = L.depth_name(p)
@@ -229,7 +367,7 @@ class StudyStore:
         if name in ens:
             try:
                 group = ens[name]
-                plan = ChunkPlan.from_json(group.attrs["plan"])
+                group.attrs.asdict()
             except (KeyError, TypeError, ValueError):
                 group = None
         if group is None:
@@ -237,7 +375,7 @@ class StudyStore:
                 name,
                 attributes={
                     "p": p,
-                    "plan": plan.to_json(),
+                    "plan": L.plan_json(plan) if plan is not None else None,
                     "state": "running",
                     "started_utc": utc_now(),
                     "sessions": 0,
@@ -246,12 +384,13 @@ class StudyStore:
                 overwrite=True,
             )
         group.attrs.update({"sessions": int(group.attrs.get("sessions", 0)) + 1})
-        return DepthStore(group, p, plan, self.path / group.path)
+        return DepthStore(group, p, self.path / group.path, self.policy)
 
     def finish_depth(self, label: str, p: int, result: dict, timings: dict) -> None:
         """Record a finished depth: angle arrays first, then result + done flag in one write.
 
-        The in-flight ledger of the depth is deleted afterwards (its last pass is cached).
+        The depth's pass batches and ledger are deleted afterwards (nothing asks
+        for them again) unless the policy keeps them.
         """
         group = self._ensemble_group(label)[L.depth_name(p)]
         group.create_array("gamma", data=np.asarray(result["gamma"], dtype=np.float64), overwrite=True)
@@ -261,24 +400,53 @@ class StudyStore:
             {"state": "done", "result": result, "timings": timings, "finished_utc": utc_now()}
         )
         crash_point("depth-done")
-        # the last pass's partials are in the pass cache now; they can be large (n_chunks matrices)
         shutil.rmtree(self.path / group.path / L.INFLIGHT, ignore_errors=True)
+        if not self.policy.keep_passes:
+            shutil.rmtree(self.path / group.path / L.PASSES, ignore_errors=True)
+
+
+class _Entry:
+    """Index entry of one cached pass: which batch, where in it, and its record."""
+
+    __slots__ = ("batch", "record")
+
+    def __init__(self, batch: str, record: dict):
+        self.batch = batch
+        self.record = record
 
 
 class DepthStore:
-    """Pass cache and in-flight ledger of one depth of one ensemble."""
+    """Pass batches, pending passes and in-flight ledger of one depth of one ensemble.
 
-    def __init__(self, group: zarr.Group, p: int, plan: ChunkPlan, directory: Path):
+    Cached passes are written in batches (one array per batch); computed passes
+    wait in memory until :meth:`flush` (called by the checkpoint layer when the
+    policy says so).  The index of the batches on disk is read once, at open.
+    """
+
+    def __init__(self, group: zarr.Group, p: int, directory: Path, policy: CheckpointPolicy | None = None):
         self.group = group
         self.p = p
-        self.plan = plan
         self.directory = Path(directory)
+        self.policy = policy or CheckpointPolicy()
         self.repairs: list[dict] = []
-        self._seen: dict[str, float] = {}  # pass key -> compute seconds, passes used in this session
+        self._seen: dict[str, tuple[float, float]] = {}  # pass key -> (compute seconds, paths) of passes used
+        self._index: dict[str, _Entry] = {}
+        self._batches: list[str] = []
+        self._batch_data: tuple[str, np.ndarray] | None = None  # the last batch read, decoded
+        self._pending: dict[str, tuple[np.ndarray, dict, tuple]] = {}
+        self._recent: collections.OrderedDict[str, np.ndarray] = collections.OrderedDict()
+        self.pending_seconds = 0.0
+        self._inflight_state = None
+        self._passes_group = None
+        self._load_index()
 
     def pass_seconds(self) -> float:
         """Compute seconds of the distinct passes used so far (including earlier sessions' work)."""
-        return float(sum(self._seen.values()))
+        return float(sum(s for s, _ in self._seen.values()))
+
+    def paths_used(self) -> float:
+        """Path visits of the distinct passes used so far."""
+        return float(sum(n for _, n in self._seen.values()))
 
     def passes_used(self) -> int:
         return len(self._seen)
@@ -287,116 +455,153 @@ class DepthStore:
         """Delete a subtree of this depth's folder (plain rmtree: zarr keeps no index of it)."""
         shutil.rmtree(self.directory / relative, ignore_errors=True)
 
-    @property
-    def shape(self) -> tuple[int, int]:
-        n = 2 * self.p + 1
-        return (n + 1, n)
-
     def note_repair(self, what: str, key: str, chunk: int | None = None, detail: str = "") -> None:
         event = {"what": what, "key": key, "chunk": chunk, "detail": detail[:200], "utc": utc_now()}
         self.repairs.append(event)
         old = list(self.group.attrs.get("repairs", []))
         self.group.attrs.update({"repairs": old + [event]})
 
-    # ------------------------------------------------------------ pass cache
+    # ------------------------------------------------------------ pass batches
     def _passes(self) -> zarr.Group:
-        if getattr(self, "_passes_group", None) is None:
+        if self._passes_group is None:
             self._passes_group = self.group.require_group(L.PASSES)
         return self._passes_group
 
+    def _load_index(self) -> None:
+        folder = self.directory / L.PASSES
+        if not folder.is_dir():
+            return
+        for entry in sorted(folder.iterdir()):
+            n = L.parse_batch_name(entry.name)
+            if n is None or not entry.is_dir():
+                continue
+            try:
+                attrs = self._passes()[entry.name].attrs.asdict()
+                records = list(attrs["entries"])
+            except Exception as exc:  # noqa: BLE001 - metadata of a killed write, or damaged
+                self.note_repair("pass batch dropped", entry.name, detail=f"unreadable metadata ({type(exc).__name__})")
+                self._remove(f"{L.PASSES}/{entry.name}")
+                continue
+            self._batches.append(entry.name)
+            for record in records:
+                self._index[record["key"]] = _Entry(entry.name, record)
+
+    def _read_batch(self, name: str) -> np.ndarray:
+        if self._batch_data is None or self._batch_data[0] != name:
+            self._batch_data = (name, np.asarray(self._passes()[name][...]))
+        return self._batch_data[1]
+
     def cached_pass(self, key: str, backward: bool) -> np.ndarray | None:
         """The verified summed result of pass ``key``, or None (damaged entries are dropped)."""
-        if not (self.directory / L.PASSES / key).exists():
-            return None  # the common miss, without asking zarr
-        try:
-            arr = self._passes()[key]
-        except KeyError:
-            arr = None
-        if arr is None:
-            self._remove(f"{L.PASSES}/{key}")  # a folder without metadata: a killed write
+        if key in self._recent:
+            self._recent.move_to_end(key)
+            return self._recent[key]
+        if key in self._pending:
+            return self._pending[key][0]
+        entry = self._index.get(key)
+        if entry is None:
             return None
+        record = entry.record
         try:
-            attrs = arr.attrs.asdict()
-            total = np.asarray(arr[...])
-            problem = self._verify_sum(total, attrs, backward)
+            flat = self._read_batch(entry.batch)
+            shape = tuple(record["shape"])
+            size = int(np.prod(shape))
+            total = np.array(flat[int(record["offset"]) : int(record["offset"]) + size]).reshape(shape)
+            problem = self._verify_sum(total, record, backward)
         except Exception as exc:  # noqa: BLE001 - unreadable chunk or metadata
             problem = f"unreadable ({type(exc).__name__}: {exc})"
         if problem is None:
-            self._seen[key] = float(attrs.get("wall_s", 0.0))
+            self._seen[key] = (float(record.get("wall_s", 0.0)), float(record.get("paths", 0.0)))
             return total
         self.note_repair("pass cache entry dropped", key, detail=problem)
-        self._remove(f"{L.PASSES}/{key}")
+        del self._index[key]
         return None
 
-    def _verify_sum(self, total: np.ndarray, attrs: dict, backward: bool) -> str | None:
-        if total.shape != self.shape or total.dtype != np.complex128:
-            return f"shape {total.shape} dtype {total.dtype}, expected {self.shape} complex128"
-        if attrs.get("plan") != self.plan.to_json():
-            return f"plan {attrs.get('plan')} differs from {self.plan.to_json()}"
-        if "crc32" not in attrs:
-            return "no crc32 attribute (write interrupted)"
-        if L.checksum(total) != attrs["crc32"]:
+    @staticmethod
+    def _verify_sum(total: np.ndarray, record: dict, backward: bool) -> str | None:
+        if total.dtype != np.complex128 or total.shape != tuple(record["shape"]):
+            return f"shape {total.shape} dtype {total.dtype}, expected {record['shape']} complex128"
+        if L.checksum(total) != record.get("crc32"):
             return "crc32 mismatch"
-        completions = attrs.get("completions", [])
-        if len(completions) != self.plan.n_chunks or min(completions, default=0) < 1:
+        completions = record.get("completions", [])
+        if len(completions) != int(record.get("n_chunks", -1)) or min(completions, default=0) < 1:
             return "chunk accounting: not every chunk was completed"
         if not backward:
-            dev = float(np.max(np.abs(np.diag(total[: 2 * self.p + 1]) - 1.0)))
-            if not dev <= sum_w_tolerance(self.p):
+            m = int(record["step"])
+            dev = float(np.max(np.abs(np.diag(total[: 2 * m + 1]) - 1.0)))
+            if not dev <= sum_w_tolerance(m):
                 return f"sum of path weights deviates from 1 by {dev:.3e}"
         return None
 
-    def store_pass(self, key: str, total: np.ndarray, meta: dict, chunks_finished_here=()) -> None:
-        """Add a verified pass sum to the cache (metadata and crc32 written, then data).
+    def add_pass(self, key: str, total: np.ndarray, meta: dict, chunks_to_witness=()) -> None:
+        """A verified pass sum: kept in memory, written with the next :meth:`flush`.
 
-        ``chunks_finished_here``: chunks that had no ledger row of their own
-        (a pass computed whole); they count as finished with this write.
+        ``meta`` has kind, step, plan, n_chunks, completions, paths, wall_s.
+        ``chunks_to_witness``: chunks that have no ledger row of their own
+        (a pass computed whole); they count as finished when the batch is written.
         """
-        attrs = dict(meta)
-        attrs["plan"] = self.plan.to_json()
-        attrs["crc32"] = L.checksum(total)
-        attrs["stored_utc"] = utc_now()
-        self._seen[key] = float(attrs.get("wall_s", 0.0))
+        total = np.ascontiguousarray(total, dtype=np.complex128)
+        record = dict(meta, key=key, shape=list(total.shape), crc32=L.checksum(total))
+        self._seen[key] = (float(record.get("wall_s", 0.0)), float(record.get("paths", 0.0)))
+        self._pending[key] = (total, record, tuple(chunks_to_witness))
+        self.pending_seconds += float(record.get("wall_s", 0.0))
+        self._recent[key] = total
+        while len(self._recent) > _RECENT_PASSES:
+            self._recent.popitem(last=False)
+
+    def flush(self) -> int:
+        """Write the pending passes as one batch array (data and index in one create); returns how many."""
+        if not self._pending:
+            return 0
+        names = [L.parse_batch_name(b) for b in self._batches]
+        name = L.batch_name(max(names, default=0) + 1)
+        parts, records, offset = [], [], 0
+        for total, record, _ in self._pending.values():
+            records.append(dict(record, offset=offset))
+            parts.append(total.ravel())
+            offset += total.size
+        flat = np.concatenate(parts)
         self._passes().create_array(
-            key, data=np.asarray(total, dtype=np.complex128), attributes=attrs, overwrite=True, chunk_key_encoding=_FLAT_KEYS
+            name,
+            data=flat,
+            chunks=flat.shape,
+            attributes={"entries": records, "crc32": L.checksum(flat), "stored_utc": utc_now()},
+            overwrite=True,
+            chunk_key_encoding=_FLAT_KEYS,
         )
-        witness(key, chunks_finished_here)
+        self._batches.append(name)
+        for record in records:
+            self._index[record["key"]] = _Entry(name, record)
+        for key, (_, _, chunks) in self._pending.items():
+            witness(f"{self.group.path}/{key}", chunks)
+        count = len(self._pending)
+        self._pending.clear()
+        self.pending_seconds = 0.0
         crash_point("pass-cached")
+        return count
 
     def cached_pass_count(self) -> int:
-        try:
-            return sum(1 for _ in self.group[L.PASSES].array_keys())
-        except KeyError:
-            return 0
+        return len(self._index)
 
     def pass_records(self) -> list[dict]:
-        """Attributes of every cached pass (for timings)."""
-        try:
-            passes = self.group[L.PASSES]
-        except KeyError:
-            return []
-        out = []
-        for _name, arr in passes.arrays():
-            try:
-                out.append(arr.attrs.asdict())
-            except Exception:  # noqa: BLE001
-                continue
-        return out
+        """Records of every pass in the batches on disk (for timings)."""
+        return [e.record for e in self._index.values()]
 
     # ------------------------------------------------------------ in flight
-    def inflight(self, key: str, meta: dict) -> "InflightPass":
+    def inflight(self, key: str, meta: dict, n_chunks: int, shape: tuple[int, int]) -> "InflightPass":
         """The ledger of pass ``key``: resumed if it is the pass in flight, else started.
 
-        One ledger per depth (arrays created once); starting a pass writes one
-        attribute update (key and a new serial), which invalidates every row of
-        the previous pass at once.
+        One ledger per depth; its arrays are recreated only when a pass has
+        another number of chunks or another matrix shape.  Starting a pass
+        writes one attribute update (key and a new serial), which invalidates
+        every row of the previous pass at once.
         """
-        state = self._inflight_arrays()
+        state = self._inflight_arrays(n_chunks, tuple(shape))
         attrs = state.group.attrs.asdict()
         if attrs.get("key") == key and attrs.get("fingerprint") == meta.get("fingerprint"):
             return InflightPass(self, key, int(attrs["serial"]), state)
         serial = max(int(attrs.get("serial", 0)), int(state.rows[:, L.SERIAL].max(initial=0))) + 1
-        state.group.attrs.update(dict(meta, key=key, serial=serial, started_utc=utc_now()))
+        state.group.attrs.update(dict(meta, key=key, serial=serial, n_chunks=n_chunks, started_utc=utc_now()))
         return InflightPass(self, key, serial, state)
 
     def restart_inflight(self, inflight: "InflightPass") -> "InflightPass":
@@ -406,43 +611,45 @@ class DepthStore:
         state.group.attrs.update({"serial": serial, "started_utc": utc_now()})
         return InflightPass(self, inflight.key, serial, state)
 
-    def _inflight_arrays(self) -> "_InflightArrays":
-        if getattr(self, "_inflight_state", None) is not None:
-            return self._inflight_state
-        n = self.plan.n_chunks
-        state = None
-        if (self.directory / L.INFLIGHT).exists():
+    def _inflight_arrays(self, n: int, shape: tuple[int, int]) -> "_InflightArrays":
+        state = self._inflight_state
+        if state is not None and state.partials.shape == (n, *shape):
+            return state
+        serial = 0
+        if state is None and (self.directory / L.INFLIGHT).exists():
             try:
                 g = self.group[L.INFLIGHT]
                 partials, ledger = g[L.PARTIALS], g[L.LEDGER]
-                if partials.shape == (n, *self.shape) and ledger.shape == (n, len(L.LEDGER_COLUMNS)):
-                    state = _InflightArrays(self, g, partials, ledger)
+                state = _InflightArrays(self, g, partials, ledger)
             except Exception:  # noqa: BLE001 - half-created by a killed run: start it again
-                state = None
-            if state is None:
                 self.note_repair("in-flight ledger recreated", "", detail="incomplete or unreadable")
-                self._remove(L.INFLIGHT)
-        if state is None:
-            g = self.group.create_group(L.INFLIGHT, attributes={"key": None, "serial": 0, "n_chunks": n})
-            partials = g.create_array(
-                L.PARTIALS,
-                shape=(n, *self.shape),
-                chunks=(1, *self.shape),
-                dtype="complex128",
-                fill_value=0,
-                compressors=_compressor(),
-                chunk_key_encoding=_FLAT_KEYS,
-            )
-            ledger = g.create_array(
-                L.LEDGER,
-                shape=(n, len(L.LEDGER_COLUMNS)),
-                chunks=(1, len(L.LEDGER_COLUMNS)),
-                dtype="int64",
-                fill_value=0,
-                attributes={"columns": list(L.LEDGER_COLUMNS)},
-                chunk_key_encoding=_FLAT_KEYS,
-            )
-            state = _InflightArrays(self, g, partials, ledger)
+                state = None
+            if state is not None and state.partials.shape == (n, *shape) and state.ledger.shape == (n, len(L.LEDGER_COLUMNS)):
+                self._inflight_state = state
+                return state
+        if state is not None:
+            serial = max(int(state.group.attrs.get("serial", 0)), int(np.abs(state.rows[:, L.SERIAL]).max(initial=0)))
+        self._remove(L.INFLIGHT)
+        g = self.group.create_group(L.INFLIGHT, attributes={"key": None, "serial": serial, "n_chunks": n}, overwrite=True)
+        partials = g.create_array(
+            L.PARTIALS,
+            shape=(n, *shape),
+            chunks=(1, *shape),
+            dtype="complex128",
+            fill_value=0,
+            compressors=_compressor(),
+            chunk_key_encoding=_FLAT_KEYS,
+        )
+        ledger = g.create_array(
+            L.LEDGER,
+            shape=(n, len(L.LEDGER_COLUMNS)),
+            chunks=(1, len(L.LEDGER_COLUMNS)),
+            dtype="int64",
+            fill_value=0,
+            attributes={"columns": list(L.LEDGER_COLUMNS)},
+            chunk_key_encoding=_FLAT_KEYS,
+        )
+        state = _InflightArrays(self, g, partials, ledger)
         self._inflight_state = state
         return state
 
@@ -545,7 +752,7 @@ class InflightPass:
 
         _run_async(write_in_order())
         self.rows[k] = row
-        witness(self.key, [k])
+        witness(f"{self.depth.group.path}/{self.key}", [k])
         crash_point("chunk-recorded")
 
     def completions(self) -> list[int]:
@@ -557,26 +764,56 @@ class InflightPass:
 
 
 def inflight_summary(depth_group: zarr.Group) -> dict | None:
-    """{"key", "kind", "serial", "chunks_done", "n_chunks", "wall_s"} of the pass in flight, or None."""
+    """{"key", "kind", "step", "serial", "chunks_done", "n_chunks", "wall_s"} of the pass in flight, or None."""
     try:
         g = depth_group[L.INFLIGHT]
         attrs = g.attrs.asdict()
         if not attrs.get("key"):
             return None
-        try:
-            if attrs["key"] in depth_group[L.PASSES]:
-                return None  # finished and cached
-        except KeyError:
-            pass
         rows = np.asarray(g[L.LEDGER][...])
     except Exception:  # noqa: BLE001 - missing, or being written
         return None
     mine = rows[:, L.SERIAL] == int(attrs.get("serial", 0))
+    if mine.all():
+        return None  # finished (its sum is in a batch, or about to be)
     return {
         "key": attrs["key"],
         "kind": attrs.get("kind"),
+        "step": attrs.get("step"),
         "serial": int(attrs.get("serial", 0)),
         "chunks_done": int(mine.sum()),
         "n_chunks": int(rows.shape[0]),
         "wall_s": float(rows[mine, L.WALL_US].sum()) / 1e6,
     }
+
+
+def write_cost_probe(folder: Path, *, repeats: int, median, rng) -> dict:
+    """Median seconds of the store's checkpoint writes (benchmarks/bench_store.py).
+
+    ``batch_of_N_p8``: one batch of N pass sums of depth 8 ((18, 17) complex each);
+    ``chunk_record_p8`` / ``_p16``: one chunk partial plus its ledger row.
+    """
+    out = {}
+    group = zarr.create_group(store=str(folder / "probe.zarr"), zarr_format=3, attributes={"p": 8, "repairs": []})
+    depth = DepthStore(group, 8, folder / "probe.zarr")
+    for n in (1, 64):
+        times = []
+        for _ in range(max(3, repeats // 10)):
+            for i in range(n):
+                depth.add_pass(f"k{rng.integers(1 << 62)}", rng.standard_normal((18, 17)) + 0j,
+                               {"kind": "forward", "step": 8, "n_chunks": 1, "completions": [1], "wall_s": 0.0})
+            t0 = time.perf_counter()
+            depth.flush()
+            times.append(time.perf_counter() - t0)
+        out[f"batch_of_{n}_p8_s"] = median(times)
+    for p in (8, 16):
+        shape = (2 * p + 2, 2 * p + 1)
+        inflight = depth.inflight(f"probe{p}", {"fingerprint": "probe"}, repeats, shape)
+        times = []
+        for k in range(repeats):
+            part = rng.standard_normal(shape) + 1j * rng.standard_normal(shape)
+            t0 = time.perf_counter()
+            inflight.record(k, part, 0)
+            times.append(time.perf_counter() - t0)
+        out[f"chunk_record_p{p}_s"] = median(times)
+    return out

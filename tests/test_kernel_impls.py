@@ -3,13 +3,13 @@
 Sources of the checked quantities (the definitions, evaluated by brute force over
 all 2^(2p+1) paths in tests/dense_reference.py and below):
 - the pass G[j,k] = sum_a w(a) a_j a_k, w = f exp(-1/2 a^T M a), and V_p:
-  Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Sec. 4; Basso, Gamarnik,
+  Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022); Basso, Gamarnik,
   Mei, Zhou, FOCS 2022 (arXiv:2204.10306) for mixed q;
 - the adjoint pass Q[j,k] = sum_a w s a_j a_k, s = a^T Gbar a, and the link-derivative
   sums D_t = sum_a (d f / d b at link t) exp(-1/2 a^T M a) s(a): the chain rule applied
-  to the same definitions (docs/method.md, "Gradient");
+  to the same definitions (common practice);
 - invariants (sum w = 1, G symmetric with unit diagonal, G[-j,-k] = conj G[j,k],
-  real V): Farhi, Goldstone, Gutmann, Zhou (2022), Sec. 4 and App. A.
+  real V): Farhi, Goldstone, Gutmann, Zhou (2022), properties of their iteration.
 Tolerances: 1e-12 relative, the agreement asked of every implementation.
 """
 

@@ -19,7 +19,7 @@ import json
 import math
 import os
 import subprocess
-from pathlib import Path
+import sys
 
 import numpy as np
 import pytest
@@ -41,7 +41,6 @@ from leadline.kernels.reference import (
 
 SK_PARISI = 0.763166  # Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002)
 REM_LIMIT = math.sqrt(2 * math.log(2))  # Derrida, Phys. Rev. B 24, 2613 (1981)
-REPO = Path(__file__).resolve().parents[1]
 
 
 # ------------------------------------------------------------ the functional itself
@@ -201,7 +200,7 @@ def _run(args, env_extra=None):
     env = dict(os.environ)
     env.update(env_extra or {})
     return subprocess.run(
-        [str(REPO / ".venv" / "bin" / "leadline"), "reference", *args],
+        [sys.executable, "-m", "leadline", "reference", *args],
         capture_output=True, text=True, env=env, timeout=300,
     )
 

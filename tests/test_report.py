@@ -184,7 +184,53 @@ def test_json_is_one_object_with_the_stored_values(study, report):
     assert sk["extrapolation"]["limit"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
 
 
-def test_plots_open_with_the_documented_size(report, tmp_path):
+@pytest.fixture()
+def drawn(monkeypatch):
+    """The matplotlib figures written by write_plots, captured as they are saved (in order)."""
+    from matplotlib.figure import Figure
+
+    figures = []
+    save = Figure.savefig
+
+    def recording_savefig(fig, *args, **kwargs):
+        figures.append(fig)
+        return save(fig, *args, **kwargs)
+
+    monkeypatch.setattr(Figure, "savefig", recording_savefig)
+    return figures
+
+
+def _value_markers(ax):
+    """The marker-only series of the value plot (one per dense ensemble): label -> (x, y)."""
+    return {line.get_label().split(":")[0]: (list(line.get_xdata()), list(line.get_ydata()))
+            for line in ax.get_lines() if line.get_linestyle() == "None" and line.get_marker() == "o"}
+
+
+def check_figures(figures, study, report):
+    """Axes, series count and plotted data of both figures against the stored values."""
+    value_fig, angle_fig = figures
+    (ax,) = [a for a in value_fig.axes if a.get_xlabel()]  # (the secondary depth axis has no data)
+    assert ax.get_xlabel().startswith("1/p") and ax.get_ylabel().startswith("V_p*")
+    dense = [e.label for e in report.ensembles if e.kind == "dense" and e.rows]
+    markers = _value_markers(ax)
+    assert sorted(markers) == sorted(dense)  # one series of stored values per dense ensemble
+    for label in dense:
+        stored = study.depths(label)
+        assert markers[label][0] == [1.0 / d["p"] for d in stored]
+        assert markers[label][1] == [d["value"] for d in stored]
+    # the SK ground state line, dashed, at the Parisi value (Crisanti, Rizzo 2002)
+    horizontal = [line for line in ax.get_lines() if line.get_linestyle() == "--" and len(set(line.get_ydata())) == 1]
+    assert any(line.get_ydata()[0] == pytest.approx(SK_PARISI) for line in horizontal)
+    # angle schedules: a row of (gamma, beta) panels per ensemble, one curve per finished depth
+    assert len(angle_fig.axes) == 2 * len(report.ensembles)
+    for row, ens in enumerate(report.ensembles):
+        ax_g, ax_b = angle_fig.axes[2 * row], angle_fig.axes[2 * row + 1]
+        stored = study.depths(ens.label)
+        assert [list(line.get_ydata()) for line in ax_g.get_lines()] == [d["gamma"] for d in stored]
+        assert [list(line.get_ydata()) for line in ax_b.get_lines()] == [d["beta"] for d in stored]
+
+
+def test_plots_open_with_the_documented_size_and_show_the_stored_values(study, report, tmp_path, drawn):
     from matplotlib.image import imread
 
     out = tmp_path / "study.png"
@@ -195,8 +241,7 @@ def test_plots_open_with_the_documented_size(report, tmp_path):
     assert main_img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
     angles = imread(paths[1])
     assert angles.shape[:2] == (round(3.2 * FIGURE_DPI) * len(report.ensembles), 1000)
-    # not blank: the figure has drawn content of several colours
-    assert np.unique(main_img.reshape(-1, main_img.shape[-1]), axis=0).shape[0] > 20
+    check_figures(drawn, study, report)
 
 
 # ----------------------------------------------------------- command line
@@ -250,10 +295,70 @@ def test_bad_input_exits_2_and_writes_nothing(store_path, tmp_path, capsys, args
     assert sorted(p.name for p in tmp_path.iterdir()) == before
 
 
-def test_plot_command(store_path, tmp_path, capsys):
+def test_plot_command(store_path, study, report, tmp_path, capsys, drawn):
     out = tmp_path / "fig.png"
     main(["plot", str(store_path), "--output", str(out)])
-    assert out.exists() and (tmp_path / "fig-angles.png").exists()
+    assert capsys.readouterr().out.splitlines() == [f"wrote {out}", f"wrote {tmp_path / 'fig-angles.png'}"]
+    check_figures(drawn, study, report)
+
+
+INCOMPLETE_SPEC = """
+[study]
+name = "incomplete"
+store = "inc.zarr"
+[depths]
+pmax = 2
+[optimizer]
+restarts = 0
+[compute]
+executor = "inprocess"
+[[ensemble]]
+label = "sk"
+xi = "2:0.5"
+[[ensemble]]
+label = "mc"
+kind = "sparse"
+q = 2
+degree = 3
+"""
+
+
+@pytest.fixture(scope="module")
+def incomplete_store(tmp_path_factory):
+    """A store whose sweep was killed (SIGKILL) as its last depth started: sk p = 1, 2 and
+    mc p = 1 finished, mc p = 2 marked running."""
+    import os
+    import signal
+    import subprocess
+    import sys
+
+    folder = tmp_path_factory.mktemp("incomplete")
+    (folder / "study.toml").write_text(INCOMPLETE_SPEC)
+    env = {**os.environ, "LEADLINE_CRASH_AT": "depth-started:4"}
+    r = subprocess.run([sys.executable, "-m", "leadline", "sweep", str(folder / "study.toml"), "--quiet"],
+                       env=env, capture_output=True, text=True, timeout=300)
+    assert r.returncode == -signal.SIGKILL, r.stderr
+    assert not open_study(folder / "inc.zarr").progress()["complete"]
+    return folder / "inc.zarr"
+
+
+def test_table_and_plot_of_an_incomplete_store_show_the_finished_depths(incomplete_store, tmp_path, capsys, drawn):
+    study = open_study(incomplete_store)
+    assert [d["p"] for d in study.depths("sk")] == [1, 2] and [d["p"] for d in study.depths("mc")] == [1]
+    main(["table", str(incomplete_store), "--format", "json"])
+    obj = json.loads(capsys.readouterr().out)
+    sk, mc = obj["ensembles"]
+    assert [d["p"] for d in sk["depths"]] == [1, 2] and [d["p"] for d in mc["depths"]] == [1]
+    # Quantum 6, 759 (2022), Table 1; MaxCut p = 1: 1/2 + 1/(3 sqrt 3) (Wang, Hadfield, Jiang,
+    # Rieffel, Phys. Rev. A 97, 022304 (2018))
+    assert [d["value"] for d in sk["depths"]] == pytest.approx([SK_PUBLISHED[1], SK_PUBLISHED[2]], abs=6e-5)
+    assert abs(mc["depths"][0]["value"] - (0.5 + 1 / (3 * math.sqrt(3)))) < 1e-6
+    main(["table", str(incomplete_store)])
+    text = capsys.readouterr().out
+    assert "fewer than two finished depths: no extrapolation" in text.split("## mc")[1]
+    out = tmp_path / "inc.png"
+    main(["plot", str(incomplete_store), "--output", str(out)])
+    check_figures(drawn, study, build_report(study))
 
 
 # ------------------------------------------------- published numbers only

@@ -5,10 +5,13 @@ Sources of the checks:
   constraint (independent code below: statevector, and a density matrix on the inner
   spins with the outermost spins traced out by enumeration).
 - Walsh-Hadamard transform: scipy.linalg.hadamard (Sylvester construction).
-- MaxCut, 3-regular, p = 1 optimum 0.6925: Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014).
 - MaxCut, D-regular triangle-free, p = 1: Wang, Hadfield, Jiang, Rieffel, PRA 97, 022304
-  (2018): optimum 1/2 + (1/2) D^(-1/2) ((D-1)/D)^((D-1)/2) at tan(gamma) = 1/sqrt(D-1),
-  beta = pi/8.
+  (2018): edge expectation 1/2 + (1/2) sin(4 beta) sin(gamma) cos(gamma)^(D-1), optimum
+  1/2 + (1/2) D^(-1/2) ((D-1)/D)^((D-1)/2) at tan(gamma) = 1/sqrt(D-1), beta = pi/8
+  (D = 3: 1/2 + 1/(3 sqrt 3) = 0.692450, quoted to 4 decimals, 0.6925, by Farhi, Goldstone,
+  Gutmann, arXiv:1411.4028 (2014)).
+- MaxCut, 3-regular, large girth, p = 4: 0.8169 (from memory; Basso, Farhi, Marwaha,
+  Villalonga, Zhou, TQC 2022 (arXiv:2110.14206) tabulate these values, not checked here).
 - MaxCut, 3-regular, large girth, optimized p = 2: 0.7559, p = 3: 0.7924: Wurtz, Love,
   PRA 103, 042612 (2021).
 - Universality: Basso, Gamarnik, Mei, Zhou, FOCS 2022 (arXiv:2204.10306): with
@@ -221,10 +224,14 @@ def test_split_transform_on_a_real_dask_cluster():
 
     g, b = [0.3, 0.5, 0.6, 0.7], [0.5, 0.4, 0.3, 0.1]
     base = evaluate_sparse(3, 4, g, b, gradient=True)
-    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, Client(cluster) as client:
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address="127.0.0.1:0") as cluster, Client(cluster) as client:
         ev = evaluate_sparse(3, 4, g, b, gradient=True, n_high=4, run_map=lambda f, blocks: client.gather(client.map(f, blocks)))
-    assert ev.value == base.value
-    assert np.array_equal(ev.gradient["gamma"], base.gradient["gamma"]) and np.array_equal(ev.gradient["beta"], base.gradient["beta"])
+    # the worker runs BLAS single-threaded (the Hadamard blocks are BLAS products), this process
+    # may not: the sums can round differently in the last bit, never more
+    assert abs(ev.value - base.value) <= 1e-14
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(ev.gradient[k], base.gradient[k], rtol=0, atol=1e-13)
 
 
 def test_complex_log1p_small_arguments():
@@ -248,7 +255,7 @@ def test_maxcut_p1_closed_form(D):
     # optimal angles of the same paper: tan(gamma) = 1/sqrt(D-1), beta = pi/8
     g = math.atan(1 / math.sqrt(D - 1))
     assert abs(evaluate_sparse(2, D, [g], [math.pi / 8]).value - wang_p1(D)) < 1e-12
-    # angle-dependent form 1/2 + 1/2 sin(4b) sin(g) cos(g)^(D-1) (same paper; from memory)
+    # angle-dependent form 1/2 + 1/2 sin(4b) sin(g) cos(g)^(D-1) (same paper, triangle-free graphs)
     rng = np.random.default_rng(D)
     g, b = rng.uniform(-1.5, 1.5), rng.uniform(-1.5, 1.5)
     ref = 0.5 + 0.5 * math.sin(4 * b) * math.sin(g) * math.cos(g) ** (D - 1)
@@ -262,11 +269,11 @@ def test_maxcut_3regular_optimized_ladder():
         prev = (r.gamma, r.beta)
         values.append(r.value)
         assert r.converged
-    assert round(values[0], 4) == 0.6925  # Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014)
+    assert round(wang_p1(3), 4) == 0.6925  # the closed form gives the 4 decimals of FGG (2014)
     assert abs(values[0] - wang_p1(3)) < 1e-10  # Wang et al., PRA 97, 022304 (2018)
     assert round(values[1], 4) == 0.7559  # Wurtz, Love, PRA 103, 042612 (2021)
     assert round(values[2], 4) == 0.7924  # Wurtz, Love, PRA 103, 042612 (2021)
-    assert abs(values[3] - 0.8169) < 1e-4  # p = 4 value from memory
+    assert abs(values[3] - 0.8169) < 1e-4  # p = 4: from memory (see the module docstring)
 
 
 # ----------------------------------------------------------------------------- universality

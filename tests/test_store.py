@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 import zarr
 
-from leadline.kernels.chunks import PassInput, chunk_partial
+from leadline.kernels.chunks import PassInput, chunk_partial, run_pass_inprocess
 from leadline.kernels.iteration import evaluate
 from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.plan import ChunkPlan
@@ -45,7 +45,8 @@ G3 = np.array([0.41, 0.55, 0.62])
 B3 = np.array([0.52, 0.37, 0.19])
 
 
-def _spec(store: Path) -> dict:
+def _spec(store: Path, interval_s: float = 0.0) -> dict:
+    # interval 0: every pass and every chunk is written at once (the mechanics under test here)
     return {
         "spec_version": 1,
         "name": "unit",
@@ -53,15 +54,26 @@ def _spec(store: Path) -> dict:
         "depths": {"pmin": 1, "pmax": 3},
         "optimizer": {"restarts": 0, "seed": 0, "gtol": 1e-7, "maxiter": 500},
         "compute": {"executor": "inprocess"},
+        "checkpoint": {"interval_s": interval_s, "keep_passes": False},
         "ensembles": [{"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
                        "reference": {"ground_state": None, "source": None}}],
     }
 
 
-def new_store(tmp_path: Path) -> StudyStore:
+def new_store(tmp_path: Path, interval_s: float = 0.0) -> StudyStore:
     path = tmp_path / "unit.zarr"
-    spec = _spec(path)
+    spec = _spec(path, interval_s)
     return StudyStore.create(path, name="unit", spec=spec, spec_toml="", ensembles=spec["ensembles"])
+
+
+def pass_record(store_path: Path, p: int, key: str) -> dict:
+    """The record of cached pass ``key`` of depth p, found in the batch arrays with plain zarr."""
+    root = zarr.open_group(str(store_path), mode="r")
+    for _name, arr in root[f"ensembles/sk/{L.depth_name(p)}/passes"].arrays():
+        for entry in arr.attrs["entries"]:
+            if entry["key"] == key:
+                return entry
+    raise KeyError(key)
 
 
 class CountingRunner:
@@ -82,21 +94,47 @@ class CountingRunner:
         self.inner.run_chunks(inp, plan, done, counted)
 
 
-def test_checkpointed_pass_equals_inprocess_bit_for_bit(tmp_path):
+def pass_log(plan, gradient=True):
+    """(step, plan) of every pass an in-process evaluation at (G3, B3) runs, in order."""
+    log = []
+
+    def logged(inp, step_plan):
+        log.append((inp.p, step_plan))
+        return run_pass_inprocess(inp, step_plan)
+
+    evaluate(SK, G3, B3, plan=plan, run_pass=logged, gradient=gradient)
+    return log
+
+
+@pytest.mark.parametrize("plan", [PLAN3, ChunkPlan(3, 4, 2, flip=True)], ids=["no-flip", "flip"])
+def test_checkpointed_pass_equals_inprocess_bit_for_bit(tmp_path, plan):
+    log = pass_log(plan)
+    assert [m for m, _ in log] == [1, 2, 3, 3, 2, 1]  # growing contour: each step on its own contour
+    chunks = sum(q.n_chunks for _, q in log)
     with new_store(tmp_path) as store:
-        depth = store.depth("sk", 3, PLAN3)
+        depth = store.depth("sk", 3, plan)
         runner = CountingRunner()
         cp = CheckpointedPasses(depth, runner)
-        ref = evaluate(SK, G3, B3, plan=PLAN3, gradient=True)
-        ev = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        ref = evaluate(SK, G3, B3, plan=plan, gradient=True)
+        ev = evaluate(SK, G3, B3, plan=plan, run_pass=cp.run_pass, gradient=True)
         assert ev.value == ref.value
         assert np.array_equal(ev.gradient["gamma"], ref.gradient["gamma"])
         assert np.array_equal(ev.gradient["beta"], ref.gradient["beta"])
-        assert len(runner.computed) == 7 * PLAN3.n_chunks  # 3 forward + 4 backward passes
-        # asked again: every pass from the cache, nothing computed
-        again = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
-        assert again.value == ref.value and len(runner.computed) == 7 * PLAN3.n_chunks
-        assert cp.stats.passes_from_cache == 7
+        assert len(runner.computed) == chunks
+        # asked again: every pass from the store, nothing computed
+        again = evaluate(SK, G3, B3, plan=plan, run_pass=cp.run_pass, gradient=True)
+        assert again.value == ref.value and len(runner.computed) == chunks
+        assert cp.stats.passes_from_cache == len(log)
+    # every pass recorded with its own step and its own plan (flip explicit)
+    with StudyStore.open(tmp_path / "unit.zarr") as store:
+        records = store.depth("sk", 3, plan).pass_records()
+        assert sorted((r["step"], r["kind"]) for r in records) == sorted(
+            (m, kind) for (m, _), kind in zip(log, ["forward"] * 3 + ["backward"] * 3))
+        for r in records:
+            step_plan = next(q for m, q in log if m == r["step"])
+            assert r["plan"] == L.plan_json(step_plan) and r["plan"]["flip"] is plan.flip
+            assert r["shape"] == [2 * r["step"] + 2, 2 * r["step"] + 1]
+            assert r["paths"] == step_plan.path_visits
 
 
 def test_sk_p1_value_through_store(tmp_path):
@@ -129,7 +167,8 @@ def test_interrupted_pass_resumes_with_missing_chunks_only(tmp_path):
         total = CheckpointedPasses(store.depth("sk", 3, PLAN3), second).run_pass(inp, PLAN3)
         assert [k for _, k in second.computed] == [3, 4, 5, 6, 7]
         assert np.array_equal(total, expected)  # chunk-order sum, bit for bit
-        attrs = store.root[f"ensembles/sk/p003/passes/{L.pass_key(inp, PLAN3)}"].attrs.asdict()
+        attrs = pass_record(store.path, 3, L.pass_key(inp, PLAN3))
+        assert attrs["step"] == 3 and attrs["plan"] == L.plan_json(PLAN3) and attrs["plan"]["flip"] is False
         assert attrs["completions"] == [1] * PLAN3.n_chunks
         assert attrs["crc32"] == L.checksum(total)
 
@@ -163,7 +202,7 @@ def test_damaged_partial_is_detected_and_recomputed(tmp_path, damage):
         assert np.array_equal(total, ref)
         repairs = depth.group.attrs["repairs"]
         assert [(r["what"], r["chunk"]) for r in repairs] == [("chunk recomputed", 2)]
-        completions = store.root[f"ensembles/sk/p003/passes/{L.pass_key(inp, PLAN3)}"].attrs["completions"]
+        completions = pass_record(store.path, 3, L.pass_key(inp, PLAN3))["completions"]
         assert completions == [1, 1, 2, 1, 1, 1, 1, 1]  # the repaired chunk is the only one computed twice
 
 
@@ -173,7 +212,7 @@ def test_damaged_pass_cache_entry_is_dropped_and_recomputed(tmp_path):
     with new_store(tmp_path) as store:
         good = CheckpointedPasses(store.depth("sk", 3, PLAN3)).run_pass(inp, PLAN3)
     key = L.pass_key(inp, PLAN3)
-    chunk = path / "ensembles/sk/p003/passes" / key / "c.0.0"
+    chunk = path / "ensembles/sk/p003/passes" / L.batch_name(1) / "c.0"
     data = bytearray(chunk.read_bytes())
     data[-3] ^= 0x01
     chunk.write_bytes(bytes(data))
@@ -193,14 +232,18 @@ def test_cached_forward_pass_must_satisfy_sum_w(tmp_path):
     """A cache entry whose checksum matches but whose sum of weights is off is not trusted."""
     inp = _forward_input()
     with new_store(tmp_path) as store:
-        depth = store.depth("sk", 3, PLAN3)
-        CheckpointedPasses(depth).run_pass(inp, PLAN3)
+        CheckpointedPasses(store.depth("sk", 3, PLAN3)).run_pass(inp, PLAN3)
         key = L.pass_key(inp, PLAN3)
-        arr = depth.group[f"passes/{key}"]
+        depth = store.depth("sk", 3, PLAN3)  # a new session reads the batch from disk
+        arr = depth.group[f"passes/{L.batch_name(1)}"]
+        entries = arr.attrs["entries"]
+        assert [e["key"] for e in entries] == [key] and entries[0]["offset"] == 0
         bad = np.array(arr[...])
-        bad[0, 0] += 1e-6  # a lost or doubled chunk would do this
+        bad[0] += 1e-6  # entry (0, 0) of the only pass: a lost or doubled chunk would do this
         arr[...] = bad
-        arr.attrs.update({"crc32": L.checksum(bad)})
+        entries[0]["crc32"] = L.checksum(bad.reshape(entries[0]["shape"]))
+        arr.attrs.update({"entries": entries})
+        depth = store.depth("sk", 3, PLAN3)
         assert depth.cached_pass(key, backward=False) is None
         assert "sum of path weights" in depth.group.attrs["repairs"][-1]["detail"]
 
@@ -269,25 +312,37 @@ def test_lock_of_other_host_is_respected(tmp_path):
 
 
 def test_concurrent_takeover_of_a_stale_lock_has_one_winner(tmp_path):
-    """Several processes race for the same stale lock: exactly one gets it."""
+    """Several processes race for the same stale lock: exactly one gets it.
+
+    The winner keeps the lock (and stays alive) until every racer has answered, so a late
+    racer cannot find a lock gone stale again; no step depends on elapsed time.
+    """
     d = tmp_path / "s"
     d.mkdir()
     _write_lock(d, pid=_dead_pid(), host=socket.gethostname(), process_start=1.0, token="old")
     code = (
-        "import sys, time; from leadline.storage import StoreLock, StoreLockedError\n"
+        "import sys; from leadline.storage import StoreLock, StoreLockedError\n"
         "print('ready', flush=True); sys.stdin.readline()\n"
-        "try:\n    StoreLock(sys.argv[1]).acquire(); print('won', flush=True); time.sleep(1.0)\n"
-        "except StoreLockedError: print('refused', flush=True)\n"
+        "try:\n    lock = StoreLock(sys.argv[1]).acquire(); print('won', flush=True)\n"
+        "except StoreLockedError: lock = None; print('refused', flush=True)\n"
+        "sys.stdin.readline()\n"
+        "if lock is not None: lock.release()\n"
     )
     procs = [subprocess.Popen([sys.executable, "-c", code, str(d)], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                               text=True) for _ in range(3)]
-    for proc in procs:
-        assert proc.stdout.readline().strip() == "ready"
-    for proc in procs:  # release them together
-        proc.stdin.write("go\n")
-        proc.stdin.flush()
-    outcomes = sorted(p.communicate(timeout=60)[0].strip() for p in procs)
-    assert outcomes == ["refused", "refused", "won"]
+    try:
+        for proc in procs:
+            assert proc.stdout.readline().strip() == "ready"
+        for proc in procs:  # release them together
+            proc.stdin.write("go\n")
+            proc.stdin.flush()
+        outcomes = sorted(proc.stdout.readline().strip() for proc in procs)  # every racer has answered
+        assert outcomes == ["refused", "refused", "won"]
+        assert json.loads((d / LOCK_NAME).read_text())["token"] != "old"
+    finally:
+        for proc in procs:
+            proc.communicate("done\n", timeout=60)
+    assert not (d / LOCK_NAME).exists()  # the winner released it
 
 
 # ---------------------------------------------------------------------------- read API
@@ -307,6 +362,8 @@ restarts = 0
 [compute]
 executor = "inprocess"
 memory-mb = 0.004
+[checkpoint]
+keep-passes = true
 [[ensemble]]
 label = "sk"
 xi = "2:0.5"
@@ -337,7 +394,7 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
 
     # the same numbers with plain zarr, following the documented layout
     root = zarr.open_group(str(tmp_path / "api.zarr"), mode="r")
-    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 1
+    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 2
     g = root["ensembles/sk/p002"]
     assert g.attrs["state"] == "done"
     assert g.attrs["result"]["value"] == depths[1]["value"]
@@ -345,11 +402,88 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
     assert np.array_equal(g["beta"][...], np.array(depths[1]["beta"]))
     assert root["ensembles/sk"].attrs["reference"]["ground_state"] == 0.763166
     assert "inflight" not in g  # removed once the depth is done
-    passes = list(g["passes"].arrays())
-    assert len(passes) == depths[1]["evaluations"] * 5  # 2p+1 passes per evaluation with gradient
-    for key, arr in passes:
-        attrs = arr.attrs.asdict()
-        assert key.startswith(attrs["fingerprint"]) and attrs["crc32"] >= 0
-        assert attrs["completions"] == [1] * attrs["n_chunks"] and arr.shape == (6, 5)
+    # keep-passes: the depth's passes stay, in batch arrays; their entries index the flat data
+    entries = []
+    for name, arr in g["passes"].arrays():
+        assert L.parse_batch_name(name) is not None
+        flat = arr[...]
+        assert arr.attrs["crc32"] == L.checksum(flat)
+        for e in arr.attrs["entries"]:
+            m = e["step"]
+            assert e["shape"] == [2 * m + 2, 2 * m + 1] and 1 <= m <= 2
+            matrix = flat[e["offset"]: e["offset"] + (2 * m + 2) * (2 * m + 1)].reshape(e["shape"])
+            assert L.checksum(matrix) == e["crc32"] and e["key"].startswith(e["fingerprint"])
+            assert e["completions"] == [1] * e["n_chunks"] and e["kind"] in ("forward", "backward")
+            if e["kind"] == "forward":  # sum of the path weights is 1 (every pass checks it)
+                assert np.allclose(np.diag(matrix[: 2 * m + 1]), 1.0, atol=1e-12)
+            entries.append(e)
+    assert len(entries) == g.attrs["timings"]["passes"]
     progress = study.progress()
     assert progress["complete"] and progress["estimated_seconds_left"] == 0.0
+    files = [f for f in (tmp_path / "api.zarr").rglob("*") if f.is_file()]
+    assert progress["store"] == {"files": len(files), "bytes": sum(f.stat().st_size for f in files)}
+    from leadline.jobs.cmd_sweep import status_text
+
+    assert f"in {len(files)} files" in status_text(progress).splitlines()[1]
+
+
+# ---------------------------------------------------------------------------- checkpoint policy
+def test_small_passes_wait_for_their_batch_and_are_recomputed_to_the_same_bits(tmp_path):
+    """Default kind of policy: passes far cheaper than the interval are written in one batch."""
+    path = tmp_path / "unit.zarr"
+    ref = evaluate(SK, G3, B3, plan=PLAN3, gradient=True)
+    log = pass_log(PLAN3)
+    chunks = sum(q.n_chunks for _, q in log)
+    with new_store(tmp_path, interval_s=30.0) as store:
+        runner = CountingRunner()
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
+        ev = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert ev.value == ref.value and len(runner.computed) == chunks
+        assert cp.stats.batches_written == 0 and cp.stats.passes_ledgered == 0
+        assert not (path / "ensembles/sk/p003/passes").exists()  # nothing written yet
+        assert not (path / "ensembles/sk/p003/inflight").exists()
+    # a kill now loses these passes: the next session computes them again, to the same bits
+    with StudyStore.open(path) as store:
+        runner = CountingRunner()
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
+        again = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert again.value == ref.value and np.array_equal(again.gradient["beta"], ref.gradient["beta"])
+        assert len(runner.computed) == chunks
+        cp.flush()  # what the sweep does when stopped cleanly (or when the interval is reached)
+        batches = sorted(p.name for p in (path / "ensembles/sk/p003/passes").iterdir() if p.is_dir())
+        assert batches == [L.batch_name(1)]
+        assert len([f for f in (path / "ensembles/sk/p003/passes").rglob("*") if f.is_file()]) == 3  # 2 + group
+    with StudyStore.open(path) as store:
+        runner = CountingRunner()
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
+        third = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
+        assert third.value == ref.value and runner.computed == [] and cp.stats.passes_from_cache == len(log)
+
+
+@pytest.mark.parametrize("seconds_per_path, ledger", [(1e-2, True), (1e-9, False)])
+def test_a_pass_expected_to_take_the_interval_keeps_a_chunk_ledger(tmp_path, seconds_per_path, ledger):
+    inp = _forward_input()
+    with new_store(tmp_path, interval_s=1.0) as store:
+        cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), CountingRunner())
+        cp._rate = (1.0, seconds_per_path)  # as if measured on an earlier pass
+        assert (cp.expected_seconds(PLAN3) >= 1.0) is ledger
+        cp.run_pass(inp, PLAN3)
+        inflight = tmp_path / "unit.zarr/ensembles/sk/p003/inflight"
+        assert inflight.exists() is ledger
+        assert cp.stats.passes_ledgered == int(ledger)
+        # a ledgered pass's sum is written at once; a short one waits for its batch
+        assert (tmp_path / "unit.zarr/ensembles/sk/p003/passes").exists() is ledger
+
+
+def test_policy_flushes_before_a_pass_that_would_exceed_the_interval():
+    from leadline.storage import CheckpointPolicy
+
+    policy = CheckpointPolicy(interval_s=30.0)
+    assert not policy.flush_before(0.0, 100.0)  # nothing waiting
+    assert policy.flush_before(20.0, 15.0) and not policy.flush_before(20.0, 5.0)
+    assert policy.flush_after(30.0) and not policy.flush_after(29.9)
+    assert not policy.chunk_ledger(100.0, 1)  # one chunk: nothing to save inside the pass
+    every = CheckpointPolicy(interval_s=0.0)
+    assert every.flush_after(0.0) and every.chunk_ledger(0.0, 2)
+    assert CheckpointPolicy.from_spec({"checkpoint": {"interval_s": 5, "keep_passes": True}}) == CheckpointPolicy(5.0, True)
+    assert CheckpointPolicy.from_spec({}) == CheckpointPolicy()

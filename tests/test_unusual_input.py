@@ -255,8 +255,9 @@ def stores(tmp_path_factory):
     (base / "empty.toml").write_text(
         '[study]\nname = "e"\nstore = "empty.zarr"\n[depths]\npmax = 1\n[[ensemble]]\nlabel = "sk"\nxi = "2:0.5"\n'
     )
-    # storage/faults.py: SIGKILL at the first cached pass, so the depth stays unfinished
-    r = run("sweep", "empty.toml", "--quiet", cwd=base, env={"LEADLINE_CRASH_AT": "pass-cached:1"})
+    # storage/faults.py: SIGKILL after the first computed pass, so the depth stays unfinished
+    # (with the default checkpoint interval a depth this small writes no pass batch at all)
+    r = run("sweep", "empty.toml", "--quiet", cwd=base, env={"LEADLINE_CRASH_AT": "pass-computed:1"})
     assert r.returncode != 0 and (base / "empty.zarr").is_dir()
     return base
 
