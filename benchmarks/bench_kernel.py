@@ -14,7 +14,7 @@ that measurement's own; BLAS pinned to one thread so figures are per core):
   (and p = 12 with --optimize-p12);
 * a probe of the machine: complex GEMM rate (zgemm), memory bandwidth, elementwise
   complex multiply rate, and a fused numba loop if numba is installed, which gives
-  the ceiling for the kernel (see /work/notes/performance.md for the arithmetic).
+  the ceiling for the kernel (docs/performance.md, "Ceiling", has the arithmetic).
 
 ``run(...)`` returns a JSON-ready dict; benchmarks/run.py prints and stores it.
 """

@@ -3,36 +3,47 @@
 The kernels never import Dask; this package supplies their ``run_pass``.
 See :mod:`leadline.cluster.executor` for the executor interface and the
 store hook (``done=`` / ``on_chunk=``).
+
+The names below are imported on first use (PEP 562), so that importing
+``leadline.cluster.settings`` (as the command line does for its options)
+does not load the executor machinery.
 """
 
-from .errors import BatchConfigError, ChunkFailure, ExecutorConfigError, ExecutorError, SchedulerUnreachable
-from .executor import (
-    AutoExecutor,
-    DaskExecutor,
-    Executor,
-    InProcessExecutor,
-    connect_scheduler,
-    open_executor,
-    start_local_cluster,
-)
-from .progress import ProgressDisplay, progress_wanted
-from .settings import MODES, ComputeSettings
+from __future__ import annotations
 
-__all__ = [
-    "AutoExecutor",
-    "BatchConfigError",
-    "ChunkFailure",
-    "ComputeSettings",
-    "DaskExecutor",
-    "Executor",
-    "ExecutorConfigError",
-    "ExecutorError",
-    "InProcessExecutor",
-    "MODES",
-    "ProgressDisplay",
-    "SchedulerUnreachable",
-    "connect_scheduler",
-    "open_executor",
-    "progress_wanted",
-    "start_local_cluster",
-]
+import importlib
+
+_WHERE = {
+    "AutoExecutor": "executor",
+    "BatchConfigError": "errors",
+    "ChunkFailure": "errors",
+    "ComputeSettings": "settings",
+    "DaskExecutor": "executor",
+    "Executor": "executor",
+    "ExecutorConfigError": "errors",
+    "ExecutorError": "errors",
+    "InProcessExecutor": "executor",
+    "MODES": "settings",
+    "ProgressDisplay": "progress",
+    "SchedulerUnreachable": "errors",
+    "connect_scheduler": "executor",
+    "open_executor": "executor",
+    "progress_wanted": "progress",
+    "start_local_cluster": "executor",
+}
+
+__all__ = list(_WHERE)
+
+
+def __getattr__(name: str):
+    try:
+        module = _WHERE[name]
+    except KeyError:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}") from None
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

@@ -41,7 +41,7 @@ MODES = ("auto", "inprocess", "local", "scheduler", "batch")
 DEFAULT_CONNECT_TIMEOUT_S = 10.0
 
 # Switch point of the auto mode, measured with benchmarks/bench_cluster.py on
-# the 2-vCPU development machine (figures in docs/performance.md):
+# the 2-vCPU development machine (docs/performance.md, "Cluster overhead"):
 #   - starting a 2-worker LocalCluster: 1.3-2.3 s, once per run;
 #   - per-pass overhead of the LocalCluster (p = 6, where the work is ~1.4 ms):
 #     17-24 ms per pass (submit, transfer, ordered reduction);

@@ -2,12 +2,18 @@
 
 Each command lives in its own module with a ``register(app)`` function; the
 list below is the only place that knows them all.
+
+Start-up rule: importing this module (and so ``leadline --help``) must not load
+dask, distributed, zarr, matplotlib or scipy.optimize; the command modules
+import them inside the commands that use them (tests/test_startup.py guards it,
+benchmarks/bench_startup.py times it).
 """
 
 from __future__ import annotations
 
 import importlib
 import sys
+from typing import Optional
 
 import typer
 
@@ -22,7 +28,7 @@ app = typer.Typer(
         "Example: leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.3927"
     ),
     no_args_is_help=True,
-    add_completion=False,
+    add_completion=True,  # --install-completion / --show-completion (bash, zsh, fish, PowerShell)
     pretty_exceptions_enable=False,
     rich_markup_mode=None,
 )
@@ -44,8 +50,20 @@ def _register() -> None:
         importlib.import_module(name).register(app)
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        from leadline import __version__
+
+        typer.echo(f"leadline {__version__}")
+        raise typer.Exit()
+
+
 @app.callback()
-def _root() -> None:
+def _root(
+    version: Optional[bool] = typer.Option(
+        None, "--version", callback=_print_version, is_eager=True, help="Print the version and exit."
+    ),
+) -> None:
     """Exact infinite-size QAOA energies for mixed-spin glasses (see --help of each command)."""
 
 

@@ -3,16 +3,15 @@
 from __future__ import annotations
 
 import json
-import time
 from typing import Optional
 
 import typer
 
-from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
 from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
+from .api import optimize_ladder
 from .cost import COST_NOTE_SECONDS, check_cost
 from .errors import InputError
 from .parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
@@ -74,35 +73,20 @@ def optimize_command(
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
         typer.echo(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", err=True)
 
-    t0 = time.perf_counter()
-    ladder = []
-    budget = int(memory_mb * 2**20)
-    if initial is not None:
-        first = depth
-        previous = (initial.gamma, initial.beta)
-        previous_value = initial.value if initial.p == depth - 1 else None
-    else:
-        first, previous, previous_value = 1, None, None
-    result = None
     with compute.open_compute(settings) as ex:
-        for p in range(first, depth + 1):
-            result = optimize_depth(
-                mix,
-                p,
-                run_pass=ex.run_pass,
-                callback=lambda info, p=p: ex.progress.evaluation_done(info.get("value"), label=f"optimize p = {p}"),
-                plan=plan_chunks(p, budget),
-                previous=previous,
-                previous_value=previous_value,
-                restarts=restarts,
-                seed=seed,
-                gtol=gtol,
-                maxiter=maxiter,
-            )
-            ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
-            previous, previous_value = (result.gamma, result.beta), result.value
-    total_evals = sum(r["evaluations"] for r in ladder)
-    wall = time.perf_counter() - t0
+        run = optimize_ladder(
+            mix,
+            depth,
+            initial,
+            run_pass=ex.run_pass,
+            budget=int(memory_mb * 2**20),
+            restarts=restarts,
+            seed=seed,
+            gtol=gtol,
+            maxiter=maxiter,
+            on_evaluation=lambda value, p: ex.progress.evaluation_done(value, label=f"optimize p = {p}"),
+        )
+    result, ladder, first, total_evals, wall = run.result, run.ladder, run.first_depth, run.evaluations_total, run.wall_time
 
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
@@ -110,11 +94,7 @@ def optimize_command(
     if warning:
         typer.echo(warning, err=True)
     if as_json:
-        out = result.to_json()
-        out["evaluations_total"] = total_evals
-        out["wall_time_s"] = wall
-        out["ladder"] = ladder
-        typer.echo(json.dumps(out))
+        typer.echo(json.dumps(run.to_json()))
         return
     header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"

@@ -10,8 +10,6 @@ from typing import Optional
 
 import typer
 
-from leadline.kernels.reference import reference_energies
-
 from . import reference_cache
 from .errors import InputError
 from .parsing import mixture_arg
@@ -55,6 +53,8 @@ def reference_command(
         return
     if ensemble is not None:
         raise InputError("--ensemble goes with --store")
+    from leadline.kernels.reference import reference_energies  # scipy: only when this command runs
+
     mix = mixture_arg(xi)
     _check_settings(gs_tol, alg_tol, max_steps)
     directory = None
@@ -91,6 +91,7 @@ def _check_settings(gs_tol: float, alg_tol: float, max_steps: int) -> None:
 def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: float, max_steps: int, as_json: bool) -> None:
     """Compute and cache GS/ALG in a study store (one writer at a time: takes the lock)."""
     from leadline.kernels.mixture import parse_mixture
+    from leadline.kernels.reference import reference_energies
     from leadline.storage import StoreError, StudyStore, open_study
 
     try:

@@ -16,12 +16,11 @@ import typer
 
 from leadline import __version__ as _version
 from leadline.kernels.chunks import IMPLEMENTATION_ENV, resolve_implementation
-from leadline.storage import StoreError, StudyStore, check_study, open_study
+from leadline.storage.errors import StoreError
 
 from . import compute
 from .errors import InputError
 from .spec import check_new_store, load_spec, spec_from_json
-from .sweep import depth_line, run_study
 
 
 def _store_errors(func):
@@ -56,6 +55,10 @@ def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
     file is reported before the store is created.  The report is printed once
     the lock is released.
     """
+    from leadline.storage import open_study
+
+    from .sweep import depth_line, run_study
+
     def report(line: dict) -> None:
         if not as_json:
             typer.echo(depth_line(line))
@@ -100,7 +103,7 @@ def _sigterm_as_exit():
 
 @_store_errors
 def sweep_command(
-    spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); see the README for the layout."),
+    spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); every key is described in docs/cli.md."),
     quiet: bool = compute.quiet_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
 ) -> None:
@@ -112,6 +115,8 @@ def sweep_command(
 
     If it stops (killed, crashed, out of time), `leadline resume STORE` continues exactly where it was.
     """
+    from leadline.storage import StudyStore
+
     spec = load_spec(spec_path)
     check_new_store(spec.store)
     settings = spec.compute_settings(quiet=quiet or as_json)
@@ -146,6 +151,8 @@ def resume_command(
 
     The chunk plan (memory-mb) stays the one of the spec; where passes run may be changed.
     """
+    from leadline.storage import StudyStore, check_study
+
     attrs = check_study(store_path)
     spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
     _pin_kernel(attrs.get("kernel"))
@@ -212,6 +219,8 @@ def status_command(
 
         leadline status runs/study.zarr --json
     """
+    from leadline.storage import open_study
+
     progress = open_study(store_path).progress()
     if as_json:
         typer.echo(json.dumps(progress))

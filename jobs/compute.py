@@ -24,14 +24,16 @@ from __future__ import annotations
 
 import contextlib
 from pathlib import Path
-from typing import Iterator, Optional
+from typing import TYPE_CHECKING, Iterator, Optional
 
 import typer
 
-from leadline.cluster import ComputeSettings, ExecutorConfigError, ExecutorError, open_executor
 from leadline.cluster.batch import load_batch_config
-from leadline.cluster.executor import Executor
-from leadline.cluster.settings import DEFAULT_CONNECT_TIMEOUT_S
+from leadline.cluster.errors import ExecutorConfigError, ExecutorError
+from leadline.cluster.settings import DEFAULT_CONNECT_TIMEOUT_S, ComputeSettings
+
+if TYPE_CHECKING:  # the executor module (asyncio, Dask hooks) loads when a command computes
+    from leadline.cluster.executor import Executor
 
 from .errors import InputError
 
@@ -85,7 +87,7 @@ def cluster_config_option():
         None,
         "--cluster-config",
         help="TOML file describing a SLURM or PBS batch cluster; batch jobs are submitted for this run "
-        "(layout: cluster/batch.py and the README).",
+        "(layout: docs/clusters.md).",
     )
 
 
@@ -144,6 +146,8 @@ def settings_from_options(
 def open_compute(settings: ComputeSettings) -> Iterator[Executor]:
     """The executor for ``settings``, closed on exit; errors become one-line CLI errors."""
     import click
+
+    from leadline.cluster.executor import open_executor
 
     try:
         executor = open_executor(settings)

@@ -5,7 +5,7 @@ Usage::
     python -m leadline.jobs.demo [--output DIR] [--pmax P] [--no-references]
 
 1. copies the shipped spec ``jobs/demo_study.toml`` (pure q = 2, 3, 4 and a 2+3 mixture,
-   p = 1..6, local Dask cluster with two workers) into DIR (default ``demo-output``),
+   p = 1..6, small passes in this process) into DIR (default ``demo-output``),
    with ``pmax`` changed if asked;
 2. runs ``leadline sweep DIR/demo_study.toml`` (or ``leadline resume DIR/demo.zarr`` when
    the store exists already, so an interrupted demo continues where it stopped and a finished

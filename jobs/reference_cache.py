@@ -14,8 +14,10 @@ import json
 import os
 import tempfile
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from leadline.kernels.reference import METHOD_VERSION, References
+if TYPE_CHECKING:  # scipy behind it: imported when a cache entry is read or keyed
+    from leadline.kernels.reference import References
 
 __all__ = ["default_cache_dir", "cache_key", "load", "store"]
 
@@ -29,6 +31,8 @@ def default_cache_dir() -> Path:
 
 
 def cache_key(xi_spec: str, gs_tol: float, alg_tol: float, max_steps: int) -> dict:
+    from leadline.kernels.reference import METHOD_VERSION
+
     return {
         "xi": xi_spec,
         "gs_tol": float(gs_tol),
@@ -45,6 +49,8 @@ def _path(cache_dir: Path, key: dict) -> Path:
 
 def load(cache_dir: Path, key: dict) -> References | None:
     """The cached References for key, or None (missing, unreadable or other key)."""
+    from leadline.kernels.reference import References
+
     path = _path(cache_dir, key)
     try:
         data = json.loads(path.read_text())

@@ -14,7 +14,6 @@ from __future__ import annotations
 import contextlib
 import json
 import math
-import time
 
 import typer
 
@@ -169,6 +168,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
     from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
+    from .api import sparse_ladder
     from .parsing import check_optimizer_options, warm_start
 
     q, D = check_sparse(xorsat, degree, xi)
@@ -177,31 +177,18 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     check_sparse_depth(depth, settings, "--depth")
     if output is not None:
         check_writable(output)
-    t0 = time.perf_counter()
-    first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
-    previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
-    ladder = []
-    result = None
     with transform_map(settings) as run_map:
-        evaluate_kw = {"run_map": run_map} if run_map is not None else None
-        for p in range(first, depth + 1):
-            n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
-            result = optimize_sparse(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
-                                     seed=seed, gtol=gtol, maxiter=maxiter, evaluate_kw=evaluate_kw)
-            previous, previous_value = (result.gamma, result.beta), result.value
-            ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
-    wall = time.perf_counter() - t0
+        run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
+                            maxiter=maxiter, ensemble=ensemble_json(q, D),
+                            evaluate_kw={"run_map": run_map} if run_map is not None else None)
+    result, ladder, first, wall = run.result, run.ladder, run.first_depth, run.wall_time
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))
     warning = convergence_warning(result)
     if warning:
         typer.echo(warning, err=True)
     if as_json:
-        out = result.to_json()
-        out["ensemble"] = ensemble_json(q, D)
-        out["ladder"] = ladder
-        out["wall_time_s"] = wall
-        typer.echo(json.dumps(out))
+        typer.echo(json.dumps(run.to_json()))
         return
     name = "cut fraction" if q == 2 else "satisfied fraction"
     header = [

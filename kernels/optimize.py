@@ -38,7 +38,6 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
-from scipy.optimize import minimize
 
 from .iteration import PassIntegrityError, evaluate
 from .mixture import Mixture
@@ -272,6 +271,8 @@ def optimize_depth(
 
         g0, b0 = canonical_angles(mixture, g0, b0)  # value-preserving, puts b inside the bounds
         x0 = np.clip(np.concatenate([g0, b0]), lower, upper)
+        from scipy.optimize import minimize  # here, not at import: keeps `import leadline` and the CLI light
+
         res = minimize(
             fun,
             x0,

@@ -1,8 +1,54 @@
 """leadline: exact infinite-size QAOA energies for mixed-spin glasses.
 
+Python API (documented with examples in docs/api.md)::
+
+    import leadline
+    ev = leadline.evaluate("2:0.5", [0.5], [0.392699])      # V_1 of the SK model
+    opt = leadline.optimize("3:1", 3)                       # optimal angles, pure 3-spin, p = 3
+    leadline.evaluate_sparse(2, 3, [0.6155], [0.3927])      # MaxCut on 3-regular graphs
+    leadline.optimize_sparse(3, 4, 2)
+    leadline.reference_energies("2:0.5")                    # ground state and algorithmic threshold
+    study = leadline.open_study("runs/study.zarr")          # a study store, read-only
+    leadline.study_dataframe(study)                         # finished depths as a pandas DataFrame
+
+Every result has ``.to_json()``: the object the matching command prints with ``--json``.
+The names are imported on first use, so ``import leadline`` loads nothing heavy.
+
 The import name's four layers live in the repository's top-level folders
 (``kernels/``, ``storage/``, ``cluster/``, ``jobs/``) and are mapped onto
 ``leadline.kernels`` and friends by ``pyproject.toml``.
 """
 
+from __future__ import annotations
+
 __version__ = "0.1.0"
+
+_API = (
+    "evaluate",
+    "optimize",
+    "evaluate_sparse",
+    "optimize_sparse",
+    "reference_energies",
+    "open_study",
+    "study_dataframe",
+)
+_ERRORS = {"InputError": "leadline.jobs.errors"}
+
+__all__ = ["__version__", *_API, *_ERRORS]
+
+
+def __getattr__(name: str):
+    import importlib
+
+    if name in _API:
+        value = getattr(importlib.import_module("leadline.jobs.api"), name)
+    elif name in _ERRORS:
+        value = getattr(importlib.import_module(_ERRORS[name]), name)
+    else:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

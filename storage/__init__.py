@@ -2,32 +2,48 @@
 
 Imports only ``leadline.kernels``.  Layout: :mod:`.layout` (and docs/store.md); when what
 is written: :mod:`.policy`.
+
+The names below are imported on first use (PEP 562), so ``import
+leadline.storage`` (and the command line's ``--help``) does not load zarr;
+``from leadline.storage import StudyStore`` does.
 """
 
-from .checkpoint import CheckpointedPasses, CheckpointStats, InProcessChunks, as_chunk_runner
-from .errors import NotAStudyError, SchemaVersionError, StoreError, StoreLockedError
-from .layout import FORMAT, SCHEMA_VERSION
-from .policy import CheckpointPolicy
-from .lock import StoreLock
-from .reader import StudyReader, open_study
-from .study import DepthStore, StudyStore, check_study
+from __future__ import annotations
 
-__all__ = [
-    "CheckpointedPasses",
-    "CheckpointStats",
-    "CheckpointPolicy",
-    "InProcessChunks",
-    "as_chunk_runner",
-    "StoreError",
-    "StoreLockedError",
-    "SchemaVersionError",
-    "NotAStudyError",
-    "FORMAT",
-    "SCHEMA_VERSION",
-    "StoreLock",
-    "StudyReader",
-    "open_study",
-    "StudyStore",
-    "DepthStore",
-    "check_study",
-]
+import importlib
+
+_WHERE = {
+    "CheckpointedPasses": "checkpoint",
+    "CheckpointStats": "checkpoint",
+    "CheckpointPolicy": "policy",
+    "InProcessChunks": "checkpoint",
+    "as_chunk_runner": "checkpoint",
+    "StoreError": "errors",
+    "StoreLockedError": "errors",
+    "SchemaVersionError": "errors",
+    "NotAStudyError": "errors",
+    "FORMAT": "layout",
+    "SCHEMA_VERSION": "layout",
+    "StoreLock": "lock",
+    "StudyReader": "reader",
+    "open_study": "reader",
+    "StudyStore": "study",
+    "DepthStore": "study",
+    "check_study": "study",
+}
+
+__all__ = list(_WHERE)
+
+
+def __getattr__(name: str):
+    try:
+        module = _WHERE[name]
+    except KeyError:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}") from None
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

@@ -1,0 +1,494 @@
+"""The Python API: what the command line does, as functions for notebooks and scripts.
+
+``import leadline`` exposes these names (imported on first use, so the import
+itself stays light).  Each function returns the result object whose
+``to_json()`` is what the matching command prints with ``--json``; the
+examples in docs/api.md are run by the tests.
+
+Bad input raises :class:`leadline.jobs.errors.InputError` (a ``ValueError``)
+with the same one-line message the command line prints.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Iterator, Sequence
+
+import numpy as np
+
+from .errors import InputError
+
+if TYPE_CHECKING:
+    from leadline.kernels.iteration import Evaluation
+    from leadline.kernels.mixture import Mixture
+    from leadline.kernels.reference import References
+    from leadline.kernels.sparse import SparseEvaluation
+    from leadline.storage.reader import StudyReader
+
+__all__ = [
+    "evaluate",
+    "optimize",
+    "evaluate_sparse",
+    "optimize_sparse",
+    "reference_energies",
+    "open_study",
+    "study_dataframe",
+    "Ladder",
+]
+
+
+# ----------------------------------------------------------------- helpers
+def _mixture(xi) -> "Mixture":
+    from leadline.kernels.mixture import Mixture
+
+    from .parsing import mixture_arg
+
+    if isinstance(xi, Mixture):
+        return xi
+    return mixture_arg(None if xi is None else str(xi), option="xi")
+
+
+def _angles(gamma, beta) -> tuple[np.ndarray, np.ndarray]:
+    g = np.atleast_1d(np.asarray(gamma, dtype=float))
+    b = np.atleast_1d(np.asarray(beta, dtype=float))
+    if g.ndim != 1 or g.size == 0 or g.size != b.size or b.ndim != 1:
+        raise InputError(f"gamma and beta need the same number p >= 1 of angles, got {g.size} and {b.size}")
+    if not (np.all(np.isfinite(g)) and np.all(np.isfinite(b))):
+        raise InputError("angles must be finite")
+    return g, b
+
+
+def _start(angles, depth: int):
+    """An angle file path, an AngleSet or (gamma, beta) of depth p-1 or p -> AngleSet or None."""
+    from .angles import AngleSet
+    from .parsing import warm_start
+
+    if angles is None:
+        return None
+    if isinstance(angles, (str, Path)):
+        return warm_start(str(angles), depth)
+    if isinstance(angles, AngleSet):
+        start = angles
+    else:
+        g, b = _angles(*angles)
+        start = AngleSet(p=g.size, gamma=g, beta=b, xi=None, value=None)
+    if start.p not in (depth - 1, depth):
+        raise InputError(f"angles have depth {start.p}; need depth {depth - 1} (warm start) or {depth}")
+    return start
+
+
+@contextlib.contextmanager
+def _executor(executor: str, scheduler: str | None, workers: int | None, memory_mb: float) -> Iterator[Any]:
+    """An executor like the command line's (quiet), closed on exit."""
+    from . import compute
+
+    settings = compute.settings_from_options(executor, scheduler, workers, 1, memory_mb, None, True)
+    with compute.open_compute(settings) as ex:
+        yield ex
+
+
+def _budget(memory_mb: float) -> int:
+    if not memory_mb > 0:
+        raise InputError("memory_mb must be positive")
+    return int(memory_mb * 2**20)
+
+
+# ----------------------------------------------------------------- results
+@dataclass
+class Ladder:
+    """Optimum at the last depth of a ladder of depths, each warm-starting the next.
+
+    Attributes
+    ----------
+    result : OptimizationResult or SparseOptimization
+        The optimum at the last depth (value, gamma, beta, gradient_norm,
+        evaluations, restarts, converged, message, history).
+    ladder : list of dict
+        ``{"p", "value", "evaluations"}`` per depth optimized, in order.
+    wall_time : float
+        Seconds for the whole ladder.
+    ensemble : dict or None
+        ``{"kind": "sparse", "q", "degree"}`` for sparse runs, else None.
+    """
+
+    result: Any
+    ladder: list = field(default_factory=list)
+    wall_time: float = 0.0
+    ensemble: dict | None = None
+
+    @property
+    def value(self) -> float:
+        """V_p* (dense) or nu_p* (sparse) at the last depth."""
+        return float(self.result.value)
+
+    @property
+    def gamma(self) -> np.ndarray:
+        return self.result.gamma
+
+    @property
+    def beta(self) -> np.ndarray:
+        return self.result.beta
+
+    @property
+    def p(self) -> int:
+        return int(self.result.p)
+
+    @property
+    def first_depth(self) -> int:
+        return int(self.ladder[0]["p"]) if self.ladder else self.p
+
+    @property
+    def evaluations_total(self) -> int:
+        return int(sum(r["evaluations"] for r in self.ladder))
+
+    def to_json(self) -> dict:
+        """The object ``leadline optimize --json`` prints."""
+        out = self.result.to_json()
+        if self.ensemble is not None:
+            out["ensemble"] = dict(self.ensemble)
+            out["ladder"] = list(self.ladder)
+            out["wall_time_s"] = float(self.wall_time)
+        else:
+            out["evaluations_total"] = self.evaluations_total
+            out["wall_time_s"] = float(self.wall_time)
+            out["ladder"] = list(self.ladder)
+        return out
+
+
+# ----------------------------------------------------------------- dense
+def evaluate(
+    xi,
+    gamma: Sequence[float],
+    beta: Sequence[float],
+    *,
+    gradient: bool = False,
+    check_fixed_point: bool = False,
+    memory_mb: float = 256.0,
+    executor: str = "auto",
+    scheduler: str | None = None,
+    workers: int | None = None,
+) -> "Evaluation":
+    """Exact infinite-size QAOA energy density V_p(gamma, beta) of a mixed-spin glass.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture as ``q:w`` pairs, xi(x) = sum w x^q: ``"2:0.5"`` is the SK
+        model (i<j pairs), ``"3:1"`` the pure 3-spin model.
+    gamma, beta : sequence of float
+        Angles g_1..g_p and b_1..b_p in radians (t = 1 acts first).
+    gradient : bool
+        Also compute dV/dgamma and dV/dbeta (reverse mode, about 3x one evaluation).
+    check_fixed_point : bool
+        One extra pass; ``residuals["fixed_point"]`` = max|G_(p+1) - G_p|.
+    memory_mb : float
+        Memory budget of one chunk task (sets the chunk plan).
+    executor, scheduler, workers
+        Where passes run, as on the command line: ``"auto"``, ``"inprocess"``,
+        ``"local"``; ``scheduler="tcp://host:8786"`` for a running Dask cluster.
+
+    Returns
+    -------
+    Evaluation
+        ``.value``, ``.gradient`` (dict of arrays or None), ``.residuals``,
+        ``.plan``, ``.wall_time``; ``.to_json()`` is what
+        ``leadline evaluate --json`` prints.
+
+    Examples
+    --------
+    >>> import leadline
+    >>> round(leadline.evaluate("2:0.5", [0.5], [0.392699]).value, 6)
+    0.303265
+    """
+    from leadline.kernels.iteration import evaluate as evaluate_kernel
+    from leadline.kernels.plan import plan_chunks
+
+    mix = _mixture(xi)
+    g, b = _angles(gamma, beta)
+    plan = plan_chunks(g.size, _budget(memory_mb))
+    with _executor(executor, scheduler, workers, memory_mb) as ex:
+        return evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
+                               fixed_point_check=check_fixed_point)
+
+
+def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts=None, seed=0, gtol=1e-7,
+                    maxiter=500, on_evaluation=None) -> Ladder:
+    """Optimize depths in turn up to ``depth`` (from ``initial``, an AngleSet, if given).
+
+    The loop shared by :func:`optimize` and ``leadline optimize``.  ``on_evaluation(value, p)``
+    is called after every evaluation (the command line's progress bar).
+    """
+    from leadline.kernels.optimize import optimize_depth
+    from leadline.kernels.plan import plan_chunks
+
+    t0 = time.perf_counter()
+    if initial is not None:
+        first = depth
+        previous = (initial.gamma, initial.beta)
+        previous_value = initial.value if initial.p == depth - 1 else None
+    else:
+        first, previous, previous_value = 1, None, None
+    ladder, result = [], None
+    for p in range(first, depth + 1):
+        callback = None
+        if on_evaluation is not None:
+            callback = lambda info, p=p: on_evaluation(info.get("value"), p)  # noqa: E731
+        result = optimize_depth(mix, p, run_pass=run_pass, callback=callback, plan=plan_chunks(p, budget),
+                                previous=previous, previous_value=previous_value, restarts=restarts,
+                                seed=seed, gtol=gtol, maxiter=maxiter)
+        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
+        previous, previous_value = (result.gamma, result.beta), result.value
+    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
+
+
+def optimize(
+    xi,
+    depth: int,
+    *,
+    angles=None,
+    restarts: int | None = None,
+    seed: int = 0,
+    gtol: float = 1e-7,
+    maxiter: int = 500,
+    memory_mb: float = 256.0,
+    executor: str = "auto",
+    scheduler: str | None = None,
+    workers: int | None = None,
+) -> Ladder:
+    """Optimal angles and V_p* at depth ``depth`` (maximizes V_p).
+
+    Without ``angles`` the depths 1..depth are optimized in turn, each
+    warm-starting the next by interpolation (INTERP); with ``angles`` of depth
+    ``depth - 1`` only ``depth`` is optimized, warm-started from them; angles
+    of depth ``depth`` are used as the starting point.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture, e.g. ``"2:0.5"`` (SK) or ``"3:1"``.
+    depth : int
+        Depth p >= 1.
+    angles : path, AngleSet or (gamma, beta), optional
+        Start, as ``leadline optimize --angles``.
+    restarts : int, optional
+        Extra seeded starts per depth (default 8 at p <= 2, 4 at p <= 4, 2 at p <= 8, else 0).
+    seed, gtol, maxiter
+        Seed of the random starts; gradient tolerance; iteration cap per local run.
+    memory_mb, executor, scheduler, workers
+        As for :func:`evaluate`.
+
+    Returns
+    -------
+    Ladder
+        ``.value``, ``.gamma``, ``.beta`` (canonical form), ``.result`` (the
+        full optimizer record of the last depth), ``.ladder``; ``.to_json()``
+        is what ``leadline optimize --json`` prints.
+    """
+    from .parsing import check_optimizer_options
+
+    mix = _mixture(xi)
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    initial = _start(angles, depth)
+    budget = _budget(memory_mb)
+    with _executor(executor, scheduler, workers, memory_mb) as ex:
+        return optimize_ladder(mix, depth, initial, run_pass=ex.run_pass, budget=budget, restarts=restarts,
+                               seed=seed, gtol=gtol, maxiter=maxiter)
+
+
+# ----------------------------------------------------------------- sparse
+def _sparse_problem(q, degree) -> tuple[int, int]:
+    from .sparse_cli import check_sparse
+
+    return check_sparse(q, degree, None)
+
+
+def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float], *,
+                    gradient: bool = False) -> "SparseEvaluation":
+    """Satisfied fraction nu_p(D; gamma, beta) of Max-q-XORSAT on D-regular hypergraphs of large girth.
+
+    Parameters
+    ----------
+    q : int
+        Constraint size (q = 2 is MaxCut; the value is then the cut fraction).
+    degree : int
+        Every spin is in ``degree`` constraints (D >= 2; ``1e6`` is fine).
+    gamma, beta : sequence of float
+        Angles in radians; gamma multiplies the number of satisfied constraints.
+    gradient : bool
+        Also d nu / d(gamma, beta).
+
+    Returns
+    -------
+    SparseEvaluation
+        ``.value``, ``.correlator``, ``.gradient``, ``.residuals``; ``.to_json()``
+        plus ``"ensemble"`` is what ``leadline evaluate --xorsat Q --degree D --json`` prints.
+
+    Examples
+    --------
+    >>> import leadline
+    >>> round(leadline.evaluate_sparse(2, 3, [0.6154797], [0.3926991]).value, 6)
+    0.69245
+    """
+    from leadline.kernels.sparse import evaluate_sparse as kernel
+
+    q, D = _sparse_problem(q, degree)
+    g, b = _angles(gamma, beta)
+    return kernel(q, D, g, b, gradient=gradient)
+
+
+def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | None = None, seed: int = 0,
+                    gtol: float = 1e-7, maxiter: int = 500) -> Ladder:
+    """Optimal angles and nu_p* of Max-q-XORSAT on D-regular large-girth hypergraphs.
+
+    Depths 1..depth in turn (INTERP warm starts), or only ``depth`` from
+    ``angles`` (as in :func:`optimize`).  Default restarts: 3 at p <= 2, 1 at
+    p <= 6, else 0.
+
+    Returns
+    -------
+    Ladder
+        ``.to_json()`` is what ``leadline optimize --xorsat Q --degree D --json`` prints.
+    """
+    from leadline.kernels.sparse import optimize_sparse as kernel
+
+    from .parsing import check_optimizer_options
+    from .sparse_cli import ensemble_json
+
+    q, D = _sparse_problem(q, degree)
+    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    initial = _start(angles, depth)
+    return sparse_ladder(kernel, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter,
+                         ensemble=ensemble_json(q, D))
+
+
+def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gtol, maxiter, ensemble,
+                  evaluate_kw=None) -> Ladder:
+    """The depth loop shared by :func:`optimize_sparse` and ``leadline optimize --xorsat``."""
+    t0 = time.perf_counter()
+    first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
+    previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
+    ladder, result = [], None
+    for p in range(first, depth + 1):
+        n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
+        result = kernel(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
+                        seed=seed, gtol=gtol, maxiter=maxiter, evaluate_kw=evaluate_kw)
+        previous, previous_value = (result.gamma, result.beta), result.value
+        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
+    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0, ensemble=ensemble)
+
+
+# ----------------------------------------------------------------- references
+def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_steps: int = 10,
+                       cache: bool = True, cache_dir: str | Path | None = None) -> "References":
+    """Ground-state energy density GS and algorithmic threshold ALG of a mixture.
+
+    Same computation and cache as ``leadline reference --xi``.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture (``"2:0.5"``: SK, GS = 0.763166).
+    gs_tol, alg_tol : float
+        Stop adding steps when GS (ALG) moves by less than this (1e-7 .. 0.1).
+    max_steps : int
+        Largest number k of steps tried (3 .. 30).
+    cache : bool
+        Read and write the cache (``cache_dir``, else ``$LEADLINE_CACHE_DIR``,
+        else ``~/.cache/leadline``).
+
+    Returns
+    -------
+    References
+        ``.ground_state``, ``.algorithmic_threshold`` (``ReferenceValue``:
+        value, uncertainty, ...), ``.overlap_gap``; ``.to_json()`` (plus
+        ``"cached"``) is what ``leadline reference --json`` prints.
+    """
+    from leadline.kernels.reference import reference_energies as compute
+
+    from . import reference_cache
+    from .cmd_reference import _check_settings
+
+    mix = _mixture(xi)
+    _check_settings(gs_tol, alg_tol, max_steps)
+    directory = None
+    if cache:
+        directory = Path(cache_dir) if cache_dir is not None else reference_cache.default_cache_dir()
+    key = reference_cache.cache_key(mix.spec(), gs_tol, alg_tol, max_steps)
+    refs = reference_cache.load(directory, key) if directory is not None else None
+    if refs is None:
+        refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        if directory is not None:
+            with contextlib.suppress(OSError):
+                reference_cache.store(directory, key, refs)
+    return refs
+
+
+# ----------------------------------------------------------------- studies
+def open_study(path: str | Path) -> "StudyReader":
+    """Open a study store (written by ``leadline sweep``) for reading; never takes the lock.
+
+    Returns
+    -------
+    StudyReader
+        ``.name``, ``.spec``, ``.ensembles()``, ``.ensemble(label)``,
+        ``.depths(label)`` (finished depths), ``.depth(label, p)``,
+        ``.progress()`` (what ``leadline status --json`` prints),
+        ``.lock_holder()``.  See docs/store.md.
+    """
+    from leadline.storage.errors import StoreError
+    from leadline.storage.reader import open_study as open_reader
+
+    try:
+        return open_reader(path)
+    except StoreError as exc:
+        raise InputError(str(exc)) from None
+
+
+def study_dataframe(study) -> Any:
+    """The finished depths of a study as a pandas DataFrame, one row per (ensemble, p).
+
+    Needs pandas (``pip install 'leadline[pandas]'``).
+
+    Parameters
+    ----------
+    study : path or StudyReader
+        A study store or an open reader.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``ensemble``, ``kind`` ("dense" or "sparse"), ``xi`` (q:w spec or
+        None), ``q``, ``degree`` (sparse, else None), ``p``, ``value`` (V_p*, or
+        nu_p* for sparse), ``gradient_norm``, ``evaluations``, ``converged``,
+        ``wall_time_s``, ``gamma``, ``beta`` (lists, radians, t = 1 first).
+    """
+    try:
+        import pandas as pd
+    except ImportError:  # pragma: no cover - depends on the installation
+        raise ImportError("study_dataframe needs pandas: pip install 'leadline[pandas]'") from None
+    reader = study if hasattr(study, "depths") else open_study(study)
+    rows = []
+    for label in reader.ensembles():
+        meta = reader.ensemble(label)
+        for d in reader.depths(label):
+            rows.append({
+                "ensemble": label,
+                "kind": meta.get("kind", "dense"),
+                "xi": meta.get("xi"),
+                "q": meta.get("q"),
+                "degree": meta.get("degree"),
+                "p": int(d["p"]),
+                "value": d["value"],
+                "gradient_norm": d.get("gradient_norm"),
+                "evaluations": d.get("evaluations"),
+                "converged": d.get("converged"),
+                "wall_time_s": d.get("wall_time_s"),
+                "gamma": list(d["gamma"]),
+                "beta": list(d["beta"]),
+            })
+    columns = ["ensemble", "kind", "xi", "q", "degree", "p", "value", "gradient_norm", "evaluations",
+               "converged", "wall_time_s", "gamma", "beta"]
+    return pd.DataFrame(rows, columns=columns)
