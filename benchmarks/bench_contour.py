@@ -10,9 +10,9 @@ compares runs taken under the same machine load; quote the medians.
 * deep evaluations: p = 16 and p = 18 (CPU, wall, peak RSS); p = 20 with ``--p20``
   (about a quarter of an hour on one core; the README records it);
 * sparse Max-3-XORSAT (D = 4): growing against the full recursion at p = 10..12,
-  and the growing recursion alone at p = 13, 14.
+  and the growing recursion alone at p = 13 (p = 14 with ``--sparse-p14``).
 
-Usage:  python benchmarks/bench_contour.py [--quick] [--p20] [--json out.json]
+Usage:  python benchmarks/bench_contour.py [--quick] [--p20] [--sparse-p14] [--json out.json]
 (``make bench`` calls ``run()``.)
 """
 
@@ -100,7 +100,7 @@ def _pair(a: dict, b: dict, reps: int, log) -> tuple[list, list]:
     return ra, rb
 
 
-def run(quick: bool = False, p20: bool = False, log=None) -> dict:
+def run(quick: bool = False, p20: bool = False, sparse_p14: bool = False, log=None) -> dict:
     log = log or (lambda s: print(s, file=sys.stderr, flush=True))
     reps = 3
     out: dict = {"dense_vs_full": [], "gradient_ratio": [], "deep": [], "sparse_vs_full": [], "sparse_deep": []}
@@ -133,7 +133,7 @@ def run(quick: bool = False, p20: bool = False, log=None) -> dict:
             "growing_rss_mib": max(r["peak_rss_bytes"] for r in new) / 2**20,
             "full_rss_mib": max(r["peak_rss_bytes"] for r in old) / 2**20,
         })
-    for p in (() if quick else (13, 14)):
+    for p in (() if quick else ((13, 14) if sparse_p14 else (13,))):
         r = _spawn({"kind": "sparse", "p": p}, log)
         out["sparse_deep"].append({"p": p, "cpu_s": r.get("cpu_s"), "wall_s": r.get("wall_s"),
                                    "peak_rss_mib": r.get("peak_rss_bytes", 0) / 2**20, "error": r.get("error")})
@@ -145,12 +145,13 @@ def main(argv=None) -> int:
     ap.add_argument("--one", help=argparse.SUPPRESS)
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--p20", action="store_true", help="also one evaluation at p = 20")
+    ap.add_argument("--sparse-p14", action="store_true", help="also the sparse recursion at p = 14 (about 12 GiB)")
     ap.add_argument("--json", help="write the result here")
     args = ap.parse_args(argv)
     if args.one:
         print(json.dumps(_one(json.loads(args.one))))
         return 0
-    res = run(quick=args.quick, p20=args.p20)
+    res = run(quick=args.quick, p20=args.p20, sparse_p14=args.sparse_p14)
     text = json.dumps(res, indent=1, default=float)
     if args.json:
         with open(args.json, "w") as fh:

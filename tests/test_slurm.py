@@ -130,6 +130,8 @@ seed = 0
 [compute]
 {compute}
 memory-mb = 0.004
+[checkpoint]
+interval-s = 0  # every pass keeps a chunk ledger, so the kill lands mid-pass after chunk records
 [[ensemble]]
 label = "sk"
 xi = "2:0.5"

@@ -340,13 +340,13 @@ def test_read_only_store(stores, tmp_path):
 
 def test_sweep_integrity_failure_is_one_line(tmp_path, monkeypatch, capsys):
     # in-process: make the sweep's pass fail its integrity check and read what the user sees
-    from leadline.jobs import cli, cmd_sweep
+    from leadline.jobs import cli, sweep
     from leadline.kernels.sparse import SparseIntegrityError
 
     def failing(*args, **kwargs):
         raise SparseIntegrityError("step 2 at p = 2: sum_a f(a) H(a) deviates from 1 by 2.0e-09 (allowed 5.0e-10)")
 
-    monkeypatch.setattr(cmd_sweep, "run_study", failing)
+    monkeypatch.setattr(sweep, "run_study", failing)  # the command imports it when it runs
     monkeypatch.chdir(tmp_path)
     (tmp_path / "s.toml").write_text(
         '[study]\nname = "t"\nstore = "s.zarr"\n[depths]\npmax = 1\n[[ensemble]]\nlabel = "sk"\nxi = "2:0.5"\n'
