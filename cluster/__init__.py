@@ -11,7 +11,7 @@ does not load the executor machinery.
 
 from __future__ import annotations
 
-import importlib
+from leadline._lazy import lazy_names
 
 _WHERE = {
     "AutoExecutor": "executor",
@@ -35,15 +35,4 @@ _WHERE = {
 __all__ = list(_WHERE)
 
 
-def __getattr__(name: str):
-    try:
-        module = _WHERE[name]
-    except KeyError:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}") from None
-    value = getattr(importlib.import_module(f".{module}", __name__), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_names(__name__, _WHERE)

@@ -557,9 +557,15 @@ def evaluate_sparse(
     if gradient:
         grad = _backward(q, D, p, N, g, b, f, phase, Kh, Sh, H_p, U, stored, stride, T, residuals)
 
+    return _result(q, D, g, b, corr, residuals, grad, t0, T.count)
+
+
+def _result(q, D, g, b, corr, residuals, grad, t0, transforms) -> SparseEvaluation:
+    """The evaluation result from the root correlator <z_1...z_q> (nu = 1/2 + corr/2)."""
+    nu_c = 0.5 + 0.5 * corr
     return SparseEvaluation(
         value=float(nu_c.real),
-        p=p,
+        p=g.size,
         q=q,
         degree=D,
         gamma=g,
@@ -567,7 +573,7 @@ def evaluate_sparse(
         residuals=residuals,
         gradient=grad,
         wall_time=time.perf_counter() - t0,
-        transforms=T.count,
+        transforms=transforms,
         correlator=float(corr.real),
     )
 
@@ -829,19 +835,7 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     grad = None
     if gradient:
         grad = _backward_growing(q, D, g, b, f, phase, Sh, H, U, Ls, T, residuals)
-    return SparseEvaluation(
-        value=float(nu_c.real),
-        p=p,
-        q=q,
-        degree=D,
-        gamma=g,
-        beta=b,
-        residuals=residuals,
-        gradient=grad,
-        wall_time=time.perf_counter() - t0,
-        transforms=T.count,
-        correlator=float(corr.real),
-    )
+    return _result(q, D, g, b, corr, residuals, grad, t0, T.count)
 
 
 def _backward_growing(q, D, g, b, f_p, phase_p, Sh, H_p, U, Ls, T, residuals):

@@ -10,7 +10,7 @@ leadline.storage`` (and the command line's ``--help``) does not load zarr;
 
 from __future__ import annotations
 
-import importlib
+from leadline._lazy import lazy_names
 
 _WHERE = {
     "CheckpointedPasses": "checkpoint",
@@ -35,15 +35,4 @@ _WHERE = {
 __all__ = list(_WHERE)
 
 
-def __getattr__(name: str):
-    try:
-        module = _WHERE[name]
-    except KeyError:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}") from None
-    value = getattr(importlib.import_module(f".{module}", __name__), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_names(__name__, _WHERE)
