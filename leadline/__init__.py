@@ -32,23 +32,10 @@ _API = (
     "open_study",
     "study_dataframe",
 )
-_ERRORS = {"InputError": "leadline.jobs.errors"}
+_ERRORS = ("InputError",)
 
 __all__ = ["__version__", *_API, *_ERRORS]
 
+from leadline._lazy import lazy_names  # noqa: E402  (after __all__: the names it serves)
 
-def __getattr__(name: str):
-    import importlib
-
-    if name in _API:
-        value = getattr(importlib.import_module("leadline.jobs.api"), name)
-    elif name in _ERRORS:
-        value = getattr(importlib.import_module(_ERRORS[name]), name)
-    else:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_names(__name__, {**{n: "jobs.api" for n in _API}, "InputError": "jobs.errors"})

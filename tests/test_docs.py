@@ -114,7 +114,9 @@ def test_links_between_pages_resolve():
 
 def test_no_pointer_outside_the_repository():
     """Docs and code say what they mean instead of pointing at notes a reader cannot open."""
-    patterns = re.compile(r"/work/notes|/work/shared|\.\./shared|formula\.md|design note", re.I)
+    # notes kept outside the repository, spelled in pieces so this guard does not match itself
+    outside = ["/work/" + "notes", "/work/" + "shared", r"\.\./" + "shared", "formula" + r"\.md", "design " + "note"]
+    patterns = re.compile("|".join(outside), re.I)
     offenders = []
     for path in D.ROOT.rglob("*"):
         rel_parts = path.relative_to(D.ROOT).parts
