@@ -16,7 +16,7 @@ from typing import Callable
 import numpy as np
 
 from leadline.kernels.optimize import optimize_depth
-from leadline.kernels.plan import plan_chunks
+from leadline.kernels.exact import plan_chunks
 from leadline.storage import CheckpointedPasses, CheckpointStats, StudyStore
 from leadline.storage.faults import crash_point
 

@@ -16,7 +16,7 @@ uninterrupted one, and never recomputes a finished chunk):
 * A pass long enough to keep a ledger has its finished chunks on disk with
   their partials, so only the missing chunks are computed.
 * The sum is always formed in chunk order 0, 1, 2, ... from the partials
-  (exactly as ``kernels.chunks.run_pass_inprocess`` does), so it is bit for
+  (exactly as ``kernels.exact.run_pass_inprocess`` does), so it is bit for
   bit the same however the chunks were scheduled or interrupted.
 
 Executors
@@ -42,9 +42,14 @@ from typing import Callable
 
 import numpy as np
 
-from leadline.kernels.chunks import PassInput, chunk_partial, prepare_low_side
-from leadline.kernels.iteration import PassIntegrityError, sum_w_tolerance
-from leadline.kernels.plan import ChunkPlan
+from leadline.kernels.exact import (
+    PassInput,
+    chunk_partial,
+    prepare_low_side,
+    PassIntegrityError,
+    sum_w_tolerance,
+    ChunkPlan,
+)
 
 from . import layout as L
 from .faults import crash_point

@@ -30,7 +30,7 @@ import numpy as np
 import zarr
 from zarr.codecs import ZstdCodec
 
-from leadline.kernels.iteration import sum_w_tolerance
+from leadline.kernels.exact import sum_w_tolerance
 
 from . import layout as L
 from .errors import NotAStudyError, SchemaVersionError, StoreError

@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import chunks as _chunks
+from . import _chunks
 
 __all__ = [
     "chunk_partial_blocked",
@@ -129,10 +129,10 @@ def quadratic_split(A: np.ndarray, l1: int) -> np.ndarray:
     m = A.shape[0]
     dtype = np.result_type(A.dtype, np.float64)
     if m <= 4 or l1 == 0 or l1 == m:
-        from .chunks import _quadratic_over_patterns
+        from ._chunks import _quadratic_over_patterns
 
         return _quadratic_over_patterns(A).astype(dtype).reshape(2**l1, 2 ** (m - l1))
-    from .contour import sign_patterns
+    from ._contour import sign_patterns
 
     l2 = m - l1
     q11 = quadratic_split(A[:l1, :l1], (l1 + 1) // 2).reshape(-1)
@@ -152,7 +152,7 @@ def chain_split(links: np.ndarray, l1: int, l2: int) -> np.ndarray:
     ``links`` (l1+l2-1, 2): rows of the link table inside the block.  The chain
     factorizes as F1(x1) * L_mid(last x1 spin, first x2 spin) * F2(x2).
     """
-    from .contour import chain_weights
+    from ._contour import chain_weights
 
     F1 = chain_weights(links[: l1 - 1], l1)
     if l2 == 0:
@@ -216,7 +216,7 @@ def low_matrices(inp, plan, low) -> dict:
     key = "blocked"
     if key in low.extra:
         return low.extra[key]
-    from .contour import sign_patterns
+    from ._contour import sign_patterns
 
     l1, l2 = split_low(plan.n_low)
     shape = (2**l1, 2**l2)
@@ -231,7 +231,7 @@ def low_matrices(inp, plan, low) -> dict:
         "S1": sign_patterns(l1),
         "S2": sign_patterns(l2).astype(complex),
     }
-    from .contour import chain_weights
+    from ._contour import chain_weights
 
     h = plan.n_high
     mats["F1"] = chain_weights(low.links[h : h + l1 - 1], l1)

@@ -28,8 +28,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .contour import link_derivative_table, link_table
-from .plan import ChunkPlan
+from ._contour import link_derivative_table, link_table
+from ._plan import ChunkPlan
 
 __all__ = [
     "PassInput",
@@ -225,10 +225,10 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     """Quantities of the low sites for one pass; O(2^l) memory and time (plus O(l^2)).
 
     The quadratic forms and the low chain are built as (2^l1, 2^l2) matrices
-    (kernels/blocked.py: the two halves of the low block plus one small matrix
+    (kernels/exact/_blocked.py: the two halves of the low block plus one small matrix
     product for their coupling); the vectors here are flat views of them.
     """
-    from .blocked import chain_split, quadratic_split, split_low
+    from ._blocked import chain_split, quadratic_split, split_low
 
     p, h = inp.p, plan.n_high
     l1, l2 = split_low(plan.n_low)
@@ -286,7 +286,7 @@ def _chunk_partial_rowwise(inp: PassInput, plan: ChunkPlan, chunk: int, low: Low
     work arrays stay bounded whatever plan it is given; block partials are summed
     in row order.
     """
-    from .plan import ROWWISE_BLOCK_ENTRIES
+    from ._plan import ROWWISE_BLOCK_ENTRIES
 
     AH = _high_rows(plan, chunk)  # (c, h)
     step = max(1, ROWWISE_BLOCK_ENTRIES // 2**plan.n_low)
@@ -372,7 +372,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
 
 
 def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
-    from .blocked import chunk_partial_blocked
+    from ._blocked import chunk_partial_blocked
 
     return chunk_partial_blocked(inp, plan, chunk, low)
 
@@ -383,7 +383,7 @@ def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: Low
 #: dense reference and against each other).
 CHUNK_KERNELS = {
     "rowwise": _chunk_partial_rowwise,  # elementwise numpy over a (rows, 2^l) array
-    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/blocked.py)
+    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/exact/_blocked.py)
 }
 #: used when no implementation is named; the environment variable overrides it
 DEFAULT_IMPLEMENTATION = "blocked"
