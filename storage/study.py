@@ -11,7 +11,7 @@ next to its final path and renamed into place, so a store path either does not
 exist or holds a complete, locked store.
 
 What is written when is decided by :class:`~leadline.storage.policy.CheckpointPolicy`
-(see storage/checkpoint.py and docs/store.md).
+(see cluster/checkpointed.py and docs/store.md).
 """
 
 from __future__ import annotations

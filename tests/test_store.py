@@ -24,9 +24,8 @@ import zarr
 
 from leadline.kernels.exact import PassInput, chunk_partial, run_pass_inprocess, evaluate, ChunkPlan
 from leadline.kernels.mixture import parse_mixture
+from leadline.cluster import CheckpointedPasses, InProcessChunks
 from leadline.storage import (
-    CheckpointedPasses,
-    InProcessChunks,
     NotAStudyError,
     SchemaVersionError,
     StoreLock,
