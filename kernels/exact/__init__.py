@@ -4,8 +4,9 @@ What it computes: the p-step iteration of moment matrices over one spin's contou
 (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022); Basso, Gamarnik, Mei, Zhou,
 FOCS 2022 for any mixture xi), on the growing contour with the global flip, and the
 reverse-mode gradient.  Modules (private): ``_contour`` (path layout and chain weight f),
-``_plan`` (how a pass is cut into chunks), ``_chunks`` (the pass contract, the low side, the
-row-by-row kernel, the implementation registry), ``_blocked`` (the matrix-product kernel),
+``_plan`` (how a pass is cut into chunks), ``_patterns`` (sums and chains over sign patterns, shared by both chunk kernels),
+``_blocked`` (the matrix-product kernel), ``_chunks`` (the pass contract, the low side, the
+row-by-row kernel, the implementation registry; imports ``_blocked``),
 ``_iteration`` (the p steps and the gradient), ``_ranges`` (the angle range a pass computes
 exactly).
 
@@ -49,11 +50,11 @@ _WHERE = {
     "resolve_implementation": "_chunks",
     "IMPLEMENTATION_ENV": "_chunks",
     "chunk_partial_blocked": "_blocked",
-    "split_low": "_blocked",
+    "split_low": "_patterns",
     "second_moments_fast": "_blocked",
     "low_matrices": "_blocked",
-    "quadratic_split": "_blocked",
-    "chain_split": "_blocked",
+    "quadratic_split": "_patterns",
+    "chain_split": "_patterns",
     "ProductCache": "_blocked",
     "PRODUCTS": "_blocked",
     "COLUMNS": "_blocked",
