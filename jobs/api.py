@@ -408,10 +408,10 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
     from leadline.kernels.reference import reference_energies as compute
 
     from . import reference_cache
-    from .cmd_reference import _check_settings
+    from .parsing import check_reference_settings
 
     mix = _mixture(xi)
-    _check_settings(gs_tol, alg_tol, max_steps)
+    check_reference_settings(gs_tol, alg_tol, max_steps)
     directory = None
     if cache:
         directory = Path(cache_dir) if cache_dir is not None else reference_cache.default_cache_dir()

@@ -10,10 +10,11 @@ import typer
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
-from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
+from .angles import AngleSet, convergence_warning, optimum_report, write_angles
 from .api import optimize_ladder
 from .cost import COST_NOTE_SECONDS, check_cost
 from .errors import InputError
+from .paths import check_output_file
 from .parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 
 
@@ -67,7 +68,7 @@ def optimize_command(
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")
     if output is not None:
-        check_writable(output)
+        check_output_file(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:

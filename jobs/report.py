@@ -68,10 +68,6 @@ __all__ = [
     "angle_plot_path",
     "CSV_COLUMNS",
     "load_study",
-    "parse_ground_state_options",
-    "parse_at_depths",
-    "check_output_path",
-    "write_text_atomic",
     "FIGURE_SIZE_INCHES",
     "FIGURE_DPI",
 ]
@@ -127,83 +123,6 @@ def load_study(path: str | Path) -> Any:
         raise
     except Exception as exc:  # any failure to open is a bad path from the user's point of view
         raise InputError(f"cannot read study store {str(path)!r}: {exc}") from None
-
-
-def parse_ground_state_options(values: Sequence[str] | None, labels: Sequence[str]) -> dict:
-    """['0.76', 'sk=0.763', ...] -> {None or label: float}; InputError on bad input.
-
-    A bare VALUE applies to every ensemble and is only accepted when the study
-    has exactly one ensemble, or as a default next to LABEL=VALUE entries.
-    """
-    from .errors import InputError
-
-    out: dict = {}
-    for text in values or []:
-        label, sep, number = str(text).rpartition("=")
-        label = label.strip() if sep else None
-        try:
-            value = float(number)
-        except ValueError:
-            raise InputError(f"--ground-state {text!r}: expected VALUE or LABEL=VALUE with a number, e.g. --ground-state sk=0.763166") from None
-        if not (math.isfinite(value) and value > 0):
-            raise InputError(f"--ground-state {text!r}: the ground-state energy density must be a positive finite number")
-        if label is not None and label not in labels:
-            raise InputError(f"--ground-state {text!r}: no ensemble {label!r} in this study (ensembles: {', '.join(labels)})")
-        if label in out:
-            raise InputError(f"--ground-state given twice for {label or 'all ensembles'}")
-        out[label] = value
-    if None in out and len(labels) > 1 and len(out) == 1:
-        raise InputError(
-            "--ground-state VALUE is ambiguous with several ensembles: write LABEL=VALUE "
-            f"(ensembles: {', '.join(labels)})"
-        )
-    return out
-
-
-def parse_at_depths(text: str | None) -> tuple[int, ...]:
-    """'50,100,160' -> (50, 100, 160); InputError on anything but positive integers."""
-    from .errors import InputError
-
-    if text is None:
-        return ()
-    out = []
-    for part in str(text).split(","):
-        part = part.strip()
-        try:
-            depth = int(part)
-        except ValueError:
-            raise InputError(f"--at-depth {text!r}: expected comma-separated positive integers, e.g. --at-depth 50,100,160") from None
-        if depth < 1:
-            raise InputError(f"--at-depth {text!r}: depths must be >= 1")
-        out.append(depth)
-    return tuple(sorted(set(out)))
-
-
-def check_output_path(path: str | Path, suffix: str | None = None, option: str = "--output") -> Path:
-    """Validate an output file path before any work (see :func:`jobs.paths.check_output_file`)."""
-    from .paths import check_output_file
-
-    return check_output_file(path, suffix=suffix, option=option)
-
-
-def write_text_atomic(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` through a temporary file and a rename."""
-    import os
-    import tempfile
-
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent if str(path.parent) else ".")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the usual permissions of a new file
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 # --------------------------------------------------------------- references

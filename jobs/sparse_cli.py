@@ -167,16 +167,17 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
-    from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
+    from .angles import AngleSet, convergence_warning, optimum_report, write_angles
     from .api import sparse_ladder
     from .parsing import check_optimizer_options, warm_start
+    from .paths import check_output_file
 
     q, D = check_sparse(xorsat, degree, xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
     check_sparse_depth(depth, settings, "--depth")
     if output is not None:
-        check_writable(output)
+        check_output_file(output)
     with transform_map(settings) as run_map:
         run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
                             maxiter=maxiter, ensemble=ensemble_json(q, D),
