@@ -51,7 +51,7 @@ from leadline.kernels.extrapolate import (
 from leadline.kernels.reference import lookup_ground_state, union_bound
 from leadline.kernels.sparse import scaled_value
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
-from .universality import render_universality_markdown, universality_views
+from ._universality import render_universality_markdown, universality_views
 
 __all__ = [
     "InMemoryStudy",
@@ -108,7 +108,7 @@ class InMemoryStudy:
 
 def load_study(path: str | Path) -> Any:
     """Open a study store for reading (``leadline.storage.open_study``); InputError if that fails."""
-    from .errors import InputError
+    from ..errors import InputError
 
     path = Path(path)
     if not path.exists():
@@ -281,7 +281,7 @@ def _computed_references(study: Any, label: str, meta: Mapping, cache_dir: str |
         from leadline.kernels.mixture import parse_mixture
         from leadline.kernels.reference import METHOD_VERSION, References as Computed
 
-        from . import reference_cache
+        from .. import reference_cache
     except ImportError:  # pragma: no cover - reference energies are part of the tool
         return None
     directory = Path(cache_dir) if cache_dir is not None else reference_cache.default_cache_dir()
