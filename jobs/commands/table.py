@@ -6,10 +6,10 @@ from typing import List, Optional
 
 import typer
 
-from .errors import InputError
-from .parsing import parse_at_depths, parse_ground_state_options, refuse_sparse_ground_states
-from .paths import check_output_file, write_text_atomic
-from .report import build_report, load_study, render_csv, render_json, render_markdown
+from ..errors import InputError
+from ..parsing import parse_at_depths, parse_ground_state_options, refuse_sparse_ground_states
+from ..paths import check_output_file, write_text_atomic
+from ..report import build_report, load_study, render_csv, render_json, render_markdown
 
 FORMATS = {"markdown": render_markdown, "csv": render_csv, "json": render_json}
 

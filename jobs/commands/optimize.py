@@ -9,13 +9,13 @@ import typer
 
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
 
-from . import compute, sparse_cli
-from .angles import AngleSet, convergence_warning, optimum_report, write_angles
-from .api import optimize_ladder
-from .cost import COST_NOTE_SECONDS, check_cost
-from .errors import InputError
-from .paths import check_output_file
-from .parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from .. import compute, sparse_cli
+from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
+from ..api import optimize_ladder
+from ..cost import COST_NOTE_SECONDS, check_cost
+from ..errors import InputError
+from ..paths import check_output_file
+from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 
 
 def optimize_command(

@@ -9,9 +9,9 @@ from typing import Optional
 
 import typer
 
-from . import reference_cache
-from .errors import InputError
-from .parsing import check_reference_settings, mixture_arg
+from .. import reference_cache
+from ..errors import InputError
+from ..parsing import check_reference_settings, mixture_arg
 
 
 def reference_command(

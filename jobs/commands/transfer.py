@@ -37,8 +37,8 @@ from leadline.kernels.finite_size import (
 )
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
-from .errors import InputError
-from .paths import check_output_file, write_text_atomic
+from ..errors import InputError
+from ..paths import check_output_file, write_text_atomic
 
 #: largest depth for which the finite-degree prediction (cost ~ p 4^p) is computed
 SPARSE_PREDICTION_MAX_P = 10
@@ -268,7 +268,7 @@ def _reference(kind, xi_spec, q, degree, gamma, beta, value, source: str) -> dic
 
 
 def _reference_from_file(path: str, depth: int | None) -> dict:
-    from .angles import read_angles
+    from ..angles import read_angles
 
     aset = read_angles(path)
     if depth is not None and depth != aset.p:
@@ -282,7 +282,7 @@ def _reference_from_file(path: str, depth: int | None) -> dict:
 
 
 def _reference_from_store(path: str, label: str | None, depth: int | None) -> dict:
-    from .report import load_study
+    from ..report import load_study
 
     study = load_study(path)
     labels = study.ensembles()

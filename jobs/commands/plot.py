@@ -6,10 +6,10 @@ from typing import List, Optional
 
 import typer
 
-from .errors import InputError
-from .parsing import parse_ground_state_options, refuse_sparse_ground_states
-from .paths import check_output_file
-from .report import angle_plot_path, build_report, load_study, write_plots
+from ..errors import InputError
+from ..parsing import parse_ground_state_options, refuse_sparse_ground_states
+from ..paths import check_output_file
+from ..report import angle_plot_path, build_report, load_study, write_plots
 
 
 def plot_command(
