@@ -299,7 +299,7 @@ def optimize(
 
 # ----------------------------------------------------------------- sparse
 def _sparse_problem(q, degree) -> tuple[int, int]:
-    from .sparse_cli import check_sparse
+    from .sparse_ensemble import check_sparse
 
     return check_sparse(q, degree, None)
 
@@ -354,7 +354,7 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
     from leadline.kernels.sparse import optimize_sparse as kernel
 
     from .parsing import check_optimizer_options
-    from .sparse_cli import ensemble_json
+    from .sparse_ensemble import ensemble_json
 
     q, D = _sparse_problem(q, degree)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)

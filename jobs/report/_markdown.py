@@ -1,9 +1,9 @@
 """The report as Markdown that also reads well as plain text in a terminal (`leadline table`).
 
-Tables are assembled by :func:`_markdown_table` (a dozen lines) rather than by a table
-library: tabulate and prettytable both pad and mark columns differently (for example
-``|:----|`` for a left-aligned column, two spaces more around a header wider than its
-cells), so the output would change for every existing table, and nothing else here needs one.
+Tables are assembled by hand (:func:`_markdown_table`, a dozen lines) because no kept library
+reproduces this layout byte for byte: tabulate's pipe format marks left-aligned columns
+``|:---|`` (and matches the widths only after changing its module-wide MIN_PADDING), and
+prettytable's Markdown style spaces the rule row differently.
 """
 
 from __future__ import annotations
