@@ -21,13 +21,13 @@ from __future__ import annotations
 import json
 import math
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from .errors import InputError
+from .paths import write_text_atomic
 
 FORMAT = "leadline.angles"
 VERSION = 1
@@ -132,24 +132,7 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
 
 def write_angles(path: str | os.PathLike, angles: AngleSet) -> None:
     """Write atomically: a reader never sees a half-written file."""
-    path = Path(path)
-    text = json.dumps(angles.to_json(), indent=2) + "\n"
-    fd, tmp = tempfile.mkstemp(prefix=".angles-", dir=str(path.parent or "."))
-    try:
-        with os.fdopen(fd, "w") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def check_writable(path: str | os.PathLike, option: str = "--output") -> None:
-    """Raise InputError now if ``path`` could not be written later (a folder, a missing folder, ...)."""
-    from .paths import check_output_file
-
-    check_output_file(path, option=option)
+    write_text_atomic(path, json.dumps(angles.to_json(), indent=2) + "\n")
 
 
 def convergence_warning(result) -> str | None:

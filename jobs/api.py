@@ -299,7 +299,7 @@ def optimize(
 
 # ----------------------------------------------------------------- sparse
 def _sparse_problem(q, degree) -> tuple[int, int]:
-    from .sparse_cli import check_sparse
+    from .sparse_ensemble import check_sparse
 
     return check_sparse(q, degree, None)
 
@@ -354,7 +354,7 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
     from leadline.kernels.sparse import optimize_sparse as kernel
 
     from .parsing import check_optimizer_options
-    from .sparse_cli import ensemble_json
+    from .sparse_ensemble import ensemble_json
 
     q, D = _sparse_problem(q, degree)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
@@ -408,10 +408,10 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
     from leadline.kernels.reference import reference_energies as compute
 
     from . import reference_cache
-    from .cmd_reference import _check_settings
+    from .parsing import check_reference_settings
 
     mix = _mixture(xi)
-    _check_settings(gs_tol, alg_tol, max_steps)
+    check_reference_settings(gs_tol, alg_tol, max_steps)
     directory = None
     if cache:
         directory = Path(cache_dir) if cache_dir is not None else reference_cache.default_cache_dir()

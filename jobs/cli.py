@@ -1,7 +1,7 @@
 """The `leadline` command line: parse, validate, call jobs, print.
 
-Each command lives in its own module with a ``register(app)`` function; the
-list below is the only place that knows them all.
+Each command lives in its own module in ``jobs/commands/`` with a ``register(app)``
+function; the list below is the only place that knows them all.
 
 Start-up rule: importing this module (and so ``leadline --help``) must not load
 dask, distributed, zarr, matplotlib or scipy.optimize; the command modules
@@ -34,14 +34,14 @@ app = typer.Typer(
 )
 
 COMMAND_MODULES = [
-    "leadline.jobs.cmd_evaluate",
-    "leadline.jobs.cmd_reference",
-    "leadline.jobs.cmd_finite_size",
-    "leadline.jobs.cmd_optimize",
-    "leadline.jobs.cmd_table",
-    "leadline.jobs.cmd_plot",
-    "leadline.jobs.cmd_sweep",
-    "leadline.jobs.cmd_transfer",
+    "leadline.jobs.commands.evaluate",
+    "leadline.jobs.commands.reference",
+    "leadline.jobs.commands.finite_size",
+    "leadline.jobs.commands.optimize",
+    "leadline.jobs.commands.table",
+    "leadline.jobs.commands.plot",
+    "leadline.jobs.commands.sweep",
+    "leadline.jobs.commands.transfer",
 ]
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import numpy as np
 
@@ -19,6 +20,9 @@ __all__ = [
     "check_representable",
     "file_mixture",
     "refuse_sparse_ground_states",
+    "parse_ground_state_options",
+    "parse_at_depths",
+    "check_reference_settings",
 ]
 
 
@@ -130,3 +134,58 @@ def refuse_sparse_ground_states(overrides: dict, study) -> None:
                 f"--ground-state VALUE would also apply to the sparse ensemble {label!r}; "
                 "write LABEL=VALUE for the dense ensembles"
             )
+
+
+def parse_ground_state_options(values: Sequence[str] | None, labels: Sequence[str]) -> dict:
+    """['0.76', 'sk=0.763', ...] -> {None or label: float}; InputError on bad input.
+
+    A bare VALUE applies to every ensemble and is only accepted when the study
+    has exactly one ensemble, or as a default next to LABEL=VALUE entries.
+    """
+    out: dict = {}
+    for text in values or []:
+        label, sep, number = str(text).rpartition("=")
+        label = label.strip() if sep else None
+        try:
+            value = float(number)
+        except ValueError:
+            raise InputError(f"--ground-state {text!r}: expected VALUE or LABEL=VALUE with a number, e.g. --ground-state sk=0.763166") from None
+        if not (math.isfinite(value) and value > 0):
+            raise InputError(f"--ground-state {text!r}: the ground-state energy density must be a positive finite number")
+        if label is not None and label not in labels:
+            raise InputError(f"--ground-state {text!r}: no ensemble {label!r} in this study (ensembles: {', '.join(labels)})")
+        if label in out:
+            raise InputError(f"--ground-state given twice for {label or 'all ensembles'}")
+        out[label] = value
+    if None in out and len(labels) > 1 and len(out) == 1:
+        raise InputError(
+            "--ground-state VALUE is ambiguous with several ensembles: write LABEL=VALUE "
+            f"(ensembles: {', '.join(labels)})"
+        )
+    return out
+
+
+def parse_at_depths(text: str | None) -> tuple[int, ...]:
+    """'50,100,160' -> (50, 100, 160); InputError on anything but positive integers."""
+    if text is None:
+        return ()
+    out = []
+    for part in str(text).split(","):
+        part = part.strip()
+        try:
+            depth = int(part)
+        except ValueError:
+            raise InputError(f"--at-depth {text!r}: expected comma-separated positive integers, e.g. --at-depth 50,100,160") from None
+        if depth < 1:
+            raise InputError(f"--at-depth {text!r}: depths must be >= 1")
+        out.append(depth)
+    return tuple(sorted(set(out)))
+
+
+def check_reference_settings(gs_tol: float, alg_tol: float, max_steps: int) -> None:
+    """Tolerances and step limit of a reference-energy computation (`leadline reference`, the API)."""
+    for name, tol in (("--gs-tol", gs_tol), ("--alg-tol", alg_tol)):
+        if not (math.isfinite(tol) and 1e-7 <= tol <= 0.1):
+            raise InputError(f"{name} must be between 1e-7 and 0.1, got {tol!r}")
+    if not 3 <= max_steps <= 30:
+        raise InputError(f"--max-steps must be between 3 and 30, got {max_steps}")

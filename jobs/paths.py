@@ -1,13 +1,18 @@
-"""Checks of file paths the user names, made before any work so nothing is computed in vain."""
+"""Files the user names: checked before any work (so nothing is computed in vain), written atomically at the end.
+
+The one place for both, shared by every command that writes a file (tables, plots, angle
+files, transfer CSVs) and by the reference cache.
+"""
 
 from __future__ import annotations
 
 import os
+import tempfile
 from pathlib import Path
 
 from .errors import InputError
 
-__all__ = ["check_output_file"]
+__all__ = ["check_output_file", "write_text_atomic"]
 
 
 def check_output_file(path: str | os.PathLike, suffix: str | None = None, option: str = "--output") -> Path:
@@ -36,3 +41,24 @@ def check_output_file(path: str | os.PathLike, suffix: str | None = None, option
     if path.exists() and not os.access(path, os.W_OK):
         raise InputError(f"{option} {text!r} exists and is not writable")
     return path
+
+
+def write_text_atomic(path: str | os.PathLike, text: str) -> None:
+    """Write ``text`` (UTF-8) to ``path`` through a temporary file beside it and a rename.
+
+    A reader never sees a half-written file; the file gets the usual permissions of a new
+    file (0666 less the umask), not the 0600 of the temporary file.
+    """
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent if str(path.parent) else ".")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the usual permissions of a new file
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise

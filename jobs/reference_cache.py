@@ -12,9 +12,10 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import tempfile
 from pathlib import Path
 from typing import TYPE_CHECKING
+
+from .paths import write_text_atomic
 
 if TYPE_CHECKING:  # scipy behind it: imported when a cache entry is read or keyed
     from leadline.kernels.reference import References
@@ -65,15 +66,5 @@ def store(cache_dir: Path, key: dict, refs: References) -> Path:
     """Write atomically (temporary file + rename); returns the path."""
     path = _path(cache_dir, key)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".json")
-    try:
-        with os.fdopen(fd, "w") as fh:
-            json.dump({"key": key, "references": refs.to_json()}, fh, indent=1)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    write_text_atomic(path, json.dumps({"key": key, "references": refs.to_json()}, indent=1))
     return path

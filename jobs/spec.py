@@ -255,7 +255,7 @@ def _sparse(item: dict, where: str, label: str) -> dict:
         q, degree = check_problem(q, degree)
     except ValueError as exc:
         raise InputError(f"{where}: {exc}") from None
-    from .sparse_cli import MAX_DEGREE, degree_limit_message
+    from .sparse_ensemble import MAX_DEGREE, degree_limit_message
 
     if degree > MAX_DEGREE:
         raise InputError(f"{where}: {degree_limit_message(degree)}")

@@ -419,7 +419,7 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
     assert progress["complete"] and progress["estimated_seconds_left"] == 0.0
     files = [f for f in (tmp_path / "api.zarr").rglob("*") if f.is_file()]
     assert progress["store"] == {"files": len(files), "bytes": sum(f.stat().st_size for f in files)}
-    from leadline.jobs.cmd_sweep import status_text
+    from leadline.jobs.commands.sweep import status_text
 
     assert f"in {len(files)} files" in status_text(progress).splitlines()[1]
 

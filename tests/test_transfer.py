@@ -575,7 +575,7 @@ def test_cli_sparse_angle_file_on_the_petersen_graph(tmp_path):
 
 def test_the_command_module_imports_no_heavy_library():
     code = (
-        "import sys, leadline.jobs.cmd_transfer, leadline.kernels.finite_size\n"
+        "import sys, leadline.jobs.commands.transfer, leadline.kernels.finite_size\n"
         "print(sorted(m for m in ('dask', 'distributed', 'zarr', 'matplotlib', 'scipy.optimize') if m in sys.modules))"
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)

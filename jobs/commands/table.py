@@ -6,19 +6,10 @@ from typing import List, Optional
 
 import typer
 
-from .errors import InputError
-from .parsing import refuse_sparse_ground_states
-from .report import (
-    build_report,
-    check_output_path,
-    load_study,
-    parse_at_depths,
-    parse_ground_state_options,
-    render_csv,
-    render_json,
-    render_markdown,
-    write_text_atomic,
-)
+from ..errors import InputError
+from ..parsing import parse_at_depths, parse_ground_state_options, refuse_sparse_ground_states
+from ..paths import check_output_file, write_text_atomic
+from ..report import build_report, load_study, render_csv, render_json, render_markdown
 
 FORMATS = {"markdown": render_markdown, "csv": render_csv, "json": render_json}
 
@@ -53,7 +44,7 @@ def table_command(
     if render is None:
         raise InputError(f"--format {fmt!r}: choose one of {', '.join(FORMATS)}")
     depths = parse_at_depths(at_depth)
-    out_path = check_output_path(output) if output is not None else None
+    out_path = check_output_file(output) if output is not None else None
     study = load_study(store)
     overrides = parse_ground_state_options(ground_state, study.ensembles())
     refuse_sparse_ground_states(overrides, study)

@@ -1,7 +1,9 @@
-"""Command-line logic for sparse ensembles (--xorsat Q --degree D) of `evaluate` and `optimize`.
+"""The sparse ensemble (--xorsat Q --degree D) of `evaluate` and `optimize`.
 
-The shared command modules call into here with a few lines, so everything about
-Max-q-XORSAT on D-regular hypertrees (validation, printing) lives in one place:
+The two command modules call into here with a few lines, so the command-line side of
+Max-q-XORSAT on D-regular hypertrees (help texts, depth check, running, printing) lives in
+one place; what a sparse ensemble may be (``check_sparse``, the degree limit) is shared with
+the study spec and the Python API in ``leadline.jobs.sparse_ensemble``:
 
     leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json]
     leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE]
@@ -13,65 +15,23 @@ from __future__ import annotations
 
 import contextlib
 import json
-import math
 
 import typer
 
 from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
 
-from .errors import InputError
+from ..errors import InputError
+from ..sparse_ensemble import check_sparse, ensemble_json
 
-__all__ = ["sparse_requested", "check_sparse", "evaluate_xorsat", "optimize_xorsat", "ensemble_json"]
+__all__ = ["XORSAT_HELP", "DEGREE_HELP", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
 
 XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
 DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
-
-#: largest degree accepted: the rounding of sum_a f(a) H(a) grows like D x 2.2e-16 (the messages
-#: are 1 - O(1/D) raised to the power D - 1), about 2e-7 at D = 1e9, where the integrity check
-#: must still tell rounding from a lost transform block (values agree with a 50-digit reference
-#: to 1e-14 up to there: tests/test_sparse_ranges.py)
-MAX_DEGREE = 10**9
-
-
-def degree_limit_message(degree) -> str:
-    """Why a degree beyond MAX_DEGREE is refused (one line, shared with the study spec)."""
-    return (
-        f"degree D = {degree:g} is beyond {MAX_DEGREE:.0e}: the recursion's rounding grows like "
-        f"D x 2.2e-16 ({2.2e-16 * degree:.0e} here) and its integrity check could no longer tell "
-        "rounding from a lost block; the D -> infinity limit is the dense q-spin model (--xi q:1)"
-    )
 
 
 def sparse_requested(xorsat, degree) -> bool:
     """True when the user asked for the sparse ensemble (either option given)."""
     return xorsat is not None or degree is not None
-
-
-def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
-    """Validate --xorsat/--degree (and that --xi is absent); returns (q, D). Raises InputError."""
-    if xi is not None:
-        raise InputError("--xi and --xorsat are two different ensembles: give one of them")
-    if xorsat is None:
-        raise InputError("--degree needs --xorsat Q (the constraint size, Q >= 2)")
-    try:
-        q = int(xorsat)
-    except (TypeError, ValueError):
-        raise InputError(f"--xorsat must be an integer >= 2, got {xorsat!r}") from None
-    if q < 2:
-        raise InputError(f"--xorsat must be an integer >= 2 (constraint size), got {q}")
-    if degree is None:
-        raise InputError("--xorsat needs --degree D (every spin in D constraints, D >= 2)")
-    try:
-        d = float(str(degree).strip())
-    except ValueError:
-        raise InputError(f"--degree must be an integer >= 2, got {degree!r}") from None
-    if not math.isfinite(d) or not d.is_integer():
-        raise InputError(f"--degree must be an integer >= 2, got {degree!r}")
-    if d < 2:
-        raise InputError(f"--degree must be >= 2, got {degree}")
-    if d > MAX_DEGREE:
-        raise InputError(f"--degree: {degree_limit_message(d)}")
-    return q, int(d)
 
 
 #: complex vectors of 2^(2p) entries (half the paths, by the flip symmetry) the recursion
@@ -81,7 +41,7 @@ SPARSE_VECTORS = 2
 
 def check_sparse_depth(p: int, settings, option: str) -> None:
     """Refuse depths whose whole-vector recursion cannot fit (InputError, one line)."""
-    from .spec import MAX_DEPTH
+    from ..spec import MAX_DEPTH
 
     if p > MAX_DEPTH:
         raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
@@ -98,11 +58,6 @@ def check_sparse_depth(p: int, settings, option: str) -> None:
             f"{option}: the sparse recursion at p = {p} keeps vectors of 2^{2 * p} complex entries "
             f"(at least {need / 2**30:.0f} GiB), more than this machine's {total / 2**30:.0f} GiB; lower the depth"
         )
-
-
-def ensemble_json(q: int, degree: int) -> dict:
-    """The ensemble record used in angle files and JSON output."""
-    return {"kind": "sparse", "q": int(q), "degree": int(degree)}
 
 
 def _report(ev) -> str:
@@ -130,7 +85,7 @@ def transform_map(settings):
     if settings is None or settings.mode not in ("local", "scheduler", "batch"):
         yield None
         return
-    from . import compute
+    from .. import compute
 
     with compute.open_compute(settings) as ex:
         yield ex.run_map
@@ -139,8 +94,8 @@ def transform_map(settings):
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
                     settings=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
-    from .angles import read_angles
-    from .parsing import angle_pair
+    from ..angles import read_angles
+    from ..parsing import angle_pair
 
     q, D = check_sparse(xorsat, degree, xi)
     if angles is not None:
@@ -167,16 +122,17 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
-    from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
-    from .api import sparse_ladder
-    from .parsing import check_optimizer_options, warm_start
+    from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
+    from ..api import sparse_ladder
+    from ..parsing import check_optimizer_options, warm_start
+    from ..paths import check_output_file
 
     q, D = check_sparse(xorsat, degree, xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
     check_sparse_depth(depth, settings, "--depth")
     if output is not None:
-        check_writable(output)
+        check_output_file(output)
     with transform_map(settings) as run_map:
         run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
                             maxiter=maxiter, ensemble=ensemble_json(q, D),

@@ -22,7 +22,7 @@ __all__ = ["universality_views", "render_universality_markdown"]
 def universality_views(reports: Sequence) -> list[dict]:
     """One view per q that has sparse ensembles in the study.
 
-    ``reports`` are EnsembleReport objects (jobs/report.py) with ``kind``, ``q``,
+    ``reports`` are EnsembleReport objects (``_model``) with ``kind``, ``q``,
     ``degree``, ``xi`` and ``rows``.  Returns a list of dicts
     {"q", "dense_label" (or None), "degrees": [...], "rows": [{"p", "dense", "sparse":
     [{"label", "degree", "nu", "scaled", "difference"}]}]}; "difference" is

@@ -1,7 +1,7 @@
 """`leadline sweep SPEC.toml`, `leadline resume STORE`, `leadline status STORE`.
 
 Thin: validate (spec, store path, compute settings) before anything is
-written, then call jobs/sweep.py; store and lock problems become one
+written, then call ``leadline.jobs.sweep``; store and lock problems become one
 stderr line with exit code 2.
 """
 
@@ -18,9 +18,9 @@ from leadline import __version__ as _version
 from leadline.kernels.exact import IMPLEMENTATION_ENV, resolve_implementation
 from leadline.storage.errors import StoreError
 
-from . import compute
-from .errors import InputError
-from .spec import check_new_store, load_spec, spec_from_json
+from .. import compute
+from ..errors import InputError
+from ..spec import check_new_store, load_spec, spec_from_json
 
 
 def _store_errors(func):
@@ -57,7 +57,7 @@ def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
     """
     from leadline.storage import open_study
 
-    from .sweep import depth_line, run_study
+    from ..sweep import depth_line, run_study
 
     def report(line: dict) -> None:
         if not as_json:

@@ -3,16 +3,15 @@
 from __future__ import annotations
 
 import json
-import math
 import sys
 from pathlib import Path
 from typing import Optional
 
 import typer
 
-from . import reference_cache
-from .errors import InputError
-from .parsing import mixture_arg
+from .. import reference_cache
+from ..errors import InputError
+from ..parsing import check_reference_settings, mixture_arg
 
 
 def reference_command(
@@ -48,7 +47,7 @@ def reference_command(
     if store is not None:
         if xi is not None:
             raise InputError("give either --xi or --store, not both")
-        _check_settings(gs_tol, alg_tol, max_steps)
+        check_reference_settings(gs_tol, alg_tol, max_steps)
         _store_references(store, ensemble, gs_tol, alg_tol, max_steps, as_json)
         return
     if ensemble is not None:
@@ -56,7 +55,7 @@ def reference_command(
     from leadline.kernels.reference import reference_energies
 
     mix = mixture_arg(xi)
-    _check_settings(gs_tol, alg_tol, max_steps)
+    check_reference_settings(gs_tol, alg_tol, max_steps)
     directory = None
     if not no_cache:
         directory = cache_dir if cache_dir is not None else reference_cache.default_cache_dir()
@@ -78,14 +77,6 @@ def reference_command(
         typer.echo(json.dumps(out))
         return
     typer.echo(report(mix, refs, cached))
-
-
-def _check_settings(gs_tol: float, alg_tol: float, max_steps: int) -> None:
-    for name, tol in (("--gs-tol", gs_tol), ("--alg-tol", alg_tol)):
-        if not (math.isfinite(tol) and 1e-7 <= tol <= 0.1):
-            raise InputError(f"{name} must be between 1e-7 and 0.1, got {tol!r}")
-    if not 3 <= max_steps <= 30:
-        raise InputError(f"--max-steps must be between 3 and 30, got {max_steps}")
 
 
 def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: float, max_steps: int, as_json: bool) -> None:

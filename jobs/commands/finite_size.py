@@ -12,9 +12,9 @@ import typer
 from leadline.kernels.finite_size import estimate_energy_density
 from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
-from .cost import check_cost
-from .errors import InputError
-from .parsing import angle_pair, check_representable, mixture_arg
+from ..cost import check_cost
+from ..errors import InputError
+from ..parsing import angle_pair, check_representable, mixture_arg
 
 MIN_SPINS = 2
 MAX_SPINS = 22  # 2^22 complex128 = 64 MiB per state; larger n is hours of work

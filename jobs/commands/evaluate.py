@@ -9,11 +9,12 @@ import typer
 
 from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_BUDGET, plan_chunks
 
-from . import bath_cli, compute, sparse_cli
-from .angles import read_angles
-from .cost import COST_NOTE_SECONDS, check_cost
-from .errors import InputError
-from .parsing import angle_pair, check_representable, file_mixture, mixture_arg
+from .. import compute
+from ..angles import read_angles
+from ..cost import COST_NOTE_SECONDS, check_cost
+from ..errors import InputError
+from ..parsing import angle_pair, check_representable, file_mixture, mixture_arg
+from . import _evaluate_bath as bath, _sparse as sparse
 
 
 def evaluate_command(
@@ -29,18 +30,18 @@ def evaluate_command(
     fixed_point: bool = typer.Option(False, "--check-fixed-point", help="Run one extra pass and report max|G_(p+1) - G_p| (should be ~1e-15)."),
     memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB; sets the chunk plan."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object (value, p, xi, residuals, ...) instead of a report."),
-    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse_cli.XORSAT_HELP),
-    degree: Optional[str] = typer.Option(None, "--degree", help=sparse_cli.DEGREE_HELP),
+    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
+    degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
     executor: str = compute.executor_option(),
     scheduler: Optional[str] = compute.scheduler_option(),
     workers: Optional[int] = compute.workers_option(),
     threads_per_worker: int = compute.threads_option(),
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
-    method: str = typer.Option("exact", "--method", help=bath_cli.METHOD_HELP),
-    fock: Optional[int] = typer.Option(None, "--fock", help=bath_cli.FOCK_HELP),
-    bond: Optional[int] = typer.Option(None, "--bond", help=bath_cli.BOND_HELP),
-    basis: Optional[str] = typer.Option(None, "--basis", help=bath_cli.BASIS_HELP),
+    method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP),
+    fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
+    bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
+    basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -55,14 +56,14 @@ def evaluate_command(
         if gamma is not None or beta is not None:
             raise InputError("give either --angles FILE or --gamma/--beta, not both")
         angle_set = read_angles(angles)
-        if angle_set.ensemble is not None and xi is None and not sparse_cli.sparse_requested(xorsat, degree):
+        if angle_set.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
             # a file written by `optimize --xorsat`: evaluate on its own sparse ensemble
             xorsat, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
-    use_bath = bath_cli.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
-                                     sparse=sparse_cli.sparse_requested(xorsat, degree))
-    if sparse_cli.sparse_requested(xorsat, degree):
+    use_bath = bath.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
+                                     sparse=sparse.sparse_requested(xorsat, degree))
+    if sparse.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-        return sparse_cli.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
+        return sparse.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
                                           gradient=gradient, as_json=as_json, settings=settings)
     if angle_set is not None:
         mix = file_mixture(xi, angle_set, angles)
@@ -72,7 +73,7 @@ def evaluate_command(
         g, b = angle_pair(gamma, beta)
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma")
     if use_bath:
-        return bath_cli.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
+        return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")

@@ -14,9 +14,7 @@ n <= --max-spins the exact statevector QAOA.
 from __future__ import annotations
 
 import json
-import os
 import sys
-import tempfile
 import time
 from pathlib import Path
 from typing import Optional
@@ -39,7 +37,8 @@ from leadline.kernels.finite_size import (
 )
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
-from .errors import InputError
+from ..errors import InputError
+from ..paths import check_output_file, write_text_atomic
 
 #: largest depth for which the finite-degree prediction (cost ~ p 4^p) is computed
 SPARSE_PREDICTION_MAX_P = 10
@@ -92,9 +91,7 @@ def transfer_command(
     if seed < 0:
         raise InputError(f"--seed must be >= 0, got {seed}")
     if output is not None:
-        from .angles import check_writable
-
-        check_writable(output)
+        check_output_file(output)
         if angles is None and store is None and depth is None:
             raise InputError("--output needs angles: give --angles, --store or --depth")
     reference = None
@@ -271,7 +268,7 @@ def _reference(kind, xi_spec, q, degree, gamma, beta, value, source: str) -> dic
 
 
 def _reference_from_file(path: str, depth: int | None) -> dict:
-    from .angles import read_angles
+    from ..angles import read_angles
 
     aset = read_angles(path)
     if depth is not None and depth != aset.p:
@@ -285,7 +282,7 @@ def _reference_from_file(path: str, depth: int | None) -> dict:
 
 
 def _reference_from_store(path: str, label: str | None, depth: int | None) -> dict:
-    from .report import load_study
+    from ..report import load_study
 
     study = load_study(path)
     labels = study.ensembles()
@@ -365,16 +362,7 @@ def _write_csv(path: str, gamma, beta, out: dict) -> None:
     predicted = "n/a" if out["predicted"] is None else f"{out['predicted']:.10g}"
     text = CSV_HEADER.format(instance=out["instance"], source=out["source"], lam=out["lambda"], predicted=predicted)
     text += "".join(f"{t},{g!r},{b!r}\n" for t, (g, b) in enumerate(zip(map(float, gamma), map(float, beta)), start=1))
-    target = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=".transfer-", dir=str(target.resolve().parent))
-    try:
-        with os.fdopen(fd, "w") as fh:
-            fh.write(text)
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    write_text_atomic(path, text)
 
 
 def _fmt(x, digits: int = 6) -> str:

@@ -9,12 +9,14 @@ import typer
 
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
 
-from . import compute, sparse_cli
-from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles
-from .api import optimize_ladder
-from .cost import COST_NOTE_SECONDS, check_cost
-from .errors import InputError
-from .parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from .. import compute
+from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
+from ..api import optimize_ladder
+from ..cost import COST_NOTE_SECONDS, check_cost
+from ..errors import InputError
+from ..paths import check_output_file
+from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from . import _sparse as sparse
 
 
 def optimize_command(
@@ -35,8 +37,8 @@ def optimize_command(
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
     memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
-    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse_cli.XORSAT_HELP),
-    degree: Optional[str] = typer.Option(None, "--degree", help=sparse_cli.DEGREE_HELP),
+    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
+    degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
     executor: str = compute.executor_option(),
     scheduler: Optional[str] = compute.scheduler_option(),
     workers: Optional[int] = compute.workers_option(),
@@ -56,18 +58,18 @@ def optimize_command(
         raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
-    if initial is not None and initial.ensemble is not None and xi is None and not sparse_cli.sparse_requested(xorsat, degree):
+    if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
         # a file written by `optimize --xorsat`: continue on its own sparse ensemble
         xorsat, degree = initial.ensemble["q"], str(initial.ensemble["degree"])
-    if sparse_cli.sparse_requested(xorsat, degree):
+    if sparse.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-        return sparse_cli.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
+        return sparse.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
                                           maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings)
     mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")
     if output is not None:
-        check_writable(output)
+        check_output_file(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:

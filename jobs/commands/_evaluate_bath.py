@@ -1,6 +1,6 @@
 """`leadline evaluate --method bath`: V_p from the bosonic-bath engine, with an error estimate.
 
-Kept apart from cmd_evaluate.py so that the exact path is untouched; the bath engine is
+Kept apart from evaluate.py so that the exact path is untouched; the bath engine is
 imported only when this method is asked for.
 """
 
@@ -11,7 +11,7 @@ from typing import Optional
 
 import typer
 
-from .errors import InputError
+from ..errors import InputError
 
 METHODS = ("exact", "bath")
 METHOD_HELP = "exact (default): the exact path-sum iteration. bath: the bosonic-bath engine (matrix product state, any depth, with a truncation error estimate; see docs/bath.md)."

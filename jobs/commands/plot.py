@@ -6,9 +6,10 @@ from typing import List, Optional
 
 import typer
 
-from .errors import InputError
-from .parsing import refuse_sparse_ground_states
-from .report import angle_plot_path, build_report, check_output_path, load_study, parse_ground_state_options, write_plots
+from ..errors import InputError
+from ..parsing import parse_ground_state_options, refuse_sparse_ground_states
+from ..paths import check_output_file
+from ..report import angle_plot_path, build_report, load_study, write_plots
 
 
 def plot_command(
@@ -31,8 +32,8 @@ def plot_command(
     """
     if output is None:
         raise InputError("--output FILE.png is required (the angle schedules are written to FILE-angles.png)")
-    out_path = check_output_path(output, suffix=".png")
-    check_output_path(angle_plot_path(out_path), suffix=".png")
+    out_path = check_output_file(output, suffix=".png")
+    check_output_file(angle_plot_path(out_path), suffix=".png")
     study = load_study(store)
     if not any(study.depths(label) for label in study.ensembles()):
         raise InputError(

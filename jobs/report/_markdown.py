@@ -1,0 +1,203 @@
+"""The report as Markdown that also reads well as plain text in a terminal (`leadline table`).
+
+Tables are assembled by hand (:func:`_markdown_table`, a dozen lines) because no kept library
+reproduces this layout byte for byte: tabulate's pipe format marks left-aligned columns
+``|:---|`` (and matches the widths only after changing its module-wide MIN_PADDING), and
+prettytable's Markdown style spaces the rule row differently.
+"""
+
+from __future__ import annotations
+
+import math
+
+from leadline.kernels.extrapolate import FAMILIES, SE_FACTOR, SPREAD_MEANING, Extrapolation
+
+from ._model import EnsembleReport, StudyReport
+from ._references import References
+from ._universality import render_universality_markdown
+
+__all__ = ["render_markdown"]
+
+
+def _fmt(x: float | None, spec: str, missing: str = "-") -> str:
+    return missing if x is None else format(x, spec)
+
+
+def _markdown_table(header: list[str], rows: list[list[str]], align: list[str]) -> list[str]:
+    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(header)]
+
+    def line(cells):
+        out = []
+        for c, w, a in zip(cells, widths, align):
+            out.append(c.rjust(w) if a == "r" else c.ljust(w))
+        return "| " + " | ".join(out) + " |"
+
+    sep = "|" + "|".join(("-" * (w + 1) + ":") if a == "r" else ("-" * (w + 2)) for w, a in zip(widths, align)) + "|"
+    return [line(header), sep, *(line(r) for r in rows)]
+
+
+def _reference_lines(refs: References) -> list[str]:
+    out = []
+    if refs.ground_state is not None:
+        unc = f" +- {refs.ground_state_uncertainty:.2g}" if refs.ground_state_uncertainty else ""
+        out.append(f"- ground state GS = {refs.ground_state:.6f}{unc} ({refs.ground_state_origin}: {refs.ground_state_source})")
+    else:
+        out.append("- ground state GS: not known")
+    if refs.threshold is not None:
+        unc = f" +- {refs.threshold_uncertainty:.2g}" if refs.threshold_uncertainty else ""
+        out.append(f"- algorithmic threshold ALG = {refs.threshold:.6f}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
+    else:
+        out.append("- algorithmic threshold ALG: not known")
+    return out
+
+
+def _fmt_range(low: float | None, high: float | None, spec: str, capped: bool = False) -> str:
+    lo = "never" if low is None else format(low, spec)
+    hi = "never" if high is None else format(high, spec)
+    return f"{lo} .. {hi}" + (" (capped at GS)" if capped else "")
+
+
+def _fmt_level_depth(d: float | None) -> str:
+    if d is None:
+        return "never"
+    return f"{d:.3g}" if d < 1e4 else f"{d:.2e}"
+
+
+def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[str]:
+    """The extrapolation block: every fit with its back-test, the headline, predictions."""
+    out = [f"Extrapolation of {value_name}_p* to p -> infinity (fit families over windows of the last k depths):", ""]
+    tested = [w for w in ex.fits if w.backtest is not None]
+    if tested:
+        bt = tested[0].backtest
+        held = f"p = {bt.held_out[0]}" + (f"..{bt.held_out[-1]}" if len(bt.held_out) > 1 else "")
+        out.append(
+            f"Back-test: each fit is refitted on the same number of depths ending at p = {bt.fit.depths[-1]} and "
+            f"predicts the held-out {held}; it passes when its largest error is <= {ex.pass_threshold:.2e} "
+            f"= max(0.1 x the rise over the held-out depths, 3 x the smallest error)."
+        )
+    else:
+        out.append("Back-test: too few depths to hold any out; no fit can pass.")
+    if ex.upper_bound is not None:
+        out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {ex.upper_bound:.6f} "
+                   "is flagged unphysical.")
+    out.append("")
+    rows = []
+    for w in ex.fits:
+        f = w.fit
+        rows.append([
+            w.family, str(f.k), f"{f.depths[0]}..{f.depths[-1]}", f"{f.limit:.5f}",
+            "GS given" if w.family == "power-gs" else f"{f.standard_error(math.inf):.1e}",
+            _fmt(w.backtest_error, ".2e"), w.status,
+        ])
+    out += _markdown_table(["family", "k", "depths", f"{value_name}_inf", "std err", "back-test error", "status"],
+                           rows, ["l", "r", "l", "r", "r", "r", "l"])
+    out.append("")
+    out.append("Families: " + "; ".join(f"{f.name}: {f.description}" for f in FAMILIES.values()) + ".")
+    out.append("")
+    lim = ex.limit
+    if lim is None:
+        out.append("No headline: no fit passes the back-test and stays physical.")
+        out.append("")
+        return out
+    best = ex.best_by_family()
+    fams = ", ".join(f"{fam} k = {w.fit.k}: {w.fit.limit:.4f}" for fam, w in best.items())
+    out.append(
+        f"{value_name}_inf estimate: {lim.central:.4f}, range {_fmt_range(lim.low, lim.high, '.4f', lim.capped)} "
+        f"({lim.n_fits} used fits of {len(best)} families)"
+    )
+    if ex.ground_state is not None:
+        r = lim.scaled(1.0 / ex.ground_state)
+        out.append(f"{value_name}_inf / GS estimate: {r.central:.4f}, range {_fmt_range(r.low, r.high, '.4f', r.capped)}")
+    out.append(
+        f"Headline rule: central = median over families of each family's best back-tested window ({fams}); "
+        f"range = smallest and largest over every used fit, each +- {SE_FACTOR:g} least-squares standard errors."
+    )
+    out.append(f"What the range means: {SPREAD_MEANING}")
+    out.append("")
+    if ex.at_depth:
+        ratio = ex.ratio_at_depth()
+        header = ["p", f"{value_name}_p", "range"] + ([f"{value_name}_p/GS", "range (ratio)"] if ratio else [])
+        p_rows = []
+        for p, est in ex.at_depth.items():
+            cells = [str(p), f"{est.central:.5f}", _fmt_range(est.low, est.high, ".5f", est.capped)]
+            if ratio:
+                rr = ratio[p]
+                cells += [f"{rr.central:.4f}", _fmt_range(rr.low, rr.high, ".4f", rr.capped)]
+            p_rows.append(cells)
+        out.append("Predicted at given depths (same headline rule):")
+        out.append("")
+        out += _markdown_table(header, p_rows, ["r"] * len(header))
+        out.append("")
+    if ex.levels:
+        l_rows = [
+            [lv.name, f"{lv.level:.6f}", _fmt_level_depth(lv.central),
+             f"{_fmt_level_depth(lv.low)} .. {_fmt_level_depth(lv.high)}", f"{lv.fits_reaching} of {lv.fits}"]
+            for lv in ex.levels
+        ]
+        out.append("Predicted depth to reach a target (same headline rule; never = the fit saturates below it):")
+        out.append("")
+        out += _markdown_table(["target", "level", "depth p", "range", "fits reaching"], l_rows,
+                               ["l", "r", "r", "r", "r"])
+        out.append("")
+    return out
+
+
+def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
+    refs = rep.references
+    out = [f"## {rep.label}: {rep.description}", ""]
+    sparse = rep.kind == "sparse"
+    if sparse:
+        out.append("- value: nu_p*, the optimal satisfied fraction per constraint (cut fraction for q = 2), "
+                   "exact on hypergraphs of girth > 2p+1; not an energy density (see the universality view)")
+    else:
+        out += _reference_lines(refs)
+    out.append("")
+    has_gs, has_alg = refs.ground_state is not None, refs.threshold is not None
+    header = ["p", "1/p", "nu_p*" if sparse else "V_p*", "gain"]
+    align = ["r", "r", "r", "r"]
+    if has_gs:
+        header.append("V_p*/GS")
+        align.append("r")
+    if has_alg:
+        header += ["V_p*/ALG", "> ALG"]
+        align += ["r", "l"]
+    header.append("grad norm")
+    align.append("r")
+    rows = []
+    for r in rep.rows:
+        cells = [str(r.p), f"{r.inverse_depth:.4f}", f"{r.value:.6f}", _fmt(r.gain, "+.6f")]
+        if has_gs:
+            cells.append(_fmt(r.ratio_gs, ".4f"))
+        if has_alg:
+            cells += [_fmt(r.ratio_alg, ".4f"), "yes" if r.exceeds_alg else "no"]
+        cells.append(_fmt(r.gradient_norm, ".1e"))
+        rows.append(cells)
+    if rows:
+        out += _markdown_table(header, rows, align)
+    else:
+        out.append("(no finished depth yet)")
+    out.append("")
+
+    if rep.extrapolation is not None:
+        out += _extrapolation_markdown(rep.extrapolation, value_name="nu" if sparse else "V")
+    for note in rep.notes:
+        out.append(f"Note: {note}.")
+    if rep.notes:
+        out.append("")
+    return out
+
+
+def render_markdown(report: StudyReport) -> str:
+    """The report as Markdown that also reads well as plain text in a terminal."""
+    out = [
+        f"# Study {report.name}: optimal QAOA energy V_p* per depth",
+        "",
+        "Energies are energy densities per spin (dimensionless), normalization E[H(z)H(z')] = n xi(R);",
+        "V_p* is the optimized (maximal) value at depth p. gain = V_p* - V_(p-1)*.",
+        "",
+    ]
+    for rep in report.ensembles:
+        out += _ensemble_markdown(rep)
+    out += render_universality_markdown(report.universality)
+    out.append(f"Caveat: {report.note}")
+    return "\n".join(out) + "\n"

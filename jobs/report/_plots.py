@@ -1,0 +1,211 @@
+"""The two figures of a report (`leadline plot`): V_p* against 1/p with the fits, and the angle schedules.
+
+matplotlib is imported inside :func:`write_plots` (and the legend helper it calls), never at
+module level: the command line must start without it (tests/test_startup.py).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+
+from leadline.kernels.extrapolate import FAMILIES, Extrapolation
+from leadline.kernels.sparse import scaled_value
+
+from ._model import StudyReport
+
+__all__ = ["write_plots", "angle_plot_path", "FIGURE_SIZE_INCHES", "FIGURE_DPI"]
+
+
+FIGURE_SIZE_INCHES = (11.0, 5.5)
+FIGURE_DPI = 100
+ANGLE_PANEL_INCHES = (10.0, 3.2)  # width, height per ensemble row
+
+
+def angle_plot_path(output: Path) -> Path:
+    """FILE.png -> FILE-angles.png (the second figure, the angle schedules)."""
+    output = Path(output)
+    return output.with_name(output.stem + "-angles" + output.suffix)
+
+
+FAMILY_LINESTYLES = {"poly1": (0, (1, 1.5)), "poly2": (0, (4, 2)), "poly3": (0, (6, 2, 1, 2)),
+                     "power": "-", "power-gs": (0, (3, 1, 1, 1))}
+
+
+def _drawn_fits(ex: Extrapolation) -> list:
+    """[(WindowFit, used)]: per family its used window with the smallest back-test error, else
+    (family not used) its window with the smallest back-test error."""
+    best = ex.best_by_family()
+    out = []
+    for fam in FAMILIES:
+        cands = [w for w in ex.fits if w.family == fam]
+        if cands:
+            w = best.get(fam) or min(cands, key=lambda c: (c.backtest_error if c.backtest else math.inf, c.fit.k))
+            out.append((w, fam in best))
+    return out
+
+
+def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None:
+    """Each family's curve out to 1/p = 0, its back-test, and the headline at 1/p = 0.
+
+    Per family the used window with the smallest back-test error is drawn
+    (bold); a family with no used window is drawn thin and faint with its best
+    back-tested window.  The held-out depths are ringed, and each drawn fit's
+    back-test predictions at them are marked with x.  The headline V_inf
+    (central, range) is an error bar at 1/p = 0.
+    """
+    for w, used in _drawn_fits(ex):
+        fit, fam = w.fit, w.family
+        xs = np.linspace(0.0, 1.0 / fit.depths[0], 200)
+        ax.plot(xs, fit.predict(np.where(xs > 0, 1.0 / np.maximum(xs, 1e-300), np.inf)), color=color,
+                ls=FAMILY_LINESTYLES[fam], lw=1.4 if used else 0.8, alpha=0.9 if used else 0.35)
+        if w.backtest is not None:
+            bt = w.backtest
+            ax.plot([1.0 / p for p in bt.held_out], bt.predicted, "x", color=color, ms=5 if used else 3,
+                    alpha=0.9 if used else 0.35)
+    tested = [w for w in ex.fits if w.backtest is not None]
+    if tested:
+        bt = tested[0].backtest
+        ax.plot([1.0 / p for p in bt.held_out], bt.actual, "o", mfc="none", mec=color, ms=10, mew=1.0)
+    if ex.limit is not None:
+        lim = ex.limit
+        text = f"{label}: V_inf ~ {lim.central:.4f} ({lim.low:.4f}..{lim.high:.4f}, estimate)" if label else None
+        ax.errorbar([0.0], [lim.central], yerr=[[lim.central - lim.low], [lim.high - lim.central]], fmt="s",
+                    color=color, capsize=4, ms=5, label=text)
+
+
+def _draw_zoom(ax, zoomed) -> None:
+    """Inset (upper right) magnifying 1/p from 0 to just beyond the earliest fitted window."""
+    firsts = [w.fit.depths[0] for rep, _ in zoomed for w, _ in _drawn_fits(rep.extrapolation)]
+    if not firsts:
+        return
+    x_max = 1.15 / min(firsts)
+    inset = ax.inset_axes([0.47, 0.47, 0.5, 0.48])
+    for rep, color in zoomed:
+        rows = [r for r in rep.rows if r.inverse_depth <= x_max]
+        inset.plot([r.inverse_depth for r in rows], [r.value for r in rows], "o", color=color, ms=4)
+        _draw_extrapolation(inset, rep.extrapolation, color, None)
+        if rep.references.ground_state is not None:
+            inset.axhline(rep.references.ground_state, color=color, ls="--", lw=1.0)
+    inset.set_xlim(-0.02 * x_max, x_max)
+    inset.tick_params(labelsize=7)
+    inset.grid(True, alpha=0.3)
+    inset.set_title("zoom: fits out to 1/p = 0", fontsize=7, pad=2)
+
+
+def _family_legend_handles():
+    """Proxy artists explaining the line styles, the back-test marks and the headline bar (grey)."""
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color="0.3", ls=FAMILY_LINESTYLES[f.name], lw=1.4, label=f"{f.name}: {f.description}")
+               for f in FAMILIES.values()]
+    handles.append(Line2D([], [], color="0.3", ls="none", marker="o", mfc="none", ms=9,
+                          label="held-out depths of the back-test"))
+    handles.append(Line2D([], [], color="0.3", ls="none", marker="x", label="back-test predictions (fit on earlier depths)"))
+    handles.append(Line2D([], [], color="0.3", lw=0.8, alpha=0.35, label="faint: family not used (failed / unphysical)"))
+    return handles
+
+
+def write_plots(report: StudyReport, output: Path) -> list[Path]:
+    """Write the two figures; return their paths.
+
+    ``output`` (FILE.png, 1100 x 550 pixels, legend at the right): V_p* against 1/p per ensemble,
+    markers for the stored values, each fit family's curve out to 1/p = 0 (one
+    line style per family, its best back-tested window; faint when the family
+    is not used), the held-out depths of the back-test ringed with the
+    back-test predictions marked x, the headline V_inf and its range as an
+    error bar at 1/p = 0, and horizontal reference lines: GS dashed, ALG
+    dotted, in the ensemble's colour.
+
+    ``FILE-angles.png`` (1000 x 320*n_ensembles pixels): optimal gamma_t and
+    beta_t against (t - 1/2)/p, one curve per depth p (darker = deeper), one
+    row of two panels per ensemble.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    output = Path(output)
+    paths = [output, angle_plot_path(output)]
+
+    fig, ax = plt.subplots(figsize=FIGURE_SIZE_INCHES, dpi=FIGURE_DPI)
+    colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    zoomed = []  # dense ensembles with an extrapolation, drawn again in the inset
+    for i, rep in enumerate(report.ensembles):
+        color = colors[i % len(colors)]
+        if not rep.rows:
+            continue
+        x = np.array([r.inverse_depth for r in rep.rows])
+        y = np.array([r.value for r in rep.rows])
+        if rep.kind == "sparse":
+            # a satisfied fraction is not an energy: show the scaled value, which tends
+            # to V_p* of xi = x^q as D grows (universality view)
+            y = np.array([scaled_value(rep.q, rep.degree, v) for v in y])
+            ax.plot(x, y, "x--", color=color, lw=0.8,
+                    label=f"{rep.label}: q = {rep.q}, D = {rep.degree:g}, sqrt(D)(nu*-1/2)2/sqrt(q)")
+            continue
+        ax.plot(x, y, "o", color=color, label=f"{rep.label}: {rep.description}")
+        if rep.extrapolation is not None:
+            _draw_extrapolation(ax, rep.extrapolation, color, rep.label)
+            zoomed.append((rep, color))
+        refs = rep.references
+        if refs.ground_state is not None:
+            ax.axhline(refs.ground_state, color=color, ls="--", lw=1.0,
+                       label=f"  GS = {refs.ground_state:.4f} ({refs.ground_state_origin})")
+        if refs.threshold is not None:
+            ax.axhline(refs.threshold, color=color, ls=":", lw=1.2,
+                       label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
+    if zoomed:
+        _draw_zoom(ax, zoomed)
+    ax.set_xlabel("1/p  (inverse QAOA depth)")
+    ax.set_ylabel("V_p*  (energy density per spin, dimensionless)")
+    ax.set_title(f"{report.name}\noptimal QAOA energy vs 1/p (extrapolations are estimates, not bounds)", fontsize=9)
+    ax.set_xlim(-0.03, 1.03)
+    ax.grid(True, alpha=0.3)
+    top = ax.secondary_xaxis("top")
+    top_depths = [1, 2, 3, 4, 5, 7, 10, 20]
+    top.set_xticks([1.0 / d for d in top_depths], [str(d) for d in top_depths])
+    top.tick_params(labelsize=7)
+    top.set_xlabel("depth p", fontsize=8, labelpad=2)
+    if report.ensembles:
+        handles, _ = ax.get_legend_handles_labels()
+        if any(rep.extrapolation is not None for rep in report.ensembles):
+            handles += _family_legend_handles()
+        ax.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
+                  frameon=False)
+    fig.subplots_adjust(left=0.075, right=0.63, top=0.86, bottom=0.1)
+    fig.savefig(paths[0], dpi=FIGURE_DPI)
+    plt.close(fig)
+
+    n = max(1, len(report.ensembles))
+    width, height = ANGLE_PANEL_INCHES
+    fig, axes = plt.subplots(n, 2, figsize=(width, height * n), dpi=FIGURE_DPI, squeeze=False)
+    cmap = plt.get_cmap("viridis")
+    for i, rep in enumerate(report.ensembles):
+        ax_g, ax_b = axes[i]
+        pmax = max((r.p for r in rep.rows), default=1)
+        for r in rep.rows:
+            if not r.gamma:
+                continue
+            t = (np.arange(1, r.p + 1) - 0.5) / r.p
+            shade = cmap(0.85 * (r.p - 1) / max(1, pmax - 1))
+            ax_g.plot(t, r.gamma, "o-", color=shade, ms=3, lw=1, label=f"p = {r.p}")
+            ax_b.plot(t, r.beta, "o-", color=shade, ms=3, lw=1, label=f"p = {r.p}")
+        ax_g.set_ylabel(f"{rep.label}\ngamma_t (rad)")
+        ax_b.set_ylabel("beta_t (rad)")
+        for ax_ in (ax_g, ax_b):
+            ax_.set_xlim(0, 1)
+            ax_.grid(True, alpha=0.3)
+        ax_g.set_title(f"{rep.label}: {rep.description}: phase angles", fontsize=9)
+        ax_b.set_title(f"{rep.label}: mixing angles", fontsize=9)
+        if any(r.gamma for r in rep.rows):
+            ax_b.legend(fontsize=6, ncol=2, loc="best")
+    for ax_ in axes[-1]:
+        ax_.set_xlabel("(t - 1/2)/p  (position in the schedule)")
+    fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.35 / (height * n), bottom=0.55 / (height * n), hspace=0.45, wspace=0.2)
+    fig.savefig(paths[1], dpi=FIGURE_DPI)
+    plt.close(fig)
+    return paths
