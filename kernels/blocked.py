@@ -427,11 +427,15 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
     # exp(v_k s) = exp(|Re v_k|) exp(v_k s - |Re v_k|): every Kronecker factor has
-    # modulus <= 1 and the row scale rides in e_hh (as in the row kernel), so no
-    # partial product overflows where the full weight does not
+    # modulus <= 1, B = exp(low-low part) * low chain too (shifted by low.ll_shift), and
+    # the row scale rides in e_row relative to the chunk's largest, S (as in the row
+    # kernel; chunks.row_log_scale): no factor exceeds 1 in modulus, so no partial
+    # product overflows or underflows where the finished weight does not.  The
+    # partial is multiplied by exp(S) on return.
     shift = np.abs(v.real)
-    e_hh = -0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1) + shift.sum(axis=1)
-    exp_hh = np.exp(e_hh)
+    e_row = _chunks.row_log_scale(AH, M, v, low)
+    S = _chunks.chunk_log_scale(e_row)
+    exp_hh = np.exp(e_row - S)
     row = _chunks._high_chain(AH, links) * exp_hh  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0; rows: aL_0 = +1, -1
@@ -549,4 +553,4 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     out[:h, h:n] = hl
     out[h:n, :h] = hl.T
     out[h:n, h:n] = LL
-    return out
+    return _chunks.unscale(out, S)

@@ -42,6 +42,9 @@ __all__ = [
     "IMPLEMENTATIONS",
     "DEFAULT_IMPLEMENTATION",
     "resolve_implementation",
+    "row_log_scale",
+    "chunk_log_scale",
+    "unscale",
 ]
 
 
@@ -94,6 +97,9 @@ class LowSide:
     links: np.ndarray  # (2p, 2) link table
     dlinks: np.ndarray  # (2p, 2) link derivative table
     extra: dict = field(default_factory=dict)
+    #: max over aL of Re(-1/2 aL^T M_LL aL); exp_ll is divided by exp(ll_shift) so that
+    #: |exp_ll| <= 1, and every row scale adds it back (see :func:`row_log_scale`)
+    ll_shift: float = 0.0
 
 
 # --------------------------------------------------------------------------- helpers
@@ -237,13 +243,67 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     M_ll = np.asarray(inp.M, dtype=complex)[h:, h:]
     q = quadratic_split(M_ll, l1)
     q *= -0.5
+    # exp of the low-low part relative to its largest modulus (<= 1, never overflows);
+    # the shift is carried into every row's log scale
+    ll_shift = float(q.real.max())
+    if not np.isfinite(ll_shift):
+        ll_shift = 0.0  # NaN input: left to the pass's sum-of-weights check
+    elif ll_shift != 0.0:
+        q -= ll_shift
     exp_ll = np.exp(q, out=q).reshape(-1)
     f_low = chain_split(links[h:], l1, l2).reshape(-1)
     s_ll = None
     if inp.adjoint is not None:
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
         s_ll = quadratic_split(np.asarray(Gs, dtype=complex)[h:, h:], l1).reshape(-1)
-    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks)
+    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks, ll_shift=ll_shift)
+
+
+# --------------------------------------------------------------------------- scales
+def row_log_scale(AH: np.ndarray, M: np.ndarray, v: np.ndarray, low: LowSide) -> np.ndarray:
+    """Per high row: the log of the largest modulus the row's weights can reach, and its exponent.
+
+    With shift_k = |Re v_k| every Kronecker factor exp(+-v_k - shift_k) has modulus
+    <= 1 and so has the shifted low-low factor; what is left of the weight's
+    exponent is, per row,
+
+        e_row = e_HH + sum_k |Re v_k| + ll_shift          (complex; its real part bounds
+                                                           log|w/f| over the row)
+
+    Returns e_row, shape (c,).  Callers take exp(e_row - S) with S the largest real
+    part in the chunk (:func:`chunk_log_scale`), so every factor of every weight
+    has modulus <= 1: nothing overflows, and a partial product underflows only
+    where the finished weight lies below the double range relative to the chunk's
+    largest one.  The partial is multiplied back by exp(S) (:func:`unscale`).
+    """
+    h = AH.shape[1]
+    e_hh = -0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1)
+    return e_hh + np.abs(v.real).sum(axis=1) + low.ll_shift
+
+
+def chunk_log_scale(e_row: np.ndarray) -> float:
+    """S = the largest Re e_row of a chunk (0 if there is none or it is not finite: a NaN
+    exponent then stays NaN and the pass's sum-of-weights check reports it)."""
+    if e_row.size == 0:
+        return 0.0
+    S = float(e_row.real.max())
+    return S if np.isfinite(S) else 0.0
+
+
+def unscale(partial: np.ndarray, S: float) -> np.ndarray:
+    """partial * exp(S) in place, exact up to one rounding: exp(S) = 2^k exp(r), |r| <= ln2/2.
+
+    The power of two is applied with ldexp (exact unless the result leaves the
+    double range, where it becomes 0 or inf as the true value would).
+    """
+    if S == 0.0:
+        return partial
+    k = int(np.rint(S / np.log(2.0)))
+    r = S - k * np.log(2.0)
+    partial *= np.exp(r)
+    np.ldexp(partial.real, k, out=partial.real)
+    np.ldexp(partial.imag, k, out=partial.imag)
+    return partial
 
 
 # --------------------------------------------------------------------------- chunk kernel
@@ -308,11 +368,13 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
     # exp(v_k s) = exp(|Re v_k|) * exp(v_k s - |Re v_k|): the two factors of each
-    # Kronecker pair then have modulus <= 1 and the row scale is carried in e_hh,
-    # so partial products cannot overflow where the full weight does not
+    # Kronecker pair then have modulus <= 1 and the row scale is carried in e_row,
+    # relative to the block's largest (row_log_scale), so no factor exceeds 1 in modulus
     shift = np.abs(v.real)
-    e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH) + shift.sum(axis=1)
-    row = _high_chain(AH, links) * np.exp(e_hh)  # (c,)
+    e_row = row_log_scale(AH, M, v, low)
+    log_scale = chunk_log_scale(e_row)
+    exp_row = np.exp(e_row - log_scale)
+    row = _high_chain(AH, links) * exp_row  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0
     lb_plus = np.where(last > 0, links[h - 1, 0], links[h - 1, 1])  # aL_0 = +1
@@ -355,7 +417,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
         D = np.zeros(2 * p, dtype=complex)
         if h > 1:
             dfh = _high_chain_derivatives(AH, links, dlinks)  # (c, h-1)
-            D[: h - 1] = (dfh * (np.exp(e_hh) * total0)[:, None]).sum(axis=0)
+            D[: h - 1] = (dfh * (exp_row * total0)[:, None]).sum(axis=0)
         dlb_plus = np.where(last > 0, dlinks[h - 1, 0], dlinks[h - 1, 1])
         dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
         D[h - 1] = (row * (dlb_plus * z_plus + dlb_minus * z_minus)).sum()
@@ -368,7 +430,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     out[:h, h:n] = hl
     out[h:n, :h] = hl.T
     out[h:n, h:n] = second_moments(u)
-    return out
+    return unscale(out, log_scale)
 
 
 def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
