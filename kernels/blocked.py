@@ -414,6 +414,11 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     rows contiguous), so the Kronecker builds and the bit reductions run along
     contiguous memory and BLAS takes the transposes for free.
     """
+    if low.log_ll is not None:
+        # far outside the plain double range the shared low-low factor cannot hold every
+        # row's relevant weights at once: such passes build their rows in log form
+        # (chunks.needs_log_form), which the row kernel does
+        return _chunks._chunk_partial_rowwise(inp, plan, chunk, low)
     p, h, l = inp.p, plan.n_high, plan.n_low
     n = 2 * p + 1
     M = np.asarray(inp.M)

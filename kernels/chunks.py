@@ -100,6 +100,9 @@ class LowSide:
     #: max over aL of Re(-1/2 aL^T M_LL aL); exp_ll is divided by exp(ll_shift) so that
     #: |exp_ll| <= 1, and every row scale adds it back (see :func:`row_log_scale`)
     ll_shift: float = 0.0
+    #: None, or the exponent -1/2 aL^T M_LL aL itself (2^l,) when the pass runs in log
+    #: form (:func:`needs_log_form`); exp_ll is then unused
+    log_ll: np.ndarray | None = None
 
 
 # --------------------------------------------------------------------------- helpers
@@ -246,17 +249,40 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     # exp of the low-low part relative to its largest modulus (<= 1, never overflows);
     # the shift is carried into every row's log scale
     ll_shift = float(q.real.max())
+    log_ll = None
     if not np.isfinite(ll_shift):
         ll_shift = 0.0  # NaN input: left to the pass's sum-of-weights check
-    elif ll_shift != 0.0:
-        q -= ll_shift
-    exp_ll = np.exp(q, out=q).reshape(-1)
+    elif needs_log_form(inp.M, ll_shift - float(q.real.min())):
+        log_ll = q.reshape(-1)
+        exp_ll = None
+    if log_ll is None:
+        if ll_shift != 0.0:
+            q -= ll_shift
+        exp_ll = np.exp(q, out=q).reshape(-1)
     f_low = chain_split(links[h:], l1, l2).reshape(-1)
     s_ll = None
     if inp.adjoint is not None:
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
         s_ll = quadratic_split(np.asarray(Gs, dtype=complex)[h:, h:], l1).reshape(-1)
-    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks, ll_shift=ll_shift)
+    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks, ll_shift=ll_shift, log_ll=log_ll)
+
+
+def needs_log_form(M, ll_range: float) -> bool:
+    """Whether a pass must build its weights in log form (the slower, always exact way).
+
+    The factorized kernels multiply a per-row scale, Kronecker factors and the
+    shared low-low factor exp(e_LL - max Re e_LL), each of modulus <= 1.  The
+    product of the factors can fall below a row's true largest weight by at most
+    ``ll_range`` = max - min of Re e_LL over the low patterns, so a weight is lost
+    to underflow only below exp(ll_range - 708) times the largest weight of its
+    chunk.  Inside the range of kernels/ranges.py (all partial exponents below
+    EXPONENT_LIMIT) nothing is lost at all; beyond it the factorized way is kept
+    while ll_range <= LOG_FORM_RANGE (lost weights < exp(-358) of the chunk's
+    largest), else the rows are built in log form.
+    """
+    from .ranges import EXPONENT_LIMIT, LOG_FORM_RANGE, pass_exponent_bound
+
+    return ll_range > LOG_FORM_RANGE and pass_exponent_bound(M) > EXPONENT_LIMIT
 
 
 # --------------------------------------------------------------------------- scales
@@ -381,8 +407,23 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     lb_minus = np.where(last > 0, links[h - 1, 1], links[h - 1, 0])  # aL_0 = -1
 
     W = np.empty((c, N), dtype=complex)
-    _linear_rows((np.exp(v - shift), np.exp(-v - shift)), W, "mul")
-    W *= low.exp_ll
+    if low.log_ll is None:
+        _linear_rows((np.exp(v - shift), np.exp(-v - shift)), W, "mul")
+        W *= low.exp_ll
+    else:
+        # log form: the whole exponent of every path of the block, minus its row's
+        # exact largest real part, then one exp (no factor can underflow on its own)
+        _linear_rows(v, W, "add")
+        W += low.log_ll
+        top = W.real.max(axis=1)
+        if not np.all(np.isfinite(top)):
+            top = np.where(np.isfinite(top), top, 0.0)
+        W -= top[:, None]
+        np.exp(W, out=W)
+        e_row = e_row - (shift.sum(axis=1) + low.ll_shift) + top
+        log_scale = chunk_log_scale(e_row)
+        exp_row = np.exp(e_row - log_scale)
+        row = _high_chain(AH, links) * exp_row
 
     out = np.zeros((n + 1, n), dtype=complex)
     if inp.adjoint is None:

@@ -44,6 +44,9 @@ __all__ = [
 
 #: largest allowed bound E on the modulus of a partial exponent (2E <= 700 < 708)
 EXPONENT_LIMIT = 350.0
+#: beyond EXPONENT_LIMIT, a pass whose low-low exponent spans more than this (max - min of
+#: its real part) builds its weights in log form (kernels/chunks.py, needs_log_form)
+LOG_FORM_RANGE = 350.0
 
 
 class RangeError(ValueError):
