@@ -438,9 +438,9 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     # product overflows or underflows where the finished weight does not.  The
     # partial is multiplied by exp(S) on return.
     shift = np.abs(v.real)
-    e_row = _chunks.row_log_scale(AH, M, v, low)
-    S = _chunks.chunk_log_scale(e_row)
-    exp_hh = np.exp(e_row - S)
+    e_row = _chunks.row_log_scale(-0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1), v, low)
+    S = _chunks.chunk_log_scale(e_row, low)
+    exp_hh = np.exp(e_row - S) if S else np.exp(e_row)
     row = _chunks._high_chain(AH, links) * exp_hh  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0; rows: aL_0 = +1, -1

@@ -103,6 +103,10 @@ class LowSide:
     #: None, or the exponent -1/2 aL^T M_LL aL itself (2^l,) when the pass runs in log
     #: form (:func:`needs_log_form`); exp_ll is then unused
     log_ll: np.ndarray | None = None
+    #: whether rows are scaled by their chunk's largest log-modulus (:func:`chunk_log_scale`);
+    #: False inside the range where the plain factors cannot leave double precision
+    #: (kernels/ranges.py, EXPONENT_LIMIT): there the pass is the unscaled one, bit for bit
+    scaled: bool = False
 
 
 # --------------------------------------------------------------------------- helpers
@@ -246,25 +250,37 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     M_ll = np.asarray(inp.M, dtype=complex)[h:, h:]
     q = quadratic_split(M_ll, l1)
     q *= -0.5
-    # exp of the low-low part relative to its largest modulus (<= 1, never overflows);
-    # the shift is carried into every row's log scale
-    ll_shift = float(q.real.max())
+    # beyond the plain range: exp of the low-low part relative to its largest modulus
+    # (<= 1, never overflows), the shift carried into every row's log scale; or, where
+    # that factor would span too much, the exponent itself (log form)
+    scaled = needs_scaling(inp.M)
+    ll_shift = 0.0
     log_ll = None
-    if not np.isfinite(ll_shift):
-        ll_shift = 0.0  # NaN input: left to the pass's sum-of-weights check
-    elif needs_log_form(inp.M, ll_shift - float(q.real.min())):
-        log_ll = q.reshape(-1)
-        exp_ll = None
-    if log_ll is None:
-        if ll_shift != 0.0:
+    exp_ll = None
+    if scaled:
+        ll_shift = float(q.real.max())
+        if not np.isfinite(ll_shift):
+            ll_shift = 0.0  # NaN input: left to the pass's sum-of-weights check
+        elif needs_log_form(inp.M, ll_shift - float(q.real.min())):
+            log_ll = q.reshape(-1)
+        if log_ll is None and ll_shift != 0.0:
             q -= ll_shift
+    if log_ll is None:
         exp_ll = np.exp(q, out=q).reshape(-1)
     f_low = chain_split(links[h:], l1, l2).reshape(-1)
     s_ll = None
     if inp.adjoint is not None:
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
         s_ll = quadratic_split(np.asarray(Gs, dtype=complex)[h:, h:], l1).reshape(-1)
-    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks, ll_shift=ll_shift, log_ll=log_ll)
+    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks, ll_shift=ll_shift, log_ll=log_ll, scaled=scaled)
+
+
+def needs_scaling(M) -> bool:
+    """Whether a pass's exponents can leave the range where every plain partial factor
+    lies between exp(-2E) and exp(E) inside double precision (kernels/ranges.py)."""
+    from .ranges import EXPONENT_LIMIT, pass_exponent_bound
+
+    return not pass_exponent_bound(M) <= EXPONENT_LIMIT
 
 
 def needs_log_form(M, ll_range: float) -> bool:
@@ -286,7 +302,7 @@ def needs_log_form(M, ll_range: float) -> bool:
 
 
 # --------------------------------------------------------------------------- scales
-def row_log_scale(AH: np.ndarray, M: np.ndarray, v: np.ndarray, low: LowSide) -> np.ndarray:
+def row_log_scale(e_hh: np.ndarray, v: np.ndarray, low: LowSide) -> np.ndarray:
     """Per high row: the log of the largest modulus the row's weights can reach, and its exponent.
 
     With shift_k = |Re v_k| every Kronecker factor exp(+-v_k - shift_k) has modulus
@@ -296,21 +312,24 @@ def row_log_scale(AH: np.ndarray, M: np.ndarray, v: np.ndarray, low: LowSide) ->
         e_row = e_HH + sum_k |Re v_k| + ll_shift          (complex; its real part bounds
                                                            log|w/f| over the row)
 
-    Returns e_row, shape (c,).  Callers take exp(e_row - S) with S the largest real
-    part in the chunk (:func:`chunk_log_scale`), so every factor of every weight
-    has modulus <= 1: nothing overflows, and a partial product underflows only
-    where the finished weight lies below the double range relative to the chunk's
-    largest one.  The partial is multiplied back by exp(S) (:func:`unscale`).
+    ``e_hh`` (c,) is the high-high part -1/2 aH^T M_HH aH.  Returns e_row, shape (c,).
+    Callers take exp(e_row - S) with S the largest real part in the chunk
+    (:func:`chunk_log_scale`), so every factor of every weight has modulus <= 1:
+    nothing overflows, and a partial product underflows only where the finished
+    weight lies below the double range relative to the chunk's largest one.  The
+    partial is multiplied back by exp(S) (:func:`unscale`).  Inside the plain range
+    (``low.scaled`` False) S = 0 and ll_shift = 0: the unscaled pass, bit for bit.
     """
-    h = AH.shape[1]
-    e_hh = -0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1)
-    return e_hh + np.abs(v.real).sum(axis=1) + low.ll_shift
+    e_row = e_hh + np.abs(v.real).sum(axis=1)
+    if low.ll_shift:
+        e_row += low.ll_shift
+    return e_row
 
 
-def chunk_log_scale(e_row: np.ndarray) -> float:
-    """S = the largest Re e_row of a chunk (0 if there is none or it is not finite: a NaN
-    exponent then stays NaN and the pass's sum-of-weights check reports it)."""
-    if e_row.size == 0:
+def chunk_log_scale(e_row: np.ndarray, low: LowSide) -> float:
+    """S = the largest Re e_row of a chunk (0 inside the plain range, if there is no row, or
+    if it is not finite: a NaN exponent then stays NaN and the pass's check reports it)."""
+    if not low.scaled or e_row.size == 0:
         return 0.0
     S = float(e_row.real.max())
     return S if np.isfinite(S) else 0.0
@@ -397,9 +416,9 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     # Kronecker pair then have modulus <= 1 and the row scale is carried in e_row,
     # relative to the block's largest (row_log_scale), so no factor exceeds 1 in modulus
     shift = np.abs(v.real)
-    e_row = row_log_scale(AH, M, v, low)
-    log_scale = chunk_log_scale(e_row)
-    exp_row = np.exp(e_row - log_scale)
+    e_row = row_log_scale(-0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH), v, low)
+    log_scale = chunk_log_scale(e_row, low)
+    exp_row = np.exp(e_row - log_scale) if log_scale else np.exp(e_row)
     row = _high_chain(AH, links) * exp_row  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0
@@ -421,7 +440,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
         W -= top[:, None]
         np.exp(W, out=W)
         e_row = e_row - (shift.sum(axis=1) + low.ll_shift) + top
-        log_scale = chunk_log_scale(e_row)
+        log_scale = chunk_log_scale(e_row, low)
         exp_row = np.exp(e_row - log_scale)
         row = _high_chain(AH, links) * exp_row
 
