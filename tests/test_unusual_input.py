@@ -121,7 +121,8 @@ def test_large_angles_with_a_representable_value_print_it(tmp_path, args, expect
     assert r.stderr == ""  # no overflow warnings
     out = json.loads(r.stdout)
     value = out["value"] if "value" in out else out["infinite_size_value"]
-    assert value == pytest.approx(expected, rel=1e-9)
+    # stated accuracy (docs/limits.md): 4 x 2.2e-16 x E relative, E = 2e4 .. 1.5e6 here
+    assert value == pytest.approx(expected, rel=1e-8)
     assert list(tmp_path.iterdir()) == []
 
 
