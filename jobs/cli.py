@@ -103,7 +103,7 @@ def main(argv: list[str] | None = None) -> None:
         if "Exit" in kinds:
             sys.exit(getattr(exc, "exit_code", 0))
         if "PassRangeError" in kinds:
-            # a pass whose weights left the double range (kernels/ranges.py): one line, like bad input
+            # a pass whose weights left the double range (kernels/exact/_ranges.py): one line, like bad input
             print(f"leadline: error: {exc}", file=sys.stderr)
             sys.exit(2)
         if "ClickException" in kinds:

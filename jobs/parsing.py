@@ -93,8 +93,8 @@ def warm_start(path: str | None, depth: int):
 
 def check_representable(mixture: Mixture, gamma, where: str = "--gamma", beta=None) -> None:
     """InputError (one line with the range) when these angles are beyond what double precision computes
-    (kernels/ranges.py: exponents beyond 1e9, or at p = 1 a value below the smallest double)."""
-    from leadline.kernels.ranges import RangeError, check_range
+    (kernels/exact/_ranges.py: exponents beyond 1e9, or at p = 1 a value below the smallest double)."""
+    from leadline.kernels.exact import RangeError, check_range
 
     try:
         check_range(mixture, gamma, beta)

@@ -14,11 +14,19 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from leadline.kernels import chunks
-from leadline.kernels.chunks import PassInput, run_pass_inprocess
-from leadline.kernels.iteration import PassIntegrityError, evaluate, expand_correlations, sum_w_tolerance
+from leadline.kernels.exact import (
+    _chunks as chunks,
+    PassInput,
+    run_pass_inprocess,
+    PassIntegrityError,
+    evaluate,
+    expand_correlations,
+    sum_w_tolerance,
+    ChunkPlan,
+    evaluation_path_visits,
+    plan_chunks,
+)
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.plan import ChunkPlan, evaluation_path_visits, plan_chunks
 from leadline.kernels.sparse import SparseIntegrityError, evaluate_sparse
 
 MIXTURES = ["2:0.5", "3:1", "2:0.3,3:0.4,4:0.3", "1:0.2,5:0.8"]  # even, odd, mixed, with q = 1
@@ -67,7 +75,7 @@ def test_truncating_one_time_more_changes_the_value():
     # zero the step-m Gamma at |t| = m on the full contour: a different, wrong value
     p, n = 3, 7
     Gam = np.concatenate([g, [0.0], -g[::-1]])
-    from leadline.kernels.contour import initial_correlations
+    from leadline.kernels.exact import initial_correlations
 
     G = initial_correlations(p, b)
     for m in range(1, p + 1):

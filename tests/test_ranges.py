@@ -15,22 +15,26 @@ import mpmath
 import numpy as np
 import pytest
 
-from leadline.kernels.iteration import evaluate
-from leadline.kernels.mixture import parse_mixture
-from leadline.kernels import ranges
-from leadline.kernels.chunks import IMPLEMENTATIONS, prepare_low_side
-from leadline.kernels.iteration import PassIntegrityError, PassRangeError, sum_w_tolerance
-from leadline.kernels.plan import plan_chunks
-from leadline.kernels.ranges import (
+from leadline.kernels.exact import (
     EXPONENT_LIMIT,
     EXPONENT_MAX,
+    IMPLEMENTATIONS,
+    PassIntegrityError,
+    PassRangeError,
     RangeError,
     check_pass_range,
     check_range,
+    evaluate,
     exponent_bound,
     p1_log_value,
     p1_max_gamma,
+    pass_partials,
+    plan_chunks,
+    prepare_low_side,
+    sum_w_tolerance,
 )
+from leadline.kernels.exact import _ranges as ranges
+from leadline.kernels.mixture import parse_mixture
 from leadline.tests.dense_reference import dense_value
 from leadline.tests.precise_reference import precise_run
 
@@ -211,7 +215,6 @@ def test_lost_or_doubled_chunk_is_still_caught_far_out():
     mix = parse_mixture("2:0.5")
     plan = plan_chunks(2, n_high=3, rows_per_chunk=1)  # 4 chunks (flip)
     assert plan.n_chunks == 4
-    from leadline.kernels.chunks import pass_partials
 
     def dropping(inp, plan_):
         parts = pass_partials(inp, plan_, range(plan_.n_chunks))

@@ -15,7 +15,7 @@ and this module returns the satisfied fraction
 Method (Basso, Farhi, Marwaha, Villalonga, Zhou, TQC 2022, arXiv:2110.14206
 for MaxCut on large-girth regular graphs; Basso, Gamarnik, Mei, Zhou, FOCS
 2022, arXiv:2204.10306 for Max-q-XORSAT), in the contour layout of
-:mod:`leadline.kernels.contour` (N = 2^(2p+1) paths, f and Gamma as there):
+:mod:`leadline.kernels.exact` (N = 2^(2p+1) paths, f and Gamma as there):
 
     phase(c) = Gamma . c,   K(c) = cos(phase(c)/2),   S(c) = sin(phase(c)/2)
     H_0 = 1
@@ -69,7 +69,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .contour import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights
+from ..exact import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights
 
 __all__ = [
     "SparseEvaluation",
@@ -278,7 +278,7 @@ def split_transform(
 def phase_vector(gamma) -> np.ndarray:
     """phase(c) = Gamma . c for all 2^(2p+1) paths, shape (N,), float; O(N) by doubling.
 
-    Pattern order as :func:`leadline.kernels.contour.sign_patterns` (first site = MSB,
+    Pattern order as :func:`leadline.kernels.exact.sign_patterns` (first site = MSB,
     set bit = spin -1).
     """
     Gam = gamma_vector(gamma)
@@ -714,7 +714,7 @@ def _lift_adjoint(Hbar: np.ndarray, m: int) -> np.ndarray:
 
 def _half_chain(m: int, beta) -> np.ndarray:
     """f(a) of the depth-m contour for the paths with a_1 = +1, shape (2^(2m),) complex."""
-    from .contour import chain_weights, link_table
+    from ..exact import chain_weights, link_table
 
     links = link_table(m, beta)
     n = n_sites(m)
@@ -989,8 +989,8 @@ def optimize_sparse(
     """
     from scipy.optimize import minimize
 
-    from .mixture import parse_mixture
-    from .optimize import canonical_angles, interpolate_angles
+    from ..mixture import parse_mixture
+    from ..optimize import canonical_angles, interpolate_angles
 
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)

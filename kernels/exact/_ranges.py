@@ -11,8 +11,8 @@ has modulus at most
 The weights themselves stay small however large E is (|w(a)| <= |f(a)| <= 1/2 in
 every case measured against mpmath, tests/test_ranges.py): the paths whose bra and
 ket halves agree have exponent 0, the others are damped.  What can leave the double
-range is the pieces a kernel builds a weight from.  The kernels (kernels/chunks.py,
-kernels/blocked.py) therefore
+range is the pieces a kernel builds a weight from.  The kernels (kernels/exact/_chunks.py,
+kernels/exact/_blocked.py) therefore
 
 * scale every factor to modulus <= 1 (the low-low factor by its largest modulus,
   each cross factor by its own, each row by the largest bound of its chunk, S) and
@@ -20,7 +20,7 @@ kernels/blocked.py) therefore
   the old computation, to rounding;
 * beyond EXPONENT_LIMIT, when the low-low exponent of a pass spans more than
   LOG_FORM_RANGE, build each row's weights in log form, relative to the row's exact
-  largest real exponent (slower; :func:`kernels.chunks.needs_log_form`).
+  largest real exponent (slower; :func:`_chunks.needs_log_form`).
 
 So no weight overflows, and a weight underflows only where it lies below the double
 range relative to the largest weight of its chunk.  What remains are two limits:
@@ -48,7 +48,7 @@ import math
 
 import numpy as np
 
-from .mixture import Mixture
+from ..mixture import Mixture
 
 __all__ = [
     "EXPONENT_LIMIT",
@@ -68,7 +68,7 @@ __all__ = [
 #: exp(-2E) and exp(E), well inside double precision (2E <= 700 < 708)
 EXPONENT_LIMIT = 350.0
 #: beyond EXPONENT_LIMIT, a pass whose low-low exponent spans more than this (max - min of
-#: its real part) builds its weights in log form (kernels/chunks.py, needs_log_form)
+#: its real part) builds its weights in log form (_chunks.needs_log_form)
 LOG_FORM_RANGE = 350.0
 #: largest accepted E: the relative rounding of every weight, about eps E, stays below 2.2e-7
 EXPONENT_MAX = 1e9

@@ -45,10 +45,10 @@ from typing import Callable
 
 import numpy as np
 
-from .chunks import PassInput, run_pass_inprocess
-from .contour import check_angles, gamma_vector, initial_correlations, link_beta_index, time0_index
-from .mixture import Mixture
-from .plan import ChunkPlan, plan_chunks, step_plans
+from ._chunks import PassInput, run_pass_inprocess
+from ._contour import check_angles, gamma_vector, initial_correlations, link_beta_index, time0_index
+from ..mixture import Mixture
+from ._plan import ChunkPlan, plan_chunks, step_plans
 
 __all__ = [
     "PassIntegrityError",
@@ -76,7 +76,7 @@ class PassRangeError(PassIntegrityError):
 
     A subclass of :class:`PassIntegrityError` so that callers that back off from a
     failed pass (the optimizer's line search) treat both alike; the command line
-    reports it as one line about the range (kernels/ranges.py), not as a lost chunk.
+    reports it as one line about the range (kernels/exact/_ranges.py), not as a lost chunk.
     """
 
 
@@ -91,7 +91,7 @@ def sum_w_tolerance(p: int, exponent: float = 0.0) -> float:
     the number of pairwise-reduction levels; 1e-11 * (2p+1) is ~100x the
     worst deviation seen at p <= 14 and far below the 1/2^(2p+1) that a
     single lost path of typical weight would cause.  Each weight is the exp of
-    a sum of terms up to ``exponent`` = E (kernels/ranges.py, pass_exponent_bound),
+    a sum of terms up to ``exponent`` = E (kernels/exact/_ranges.py, pass_exponent_bound),
     so its relative rounding is about eps * E: the allowance grows by
     (2p+1) * 4 eps E, which is below 1e-11 * (2p+1) for every E <= 10^4 and
     ~30x the deviations measured up to E = 1.5e6 (tests/test_ranges.py).
@@ -147,7 +147,7 @@ class Evaluation:
 
 
 def _check_pass(G: np.ndarray, p: int, step: int, M: np.ndarray | None = None) -> float:
-    from .ranges import pass_exponent_bound
+    from ._ranges import pass_exponent_bound
 
     E = pass_exponent_bound(M) if M is not None else 0.0
     if not np.all(np.isfinite(G)):

@@ -28,8 +28,20 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .contour import link_derivative_table, link_table
-from .plan import ChunkPlan
+from ._blocked import chunk_partial_blocked
+from ._contour import link_derivative_table, link_table
+from ._patterns import (
+    chain_derivative_sums,
+    chain_split,
+    chunk_log_scale,
+    high_chain,
+    high_rows,
+    quadratic_split,
+    row_log_scale,
+    split_low,
+    unscale,
+)
+from ._plan import ChunkPlan
 
 __all__ = [
     "PassInput",
@@ -42,9 +54,8 @@ __all__ = [
     "IMPLEMENTATIONS",
     "DEFAULT_IMPLEMENTATION",
     "resolve_implementation",
-    "row_log_scale",
-    "chunk_log_scale",
-    "unscale",
+    "needs_scaling",
+    "needs_log_form",
 ]
 
 
@@ -105,31 +116,11 @@ class LowSide:
     log_ll: np.ndarray | None = None
     #: whether rows are scaled by their chunk's largest log-modulus (:func:`chunk_log_scale`);
     #: False inside the range where the plain factors cannot leave double precision
-    #: (kernels/ranges.py, EXPONENT_LIMIT): there the pass is the unscaled one, bit for bit
+    #: (kernels/exact/_ranges.py, EXPONENT_LIMIT): there the pass is the unscaled one, bit for bit
     scaled: bool = False
 
 
 # --------------------------------------------------------------------------- helpers
-def _quadratic_over_patterns(A: np.ndarray) -> np.ndarray:
-    """q(x) = s(x)^T A s(x) over all 2^m patterns of m sites, O(2^m) after O(m^2).
-
-    Sites are added from the last to the first (the new site is the MSB):
-    q(a_k, rest) = q(rest) + A_kk + 2 a_k sum_{i>k} A_ki a_i.
-    """
-    A = np.asarray(A)
-    m = A.shape[0]
-    q = np.zeros(1, dtype=np.result_type(A.dtype, np.float64))
-    lin = [None] * m
-    for k in range(m - 1, -1, -1):
-        # linear form sum_{i>k} A_ki a_i over the patterns of sites k+1..m-1
-        lf = np.zeros(1, dtype=q.dtype)
-        for i in range(m - 1, k, -1):
-            lf = np.concatenate([lf + A[k, i], lf - A[k, i]])
-        lin[k] = lf
-        q = np.concatenate([q + A[k, k] + 2 * lf, q + A[k, k] - 2 * lf])
-    return q
-
-
 def _linear_rows(V: np.ndarray, out: np.ndarray, op: str) -> np.ndarray:
     """Fill ``out`` (c, 2^l) with the Kronecker structure of per-row 2-vectors.
 
@@ -190,59 +181,14 @@ def second_moments(u: np.ndarray) -> np.ndarray:
     return S
 
 
-def _chain_derivative_sums(u0: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
-    """D_t = sum_x u0(x) * (d/db_t prod_k L_k(x_k x_{k+1})) for the links inside a block.
-
-    ``links``/``dlinks`` have shape (m-1, 2) for a block of m sites.  Computed
-    with left environments (partial contractions of u0 with the first links)
-    and right chains, O(2^m) in total, never dividing by a link factor.
-    Returns shape (m-1,).
-    """
-    N = u0.shape[0]
-    m = N.bit_length() - 1
-    nl = m - 1
-    out = np.zeros(nl, dtype=complex)
-    if nl == 0:
-        return out
-    # right chains R_k over sites k..m-1 (pattern order, site k = MSB)
-    right = [None] * (m + 1)
-    r = np.ones(2, dtype=complex)
-    right[m - 1] = r
-    for k in range(m - 2, -1, -1):
-        n = r.size
-        half = n // 2
-        new = np.empty(2 * n, dtype=complex)
-        new[:half] = r[:half] * links[k, 0]
-        new[half:n] = r[half:] * links[k, 1]
-        new[n : n + half] = r[:half] * links[k, 1]
-        new[n + half :] = r[half:] * links[k, 0]
-        r = new
-        right[k] = r
-    env = u0.astype(complex)  # over sites t..m-1, leading sites summed with their links
-    for t in range(nl):
-        # env has shape (2^(m-t),): site t is the MSB, site t+1 the next bit
-        e = env.reshape(2, 2, -1)  # [a_t, a_{t+1}, rest]
-        # derivative of link t: x = a_t a_{t+1}; same (0) for (+,+),(-,-)
-        rr = right[t + 1].reshape(2, -1)  # [a_{t+1}, rest]
-        same = (e[0, 0] * rr[0]).sum() + (e[1, 1] * rr[1]).sum()
-        diff = (e[0, 1] * rr[1]).sum() + (e[1, 0] * rr[0]).sum()
-        out[t] = dlinks[t, 0] * same + dlinks[t, 1] * diff
-        # absorb site t with link t into the environment
-        env = (e[0] * np.array([links[t, 0], links[t, 1]])[:, None]
-               + e[1] * np.array([links[t, 1], links[t, 0]])[:, None]).reshape(-1)
-    return out
-
-
 # --------------------------------------------------------------------------- low side
 def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     """Quantities of the low sites for one pass; O(2^l) memory and time (plus O(l^2)).
 
     The quadratic forms and the low chain are built as (2^l1, 2^l2) matrices
-    (kernels/blocked.py: the two halves of the low block plus one small matrix
+    (kernels/exact/_blocked.py: the two halves of the low block plus one small matrix
     product for their coupling); the vectors here are flat views of them.
     """
-    from .blocked import chain_split, quadratic_split, split_low
-
     p, h = inp.p, plan.n_high
     l1, l2 = split_low(plan.n_low)
     links = link_table(p, inp.beta)
@@ -277,8 +223,8 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
 
 def needs_scaling(M) -> bool:
     """Whether a pass's exponents can leave the range where every plain partial factor
-    lies between exp(-2E) and exp(E) inside double precision (kernels/ranges.py)."""
-    from .ranges import EXPONENT_LIMIT, pass_exponent_bound
+    lies between exp(-2E) and exp(E) inside double precision (kernels/exact/_ranges.py)."""
+    from ._ranges import EXPONENT_LIMIT, pass_exponent_bound
 
     return not pass_exponent_bound(M) <= EXPONENT_LIMIT
 
@@ -291,85 +237,17 @@ def needs_log_form(M, ll_range: float) -> bool:
     product of the factors can fall below a row's true largest weight by at most
     ``ll_range`` = max - min of Re e_LL over the low patterns, so a weight is lost
     to underflow only below exp(ll_range - 708) times the largest weight of its
-    chunk.  Inside the range of kernels/ranges.py (all partial exponents below
+    chunk.  Inside the range of kernels/exact/_ranges.py (all partial exponents below
     EXPONENT_LIMIT) nothing is lost at all; beyond it the factorized way is kept
     while ll_range <= LOG_FORM_RANGE (lost weights < exp(-358) of the chunk's
     largest), else the rows are built in log form.
     """
-    from .ranges import EXPONENT_LIMIT, LOG_FORM_RANGE, pass_exponent_bound
+    from ._ranges import EXPONENT_LIMIT, LOG_FORM_RANGE, pass_exponent_bound
 
     return ll_range > LOG_FORM_RANGE and pass_exponent_bound(M) > EXPONENT_LIMIT
 
 
-# --------------------------------------------------------------------------- scales
-def row_log_scale(e_hh: np.ndarray, v: np.ndarray, low: LowSide) -> np.ndarray:
-    """Per high row: the log of the largest modulus the row's weights can reach, and its exponent.
-
-    With shift_k = |Re v_k| every Kronecker factor exp(+-v_k - shift_k) has modulus
-    <= 1 and so has the shifted low-low factor; what is left of the weight's
-    exponent is, per row,
-
-        e_row = e_HH + sum_k |Re v_k| + ll_shift          (complex; its real part bounds
-                                                           log|w/f| over the row)
-
-    ``e_hh`` (c,) is the high-high part -1/2 aH^T M_HH aH.  Returns e_row, shape (c,).
-    Callers take exp(e_row - S) with S the largest real part in the chunk
-    (:func:`chunk_log_scale`), so every factor of every weight has modulus <= 1:
-    nothing overflows, and a partial product underflows only where the finished
-    weight lies below the double range relative to the chunk's largest one.  The
-    partial is multiplied back by exp(S) (:func:`unscale`).  Inside the plain range
-    (``low.scaled`` False) S = 0 and ll_shift = 0: the unscaled pass, bit for bit.
-    """
-    e_row = e_hh + np.abs(v.real).sum(axis=1)
-    if low.ll_shift:
-        e_row += low.ll_shift
-    return e_row
-
-
-def chunk_log_scale(e_row: np.ndarray, low: LowSide) -> float:
-    """S = the largest Re e_row of a chunk (0 inside the plain range, if there is no row, or
-    if it is not finite: a NaN exponent then stays NaN and the pass's check reports it)."""
-    if not low.scaled or e_row.size == 0:
-        return 0.0
-    S = float(e_row.real.max())
-    return S if np.isfinite(S) else 0.0
-
-
-def unscale(partial: np.ndarray, S: float) -> np.ndarray:
-    """partial * exp(S) in place, exact up to one rounding: exp(S) = 2^k exp(r), |r| <= ln2/2.
-
-    The power of two is applied with ldexp (exact unless the result leaves the
-    double range, where it becomes 0 or inf as the true value would).
-    """
-    if S == 0.0:
-        return partial
-    k = int(np.rint(S / np.log(2.0)))
-    r = S - k * np.log(2.0)
-    partial *= np.exp(r)
-    np.ldexp(partial.real, k, out=partial.real)
-    np.ldexp(partial.imag, k, out=partial.imag)
-    return partial
-
-
 # --------------------------------------------------------------------------- chunk kernel
-def _high_rows(plan: ChunkPlan, chunk: int) -> np.ndarray:
-    start, stop = plan.rows(chunk)
-    h = plan.n_high
-    y = np.arange(start, stop, dtype=np.int64)[:, None]
-    bits = (y >> np.arange(h - 1, -1, -1, dtype=np.int64)[None, :]) & 1
-    return (1 - 2 * bits).astype(np.float64)
-
-
-def _high_chain(AH: np.ndarray, links: np.ndarray) -> np.ndarray:
-    """1/2 * prod of the links inside the high block, per row; (c,) complex."""
-    c, h = AH.shape
-    fh = np.full(c, 0.5, dtype=complex)
-    for t in range(h - 1):
-        same = AH[:, t] == AH[:, t + 1]
-        fh *= np.where(same, links[t, 0], links[t, 1])
-    return fh
-
-
 def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
     """(c, h-1): 1/2 * prod of high links with link t differentiated (no division)."""
     c, h = AH.shape
@@ -391,9 +269,9 @@ def _chunk_partial_rowwise(inp: PassInput, plan: ChunkPlan, chunk: int, low: Low
     work arrays stay bounded whatever plan it is given; block partials are summed
     in row order.
     """
-    from .plan import ROWWISE_BLOCK_ENTRIES
+    from ._plan import ROWWISE_BLOCK_ENTRIES
 
-    AH = _high_rows(plan, chunk)  # (c, h)
+    AH = high_rows(plan, chunk)  # (c, h)
     step = max(1, ROWWISE_BLOCK_ENTRIES // 2**plan.n_low)
     if AH.shape[0] <= step:
         return _rowwise_block(inp, plan, AH, low)
@@ -419,7 +297,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     e_row = row_log_scale(-0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH), v, low)
     log_scale = chunk_log_scale(e_row, low)
     exp_row = np.exp(e_row - log_scale) if log_scale else np.exp(e_row)
-    row = _high_chain(AH, links) * exp_row  # (c,)
+    row = high_chain(AH, links) * exp_row  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0
     lb_plus = np.where(last > 0, links[h - 1, 0], links[h - 1, 1])  # aL_0 = +1
@@ -442,7 +320,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
         e_row = e_row - (shift.sum(axis=1) + low.ll_shift) + top
         log_scale = chunk_log_scale(e_row, low)
         exp_row = np.exp(e_row - log_scale)
-        row = _high_chain(AH, links) * exp_row
+        row = high_chain(AH, links) * exp_row
 
     out = np.zeros((n + 1, n), dtype=complex)
     if inp.adjoint is None:
@@ -482,7 +360,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
         dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
         D[h - 1] = (row * (dlb_plus * z_plus + dlb_minus * z_minus)).sum()
         if l > 1:
-            D[h:] = _chain_derivative_sums(u0, links[h:], dlinks[h:])
+            D[h:] = chain_derivative_sums(u0, links[h:], dlinks[h:])
         out[n, : 2 * p] = D
 
     out[:h, :h] = AH.T @ (total[:, None] * AH)
@@ -494,8 +372,6 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
 
 
 def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
-    from .blocked import chunk_partial_blocked
-
     return chunk_partial_blocked(inp, plan, chunk, low)
 
 
@@ -505,7 +381,7 @@ def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: Low
 #: dense reference and against each other).
 CHUNK_KERNELS = {
     "rowwise": _chunk_partial_rowwise,  # elementwise numpy over a (rows, 2^l) array
-    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/blocked.py)
+    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/exact/_blocked.py)
 }
 #: used when no implementation is named; the environment variable overrides it
 DEFAULT_IMPLEMENTATION = "blocked"
