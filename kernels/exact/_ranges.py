@@ -22,8 +22,8 @@ kernels/exact/_blocked.py) therefore
   LOG_FORM_RANGE, build each row's weights in log form, relative to the row's exact
   largest real exponent (slower; :func:`_chunks.needs_log_form`).
 
-So no weight overflows, and a weight underflows only where it lies below the double
-range relative to the largest weight of its chunk.  What remains are two limits:
+So no weight overflows, and a weight is lost to underflow only below exp(-358) times
+the largest weight of its chunk (exp(-708) in log form).  What remains are two limits:
 
 1. Rounding of the exponent.  Each weight is the exp of a sum of terms up to E, so
    its relative rounding is about eps E (eps = 2.2e-16); measured against a 60-digit
