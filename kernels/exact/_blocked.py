@@ -353,12 +353,8 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     contiguous memory and BLAS takes the transposes for free.
     """
     if low.log_ll is not None:
-        # far outside the plain double range the shared low-low factor cannot hold every
-        # row's relevant weights at once: such passes build their rows in log form
-        # (_chunks.needs_log_form), which the row kernel does
-        from ._chunks import _chunk_partial_rowwise  # (imports this module: import at call time)
-
-        return _chunk_partial_rowwise(inp, plan, chunk, low)
+        # a pass in log form (_chunks.needs_log_form) has no shared low-low factor to multiply
+        raise ValueError("a pass in log form runs the row kernel (kernels/exact/_chunks.py dispatches it)")
     p, h, l = inp.p, plan.n_high, plan.n_low
     n = 2 * p + 1
     M = np.asarray(inp.M)

@@ -372,6 +372,11 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
 
 
 def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
+    if low.log_ll is not None:
+        # far outside the plain double range the shared low-low factor of the matrix
+        # products cannot hold every row's relevant weights at once: such passes build
+        # their rows in log form (needs_log_form), which is the row kernel's job
+        return _chunk_partial_rowwise(inp, plan, chunk, low)
     return chunk_partial_blocked(inp, plan, chunk, low)
 
 
