@@ -34,7 +34,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from leadline.kernels.exact import ChunkPlan, PassInput, PassIntegrityError, sum_w_tolerance
+from leadline.kernels.exact import ChunkPlan, PassInput, PassIntegrityError, PassRangeError, pass_exponent_bound, sum_w_tolerance
 from leadline.storage import DepthStore
 from leadline.storage import layout as L
 from leadline.storage.faults import crash_point
@@ -143,8 +143,13 @@ class CheckpointedPasses:
 
     # ------------------------------------------------------------------ compute
     def _meta(self, inp: PassInput, plan: ChunkPlan, key: str) -> dict:
-        return {"fingerprint": key.split("-")[0], "kind": "backward" if inp.backward else "forward",
+        meta = {"fingerprint": key.split("-")[0], "kind": "backward" if inp.backward else "forward",
                 "step": int(inp.p), "plan": L.plan_json(plan)}
+        allowed = _sum_w_allowed(inp)
+        if allowed > sum_w_tolerance(inp.p):
+            # exponents far beyond the usual range round more: the store's re-check needs the allowance
+            meta["sum_w_allowed"] = allowed
+        return meta
 
     def _compute_ledgered(self, inp: PassInput, plan: ChunkPlan, key: str) -> np.ndarray:
         n_chunks = plan.n_chunks
@@ -192,7 +197,7 @@ class CheckpointedPasses:
                 return total
             self.depth.note_repair("pass recomputed from scratch", key, detail=problem)
             inflight = self.depth.restart_inflight(inflight)
-        raise PassIntegrityError(f"pass {key} at p = {inp.p}: {problem} (twice)")
+        raise _failure(f"pass {key} at p = {inp.p}: {problem} (twice)", problem)
 
     def _compute_whole(self, inp: PassInput, plan: ChunkPlan, key: str) -> np.ndarray:
         t0 = time.perf_counter()
@@ -209,7 +214,7 @@ class CheckpointedPasses:
         self._measured(plan, wall)
         problem = _check_total(total, inp)
         if problem is not None:
-            raise PassIntegrityError(f"pass {key} at p = {inp.p}: {problem}")
+            raise _failure(f"pass {key} at p = {inp.p}: {problem}", problem)
         self.stats.chunks_computed += plan.n_chunks
         meta = self._meta(inp, plan, key)
         meta.update(n_chunks=plan.n_chunks, completions=[1] * plan.n_chunks, wall_s=wall, paths=_paths(plan))
@@ -236,9 +241,25 @@ def _check_total(total: np.ndarray, inp: PassInput) -> str | None:
     if total.shape != (n + 1, n):
         return f"shape {total.shape}, expected {(n + 1, n)}"
     if not np.all(np.isfinite(total)):
-        return "non-finite entries"
+        return _NON_FINITE
     if not inp.backward:
         dev = float(np.max(np.abs(np.diag(total[:n]) - 1.0)))
-        if not dev <= sum_w_tolerance(inp.p):
-            return f"sum of path weights deviates from 1 by {dev:.3e} (allowed {sum_w_tolerance(inp.p):.1e})"
+        allowed = _sum_w_allowed(inp)
+        if not dev <= allowed:
+            return f"sum of path weights deviates from 1 by {dev:.3e} (allowed {allowed:.1e})"
     return None
+
+
+def _failure(message: str, problem: str) -> PassIntegrityError:
+    """The error for a pass that failed its check: non-finite sums mean the weights left the double range."""
+    if problem == _NON_FINITE:
+        return PassRangeError(f"{message}: the path weights left the double range")
+    return PassIntegrityError(message)
+
+
+_NON_FINITE = "non-finite entries"
+
+
+def _sum_w_allowed(inp: PassInput) -> float:
+    """The pass's sum-of-weights allowance (grows with its exponents far outside the usual range)."""
+    return sum_w_tolerance(inp.p, pass_exponent_bound(inp.M))

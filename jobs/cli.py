@@ -102,6 +102,10 @@ def main(argv: list[str] | None = None) -> None:
             sys.exit(130)
         if "Exit" in kinds:
             sys.exit(getattr(exc, "exit_code", 0))
+        if "PassRangeError" in kinds:
+            # a pass whose weights left the double range (kernels/exact/_ranges.py): one line, like bad input
+            print(f"leadline: error: {exc}", file=sys.stderr)
+            sys.exit(2)
         if "ClickException" in kinds:
             print(f"leadline: error: {exc.format_message()}", file=sys.stderr)
             sys.exit(getattr(exc, "exit_code", 1))

@@ -95,12 +95,13 @@ def warm_start(path: str | None, depth: int):
     return initial
 
 
-def check_representable(mixture: Mixture, gamma, where: str = "--gamma") -> None:
-    """InputError (one line with the range) when a pass at these angles would leave double precision."""
+def check_representable(mixture: Mixture, gamma, where: str = "--gamma", beta=None) -> None:
+    """InputError (one line with the range) when these angles are beyond what double precision computes
+    (kernels/exact/_ranges.py: exponents beyond 1e9, or at p = 1 a value below the smallest double)."""
     from leadline.kernels.exact import RangeError, check_range
 
     try:
-        check_range(mixture, gamma)
+        check_range(mixture, gamma, beta)
     except RangeError as exc:
         raise InputError(f"{where}: {exc}") from None
 

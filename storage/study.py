@@ -529,7 +529,7 @@ class DepthStore:
         if not backward:
             m = int(record["step"])
             dev = float(np.max(np.abs(np.diag(total[: 2 * m + 1]) - 1.0)))
-            if not dev <= sum_w_tolerance(m):
+            if not dev <= float(record.get("sum_w_allowed", sum_w_tolerance(m))):
                 return f"sum of path weights deviates from 1 by {dev:.3e}"
         return None
 

@@ -61,33 +61,77 @@ def angle_file(path: Path, **fields) -> Path:
 
 
 # ------------------------------------------------------------------ 1: range of angles and weights
+# p = 1: the closed form V_1 = 2 g sin(2b) xi'(cos 2b) exp(-2 xi'(1) g^2) (Claes, van Dam, Quantum 5,
+# 542 (2021)) is about 1.6e-2170, 4.8e-866 and 2.2e-651436 in these three cases (tests/test_ranges.py
+# checks them against mpmath): not a double, so refused with the representable range
+@pytest.mark.parametrize(
+    "args,decade",
+    [
+        (["evaluate", "--xi", "2:0.5", "--gamma", "50", "--beta", "0.3"], "e-2170"),
+        (["evaluate", "--xi", "2:2000", "--gamma", "0.5", "--beta", "0.3"], "e-866"),
+        (["evaluate", "--xi", "3:1e6", "--gamma", "0.5", "--beta", "0.3"], "e-651436"),
+        (["finite-size", "--xi", "2:0.5", "--gamma", "50", "--beta", "0.3", "--n", "4", "--instances", "2"], "e-2170"),
+    ],
+)
+def test_unrepresentable_value_is_refused_with_the_range(tmp_path, args, decade):
+    line = refused_in(tmp_path, args, "out of the double-precision range")
+    assert "representable for |gamma| <=" in line  # the line states the representable range
+    assert decade in line
+
+
 @pytest.mark.parametrize(
     "args",
     [
-        ["evaluate", "--xi", "2:0.5", "--gamma", "50", "--beta", "0.3"],
-        ["evaluate", "--xi", "2:2000", "--gamma", "0.5", "--beta", "0.3"],
-        ["evaluate", "--xi", "3:1e6", "--gamma", "0.5", "--beta", "0.3"],
-        ["evaluate", "--xi", "2:0.5", "--gamma", "7,7", "--beta", "0.3,0.2", "--gradient"],
-        ["finite-size", "--xi", "2:0.5", "--gamma", "50", "--beta", "0.3", "--n", "4", "--instances", "2"],
+        ["evaluate", "--xi", "2:0.5", "--gamma", "40000,0.1", "--beta", "0.3,0.2"],
+        ["evaluate", "--xi", "3:1e10", "--gamma", "0.00001,0.3", "--beta", "0.3,0.2", "--gradient"],
     ],
 )
-def test_out_of_range_is_refused_with_the_range(tmp_path, args):
+def test_exponents_beyond_double_resolution_are_refused(tmp_path, args):
     line = refused_in(tmp_path, args, "out of the double-precision range")
-    assert "sum_t |gamma_t| <=" in line  # the line states the representable range
+    assert "sum_t |gamma_t| <=" in line
 
 
 def test_out_of_range_warm_start_is_refused(tmp_path):
-    angle_file(tmp_path / "far.json", gamma=[40.0])
+    angle_file(tmp_path / "far.json", gamma=[40000.0])
     refused_in(tmp_path, ["optimize", "--depth", "2", "--angles", "far.json"], "out of the double-precision range")
 
 
 def test_in_range_extreme_value_is_computed():
     # SK at p = 1: V_1 = g sin(4b) exp(-2 g^2) (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022));
-    # g = 13 is inside the range (2 * 13^2 = 338 <= 350) and V_1 ~ 2e-146 is still a normal double
-    r = run("evaluate", "--xi", "2:0.5", "--gamma", "13", "--beta", "0.3", "--json")
+    # g = 18.5: 2 g^2 = 684, beyond the old limit of 350, and V_1 ~ 9e-297 is still a normal double
+    r = run("evaluate", "--xi", "2:0.5", "--gamma", "18.5", "--beta", "0.3", "--json")
     assert r.returncode == 0, r.stderr
     value = json.loads(r.stdout)["value"]
-    assert value == pytest.approx(13 * math.sin(1.2) * math.exp(-2 * 169), rel=1e-9)
+    assert value == pytest.approx(18.5 * math.sin(1.2) * math.exp(-2 * 18.5**2), rel=1e-9)
+
+
+@pytest.mark.parametrize(
+    "args,expected",
+    [
+        # 60-digit mpmath values of the dense path sum (tests/precise_reference.py; tests/test_ranges.py)
+        (["evaluate", "--xi", "2:0.5", "--gamma", "0.1,50", "--beta", "0.3,0.2"], 0.077504160624),
+        (["evaluate", "--xi", "2:0.5", "--gamma=50,-49.5", "--beta", "0.01,0.3", "--gradient"], 0.038244185719),
+        (["evaluate", "--xi", "3:1e6", "--gamma", "0.001,0.5", "--beta", "0.3,0.2"], 4.4697561518),
+        (["finite-size", "--xi", "2:0.5", "--gamma", "0.1,50", "--beta", "0.3,0.2", "--n", "4", "--instances", "2"], 0.077504160624),
+    ],
+)
+def test_large_angles_with_a_representable_value_print_it(tmp_path, args, expected):
+    r = run(*args, "--json", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert r.stderr == ""  # no overflow warnings
+    out = json.loads(r.stdout)
+    value = out["value"] if "value" in out else out["infinite_size_value"]
+    # stated accuracy (docs/limits.md): 4 x 2.2e-16 x E relative, E = 2e4 .. 1.5e6 here
+    assert value == pytest.approx(expected, rel=1e-8)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_large_angles_report_shows_tiny_values():
+    # SK p = 2 at gamma = (20, 20): V ~ 9.35e-123 (mpmath, tests/test_ranges.py); the report
+    # prints significant digits instead of twelve zeros
+    r = run("evaluate", "--xi", "2:0.5", "--gamma", "20,20", "--beta", "0.3,0.2")
+    assert r.returncode == 0, r.stderr
+    assert "V_p        = 9.35185363" in r.stdout and "e-123" in r.stdout
 
 
 # ------------------------------------------------------------------ 2: very large sparse degrees

@@ -71,7 +71,7 @@ def evaluate_command(
     else:
         mix = mixture_arg(xi)
         g, b = angle_pair(gamma, beta)
-    check_representable(mix, g, "--angles" if angle_set is not None else "--gamma")
+    check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
         return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
@@ -89,11 +89,16 @@ def evaluate_command(
     typer.echo(report(result))
 
 
+def _value_text(value: float) -> str:
+    """Twelve decimals, or twelve significant digits for a nonzero value too small to show them."""
+    return f"{value:.12f}" if value == 0.0 or abs(value) >= 1e-6 else f"{value:.12e}"
+
+
 def report(result) -> str:
     lines = [
         f"xi(x)      = {result.mixture.label()}",
         f"depth p    = {result.p}",
-        f"V_p        = {result.value:.12f}",
+        f"V_p        = {_value_text(result.value)}",
     ]
     if result.gradient is not None:
         lines.append("dV/dgamma  = " + ", ".join(f"{x:+.6e}" for x in result.gradient["gamma"]))

@@ -70,7 +70,7 @@ def finite_size_command(
     """
     mix = mixture_arg(xi)
     g, b = angle_pair(gamma, beta)
-    check_representable(mix, g)  # the exact infinite-size column needs the passes in range
+    check_representable(mix, g, beta=b)  # the exact infinite-size column must be a double
     check_cost(g.size, plan_chunks(g.size), None, gradient=False, option="--gamma/--beta")
     sizes = spins_arg(spins)
     if not 2 <= instances <= MAX_INSTANCES:

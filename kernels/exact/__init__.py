@@ -8,7 +8,7 @@ reverse-mode gradient.  Modules (private): ``_contour`` (path layout and chain w
 ``_blocked`` (the matrix-product kernel), ``_chunks`` (the pass contract, the low side, the
 row-by-row kernel, the implementation registry; imports ``_blocked``),
 ``_iteration`` (the p steps and the gradient), ``_ranges`` (the angle range a pass computes
-exactly).
+in double precision, and what is refused).
 
 May import: numpy and :mod:`leadline.kernels.mixture`; nothing else of the tool.
 
@@ -41,6 +41,8 @@ _WHERE = {
     "PassInput": "_chunks",
     "LowSide": "_chunks",
     "prepare_low_side": "_chunks",
+    "needs_scaling": "_chunks",
+    "needs_log_form": "_chunks",
     "chunk_partial": "_chunks",
     "pass_partials": "_chunks",
     "run_pass_inprocess": "_chunks",
@@ -60,6 +62,7 @@ _WHERE = {
     "COLUMNS": "_blocked",
     "tape_capacity_bytes": "_blocked",
     "PassIntegrityError": "_iteration",
+    "PassRangeError": "_iteration",
     "Evaluation": "_iteration",
     "evaluate": "_iteration",
     "sum_w_tolerance": "_iteration",
@@ -67,6 +70,10 @@ _WHERE = {
     "CONTOURS": "_iteration",
     "expand_correlations": "_iteration",
     "EXPONENT_LIMIT": "_ranges",
+    "LOG_FORM_RANGE": "_ranges",
+    "EXPONENT_MAX": "_ranges",
+    "p1_log_value": "_ranges",
+    "p1_max_gamma": "_ranges",
     "RangeError": "_ranges",
     "exponent_bound": "_ranges",
     "pass_exponent_bound": "_ranges",

@@ -40,7 +40,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._contour import chain_weights, sign_patterns
-from ._patterns import chain_derivative_sums, high_chain, high_rows, split_low
+from ._patterns import chain_derivative_sums, chunk_log_scale, high_chain, high_rows, row_log_scale, split_low, unscale
 
 __all__ = [
     "chunk_partial_blocked",
@@ -352,6 +352,9 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     rows contiguous), so the Kronecker builds and the bit reductions run along
     contiguous memory and BLAS takes the transposes for free.
     """
+    if low.log_ll is not None:
+        # a pass in log form (_chunks.needs_log_form) has no shared low-low factor to multiply
+        raise ValueError("a pass in log form runs the row kernel (kernels/exact/_chunks.py dispatches it)")
     p, h, l = inp.p, plan.n_high, plan.n_low
     n = 2 * p + 1
     M = np.asarray(inp.M)
@@ -365,11 +368,15 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
     # exp(v_k s) = exp(|Re v_k|) exp(v_k s - |Re v_k|): every Kronecker factor has
-    # modulus <= 1 and the row scale rides in e_hh (as in the row kernel), so no
-    # partial product overflows where the full weight does not
+    # modulus <= 1, B = exp(low-low part) * low chain too (shifted by low.ll_shift), and
+    # the row scale rides in e_row relative to the chunk's largest, S (as in the row
+    # kernel; _patterns.row_log_scale): no factor exceeds 1 in modulus, so no partial
+    # product overflows or underflows where the finished weight does not.  The
+    # partial is multiplied by exp(S) on return.
     shift = np.abs(v.real)
-    e_hh = -0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1) + shift.sum(axis=1)
-    exp_hh = np.exp(e_hh)
+    e_row = row_log_scale(-0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1), v, low)
+    S = chunk_log_scale(e_row, low)
+    exp_hh = np.exp(e_row - S) if S else np.exp(e_row)
     row = high_chain(AH, links) * exp_hh  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0; rows: aL_0 = +1, -1
@@ -487,4 +494,4 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     out[:h, h:n] = hl
     out[h:n, :h] = hl.T
     out[h:n, h:n] = LL
-    return out
+    return unscale(out, S)

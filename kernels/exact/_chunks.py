@@ -30,7 +30,17 @@ import numpy as np
 
 from ._blocked import chunk_partial_blocked
 from ._contour import link_derivative_table, link_table
-from ._patterns import chain_derivative_sums, chain_split, high_chain, high_rows, quadratic_split, split_low
+from ._patterns import (
+    chain_derivative_sums,
+    chain_split,
+    chunk_log_scale,
+    high_chain,
+    high_rows,
+    quadratic_split,
+    row_log_scale,
+    split_low,
+    unscale,
+)
 from ._plan import ChunkPlan
 
 __all__ = [
@@ -44,6 +54,8 @@ __all__ = [
     "IMPLEMENTATIONS",
     "DEFAULT_IMPLEMENTATION",
     "resolve_implementation",
+    "needs_scaling",
+    "needs_log_form",
 ]
 
 
@@ -96,6 +108,16 @@ class LowSide:
     links: np.ndarray  # (2p, 2) link table
     dlinks: np.ndarray  # (2p, 2) link derivative table
     extra: dict = field(default_factory=dict)
+    #: max over aL of Re(-1/2 aL^T M_LL aL); exp_ll is divided by exp(ll_shift) so that
+    #: |exp_ll| <= 1, and every row scale adds it back (see :func:`row_log_scale`)
+    ll_shift: float = 0.0
+    #: None, or the exponent -1/2 aL^T M_LL aL itself (2^l,) when the pass runs in log
+    #: form (:func:`needs_log_form`); exp_ll is then unused
+    log_ll: np.ndarray | None = None
+    #: whether rows are scaled by their chunk's largest log-modulus (:func:`chunk_log_scale`);
+    #: False inside the range where the plain factors cannot leave double precision
+    #: (kernels/exact/_ranges.py, EXPONENT_LIMIT): there the pass is the unscaled one, bit for bit
+    scaled: bool = False
 
 
 # --------------------------------------------------------------------------- helpers
@@ -174,13 +196,55 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     M_ll = np.asarray(inp.M, dtype=complex)[h:, h:]
     q = quadratic_split(M_ll, l1)
     q *= -0.5
-    exp_ll = np.exp(q, out=q).reshape(-1)
+    # beyond the plain range: exp of the low-low part relative to its largest modulus
+    # (<= 1, never overflows), the shift carried into every row's log scale; or, where
+    # that factor would span too much, the exponent itself (log form)
+    scaled = needs_scaling(inp.M)
+    ll_shift = 0.0
+    log_ll = None
+    exp_ll = None
+    if scaled:
+        ll_shift = float(q.real.max())
+        if not np.isfinite(ll_shift):
+            ll_shift = 0.0  # NaN input: left to the pass's sum-of-weights check
+        elif needs_log_form(inp.M, ll_shift - float(q.real.min())):
+            log_ll = q.reshape(-1)
+        if log_ll is None and ll_shift != 0.0:
+            q -= ll_shift
+    if log_ll is None:
+        exp_ll = np.exp(q, out=q).reshape(-1)
     f_low = chain_split(links[h:], l1, l2).reshape(-1)
     s_ll = None
     if inp.adjoint is not None:
         Gs = 0.5 * (inp.adjoint + inp.adjoint.T)
         s_ll = quadratic_split(np.asarray(Gs, dtype=complex)[h:, h:], l1).reshape(-1)
-    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks)
+    return LowSide(plan, exp_ll, f_low, s_ll, links, dlinks, ll_shift=ll_shift, log_ll=log_ll, scaled=scaled)
+
+
+def needs_scaling(M) -> bool:
+    """Whether a pass's exponents can leave the range where every plain partial factor
+    lies between exp(-2E) and exp(E) inside double precision (kernels/exact/_ranges.py)."""
+    from ._ranges import EXPONENT_LIMIT, pass_exponent_bound
+
+    return not pass_exponent_bound(M) <= EXPONENT_LIMIT
+
+
+def needs_log_form(M, ll_range: float) -> bool:
+    """Whether a pass must build its weights in log form (the slower, always exact way).
+
+    The factorized kernels multiply a per-row scale, Kronecker factors and the
+    shared low-low factor exp(e_LL - max Re e_LL), each of modulus <= 1.  The
+    product of the factors can fall below a row's true largest weight by at most
+    ``ll_range`` = max - min of Re e_LL over the low patterns, so a weight is lost
+    to underflow only below exp(ll_range - 708) times the largest weight of its
+    chunk.  Inside the range of kernels/exact/_ranges.py (all partial exponents below
+    EXPONENT_LIMIT) nothing is lost at all; beyond it the factorized way is kept
+    while ll_range <= LOG_FORM_RANGE (lost weights < exp(-358) of the chunk's
+    largest), else the rows are built in log form.
+    """
+    from ._ranges import EXPONENT_LIMIT, LOG_FORM_RANGE, pass_exponent_bound
+
+    return ll_range > LOG_FORM_RANGE and pass_exponent_bound(M) > EXPONENT_LIMIT
 
 
 # --------------------------------------------------------------------------- chunk kernel
@@ -227,19 +291,36 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
     # exp(v_k s) = exp(|Re v_k|) * exp(v_k s - |Re v_k|): the two factors of each
-    # Kronecker pair then have modulus <= 1 and the row scale is carried in e_hh,
-    # so partial products cannot overflow where the full weight does not
+    # Kronecker pair then have modulus <= 1 and the row scale is carried in e_row,
+    # relative to the block's largest (row_log_scale), so no factor exceeds 1 in modulus
     shift = np.abs(v.real)
-    e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH) + shift.sum(axis=1)
-    row = high_chain(AH, links) * np.exp(e_hh)  # (c,)
+    e_row = row_log_scale(-0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH), v, low)
+    log_scale = chunk_log_scale(e_row, low)
+    exp_row = np.exp(e_row - log_scale) if log_scale else np.exp(e_row)
+    row = high_chain(AH, links) * exp_row  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0
     lb_plus = np.where(last > 0, links[h - 1, 0], links[h - 1, 1])  # aL_0 = +1
     lb_minus = np.where(last > 0, links[h - 1, 1], links[h - 1, 0])  # aL_0 = -1
 
     W = np.empty((c, N), dtype=complex)
-    _linear_rows((np.exp(v - shift), np.exp(-v - shift)), W, "mul")
-    W *= low.exp_ll
+    if low.log_ll is None:
+        _linear_rows((np.exp(v - shift), np.exp(-v - shift)), W, "mul")
+        W *= low.exp_ll
+    else:
+        # log form: the whole exponent of every path of the block, minus its row's
+        # exact largest real part, then one exp (no factor can underflow on its own)
+        _linear_rows(v, W, "add")
+        W += low.log_ll
+        top = W.real.max(axis=1)
+        if not np.all(np.isfinite(top)):
+            top = np.where(np.isfinite(top), top, 0.0)
+        W -= top[:, None]
+        np.exp(W, out=W)
+        e_row = e_row - (shift.sum(axis=1) + low.ll_shift) + top
+        log_scale = chunk_log_scale(e_row, low)
+        exp_row = np.exp(e_row - log_scale)
+        row = high_chain(AH, links) * exp_row
 
     out = np.zeros((n + 1, n), dtype=complex)
     if inp.adjoint is None:
@@ -274,7 +355,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
         D = np.zeros(2 * p, dtype=complex)
         if h > 1:
             dfh = _high_chain_derivatives(AH, links, dlinks)  # (c, h-1)
-            D[: h - 1] = (dfh * (np.exp(e_hh) * total0)[:, None]).sum(axis=0)
+            D[: h - 1] = (dfh * (exp_row * total0)[:, None]).sum(axis=0)
         dlb_plus = np.where(last > 0, dlinks[h - 1, 0], dlinks[h - 1, 1])
         dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
         D[h - 1] = (row * (dlb_plus * z_plus + dlb_minus * z_minus)).sum()
@@ -287,10 +368,15 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     out[:h, h:n] = hl
     out[h:n, :h] = hl.T
     out[h:n, h:n] = second_moments(u)
-    return out
+    return unscale(out, log_scale)
 
 
 def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
+    if low.log_ll is not None:
+        # far outside the plain double range the shared low-low factor of the matrix
+        # products cannot hold every row's relevant weights at once: such passes build
+        # their rows in log form (needs_log_form), which is the row kernel's job
+        return _chunk_partial_rowwise(inp, plan, chunk, low)
     return chunk_partial_blocked(inp, plan, chunk, low)
 
 
@@ -325,9 +411,10 @@ def chunk_partial(
 
     ``impl`` names the kernel (:data:`CHUNK_KERNELS`); see :func:`resolve_implementation`.
     """
-    if low is None:
-        low = prepare_low_side(inp, plan)
-    return _scaled(CHUNK_KERNELS[resolve_implementation(impl)](inp, plan, int(chunk), low), plan)
+    with np.errstate(over="ignore", invalid="ignore"):  # non-finite sums are reported by the pass check
+        if low is None:
+            low = prepare_low_side(inp, plan)
+        return _scaled(CHUNK_KERNELS[resolve_implementation(impl)](inp, plan, int(chunk), low), plan)
 
 
 def _scaled(partial: np.ndarray, plan: ChunkPlan) -> np.ndarray:
@@ -349,20 +436,22 @@ def pass_partials(inp: PassInput, plan: ChunkPlan, chunks, impl: str | None = No
     This is the unit of work an executor ships to a worker.
     """
     kernel = CHUNK_KERNELS[resolve_implementation(impl)]
-    low = prepare_low_side(inp, plan)
-    return [_scaled(kernel(inp, plan, int(k), low), plan) for k in chunks]
+    with np.errstate(over="ignore", invalid="ignore"):  # non-finite sums are reported by the pass check
+        low = prepare_low_side(inp, plan)
+        return [_scaled(kernel(inp, plan, int(k), low), plan) for k in chunks]
 
 
 def run_pass_inprocess(inp: PassInput, plan: ChunkPlan, progress=None, impl: str | None = None) -> np.ndarray:
     """Whole pass in this process; partials summed in chunk order."""
     kernel = CHUNK_KERNELS[resolve_implementation(impl)]
-    low = prepare_low_side(inp, plan)
     n = 2 * inp.p + 1
     acc = np.zeros((n + 1, n), dtype=complex)
-    for k in range(plan.n_chunks):
-        acc += _scaled(kernel(inp, plan, k, low), plan)
-        if progress is not None:
-            progress(1)
+    with np.errstate(over="ignore", invalid="ignore"):  # non-finite sums are reported by the pass check
+        low = prepare_low_side(inp, plan)
+        for k in range(plan.n_chunks):
+            acc += _scaled(kernel(inp, plan, k, low), plan)
+            if progress is not None:
+                progress(1)
     return acc
 
 

@@ -21,6 +21,9 @@ __all__ = [
     "chain_derivative_sums",
     "high_rows",
     "high_chain",
+    "row_log_scale",
+    "chunk_log_scale",
+    "unscale",
 ]
 
 
@@ -153,3 +156,54 @@ def high_chain(AH: np.ndarray, links: np.ndarray) -> np.ndarray:
         same = AH[:, t] == AH[:, t + 1]
         fh *= np.where(same, links[t, 0], links[t, 1])
     return fh
+
+
+# --------------------------------------------------------------------------- scales (both kernels; ``low`` is a _chunks.LowSide)
+def row_log_scale(e_hh: np.ndarray, v: np.ndarray, low) -> np.ndarray:
+    """Per high row: the log of the largest modulus the row's weights can reach, and its exponent.
+
+    With shift_k = |Re v_k| every Kronecker factor exp(+-v_k - shift_k) has modulus
+    <= 1 and so has the shifted low-low factor; what is left of the weight's
+    exponent is, per row,
+
+        e_row = e_HH + sum_k |Re v_k| + ll_shift          (complex; its real part bounds
+                                                           log|w/f| over the row)
+
+    ``e_hh`` (c,) is the high-high part -1/2 aH^T M_HH aH.  Returns e_row, shape (c,).
+    Callers take exp(e_row - S) with S the largest real part in the chunk
+    (:func:`chunk_log_scale`), so every factor of every weight has modulus <= 1:
+    nothing overflows, and a partial product underflows only where the finished
+    weight lies below the double range relative to the chunk's largest one.  The
+    partial is multiplied back by exp(S) (:func:`unscale`).  Inside the plain range
+    (``low.scaled`` False) S = 0 and ll_shift = 0: the unscaled pass, bit for bit.
+    """
+    e_row = e_hh + np.abs(v.real).sum(axis=1)
+    if low.ll_shift:
+        e_row += low.ll_shift
+    return e_row
+
+
+def chunk_log_scale(e_row: np.ndarray, low) -> float:
+    """S = the largest Re e_row of a chunk (0 inside the plain range, if there is no row, or
+    if it is not finite: a NaN exponent then stays NaN and the pass's check reports it)."""
+    if not low.scaled or e_row.size == 0:
+        return 0.0
+    S = float(e_row.real.max())
+    return S if np.isfinite(S) else 0.0
+
+
+def unscale(partial: np.ndarray, S: float) -> np.ndarray:
+    """partial * exp(S) in place, exact up to one rounding: exp(S) = 2^k exp(r), |r| <= ln2/2.
+
+    The power of two is applied with ldexp (exact unless the result leaves the
+    double range, where it becomes 0 or inf as the true value would).
+    """
+    if S == 0.0:
+        return partial
+    k = int(np.rint(S / np.log(2.0)))
+    r = S - k * np.log(2.0)
+    partial *= np.exp(r)
+    np.ldexp(partial.real, k, out=partial.real)
+    np.ldexp(partial.imag, k, out=partial.imag)
+    return partial
+
