@@ -181,23 +181,15 @@ def _hadamard_block(k: int, post: int) -> np.ndarray:
     return H
 
 
-def wht_blocked(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
-    """Same transform as :func:`wht` (in place on a 1-D complex vector), by matrix products.
-
-    The index bits are taken in groups of ``WHT_GROUP_BITS`` from the least
-    significant end; each group is one real matrix product with the Hadamard
-    matrix of its size, applied to the (real, imaginary) pairs, ping-ponging
-    between ``x`` and a scratch buffer of the same size.  Same sums as the
-    butterflies in a different order (agreement to rounding, checked in tests).
-    """
-    if x.ndim != 1 or x.dtype != np.complex128:
-        return wht(x)
+def _wht_blocked_pingpong(x: np.ndarray, scratch: np.ndarray) -> np.ndarray:
+    """Transform of the complex vector x by Hadamard matrix products, ping-ponging between
+    x and ``scratch`` (same size); returns whichever of the two holds the result."""
     N = x.size
     n = N.bit_length() - 1
     if N != 1 << n:
         raise ValueError(f"transform length {N} is not a power of 2")
     src = x.view(np.float64)
-    dst = scratch.view(np.float64)[: src.size] if scratch is not None and scratch.size >= N else np.empty_like(src)
+    dst = scratch.view(np.float64)
     done = 0
     while done < n:
         k = min(WHT_GROUP_BITS, n - done)
@@ -209,9 +201,24 @@ def wht_blocked(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
             np.matmul(_hadamard_block(k, 1), src.reshape(pre, 1 << k, post), out=dst.reshape(pre, 1 << k, post))
         src, dst = dst, src
         done += k
-    out = x.view(np.float64)
-    if src.ctypes.data != out.ctypes.data:
-        out[:] = src
+    return x if src.ctypes.data == x.view(np.float64).ctypes.data else scratch
+
+
+def wht_blocked(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
+    """Same transform as :func:`wht` (in place on a 1-D complex vector), by matrix products.
+
+    The index bits are taken in groups of ``WHT_GROUP_BITS`` from the least
+    significant end; each group is one real matrix product with the Hadamard
+    matrix of its size, applied to the (real, imaginary) pairs, ping-ponging
+    between ``x`` and a scratch buffer of the same size.  Same sums as the
+    butterflies in a different order (agreement to rounding, checked in tests).
+    """
+    if x.ndim != 1 or x.dtype != np.complex128:
+        return wht(x)
+    s = scratch[: x.size] if scratch is not None and scratch.size >= x.size and scratch.dtype == x.dtype else np.empty_like(x)
+    out = _wht_blocked_pingpong(x, s)
+    if out is not x:
+        x[:] = out
     return x
 
 
@@ -665,15 +672,22 @@ SPLIT_MIN_POINTS = 1 << 20
 
 
 class _Transformers:
-    """A :class:`_Transformer` per vector length (the growing contour's sizes); one call count."""
+    """A :class:`_Transformer` per vector length (the growing contour's sizes); one call count.
+
+    :meth:`swap` is the transform without the copy back: in-process, the result is
+    left in whichever of the vector and a shared scratch buffer the matrix products
+    ended in, and the other becomes the scratch (one spare full-size buffer for all
+    lengths; a larger length replaces it).
+    """
 
     def __init__(self, run_map: RunMap | None, n_high: int | None):
         self.run_map = run_map
         self.n_high = n_high
         self._by_size: dict[int, _Transformer] = {}
+        self._spare: np.ndarray | None = None
+        self._swaps = 0
 
-    def __call__(self, x: np.ndarray) -> np.ndarray:
-        N = x.size
+    def _get(self, N: int) -> "_Transformer":
         T = self._by_size.get(N)
         if T is None:
             n = N.bit_length() - 1
@@ -682,11 +696,34 @@ class _Transformers:
             run_map = self.run_map if wanted else None
             high = self.n_high if self.n_high is not None and self.n_high <= n else None
             T = self._by_size[N] = _Transformer(N, run_map, high, blocked=True)
-        return T(x)
+        return T
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        return self._get(x.size)(x)
+
+    def swap(self, x: np.ndarray) -> np.ndarray:
+        """Transform of the complex vector x; returns the array holding it (x or the old scratch)."""
+        T = self._get(x.size)
+        if T.run_map is not None or x.dtype != np.complex128 or x.ndim != 1:
+            return T(x)
+        self._swaps += 1
+        N = x.size
+        if self._spare is None or self._spare.size < N:
+            self._spare = None
+            self._spare = np.empty(N, dtype=complex)
+        s = self._spare[:N]
+        out = _wht_blocked_pingpong(x, s)
+        if out is s:
+            self._spare = x  # the caller's vector is the new scratch
+        return out
+
+    def release(self) -> None:
+        """Drop the spare buffer (before a phase that needs the memory)."""
+        self._spare = None
 
     @property
     def count(self) -> int:
-        return sum(T.count for T in self._by_size.values())
+        return sum(T.count for T in self._by_size.values()) + self._swaps
 
 
 def _lift(H: np.ndarray | None, m: int) -> np.ndarray | float:
@@ -762,6 +799,211 @@ def _beta_bar_from_f(fbar, f, m, beta_bar):
         beta_bar[link_beta_index(m, t)] += link_sign(m, t) * 1j * np.sum(fbar.reshape(-1, block) * flipped)
 
 
+#: elementwise work on the growing contour runs over chunks of 2^CHUNK_BITS points (1 MiB
+#: of complex numbers): the temporaries stay in cache and none of them is full-size
+CHUNK_BITS = 16
+
+
+def _kron_pairs(pairs, dtype=float) -> np.ndarray:
+    """Kronecker product of 2-vectors (first pair = most significant bit), shape (2^len,)."""
+    out = np.ones(1, dtype=dtype)
+    for pr in pairs:
+        out = np.multiply.outer(out, np.asarray(pr, dtype=dtype)).reshape(-1)
+    return out
+
+
+def _popcounts(nbits: int) -> np.ndarray:
+    """popcount(i) for i in 0..2^nbits-1, int64."""
+    out = np.zeros(1, dtype=np.int64)
+    for _ in range(nbits):
+        out = np.add.outer(out, np.array([0, 1], dtype=np.int64)).reshape(-1)
+    return out
+
+
+class _PhaseSpectrum:
+    """Closed-form spectrum of cos(phase/2) - 1 (``kind="cos"``) or sin(phase/2) (``"sin"``)
+    on the half index of a depth-m contour, scaled by ``scale``, generated in chunks.
+
+    phase(c) = sum_s Gamma_s c_s, so E(c) = exp(i phase(c)/2) is a product over the sites and
+    its full transform is the product of the one-site transforms: W(E)[k] = prod_s w_s(k_s),
+    w_s(0) = 2 cos(theta_s), w_s(1) = 2i sin(theta_s), theta_s = Gamma_s/2.  cos and sin of
+    phase/2 are the even and odd parts of E: W(cos)[k] = W(E)[k] on even |k|, W(sin)[k] =
+    W(E)[k]/i on odd |k|.  The half index k' (sites 2..n) stands for the wave vector whose
+    first bit makes the weight even (cos) or odd (sin) -- the spectra the flipped recursion
+    uses -- so with j = |k'| and u_s = (2 cos theta_s, 2 sin theta_s):
+
+        W(cos)[k'] = sK(j mod 4) u_1(j mod 2)     prod_{s>=2} u_s(k'_s),  sK = (+1, -1, -1, +1)
+        W(sin)[k'] = sS(j mod 4) u_1(1 - j mod 2) prod_{s>=2} u_s(k'_s),  sS = (+1, +1, -1, -1)
+
+    Real, exact to rounding in relative terms, and no transform is needed.  The one entry
+    where cos - 1 differs, k' = 0, is N (prod_s cos theta_s - 1), taken as
+    N expm1(sum_s log1p(-2 sin^2(theta_s/2))) so that it keeps its relative precision when
+    every angle is small (large D).  A chunk of 2^b points (high index h) is
+    ``hi[h] * lo[res[h]]``: the product over the high sites times one of four tables
+    over the low sites, chosen by the high sites' weight mod 4.
+    """
+
+    _CASES = {"cos": ((1.0, 0), (-1.0, 1), (-1.0, 0), (1.0, 1)), "sin": ((1.0, 1), (1.0, 0), (-1.0, 1), (-1.0, 0))}
+
+    def __init__(self, gamma, kind: str, scale: float, b: int):
+        theta = 0.5 * gamma_vector(gamma)
+        n = theta.size
+        nb = n - 1
+        self.b = b = min(b, nb)
+        self.a = a = nb - b
+        u = np.stack([2.0 * np.cos(theta), 2.0 * np.sin(theta)], axis=1)
+        self.u = u
+        self.hi = _kron_pairs(u[1 : a + 1]) * scale
+        self.res = _popcounts(a) % 4
+        lo = _kron_pairs(u[a + 1 :])
+        pop = _popcounts(b)
+        first = np.array([sign * u[0, which] for sign, which in self._CASES[kind]])
+        self.lo = np.stack([lo * first[(r + pop) % 4] for r in range(4)])
+        self.fix0 = None
+        if kind == "cos":
+            self.fix0 = scale * float(1 << n) * math.expm1(float(np.sum(np.log1p(-2.0 * np.sin(0.5 * theta) ** 2))))
+
+    def chunk(self, h: int, out: np.ndarray) -> np.ndarray:
+        out = out[: 1 << self.b]
+        np.multiply(self.lo[self.res[h]], self.hi[h], out=out)
+        if h == 0 and self.fix0 is not None:
+            out[0] = self.fix0
+        return out
+
+    def full(self) -> np.ndarray:
+        out = np.empty(1 << (self.a + self.b))
+        for h in range(1 << self.a):
+            self.chunk(h, out[h << self.b : (h + 1) << self.b])
+        return out
+
+
+def _chain_tables(m: int, beta, a: int, time0_sign: bool = False):
+    """f on the half vector of the depth-m contour (first site +1) as f[h 2^b + l] = fh[h] fl[h & 1, l].
+
+    The chain f(a) = 1/2 prod_t L_t(a_t a_{t+1}) splits at the boundary between the
+    high sites 2..a+1 (index h) and the low sites (index l): fh is the chain up to the
+    last high site, fl[s] the rest including the boundary link, for that site's bit s.
+    ``time0_sign`` multiplies by a_0 (the root's f H a_0).  Tables of 2^a and 2 x 2^b.
+    """
+    from .contour import chain_weights, link_table
+
+    links = link_table(m, beta)
+    n = n_sites(m)
+    b = n - 1 - a
+    fh = 0.5 * chain_weights(links[:a], a + 1)[: 1 << a]
+    rest = chain_weights(links[a + 1 :], b)
+    half = rest.size // 2
+    fl = np.empty((2, rest.size), dtype=complex)
+    fl[0, :half] = rest[:half] * links[a, 0]
+    fl[0, half:] = rest[half:] * links[a, 1]
+    fl[1, :half] = rest[:half] * links[a, 1]
+    fl[1, half:] = rest[half:] * links[a, 0]
+    if time0_sign:  # time 0 is site m (0-based): bit n-1-m of the half index
+        bit = n - 1 - m
+        if bit >= b:
+            fh.reshape(-1, 2, 1 << (bit - b))[:, 1, :] *= -1
+        else:
+            fl.reshape(2, -1, 2, 1 << bit)[:, :, 1, :] *= -1
+    return fh, fl
+
+
+def _split_bits(nbits: int, at_least: int = 0) -> tuple[int, int]:
+    """(a, b): high and low bits of the chunking of a 2^nbits vector."""
+    b = min(nbits, max(CHUNK_BITS, at_least))
+    return nbits - b, b
+
+
+class _Chunk:
+    """Preallocated chunk temporaries (float and complex) of 2^b points."""
+
+    def __init__(self, b: int):
+        size = 1 << b
+        self.r1 = np.empty(size)
+        self.r2 = np.empty(size)
+        self.r3 = np.empty(size)
+        self.c1 = np.empty(size, dtype=complex)
+
+
+def _build_v(out: np.ndarray, m: int, beta, H_prev: np.ndarray | None) -> None:
+    """out <- f_m * lift(H_{m-1}) on the half vector of the depth-m contour, chunk by chunk.
+
+    Lift: H_{m-1} (half vector of the depth-(m-1) contour, index (times 2..m-1, merged
+    site, times -(m-1)..-1)) does not depend on the old merged site, and on the new
+    contour not on times +-m or the new merged site: its +1 half over the old merged
+    site is repeated over those three sites (index (times 2..m-1, 8, times -(m-1)..-1)).
+    """
+    nbits = 2 * m
+    if H_prev is None:
+        fh, fl = _chain_tables(m, beta, 0)
+        np.multiply(fl[0], fh[0], out=out)
+        return
+    lo, hi = 1 << (m - 2), 1 << (m - 1)
+    a, b = _split_bits(nbits, m + 2)  # chunks hold whole (8, hi) blocks: a <= m - 2
+    fh, fl = _chain_tables(m, beta, a)
+    H3 = H_prev.reshape(lo, 2, hi)[:, 0, :]
+    G = lo >> a
+    fl3 = fl.reshape(2, G, 8, hi)
+    for h in range(1 << a):
+        oc = out[h << b : (h + 1) << b].reshape(G, 8, hi)
+        np.multiply(fl3[h & 1], H3[h * G : (h + 1) * G, None, :], out=oc)
+        oc *= fh[h]
+
+
+def _power_times_spectrum(A: np.ndarray, k: int, spec: _PhaseSpectrum, tmp: _Chunk) -> None:
+    """A <- A^k * spectrum (real), chunk by chunk, in place (k >= 1)."""
+    b = spec.b
+    for h in range(1 << spec.a):
+        Ac = A[h << b : (h + 1) << b]
+        _ipow_chunk(Ac, k, tmp.c1)
+        Av = Ac.view(np.float64).reshape(-1, 2)
+        Av *= spec.chunk(h, tmp.r1)[:, None]
+
+
+def _ipow_chunk(x: np.ndarray, k: int, scratch: np.ndarray) -> None:
+    """x <- x^k in place (k >= 1) by multiplication; ``scratch`` of x's size and dtype."""
+    if k == 1:
+        return
+    if k == 2:
+        x *= x
+        return
+    base = scratch[: x.size]
+    base[...] = x
+    for _ in range(k - 1):
+        x *= base
+
+
+def _log_power(A: np.ndarray, D: float, tmp: _Chunk, L_out: np.ndarray | None = None) -> None:
+    """A <- exp((D-1) log1p(A)) in place, chunk by chunk, with the accurate complex log1p
+    (:func:`complex_log1p`); ``L_out`` receives log1p(A) (for the gradient)."""
+    b = min(CHUNK_BITS, A.size.bit_length() - 1)
+    size = 1 << b
+    t, ph, w = tmp.r1[:size], tmp.r2[:size], tmp.r3[:size]
+    for h in range(A.size >> b):
+        Ac = A[h * size : (h + 1) * size]
+        x, y = Ac.real, Ac.imag
+        np.add(x, 2.0, out=t)
+        t *= x
+        np.multiply(y, y, out=w)
+        t += w
+        np.log1p(t, out=t)
+        t *= 0.5  # Re log1p(z)
+        np.add(x, 1.0, out=w)
+        np.arctan2(y, w, out=ph)  # Im log1p(z)
+        if L_out is not None:
+            Lc = L_out[h * size : (h + 1) * size]
+            Lc.real = t
+            Lc.imag = ph
+        t *= D - 1.0
+        ph *= D - 1.0
+        np.exp(t, out=t)
+        np.cos(ph, out=w)
+        w *= t
+        np.sin(ph, out=ph)
+        ph *= t
+        Ac.real = w
+        Ac.imag = ph
+
+
 def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvaluation:
     """The recursion on the growing contour with the global flip (module docstring).
 
@@ -773,68 +1015,81 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     wave vectors of even (odd) weight, which the half-length index enumerates
     once each; the transform back of such a spectrum is the plain half-length
     transform.  Sums over the spectrum are sums over the half index.
+
+    Per step, on one working vector A (the transform's scratch is the only other
+    full-size buffer):  A <- f_m lift(H_{m-1});  A <- W A (= V_m / 2);
+    A <- A^(q-1) (2^(q-1)/N) W(K - 1)  (the spectrum in closed form, :class:`_PhaseSpectrum`);
+    A <- W A (= message - 1);  A <- exp((D-1) log1p(A)) (= H_m).
     """
     p = g.size
     T = _Transformers(run_map, n_high)
     dev_max = 0.0
     Ls: list[np.ndarray] = []
+    tmp = _Chunk(max(CHUNK_BITS, 2))
     H = None
     for m in range(1, p + 1):
         N = 1 << n_sites(m)
-        phase = _half_phase(g[:m])
-        Kh = -2.0 * np.sin(phase / 4.0) ** 2  # K - 1, exact form
-        del phase
-        T(Kh)
-        Kh *= 2.0
-        v = _half_chain(m, b[:m])
-        v *= _lift(H, m)
-        T(v)
-        v *= 2.0  # V_m (even-weight wave vectors)
-        dev = abs(v[0] - 1.0)
+        A = np.empty(N // 2, dtype=complex)
+        _build_v(A, m, b[:m], H)
+        del H
+        A = T.swap(A)
+        dev = abs(2.0 * A[0] - 1.0)  # V_m[0] = sum_a f H_{m-1} = 1
         if not dev <= sum_fH_tolerance(m, D):
             raise SparseIntegrityError(
                 f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} "
                 f"(allowed {sum_fH_tolerance(m, D):.1e})"
             )
         dev_max = max(dev_max, dev)
-        _ipow_inplace(v, q - 1)
-        v *= Kh
-        del Kh
-        T(v)
-        v /= N  # message - 1
-        L = complex_log1p(v, out=v)
+        a_bits, b_bits = _split_bits(2 * m)
+        spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, b_bits)
+        _power_times_spectrum(A, q - 1, spec, tmp)
+        A = T.swap(A)  # message - 1
+        L = np.empty_like(A) if gradient else None
+        _log_power(A, D, tmp, L)
         if gradient:
-            Ls.append(L.copy())
-        L *= D - 1.0
-        H = np.exp(L, out=L)
+            Ls.append(L)
+        H = A
     N = 1 << n_sites(p)
-    f = _half_chain(p, b)
-    u = f * H
-    root_norm = abs(2.0 * u.sum() - 1.0)
+    a_bits, b_bits = _split_bits(2 * p)
+    fh, fl = _chain_tables(p, b, a_bits)
+    H_p = H.copy() if gradient else None
+    u = H
+    total = 0.0
+    for h in range(1 << a_bits):
+        uc = u[h << b_bits : (h + 1) << b_bits]
+        uc *= fl[h & 1]
+        total += fh[h] * uc.sum()  # sum_a f H (the check), then the sign a_0
+        if b_bits > p:  # time 0 is bit p of the half index
+            uc *= fh[h]
+            uc.reshape(-1, 2, 1 << p)[:, 1, :] *= -1
+        else:
+            uc *= -fh[h] if (h >> (p - b_bits)) & 1 else fh[h]
+    root_norm = abs(2.0 * total - 1.0)
     if not root_norm <= sum_fH_tolerance(p, D):
         raise SparseIntegrityError(
             f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p, D):.1e})"
         )
     dev_max = max(dev_max, root_norm)
-    if not gradient:
-        del H, f
-    _flip_time0_half(u, p)
-    U = T(u)
-    U *= 2.0
-    phase = _half_phase(g)
-    Sh = np.sin(phase / 2.0)
-    if not gradient:
-        del phase
-    T(Sh)
-    Sh *= 2.0
-    Y = _ipow(U, q)
-    corr = 1j * np.dot(Y, Sh) / N
-    del Y
+    U = T.swap(u)  # half transform of f H a_0
+    spec = _PhaseSpectrum(g, "sin", float(2**q) / N, b_bits)
+    acc = np.zeros(2)
+    y = tmp.c1
+    for h in range(1 << a_bits):
+        Uc = U[h << b_bits : (h + 1) << b_bits]
+        yc = y[: Uc.size]
+        np.multiply(Uc, Uc, out=yc)
+        for _ in range(q - 2):
+            yc *= Uc
+        acc += spec.chunk(h, tmp.r1[: Uc.size]) @ yc.view(np.float64).reshape(-1, 2)
+    corr = 1j * complex(acc[0], acc[1])
     nu_c = 0.5 + 0.5 * corr
     residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
     grad = None
     if gradient:
-        grad = _backward_growing(q, D, g, b, f, phase, Sh, H, U, Ls, T, residuals)
+        U *= 2.0
+        f = _half_chain(p, b)
+        Sh = _PhaseSpectrum(g, "sin", 1.0, b_bits).full()
+        grad = _backward_growing(q, D, g, b, f, _half_phase(g), Sh, H_p, U, Ls, T, residuals)
     return _result(q, D, g, b, corr, residuals, grad, t0, T.count)
 
 
