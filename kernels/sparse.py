@@ -726,59 +726,10 @@ class _Transformers:
         return sum(T.count for T in self._by_size.values()) + self._swaps
 
 
-def _lift(H: np.ndarray | None, m: int) -> np.ndarray | float:
-    """H_{m-1} on the depth-(m-1) contour read on the depth-m contour (half vectors).
-
-    H_{m-1} does not depend on its merged middle site, nor (on the new contour)
-    on times +-m or the new merged site: those three new sites replace the old
-    middle one (its +1 half is read).  Both vectors are the halves with the
-    first site +1 (see :func:`_evaluate_growing`).  H_0 = 1.
-    """
-    if H is None:
-        return 1.0
-    lo, hi = 1 << (m - 2), 1 << (m - 1)
-    A = H.reshape(lo, 2, hi)[:, 0, :]
-    return np.broadcast_to(A[:, None, :], (lo, 8, hi)).reshape(-1)
-
-
-def _lift_adjoint(Hbar: np.ndarray, m: int) -> np.ndarray:
-    """Adjoint of :func:`_lift`: (2^(2m),) -> (2^(2m-2),), summing the replicated sites."""
-    lo, hi = 1 << (m - 2), 1 << (m - 1)
-    out = np.zeros((lo, 2, hi), dtype=Hbar.dtype)
-    out[:, 0, :] = Hbar.reshape(lo, 8, hi).sum(axis=1)
-    return out.reshape(-1)
-
-
 def _half_chain(m: int, beta) -> np.ndarray:
     """f(a) of the depth-m contour for the paths with a_1 = +1, shape (2^(2m),) complex."""
-    from .contour import chain_weights, link_table
-
-    links = link_table(m, beta)
-    n = n_sites(m)
-    rest = chain_weights(links[1:], n - 1)  # sites 2..n, site 2 the MSB
-    half = rest.size // 2
-    out = np.empty_like(rest)
-    out[:half] = rest[:half] * (0.5 * links[0, 0])  # a_2 = +1 = a_1
-    out[half:] = rest[half:] * (0.5 * links[0, 1])
-    return out
-
-
-def _half_phase(gamma) -> np.ndarray:
-    """Gamma . c for the paths with c_1 = +1, shape (2^(2m),) float."""
-    Gam = gamma_vector(gamma)
-    out = np.array([Gam[-1], -Gam[-1]])
-    for k in range(Gam.size - 2, 0, -1):
-        out = np.concatenate([out + Gam[k], out - Gam[k]])
-    out += Gam[0]
-    return out
-
-
-def _site_sums_half(vec: np.ndarray, n: int) -> np.ndarray:
-    """sum_c vec(c) c_t over the half with c_1 = +1 (site 0 of the index is site 1)."""
-    out = np.empty(n, dtype=vec.dtype)
-    out[0] = vec.sum()
-    out[1:] = _site_sums(vec, n - 1)
-    return out
+    fh, fl = _chain_tables(m, beta, 0)
+    return fl[0] * fh[0]
 
 
 def _flip_time0_half(vec: np.ndarray, p: int) -> None:
@@ -786,21 +737,24 @@ def _flip_time0_half(vec: np.ndarray, p: int) -> None:
     vec.reshape(1 << (p - 1), 2, 1 << p)[:, 1, :] *= -1
 
 
-def _beta_bar_from_f(fbar, f, m, beta_bar):
-    """beta_bar += d/db of sum fbar * f over the links of the depth-m contour (half vectors).
+def _chain_beta_bar(cbar, chain, m, first_link, beta_bar, fixed_first=True):
+    """beta_bar += d/db of sum cbar * chain, for a chain vector over consecutive contour sites.
 
-    d f / d b_t (a) = sigma_t i f(a with the spins after link t flipped); flipping
-    them keeps the first site, so it stays inside the half.  No division.
+    ``chain`` holds the product of the links ``first_link ..`` over its sites (site
+    order MSB first); with ``fixed_first`` its first site is fixed (+1, not in the
+    index: one link per index bit), else every site is in the index.  d L_t(d) / db = sigma_t i L_t(1 - d), i.e. the chain with every spin
+    after link t flipped (a block reversal of the index); no division.
     """
-    n = n_sites(m)
-    for t in range(2 * m):
-        block = 1 << (n - 1 - t)
-        flipped = f.reshape(-1, block)[:, ::-1]
-        beta_bar[link_beta_index(m, t)] += link_sign(m, t) * 1j * np.sum(fbar.reshape(-1, block) * flipped)
+    nlinks = chain.size.bit_length() - 1 - (0 if fixed_first else 1)
+    for u in range(nlinks):
+        t = first_link + u
+        block = 1 << (nlinks - u)
+        flipped = chain.reshape(-1, block)[:, ::-1]
+        beta_bar[link_beta_index(m, t)] += link_sign(m, t) * 1j * np.sum(cbar.reshape(-1, block) * flipped)
 
 
-#: elementwise work on the growing contour runs over chunks of 2^CHUNK_BITS points (1 MiB
-#: of complex numbers): the temporaries stay in cache and none of them is full-size
+#: elementwise work on the growing contour runs over chunks of about 2^CHUNK_BITS points
+#: (1 MiB of complex numbers): the temporaries stay in cache and none of them is full-size
 CHUNK_BITS = 16
 
 
@@ -820,9 +774,28 @@ def _popcounts(nbits: int) -> np.ndarray:
     return out
 
 
+def _kron_env(T: np.ndarray, pairs, dpairs) -> np.ndarray:
+    """e[s] = sum_k T[k] prod_{s' != s} pairs[s'][k_s'] * dpairs[s][k_s] for every site s.
+
+    T has 2^len(pairs) entries (first pair = most significant bit).  Divide and
+    conquer: contracting one half of the sites with its Kronecker factor leaves a
+    vector over the other half; two passes over T, then vectors of sqrt size.
+    """
+    n = len(pairs)
+    if n == 0:
+        return np.zeros(0, dtype=T.dtype)
+    if n == 1:
+        return np.array([T @ np.asarray(dpairs[0])])
+    a = n // 2
+    T2 = T.reshape(1 << a, 1 << (n - a))
+    hi = _kron_pairs(pairs[:a])
+    lo = _kron_pairs(pairs[a:])
+    return np.concatenate([_kron_env(T2 @ lo, pairs[:a], dpairs[:a]), _kron_env(hi @ T2, pairs[a:], dpairs[a:])])
+
+
 class _PhaseSpectrum:
     """Closed-form spectrum of cos(phase/2) - 1 (``kind="cos"``) or sin(phase/2) (``"sin"``)
-    on the half index of a depth-m contour, scaled by ``scale``, generated in chunks.
+    on the half index of a depth-m contour, times ``scale``, generated in rows.
 
     phase(c) = sum_s Gamma_s c_s, so E(c) = exp(i phase(c)/2) is a product over the sites and
     its full transform is the product of the one-site transforms: W(E)[k] = prod_s w_s(k_s),
@@ -838,9 +811,10 @@ class _PhaseSpectrum:
     Real, exact to rounding in relative terms, and no transform is needed.  The one entry
     where cos - 1 differs, k' = 0, is N (prod_s cos theta_s - 1), taken as
     N expm1(sum_s log1p(-2 sin^2(theta_s/2))) so that it keeps its relative precision when
-    every angle is small (large D).  A chunk of 2^b points (high index h) is
-    ``hi[h] * lo[res[h]]``: the product over the high sites times one of four tables
-    over the low sites, chosen by the high sites' weight mod 4.
+    every angle is small (large D).  Row h (the high index, 2^b points) is
+    ``hi[h] * lo[res[h]]``: the product over the high sites times one of four tables over
+    the low sites, chosen by the high sites' weight mod 4.  :meth:`accumulate` and
+    :meth:`theta_bar` give the adjoint: d/d theta_s of sum(bar * spectrum).
     """
 
     _CASES = {"cos": ((1.0, 0), (-1.0, 1), (-1.0, 0), (1.0, 1)), "sin": ((1.0, 1), (1.0, 0), (-1.0, 1), (-1.0, 0))}
@@ -848,42 +822,75 @@ class _PhaseSpectrum:
     def __init__(self, gamma, kind: str, scale: float, b: int):
         theta = 0.5 * gamma_vector(gamma)
         n = theta.size
-        nb = n - 1
-        self.b = b = min(b, nb)
-        self.a = a = nb - b
-        u = np.stack([2.0 * np.cos(theta), 2.0 * np.sin(theta)], axis=1)
-        self.u = u
-        self.hi = _kron_pairs(u[1 : a + 1]) * scale
+        self.b = b = min(b, n - 1)
+        self.a = a = n - 1 - b
+        self.kind = kind
+        self.scale = scale
+        self.u = np.stack([2.0 * np.cos(theta), 2.0 * np.sin(theta)], axis=1)
+        self.du = np.stack([-2.0 * np.sin(theta), 2.0 * np.cos(theta)], axis=1)
+        self.hi = _kron_pairs(self.u[1 : a + 1]) * scale
         self.res = _popcounts(a) % 4
-        lo = _kron_pairs(u[a + 1 :])
-        pop = _popcounts(b)
-        first = np.array([sign * u[0, which] for sign, which in self._CASES[kind]])
-        self.lo = np.stack([lo * first[(r + pop) % 4] for r in range(4)])
+        self.ulo = _kron_pairs(self.u[a + 1 :])
+        self.pop = _popcounts(b) % 4
+        first = self._first(self.u[0])
+        self.lo = np.stack([self.ulo * first[(r + self.pop) % 4] for r in range(4)])
         self.fix0 = None
         if kind == "cos":
             self.fix0 = scale * float(1 << n) * math.expm1(float(np.sum(np.log1p(-2.0 * np.sin(0.5 * theta) ** 2))))
+        self._Q = None
 
-    def chunk(self, h: int, out: np.ndarray) -> np.ndarray:
-        out = out[: 1 << self.b]
-        np.multiply(self.lo[self.res[h]], self.hi[h], out=out)
-        if h == 0 and self.fix0 is not None:
-            out[0] = self.fix0
+    def _first(self, u0) -> np.ndarray:
+        return np.array([sign * u0[which] for sign, which in self._CASES[self.kind]])
+
+    def rows(self, h0: int, G: int, out: np.ndarray) -> np.ndarray:
+        """Rows h0 .. h0+G-1 into ``out`` (>= G 2^b floats); returns the (G, 2^b) view."""
+        out = out[: G << self.b].reshape(G, 1 << self.b)
+        np.multiply(self.lo[self.res[h0 : h0 + G]], self.hi[h0 : h0 + G, None], out=out)
+        if h0 == 0 and self.fix0 is not None:
+            out[0, 0] = self.fix0
         return out
 
     def full(self) -> np.ndarray:
-        out = np.empty(1 << (self.a + self.b))
-        for h in range(1 << self.a):
-            self.chunk(h, out[h << self.b : (h + 1) << self.b])
+        return self.rows(0, 1 << self.a, np.empty(1 << (self.a + self.b))).reshape(-1).copy()
+
+    def accumulate(self, h0: int, bar: np.ndarray) -> None:
+        """Add rows h0.. of an adjoint (G, 2^b) complex array to the gradient sums."""
+        if self._Q is None:
+            self._Q = np.zeros(1 << self.a, dtype=complex)
+            self._R = np.zeros((4, 1 << self.b), dtype=complex)
+        G = bar.shape[0]
+        res = self.res[h0 : h0 + G]
+        for r in range(4):
+            sel = np.nonzero(res == r)[0]
+            if sel.size == 0:
+                continue
+            rows = bar[sel]
+            self._Q[h0 + sel] = rows @ self.lo[r]
+            self._R[r] += self.hi[h0 + sel] @ rows
+
+    def theta_bar(self) -> np.ndarray:
+        """d/d theta_s of sum(bar * spectrum) over all accumulated rows, shape (n,) complex."""
+        n = self.a + self.b + 1
+        out = np.zeros(n, dtype=complex)
+        if self._Q is None:
+            return out
+        out[1 : self.a + 1] = self.scale * _kron_env(self._Q, list(self.u[1 : self.a + 1]), list(self.du[1 : self.a + 1]))
+        first, dfirst = self._first(self.u[0]), self._first(self.du[0])
+        Y = np.zeros(1 << self.b, dtype=complex)
+        for r in range(4):
+            idx = (r + self.pop) % 4
+            Y += self._R[r] * first[idx]
+            out[0] += np.dot(self._R[r] * self.ulo, dfirst[idx])
+        out[self.a + 1 :] = _kron_env(Y, list(self.u[self.a + 1 :]), list(self.du[self.a + 1 :]))
         return out
 
 
-def _chain_tables(m: int, beta, a: int, time0_sign: bool = False):
+def _chain_tables(m: int, beta, a: int):
     """f on the half vector of the depth-m contour (first site +1) as f[h 2^b + l] = fh[h] fl[h & 1, l].
 
     The chain f(a) = 1/2 prod_t L_t(a_t a_{t+1}) splits at the boundary between the
     high sites 2..a+1 (index h) and the low sites (index l): fh is the chain up to the
     last high site, fl[s] the rest including the boundary link, for that site's bit s.
-    ``time0_sign`` multiplies by a_0 (the root's f H a_0).  Tables of 2^a and 2 x 2^b.
     """
     from .contour import chain_weights, link_table
 
@@ -898,87 +905,126 @@ def _chain_tables(m: int, beta, a: int, time0_sign: bool = False):
     fl[0, half:] = rest[half:] * links[a, 1]
     fl[1, :half] = rest[:half] * links[a, 1]
     fl[1, half:] = rest[half:] * links[a, 0]
-    if time0_sign:  # time 0 is site m (0-based): bit n-1-m of the half index
-        bit = n - 1 - m
-        if bit >= b:
-            fh.reshape(-1, 2, 1 << (bit - b))[:, 1, :] *= -1
-        else:
-            fl.reshape(2, -1, 2, 1 << bit)[:, :, 1, :] *= -1
     return fh, fl
 
 
-def _split_bits(nbits: int, at_least: int = 0) -> tuple[int, int]:
-    """(a, b): high and low bits of the chunking of a 2^nbits vector."""
-    b = min(nbits, max(CHUNK_BITS, at_least))
-    return nbits - b, b
+class _Split:
+    """The factors of f lift(H) on the depth-m contour around its middle (m >= 2), and the
+    matrix that turns the transform of the outer part into the transform of the whole.
+
+    Index of the half vector: (l, j, h), l = sites 2..c-1 of the outer left part, j the
+    ``k`` middle sites, h the outer right sites (c = m-1 in a step: j = time m, merged
+    site, time -m, the sites H_{m-1} does not depend on; c = m at the root: j = time 0).
+    f = 1/2 A[l] C[s(l), j, t(h)] B[h] with s the last bit of l and t the first of h.  If
+    the rest of the summand is P(l, h) (A B H, no j), its transform is
+
+        W(P C)[kl, kj, kh] = 1/4 sum_{al, be} Cc[al, kj, be] W(P)[kl ^ al, kh ^ be]
+
+    (Cc: C transformed over all its bits; ^ flips the last bit of kl / first bit of kh),
+    i.e. the 2^k x 4 matrix ``M`` applied to the four quarter-blocks of W(P): one
+    transform of 2^(2m-k) points instead of 2^(2m).
+    """
+
+    def __init__(self, m: int, beta, k: int, time0: bool):
+        from .contour import chain_weights, link_table, link_derivative_table
+
+        self.m, self.k = m, k
+        links = link_table(m, beta)
+        self.dlinks = link_derivative_table(m, beta)
+        c = m - 1 if k == 3 else m  # first middle site
+        self.c = c
+        self.nl, self.nr = c - 1, 2 * m - c - k + 1  # bits of l and h
+        self.A = chain_weights(links[: c - 1], c)[: 1 << (c - 1)]
+        self.B = chain_weights(links[c + k :], self.nr)
+        self.first_mid_link = c - 1
+        self.mid_links = links[c - 1 : c + k].copy()
+        self.time0 = time0
+        self.M = self._matrix(self.mid_links)
+
+    def _tensor(self, rows) -> np.ndarray:
+        from .contour import chain_weights
+
+        C = chain_weights(rows, self.k + 2).reshape(2, 1 << self.k, 2)
+        if self.time0:
+            C = C * np.array([1.0, -1.0])[None, :, None]
+        return C
+
+    def _matrix(self, rows) -> np.ndarray:
+        C = self._tensor(rows)
+        Hk = _sylvester(self.k)
+        H2 = _sylvester(1)
+        Cc = np.einsum("sjt,kj,as,bt->akb", C, Hk, H2, H2)
+        M = np.empty((2, 1 << self.k, 2, 2, 2), dtype=complex)
+        for a_ in range(2):
+            for b_ in range(2):
+                for c_ in range(2):
+                    for d_ in range(2):
+                        M[a_, :, b_, c_, d_] = 0.25 * Cc[a_ ^ c_, :, b_ ^ d_]
+        return M.reshape(4 << self.k, 4)
+
+    def matrix_beta_bar(self, Mbar: np.ndarray, beta_bar: np.ndarray) -> None:
+        """beta_bar += d/db of sum(Mbar * M) through the middle links."""
+        for i in range(self.k + 1):
+            rows = self.mid_links.copy()
+            rows[i] = self.dlinks[self.first_mid_link + i]
+            t = self.first_mid_link + i
+            beta_bar[link_beta_index(self.m, t)] += np.sum(Mbar * self._matrix(rows))
+
+    def outer(self) -> np.ndarray:
+        """1/2 A[l] B[h] as an (2^nl, 2^nr) array."""
+        return 0.5 * np.multiply.outer(self.A, self.B)
+
+    def outer_beta_bar(self, R: np.ndarray, beta_bar: np.ndarray) -> None:
+        """beta_bar += d/db of sum(R * 1/2 A B) (R of shape (2^nl, 2^nr))."""
+        Abar = 0.5 * (R @ self.B)
+        Bbar = 0.5 * (self.A @ R)
+        _chain_beta_bar(Abar, self.A, self.m, 0, beta_bar)
+        _chain_beta_bar(Bbar, self.B, self.m, self.c + self.k, beta_bar, fixed_first=False)
+
+
+def _sylvester(k: int) -> np.ndarray:
+    H = np.ones((1, 1))
+    for _ in range(k):
+        H = np.block([[H, H], [H, -H]])
+    return H
+
+
+def _row_groups(rows: int, row_bits: int):
+    """(r0, G) groups of rows of 2^row_bits points, about 2^CHUNK_BITS points per group."""
+    G = max(1, min(rows, (1 << CHUNK_BITS) >> row_bits))
+    for r0 in range(0, rows, G):
+        yield r0, min(G, rows - r0)
 
 
 class _Chunk:
-    """Preallocated chunk temporaries (float and complex) of 2^b points."""
+    """Preallocated chunk temporaries of ``size`` points."""
 
-    def __init__(self, b: int):
-        size = 1 << b
+    def __init__(self, size: int):
         self.r1 = np.empty(size)
         self.r2 = np.empty(size)
         self.r3 = np.empty(size)
         self.c1 = np.empty(size, dtype=complex)
+        self.c2 = np.empty(size, dtype=complex)
+        self.c3 = np.empty(size, dtype=complex)
 
 
-def _build_v(out: np.ndarray, m: int, beta, H_prev: np.ndarray | None) -> None:
-    """out <- f_m * lift(H_{m-1}) on the half vector of the depth-m contour, chunk by chunk.
-
-    Lift: H_{m-1} (half vector of the depth-(m-1) contour, index (times 2..m-1, merged
-    site, times -(m-1)..-1)) does not depend on the old merged site, and on the new
-    contour not on times +-m or the new merged site: its +1 half over the old merged
-    site is repeated over those three sites (index (times 2..m-1, 8, times -(m-1)..-1)).
-    """
-    nbits = 2 * m
-    if H_prev is None:
-        fh, fl = _chain_tables(m, beta, 0)
-        np.multiply(fl[0], fh[0], out=out)
-        return
-    lo, hi = 1 << (m - 2), 1 << (m - 1)
-    a, b = _split_bits(nbits, m + 2)  # chunks hold whole (8, hi) blocks: a <= m - 2
-    fh, fl = _chain_tables(m, beta, a)
-    H3 = H_prev.reshape(lo, 2, hi)[:, 0, :]
-    G = lo >> a
-    fl3 = fl.reshape(2, G, 8, hi)
-    for h in range(1 << a):
-        oc = out[h << b : (h + 1) << b].reshape(G, 8, hi)
-        np.multiply(fl3[h & 1], H3[h * G : (h + 1) * G, None, :], out=oc)
-        oc *= fh[h]
-
-
-def _power_times_spectrum(A: np.ndarray, k: int, spec: _PhaseSpectrum, tmp: _Chunk) -> None:
-    """A <- A^k * spectrum (real), chunk by chunk, in place (k >= 1)."""
-    b = spec.b
-    for h in range(1 << spec.a):
-        Ac = A[h << b : (h + 1) << b]
-        _ipow_chunk(Ac, k, tmp.c1)
-        Av = Ac.view(np.float64).reshape(-1, 2)
-        Av *= spec.chunk(h, tmp.r1)[:, None]
-
-
-def _ipow_chunk(x: np.ndarray, k: int, scratch: np.ndarray) -> None:
-    """x <- x^k in place (k >= 1) by multiplication; ``scratch`` of x's size and dtype."""
-    if k == 1:
-        return
-    if k == 2:
-        x *= x
-        return
-    base = scratch[: x.size]
-    base[...] = x
+def _ipow_into(x: np.ndarray, k: int, out: np.ndarray) -> np.ndarray:
+    """out <- x^k (k >= 0) by multiplication; returns out."""
+    if k == 0:
+        out[...] = 1.0
+        return out
+    out[...] = x
     for _ in range(k - 1):
-        x *= base
+        out *= x
+    return out
 
 
 def _log_power(A: np.ndarray, D: float, tmp: _Chunk, L_out: np.ndarray | None = None) -> None:
     """A <- exp((D-1) log1p(A)) in place, chunk by chunk, with the accurate complex log1p
-    (:func:`complex_log1p`); ``L_out`` receives log1p(A) (for the gradient)."""
-    b = min(CHUNK_BITS, A.size.bit_length() - 1)
-    size = 1 << b
+    of :func:`complex_log1p`; ``L_out`` receives log1p(A) (for the gradient)."""
+    size = min(1 << CHUNK_BITS, A.size)
     t, ph, w = tmp.r1[:size], tmp.r2[:size], tmp.r3[:size]
-    for h in range(A.size >> b):
+    for h in range(A.size // size):
         Ac = A[h * size : (h + 1) * size]
         x, y = Ac.real, Ac.imag
         np.add(x, 2.0, out=t)
@@ -1004,6 +1050,38 @@ def _log_power(A: np.ndarray, D: float, tmp: _Chunk, L_out: np.ndarray | None = 
         Ac.imag = ph
 
 
+def _exp_times(x: np.ndarray, L: np.ndarray, c: float, k: float, tmp: _Chunk) -> None:
+    """x <- x * k exp(c L) in place, chunk by chunk."""
+    size = min(1 << CHUNK_BITS, x.size)
+    e = tmp.c1[:size]
+    for h in range(x.size // size):
+        sl = slice(h * size, (h + 1) * size)
+        np.multiply(L[sl], c, out=e)
+        np.exp(e, out=e)
+        e *= k
+        x[sl] *= e
+
+
+def _exp_of(L: np.ndarray, c: float) -> np.ndarray:
+    out = L * c
+    return np.exp(out, out=out)
+
+
+def _fold_middle(X: np.ndarray, m: int) -> np.ndarray:
+    """Sum over the merged middle site's wave-vector bit (bit m of the half index)."""
+    X3 = X.reshape(1 << (m - 1), 2, 1 << m)
+    return X3[:, 0, :] + X3[:, 1, :]
+
+
+class _StepData:
+    """What the reverse sweep keeps of step m: log1p(message - 1) on the reduced index
+    (without the merged site), and the transform of the outer part (split steps)."""
+
+    def __init__(self, L, Phat):
+        self.L = L
+        self.Phat = Phat
+
+
 def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvaluation:
     """The recursion on the growing contour with the global flip (module docstring).
 
@@ -1016,140 +1094,245 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     once each; the transform back of such a spectrum is the plain half-length
     transform.  Sums over the spectrum are sums over the half index.
 
-    Per step, on one working vector A (the transform's scratch is the only other
-    full-size buffer):  A <- f_m lift(H_{m-1});  A <- W A (= V_m / 2);
-    A <- A^(q-1) (2^(q-1)/N) W(K - 1)  (the spectrum in closed form, :class:`_PhaseSpectrum`);
-    A <- W A (= message - 1);  A <- exp((D-1) log1p(A)) (= H_m).
+    Step m (half index of 2^(2m) points, N = 2^(2m+1)), with H_{m-1} kept on the
+    2^(2m-3) points it depends on (``H3``, without any merged site):
+      P = 1/2 A B H3 (the outer chain factors), W(P) by one transform of 2^(2m-3)
+      points, and V_m / 2 = W(f lift(H_{m-1})) rebuilt from its quarter-blocks
+      (:class:`_Split`) row by row, never stored whole;
+      X = (V_m / 2)^(q-1) (2^(q-1)/N) W(K - 1)   (the spectrum in closed form,
+      :class:`_PhaseSpectrum`), summed over the merged site's wave-vector bit at
+      once, because H_m does not depend on that site: only half of message - 1 is
+      needed, and it is the transform of the folded X (2^(2m-1) points);
+      H3_m = exp((D-1) log1p(message - 1)).
+    The root is the same with the single middle site (time 0, with the factor a_0)
+    and the sum of U^q W(sin(phase/2)) row by row.  Steps and roots below depth 3
+    and 2 build the vectors whole (same formulas, no split).
     """
     p = g.size
     T = _Transformers(run_map, n_high)
+    tmp = _Chunk(max(1 << CHUNK_BITS, 1 << (p + 3)))  # a row group holds at least one row
     dev_max = 0.0
-    Ls: list[np.ndarray] = []
-    tmp = _Chunk(max(CHUNK_BITS, 2))
-    H = None
+    steps: list[_StepData] = []
+    H3 = None
     for m in range(1, p + 1):
         N = 1 << n_sites(m)
-        A = np.empty(N // 2, dtype=complex)
-        _build_v(A, m, b[:m], H)
-        del H
-        A = T.swap(A)
-        dev = abs(2.0 * A[0] - 1.0)  # V_m[0] = sum_a f H_{m-1} = 1
-        if not dev <= sum_fH_tolerance(m, D):
+        tol = sum_fH_tolerance(m, D)
+        Xf = np.empty(N // 4, dtype=complex)
+        if m >= 3:
+            sp = _Split(m, b[:m], 3, False)
+            H3 *= sp.outer()
+            Phat = T.swap(H3.reshape(-1))
+            del H3
+            spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3)
+            rows = 1 << sp.nl - 1
+            R1 = 1 << sp.nr - 1
+            Ph4 = Phat.reshape(rows, 4, R1)
+            Xf6 = Xf.reshape(rows, 2, 2, 2, 2, R1)
+            for r0, G in _row_groups(rows, m + 3):
+                w = tmp.c2[: G * 32 * R1].reshape(G, 32, R1)
+                np.matmul(sp.M, Ph4[r0 : r0 + G], out=w)
+                if r0 == 0:
+                    dev = abs(2.0 * w[0, 0, 0] - 1.0)  # V_m[0] = sum_a f H_{m-1} = 1
+                X = tmp.c3[: w.size].reshape(G, 32, R1)
+                _ipow_into(w, q - 1, X)
+                X.view(np.float64).reshape(G, 32 * R1, 2)[...] *= spec.rows(r0, G, tmp.r1)[:, :, None]
+                X7 = X.reshape(G, 2, 2, 2, 2, 2, R1)
+                np.add(X7[:, :, :, 0], X7[:, :, :, 1], out=Xf6[r0 : r0 + G])
+            if not gradient:
+                Phat = None
+        else:
+            v = _half_chain(m, b[:m])
+            if H3 is not None:
+                v.reshape(1 << (m - 2), 8, 1 << (m - 1))[...] *= H3.reshape(1 << (m - 2), 1, 1 << (m - 1))
+            del H3
+            w = T.swap(v)
+            dev = abs(2.0 * w[0] - 1.0)
+            spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, 2 * m)
+            X = _ipow_into(w, q - 1, np.empty_like(w)) * spec.full()
+            Xf[...] = _fold_middle(X, m).reshape(-1)
+            Phat = None
+        if not dev <= tol:
             raise SparseIntegrityError(
-                f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} "
-                f"(allowed {sum_fH_tolerance(m, D):.1e})"
+                f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} (allowed {tol:.1e})"
             )
         dev_max = max(dev_max, dev)
-        a_bits, b_bits = _split_bits(2 * m)
-        spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, b_bits)
-        _power_times_spectrum(A, q - 1, spec, tmp)
-        A = T.swap(A)  # message - 1
-        L = np.empty_like(A) if gradient else None
-        _log_power(A, D, tmp, L)
+        Z = T.swap(Xf)  # message - 1 (independent of the merged site)
+        del Xf
+        L = np.empty_like(Z) if gradient else None
+        _log_power(Z, D, tmp, L)
         if gradient:
-            Ls.append(L)
-        H = A
+            steps.append(_StepData(L, Phat))
+        H3 = Z.reshape(1 << (m - 1), 1 << m)  # H3_m: (times 2..m, times -m..-1)
+        del Z
     N = 1 << n_sites(p)
-    a_bits, b_bits = _split_bits(2 * p)
-    fh, fl = _chain_tables(p, b, a_bits)
-    H_p = H.copy() if gradient else None
-    u = H
-    total = 0.0
-    for h in range(1 << a_bits):
-        uc = u[h << b_bits : (h + 1) << b_bits]
-        uc *= fl[h & 1]
-        total += fh[h] * uc.sum()  # sum_a f H (the check), then the sign a_0
-        if b_bits > p:  # time 0 is bit p of the half index
-            uc *= fh[h]
-            uc.reshape(-1, 2, 1 << p)[:, 1, :] *= -1
-        else:
-            uc *= -fh[h] if (h >> (p - b_bits)) & 1 else fh[h]
+    tol = sum_fH_tolerance(p, D)
+    coef = 0.5j * float(2**q) / N  # nu = 1/2 + coef sum_k U^q W(sin(phase/2)), U = W(f H a_0)
+    root = {}
+    if p >= 2:
+        sp = _Split(p, b, 1, True)
+        H3 *= sp.outer()
+        Phat = T.swap(H3.reshape(-1))
+        del H3
+        rows = 1 << sp.nl - 1
+        R1 = 1 << sp.nr - 1
+        Ph4 = Phat.reshape(rows, 4, R1)
+        # sum_a f H (the check): W(P C0)[0] with C0 = C without the sign a_0
+        C0 = _Split(p, b, 1, False)
+        total = (C0.M @ Ph4[0, :, 0])[0]
+        spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
+        acc = 0.0
+        for r0, G in _row_groups(rows, p + 2):
+            U = tmp.c2[: G * 8 * R1].reshape(G, 8, R1)
+            np.matmul(sp.M, Ph4[r0 : r0 + G], out=U)
+            Y = _ipow_into(U, q, tmp.c3[: U.size].reshape(U.shape))
+            acc += np.sum(spec.rows(r0, G, tmp.r1).reshape(G, 8, R1) * Y)
+        root = {"split": sp, "Phat": Phat if gradient else None, "spec": spec}
+    else:
+        u = _half_chain(p, b) * H3.reshape(1, 1, 1).repeat(2, axis=1).reshape(-1) if False else None
+        Hf = np.repeat(H3.reshape(1, 2), 2, axis=0).reshape(-1)  # (merged site, time -1)
+        u = _half_chain(p, b) * Hf
+        total = u.sum()
+        _flip_time0_half(u, p)
+        U = T.swap(u.copy())
+        spec = _PhaseSpectrum(g, "sin", 1.0, 2 * p)
+        acc = np.sum(spec.full() * U**q)
+        root = {"U": U, "Hf": Hf, "spec": spec}
     root_norm = abs(2.0 * total - 1.0)
-    if not root_norm <= sum_fH_tolerance(p, D):
+    if not root_norm <= tol:
         raise SparseIntegrityError(
-            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p, D):.1e})"
+            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {tol:.1e})"
         )
     dev_max = max(dev_max, root_norm)
-    U = T.swap(u)  # half transform of f H a_0
-    spec = _PhaseSpectrum(g, "sin", float(2**q) / N, b_bits)
-    acc = np.zeros(2)
-    y = tmp.c1
-    for h in range(1 << a_bits):
-        Uc = U[h << b_bits : (h + 1) << b_bits]
-        yc = y[: Uc.size]
-        np.multiply(Uc, Uc, out=yc)
-        for _ in range(q - 2):
-            yc *= Uc
-        acc += spec.chunk(h, tmp.r1[: Uc.size]) @ yc.view(np.float64).reshape(-1, 2)
-    corr = 1j * complex(acc[0], acc[1])
+    corr = 2.0 * coef * acc
     nu_c = 0.5 + 0.5 * corr
     residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
     grad = None
     if gradient:
-        U *= 2.0
-        f = _half_chain(p, b)
-        Sh = _PhaseSpectrum(g, "sin", 1.0, b_bits).full()
-        grad = _backward_growing(q, D, g, b, f, _half_phase(g), Sh, H_p, U, Ls, T, residuals)
+        grad = _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals)
     return _result(q, D, g, b, corr, residuals, grad, t0, T.count)
 
 
-def _backward_growing(q, D, g, b, f_p, phase_p, Sh, H_p, U, Ls, T, residuals):
-    """Reverse sweep over the growing contours on half vectors (holomorphic adjoints)."""
+def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
+    """Reverse sweep over the growing contours (holomorphic adjoints), mirroring
+    :func:`_evaluate_growing` step by step on the same reduced vectors."""
     p = g.size
     gamma_bar = np.zeros(p, dtype=complex)
     beta_bar = np.zeros(p, dtype=complex)
 
-    def add_phase_bar(phasebar, m):
+    def add_theta_bar(theta_bar, m):
+        Gam_bar = 0.5 * theta_bar  # theta = Gamma / 2
         n = n_sites(m)
-        Gam_bar = _site_sums_half(phasebar, n)
         gamma_bar[:m] += Gam_bar[:m] - Gam_bar[n - 1 : m : -1]
 
-    # nu = 1/2 + (i / 2N) sum_k U^q Sh, U = 2 W(u), Sh = 2 W(sin(phase/2))
-    N = 1 << n_sites(p)
-    coef = 0.5j / N
-    Ubar = _ipow(U, q - 1)
-    Shbar = (coef * Ubar) * U
-    Ubar *= 2.0 * coef * q
-    Ubar *= Sh
-    ubar = T(Ubar)
-    _flip_time0_half(ubar, p)  # u = f H a0
-    _beta_bar_from_f(ubar * H_p, f_p, p, beta_bar)
-    Hbar = ubar * f_p
-    del ubar
-    T(Shbar)
-    Shbar *= 2.0
-    add_phase_bar(Shbar * (0.5 * np.cos(phase_p / 2.0)), p)
-    del Shbar
+    spec = root["spec"]
+    # root: nu = 1/2 + coef sum_k U^q S, S the sin spectrum (unscaled)
+    if p >= 2:
+        sp = root["split"]
+        Phat = root["Phat"]
+        rows = 1 << sp.nl - 1
+        R1 = 1 << sp.nr - 1
+        Ph4 = Phat.reshape(rows, 4, R1)
+        Phat_bar = np.empty_like(Phat)
+        Pb4 = Phat_bar.reshape(rows, 4, R1)
+        Mbar = np.zeros_like(sp.M)
+        for r0, G in _row_groups(rows, p + 2):
+            U = tmp.c2[: G * 8 * R1].reshape(G, 8, R1)
+            np.matmul(sp.M, Ph4[r0 : r0 + G], out=U)
+            S = spec.rows(r0, G, tmp.r1).reshape(G, 8, R1)
+            Ubar = _ipow_into(U, q - 1, tmp.c3[: U.size].reshape(U.shape))
+            U *= Ubar  # U^q
+            U *= coef
+            spec.accumulate(r0, U.reshape(G, -1))
+            Ubar *= coef * q
+            Ubar *= S
+            np.matmul(sp.M.T, Ubar, out=Pb4[r0 : r0 + G])
+            Mbar += np.tensordot(Ubar, Ph4[r0 : r0 + G], axes=([0, 2], [0, 2]))
+        add_theta_bar(spec.theta_bar(), p)
+        sp.matrix_beta_bar(Mbar, beta_bar)
+        del Phat, Ph4
+        Pbar = T.swap(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+        del Phat_bar
+        H3 = _exp_of(steps[p - 1].L, D - 1.0).reshape(Pbar.shape)
+        H3 *= Pbar
+        sp.outer_beta_bar(H3, beta_bar)
+        del H3
+        Pbar *= sp.outer()
+        H3bar = Pbar.reshape(-1)
+        del Pbar
+    else:
+        U = root["U"]
+        S = spec.full()
+        spec.accumulate(0, (coef * U**q).reshape(1, -1))
+        add_theta_bar(spec.theta_bar(), p)
+        Ubar = coef * q * U ** (q - 1) * S
+        ubar = T.swap(Ubar)
+        _flip_time0_half(ubar, p)
+        f = _half_chain(p, b)
+        _chain_beta_bar(ubar * root["Hf"], f, p, 0, beta_bar)
+        H3bar = (ubar * f).reshape(2, 2).sum(axis=0)  # sum over the merged site
     for m in range(p, 0, -1):
         N = 1 << n_sites(m)
-        L_m = Ls[m - 1]
-        Hl = _lift(None if m == 1 else np.exp((D - 1.0) * Ls[m - 2]), m)
-        f = _half_chain(m, b[:m])
-        phase = _half_phase(g[:m])
-        Kh = -2.0 * np.sin(phase / 4.0) ** 2
-        T(Kh)
-        Kh *= 2.0
-        # H_m = exp((D-1) log1p(mm1)) -> mm1bar = Hbar (D-1) exp((D-2) L_m); mm1 = W(X)/N
-        Xbar = Hbar * ((D - 1.0) * np.exp((D - 2.0) * L_m))
-        del Hbar
-        T(Xbar)
-        Xbar /= N
-        V = T(f * Hl)
-        V *= 2.0
-        Vq2 = _ipow(V, q - 2)
-        Khbar = Xbar * (Vq2 * V)
-        Vbar = Xbar * Kh
-        Vbar *= 2.0 * (q - 1) * Vq2
-        del Vq2, V, Xbar, Kh
-        T(Khbar)  # K - 1 = 2 W(-2 sin^2(phase/4)): adjoint through the transform
-        Khbar *= 2.0
-        add_phase_bar(-Khbar * (0.5 * np.sin(phase / 2.0)), m)
-        del Khbar
-        vbar = T(Vbar)
-        _beta_bar_from_f(vbar * Hl, f, m, beta_bar)
-        if m > 1:
-            Hbar = _lift_adjoint(vbar * f, m)
-        del vbar
+        st = steps[m - 1]
+        # H3_m = exp((D-1) L), L = log1p(Z): Zbar = H3bar (D-1) exp((D-2) L)
+        _exp_times(H3bar, st.L, D - 2.0, D - 1.0, tmp)
+        st.L = None
+        Xf_bar = T.swap(H3bar)
+        del H3bar
+        spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3 if m >= 3 else 2 * m)
+        if m >= 3:
+            sp = _Split(m, b[:m], 3, False)
+            rows = 1 << sp.nl - 1
+            R1 = 1 << sp.nr - 1
+            Ph4 = st.Phat.reshape(rows, 4, R1)
+            Phat_bar = np.empty_like(st.Phat)
+            Pb4 = Phat_bar.reshape(rows, 4, R1)
+            Xb6 = Xf_bar.reshape(rows, 2, 2, 2, 2, R1)
+            Mbar = np.zeros_like(sp.M)
+            for r0, G in _row_groups(rows, m + 3):
+                w = tmp.c2[: G * 32 * R1].reshape(G, 32, R1)
+                np.matmul(sp.M, Ph4[r0 : r0 + G], out=w)
+                K = spec.rows(r0, G, tmp.r1).reshape(G, 32, R1)
+                wq2 = _ipow_into(w, q - 2, tmp.c3[: w.size].reshape(w.shape))  # w^(q-2)
+                Xbar = np.broadcast_to(Xb6[r0 : r0 + G][:, :, :, None], (G, 2, 2, 2, 2, 2, R1)).reshape(G, 32, R1)
+                w *= wq2  # w^(q-1)
+                w *= Xbar
+                spec.accumulate(r0, w.reshape(G, -1))  # Kbar = Xbar w^(q-1)
+                wq2 *= Xbar
+                wq2 *= K
+                wq2 *= q - 1.0  # wbar
+                np.matmul(sp.M.T, wq2, out=Pb4[r0 : r0 + G])
+                Mbar += np.tensordot(wq2, Ph4[r0 : r0 + G], axes=([0, 2], [0, 2]))
+            add_theta_bar(spec.theta_bar(), m)
+            sp.matrix_beta_bar(Mbar, beta_bar)
+            st.Phat = None
+            del Ph4, Xb6, Xf_bar
+            Pbar = T.swap(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+            del Phat_bar
+            H3 = _exp_of(steps[m - 2].L, D - 1.0).reshape(Pbar.shape)
+            H3 *= Pbar
+            sp.outer_beta_bar(H3, beta_bar)
+            del H3
+            Pbar *= sp.outer()
+            H3bar = Pbar.reshape(-1)
+            del Pbar
+        else:
+            f = _half_chain(m, b[:m])
+            v = f.copy()
+            if m == 2:
+                H3prev = _exp_of(steps[0].L, D - 1.0).reshape(1, 1, 2)
+                v.reshape(1, 8, 2)[...] *= H3prev
+            w = T.swap(v)
+            Xbar = np.repeat(Xf_bar.reshape(1 << (m - 1), 1, 1 << m), 2, axis=1).reshape(-1)
+            K = spec.full()
+            spec.accumulate(0, (Xbar * w ** (q - 1)).reshape(1, -1))
+            add_theta_bar(spec.theta_bar(), m)
+            wbar = Xbar * (q - 1) * w ** (q - 2) * K
+            vbar = T.swap(wbar)
+            if m == 2:
+                _chain_beta_bar(vbar * np.broadcast_to(H3prev, (1, 8, 2)).reshape(-1), f, m, 0, beta_bar)
+                H3bar = (vbar * f).reshape(1, 8, 2).sum(axis=1).reshape(-1)
+            else:
+                _chain_beta_bar(vbar, f, m, 0, beta_bar)
     residuals["imag_gradient"] = float(max(np.max(np.abs(gamma_bar.imag)), np.max(np.abs(beta_bar.imag))))
     return {"gamma": gamma_bar.real.copy(), "beta": beta_bar.real.copy()}
 
