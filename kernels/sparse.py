@@ -970,9 +970,14 @@ class _Split:
             t = self.first_mid_link + i
             beta_bar[link_beta_index(self.m, t)] += np.sum(Mbar * self._matrix(rows))
 
-    def outer(self) -> np.ndarray:
-        """1/2 A[l] B[h] as an (2^nl, 2^nr) array."""
-        return 0.5 * np.multiply.outer(self.A, self.B)
+    def times_outer(self, X: np.ndarray) -> np.ndarray:
+        """X <- X * 1/2 A[l] B[h] in place, X of shape (2^nl, 2^nr), a few rows at a time."""
+        A2 = 0.5 * self.A
+        for r0, G in _row_groups(X.shape[0], self.nr):
+            blk = X[r0 : r0 + G]
+            blk *= A2[r0 : r0 + G, None]
+            blk *= self.B
+        return X
 
     def outer_beta_bar(self, R: np.ndarray, beta_bar: np.ndarray) -> None:
         """beta_bar += d/db of sum(R * 1/2 A B) (R of shape (2^nl, 2^nr))."""
@@ -1120,7 +1125,7 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
         Xf = np.empty(N // 4, dtype=complex)
         if m >= 3:
             sp = _Split(m, b[:m], 3, False)
-            H3 *= sp.outer()
+            sp.times_outer(H3)
             Phat = T.swap(H3.reshape(-1))
             del H3
             spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3)
@@ -1170,7 +1175,7 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     root = {}
     if p >= 2:
         sp = _Split(p, b, 1, True)
-        H3 *= sp.outer()
+        sp.times_outer(H3)
         Phat = T.swap(H3.reshape(-1))
         del H3
         rows = 1 << sp.nl - 1
@@ -1256,7 +1261,7 @@ def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
         H3 *= Pbar
         sp.outer_beta_bar(H3, beta_bar)
         del H3
-        Pbar *= sp.outer()
+        sp.times_outer(Pbar)
         H3bar = Pbar.reshape(-1)
         del Pbar
     else:
@@ -1312,7 +1317,7 @@ def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
             H3 *= Pbar
             sp.outer_beta_bar(H3, beta_bar)
             del H3
-            Pbar *= sp.outer()
+            sp.times_outer(Pbar)
             H3bar = Pbar.reshape(-1)
             del Pbar
         else:
