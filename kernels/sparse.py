@@ -717,9 +717,14 @@ class _Transformers:
             self._spare = x  # the caller's vector is the new scratch
         return out
 
-    def release(self) -> None:
-        """Drop the spare buffer (before a phase that needs the memory)."""
-        self._spare = None
+    def into(self, x: np.ndarray, spare: np.ndarray) -> np.ndarray:
+        """Like :meth:`swap` with the caller's scratch ``spare`` (same size as x): the result
+        is in x or in ``spare``, whichever is returned."""
+        T = self._get(x.size)
+        if T.run_map is not None:
+            return T(x)
+        self._swaps += 1
+        return _wht_blocked_pingpong(x, spare)
 
     @property
     def count(self) -> int:
@@ -970,14 +975,15 @@ class _Split:
             t = self.first_mid_link + i
             beta_bar[link_beta_index(self.m, t)] += np.sum(Mbar * self._matrix(rows))
 
-    def times_outer(self, X: np.ndarray) -> np.ndarray:
-        """X <- X * 1/2 A[l] B[h] in place, X of shape (2^nl, 2^nr), a few rows at a time."""
+    def times_outer(self, X: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """out <- X * 1/2 A[l] B[h] (default: in place), X of shape (2^nl, 2^nr), a few rows at a time."""
+        out = X if out is None else out
         A2 = 0.5 * self.A
         for r0, G in _row_groups(X.shape[0], self.nr):
-            blk = X[r0 : r0 + G]
-            blk *= A2[r0 : r0 + G, None]
+            blk = out[r0 : r0 + G]
+            np.multiply(X[r0 : r0 + G], A2[r0 : r0 + G, None], out=blk)
             blk *= self.B
-        return X
+        return out
 
     def outer_beta_bar(self, R: np.ndarray, beta_bar: np.ndarray) -> None:
         """beta_bar += d/db of sum(R * 1/2 A B) (R of shape (2^nl, 2^nr))."""
@@ -1116,18 +1122,30 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     p = g.size
     T = _Transformers(run_map, n_high)
     tmp = _Chunk(max(1 << CHUNK_BITS, 1 << (p + 3)))  # a row group holds at least one row
+    # three buffers for every step from 3 on (prefixes of them; their pages are touched
+    # once): two of the final folded size 2^(2p-1), one of a quarter of it
+    big = (np.empty(1 << (2 * p - 1), dtype=complex), np.empty(1 << (2 * p - 1), dtype=complex))
+    small = np.empty(1 << max(2 * p - 3, 0), dtype=complex)
+
+    def other(x):
+        """The big buffer that does not hold x."""
+        return big[1] if np.may_share_memory(x, big[0]) else big[0]
+
     dev_max = 0.0
     steps: list[_StepData] = []
     H3 = None
     for m in range(1, p + 1):
         N = 1 << n_sites(m)
         tol = sum_fH_tolerance(m, D)
-        Xf = np.empty(N // 4, dtype=complex)
         if m >= 3:
             sp = _Split(m, b[:m], 3, False)
-            sp.times_outer(H3)
-            Phat = T.swap(H3.reshape(-1))
+            s8 = 1 << (2 * m - 3)
+            P = sp.times_outer(H3, small[:s8].reshape(H3.shape)).reshape(-1)
+            spare = big[1] if np.may_share_memory(H3, big[1]) else big[0]  # H3 is free now
             del H3
+            Phat = T.into(P, spare[:s8])
+            del P
+            Xf = other(Phat)[: 4 * s8]
             spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3)
             rows = 1 << sp.nl - 1
             R1 = 1 << sp.nr - 1
@@ -1143,9 +1161,10 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
                 X.view(np.float64).reshape(G, 32 * R1, 2)[...] *= spec.rows(r0, G, tmp.r1)[:, :, None]
                 X7 = X.reshape(G, 2, 2, 2, 2, 2, R1)
                 np.add(X7[:, :, :, 0], X7[:, :, :, 1], out=Xf6[r0 : r0 + G])
-            if not gradient:
-                Phat = None
+            Phat = Phat.copy() if gradient else None
+            del Ph4, Xf6
         else:
+            Xf = np.empty(N // 4, dtype=complex)
             v = _half_chain(m, b[:m])
             if H3 is not None:
                 v.reshape(1 << (m - 2), 8, 1 << (m - 1))[...] *= H3.reshape(1 << (m - 2), 1, 1 << (m - 1))
@@ -1161,7 +1180,7 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
                 f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} (allowed {tol:.1e})"
             )
         dev_max = max(dev_max, dev)
-        Z = T.swap(Xf)  # message - 1 (independent of the merged site)
+        Z = T.into(Xf, other(Xf)[: Xf.size])  # message - 1 (independent of the merged site)
         del Xf
         L = np.empty_like(Z) if gradient else None
         _log_power(Z, D, tmp, L)
@@ -1176,8 +1195,8 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     if p >= 2:
         sp = _Split(p, b, 1, True)
         sp.times_outer(H3)
-        Phat = T.swap(H3.reshape(-1))
-        del H3
+        Phat = T.into(H3.reshape(-1), other(H3)[: H3.size])
+        del H3, small
         rows = 1 << sp.nl - 1
         R1 = 1 << sp.nr - 1
         Ph4 = Phat.reshape(rows, 4, R1)

@@ -223,3 +223,87 @@ def test_blocked_transform_equals_butterflies():
         np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * max(1.0, np.max(np.abs(ref))))
         if n <= 7:
             np.testing.assert_allclose(got, hadamard(2**n) @ x, rtol=0, atol=1e-12 * max(1.0, np.max(np.abs(ref))))
+
+
+# ----------------------------------------------------------------------------- sparse internals
+def _brute_half_spectrum(gamma, kind):
+    """W(cos(phase/2) - 1) or W(sin(phase/2)) of all 2^(2m+1) paths by scipy.linalg.hadamard
+    (Sylvester's construction), read at the half index: the wave vector whose first bit makes
+    the weight even (cos) or odd (sin)."""
+    from scipy.linalg import hadamard
+
+    from leadline.kernels.contour import sign_patterns
+    from leadline.kernels.sparse import phase_vector
+
+    m = len(gamma)
+    n = 2 * m + 1
+    phase = phase_vector(gamma)
+    F = np.cos(phase / 2) - 1 if kind == "cos" else np.sin(phase / 2)
+    spec = hadamard(2**n) @ F
+    half = np.arange(2 ** (n - 1))
+    weight = np.array([bin(k).count("1") for k in half])
+    first = weight % 2 if kind == "cos" else 1 - weight % 2
+    assert sign_patterns(1)[1, 0] == -1  # a set bit is spin -1, first site the most significant bit
+    return spec[(first << (n - 1)) + half]
+
+
+@pytest.mark.parametrize("kind", ["cos", "sin"])
+def test_closed_form_phase_spectrum_equals_the_transform(kind):
+    from leadline.kernels.sparse import _PhaseSpectrum
+
+    rng = np.random.default_rng(21 if kind == "cos" else 22)
+    for m in range(1, 5):
+        g = rng.uniform(-1.5, 1.5, m)
+        ref = _brute_half_spectrum(g, kind)
+        for b in range(1, 2 * m + 1):  # every split into rows of 2^b points
+            got = _PhaseSpectrum(g, kind, 1.0, b).full()
+            np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * 2 ** (2 * m + 1))
+
+
+def test_closed_form_spectrum_keeps_the_zero_entry_at_tiny_angles():
+    # sum_c (cos(phase(c)/2) - 1) at angles ~1e-5 (the large-D regime): against 50-digit mpmath
+    import itertools
+
+    import mpmath
+
+    from leadline.kernels.sparse import _PhaseSpectrum
+
+    g = [1.3e-5, 2.1e-5, 0.7e-5]
+    Gam = g + [0.0] + [-x for x in reversed(g)]
+    with mpmath.workdps(50):
+        ref = mpmath.fsum(
+            mpmath.cos(mpmath.fsum(mpmath.mpf(G) * s for G, s in zip(Gam, c)) / 2) - 1
+            for c in itertools.product((1, -1), repeat=len(Gam))
+        )
+    got = _PhaseSpectrum(g, "cos", 1.0, 3).full()[0]
+    assert abs(got - float(ref)) <= 1e-14 * abs(float(ref))
+
+
+def test_site_product_adjoint_against_brute_force():
+    from leadline.kernels.sparse import _kron_env, _kron_pairs
+
+    rng = np.random.default_rng(23)
+    for n in range(1, 7):
+        pairs = [rng.normal(size=2) for _ in range(n)]
+        dpairs = [rng.normal(size=2) for _ in range(n)]
+        T = rng.normal(size=2**n) + 1j * rng.normal(size=2**n)
+        ref = [T @ _kron_pairs([dpairs[s] if s == t else pairs[s] for s in range(n)]) for t in range(n)]
+        np.testing.assert_allclose(_kron_env(T, pairs, dpairs), ref, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("chunk_bits", [2, 5])
+def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits):
+    # the row-by-row paths (several groups per step, several row tables per spectrum)
+    import leadline.kernels.sparse as sparse
+
+    monkeypatch.setattr(sparse, "CHUNK_BITS", chunk_bits)
+    rng = np.random.default_rng(30 + chunk_bits)
+    for q, D in [(2, 3), (3, 4), (5, 2.5)]:
+        for p in range(1, 7):
+            g = rng.uniform(-1.0, 1.0, p) / np.sqrt(D)
+            b = rng.uniform(-1.0, 1.0, p)
+            new = evaluate_sparse(q, D, g, b, gradient=True)
+            old = evaluate_sparse(q, D, g, b, gradient=True, contour="full")
+            assert abs(new.value - old.value) <= 1e-12, (q, D, p)
+            for k in ("gamma", "beta"):
+                np.testing.assert_allclose(new.gradient[k], old.gradient[k], rtol=0, atol=1e-12)
