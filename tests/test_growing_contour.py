@@ -307,3 +307,23 @@ def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits)
             assert abs(new.value - old.value) <= 1e-12, (q, D, p)
             for k in ("gamma", "beta"):
                 np.testing.assert_allclose(new.gradient[k], old.gradient[k], rtol=0, atol=1e-12)
+
+
+def test_integer_degree_power_by_multiplication_equals_exp_log1p(monkeypatch):
+    # (1 + z)^(D-1) by multiplication (small integer D) against exp((D-1) log1p(z))
+    import leadline.kernels.sparse as sparse
+
+    rng = np.random.default_rng(40)
+    for q, D in [(2, 2), (3, 4), (4, 9)]:
+        for p in (3, 5):
+            g = rng.uniform(-1.0, 1.0, p) / np.sqrt(D)
+            b = rng.uniform(-1.0, 1.0, p)
+            assert sparse._int_power(D) == D - 1
+            mult = evaluate_sparse(q, D, g, b, gradient=True)
+            with monkeypatch.context() as mp:
+                mp.setattr(sparse, "INT_POWER_MAX", 0)
+                assert sparse._int_power(D) is None
+                logs = evaluate_sparse(q, D, g, b, gradient=True)
+            assert abs(mult.value - logs.value) <= 1e-14
+            for k in ("gamma", "beta"):
+                np.testing.assert_allclose(mult.gradient[k], logs.gradient[k], rtol=0, atol=1e-13)
