@@ -1247,7 +1247,6 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
             acc += np.sum(spec.rows(r0, G, tmp.r1).reshape(G, 8, R1) * Y)
         root = {"split": sp, "Phat": Phat if gradient else None, "spec": spec}
     else:
-        u = _half_chain(p, b) * H3.reshape(1, 1, 1).repeat(2, axis=1).reshape(-1) if False else None
         Hf = np.repeat(H3.reshape(1, 2), 2, axis=0).reshape(-1)  # (merged site, time -1)
         u = _half_chain(p, b) * Hf
         total = u.sum()
