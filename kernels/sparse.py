@@ -45,13 +45,22 @@ forces a_{m+1} = a_{-(m+1)}, so step m is the same recursion on the contour of
 a depth-m problem (times 1..m, a merged middle site standing for +-(m+1),
 -m..-1; its chain is the depth-m f), and H_{m-1} is lifted to it unchanged
 (it does not depend on times +-m or the merged site).  The root uses the full
-depth-p contour.  The transforms of step m have 2^(2m+1) points, so one
-evaluation costs about (4/3 + root) full-size transforms' work instead of
-2p + 3 (``contour="full"`` keeps the old recursion as the baseline).
+depth-p contour.  With the global flip every vector is a half vector
+(2^(2m) points at step m).  Three more exact reductions (:func:`_evaluate_growing`):
+the spectra of cos(phase/2) - 1 and sin(phase/2) are products over the sites
+(closed form, no transform); the chain f factorizes around the three middle sites
+H_{m-1} does not see, so the first transform of step m runs on the 2^(2m-3) points
+of the outer part and a 32 x 4 matrix rebuilds the rest from its quarter-blocks;
+and H_m does not see its merged site, so only the half of message - 1 it needs is
+computed (a transform of 2^(2m-1) points after summing over that wave-vector
+bit).  The root is the same with time 0 in the middle.  One evaluation transforms
+about (4/3)(2^(2p-3) + 2^(2p-1)) + 2^(2p-1) points in all, against p (2 or 3)
+transforms of 2^(2p+1) points on the full contour (``contour="full"`` keeps that
+recursion as the baseline), and holds 2.25 x 2^(2p-1) complex numbers at most.
 
 Cost: O(4^p) time and memory for the value (O(p 4^p) on the full contour); the
-gradient (reverse mode through the transforms, step by step on the same
-contours) costs a small constant times one evaluation.
+gradient (reverse mode through the same reduced steps) costs a small constant
+times one evaluation.
 
 Splitting: the transform of a vector viewed as a (2^h, 2^l) array is the
 row transform (over the low bits) followed by the column transform (over the
@@ -465,9 +474,9 @@ def evaluate_sparse(
     memory_budget_bytes : with ``gradient`` and ``contour="full"``, bound on the per-step
         vectors kept for the reverse sweep; steps between checkpoints are recomputed
         (default: keep all).  The growing contour keeps all steps: together they hold
-        about 4/3 of one full-size vector.
-    contour : "growing" (default: step m on the depth-m contour, transforms of
-        2^(2m+1) points) or "full" (every step on all 2^(2p+1) paths; the baseline)
+        about 0.42 x 2^(2p+1) complex numbers.
+    contour : "growing" (default: step m on the depth-m contour, transforms of at
+        most 2^(2m-1) points) or "full" (every step on all 2^(2p+1) paths; the baseline)
     """
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)
