@@ -327,3 +327,25 @@ def test_integer_degree_power_by_multiplication_equals_exp_log1p(monkeypatch):
             assert abs(mult.value - logs.value) <= 1e-14
             for k in ("gamma", "beta"):
                 np.testing.assert_allclose(mult.gradient[k], logs.gradient[k], rtol=0, atol=1e-13)
+
+
+@pytest.mark.parametrize("row_bits,block_bits", [(16, 17), (2, 3), (3, 2), (1, 1)])
+def test_in_place_four_step_transform_equals_butterflies(monkeypatch, row_bits, block_bits):
+    """The in-place transform with small scratch (rows, then gathered column blocks) against
+    the radix-2 butterflies and, at small size, scipy.linalg.hadamard (Sylvester's construction)."""
+    from scipy.linalg import hadamard
+
+    import leadline.kernels.sparse as sparse
+
+    monkeypatch.setattr(sparse, "ROW_BITS", row_bits)
+    monkeypatch.setattr(sparse, "BLOCK_BITS", block_bits)
+    rng = np.random.default_rng(50 + row_bits)
+    for n in (0, 1, 2, 3, 5, 8, 11):
+        x = rng.normal(size=2**n) + 1j * rng.normal(size=2**n)
+        ref = sparse.wht(x.copy())
+        got = x.copy()
+        assert sparse.wht_inplace(got) is got
+        scale = max(1.0, np.max(np.abs(ref)))
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * scale)
+        if n <= 7:
+            np.testing.assert_allclose(got, hadamard(2**n) @ x, rtol=0, atol=1e-12 * scale)
