@@ -56,7 +56,8 @@ computed (a transform of 2^(2m-1) points after summing over that wave-vector
 bit).  The root is the same with time 0 in the middle.  One evaluation transforms
 about (4/3)(2^(2p-3) + 2^(2p-1)) + 2^(2p-1) points in all, against p (2 or 3)
 transforms of 2^(2p+1) points on the full contour (``contour="full"`` keeps that
-recursion as the baseline), and holds 2.25 x 2^(2p-1) complex numbers at most.
+recursion as the baseline), and holds 1.25 x 2^(2p-1) complex numbers at most
+(transforms in place, :func:`wht_inplace`).
 
 Cost: O(4^p) time and memory for the value (O(p 4^p) on the full contour); the
 gradient (reverse mode through the same reduced steps) costs a small constant
