@@ -57,7 +57,7 @@ def _case(angles: dict, name: str, p: int):
     g, b = (np.array(angles[name]["depths"][str(top)][k]) for k in ("gamma", "beta"))
     while g.size < p:
         g, b = interpolate_angles(g, b)
-    from leadline.kernels.iteration import evaluate
+    from leadline.kernels.exact import evaluate
 
     return mix, g, b, evaluate(mix, g, b).value
 

@@ -40,9 +40,8 @@ def _angles(p: int):
 
 
 def _timed_eval(p: int, run_pass, repeats: int = 1) -> tuple[float, float, int]:
-    from leadline.kernels.iteration import evaluate
+    from leadline.kernels.exact import evaluate, plan_chunks
     from leadline.kernels.mixture import parse_mixture
-    from leadline.kernels.plan import plan_chunks
 
     mix = parse_mixture(MIXTURE)
     g, b = _angles(p)
@@ -59,7 +58,7 @@ def _timed_eval(p: int, run_pass, repeats: int = 1) -> tuple[float, float, int]:
 def run(quick: bool = False, depths=None, log=None) -> dict:
     """Run the measurements; returns a JSON-ready dict."""
     from leadline.cluster import ComputeSettings, InProcessExecutor, start_local_cluster
-    from leadline.kernels.plan import plan_chunks
+    from leadline.kernels.exact import plan_chunks
 
     log = log or (lambda s: print(s, file=sys.stderr, flush=True))
     depths = list(depths or ((11, 12) if quick else (12, 13)))

@@ -47,9 +47,8 @@ def _one(spec: dict) -> dict:
     kind, p = spec["kind"], int(spec["p"])
     g, b = _angles(p)
     if kind == "dense":
-        from leadline.kernels.iteration import evaluate
+        from leadline.kernels.exact import evaluate, plan_chunks
         from leadline.kernels.mixture import parse_mixture
-        from leadline.kernels.plan import plan_chunks
 
         mix = parse_mixture("2:0.5")
         contour = spec.get("contour", "growing")

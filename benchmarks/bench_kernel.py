@@ -83,10 +83,8 @@ def _measure(spec: dict) -> dict:
     reps = int(spec.get("reps", 3))
     baseline_rss = _rss_bytes()
     if kind in ("evaluate", "gradient"):
-        from leadline.kernels.chunks import IMPLEMENTATIONS
-        from leadline.kernels.iteration import evaluate
+        from leadline.kernels.exact import IMPLEMENTATIONS, evaluate, plan_chunks
         from leadline.kernels.mixture import parse_mixture
-        from leadline.kernels.plan import plan_chunks
 
         p, impl = int(spec["p"]), spec["impl"]
         mix = parse_mixture(spec.get("xi", SK))
@@ -373,7 +371,7 @@ def summarize(raw: list[dict], probe: dict) -> dict:
             visits = ev["passes"] * paths
             row["eval_path_visits_per_s_per_core"] = visits / row["eval_cpu_s"]
             if peak_cmac:
-                # forward pass: 3 complex multiply-adds per path visit inside zgemm (kernels/blocked.py)
+                # forward pass: 3 complex multiply-adds per path visit inside zgemm (kernels/exact/_blocked.py)
                 row["eval_ceiling_path_visits_per_s"] = peak_cmac / 3.0
                 row["eval_fraction_of_ceiling"] = row["eval_path_visits_per_s_per_core"] / (peak_cmac / 3.0)
         if gr:

@@ -3,7 +3,7 @@
 A dense 2-spin instance (all pairs, Gaussian weights / sqrt(n)) at p = 1 and p = 3, n = 18..24
 (``quick``: up to 22; ``--max-n 26`` for the hard limit).  Peak memory is the tracemalloc peak of
 the call (numpy reports its buffers), next to the figure the command states before it starts
-(:func:`leadline.kernels.instance.statevector_bytes`).
+(:func:`leadline.kernels.finite_size.statevector_bytes`).
 
 Usage:  python benchmarks/bench_transfer.py [--max-n 24] [--json out.json]
 """
@@ -18,7 +18,7 @@ import tracemalloc
 
 import numpy as np
 
-from leadline.kernels.instance import Instance, statevector_bytes, statevector_check
+from leadline.kernels.finite_size import Instance, statevector_bytes, statevector_check
 
 
 def _instance(n: int) -> Instance:

@@ -14,6 +14,10 @@ from __future__ import annotations
 from leadline._lazy import lazy_names
 
 _WHERE = {
+    "CheckpointedPasses": "checkpointed",
+    "CheckpointStats": "checkpointed",
+    "InProcessChunks": "runners",
+    "as_chunk_runner": "runners",
     "AutoExecutor": "executor",
     "BatchConfigError": "errors",
     "ChunkFailure": "errors",

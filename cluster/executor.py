@@ -13,14 +13,14 @@ Store hook (for the checkpoint layer)
   read back from a checkpoint).  They are not recomputed, but they are summed
   at their place in chunk order, so a resumed pass gives bit-for-bit the
   result of an uninterrupted one.  Each partial must be the (2p+2, 2p+1)
-  complex array that ``kernels.chunks.chunk_partial`` returned for that chunk.
+  complex array that ``kernels.exact.chunk_partial`` returned for that chunk.
 - ``on_chunk(k, partial)``: called in the calling thread once for every
   newly computed chunk, as soon as its task comes back (order of arrival;
   within one task, chunk order).  A store writes the partial and marks chunk
   ``k`` done in its ledger here.  An exception raised by ``on_chunk`` stops
   the pass (outstanding tasks are cancelled) and propagates.
 - The plain two-argument form ``ex.run_pass(inp, plan)`` (also ``ex(inp,
-  plan)``) is what ``kernels.iteration.evaluate(run_pass=...)`` expects.
+  plan)``) is what ``kernels.exact.evaluate(run_pass=...)`` expects.
 
 Kinds: :class:`InProcessExecutor` (no Dask), :class:`DaskExecutor` (a
 LocalCluster it started, a scheduler by address, or a batch cluster it
@@ -40,8 +40,7 @@ from urllib.parse import urlsplit
 
 import numpy as np
 
-from leadline.kernels.chunks import PassInput, chunk_partial, prepare_low_side
-from leadline.kernels.plan import ChunkPlan, plan_chunks
+from leadline.kernels.exact import PassInput, chunk_partial, prepare_low_side, ChunkPlan, plan_chunks
 
 from .errors import ExecutorError, SchedulerUnreachable
 from .mapreduce import OnChunk, OrderedSum, Placement, check_done, map_reduce_pass

@@ -1,7 +1,7 @@
 """Map-reduce of one pass over a Dask client: batches of chunks -> ordered sum.
 
 Map: the chunks still to do are cut into contiguous batches; one task =
-``kernels.chunks.pass_partials(inp, plan, batch)`` (one low-side set-up per
+``kernels.exact.pass_partials(inp, plan, batch)`` (one low-side set-up per
 batch, then the chunks one after another, so a task's peak memory is the
 planner's per-chunk budget however long the batch).  There are about
 :data:`TASKS_PER_SLOT` tasks per worker thread: enough for load balance and
@@ -9,7 +9,7 @@ small enough that a lost worker costs a fraction of its share.
 
 Reduce: each task returns one (2p+2, 2p+1) partial per chunk; they are added
 to a zero accumulator strictly in chunk order 0, 1, 2, ... (early arrivals
-wait), exactly as ``kernels.chunks.run_pass_inprocess`` does, so the sum is
+wait), exactly as ``kernels.exact.run_pass_inprocess`` does, so the sum is
 bit-for-bit the same whatever the number of workers, batch sizes or
 completion order.
 
@@ -32,8 +32,7 @@ from typing import Callable, Mapping
 
 import numpy as np
 
-from leadline.kernels.chunks import PassInput, pass_partials
-from leadline.kernels.plan import ChunkPlan
+from leadline.kernels.exact import PassInput, pass_partials, ChunkPlan
 
 from .errors import ChunkFailure, ExecutorError
 
@@ -65,7 +64,7 @@ class Placement:
     """Where each batch of a forward pass ran, so its adjoint pass can go to the same worker.
 
     The blocked kernel memoizes a forward pass's products per process
-    (kernels/blocked.py); an adjoint pass with the same M and beta on the same
+    (kernels/exact/_blocked.py); an adjoint pass with the same M and beta on the same
     worker reuses them.  Only a hint (``allow_other_workers``): results do not
     depend on it.  Keeps the last ``capacity`` forward passes.
     """

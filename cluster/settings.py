@@ -18,7 +18,7 @@ import os
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, ChunkPlan
+from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, ChunkPlan
 
 from .errors import ExecutorConfigError
 
@@ -78,11 +78,11 @@ def usable_cores() -> int:
 
 
 def product_cache_bytes() -> int:
-    """Bytes of the blocked kernel's per-process memo of forward products (kernels/blocked.py).
+    """Bytes of the blocked kernel's per-process memo of forward products (kernels/exact/_blocked.py).
 
     Both tapes: $LEADLINE_PRODUCT_CACHE_MB (default 384 MiB) + $LEADLINE_COLUMN_CACHE_MB (256).
     """
-    from leadline.kernels.blocked import tape_capacity_bytes
+    from leadline.kernels.exact import tape_capacity_bytes
 
     return tape_capacity_bytes()
 

@@ -22,7 +22,7 @@ import numpy as np
 from .errors import InputError
 
 if TYPE_CHECKING:
-    from leadline.kernels.iteration import Evaluation
+    from leadline.kernels.exact import Evaluation
     from leadline.kernels.mixture import Mixture
     from leadline.kernels.reference import References
     from leadline.kernels.sparse import SparseEvaluation
@@ -203,8 +203,7 @@ def evaluate(
     >>> round(leadline.evaluate("2:0.5", [0.5], [0.392699]).value, 6)
     0.303265
     """
-    from leadline.kernels.iteration import evaluate as evaluate_kernel
-    from leadline.kernels.plan import plan_chunks
+    from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
     mix = _mixture(xi)
     g, b = _angles(gamma, beta)
@@ -222,7 +221,7 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
     is called after every evaluation (the command line's progress bar).
     """
     from leadline.kernels.optimize import optimize_depth
-    from leadline.kernels.plan import plan_chunks
+    from leadline.kernels.exact import plan_chunks
 
     t0 = time.perf_counter()
     if initial is not None:

@@ -7,8 +7,7 @@ from typing import Optional
 
 import typer
 
-from leadline.kernels.iteration import evaluate as evaluate_kernel
-from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import bath_cli, compute, sparse_cli
 from .angles import read_angles

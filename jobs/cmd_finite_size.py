@@ -10,8 +10,7 @@ import numpy as np
 import typer
 
 from leadline.kernels.finite_size import estimate_energy_density
-from leadline.kernels.iteration import evaluate as evaluate_kernel
-from leadline.kernels.plan import plan_chunks
+from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
 from .cost import check_cost
 from .errors import InputError

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from . import compute, sparse_cli
 from .angles import AngleSet, check_writable, convergence_warning, optimum_report, write_angles

@@ -53,7 +53,7 @@ def reference_command(
         return
     if ensemble is not None:
         raise InputError("--ensemble goes with --store")
-    from leadline.kernels.reference import reference_energies  # scipy: only when this command runs
+    from leadline.kernels.reference import reference_energies
 
     mix = mixture_arg(xi)
     _check_settings(gs_tol, alg_tol, max_steps)

@@ -15,7 +15,7 @@ from typing import Optional
 import typer
 
 from leadline import __version__ as _version
-from leadline.kernels.chunks import IMPLEMENTATION_ENV, resolve_implementation
+from leadline.kernels.exact import IMPLEMENTATION_ENV, resolve_implementation
 from leadline.storage.errors import StoreError
 
 from . import compute
@@ -30,7 +30,7 @@ def _store_errors(func):
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
-        from leadline.kernels.iteration import PassIntegrityError
+        from leadline.kernels.exact import PassIntegrityError
         from leadline.kernels.sparse import SparseIntegrityError
 
         try:

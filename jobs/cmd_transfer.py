@@ -3,7 +3,7 @@
     leadline transfer INSTANCE [--angles FILE | --store STORE [--ensemble LABEL] | --depth P]
                                [--max-spins N] [--json] [--output angles.csv]
 
-Steps: read the instance (text or JSON, kernels/instance.py); its empirical
+Steps: read the instance (text or JSON, kernels/finite_size/_instance.py); its empirical
 mixture xi_instance; the reference angles (an angle file, a study's optimum, or
 an optimization for xi_instance itself); gamma / lambda with
 lambda^2 = xi_instance(1) / xi_reference(1); the predicted <C>; for sparse
@@ -24,7 +24,7 @@ from typing import Optional
 import numpy as np
 import typer
 
-from leadline.kernels.instance import (
+from leadline.kernels.finite_size import (
     DEFAULT_STATEVECTOR_SPINS,
     MAX_STATEVECTOR_SPINS,
     InstanceError,
@@ -310,7 +310,7 @@ def _reference_from_store(path: str, label: str | None, depth: int | None) -> di
 
 
 def _dense_value(xi: Mixture, gamma, beta) -> float:
-    from leadline.kernels.iteration import evaluate
+    from leadline.kernels.exact import evaluate
 
     return float(evaluate(xi, gamma, beta).value)
 

@@ -1,6 +1,6 @@
 """What an evaluation or an optimization will cost, said (and limited) before it starts.
 
-Path visits come from :func:`leadline.kernels.plan.evaluation_path_visits`, memory
+Path visits come from :func:`leadline.kernels.exact.evaluation_path_visits`, memory
 from the chunk plan and the executor's worker count, time from the in-process rate
 measured on the development machine (cluster/settings.py: one forward pass of
 2^31 paths at p = 15 in 2.5 s, of 2^29 paths at p = 14 in 0.6 s, i.e. about
@@ -13,7 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from leadline.kernels.plan import ChunkPlan, evaluation_path_visits
+from leadline.kernels.exact import ChunkPlan, evaluation_path_visits
 
 from .errors import InputError
 from .spec import MAX_DEPTH
@@ -110,6 +110,6 @@ def check_cost(p: int, plan: ChunkPlan, settings: ComputeSettings | None, *, gra
 
 
 def plan_budget(settings: ComputeSettings | None) -> int:
-    from leadline.kernels.plan import DEFAULT_MEMORY_BUDGET
+    from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET
 
     return settings.memory_budget if settings is not None else DEFAULT_MEMORY_BUDGET

@@ -93,7 +93,7 @@ def warm_start(path: str | None, depth: int):
 
 def check_representable(mixture: Mixture, gamma, where: str = "--gamma") -> None:
     """InputError (one line with the range) when a pass at these angles would leave double precision."""
-    from leadline.kernels.ranges import RangeError, check_range
+    from leadline.kernels.exact import RangeError, check_range
 
     try:
         check_range(mixture, gamma)

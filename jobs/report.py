@@ -22,7 +22,7 @@ Reference energies, highest precedence first:
 3. ground state and algorithmic threshold computed by ``kernels.reference``
    and cached in the store (or found in the ensemble's "reference" with a
    "computed" origin);
-4. the table shipped in ``kernels.ground_states``.
+4. the table shipped in ``kernels.reference``.
 Where no ground state is known the ratio columns are left out, with a note.
 """
 
@@ -48,7 +48,7 @@ from leadline.kernels.extrapolate import (
     Extrapolation,
     extrapolate,
 )
-from leadline.kernels.ground_states import lookup_ground_state, union_bound
+from leadline.kernels.reference import lookup_ground_state, union_bound
 from leadline.kernels.sparse import scaled_value
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 from .universality import render_universality_markdown, universality_views

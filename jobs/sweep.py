@@ -5,7 +5,7 @@ are read back from the store (their optimum warm-starts the next depth), and
 the first unfinished depth is optimized from its recorded start with a
 checkpointed run_pass, so the replay takes every finished pass from the pass
 cache and every finished chunk of the pass in flight from its ledger (see
-storage/checkpoint.py for why this reproduces the uninterrupted numbers).
+cluster/checkpointed.py for why this reproduces the uninterrupted numbers).
 """
 
 from __future__ import annotations
@@ -16,8 +16,9 @@ from typing import Callable
 import numpy as np
 
 from leadline.kernels.optimize import optimize_depth
-from leadline.kernels.plan import plan_chunks
-from leadline.storage import CheckpointedPasses, CheckpointStats, StudyStore
+from leadline.kernels.exact import plan_chunks
+from leadline.cluster import CheckpointedPasses, CheckpointStats
+from leadline.storage import StudyStore
 from leadline.storage.faults import crash_point
 
 from .spec import EnsembleSpec, StudySpec

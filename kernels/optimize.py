@@ -8,7 +8,7 @@ Strategy
 * At low depth, seeded random restarts as well (the landscape has few local
   optima there and the evaluations are cheap).
 * Each start runs scipy's L-BFGS-B on -V_p with the exact reverse-mode gradient
-  (kernels/iteration.py), so one step costs one evaluation plus its adjoint,
+  (kernels/exact/_iteration.py), so one step costs one evaluation plus its adjoint,
   never 2p+1 evaluations.
 * Safety net: if no start beats V*_{p-1}, the padded start (angles of depth p-1
   with g_p = b_p = 0, which reproduces V*_{p-1} exactly) is optimized too, so
@@ -39,9 +39,8 @@ from typing import Callable
 
 import numpy as np
 
-from .iteration import PassIntegrityError, evaluate
+from .exact import PassIntegrityError, evaluate, ChunkPlan, plan_chunks
 from .mixture import Mixture
-from .plan import ChunkPlan, plan_chunks
 
 #: half-width of the gamma search box in units of 1/sqrt(xi'(1))
 GAMMA_BOX = 4.0
@@ -192,7 +191,7 @@ def optimize_depth(
     ----------
     mixture : covariance mixture xi
     p : depth
-    run_pass, plan : executor of one pass and chunk plan (see kernels/iteration.py)
+    run_pass, plan : executor of one pass and chunk plan (see kernels/exact/_iteration.py)
     previous : (gamma, beta) optimum at depth p-1, shape (p-1,) each; warm start by INTERP
     previous_value : V*_{p-1}, enables the padded-start safety net
     starts : explicit list of (gamma, beta) starts of shape (p,) (tried first)

@@ -1,5 +1,8 @@
 """The Zarr checkpoint store of a study: spec, per-depth results, pass batches, ledger, lock.
 
+This package only persists; it never runs a kernel.  Where a pass is computed and saved at
+once (the checkpointing run_pass) is :mod:`leadline.cluster.checkpointed`.
+
 Imports only ``leadline.kernels``.  Layout: :mod:`.layout` (and docs/store.md); when what
 is written: :mod:`.policy`.
 
@@ -13,11 +16,7 @@ from __future__ import annotations
 from leadline._lazy import lazy_names
 
 _WHERE = {
-    "CheckpointedPasses": "checkpoint",
-    "CheckpointStats": "checkpoint",
     "CheckpointPolicy": "policy",
-    "InProcessChunks": "checkpoint",
-    "as_chunk_runner": "checkpoint",
     "StoreError": "errors",
     "StoreLockedError": "errors",
     "SchemaVersionError": "errors",

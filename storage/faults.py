@@ -17,7 +17,7 @@ count; written whole by a rename) and then wait there until the file is
 deleted.  A test waits for the file (an event, not a delay), looks at the
 process in that state (or kills it), then deletes the file to let it go on.
 
-Points (see storage/study.py, storage/checkpoint.py and jobs/sweep.py):
+Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   store-built             a new store is complete under its temporary name, not yet renamed
   chunk-partial-written   a chunk's partial is on disk, its ledger row is not
   chunk-recorded          a chunk's ledger row is on disk

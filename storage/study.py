@@ -11,7 +11,7 @@ next to its final path and renamed into place, so a store path either does not
 exist or holds a complete, locked store.
 
 What is written when is decided by :class:`~leadline.storage.policy.CheckpointPolicy`
-(see storage/checkpoint.py and docs/store.md).
+(see cluster/checkpointed.py and docs/store.md).
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ import numpy as np
 import zarr
 from zarr.codecs import ZstdCodec
 
-from leadline.kernels.iteration import sum_w_tolerance
+from leadline.kernels.exact import sum_w_tolerance
 
 from . import layout as L
 from .errors import NotAStudyError, SchemaVersionError, StoreError

@@ -3,7 +3,7 @@
 Sources:
 - Exact V_p: the path-sum iteration of Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022)
   (SK) and Basso, Gamarnik, Mei, Zhou, FOCS 2022, arXiv:2204.10306 (any mixture xi), as
-  implemented in leadline.kernels.iteration (itself checked against closed forms and a dense
+  implemented in leadline.kernels.exact (itself checked against closed forms and a dense
   reference in test_kernel.py).
 - SK p = 1 closed form V_1 = g sin(4b) exp(-2 g^2), maximum 1/sqrt(4e) at g = 1/2, b = pi/8:
   Farhi, Goldstone, Gutmann, Zhou (2022), Sec. 3.
@@ -25,7 +25,7 @@ import numpy as np
 import pytest
 
 from leadline.kernels.bath import evaluate_bath, fock_levels, principal_factor, run_bath
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import evaluate
 from leadline.kernels.mixture import parse_mixture
 
 MIXTURES = ["2:0.5", "3:1", "2:0.3,3:0.4,4:0.3", "1:0.2,5:0.8"]

@@ -43,14 +43,18 @@ from leadline.cluster import (
 )
 from leadline.cluster.batch import cluster_kwargs, make_batch_cluster, parse_batch_config
 from leadline.cluster.mapreduce import batch_chunks
-from leadline.cluster.settings import worth_a_cluster
+from leadline.cluster.settings import worth_a_cluster, SHIP_MIN_VISITS_ENV, worth_a_round_trip
 from leadline.cluster.workerenv import worker_report
-from leadline.kernels.chunks import PassInput, chunk_partial, prepare_low_side
-from leadline.kernels.contour import gamma_vector, initial_correlations
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import (
+    PassInput,
+    chunk_partial,
+    prepare_low_side,
+    gamma_vector,
+    initial_correlations,
+    evaluate,
+    plan_chunks,
+)
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.plan import plan_chunks
-from leadline.cluster.settings import SHIP_MIN_VISITS_ENV, worth_a_round_trip
 
 # the interpreter running the tests, whatever environment it lives in (no script paths assumed)
 DASK_SCHEDULER = [sys.executable, "-m", "distributed.cli.dask_scheduler"]

@@ -31,7 +31,7 @@ from leadline.kernels.extrapolate import (
     fit_polynomial,
     fit_power_law,
 )
-from leadline.kernels.ground_states import SHIPPED_GROUND_STATES, lookup_ground_state, union_bound
+from leadline.kernels.reference import SHIPPED_GROUND_STATES, lookup_ground_state, union_bound
 from leadline.kernels.mixture import parse_mixture
 
 DEPTHS = np.arange(1, 13)

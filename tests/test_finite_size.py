@@ -40,7 +40,7 @@ from leadline.kernels.finite_size import (
     subset_variances,
     walsh_hadamard,
 )
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import evaluate
 from leadline.kernels.mixture import parse_mixture
 
 LEADLINE = [sys.executable, "-m", "leadline"]  # the interpreter running the tests, from any environment

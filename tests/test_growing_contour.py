@@ -14,11 +14,19 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from leadline.kernels import chunks
-from leadline.kernels.chunks import PassInput, run_pass_inprocess
-from leadline.kernels.iteration import PassIntegrityError, evaluate, expand_correlations, sum_w_tolerance
+from leadline.kernels.exact import (
+    _chunks as chunks,
+    PassInput,
+    run_pass_inprocess,
+    PassIntegrityError,
+    evaluate,
+    expand_correlations,
+    sum_w_tolerance,
+    ChunkPlan,
+    evaluation_path_visits,
+    plan_chunks,
+)
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.plan import ChunkPlan, evaluation_path_visits, plan_chunks
 from leadline.kernels.sparse import SparseIntegrityError, evaluate_sparse
 
 MIXTURES = ["2:0.5", "3:1", "2:0.3,3:0.4,4:0.3", "1:0.2,5:0.8"]  # even, odd, mixed, with q = 1
@@ -67,7 +75,7 @@ def test_truncating_one_time_more_changes_the_value():
     # zero the step-m Gamma at |t| = m on the full contour: a different, wrong value
     p, n = 3, 7
     Gam = np.concatenate([g, [0.0], -g[::-1]])
-    from leadline.kernels.contour import initial_correlations
+    from leadline.kernels.exact import initial_correlations
 
     G = initial_correlations(p, b)
     for m in range(1, p + 1):
@@ -232,7 +240,7 @@ def _brute_half_spectrum(gamma, kind):
     the weight even (cos) or odd (sin)."""
     from scipy.linalg import hadamard
 
-    from leadline.kernels.contour import sign_patterns
+    from leadline.kernels.exact import sign_patterns
     from leadline.kernels.sparse import phase_vector
 
     m = len(gamma)
@@ -249,7 +257,7 @@ def _brute_half_spectrum(gamma, kind):
 
 @pytest.mark.parametrize("kind", ["cos", "sin"])
 def test_closed_form_phase_spectrum_equals_the_transform(kind):
-    from leadline.kernels.sparse import _PhaseSpectrum
+    from leadline.kernels.sparse._recursion import _PhaseSpectrum
 
     rng = np.random.default_rng(21 if kind == "cos" else 22)
     for m in range(1, 5):
@@ -266,7 +274,7 @@ def test_closed_form_spectrum_keeps_the_zero_entry_at_tiny_angles():
 
     import mpmath
 
-    from leadline.kernels.sparse import _PhaseSpectrum
+    from leadline.kernels.sparse._recursion import _PhaseSpectrum
 
     g = [1.3e-5, 2.1e-5, 0.7e-5]
     Gam = g + [0.0] + [-x for x in reversed(g)]
@@ -280,7 +288,7 @@ def test_closed_form_spectrum_keeps_the_zero_entry_at_tiny_angles():
 
 
 def test_site_product_adjoint_against_brute_force():
-    from leadline.kernels.sparse import _kron_env, _kron_pairs
+    from leadline.kernels.sparse._recursion import _kron_env, _kron_pairs
 
     rng = np.random.default_rng(23)
     for n in range(1, 7):
@@ -294,7 +302,7 @@ def test_site_product_adjoint_against_brute_force():
 @pytest.mark.parametrize("chunk_bits", [2, 5])
 def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits):
     # the row-by-row paths (several groups per step, several row tables per spectrum)
-    import leadline.kernels.sparse as sparse
+    import leadline.kernels.sparse._recursion as sparse
 
     monkeypatch.setattr(sparse, "CHUNK_BITS", chunk_bits)
     rng = np.random.default_rng(30 + chunk_bits)
@@ -311,7 +319,7 @@ def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits)
 
 def test_integer_degree_power_by_multiplication_equals_exp_log1p(monkeypatch):
     # (1 + z)^(D-1) by multiplication (small integer D) against exp((D-1) log1p(z))
-    import leadline.kernels.sparse as sparse
+    import leadline.kernels.sparse._recursion as sparse
 
     rng = np.random.default_rng(40)
     for q, D in [(2, 2), (3, 4), (4, 9)]:
@@ -335,7 +343,7 @@ def test_in_place_four_step_transform_equals_butterflies(monkeypatch, row_bits, 
     the radix-2 butterflies and, at small size, scipy.linalg.hadamard (Sylvester's construction)."""
     from scipy.linalg import hadamard
 
-    import leadline.kernels.sparse as sparse
+    import leadline.kernels.sparse._recursion as sparse
 
     monkeypatch.setattr(sparse, "ROW_BITS", row_bits)
     monkeypatch.setattr(sparse, "BLOCK_BITS", block_bits)

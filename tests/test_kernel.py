@@ -19,12 +19,19 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from leadline.kernels import chunks
-from leadline.kernels.chunks import PassInput, run_pass_inprocess
-from leadline.kernels.contour import initial_correlations, path_weights
-from leadline.kernels.iteration import PassIntegrityError, evaluate, sum_w_tolerance
+from leadline.kernels.exact import (
+    _chunks as chunks,
+    PassInput,
+    run_pass_inprocess,
+    initial_correlations,
+    path_weights,
+    PassIntegrityError,
+    evaluate,
+    sum_w_tolerance,
+    ChunkPlan,
+    plan_chunks,
+)
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
-from leadline.kernels.plan import ChunkPlan, plan_chunks
 
 from .dense_reference import dense_f, dense_value
 

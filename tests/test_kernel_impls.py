@@ -20,11 +20,18 @@ import math
 import numpy as np
 import pytest
 
-from leadline.kernels import chunks
-from leadline.kernels.chunks import CHUNK_KERNELS, IMPLEMENTATIONS, PassInput, chunk_partial, prepare_low_side
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import (
+    _chunks as chunks,
+    CHUNK_KERNELS,
+    IMPLEMENTATIONS,
+    PassInput,
+    chunk_partial,
+    prepare_low_side,
+    evaluate,
+    ChunkPlan,
+    plan_chunks,
+)
 from leadline.kernels.mixture import Mixture
-from leadline.kernels.plan import ChunkPlan, plan_chunks
 
 from .dense_reference import dense_f, dense_paths, dense_value
 
@@ -240,7 +247,7 @@ def test_wide_dynamic_range_agrees(impl):
 
 def test_product_cache_hit_equals_miss():
     """The adjoint pass gives the same partials whether the forward products are reused or not."""
-    from leadline.kernels import blocked
+    from leadline.kernels.exact import _blocked as blocked
 
     rng = np.random.default_rng(8)
     p = 4

@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.optimize import minimize
 
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import evaluate
 from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.optimize import (
     beta_period,
@@ -27,7 +27,7 @@ from leadline.kernels.optimize import (
     interpolate_angles,
     optimize_depth,
 )
-from leadline.kernels.plan import ChunkPlan
+from leadline.kernels.exact import ChunkPlan
 
 # Quantum 6, 759 (2022), Table 1 (SK model, i<j pairs, xi = x^2/2)
 SK_TABLE_1 = {

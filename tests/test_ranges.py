@@ -14,9 +14,15 @@ import mpmath
 import numpy as np
 import pytest
 
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import (
+    evaluate,
+    EXPONENT_LIMIT,
+    RangeError,
+    check_pass_range,
+    check_range,
+    exponent_bound,
+)
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.ranges import EXPONENT_LIMIT, RangeError, check_pass_range, check_range, exponent_bound
 from leadline.tests.dense_reference import dense_value
 from leadline.tests.precise_reference import precise_run
 
@@ -46,7 +52,7 @@ def test_in_range_values_agree_with_mpmath(spec, gamma, beta):
     check_range(mix, gamma)  # accepted
     ref = _precise(spec, gamma, beta)
     for impl in ("blocked", "rowwise"):
-        from leadline.kernels.chunks import IMPLEMENTATIONS
+        from leadline.kernels.exact import IMPLEMENTATIONS
 
         value = evaluate(mix, gamma, beta, run_pass=IMPLEMENTATIONS[impl]).value
         # absolute agreement at the rounding level of O(1) correlations ...

@@ -1,4 +1,4 @@
-"""Sparse hypertree recursion (kernels/sparse.py) against outside references.
+"""Sparse hypertree recursion (kernels/sparse/_recursion.py) against outside references.
 
 Sources of the checks:
 - Brute force: the QAOA circuit itself, simulated on the radius-p hypertree around one
@@ -16,7 +16,7 @@ Sources of the checks:
   PRA 103, 042612 (2021).
 - Universality: Basso, Gamarnik, Mei, Zhou, FOCS 2022 (arXiv:2204.10306): with
   g_t = 2 sqrt(q) gamma_t / sqrt(D), sqrt(D)(nu - 1/2) 2/sqrt(q) -> V_p of xi = x^q
-  (the dense side is leadline.kernels.iteration.evaluate, itself checked against
+  (the dense side is leadline.kernels.exact.evaluate, itself checked against
   closed forms in its own tests).
 - Gradient: central finite differences (common practice).
 """
@@ -33,7 +33,7 @@ import numpy as np
 import pytest
 from scipy.linalg import hadamard
 
-from leadline.kernels.iteration import evaluate as evaluate_dense
+from leadline.kernels.exact import evaluate as evaluate_dense
 from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.sparse import (
     SparseIntegrityError,

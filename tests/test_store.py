@@ -5,7 +5,7 @@ External references for the numbers checked here:
   Gutmann, Zhou, "The QAOA and the SK model at infinite size", Quantum 6, 759 (2022)).
 - Optimal V_p of the SK model, same paper, Table 1: 0.3033, 0.4075, 0.4726 for p = 1, 2, 3.
 Everything else checks the store against the in-process evaluator itself: a checkpointed
-pass must reproduce ``kernels.iteration.evaluate`` bit for bit.
+pass must reproduce ``kernels.exact.evaluate`` bit for bit.
 """
 
 from __future__ import annotations
@@ -22,13 +22,10 @@ import numpy as np
 import pytest
 import zarr
 
-from leadline.kernels.chunks import PassInput, chunk_partial, run_pass_inprocess
-from leadline.kernels.iteration import evaluate
+from leadline.kernels.exact import PassInput, chunk_partial, run_pass_inprocess, evaluate, ChunkPlan
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.plan import ChunkPlan
+from leadline.cluster import CheckpointedPasses, InProcessChunks
 from leadline.storage import (
-    CheckpointedPasses,
-    InProcessChunks,
     NotAStudyError,
     SchemaVersionError,
     StoreLock,
@@ -147,7 +144,7 @@ def test_sk_p1_value_through_store(tmp_path):
 
 
 def _forward_input(p=3):
-    from leadline.kernels.contour import gamma_vector, initial_correlations
+    from leadline.kernels.exact import gamma_vector, initial_correlations
 
     Gam = gamma_vector(G3)
     M = np.outer(Gam, Gam) * SK.dxi(initial_correlations(p, B3))

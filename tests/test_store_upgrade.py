@@ -20,8 +20,7 @@ import numpy as np
 import pytest
 import zarr
 
-from leadline.storage import open_study
-from leadline.storage import layout as L
+from leadline.storage import open_study, layout as L
 
 FLAT = {"name": "default", "separator": "."}
 
@@ -130,7 +129,7 @@ def test_schema1_store_reads_and_resumes_keeping_finished_depths(tmp_path, capsy
 
 def test_chunk_plan_json_with_and_without_flip_keys_passes_apart():
     """Plans written before the flip field existed read as flip = False; a flipped plan is another key."""
-    from leadline.kernels.chunks import PassInput
+    from leadline.kernels.exact import PassInput
 
     inp = PassInput(2, np.eye(5, dtype=complex), np.array([0.1, 0.2]))
 

@@ -37,7 +37,7 @@ import scipy.sparse as sp
 from scipy.sparse.linalg import expm_multiply
 
 from leadline.kernels.finite_size import sample_couplings
-from leadline.kernels.instance import (
+from leadline.kernels.finite_size import (
     Instance,
     InstanceError,
     empirical_mixture,
@@ -279,7 +279,7 @@ def test_transferred_sk_angles_reach_n_lambda_v_within_the_finite_size_spread():
 
 
 def sk_value_at_double_gamma() -> float:
-    from leadline.kernels.iteration import evaluate
+    from leadline.kernels.exact import evaluate
 
     return evaluate(SK, 2 * SK_P1[0], SK_P1[1]).value
 
@@ -469,7 +469,7 @@ def test_cli_shape_mismatch_says_so_and_still_predicts(tmp_path):
     xi = empirical_mixture(inst)
     scale = rescale_angles(xi, SK, [0.5])
     assert out["same_shape"] is False and out["shape_distance"] == pytest.approx(scale.distance)
-    from leadline.kernels.iteration import evaluate
+    from leadline.kernels.exact import evaluate
 
     # the prediction is V_p of the instance's own mixture at the rescaled angles
     assert out["predicted"] == pytest.approx(inst.n * evaluate(xi, scale.gamma, [math.pi / 8]).value, rel=1e-12)
@@ -575,7 +575,7 @@ def test_cli_sparse_angle_file_on_the_petersen_graph(tmp_path):
 
 def test_the_command_module_imports_no_heavy_library():
     code = (
-        "import sys, leadline.jobs.cmd_transfer, leadline.kernels.instance\n"
+        "import sys, leadline.jobs.cmd_transfer, leadline.kernels.finite_size\n"
         "print(sorted(m for m in ('dask', 'distributed', 'zarr', 'matplotlib', 'scipy.optimize') if m in sys.modules))"
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)

@@ -7,28 +7,35 @@ either a dense Fock-space array (small p, the reference) or a matrix product sta
 per-mode Fock cut-offs and a bond cap chi; the modes are the bath's principal modes
 (step-by-step form) or the causal Cholesky modes (one sweep).  :func:`evaluate_bath` runs two
 truncations and reports the larger one's value with |difference| as its error estimate.
+
+Modules (private): ``_dense``, ``_mps`` (the two states), ``_modes`` (bath modes and bases),
+``_engine`` (one run), ``_estimate`` (two runs and the error estimate).  May import: numpy,
+scipy.linalg and the contour layout of :mod:`leadline.kernels.exact`.  Names are imported on
+first use.
 """
 
-from .dense import DenseState
-from .engine import BASES, BathRun, bath_correlations, run_bath
-from .estimate import BathEvaluation, evaluate_bath, larger_truncation
-from .modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
-from .mps import MPSState
+from __future__ import annotations
 
-__all__ = [
-    "BASES",
-    "BathEvaluation",
-    "BathRun",
-    "DenseState",
-    "MPSState",
-    "bath_correlations",
-    "bath_matrix",
-    "cholesky_row",
-    "evaluate_bath",
-    "fock_levels",
-    "larger_truncation",
-    "layer_unitaries",
-    "mode_amplitudes",
-    "principal_factor",
-    "run_bath",
-]
+from leadline._lazy import lazy_names
+
+_WHERE = {
+    "DenseState": "_dense",
+    "BASES": "_engine",
+    "BathRun": "_engine",
+    "bath_correlations": "_engine",
+    "run_bath": "_engine",
+    "BathEvaluation": "_estimate",
+    "evaluate_bath": "_estimate",
+    "larger_truncation": "_estimate",
+    "bath_matrix": "_modes",
+    "cholesky_row": "_modes",
+    "fock_levels": "_modes",
+    "layer_unitaries": "_modes",
+    "mode_amplitudes": "_modes",
+    "principal_factor": "_modes",
+    "MPSState": "_mps",
+}
+
+__all__ = list(_WHERE)
+
+__getattr__, __dir__ = lazy_names(__name__, _WHERE)

@@ -28,8 +28,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .contour import link_derivative_table, link_table
-from .plan import ChunkPlan
+from ._blocked import chunk_partial_blocked
+from ._contour import link_derivative_table, link_table
+from ._patterns import chain_derivative_sums, chain_split, high_chain, high_rows, quadratic_split, split_low
+from ._plan import ChunkPlan
 
 __all__ = [
     "PassInput",
@@ -97,26 +99,6 @@ class LowSide:
 
 
 # --------------------------------------------------------------------------- helpers
-def _quadratic_over_patterns(A: np.ndarray) -> np.ndarray:
-    """q(x) = s(x)^T A s(x) over all 2^m patterns of m sites, O(2^m) after O(m^2).
-
-    Sites are added from the last to the first (the new site is the MSB):
-    q(a_k, rest) = q(rest) + A_kk + 2 a_k sum_{i>k} A_ki a_i.
-    """
-    A = np.asarray(A)
-    m = A.shape[0]
-    q = np.zeros(1, dtype=np.result_type(A.dtype, np.float64))
-    lin = [None] * m
-    for k in range(m - 1, -1, -1):
-        # linear form sum_{i>k} A_ki a_i over the patterns of sites k+1..m-1
-        lf = np.zeros(1, dtype=q.dtype)
-        for i in range(m - 1, k, -1):
-            lf = np.concatenate([lf + A[k, i], lf - A[k, i]])
-        lin[k] = lf
-        q = np.concatenate([q + A[k, k] + 2 * lf, q + A[k, k] - 2 * lf])
-    return q
-
-
 def _linear_rows(V: np.ndarray, out: np.ndarray, op: str) -> np.ndarray:
     """Fill ``out`` (c, 2^l) with the Kronecker structure of per-row 2-vectors.
 
@@ -177,59 +159,14 @@ def second_moments(u: np.ndarray) -> np.ndarray:
     return S
 
 
-def _chain_derivative_sums(u0: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
-    """D_t = sum_x u0(x) * (d/db_t prod_k L_k(x_k x_{k+1})) for the links inside a block.
-
-    ``links``/``dlinks`` have shape (m-1, 2) for a block of m sites.  Computed
-    with left environments (partial contractions of u0 with the first links)
-    and right chains, O(2^m) in total, never dividing by a link factor.
-    Returns shape (m-1,).
-    """
-    N = u0.shape[0]
-    m = N.bit_length() - 1
-    nl = m - 1
-    out = np.zeros(nl, dtype=complex)
-    if nl == 0:
-        return out
-    # right chains R_k over sites k..m-1 (pattern order, site k = MSB)
-    right = [None] * (m + 1)
-    r = np.ones(2, dtype=complex)
-    right[m - 1] = r
-    for k in range(m - 2, -1, -1):
-        n = r.size
-        half = n // 2
-        new = np.empty(2 * n, dtype=complex)
-        new[:half] = r[:half] * links[k, 0]
-        new[half:n] = r[half:] * links[k, 1]
-        new[n : n + half] = r[:half] * links[k, 1]
-        new[n + half :] = r[half:] * links[k, 0]
-        r = new
-        right[k] = r
-    env = u0.astype(complex)  # over sites t..m-1, leading sites summed with their links
-    for t in range(nl):
-        # env has shape (2^(m-t),): site t is the MSB, site t+1 the next bit
-        e = env.reshape(2, 2, -1)  # [a_t, a_{t+1}, rest]
-        # derivative of link t: x = a_t a_{t+1}; same (0) for (+,+),(-,-)
-        rr = right[t + 1].reshape(2, -1)  # [a_{t+1}, rest]
-        same = (e[0, 0] * rr[0]).sum() + (e[1, 1] * rr[1]).sum()
-        diff = (e[0, 1] * rr[1]).sum() + (e[1, 0] * rr[0]).sum()
-        out[t] = dlinks[t, 0] * same + dlinks[t, 1] * diff
-        # absorb site t with link t into the environment
-        env = (e[0] * np.array([links[t, 0], links[t, 1]])[:, None]
-               + e[1] * np.array([links[t, 1], links[t, 0]])[:, None]).reshape(-1)
-    return out
-
-
 # --------------------------------------------------------------------------- low side
 def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
     """Quantities of the low sites for one pass; O(2^l) memory and time (plus O(l^2)).
 
     The quadratic forms and the low chain are built as (2^l1, 2^l2) matrices
-    (kernels/blocked.py: the two halves of the low block plus one small matrix
+    (kernels/exact/_blocked.py: the two halves of the low block plus one small matrix
     product for their coupling); the vectors here are flat views of them.
     """
-    from .blocked import chain_split, quadratic_split, split_low
-
     p, h = inp.p, plan.n_high
     l1, l2 = split_low(plan.n_low)
     links = link_table(p, inp.beta)
@@ -247,24 +184,6 @@ def prepare_low_side(inp: PassInput, plan: ChunkPlan) -> LowSide:
 
 
 # --------------------------------------------------------------------------- chunk kernel
-def _high_rows(plan: ChunkPlan, chunk: int) -> np.ndarray:
-    start, stop = plan.rows(chunk)
-    h = plan.n_high
-    y = np.arange(start, stop, dtype=np.int64)[:, None]
-    bits = (y >> np.arange(h - 1, -1, -1, dtype=np.int64)[None, :]) & 1
-    return (1 - 2 * bits).astype(np.float64)
-
-
-def _high_chain(AH: np.ndarray, links: np.ndarray) -> np.ndarray:
-    """1/2 * prod of the links inside the high block, per row; (c,) complex."""
-    c, h = AH.shape
-    fh = np.full(c, 0.5, dtype=complex)
-    for t in range(h - 1):
-        same = AH[:, t] == AH[:, t + 1]
-        fh *= np.where(same, links[t, 0], links[t, 1])
-    return fh
-
-
 def _high_chain_derivatives(AH: np.ndarray, links: np.ndarray, dlinks: np.ndarray) -> np.ndarray:
     """(c, h-1): 1/2 * prod of high links with link t differentiated (no division)."""
     c, h = AH.shape
@@ -286,9 +205,9 @@ def _chunk_partial_rowwise(inp: PassInput, plan: ChunkPlan, chunk: int, low: Low
     work arrays stay bounded whatever plan it is given; block partials are summed
     in row order.
     """
-    from .plan import ROWWISE_BLOCK_ENTRIES
+    from ._plan import ROWWISE_BLOCK_ENTRIES
 
-    AH = _high_rows(plan, chunk)  # (c, h)
+    AH = high_rows(plan, chunk)  # (c, h)
     step = max(1, ROWWISE_BLOCK_ENTRIES // 2**plan.n_low)
     if AH.shape[0] <= step:
         return _rowwise_block(inp, plan, AH, low)
@@ -312,7 +231,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
     # so partial products cannot overflow where the full weight does not
     shift = np.abs(v.real)
     e_hh = -0.5 * np.einsum("yi,ij,yj->y", AH, M[:h, :h], AH) + shift.sum(axis=1)
-    row = _high_chain(AH, links) * np.exp(e_hh)  # (c,)
+    row = high_chain(AH, links) * np.exp(e_hh)  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0
     lb_plus = np.where(last > 0, links[h - 1, 0], links[h - 1, 1])  # aL_0 = +1
@@ -360,7 +279,7 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
         dlb_minus = np.where(last > 0, dlinks[h - 1, 1], dlinks[h - 1, 0])
         D[h - 1] = (row * (dlb_plus * z_plus + dlb_minus * z_minus)).sum()
         if l > 1:
-            D[h:] = _chain_derivative_sums(u0, links[h:], dlinks[h:])
+            D[h:] = chain_derivative_sums(u0, links[h:], dlinks[h:])
         out[n, : 2 * p] = D
 
     out[:h, :h] = AH.T @ (total[:, None] * AH)
@@ -372,8 +291,6 @@ def _rowwise_block(inp: PassInput, plan: ChunkPlan, AH: np.ndarray, low: LowSide
 
 
 def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: LowSide) -> np.ndarray:
-    from .blocked import chunk_partial_blocked
-
     return chunk_partial_blocked(inp, plan, chunk, low)
 
 
@@ -383,7 +300,7 @@ def _chunk_partial_blocked(inp: PassInput, plan: ChunkPlan, chunk: int, low: Low
 #: dense reference and against each other).
 CHUNK_KERNELS = {
     "rowwise": _chunk_partial_rowwise,  # elementwise numpy over a (rows, 2^l) array
-    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/blocked.py)
+    "blocked": _chunk_partial_blocked,  # three complex GEMMs per path visit (kernels/exact/_blocked.py)
 }
 #: used when no implementation is named; the environment variable overrides it
 DEFAULT_IMPLEMENTATION = "blocked"

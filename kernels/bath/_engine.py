@@ -31,10 +31,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..contour import check_angles
-from .dense import DenseState
-from .modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
-from .mps import MPSState
+from ..exact import check_angles
+from ._dense import DenseState
+from ._modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
+from ._mps import MPSState
 
 __all__ = ["BathRun", "bath_correlations", "run_bath", "BASES"]
 

@@ -26,7 +26,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from .mixture import Mixture
+from ..mixture import Mixture
 
 __all__ = ["ShippedValue", "GroundStateMatch", "SHIPPED_GROUND_STATES", "lookup_ground_state", "union_bound"]
 

@@ -45,10 +45,10 @@ from typing import Callable
 
 import numpy as np
 
-from .chunks import PassInput, run_pass_inprocess
-from .contour import check_angles, gamma_vector, initial_correlations, link_beta_index, time0_index
-from .mixture import Mixture
-from .plan import ChunkPlan, plan_chunks, step_plans
+from ._chunks import PassInput, run_pass_inprocess
+from ._contour import check_angles, gamma_vector, initial_correlations, link_beta_index, time0_index
+from ..mixture import Mixture
+from ._plan import ChunkPlan, plan_chunks, step_plans
 
 __all__ = [
     "PassIntegrityError",

@@ -26,13 +26,13 @@ Walsh-Hadamard transform of K, O(n 2^n).
 
 State convention: basis index x in [0, 2^n), bit j of x is qubit j, and a set
 bit means spin z_j = -1 (the same "set bit = -1" rule as
-:func:`leadline.kernels.contour.sign_patterns`).  The QAOA state is
+:func:`leadline.kernels.exact.sign_patterns`).  The QAOA state is
 
     |g, b> = prod_{t=1..p} exp(-i b_t B) exp(-i g_t H) |+>^n,  B = sum_j X_j,
 
 with t = 1 acting first, and the reported energy density is <g,b|H|g,b> / n,
 whose n -> infinity limit (averaged over instances) is V_p of
-:func:`leadline.kernels.iteration.evaluate` (Farhi, Goldstone, Gutmann, Zhou,
+:func:`leadline.kernels.exact.evaluate` (Farhi, Goldstone, Gutmann, Zhou,
 Quantum 6, 759 (2022); Basso, Gamarnik, Mei, Zhou, FOCS 2022).
 
 Pure numerics: the caller passes a seeded ``numpy.random.Generator``; there is
@@ -46,7 +46,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .mixture import Mixture
+from ..mixture import Mixture
 
 __all__ = [
     "MAX_SPINS",

@@ -39,26 +39,18 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import chunks as _chunks
+from ._contour import chain_weights, sign_patterns
+from ._patterns import chain_derivative_sums, high_chain, high_rows, split_low
 
 __all__ = [
     "chunk_partial_blocked",
-    "split_low",
     "second_moments_fast",
     "low_matrices",
-    "quadratic_split",
-    "chain_split",
     "ProductCache",
     "PRODUCTS",
     "COLUMNS",
     "tape_capacity_bytes",
 ]
-
-
-def split_low(n_low: int) -> tuple[int, int]:
-    """(l1, l2) with l1 + l2 = n_low, l1 >= 1, l1 >= l2 (near-square GEMMs)."""
-    l2 = n_low // 2
-    return n_low - l2, l2
 
 
 # --------------------------------------------------------------------------- pattern builders
@@ -118,56 +110,6 @@ def bit_sums_t(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return T[0], mom
 
 
-def quadratic_split(A: np.ndarray, l1: int) -> np.ndarray:
-    """q(x) = s(x)^T A s(x) for all patterns of m sites as a (2^l1, 2^(m-l1)) matrix.
-
-    A is (m, m) (symmetric or not: only A + A^T enters).  The sites split in the
-    x1 block (first l1) and the x2 block: q = q11(x1) + q22(x2) + 2 s1^T A12s s2,
-    the cross term one small matrix product.  Recursive on the blocks.
-    """
-    A = np.asarray(A)
-    m = A.shape[0]
-    dtype = np.result_type(A.dtype, np.float64)
-    if m <= 4 or l1 == 0 or l1 == m:
-        from .chunks import _quadratic_over_patterns
-
-        return _quadratic_over_patterns(A).astype(dtype).reshape(2**l1, 2 ** (m - l1))
-    from .contour import sign_patterns
-
-    l2 = m - l1
-    q11 = quadratic_split(A[:l1, :l1], (l1 + 1) // 2).reshape(-1)
-    q22 = quadratic_split(A[l1:, l1:], (l2 + 1) // 2).reshape(-1)
-    cross = (A[:l1, l1:] + A[l1:, :l1].T).astype(dtype)  # (l1, l2)
-    S1 = sign_patterns(l1)
-    S2 = sign_patterns(l2)
-    q = (S1 @ cross).astype(dtype) @ S2.T.astype(dtype)  # (2^l1, 2^l2)
-    q += q11[:, None]
-    q += q22[None, :]
-    return q
-
-
-def chain_split(links: np.ndarray, l1: int, l2: int) -> np.ndarray:
-    """Product of the links inside a block of l1 + l2 sites, as a (2^l1, 2^l2) matrix.
-
-    ``links`` (l1+l2-1, 2): rows of the link table inside the block.  The chain
-    factorizes as F1(x1) * L_mid(last x1 spin, first x2 spin) * F2(x2).
-    """
-    from .contour import chain_weights
-
-    F1 = chain_weights(links[: l1 - 1], l1)
-    if l2 == 0:
-        return F1.reshape(-1, 1).copy()
-    F2 = chain_weights(links[l1:], l2)
-    mid = links[l1 - 1]
-    # last x1 spin is the x1 LSB; first x2 spin is the x2 MSB; equal spins -> mid[0]
-    a = np.arange(2**l1) & 1
-    b = np.arange(2**l2) >> (l2 - 1)
-    Lm = np.where(a[:, None] == b[None, :], mid[0], mid[1])
-    out = F1[:, None] * F2[None, :]
-    out *= Lm
-    return out
-
-
 def second_moments_fast(u: np.ndarray) -> np.ndarray:
     """S[j,k] = sum_x u(x) s_j(x) s_k(x) over 2^l patterns, (l, l); about 4 * 2^l additions.
 
@@ -216,8 +158,6 @@ def low_matrices(inp, plan, low) -> dict:
     key = "blocked"
     if key in low.extra:
         return low.extra[key]
-    from .contour import sign_patterns
-
     l1, l2 = split_low(plan.n_low)
     shape = (2**l1, 2**l2)
     E = low.exp_ll.reshape(shape)
@@ -231,8 +171,6 @@ def low_matrices(inp, plan, low) -> dict:
         "S1": sign_patterns(l1),
         "S2": sign_patterns(l2).astype(complex),
     }
-    from .contour import chain_weights
-
     h = plan.n_high
     mats["F1"] = chain_weights(low.links[h : h + l1 - 1], l1)
     mats["F2"] = chain_weights(low.links[h + l1 :], l2) if l2 else np.ones(1, dtype=complex)
@@ -271,7 +209,7 @@ def _low_link_derivatives(V: np.ndarray, mats: dict, links: np.ndarray, dlinks: 
     """
     l1, l2 = mats["l1"], mats["l2"]
     if l2 == 0:
-        return _chunks._chain_derivative_sums(V.reshape(-1), links, dlinks)
+        return chain_derivative_sums(V.reshape(-1), links, dlinks)
     I, J = 2 ** (l1 - 1), 2 ** (l2 - 1)
     V4 = V.reshape(I, 2, 2, J)  # [x1 high bits, last x1 spin, first x2 spin, x2 low bits]
     F1r = mats["F1"].reshape(I, 2)
@@ -282,9 +220,9 @@ def _low_link_derivatives(V: np.ndarray, mats: dict, links: np.ndarray, dlinks: 
     Lm = np.array([[mid[0], mid[1]], [mid[1], mid[0]]])
     dLm = np.array([[dmid[0], dmid[1]], [dmid[1], dmid[0]]])
     D = np.empty(l1 + l2 - 1, dtype=complex)
-    D[: l1 - 1] = _chunks._chain_derivative_sums(np.einsum("iab,ab->ia", Y, Lm).reshape(-1), links[: l1 - 1], dlinks[: l1 - 1])
+    D[: l1 - 1] = chain_derivative_sums(np.einsum("iab,ab->ia", Y, Lm).reshape(-1), links[: l1 - 1], dlinks[: l1 - 1])
     D[l1 - 1] = np.einsum("ia,iab,ab->", F1r, Y, dLm)
-    D[l1:] = _chunks._chain_derivative_sums(np.einsum("abj,ab->bj", Z, Lm).reshape(-1), links[l1:], dlinks[l1:])
+    D[l1:] = chain_derivative_sums(np.einsum("abj,ab->bj", Z, Lm).reshape(-1), links[l1:], dlinks[l1:])
     return D
 
 
@@ -423,7 +361,7 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     B = mats["B"]
     half1 = 2 ** (l1 - 1)
 
-    AH = _chunks._high_rows(plan, chunk)  # (c, h)
+    AH = high_rows(plan, chunk)  # (c, h)
     c = AH.shape[0]
     v = -(AH @ M[:h, h:])  # (c, l) cross coefficients
     # exp(v_k s) = exp(|Re v_k|) exp(v_k s - |Re v_k|): every Kronecker factor has
@@ -432,7 +370,7 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
     shift = np.abs(v.real)
     e_hh = -0.5 * ((AH @ M[:h, :h]) * AH).sum(axis=1) + shift.sum(axis=1)
     exp_hh = np.exp(e_hh)
-    row = _chunks._high_chain(AH, links) * exp_hh  # (c,)
+    row = high_chain(AH, links) * exp_hh  # (c,)
     last = AH[:, h - 1]
     # boundary link between site h-1 and h: x = aH_last * aL_0; rows: aL_0 = +1, -1
     lbT = np.stack(

@@ -30,7 +30,7 @@ import math
 
 import numpy as np
 
-from .mixture import Mixture
+from ..mixture import Mixture
 
 __all__ = [
     "EXPONENT_LIMIT",

@@ -16,96 +16,33 @@ uninterrupted one, and never recomputes a finished chunk):
 * A pass long enough to keep a ledger has its finished chunks on disk with
   their partials, so only the missing chunks are computed.
 * The sum is always formed in chunk order 0, 1, 2, ... from the partials
-  (exactly as ``kernels.chunks.run_pass_inprocess`` does), so it is bit for
+  (exactly as ``kernels.exact.run_pass_inprocess`` does), so it is bit for
   bit the same however the chunks were scheduled or interrupted.
 
-Executors
----------
-A *chunk runner* computes the chunks of one pass that are not yet finished
-and reports each as it finishes::
-
-    runner.run_chunks(inp, plan, done, on_chunk)   # done: {k: partial}; on_chunk(k, partial) once per other k
-
-:class:`InProcessChunks` is the in-process one.  :func:`as_chunk_runner`
-adapts the executors of ``leadline.cluster`` (whose ``run_pass(inp, plan,
-done=..., on_chunk=...)`` is exactly this hook), anything with
-``run_chunks``, or a plain ``run_pass(inp, plan)`` callable (then passes are
-cached whole, without per-chunk checkpoints).
+This module is the one place where a store and an executor meet: the store
+(:class:`leadline.storage.DepthStore`) persists passes, ledgers and batches;
+the chunk runner (:mod:`leadline.cluster.runners`: in process, or any executor
+of this package) computes chunks; :class:`CheckpointedPasses` decides, pass by
+pass, what is read back, what is computed where, and what is written when
+(the policy of ``[checkpoint]``, :mod:`leadline.storage.policy`).
 """
 
 from __future__ import annotations
 
-import inspect
 import time
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
-from leadline.kernels.chunks import PassInput, chunk_partial, prepare_low_side
-from leadline.kernels.iteration import PassIntegrityError, sum_w_tolerance
-from leadline.kernels.plan import ChunkPlan
+from leadline.kernels.exact import ChunkPlan, PassInput, PassIntegrityError, sum_w_tolerance
+from leadline.storage import DepthStore
+from leadline.storage import layout as L
+from leadline.storage.faults import crash_point
+from leadline.storage.policy import DEFAULT_SECONDS_PER_PATH
 
-from . import layout as L
-from .faults import crash_point
-from .policy import DEFAULT_SECONDS_PER_PATH
-from .study import DepthStore
+from .runners import as_chunk_runner
 
-__all__ = ["CheckpointedPasses", "InProcessChunks", "as_chunk_runner", "CheckpointStats"]
-
-OnChunk = Callable[[int, np.ndarray], None]
-
-
-class InProcessChunks:
-    """Chunk runner in this process; the low side is prepared once per call."""
-
-    def run_chunks(self, inp: PassInput, plan: ChunkPlan, done, on_chunk: OnChunk) -> None:
-        todo = [k for k in range(plan.n_chunks) if k not in done]
-        if not todo:
-            return
-        low = prepare_low_side(inp, plan)
-        for k in todo:
-            on_chunk(k, chunk_partial(inp, plan, k, low))
-
-    def close(self) -> None:
-        pass
-
-
-class _DoneHook:
-    """Adapter for an executor whose run_pass takes ``done=`` and ``on_chunk=`` (leadline.cluster)."""
-
-    def __init__(self, executor):
-        self.executor = executor
-
-    def run_chunks(self, inp, plan, done, on_chunk):
-        self.executor.run_pass(inp, plan, done=dict(done), on_chunk=on_chunk)
-
-
-class _WholePass:
-    """Adapter for a plain run_pass(inp, plan): no per-chunk checkpoints."""
-
-    whole_pass_only = True
-
-    def __init__(self, run_pass):
-        self.run_pass = run_pass
-
-
-def as_chunk_runner(executor):
-    """Wrap ``executor`` (None = in process) into a chunk runner (see module docstring)."""
-    if executor is None:
-        return InProcessChunks()
-    if hasattr(executor, "run_chunks"):
-        return executor
-    run_pass = getattr(executor, "run_pass", executor)
-    try:
-        params = inspect.signature(run_pass).parameters
-    except (TypeError, ValueError):
-        params = {}
-    if "on_chunk" in params and "done" in params:
-        return _DoneHook(executor)
-    if callable(run_pass):
-        return _WholePass(run_pass)
-    raise TypeError(f"cannot use {executor!r} as a pass executor")
+__all__ = ["CheckpointedPasses", "CheckpointStats"]
 
 
 @dataclass

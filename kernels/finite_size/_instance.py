@@ -47,8 +47,8 @@ from typing import Callable
 
 import numpy as np
 
-from .finite_size import apply_phase, mix_qubit, walsh_hadamard
-from .mixture import Mixture
+from ._statevector import apply_phase, mix_qubit, walsh_hadamard
+from ..mixture import Mixture
 
 __all__ = [
     "FORMAT",
@@ -482,7 +482,7 @@ def sparse_prediction(structure: SparseStructure, n: int, constant: float, gamma
     gamma in instance units; the recursion's angle on the satisfied count is 2 |w| gamma.
     Exact for q = 2 when the girth exceeds 2p + 1 (every radius-p neighbourhood is a tree).
     """
-    from .sparse import evaluate_sparse
+    from ..sparse import evaluate_sparse
 
     g = 2.0 * structure.magnitude * np.asarray(gamma, dtype=float)
     ev = evaluate_sparse(structure.q, structure.degree, g, np.asarray(beta, dtype=float))

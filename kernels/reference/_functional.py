@@ -53,7 +53,7 @@ import numpy as np
 from scipy.optimize import brentq, minimize
 from scipy.special import log_ndtr, logsumexp
 
-from .mixture import Mixture, parse_mixture
+from ..mixture import Mixture, parse_mixture
 
 __all__ = [
     "Discretization",

@@ -15,7 +15,7 @@ and this module returns the satisfied fraction
 Method (Basso, Farhi, Marwaha, Villalonga, Zhou, TQC 2022, arXiv:2110.14206
 for MaxCut on large-girth regular graphs; Basso, Gamarnik, Mei, Zhou, FOCS
 2022, arXiv:2204.10306 for Max-q-XORSAT), in the contour layout of
-:mod:`leadline.kernels.contour` (N = 2^(2p+1) paths, f and Gamma as there):
+:mod:`leadline.kernels.exact` (N = 2^(2p+1) paths, f and Gamma as there):
 
     phase(c) = Gamma . c,   K(c) = cos(phase(c)/2),   S(c) = sin(phase(c)/2)
     H_0 = 1
@@ -79,7 +79,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .contour import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights
+from ..exact import check_angles, gamma_vector, link_beta_index, link_sign, n_sites, path_weights
 
 __all__ = [
     "SparseEvaluation",
@@ -349,7 +349,7 @@ def split_transform(
 def phase_vector(gamma) -> np.ndarray:
     """phase(c) = Gamma . c for all 2^(2p+1) paths, shape (N,), float; O(N) by doubling.
 
-    Pattern order as :func:`leadline.kernels.contour.sign_patterns` (first site = MSB,
+    Pattern order as :func:`leadline.kernels.exact.sign_patterns` (first site = MSB,
     set bit = spin -1).
     """
     Gam = gamma_vector(gamma)
@@ -947,7 +947,7 @@ def _chain_tables(m: int, beta, a: int):
     high sites 2..a+1 (index h) and the low sites (index l): fh is the chain up to the
     last high site, fl[s] the rest including the boundary link, for that site's bit s.
     """
-    from .contour import chain_weights, link_table
+    from ..exact import chain_weights, link_table
 
     links = link_table(m, beta)
     n = n_sites(m)
@@ -981,7 +981,7 @@ class _Split:
     """
 
     def __init__(self, m: int, beta, k: int, time0: bool):
-        from .contour import chain_weights, link_table, link_derivative_table
+        from ..exact import chain_weights, link_table, link_derivative_table
 
         self.m, self.k = m, k
         links = link_table(m, beta)
@@ -997,7 +997,7 @@ class _Split:
         self.M = self._matrix(self.mid_links)
 
     def _tensor(self, rows) -> np.ndarray:
-        from .contour import chain_weights
+        from ..exact import chain_weights
 
         C = chain_weights(rows, self.k + 2).reshape(2, 1 << self.k, 2)
         if self.time0:
@@ -1528,8 +1528,8 @@ def optimize_sparse(
     """
     from scipy.optimize import minimize
 
-    from .mixture import parse_mixture
-    from .optimize import canonical_angles, interpolate_angles
+    from ..mixture import parse_mixture
+    from ..optimize import canonical_angles, interpolate_angles
 
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)

@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from .engine import BathRun, run_bath
+from ._engine import BathRun, run_bath
 
 __all__ = ["BathEvaluation", "evaluate_bath", "larger_truncation"]
 
