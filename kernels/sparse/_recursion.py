@@ -964,8 +964,9 @@ def _chain_tables(m: int, beta, a: int):
 
 
 class _Split:
-    """The factors of f lift(H) on the depth-m contour around its middle (m >= 2), and the
-    matrix that turns the transform of the outer part into the transform of the whole.
+    """The factors of f lift(H) on the depth-m contour around its middle (steps m >= 3 with
+    k = 3 middle sites, the root at p >= 2 with k = 1), and the matrix that turns the
+    transform of the outer part into the transform of the whole.
 
     Index of the half vector: (l, j, h), l = sites 2..c-1 of the outer left part, j the
     ``k`` middle sites, h the outer right sites (c = m-1 in a step: j = time m, merged
@@ -976,8 +977,8 @@ class _Split:
         W(P C)[kl, kj, kh] = 1/4 sum_{al, be} Cc[al, kj, be] W(P)[kl ^ al, kh ^ be]
 
     (Cc: C transformed over all its bits; ^ flips the last bit of kl / first bit of kh),
-    i.e. the 2^k x 4 matrix ``M`` applied to the four quarter-blocks of W(P): one
-    transform of 2^(2m-k) points instead of 2^(2m).
+    i.e. the (4 2^k) x 4 matrix ``M`` (rows (last bit of kl, kj, first bit of kh)) applied
+    to the four quarter-blocks of W(P): one transform of 2^(2m-k) points instead of 2^(2m).
     """
 
     def __init__(self, m: int, beta, k: int, time0: bool):
@@ -1006,8 +1007,8 @@ class _Split:
 
     def _matrix(self, rows) -> np.ndarray:
         C = self._tensor(rows)
-        Hk = _sylvester(self.k)
-        H2 = _sylvester(1)
+        Hk = _hadamard_block(self.k, 1)
+        H2 = _hadamard_block(1, 1)
         Cc = np.einsum("sjt,kj,as,bt->akb", C, Hk, H2, H2)
         M = np.empty((2, 1 << self.k, 2, 2, 2), dtype=complex)
         for a_ in range(2):
@@ -1041,13 +1042,6 @@ class _Split:
         Bbar = 0.5 * (self.A @ R)
         _chain_beta_bar(Abar, self.A, self.m, 0, beta_bar)
         _chain_beta_bar(Bbar, self.B, self.m, self.c + self.k, beta_bar, fixed_first=False)
-
-
-def _sylvester(k: int) -> np.ndarray:
-    H = np.ones((1, 1))
-    for _ in range(k):
-        H = np.block([[H, H], [H, -H]])
-    return H
 
 
 def _row_groups(rows: int, row_bits: int):
