@@ -261,7 +261,7 @@ def test_closed_form_phase_spectrum_equals_the_transform(kind):
 
     rng = np.random.default_rng(21 if kind == "cos" else 22)
     for m in range(1, 5):
-        g = rng.uniform(-1.5, 1.5, m)
+        g = rng.uniform(-1.5, 1.5, m) * (1.0 if m % 2 else 4.0)  # |gamma| up to 6: some cos(gamma/2) < 0
         ref = _brute_half_spectrum(g, kind)
         for b in range(1, 2 * m + 1):  # every split into rows of 2^b points
             got = _PhaseSpectrum(g, kind, 1.0, b).full()
@@ -297,6 +297,22 @@ def test_site_product_adjoint_against_brute_force():
         T = rng.normal(size=2**n) + 1j * rng.normal(size=2**n)
         ref = [T @ _kron_pairs([dpairs[s] if s == t else pairs[s] for s in range(n)]) for t in range(n)]
         np.testing.assert_allclose(_kron_env(T, pairs, dpairs), ref, rtol=1e-12, atol=1e-12)
+
+
+def test_sparse_growing_at_large_angles_equals_full():
+    # |gamma| > pi: some cos(gamma/2) < 0 in the closed-form spectrum (integer D: at such
+    # angles a non-integer power of the message can cross the branch cut of the logarithm,
+    # where the two recursions need not pick the same branch)
+    rng = np.random.default_rng(60)
+    for q, D in [(2, 3), (3, 4), (4, 9)]:
+        for p in (1, 2, 4):
+            g = rng.uniform(-6.0, 6.0, p)
+            b = rng.uniform(-1.0, 1.0, p)
+            new = evaluate_sparse(q, D, g, b, gradient=True)
+            old = evaluate_sparse(q, D, g, b, gradient=True, contour="full")
+            assert abs(new.value - old.value) <= 1e-12, (q, D, p)
+            for k in ("gamma", "beta"):  # O(1) spectra here: the two sweeps' rounding differs by ~1e-12
+                np.testing.assert_allclose(new.gradient[k], old.gradient[k], rtol=0, atol=1e-11)
 
 
 @pytest.mark.parametrize("chunk_bits", [2, 5])

@@ -891,7 +891,12 @@ class _PhaseSpectrum:
         self.lo = np.stack([self.ulo * first[(r + self.pop) % 4] for r in range(4)])
         self.fix0 = None
         if kind == "cos":
-            self.fix0 = scale * float(1 << n) * math.expm1(float(np.sum(np.log1p(-2.0 * np.sin(0.5 * theta) ** 2))))
+            cos_t = np.cos(theta)
+            if np.all(cos_t > 0):  # every factor in (0, 1]: through logs, exact near 1
+                prod_m1 = math.expm1(float(np.sum(np.log1p(-2.0 * np.sin(0.5 * theta) ** 2))))
+            else:  # some |theta| >= pi/2: the product is far from 1, no cancellation to avoid
+                prod_m1 = float(np.prod(cos_t)) - 1.0
+            self.fix0 = scale * float(1 << n) * prod_m1
         self._Q = None
 
     def _first(self, u0) -> np.ndarray:
