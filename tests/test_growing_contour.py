@@ -231,3 +231,145 @@ def test_blocked_transform_equals_butterflies():
         np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * max(1.0, np.max(np.abs(ref))))
         if n <= 7:
             np.testing.assert_allclose(got, hadamard(2**n) @ x, rtol=0, atol=1e-12 * max(1.0, np.max(np.abs(ref))))
+
+
+# ----------------------------------------------------------------------------- sparse internals
+def _brute_half_spectrum(gamma, kind):
+    """W(cos(phase/2) - 1) or W(sin(phase/2)) of all 2^(2m+1) paths by scipy.linalg.hadamard
+    (Sylvester's construction), read at the half index: the wave vector whose first bit makes
+    the weight even (cos) or odd (sin)."""
+    from scipy.linalg import hadamard
+
+    from leadline.kernels.exact import sign_patterns
+    from leadline.kernels.sparse import phase_vector
+
+    m = len(gamma)
+    n = 2 * m + 1
+    phase = phase_vector(gamma)
+    F = np.cos(phase / 2) - 1 if kind == "cos" else np.sin(phase / 2)
+    spec = hadamard(2**n) @ F
+    half = np.arange(2 ** (n - 1))
+    weight = np.array([bin(k).count("1") for k in half])
+    first = weight % 2 if kind == "cos" else 1 - weight % 2
+    assert sign_patterns(1)[1, 0] == -1  # a set bit is spin -1, first site the most significant bit
+    return spec[(first << (n - 1)) + half]
+
+
+@pytest.mark.parametrize("kind", ["cos", "sin"])
+def test_closed_form_phase_spectrum_equals_the_transform(kind):
+    from leadline.kernels.sparse._recursion import _PhaseSpectrum
+
+    rng = np.random.default_rng(21 if kind == "cos" else 22)
+    for m in range(1, 5):
+        g = rng.uniform(-1.5, 1.5, m) * (1.0 if m % 2 else 4.0)  # |gamma| up to 6: some cos(gamma/2) < 0
+        ref = _brute_half_spectrum(g, kind)
+        for b in range(1, 2 * m + 1):  # every split into rows of 2^b points
+            got = _PhaseSpectrum(g, kind, 1.0, b).full()
+            np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * 2 ** (2 * m + 1))
+
+
+def test_closed_form_spectrum_keeps_the_zero_entry_at_tiny_angles():
+    # sum_c (cos(phase(c)/2) - 1) at angles ~1e-5 (the large-D regime): against 50-digit mpmath
+    import itertools
+
+    import mpmath
+
+    from leadline.kernels.sparse._recursion import _PhaseSpectrum
+
+    g = [1.3e-5, 2.1e-5, 0.7e-5]
+    Gam = g + [0.0] + [-x for x in reversed(g)]
+    with mpmath.workdps(50):
+        ref = mpmath.fsum(
+            mpmath.cos(mpmath.fsum(mpmath.mpf(G) * s for G, s in zip(Gam, c)) / 2) - 1
+            for c in itertools.product((1, -1), repeat=len(Gam))
+        )
+    got = _PhaseSpectrum(g, "cos", 1.0, 3).full()[0]
+    assert abs(got - float(ref)) <= 1e-14 * abs(float(ref))
+
+
+def test_site_product_adjoint_against_brute_force():
+    from leadline.kernels.sparse._recursion import _kron_env, _kron_pairs
+
+    rng = np.random.default_rng(23)
+    for n in range(1, 7):
+        pairs = [rng.normal(size=2) for _ in range(n)]
+        dpairs = [rng.normal(size=2) for _ in range(n)]
+        T = rng.normal(size=2**n) + 1j * rng.normal(size=2**n)
+        ref = [T @ _kron_pairs([dpairs[s] if s == t else pairs[s] for s in range(n)]) for t in range(n)]
+        np.testing.assert_allclose(_kron_env(T, pairs, dpairs), ref, rtol=1e-12, atol=1e-12)
+
+
+def test_sparse_growing_at_large_angles_equals_full():
+    # |gamma| > pi: some cos(gamma/2) < 0 in the closed-form spectrum (integer D: at such
+    # angles a non-integer power of the message can cross the branch cut of the logarithm,
+    # where the two recursions need not pick the same branch)
+    rng = np.random.default_rng(60)
+    for q, D in [(2, 3), (3, 4), (4, 9)]:
+        for p in (1, 2, 4):
+            g = rng.uniform(-6.0, 6.0, p)
+            b = rng.uniform(-1.0, 1.0, p)
+            new = evaluate_sparse(q, D, g, b, gradient=True)
+            old = evaluate_sparse(q, D, g, b, gradient=True, contour="full")
+            assert abs(new.value - old.value) <= 1e-12, (q, D, p)
+            for k in ("gamma", "beta"):  # O(1) spectra here: the two sweeps' rounding differs by ~1e-12
+                np.testing.assert_allclose(new.gradient[k], old.gradient[k], rtol=0, atol=1e-11)
+
+
+@pytest.mark.parametrize("chunk_bits", [2, 5])
+def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits):
+    # the row-by-row paths (several groups per step, several row tables per spectrum)
+    import leadline.kernels.sparse._recursion as sparse
+
+    monkeypatch.setattr(sparse, "CHUNK_BITS", chunk_bits)
+    rng = np.random.default_rng(30 + chunk_bits)
+    for q, D in [(2, 3), (3, 4), (5, 2.5)]:
+        for p in range(1, 7):
+            g = rng.uniform(-1.0, 1.0, p) / np.sqrt(D)
+            b = rng.uniform(-1.0, 1.0, p)
+            new = evaluate_sparse(q, D, g, b, gradient=True)
+            old = evaluate_sparse(q, D, g, b, gradient=True, contour="full")
+            assert abs(new.value - old.value) <= 1e-12, (q, D, p)
+            for k in ("gamma", "beta"):
+                np.testing.assert_allclose(new.gradient[k], old.gradient[k], rtol=0, atol=1e-12)
+
+
+def test_integer_degree_power_by_multiplication_equals_exp_log1p(monkeypatch):
+    # (1 + z)^(D-1) by multiplication (small integer D) against exp((D-1) log1p(z))
+    import leadline.kernels.sparse._recursion as sparse
+
+    rng = np.random.default_rng(40)
+    for q, D in [(2, 2), (3, 4), (4, 9)]:
+        for p in (3, 5):
+            g = rng.uniform(-1.0, 1.0, p) / np.sqrt(D)
+            b = rng.uniform(-1.0, 1.0, p)
+            assert sparse._int_power(D) == D - 1
+            mult = evaluate_sparse(q, D, g, b, gradient=True)
+            with monkeypatch.context() as mp:
+                mp.setattr(sparse, "INT_POWER_MAX", 0)
+                assert sparse._int_power(D) is None
+                logs = evaluate_sparse(q, D, g, b, gradient=True)
+            assert abs(mult.value - logs.value) <= 1e-14
+            for k in ("gamma", "beta"):
+                np.testing.assert_allclose(mult.gradient[k], logs.gradient[k], rtol=0, atol=1e-13)
+
+
+@pytest.mark.parametrize("row_bits,block_bits", [(16, 17), (2, 3), (3, 2), (1, 1)])
+def test_in_place_four_step_transform_equals_butterflies(monkeypatch, row_bits, block_bits):
+    """The in-place transform with small scratch (rows, then gathered column blocks) against
+    the radix-2 butterflies and, at small size, scipy.linalg.hadamard (Sylvester's construction)."""
+    from scipy.linalg import hadamard
+
+    import leadline.kernels.sparse._recursion as sparse
+
+    monkeypatch.setattr(sparse, "ROW_BITS", row_bits)
+    monkeypatch.setattr(sparse, "BLOCK_BITS", block_bits)
+    rng = np.random.default_rng(50 + row_bits)
+    for n in (0, 1, 2, 3, 5, 8, 11):
+        x = rng.normal(size=2**n) + 1j * rng.normal(size=2**n)
+        ref = sparse.wht(x.copy())
+        got = x.copy()
+        assert sparse.wht_inplace(got) is got
+        scale = max(1.0, np.max(np.abs(ref)))
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12 * scale)
+        if n <= 7:
+            np.testing.assert_allclose(got, hadamard(2**n) @ x, rtol=0, atol=1e-12 * scale)

@@ -45,13 +45,23 @@ forces a_{m+1} = a_{-(m+1)}, so step m is the same recursion on the contour of
 a depth-m problem (times 1..m, a merged middle site standing for +-(m+1),
 -m..-1; its chain is the depth-m f), and H_{m-1} is lifted to it unchanged
 (it does not depend on times +-m or the merged site).  The root uses the full
-depth-p contour.  The transforms of step m have 2^(2m+1) points, so one
-evaluation costs about (4/3 + root) full-size transforms' work instead of
-2p + 3 (``contour="full"`` keeps the old recursion as the baseline).
+depth-p contour.  With the global flip every vector is a half vector
+(2^(2m) points at step m).  Three more exact reductions (:func:`_evaluate_growing`):
+the spectra of cos(phase/2) - 1 and sin(phase/2) are products over the sites
+(closed form, no transform); the chain f factorizes around the three middle sites
+H_{m-1} does not see, so the first transform of step m runs on the 2^(2m-3) points
+of the outer part and a 32 x 4 matrix rebuilds the rest from its quarter-blocks;
+and H_m does not see its merged site, so only the half of message - 1 it needs is
+computed (a transform of 2^(2m-1) points after summing over that wave-vector
+bit).  The root is the same with time 0 in the middle.  One evaluation transforms
+about (4/3)(2^(2p-3) + 2^(2p-1)) + 2^(2p-1) points in all, against p (2 or 3)
+transforms of 2^(2p+1) points on the full contour (``contour="full"`` keeps that
+recursion as the baseline), and holds 1.25 x 2^(2p-1) complex numbers at most
+(transforms in place, :func:`wht_inplace`).
 
 Cost: O(4^p) time and memory for the value (O(p 4^p) on the full contour); the
-gradient (reverse mode through the transforms, step by step on the same
-contours) costs a small constant times one evaluation.
+gradient (reverse mode through the same reduced steps) costs a small constant
+times one evaluation.
 
 Splitting: the transform of a vector viewed as a (2^h, 2^l) array is the
 row transform (over the low bits) followed by the column transform (over the
@@ -181,6 +191,83 @@ def _hadamard_block(k: int, post: int) -> np.ndarray:
     return H
 
 
+def _hadamard_bits(src: np.ndarray, dst: np.ndarray, lo: int, hi: int) -> np.ndarray:
+    """Transform over the index bits lo..hi-1 of the complex vector ``src`` (1-D) by Hadamard
+    matrix products, ping-ponging between ``src`` and ``dst`` (same size); returns whichever
+    of the two holds the result."""
+    N = src.size
+    s = src.view(np.float64)
+    d = dst.view(np.float64)
+    done = lo
+    flips = 0
+    while done < hi:
+        k = min(WHT_GROUP_BITS, hi - done)
+        post = 2 << done  # (re, im) pairs of the bits below the group
+        pre = N >> (done + k)
+        if post * (1 << k) <= 128:  # low bits: one product with H kron I over each row
+            np.matmul(s.reshape(pre, post << k), _hadamard_block(k, post), out=d.reshape(pre, post << k))
+        else:
+            np.matmul(_hadamard_block(k, 1), s.reshape(pre, 1 << k, post), out=d.reshape(pre, 1 << k, post))
+        s, d = d, s
+        done += k
+        flips += 1
+    return dst if flips % 2 else src
+
+
+def _wht_blocked_pingpong(x: np.ndarray, scratch: np.ndarray) -> np.ndarray:
+    """Transform of the complex vector x over all its bits, ping-ponging between x and
+    ``scratch`` (same size); returns whichever of the two holds the result."""
+    N = x.size
+    n = N.bit_length() - 1
+    if N != 1 << n:
+        raise ValueError(f"transform length {N} is not a power of 2")
+    return _hadamard_bits(x, scratch, 0, n)
+
+
+#: :func:`wht_inplace`: rows of 2^ROW_BITS points for the low bits, blocks of about
+#: 2^BLOCK_BITS points for the high bits (measured at 2^25 points, one core: 0.76 s
+#: against 0.99 s for the whole-vector ping-pong; 14/16 and 16/18 in between, 12/15 slower)
+ROW_BITS, BLOCK_BITS = 16, 17
+
+
+def wht_inplace(x: np.ndarray, scratch: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+    """Same transform as :func:`wht` in place on a 1-D complex vector, with two small scratch
+    buffers instead of a full-size one (four-step order, like a four-step FFT).
+
+    The vector is a (2^h, 2^l) array, l = ``ROW_BITS``: the low bits are transformed
+    a row at a time (contiguous, in cache), then the high bits a block of columns at a time
+    (gathered into the scratch, transformed there by :func:`_hadamard_bits`, written back).
+    ``scratch``: two complex buffers of >= max(2^ROW_BITS, 2^BLOCK_BITS, 2^h) points.
+    """
+    N = x.size
+    n = N.bit_length() - 1
+    if N != 1 << n:
+        raise ValueError(f"transform length {N} is not a power of 2")
+    lbits = min(n, ROW_BITS)
+    h = n - lbits
+    need = max(1 << lbits, 1 << min(n, BLOCK_BITS), 1 << h)
+    if scratch is None or min(s.size for s in scratch) < need:
+        scratch = (np.empty(need, dtype=complex), np.empty(need, dtype=complex))
+    s1, s2 = scratch
+    B = 1 << lbits
+    for r0 in range(0, N, B):
+        row = x[r0 : r0 + B]
+        out = _hadamard_bits(row, s1[:B], 0, lbits)
+        if out is not row:
+            row[...] = out
+    if h == 0:
+        return x
+    X2 = x.reshape(1 << h, B)
+    wbits = min(lbits, max(0, BLOCK_BITS - h))
+    w = 1 << wbits
+    for j0 in range(0, B, w):
+        blk = s1[: w << h]
+        blk.reshape(1 << h, w)[...] = X2[:, j0 : j0 + w]
+        out = _hadamard_bits(blk, s2[: blk.size], wbits, wbits + h)
+        X2[:, j0 : j0 + w] = out.reshape(1 << h, w)
+    return x
+
+
 def wht_blocked(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
     """Same transform as :func:`wht` (in place on a 1-D complex vector), by matrix products.
 
@@ -192,26 +279,10 @@ def wht_blocked(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
     """
     if x.ndim != 1 or x.dtype != np.complex128:
         return wht(x)
-    N = x.size
-    n = N.bit_length() - 1
-    if N != 1 << n:
-        raise ValueError(f"transform length {N} is not a power of 2")
-    src = x.view(np.float64)
-    dst = scratch.view(np.float64)[: src.size] if scratch is not None and scratch.size >= N else np.empty_like(src)
-    done = 0
-    while done < n:
-        k = min(WHT_GROUP_BITS, n - done)
-        post = 2 << done  # (re, im) pairs of the bits already transformed
-        pre = N >> (done + k)
-        if post * (1 << k) <= 128:  # low bits: one product with H kron I over each row
-            np.matmul(src.reshape(pre, post << k), _hadamard_block(k, post), out=dst.reshape(pre, post << k))
-        else:
-            np.matmul(_hadamard_block(k, 1), src.reshape(pre, 1 << k, post), out=dst.reshape(pre, 1 << k, post))
-        src, dst = dst, src
-        done += k
-    out = x.view(np.float64)
-    if src.ctypes.data != out.ctypes.data:
-        out[:] = src
+    s = scratch[: x.size] if scratch is not None and scratch.size >= x.size and scratch.dtype == x.dtype else np.empty_like(x)
+    out = _wht_blocked_pingpong(x, s)
+    if out is not x:
+        x[:] = out
     return x
 
 
@@ -458,9 +529,9 @@ def evaluate_sparse(
     memory_budget_bytes : with ``gradient`` and ``contour="full"``, bound on the per-step
         vectors kept for the reverse sweep; steps between checkpoints are recomputed
         (default: keep all).  The growing contour keeps all steps: together they hold
-        about 4/3 of one full-size vector.
-    contour : "growing" (default: step m on the depth-m contour, transforms of
-        2^(2m+1) points) or "full" (every step on all 2^(2p+1) paths; the baseline)
+        about 0.42 x 2^(2p+1) complex numbers.
+    contour : "growing" (default: step m on the depth-m contour, transforms of at
+        most 2^(2m-1) points) or "full" (every step on all 2^(2p+1) paths; the baseline)
     """
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)
@@ -665,15 +736,20 @@ SPLIT_MIN_POINTS = 1 << 20
 
 
 class _Transformers:
-    """A :class:`_Transformer` per vector length (the growing contour's sizes); one call count."""
+    """A :class:`_Transformer` per vector length (the growing contour's sizes); one call count.
+
+    :meth:`inplace` is the in-process transform of the growing contour: in place, with
+    small scratch buffers (no full-size scratch).
+    """
 
     def __init__(self, run_map: RunMap | None, n_high: int | None):
         self.run_map = run_map
         self.n_high = n_high
         self._by_size: dict[int, _Transformer] = {}
+        self._scratch: tuple[np.ndarray, np.ndarray] | None = None
+        self._inplace_calls = 0
 
-    def __call__(self, x: np.ndarray) -> np.ndarray:
-        N = x.size
+    def _get(self, N: int) -> "_Transformer":
         T = self._by_size.get(N)
         if T is None:
             n = N.bit_length() - 1
@@ -682,66 +758,33 @@ class _Transformers:
             run_map = self.run_map if wanted else None
             high = self.n_high if self.n_high is not None and self.n_high <= n else None
             T = self._by_size[N] = _Transformer(N, run_map, high, blocked=True)
-        return T(x)
+        return T
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        return self._get(x.size)(x)
+
+    def inplace(self, x: np.ndarray) -> np.ndarray:
+        """Transform of the complex vector x in place (in-process: :func:`wht_inplace` with
+        two small scratch buffers shared by all lengths); returns x."""
+        T = self._get(x.size)
+        if T.run_map is not None or x.dtype != np.complex128 or x.ndim != 1:
+            return T(x)
+        self._inplace_calls += 1
+        n = x.size.bit_length() - 1
+        need = max(1 << min(n, ROW_BITS), 1 << min(n, BLOCK_BITS), 1 << max(n - ROW_BITS, 0))
+        if self._scratch is None or self._scratch[0].size < need:
+            self._scratch = (np.empty(need, dtype=complex), np.empty(need, dtype=complex))
+        return wht_inplace(x, self._scratch)
 
     @property
     def count(self) -> int:
-        return sum(T.count for T in self._by_size.values())
-
-
-def _lift(H: np.ndarray | None, m: int) -> np.ndarray | float:
-    """H_{m-1} on the depth-(m-1) contour read on the depth-m contour (half vectors).
-
-    H_{m-1} does not depend on its merged middle site, nor (on the new contour)
-    on times +-m or the new merged site: those three new sites replace the old
-    middle one (its +1 half is read).  Both vectors are the halves with the
-    first site +1 (see :func:`_evaluate_growing`).  H_0 = 1.
-    """
-    if H is None:
-        return 1.0
-    lo, hi = 1 << (m - 2), 1 << (m - 1)
-    A = H.reshape(lo, 2, hi)[:, 0, :]
-    return np.broadcast_to(A[:, None, :], (lo, 8, hi)).reshape(-1)
-
-
-def _lift_adjoint(Hbar: np.ndarray, m: int) -> np.ndarray:
-    """Adjoint of :func:`_lift`: (2^(2m),) -> (2^(2m-2),), summing the replicated sites."""
-    lo, hi = 1 << (m - 2), 1 << (m - 1)
-    out = np.zeros((lo, 2, hi), dtype=Hbar.dtype)
-    out[:, 0, :] = Hbar.reshape(lo, 8, hi).sum(axis=1)
-    return out.reshape(-1)
+        return sum(T.count for T in self._by_size.values()) + self._inplace_calls
 
 
 def _half_chain(m: int, beta) -> np.ndarray:
     """f(a) of the depth-m contour for the paths with a_1 = +1, shape (2^(2m),) complex."""
-    from ..exact import chain_weights, link_table
-
-    links = link_table(m, beta)
-    n = n_sites(m)
-    rest = chain_weights(links[1:], n - 1)  # sites 2..n, site 2 the MSB
-    half = rest.size // 2
-    out = np.empty_like(rest)
-    out[:half] = rest[:half] * (0.5 * links[0, 0])  # a_2 = +1 = a_1
-    out[half:] = rest[half:] * (0.5 * links[0, 1])
-    return out
-
-
-def _half_phase(gamma) -> np.ndarray:
-    """Gamma . c for the paths with c_1 = +1, shape (2^(2m),) float."""
-    Gam = gamma_vector(gamma)
-    out = np.array([Gam[-1], -Gam[-1]])
-    for k in range(Gam.size - 2, 0, -1):
-        out = np.concatenate([out + Gam[k], out - Gam[k]])
-    out += Gam[0]
-    return out
-
-
-def _site_sums_half(vec: np.ndarray, n: int) -> np.ndarray:
-    """sum_c vec(c) c_t over the half with c_1 = +1 (site 0 of the index is site 1)."""
-    out = np.empty(n, dtype=vec.dtype)
-    out[0] = vec.sum()
-    out[1:] = _site_sums(vec, n - 1)
-    return out
+    fh, fl = _chain_tables(m, beta, 0)
+    return fl[0] * fh[0]
 
 
 def _flip_time0_half(vec: np.ndarray, p: int) -> None:
@@ -749,17 +792,401 @@ def _flip_time0_half(vec: np.ndarray, p: int) -> None:
     vec.reshape(1 << (p - 1), 2, 1 << p)[:, 1, :] *= -1
 
 
-def _beta_bar_from_f(fbar, f, m, beta_bar):
-    """beta_bar += d/db of sum fbar * f over the links of the depth-m contour (half vectors).
+def _chain_beta_bar(cbar, chain, m, first_link, beta_bar, fixed_first=True):
+    """beta_bar += d/db of sum cbar * chain, for a chain vector over consecutive contour sites.
 
-    d f / d b_t (a) = sigma_t i f(a with the spins after link t flipped); flipping
-    them keeps the first site, so it stays inside the half.  No division.
+    ``chain`` holds the product of the links ``first_link ..`` over its sites (site
+    order MSB first); with ``fixed_first`` its first site is fixed (+1, not in the
+    index: one link per index bit), else every site is in the index.  d L_t(d) / db = sigma_t i L_t(1 - d), i.e. the chain with every spin
+    after link t flipped (a block reversal of the index); no division.
     """
+    nlinks = chain.size.bit_length() - 1 - (0 if fixed_first else 1)
+    for u in range(nlinks):
+        t = first_link + u
+        block = 1 << (nlinks - u)
+        flipped = chain.reshape(-1, block)[:, ::-1]
+        beta_bar[link_beta_index(m, t)] += link_sign(m, t) * 1j * np.sum(cbar.reshape(-1, block) * flipped)
+
+
+#: elementwise work on the growing contour runs over chunks of about 2^CHUNK_BITS points
+#: (1 MiB of complex numbers): the temporaries stay in cache and none of them is full-size
+CHUNK_BITS = 16
+
+
+def _kron_pairs(pairs, dtype=float) -> np.ndarray:
+    """Kronecker product of 2-vectors (first pair = most significant bit), shape (2^len,)."""
+    out = np.ones(1, dtype=dtype)
+    for pr in pairs:
+        out = np.multiply.outer(out, np.asarray(pr, dtype=dtype)).reshape(-1)
+    return out
+
+
+def _popcounts(nbits: int) -> np.ndarray:
+    """popcount(i) for i in 0..2^nbits-1, int64."""
+    out = np.zeros(1, dtype=np.int64)
+    for _ in range(nbits):
+        out = np.add.outer(out, np.array([0, 1], dtype=np.int64)).reshape(-1)
+    return out
+
+
+def _kron_env(T: np.ndarray, pairs, dpairs) -> np.ndarray:
+    """e[s] = sum_k T[k] prod_{s' != s} pairs[s'][k_s'] * dpairs[s][k_s] for every site s.
+
+    T has 2^len(pairs) entries (first pair = most significant bit).  Divide and
+    conquer: contracting one half of the sites with its Kronecker factor leaves a
+    vector over the other half; two passes over T, then vectors of sqrt size.
+    """
+    n = len(pairs)
+    if n == 0:
+        return np.zeros(0, dtype=T.dtype)
+    if n == 1:
+        return np.array([T @ np.asarray(dpairs[0])])
+    a = n // 2
+    T2 = T.reshape(1 << a, 1 << (n - a))
+    hi = _kron_pairs(pairs[:a])
+    lo = _kron_pairs(pairs[a:])
+    return np.concatenate([_kron_env(T2 @ lo, pairs[:a], dpairs[:a]), _kron_env(hi @ T2, pairs[a:], dpairs[a:])])
+
+
+class _PhaseSpectrum:
+    """Closed-form spectrum of cos(phase/2) - 1 (``kind="cos"``) or sin(phase/2) (``"sin"``)
+    on the half index of a depth-m contour, times ``scale``, generated in rows.
+
+    phase(c) = sum_s Gamma_s c_s, so E(c) = exp(i phase(c)/2) is a product over the sites and
+    its full transform is the product of the one-site transforms: W(E)[k] = prod_s w_s(k_s),
+    w_s(0) = 2 cos(theta_s), w_s(1) = 2i sin(theta_s), theta_s = Gamma_s/2.  cos and sin of
+    phase/2 are the even and odd parts of E: W(cos)[k] = W(E)[k] on even |k|, W(sin)[k] =
+    W(E)[k]/i on odd |k|.  The half index k' (sites 2..n) stands for the wave vector whose
+    first bit makes the weight even (cos) or odd (sin) -- the spectra the flipped recursion
+    uses -- so with j = |k'| and u_s = (2 cos theta_s, 2 sin theta_s):
+
+        W(cos)[k'] = sK(j mod 4) u_1(j mod 2)     prod_{s>=2} u_s(k'_s),  sK = (+1, -1, -1, +1)
+        W(sin)[k'] = sS(j mod 4) u_1(1 - j mod 2) prod_{s>=2} u_s(k'_s),  sS = (+1, +1, -1, -1)
+
+    Real, exact to rounding in relative terms, and no transform is needed.  The one entry
+    where cos - 1 differs, k' = 0, is N (prod_s cos theta_s - 1), taken as
+    N expm1(sum_s log1p(-2 sin^2(theta_s/2))) so that it keeps its relative precision when
+    every angle is small (large D).  Row h (the high index, 2^b points) is
+    ``hi[h] * lo[res[h]]``: the product over the high sites times one of four tables over
+    the low sites, chosen by the high sites' weight mod 4.  :meth:`accumulate` and
+    :meth:`theta_bar` give the adjoint: d/d theta_s of sum(bar * spectrum).
+    """
+
+    _CASES = {"cos": ((1.0, 0), (-1.0, 1), (-1.0, 0), (1.0, 1)), "sin": ((1.0, 1), (1.0, 0), (-1.0, 1), (-1.0, 0))}
+
+    def __init__(self, gamma, kind: str, scale: float, b: int):
+        theta = 0.5 * gamma_vector(gamma)
+        n = theta.size
+        self.b = b = min(b, n - 1)
+        self.a = a = n - 1 - b
+        self.kind = kind
+        self.scale = scale
+        self.u = np.stack([2.0 * np.cos(theta), 2.0 * np.sin(theta)], axis=1)
+        self.du = np.stack([-2.0 * np.sin(theta), 2.0 * np.cos(theta)], axis=1)
+        self.hi = _kron_pairs(self.u[1 : a + 1]) * scale
+        self.res = _popcounts(a) % 4
+        self.ulo = _kron_pairs(self.u[a + 1 :])
+        self.pop = _popcounts(b) % 4
+        first = self._first(self.u[0])
+        self.lo = np.stack([self.ulo * first[(r + self.pop) % 4] for r in range(4)])
+        self.fix0 = None
+        if kind == "cos":
+            cos_t = np.cos(theta)
+            if np.all(cos_t > 0):  # every factor in (0, 1]: through logs, exact near 1
+                prod_m1 = math.expm1(float(np.sum(np.log1p(-2.0 * np.sin(0.5 * theta) ** 2))))
+            else:  # some |theta| >= pi/2: the product is far from 1, no cancellation to avoid
+                prod_m1 = float(np.prod(cos_t)) - 1.0
+            self.fix0 = scale * float(1 << n) * prod_m1
+        self._Q = None
+
+    def _first(self, u0) -> np.ndarray:
+        return np.array([sign * u0[which] for sign, which in self._CASES[self.kind]])
+
+    def rows(self, h0: int, G: int, out: np.ndarray) -> np.ndarray:
+        """Rows h0 .. h0+G-1 into ``out`` (>= G 2^b floats); returns the (G, 2^b) view."""
+        out = out[: G << self.b].reshape(G, 1 << self.b)
+        np.multiply(self.lo[self.res[h0 : h0 + G]], self.hi[h0 : h0 + G, None], out=out)
+        if h0 == 0 and self.fix0 is not None:
+            out[0, 0] = self.fix0
+        return out
+
+    def full(self) -> np.ndarray:
+        return self.rows(0, 1 << self.a, np.empty(1 << (self.a + self.b))).reshape(-1).copy()
+
+    def accumulate(self, h0: int, bar: np.ndarray) -> None:
+        """Add rows h0.. of an adjoint (G, 2^b) complex array to the gradient sums."""
+        if self._Q is None:
+            self._Q = np.zeros(1 << self.a, dtype=complex)
+            self._R = np.zeros((4, 1 << self.b), dtype=complex)
+        G = bar.shape[0]
+        res = self.res[h0 : h0 + G]
+        for r in range(4):
+            sel = np.nonzero(res == r)[0]
+            if sel.size == 0:
+                continue
+            rows = bar[sel]
+            self._Q[h0 + sel] = rows @ self.lo[r]
+            self._R[r] += self.hi[h0 + sel] @ rows
+
+    def theta_bar(self) -> np.ndarray:
+        """d/d theta_s of sum(bar * spectrum) over all accumulated rows, shape (n,) complex."""
+        n = self.a + self.b + 1
+        out = np.zeros(n, dtype=complex)
+        if self._Q is None:
+            return out
+        out[1 : self.a + 1] = self.scale * _kron_env(self._Q, list(self.u[1 : self.a + 1]), list(self.du[1 : self.a + 1]))
+        first, dfirst = self._first(self.u[0]), self._first(self.du[0])
+        Y = np.zeros(1 << self.b, dtype=complex)
+        for r in range(4):
+            idx = (r + self.pop) % 4
+            Y += self._R[r] * first[idx]
+            out[0] += np.dot(self._R[r] * self.ulo, dfirst[idx])
+        out[self.a + 1 :] = _kron_env(Y, list(self.u[self.a + 1 :]), list(self.du[self.a + 1 :]))
+        return out
+
+
+def _chain_tables(m: int, beta, a: int):
+    """f on the half vector of the depth-m contour (first site +1) as f[h 2^b + l] = fh[h] fl[h & 1, l].
+
+    The chain f(a) = 1/2 prod_t L_t(a_t a_{t+1}) splits at the boundary between the
+    high sites 2..a+1 (index h) and the low sites (index l): fh is the chain up to the
+    last high site, fl[s] the rest including the boundary link, for that site's bit s.
+    """
+    from ..exact import chain_weights, link_table
+
+    links = link_table(m, beta)
     n = n_sites(m)
-    for t in range(2 * m):
-        block = 1 << (n - 1 - t)
-        flipped = f.reshape(-1, block)[:, ::-1]
-        beta_bar[link_beta_index(m, t)] += link_sign(m, t) * 1j * np.sum(fbar.reshape(-1, block) * flipped)
+    b = n - 1 - a
+    fh = 0.5 * chain_weights(links[:a], a + 1)[: 1 << a]
+    rest = chain_weights(links[a + 1 :], b)
+    half = rest.size // 2
+    fl = np.empty((2, rest.size), dtype=complex)
+    fl[0, :half] = rest[:half] * links[a, 0]
+    fl[0, half:] = rest[half:] * links[a, 1]
+    fl[1, :half] = rest[:half] * links[a, 1]
+    fl[1, half:] = rest[half:] * links[a, 0]
+    return fh, fl
+
+
+class _Split:
+    """The factors of f lift(H) on the depth-m contour around its middle (steps m >= 3 with
+    k = 3 middle sites, the root at p >= 2 with k = 1), and the matrix that turns the
+    transform of the outer part into the transform of the whole.
+
+    Index of the half vector: (l, j, h), l = sites 2..c-1 of the outer left part, j the
+    ``k`` middle sites, h the outer right sites (c = m-1 in a step: j = time m, merged
+    site, time -m, the sites H_{m-1} does not depend on; c = m at the root: j = time 0).
+    f = 1/2 A[l] C[s(l), j, t(h)] B[h] with s the last bit of l and t the first of h.  If
+    the rest of the summand is P(l, h) (A B H, no j), its transform is
+
+        W(P C)[kl, kj, kh] = 1/4 sum_{al, be} Cc[al, kj, be] W(P)[kl ^ al, kh ^ be]
+
+    (Cc: C transformed over all its bits; ^ flips the last bit of kl / first bit of kh),
+    i.e. the (4 2^k) x 4 matrix ``M`` (rows (last bit of kl, kj, first bit of kh)) applied
+    to the four quarter-blocks of W(P): one transform of 2^(2m-k) points instead of 2^(2m).
+    """
+
+    def __init__(self, m: int, beta, k: int, time0: bool):
+        from ..exact import chain_weights, link_table, link_derivative_table
+
+        self.m, self.k = m, k
+        links = link_table(m, beta)
+        self.dlinks = link_derivative_table(m, beta)
+        c = m - 1 if k == 3 else m  # first middle site
+        self.c = c
+        self.nl, self.nr = c - 1, 2 * m - c - k + 1  # bits of l and h
+        self.A = chain_weights(links[: c - 1], c)[: 1 << (c - 1)]
+        self.B = chain_weights(links[c + k :], self.nr)
+        self.first_mid_link = c - 1
+        self.mid_links = links[c - 1 : c + k].copy()
+        self.time0 = time0
+        self.M = self._matrix(self.mid_links)
+
+    def _tensor(self, rows) -> np.ndarray:
+        from ..exact import chain_weights
+
+        C = chain_weights(rows, self.k + 2).reshape(2, 1 << self.k, 2)
+        if self.time0:
+            C = C * np.array([1.0, -1.0])[None, :, None]
+        return C
+
+    def _matrix(self, rows) -> np.ndarray:
+        C = self._tensor(rows)
+        Hk = _hadamard_block(self.k, 1)
+        H2 = _hadamard_block(1, 1)
+        Cc = np.einsum("sjt,kj,as,bt->akb", C, Hk, H2, H2)
+        M = np.empty((2, 1 << self.k, 2, 2, 2), dtype=complex)
+        for a_ in range(2):
+            for b_ in range(2):
+                for c_ in range(2):
+                    for d_ in range(2):
+                        M[a_, :, b_, c_, d_] = 0.25 * Cc[a_ ^ c_, :, b_ ^ d_]
+        return M.reshape(4 << self.k, 4)
+
+    def matrix_beta_bar(self, Mbar: np.ndarray, beta_bar: np.ndarray) -> None:
+        """beta_bar += d/db of sum(Mbar * M) through the middle links."""
+        for i in range(self.k + 1):
+            rows = self.mid_links.copy()
+            rows[i] = self.dlinks[self.first_mid_link + i]
+            t = self.first_mid_link + i
+            beta_bar[link_beta_index(self.m, t)] += np.sum(Mbar * self._matrix(rows))
+
+    def times_outer(self, X: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """out <- X * 1/2 A[l] B[h] (default: in place), X of shape (2^nl, 2^nr), a few rows at a time."""
+        out = X if out is None else out
+        A2 = 0.5 * self.A
+        for r0, G in _row_groups(X.shape[0], self.nr):
+            blk = out[r0 : r0 + G]
+            np.multiply(X[r0 : r0 + G], A2[r0 : r0 + G, None], out=blk)
+            blk *= self.B
+        return out
+
+    def outer_beta_bar(self, R: np.ndarray, beta_bar: np.ndarray) -> None:
+        """beta_bar += d/db of sum(R * 1/2 A B) (R of shape (2^nl, 2^nr))."""
+        Abar = 0.5 * (R @ self.B)
+        Bbar = 0.5 * (self.A @ R)
+        _chain_beta_bar(Abar, self.A, self.m, 0, beta_bar)
+        _chain_beta_bar(Bbar, self.B, self.m, self.c + self.k, beta_bar, fixed_first=False)
+
+
+def _row_groups(rows: int, row_bits: int):
+    """(r0, G) groups of rows of 2^row_bits points, about 2^CHUNK_BITS points per group."""
+    G = max(1, min(rows, (1 << CHUNK_BITS) >> row_bits))
+    for r0 in range(0, rows, G):
+        yield r0, min(G, rows - r0)
+
+
+class _Chunk:
+    """Preallocated chunk temporaries of ``size`` points."""
+
+    def __init__(self, size: int):
+        self.r1 = np.empty(size)
+        self.r2 = np.empty(size)
+        self.r3 = np.empty(size)
+        self.c1 = np.empty(size, dtype=complex)
+        self.c2 = np.empty(size, dtype=complex)
+        self.c3 = np.empty(size, dtype=complex)
+
+
+def _ipow_into(x: np.ndarray, k: int, out: np.ndarray) -> np.ndarray:
+    """out <- x^k (k >= 0) by multiplication; returns out."""
+    if k == 0:
+        out[...] = 1.0
+        return out
+    out[...] = x
+    for _ in range(k - 1):
+        out *= x
+    return out
+
+
+#: integer degrees up to this D - 1 take H = (1 + z)^(D-1) by multiplication: rounding about
+#: (D-1) x 2.2e-16 relative, the same order as the exp/log1p form, at a fraction of its cost
+#: (five transcendental functions per point); larger and non-integer degrees use exp/log1p
+INT_POWER_MAX = 8
+
+
+def _int_power(D: float) -> int | None:
+    k = D - 1.0
+    return int(k) if float(k).is_integer() and 1 <= k <= INT_POWER_MAX else None
+
+
+def _log_power(A: np.ndarray, D: float, tmp: _Chunk, L_out: np.ndarray | None = None) -> None:
+    """A <- (1 + A)^(D-1) in place, chunk by chunk: exp((D-1) log1p(A)) with the accurate
+    complex log1p of :func:`complex_log1p`, or by multiplication for small integer D
+    (:data:`INT_POWER_MAX`).  ``L_out`` receives what the reverse sweep needs (see
+    :func:`_exp_times`): log1p(A), or 1 + A with multiplication."""
+    size = min(1 << CHUNK_BITS, A.size)
+    k = _int_power(D)
+    if k is not None:
+        for h in range(A.size // size):
+            sl = slice(h * size, (h + 1) * size)
+            Ac = A[sl]
+            Ac += 1.0
+            if L_out is not None:
+                L_out[sl] = Ac
+            if k > 1:
+                base = tmp.c1[:size]
+                base[...] = Ac
+                _ipow_into(base, k, Ac)
+        return
+    t, ph, w = tmp.r1[:size], tmp.r2[:size], tmp.r3[:size]
+    for h in range(A.size // size):
+        Ac = A[h * size : (h + 1) * size]
+        x, y = Ac.real, Ac.imag
+        np.add(x, 2.0, out=t)
+        t *= x
+        np.multiply(y, y, out=w)
+        t += w
+        np.log1p(t, out=t)
+        t *= 0.5  # Re log1p(z)
+        np.add(x, 1.0, out=w)
+        np.arctan2(y, w, out=ph)  # Im log1p(z)
+        if L_out is not None:
+            Lc = L_out[h * size : (h + 1) * size]
+            Lc.real = t
+            Lc.imag = ph
+        t *= D - 1.0
+        ph *= D - 1.0
+        np.exp(t, out=t)
+        np.cos(ph, out=w)
+        w *= t
+        np.sin(ph, out=ph)
+        ph *= t
+        Ac.real = w
+        Ac.imag = ph
+
+
+def _exp_times(x: np.ndarray, L: np.ndarray, D: float, tmp: _Chunk) -> None:
+    """x <- x (D-1) (1 + z)^(D-2) in place (the derivative of (1 + z)^(D-1)), chunk by chunk,
+    from what :func:`_log_power` kept: L = log1p(z), or 1 + z for small integer D."""
+    size = min(1 << CHUNK_BITS, x.size)
+    k = _int_power(D)
+    e = tmp.c1[:size]
+    for h in range(x.size // size):
+        sl = slice(h * size, (h + 1) * size)
+        if k is not None:
+            _ipow_into(L[sl], k - 1, e)
+        else:
+            np.multiply(L[sl], D - 2.0, out=e)
+            np.exp(e, out=e)
+        e *= D - 1.0
+        x[sl] *= e
+
+
+def _h_of(L: np.ndarray, D: float) -> np.ndarray:
+    """(1 + z)^(D-1) from what :func:`_log_power` kept (a new array)."""
+    k = _int_power(D)
+    if k is not None:
+        return _ipow_into(L, k, np.empty_like(L))
+    out = L * (D - 1.0)
+    return np.exp(out, out=out)
+
+
+def _fold_middle(X: np.ndarray, m: int) -> np.ndarray:
+    """Sum over the merged middle site's wave-vector bit (bit m of the half index)."""
+    X3 = X.reshape(1 << (m - 1), 2, 1 << m)
+    return X3[:, 0, :] + X3[:, 1, :]
+
+
+def _fresh_complex(n: int) -> np.ndarray:
+    """An uninitialized complex vector of n points in plain anonymous memory (mmap).
+
+    numpy asks the kernel for transparent huge pages on large arrays; where the kernel
+    compacts memory on such faults, the first touch of fresh memory cost more system time
+    than the ordinary pages (sparse p = 14, two runs each: 2.2-2.3 s against 4.0-5.8 s).
+    """
+    import mmap
+
+    return np.frombuffer(mmap.mmap(-1, 16 * max(n, 1)), dtype=complex)[:n]
+
+
+class _StepData:
+    """What the reverse sweep keeps of step m: log1p(message - 1) on the reduced index
+    (without the merged site), and the transform of the outer part (split steps)."""
+
+    def __init__(self, L, Phat):
+        self.L = L
+        self.Phat = Phat
 
 
 def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvaluation:
@@ -773,128 +1200,251 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     wave vectors of even (odd) weight, which the half-length index enumerates
     once each; the transform back of such a spectrum is the plain half-length
     transform.  Sums over the spectrum are sums over the half index.
+
+    Step m (half index of 2^(2m) points, N = 2^(2m+1)), with H_{m-1} kept on the
+    2^(2m-3) points it depends on (``H3``, without any merged site):
+      P = 1/2 A B H3 (the outer chain factors), W(P) by one transform of 2^(2m-3)
+      points, and V_m / 2 = W(f lift(H_{m-1})) rebuilt from its quarter-blocks
+      (:class:`_Split`) row by row, never stored whole;
+      X = (V_m / 2)^(q-1) (2^(q-1)/N) W(K - 1)   (the spectrum in closed form,
+      :class:`_PhaseSpectrum`), summed over the merged site's wave-vector bit at
+      once, because H_m does not depend on that site: only half of message - 1 is
+      needed, and it is the transform of the folded X (2^(2m-1) points);
+      H3_m = exp((D-1) log1p(message - 1)).
+    The root is the same with the single middle site (time 0, with the factor a_0)
+    and the sum of U^q W(sin(phase/2)) row by row.  Steps and roots below depth 3
+    and 2 build the vectors whole (same formulas, no split).
     """
     p = g.size
     T = _Transformers(run_map, n_high)
+    tmp = _Chunk(max(1 << CHUNK_BITS, 1 << (p + 3)))  # a row group holds at least one row
+    # two buffers for every step from 3 on (prefixes of them; their pages are touched once):
+    # the final folded size 2^(2p-1) for X and H, a quarter of it for the outer part
+    big = _fresh_complex(1 << (2 * p - 1))
+    small = _fresh_complex(1 << max(2 * p - 3, 0))
+
     dev_max = 0.0
-    Ls: list[np.ndarray] = []
-    H = None
+    steps: list[_StepData] = []
+    H3 = None
     for m in range(1, p + 1):
         N = 1 << n_sites(m)
-        phase = _half_phase(g[:m])
-        Kh = -2.0 * np.sin(phase / 4.0) ** 2  # K - 1, exact form
-        del phase
-        T(Kh)
-        Kh *= 2.0
-        v = _half_chain(m, b[:m])
-        v *= _lift(H, m)
-        T(v)
-        v *= 2.0  # V_m (even-weight wave vectors)
-        dev = abs(v[0] - 1.0)
-        if not dev <= sum_fH_tolerance(m, D):
+        tol = sum_fH_tolerance(m, D)
+        if m >= 3:
+            sp = _Split(m, b[:m], 3, False)
+            s8 = 1 << (2 * m - 3)
+            Phat = T.inplace(sp.times_outer(H3, small[:s8].reshape(H3.shape)).reshape(-1))
+            del H3
+            Xf = big[: 4 * s8]
+            spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3)
+            rows = 1 << (sp.nl - 1)
+            R1 = 1 << (sp.nr - 1)
+            Ph4 = Phat.reshape(rows, 4, R1)
+            Xf6 = Xf.reshape(rows, 2, 2, 2, 2, R1)
+            for r0, G in _row_groups(rows, m + 3):
+                w = tmp.c2[: G * 32 * R1].reshape(G, 32, R1)
+                np.matmul(sp.M, Ph4[r0 : r0 + G], out=w)
+                if r0 == 0:
+                    dev = abs(2.0 * w[0, 0, 0] - 1.0)  # V_m[0] = sum_a f H_{m-1} = 1
+                X = tmp.c3[: w.size].reshape(G, 32, R1)
+                _ipow_into(w, q - 1, X)
+                X.view(np.float64).reshape(G, 32 * R1, 2)[...] *= spec.rows(r0, G, tmp.r1)[:, :, None]
+                X7 = X.reshape(G, 2, 2, 2, 2, 2, R1)
+                np.add(X7[:, :, :, 0], X7[:, :, :, 1], out=Xf6[r0 : r0 + G])
+            Phat = Phat.copy() if gradient else None
+            del Ph4, Xf6
+        else:
+            Xf = np.empty(N // 4, dtype=complex)
+            v = _half_chain(m, b[:m])
+            if H3 is not None:
+                v.reshape(1 << (m - 2), 8, 1 << (m - 1))[...] *= H3.reshape(1 << (m - 2), 1, 1 << (m - 1))
+            del H3
+            w = T.inplace(v)
+            dev = abs(2.0 * w[0] - 1.0)
+            spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, 2 * m)
+            X = _ipow_into(w, q - 1, np.empty_like(w)) * spec.full()
+            Xf[...] = _fold_middle(X, m).reshape(-1)
+            Phat = None
+        if not dev <= tol:
             raise SparseIntegrityError(
-                f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} "
-                f"(allowed {sum_fH_tolerance(m, D):.1e})"
+                f"step {m} at p = {p}: sum_a f(a) H(a) deviates from 1 by {dev:.3e} (allowed {tol:.1e})"
             )
         dev_max = max(dev_max, dev)
-        _ipow_inplace(v, q - 1)
-        v *= Kh
-        del Kh
-        T(v)
-        v /= N  # message - 1
-        L = complex_log1p(v, out=v)
+        Z = T.inplace(Xf)  # message - 1 (independent of the merged site)
+        del Xf
+        L = np.empty_like(Z) if gradient else None
+        _log_power(Z, D, tmp, L)
         if gradient:
-            Ls.append(L.copy())
-        L *= D - 1.0
-        H = np.exp(L, out=L)
+            steps.append(_StepData(L, Phat))
+        H3 = Z.reshape(1 << (m - 1), 1 << m)  # H3_m: (times 2..m, times -m..-1)
+        del Z
     N = 1 << n_sites(p)
-    f = _half_chain(p, b)
-    u = f * H
-    root_norm = abs(2.0 * u.sum() - 1.0)
-    if not root_norm <= sum_fH_tolerance(p, D):
+    tol = sum_fH_tolerance(p, D)
+    coef = 0.5j * float(2**q) / N  # nu = 1/2 + coef sum_k U^q W(sin(phase/2)), U = W(f H a_0)
+    root = {}
+    if p >= 2:
+        sp = _Split(p, b, 1, True)
+        sp.times_outer(H3)
+        Phat = T.inplace(H3.reshape(-1))
+        del H3, small
+        rows = 1 << (sp.nl - 1)
+        R1 = 1 << (sp.nr - 1)
+        Ph4 = Phat.reshape(rows, 4, R1)
+        # sum_a f H (the check): W(P C0)[0] with C0 = C without the sign a_0
+        C0 = _Split(p, b, 1, False)
+        total = (C0.M @ Ph4[0, :, 0])[0]
+        spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
+        acc = 0.0
+        for r0, G in _row_groups(rows, p + 2):
+            U = tmp.c2[: G * 8 * R1].reshape(G, 8, R1)
+            np.matmul(sp.M, Ph4[r0 : r0 + G], out=U)
+            Y = _ipow_into(U, q, tmp.c3[: U.size].reshape(U.shape))
+            acc += np.sum(spec.rows(r0, G, tmp.r1).reshape(G, 8, R1) * Y)
+        root = {"split": sp, "Phat": Phat if gradient else None, "spec": spec}
+    else:
+        Hf = np.repeat(H3.reshape(1, 2), 2, axis=0).reshape(-1)  # (merged site, time -1)
+        u = _half_chain(p, b) * Hf
+        total = u.sum()
+        _flip_time0_half(u, p)
+        U = T.inplace(u.copy())
+        spec = _PhaseSpectrum(g, "sin", 1.0, 2 * p)
+        acc = np.sum(spec.full() * U**q)
+        root = {"U": U, "Hf": Hf, "spec": spec}
+    root_norm = abs(2.0 * total - 1.0)
+    if not root_norm <= tol:
         raise SparseIntegrityError(
-            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {sum_fH_tolerance(p, D):.1e})"
+            f"root at p = {p}: sum_a f(a) H(a) deviates from 1 by {root_norm:.3e} (allowed {tol:.1e})"
         )
     dev_max = max(dev_max, root_norm)
-    if not gradient:
-        del H, f
-    _flip_time0_half(u, p)
-    U = T(u)
-    U *= 2.0
-    phase = _half_phase(g)
-    Sh = np.sin(phase / 2.0)
-    if not gradient:
-        del phase
-    T(Sh)
-    Sh *= 2.0
-    Y = _ipow(U, q)
-    corr = 1j * np.dot(Y, Sh) / N
-    del Y
+    corr = 2.0 * coef * acc
     nu_c = 0.5 + 0.5 * corr
     residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
     grad = None
     if gradient:
-        grad = _backward_growing(q, D, g, b, f, phase, Sh, H, U, Ls, T, residuals)
+        grad = _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals)
     return _result(q, D, g, b, corr, residuals, grad, t0, T.count)
 
 
-def _backward_growing(q, D, g, b, f_p, phase_p, Sh, H_p, U, Ls, T, residuals):
-    """Reverse sweep over the growing contours on half vectors (holomorphic adjoints)."""
+def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
+    """Reverse sweep over the growing contours (holomorphic adjoints), mirroring
+    :func:`_evaluate_growing` step by step on the same reduced vectors."""
     p = g.size
     gamma_bar = np.zeros(p, dtype=complex)
     beta_bar = np.zeros(p, dtype=complex)
 
-    def add_phase_bar(phasebar, m):
+    def add_theta_bar(theta_bar, m):
+        Gam_bar = 0.5 * theta_bar  # theta = Gamma / 2
         n = n_sites(m)
-        Gam_bar = _site_sums_half(phasebar, n)
         gamma_bar[:m] += Gam_bar[:m] - Gam_bar[n - 1 : m : -1]
 
-    # nu = 1/2 + (i / 2N) sum_k U^q Sh, U = 2 W(u), Sh = 2 W(sin(phase/2))
-    N = 1 << n_sites(p)
-    coef = 0.5j / N
-    Ubar = _ipow(U, q - 1)
-    Shbar = (coef * Ubar) * U
-    Ubar *= 2.0 * coef * q
-    Ubar *= Sh
-    ubar = T(Ubar)
-    _flip_time0_half(ubar, p)  # u = f H a0
-    _beta_bar_from_f(ubar * H_p, f_p, p, beta_bar)
-    Hbar = ubar * f_p
-    del ubar
-    T(Shbar)
-    Shbar *= 2.0
-    add_phase_bar(Shbar * (0.5 * np.cos(phase_p / 2.0)), p)
-    del Shbar
+    spec = root["spec"]
+    # root: nu = 1/2 + coef sum_k U^q S, S the sin spectrum (unscaled)
+    if p >= 2:
+        sp = root["split"]
+        Phat = root["Phat"]
+        rows = 1 << (sp.nl - 1)
+        R1 = 1 << (sp.nr - 1)
+        Ph4 = Phat.reshape(rows, 4, R1)
+        Phat_bar = np.empty_like(Phat)
+        Pb4 = Phat_bar.reshape(rows, 4, R1)
+        Mbar = np.zeros_like(sp.M)
+        for r0, G in _row_groups(rows, p + 2):
+            U = tmp.c2[: G * 8 * R1].reshape(G, 8, R1)
+            np.matmul(sp.M, Ph4[r0 : r0 + G], out=U)
+            S = spec.rows(r0, G, tmp.r1).reshape(G, 8, R1)
+            Ubar = _ipow_into(U, q - 1, tmp.c3[: U.size].reshape(U.shape))
+            U *= Ubar  # U^q
+            U *= coef
+            spec.accumulate(r0, U.reshape(G, -1))
+            Ubar *= coef * q
+            Ubar *= S
+            np.matmul(sp.M.T, Ubar, out=Pb4[r0 : r0 + G])
+            Mbar += np.tensordot(Ubar, Ph4[r0 : r0 + G], axes=([0, 2], [0, 2]))
+        add_theta_bar(spec.theta_bar(), p)
+        sp.matrix_beta_bar(Mbar, beta_bar)
+        del Phat, Ph4
+        Pbar = T.inplace(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+        del Phat_bar
+        H3 = _h_of(steps[p - 1].L, D).reshape(Pbar.shape)
+        H3 *= Pbar
+        sp.outer_beta_bar(H3, beta_bar)
+        del H3
+        sp.times_outer(Pbar)
+        H3bar = Pbar.reshape(-1)
+        del Pbar
+    else:
+        U = root["U"]
+        S = spec.full()
+        spec.accumulate(0, (coef * U**q).reshape(1, -1))
+        add_theta_bar(spec.theta_bar(), p)
+        Ubar = coef * q * U ** (q - 1) * S
+        ubar = T.inplace(Ubar)
+        _flip_time0_half(ubar, p)
+        f = _half_chain(p, b)
+        _chain_beta_bar(ubar * root["Hf"], f, p, 0, beta_bar)
+        H3bar = (ubar * f).reshape(2, 2).sum(axis=0)  # sum over the merged site
     for m in range(p, 0, -1):
         N = 1 << n_sites(m)
-        L_m = Ls[m - 1]
-        Hl = _lift(None if m == 1 else np.exp((D - 1.0) * Ls[m - 2]), m)
-        f = _half_chain(m, b[:m])
-        phase = _half_phase(g[:m])
-        Kh = -2.0 * np.sin(phase / 4.0) ** 2
-        T(Kh)
-        Kh *= 2.0
-        # H_m = exp((D-1) log1p(mm1)) -> mm1bar = Hbar (D-1) exp((D-2) L_m); mm1 = W(X)/N
-        Xbar = Hbar * ((D - 1.0) * np.exp((D - 2.0) * L_m))
-        del Hbar
-        T(Xbar)
-        Xbar /= N
-        V = T(f * Hl)
-        V *= 2.0
-        Vq2 = _ipow(V, q - 2)
-        Khbar = Xbar * (Vq2 * V)
-        Vbar = Xbar * Kh
-        Vbar *= 2.0 * (q - 1) * Vq2
-        del Vq2, V, Xbar, Kh
-        T(Khbar)  # K - 1 = 2 W(-2 sin^2(phase/4)): adjoint through the transform
-        Khbar *= 2.0
-        add_phase_bar(-Khbar * (0.5 * np.sin(phase / 2.0)), m)
-        del Khbar
-        vbar = T(Vbar)
-        _beta_bar_from_f(vbar * Hl, f, m, beta_bar)
-        if m > 1:
-            Hbar = _lift_adjoint(vbar * f, m)
-        del vbar
+        st = steps[m - 1]
+        # H3_m = (1 + Z)^(D-1): Zbar = H3bar (D-1) (1 + Z)^(D-2)
+        _exp_times(H3bar, st.L, D, tmp)
+        st.L = None
+        Xf_bar = T.inplace(H3bar)
+        del H3bar
+        spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3 if m >= 3 else 2 * m)
+        if m >= 3:
+            sp = _Split(m, b[:m], 3, False)
+            rows = 1 << (sp.nl - 1)
+            R1 = 1 << (sp.nr - 1)
+            Ph4 = st.Phat.reshape(rows, 4, R1)
+            Phat_bar = np.empty_like(st.Phat)
+            Pb4 = Phat_bar.reshape(rows, 4, R1)
+            Xb6 = Xf_bar.reshape(rows, 2, 2, 2, 2, R1)
+            Mbar = np.zeros_like(sp.M)
+            for r0, G in _row_groups(rows, m + 3):
+                w = tmp.c2[: G * 32 * R1].reshape(G, 32, R1)
+                np.matmul(sp.M, Ph4[r0 : r0 + G], out=w)
+                K = spec.rows(r0, G, tmp.r1).reshape(G, 32, R1)
+                wq2 = _ipow_into(w, q - 2, tmp.c3[: w.size].reshape(w.shape))  # w^(q-2)
+                Xbar = np.broadcast_to(Xb6[r0 : r0 + G][:, :, :, None], (G, 2, 2, 2, 2, 2, R1)).reshape(G, 32, R1)
+                w *= wq2  # w^(q-1)
+                w *= Xbar
+                spec.accumulate(r0, w.reshape(G, -1))  # Kbar = Xbar w^(q-1)
+                wq2 *= Xbar
+                wq2 *= K
+                wq2 *= q - 1.0  # wbar
+                np.matmul(sp.M.T, wq2, out=Pb4[r0 : r0 + G])
+                Mbar += np.tensordot(wq2, Ph4[r0 : r0 + G], axes=([0, 2], [0, 2]))
+            add_theta_bar(spec.theta_bar(), m)
+            sp.matrix_beta_bar(Mbar, beta_bar)
+            st.Phat = None
+            del Ph4, Xb6, Xf_bar
+            Pbar = T.inplace(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+            del Phat_bar
+            H3 = _h_of(steps[m - 2].L, D).reshape(Pbar.shape)
+            H3 *= Pbar
+            sp.outer_beta_bar(H3, beta_bar)
+            del H3
+            sp.times_outer(Pbar)
+            H3bar = Pbar.reshape(-1)
+            del Pbar
+        else:
+            f = _half_chain(m, b[:m])
+            v = f.copy()
+            if m == 2:
+                H3prev = _h_of(steps[0].L, D).reshape(1, 1, 2)
+                v.reshape(1, 8, 2)[...] *= H3prev
+            w = T.inplace(v)
+            Xbar = np.repeat(Xf_bar.reshape(1 << (m - 1), 1, 1 << m), 2, axis=1).reshape(-1)
+            K = spec.full()
+            spec.accumulate(0, (Xbar * w ** (q - 1)).reshape(1, -1))
+            add_theta_bar(spec.theta_bar(), m)
+            wbar = Xbar * (q - 1) * w ** (q - 2) * K
+            vbar = T.inplace(wbar)
+            if m == 2:
+                _chain_beta_bar(vbar * np.broadcast_to(H3prev, (1, 8, 2)).reshape(-1), f, m, 0, beta_bar)
+                H3bar = (vbar * f).reshape(1, 8, 2).sum(axis=1).reshape(-1)
+            else:
+                _chain_beta_bar(vbar, f, m, 0, beta_bar)
     residuals["imag_gradient"] = float(max(np.max(np.abs(gamma_bar.imag)), np.max(np.abs(beta_bar.imag))))
     return {"gamma": gamma_bar.real.copy(), "beta": beta_bar.real.copy()}
 
