@@ -60,3 +60,27 @@ def test_a_lost_block_is_still_caught_at_large_degree():
     with pytest.raises(SparseIntegrityError), np.errstate(all="ignore"):  # the lost block makes H overflow
         evaluate_sparse(3, 1e8, [0.3, 0.2, 0.25], [0.4, 0.1, 0.3], run_map=losing_map, n_high=2)
     assert lost
+
+
+# ---------------------------------------------------------------- memory refusal of the CLI
+def _machine_with(monkeypatch, gib: float):
+    import psutil
+
+    class _Mem:
+        total = int(gib * 2**30)
+
+    monkeypatch.setattr(psutil, "virtual_memory", lambda: _Mem())
+
+
+def test_sparse_memory_check_follows_the_measured_buffers(monkeypatch):
+    # 1.25 x 2^(2p-1) complex numbers (p = 15: 10 GiB, measured peak 10.1 GiB in
+    # docs/performance.md); the gradient about 2.5 times that
+    from leadline.jobs.commands._sparse import check_sparse_depth
+    from leadline.jobs.errors import InputError
+
+    _machine_with(monkeypatch, 16)
+    check_sparse_depth(15, None, "--gamma/--beta")  # 10 GiB of 16: runs
+    with pytest.raises(InputError, match=r"p = 15 needs about 25 GiB with the gradient, more than 80% of this machine's 16 GiB"):
+        check_sparse_depth(15, None, "--gamma/--beta", gradient=True)
+    with pytest.raises(InputError, match=r"p = 16 needs about 40 GiB"):
+        check_sparse_depth(16, None, "--depth")

@@ -34,18 +34,21 @@ def sparse_requested(xorsat, degree) -> bool:
     return xorsat is not None or degree is not None
 
 
-#: complex vectors of 2^(2p) entries (half the paths, by the flip symmetry) the recursion
-#: keeps at once at its last step: a lower bound of its memory
-SPARSE_VECTORS = 2
+#: complex numbers the growing-contour recursion holds at most, in units of 2^(2p-1): its two
+#: buffers allocated once at the final size (kernels/sparse/_recursion.py); measured peak RSS
+#: 2.6 GiB at p = 14 and 10.1 GiB at p = 15 (docs/performance.md)
+SPARSE_VECTORS = 1.25
+#: the reverse sweep keeps about this many times the evaluation's memory (measured at p = 12)
+GRADIENT_MEMORY_FACTOR = 2.5
 
 
-def check_sparse_depth(p: int, settings, option: str) -> None:
+def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) -> None:
     """Refuse depths whose whole-vector recursion cannot fit (InputError, one line)."""
     from ..spec import MAX_DEPTH
 
     if p > MAX_DEPTH:
         raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
-    need = SPARSE_VECTORS * 16 * 2 ** (2 * p)
+    need = SPARSE_VECTORS * 16 * 2 ** (2 * p - 1) * (GRADIENT_MEMORY_FACTOR if gradient else 1.0)
     distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
     try:
         import psutil
@@ -55,8 +58,9 @@ def check_sparse_depth(p: int, settings, option: str) -> None:
         return
     if need > 0.8 * total and not distributed:
         raise InputError(
-            f"{option}: the sparse recursion at p = {p} keeps vectors of 2^{2 * p} complex entries "
-            f"(at least {need / 2**30:.0f} GiB), more than this machine's {total / 2**30:.0f} GiB; lower the depth"
+            f"{option}: the sparse recursion at p = {p} needs about {need / 2**30:.0f} GiB"
+            f"{' with the gradient' if gradient else ''}, more than 80% of this machine's "
+            f"{total / 2**30:.0f} GiB; lower the depth"
         )
 
 
@@ -71,7 +75,7 @@ def _report(ev) -> str:
         lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
         lines.append("d/dbeta    = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["beta"]))
     lines.append("invariants = " + ", ".join(f"{k} {v:.1e}" for k, v in ev.residuals.items()))
-    lines.append(f"work       = {ev.transforms} Walsh-Hadamard transforms of 2^{2 * ev.p + 1}, {ev.wall_time:.2f} s")
+    lines.append(f"work       = {ev.transforms} Walsh-Hadamard transforms, {ev.wall_time:.2f} s")
     return "\n".join(lines)
 
 
@@ -105,7 +109,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
-    check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta")
+    check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta", gradient=gradient)
     with transform_map(settings) as run_map:
         ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
     if as_json:
@@ -130,7 +134,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     q, D = check_sparse(xorsat, degree, xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
-    check_sparse_depth(depth, settings, "--depth")
+    check_sparse_depth(depth, settings, "--depth", gradient=True)
     if output is not None:
         check_output_file(output)
     with transform_map(settings) as run_map:
