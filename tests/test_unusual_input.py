@@ -91,6 +91,21 @@ def test_exponents_beyond_double_resolution_are_refused(tmp_path, args):
     assert "sum_t |gamma_t| <=" in line
 
 
+def test_value_that_underflows_at_p2_is_refused_after_the_evaluation(tmp_path):
+    # SK, gamma = (50, 50), beta = (0.3, 0.2): the 60-digit value is about 1.5e-759
+    # (tests/precise_reference.py, docs/limits.md), below the smallest double; p >= 2 has no
+    # closed form to refuse it in advance, so the command refuses the 0 it computed
+    from leadline.tests.precise_reference import precise_run
+
+    exact = precise_run({2: "0.5"}, ["50", "50"], ["0.3", "0.2"], dps=60)["value"]
+    assert 0 < exact < 2.2e-308  # not a double: refusing is right
+    line = refused_in(tmp_path, ["evaluate", "--xi", "2:0.5", "--gamma", "50,50", "--beta", "0.3,0.2"], "V_p underflows")
+    assert "2.2e-308" in line
+    # an exact 0 near the origin is a true value and is printed
+    r = run("evaluate", "--xi", "2:0.5", "--gamma", "0,0", "--beta", "0.3,0.2", cwd=tmp_path)
+    assert r.returncode == 0 and "V_p        = 0.000000000000" in r.stdout
+
+
 def test_out_of_range_warm_start_is_refused(tmp_path):
     angle_file(tmp_path / "far.json", gamma=[40000.0])
     refused_in(tmp_path, ["optimize", "--depth", "2", "--angles", "far.json"], "out of the double-precision range")
