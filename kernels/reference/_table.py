@@ -15,7 +15,7 @@ mixture; for pure q-spin models GS approaches it as q -> infinity (random energy
 model, Derrida, Phys. Rev. B 24, 2613 (1981)).  It is a bound, never used as a
 value.
 
-Precedence for the reference energies of a table (applied in jobs/report.py):
+Precedence for the reference energies of a table (applied in jobs/report/_references.py):
 a value given on the command line, then one given in the study spec, then
 values computed by ``kernels.reference`` and cached in the store, then this
 table.
