@@ -205,12 +205,17 @@ def evaluate(
     """
     from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
+    from .parsing import check_representable, check_underflow
+
     mix = _mixture(xi)
     g, b = _angles(gamma, beta)
+    check_representable(mix, g, "gamma", beta=b)  # the same range as the command line
     plan = plan_chunks(g.size, _budget(memory_mb))
     with _executor(executor, scheduler, workers, memory_mb) as ex:
-        return evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
-                               fixed_point_check=check_fixed_point)
+        result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
+                                 fixed_point_check=check_fixed_point)
+    check_underflow(result.value, mix, g, "gamma")
+    return result
 
 
 def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts=None, seed=0, gtol=1e-7,

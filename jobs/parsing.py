@@ -18,6 +18,7 @@ __all__ = [
     "check_optimizer_options",
     "warm_start",
     "check_representable",
+    "check_underflow",
     "file_mixture",
     "refuse_sparse_ground_states",
     "parse_ground_state_options",
@@ -104,6 +105,23 @@ def check_representable(mixture: Mixture, gamma, where: str = "--gamma", beta=No
         check_range(mixture, gamma, beta)
     except RangeError as exc:
         raise InputError(f"{where}: {exc}") from None
+
+
+def check_underflow(value: float, mixture: Mixture, gamma, where: str = "--gamma") -> None:
+    """InputError when V_p came out as 0 because it underflowed, not because it is 0.
+
+    At p >= 2 nothing bounds V_p in advance (docs/limits.md), so a pass whose exponents reach
+    beyond EXPONENT_LIMIT can return 0 for a value below 2.2e-308.  Near the origin
+    (E <= EXPONENT_LIMIT) an exact 0 is a true value (for example gamma = 0).
+    """
+    from leadline.kernels.exact import EXPONENT_LIMIT, exponent_bound
+
+    E = exponent_bound(mixture, gamma)
+    if value == 0.0 and E > EXPONENT_LIMIT:
+        raise InputError(
+            f"{where}: V_p underflows at these angles: its modulus is below the smallest double "
+            f"(2.2e-308), so it cannot be printed (E = 2 xi'(1) (sum|gamma|)^2 = {E:.3g}); smaller |gamma_t| give representable values"
+        )
 
 
 def file_mixture(xi: str | None, angle_set, path) -> Mixture:

@@ -88,6 +88,18 @@ def test_bad_input_raises_the_cli_message():
         leadline.optimize("2:0.5", 0)
 
 
+def test_values_outside_the_double_range_raise_as_on_the_cli():
+    # SK p = 1: V_1 = g sin(4b) exp(-2 g^2) (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759
+    # (2022)) is about 1.6e-2170 at g = 50; at p = 2, gamma = (50, 50) the 60-digit value is
+    # 1.5e-759 (tests/test_unusual_input.py computes it with mpmath): neither is a double
+    with pytest.raises(leadline.InputError, match="out of the double-precision range"):
+        leadline.evaluate("2:0.5", [50.0], [0.3], executor="inprocess")
+    with pytest.raises(leadline.InputError, match="V_p underflows"):
+        leadline.evaluate("2:0.5", [50.0, 50.0], [0.3, 0.2], executor="inprocess")
+    # a true 0 near the origin is returned
+    assert leadline.evaluate("2:0.5", [0.0, 0.0], [0.3, 0.2], executor="inprocess").value == 0.0
+
+
 def test_the_api_names_are_documented():
     for name in ("evaluate", "optimize", "evaluate_sparse", "optimize_sparse", "reference_energies",
                  "open_study", "study_dataframe"):

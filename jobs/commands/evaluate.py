@@ -13,7 +13,7 @@ from .. import compute
 from ..angles import read_angles
 from ..cost import COST_NOTE_SECONDS, check_cost
 from ..errors import InputError
-from ..parsing import angle_pair, check_representable, file_mixture, mixture_arg
+from ..parsing import angle_pair, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -83,28 +83,11 @@ def evaluate_command(
         passes = g.size * (2 if gradient else 1) + (1 if fixed_point else 0)  # one pass per step and direction
         ex.progress.announce_job(f"evaluate p = {g.size}", passes, plan.n_chunks)
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient, fixed_point_check=fixed_point)
-    _check_underflow(result.value, mix, g, "--angles" if angle_set is not None else "--gamma")
+    check_underflow(result.value, mix, g, "--angles" if angle_set is not None else "--gamma")
     if as_json:
         typer.echo(json.dumps(result.to_json()))
         return
     typer.echo(report(result))
-
-
-def _check_underflow(value: float, mix, gamma, option: str) -> None:
-    """A value of exactly 0 far outside the plain double range is an underflow, not a result.
-
-    At p >= 2 nothing says in advance how small V_p is (docs/limits.md); a pass whose
-    exponents reach beyond EXPONENT_LIMIT can return 0 for a value below 2.2e-308.  Near the
-    origin (E <= EXPONENT_LIMIT) an exact 0 is a true value (for example gamma = 0).
-    """
-    from leadline.kernels.exact import EXPONENT_LIMIT, exponent_bound
-
-    E = exponent_bound(mix, gamma)
-    if value == 0.0 and E > EXPONENT_LIMIT:
-        raise InputError(
-            f"{option}: V_p underflows at these angles: its modulus is below the smallest double "
-            f"(2.2e-308), so it cannot be printed (E = 2 xi'(1) (sum|gamma|)^2 = {E:.3g}); smaller |gamma_t| give representable values"
-        )
 
 
 def _value_text(value: float) -> str:
