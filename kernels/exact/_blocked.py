@@ -473,9 +473,6 @@ def chunk_partial_blocked(inp, plan, chunk: int, low) -> np.ndarray:
             V += RA.sum(axis=1)[:, None]
         total = row * total0
         mom = row[:, None] * np.concatenate([mom1, mom2], axis=1)
-        # U-type: sums over rows of row R0 K2 E s (without the low chain)
-        R0 *= row
-        RA *= row
         u = F * V
         LL = _low_second_moments(u, P0 @ row, C0 @ row, mats)
         D = np.zeros(2 * p, dtype=complex)

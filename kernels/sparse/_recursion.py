@@ -1324,6 +1324,18 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
     return _result(q, D, g, b, corr, residuals, grad, t0, T.count)
 
 
+def _outer_adjoint(T, Phat_bar: np.ndarray, L_prev: np.ndarray, D: float, sp, beta_bar) -> np.ndarray:
+    """Adjoint of a split step's outer-part transform (in place on ``Phat_bar``): adds the
+    outer chain's beta adjoints and returns H3bar of the previous step, flat."""
+    Pbar = T.inplace(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+    H3 = _h_of(L_prev, D).reshape(Pbar.shape)
+    H3 *= Pbar
+    sp.outer_beta_bar(H3, beta_bar)
+    del H3
+    sp.times_outer(Pbar)
+    return Pbar.reshape(-1)
+
+
 def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
     """Reverse sweep over the growing contours (holomorphic adjoints), mirroring
     :func:`_evaluate_growing` step by step on the same reduced vectors."""
@@ -1362,15 +1374,8 @@ def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
         add_theta_bar(spec.theta_bar(), p)
         sp.matrix_beta_bar(Mbar, beta_bar)
         del Phat, Ph4
-        Pbar = T.inplace(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+        H3bar = _outer_adjoint(T, Phat_bar, steps[p - 1].L, D, sp, beta_bar)
         del Phat_bar
-        H3 = _h_of(steps[p - 1].L, D).reshape(Pbar.shape)
-        H3 *= Pbar
-        sp.outer_beta_bar(H3, beta_bar)
-        del H3
-        sp.times_outer(Pbar)
-        H3bar = Pbar.reshape(-1)
-        del Pbar
     else:
         U = root["U"]
         S = spec.full()
@@ -1418,15 +1423,8 @@ def _backward_growing(q, D, g, b, coef, root, steps, T, tmp, residuals):
             sp.matrix_beta_bar(Mbar, beta_bar)
             st.Phat = None
             del Ph4, Xb6, Xf_bar
-            Pbar = T.inplace(Phat_bar).reshape(1 << sp.nl, 1 << sp.nr)
+            H3bar = _outer_adjoint(T, Phat_bar, steps[m - 2].L, D, sp, beta_bar)
             del Phat_bar
-            H3 = _h_of(steps[m - 2].L, D).reshape(Pbar.shape)
-            H3 *= Pbar
-            sp.outer_beta_bar(H3, beta_bar)
-            del H3
-            sp.times_outer(Pbar)
-            H3bar = Pbar.reshape(-1)
-            del Pbar
         else:
             f = _half_chain(m, b[:m])
             v = f.copy()
