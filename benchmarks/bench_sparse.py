@@ -5,8 +5,10 @@ evaluation (2^(2p+1) paths); the sweep stops after the first depth that takes lo
 ``stop_after_s`` (default 3 minutes) and reports the largest depth that ran.  The gradient /
 evaluation cost ratio (goal <= 4) is measured at the smaller depths.
 
-Peak memory is the tracemalloc peak of the call (numpy reports its buffers to tracemalloc);
-the process-wide maximum resident size (getrusage) is reported too.
+Memory: ``rss_mib`` is the process's peak resident size (getrusage) after the call; depths
+run in increasing order, so it is that depth's peak.  ``peak_mib`` is the tracemalloc peak,
+which counts numpy's temporaries only: the recursion's large buffers are anonymous memory maps
+that tracemalloc does not see.
 
 Usage:  python benchmarks/bench_sparse.py [--max-p 13] [--stop-after 180] [--json out.json]
 """
@@ -44,6 +46,7 @@ def _measure(p: int, q: int, D: int, gradient: bool) -> dict:
         "value": ev.value,
         "seconds": round(wall, 3),
         "peak_mib": round(peak / 2**20, 1),
+        "rss_mib": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
         "transforms": ev.transforms,
         "sum_fH": ev.residuals["sum_fH"],
     }
@@ -58,7 +61,7 @@ def run(q: int = 3, degree: int = 4, p_min: int = 8, p_max: int = 13, stop_after
         r = _measure(p, q, degree, gradient=False)
         evaluations.append(r)
         largest = p
-        print(f"evaluate p={p:2d}: {r['seconds']:8.2f} s, peak {r['peak_mib']:8.1f} MiB, value {r['value']:.10f}", flush=True)
+        print(f"evaluate p={p:2d}: {r['seconds']:8.2f} s, peak RSS {r['rss_mib']:8.1f} MiB, value {r['value']:.10f}", flush=True)
         if r["seconds"] > stop_after_s:
             stopped = f"p = {p} took {r['seconds']:.0f} s > {stop_after_s:.0f} s; larger depths not attempted"
             break
