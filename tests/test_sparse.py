@@ -1,4 +1,4 @@
-"""Sparse hypertree recursion (kernels/sparse/_recursion.py) against outside references.
+"""Sparse hypertree recursion (kernels/sparse/) against outside references.
 
 Sources of the checks:
 - Brute force: the QAOA circuit itself, simulated on the radius-p hypertree around one

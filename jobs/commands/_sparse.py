@@ -35,7 +35,7 @@ def sparse_requested(xorsat, degree) -> bool:
 
 
 #: complex numbers the growing-contour recursion holds at most, in units of 2^(2p-1): its two
-#: buffers allocated once at the final size (kernels/sparse/_recursion.py); measured peak RSS
+#: buffers allocated once at the final size (kernels/sparse/_growing.py); measured peak RSS
 #: 2.6 GiB at p = 14 and 10.1 GiB at p = 15 (docs/performance.md)
 SPARSE_VECTORS = 1.25
 #: the reverse sweep keeps about this many times the evaluation's memory (measured at p = 12)
