@@ -16,6 +16,49 @@ from ._steps import (_Chunk, _flip_time0_half, _fold_middle, _fresh_complex, _ha
 from ._transforms import _Transformers
 
 
+def build_rows(M, spec, q, Ph4, Xf6, r_first, row_bits, tmp) -> None:
+    """Rows of a split step: Xf6[r] = fold(W(f lift H)^(q-1) x spectrum) from the quarter-blocks
+    Ph4[r] of the outer part's transform (r counted from ``r_first`` in the whole vector, for
+    the spectrum's rows), a few rows at a time.  Shared by the in-memory and the chunked path."""
+    rows, _, R1 = Ph4.shape
+    for r0, G in _row_groups(rows, row_bits):
+        w = tmp.c2[: G * 32 * R1].reshape(G, 32, R1)
+        np.matmul(M, Ph4[r0 : r0 + G], out=w)
+        X = tmp.c3[: w.size].reshape(G, 32, R1)
+        _ipow_into(w, q - 1, X)
+        X.view(np.float64).reshape(G, 32 * R1, 2)[...] *= spec.rows(r_first + r0, G, tmp.r1)[:, :, None]
+        X7 = X.reshape(G, 2, 2, 2, 2, 2, R1)
+        np.add(X7[:, :, :, 0], X7[:, :, :, 1], out=Xf6[r0 : r0 + G])
+
+
+def root_rows(M, spec, q, Ph4, r_first, row_bits, tmp) -> complex:
+    """sum over rows r of U[r]^q x sin spectrum, U[r] = M Ph4[r] (the root's sum, rows from
+    ``r_first``), a few rows at a time.  Shared by the in-memory and the chunked path."""
+    rows, _, R1 = Ph4.shape
+    acc = 0.0
+    for r0, G in _row_groups(rows, row_bits):
+        U = tmp.c2[: G * 8 * R1].reshape(G, 8, R1)
+        np.matmul(M, Ph4[r0 : r0 + G], out=U)
+        Y = _ipow_into(U, q, tmp.c3[: U.size].reshape(U.shape))
+        acc += np.sum(spec.rows(r_first + r0, G, tmp.r1).reshape(G, 8, R1) * Y)
+    return acc
+
+
+def whole_step(m, H3, q, g, b, T):
+    """Step m < 3 with whole vectors: (the folded X to transform, |sum f H - 1|)."""
+    N = 1 << n_sites(m)
+    Xf = np.empty(N // 4, dtype=complex)
+    v = _half_chain(m, b[:m])
+    if H3 is not None:
+        v.reshape(1 << (m - 2), 8, 1 << (m - 1))[...] *= H3.reshape(1 << (m - 2), 1, 1 << (m - 1))
+    w = T.inplace(v)
+    dev = abs(2.0 * w[0] - 1.0)
+    spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, 2 * m)
+    X = _ipow_into(w, q - 1, np.empty_like(w)) * spec.full()
+    Xf[...] = _fold_middle(X, m).reshape(-1)
+    return Xf, dev
+
+
 def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvaluation:
     """The recursion on the growing contour with the global flip (module docstring).
 
@@ -66,30 +109,13 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
             rows = 1 << (sp.nl - 1)
             R1 = 1 << (sp.nr - 1)
             Ph4 = Phat.reshape(rows, 4, R1)
-            Xf6 = Xf.reshape(rows, 2, 2, 2, 2, R1)
-            for r0, G in _row_groups(rows, m + 3):
-                w = tmp.c2[: G * 32 * R1].reshape(G, 32, R1)
-                np.matmul(sp.M, Ph4[r0 : r0 + G], out=w)
-                if r0 == 0:
-                    dev = abs(2.0 * w[0, 0, 0] - 1.0)  # V_m[0] = sum_a f H_{m-1} = 1
-                X = tmp.c3[: w.size].reshape(G, 32, R1)
-                _ipow_into(w, q - 1, X)
-                X.view(np.float64).reshape(G, 32 * R1, 2)[...] *= spec.rows(r0, G, tmp.r1)[:, :, None]
-                X7 = X.reshape(G, 2, 2, 2, 2, 2, R1)
-                np.add(X7[:, :, :, 0], X7[:, :, :, 1], out=Xf6[r0 : r0 + G])
+            dev = abs(2.0 * (sp.M[0] @ Ph4[0, :, 0]) - 1.0)  # V_m[0] = sum_a f H_{m-1} = 1
+            build_rows(sp.M, spec, q, Ph4, Xf.reshape(rows, 2, 2, 2, 2, R1), 0, m + 3, tmp)
             Phat = Phat.copy() if gradient else None
-            del Ph4, Xf6
+            del Ph4
         else:
-            Xf = np.empty(N // 4, dtype=complex)
-            v = _half_chain(m, b[:m])
-            if H3 is not None:
-                v.reshape(1 << (m - 2), 8, 1 << (m - 1))[...] *= H3.reshape(1 << (m - 2), 1, 1 << (m - 1))
+            Xf, dev = whole_step(m, H3, q, g, b, T)
             del H3
-            w = T.inplace(v)
-            dev = abs(2.0 * w[0] - 1.0)
-            spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, 2 * m)
-            X = _ipow_into(w, q - 1, np.empty_like(w)) * spec.full()
-            Xf[...] = _fold_middle(X, m).reshape(-1)
             Phat = None
         if not dev <= tol:
             raise SparseIntegrityError(
@@ -120,12 +146,7 @@ def _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0) -> SparseEvalua
         C0 = _Split(p, b, 1, False)
         total = (C0.M @ Ph4[0, :, 0])[0]
         spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
-        acc = 0.0
-        for r0, G in _row_groups(rows, p + 2):
-            U = tmp.c2[: G * 8 * R1].reshape(G, 8, R1)
-            np.matmul(sp.M, Ph4[r0 : r0 + G], out=U)
-            Y = _ipow_into(U, q, tmp.c3[: U.size].reshape(U.shape))
-            acc += np.sum(spec.rows(r0, G, tmp.r1).reshape(G, 8, R1) * Y)
+        acc = root_rows(sp.M, spec, q, Ph4, 0, p + 2, tmp)
         root = {"split": sp, "Phat": Phat if gradient else None, "spec": spec}
     else:
         Hf = np.repeat(H3.reshape(1, 2), 2, axis=0).reshape(-1)  # (merged site, time -1)
