@@ -26,6 +26,8 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   depth-arrays-written    a depth's angle arrays are on disk, its done flag is not
   depth-done              a depth's done flag is on disk
   depth-started           a depth is marked running, its optimizer not yet started
+  sparse-step-finished    a chunked sparse evaluation recorded a finished step (storage/sparse_scratch.py)
+  sparse-band-task        a row-band task of a chunked sparse transform starts (cluster/sparse_vectors.py)
 """
 
 from __future__ import annotations

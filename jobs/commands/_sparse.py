@@ -15,6 +15,8 @@ from __future__ import annotations
 
 import contextlib
 import json
+from dataclasses import dataclass
+from pathlib import Path
 
 import typer
 
@@ -23,7 +25,7 @@ from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
 from ..errors import InputError
 from ..sparse_ensemble import check_sparse, ensemble_json
 
-__all__ = ["XORSAT_HELP", "DEGREE_HELP", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
+__all__ = ["XORSAT_HELP", "DEGREE_HELP", "SCRATCH_HELP", "plan_sparse_path", "SparsePath", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
 
 XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
 DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
@@ -60,8 +62,103 @@ def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) ->
         raise InputError(
             f"{option}: the sparse recursion at p = {p} needs about {need / 2**30:.0f} GiB"
             f"{' with the gradient' if gradient else ''}, more than 80% of this machine's "
-            f"{total / 2**30:.0f} GiB; lower the depth"
+            f"{total / 2**30:.0f} GiB; lower the depth" + ("" if gradient else " or give --scratch DIR (out of core)")
         )
+
+
+SCRATCH_HELP = ("Sparse ensembles, value only: keep the step vectors as Zarr arrays in this folder (out of core; "
+                "with --executor local/scheduler/batch they live on the Dask workers and the folder must be one "
+                "every worker sees) and record every finished step there, so a killed run given the same folder "
+                "resumes after its last finished step. Removed after success.")
+
+#: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py:
+#: the root's input, its outer transform and that transform's row-pass copy)
+SCRATCH_VECTORS = 3.0
+#: complex numbers a task of the chunked path holds at most, in bands of 2^CHUNK_POINTS_BITS points
+#: (a band in, a band out, a column block and a transform scratch)
+BANDS_PER_TASK = 4
+#: leave this much of the scratch file system free (other users of a shared disk)
+DISK_MARGIN = 1.1
+
+
+@dataclass
+class SparsePath:
+    """Which path a sparse evaluation takes and what it needs (the cost guard's statement)."""
+
+    kind: str              # "memory", "disk" (out of core) or "workers" (Dask workers)
+    memory_bytes: float    # per process (memory, disk) or per worker (workers)
+    disk_bytes: float      # scratch folder, 0 for "memory"
+    scratch: Path | None = None
+
+    def describe(self, p: int) -> str:
+        if self.kind == "memory":
+            return f"sparse path = in memory, about {_size(self.memory_bytes)} at p = {p}"
+        where = "out of core" if self.kind == "disk" else "on the Dask workers"
+        return (f"sparse path = {where}, about {_size(self.memory_bytes)} per "
+                f"{'process' if self.kind == 'disk' else 'worker'}, {_size(self.disk_bytes)} in {self.scratch}")
+
+
+def _size(nbytes: float) -> str:
+    return f"{nbytes / 2**30:.1f} GiB" if nbytes >= 2**30 else f"{nbytes / 2**20:.0f} MiB"
+
+
+def _existing_ancestor(path: Path) -> Path:
+    path = path.absolute()
+    while not path.exists():
+        path = path.parent
+    return path
+
+
+def check_scratch(scratch: str, need: float) -> Path:
+    """The scratch folder as a Path, or InputError (one line): not writable, a file, or too
+    little free space for ``need`` bytes (less what a resumable run already holds there)."""
+    import shutil
+    import tempfile
+
+    path = Path(scratch).expanduser()
+    if path.exists() and not path.is_dir():
+        raise InputError(f"--scratch {scratch}: is a file, not a folder")
+    base = _existing_ancestor(path)
+    try:  # a real write (permissions alone do not tell for root or a read-only mount)
+        with tempfile.TemporaryFile(dir=base):
+            pass
+    except OSError as exc:
+        raise InputError(f"--scratch {scratch}: {base} is not writable ({exc.strerror or 'read-only or no permission'})") from None
+    held = sum(f.stat().st_size for f in path.rglob("*") if f.is_file()) if path.is_dir() else 0
+    free = shutil.disk_usage(base).free
+    if DISK_MARGIN * need - held > free:
+        raise InputError(f"--scratch {scratch}: the chunked evaluation needs about {need / 2**30:.1f} GiB there, "
+                         f"{free / 2**30:.1f} GiB free; give a folder on a larger disk or lower the depth")
+    return path
+
+
+def plan_sparse_path(p: int, settings, scratch: str | None, gradient: bool, option: str) -> SparsePath:
+    """Choose the path of a sparse evaluation at depth p and check it fits, before any work.
+
+    In memory unless --scratch is given; with --scratch the vectors are chunked (out of core in
+    this process, or on Dask workers with a distributed executor).  InputError (one line) for a
+    depth that fits nowhere, a gradient with --scratch, or an unusable scratch folder."""
+    from leadline.kernels.sparse import CHUNK_POINTS_BITS
+
+    from ..spec import MAX_DEPTH
+
+    if p > MAX_DEPTH:
+        raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
+    vec = 16.0 * 2 ** (2 * p - 1)
+    distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
+    if scratch is None:
+        check_sparse_depth(p, settings, option, gradient=gradient)
+        return SparsePath("memory", SPARSE_VECTORS * vec * (GRADIENT_MEMORY_FACTOR if gradient else 1.0), 0.0)
+    if gradient:
+        raise InputError("--scratch computes values only (the gradient runs in memory); drop --gradient or --scratch")
+    disk = SCRATCH_VECTORS * vec
+    path = check_scratch(scratch, disk)
+    task = BANDS_PER_TASK * 16.0 * 2**CHUNK_POINTS_BITS
+    if distributed:
+        workers = max(1, int(getattr(settings, "workers", None) or 1))
+        # a transform's row bands and their rechunked copy, spread over the workers
+        return SparsePath("workers", max(task, 2.0 * vec / workers), disk, path)
+    return SparsePath("disk", min(task, 2.5 * vec), disk, path)
 
 
 def _report(ev) -> str:
@@ -95,8 +192,49 @@ def transform_map(settings):
         yield ex.run_map
 
 
+def _evaluate_scratch(q, D, g, b, path: SparsePath, settings):
+    """The chunked evaluation in the scratch folder (out of core, or on the executor's Dask
+    workers); progress per step on stderr unless --quiet; the folder is removed after success
+    and kept (for the resume) after a failure."""
+    import time
+
+    from leadline.cluster.sparse_vectors import ZarrBandStore
+    from leadline.kernels.sparse import CHUNK_POINTS_BITS, evaluate_chunked
+    from leadline.storage.errors import StoreError
+    from leadline.storage.sparse_scratch import SparseScratch
+
+    quiet = settings is None or settings.quiet
+    fingerprint = {"q": q, "degree": D, "gamma": [float(x).hex() for x in g], "beta": [float(x).hex() for x in b],
+                   "band_bits": CHUNK_POINTS_BITS}
+    try:
+        scratch = SparseScratch.open(path.scratch, fingerprint)
+    except StoreError as exc:
+        raise InputError(str(exc)) from None
+    p = g.size
+    if not quiet:
+        typer.echo(path.describe(p) + (f"; resuming after step {scratch.finished()[0]}" if scratch.resumed else ""), err=True)
+    start = time.perf_counter()
+
+    def progress(m, p, seconds):
+        if not quiet:
+            what = "root" if m > p else f"step {m}/{p}"
+            typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
+
+    if path.kind == "workers":
+        from .. import compute
+
+        with compute.open_compute(settings) as ex:
+            store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=ex.client)
+            ev = evaluate_chunked(q, D, g, b, store, target_bits=CHUNK_POINTS_BITS, progress=progress)
+    else:
+        store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS)
+        ev = evaluate_chunked(q, D, g, b, store, target_bits=CHUNK_POINTS_BITS, progress=progress)
+    scratch.remove()
+    return ev
+
+
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
-                    settings=None) -> None:
+                    settings=None, scratch=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
     from ..angles import read_angles
     from ..parsing import angle_pair
@@ -109,9 +247,12 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
-    check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta", gradient=gradient)
-    with transform_map(settings) as run_map:
-        ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
+    path = plan_sparse_path(g.size, settings, scratch, gradient, "--angles" if angles is not None else "--gamma/--beta")
+    if path.kind == "memory":
+        with transform_map(settings) as run_map:
+            ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
+    else:
+        ev = _evaluate_scratch(q, D, g, b, path, settings)
     if as_json:
         out = ev.to_json()
         out["ensemble"] = ensemble_json(q, D)

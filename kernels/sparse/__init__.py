@@ -6,7 +6,8 @@ Modules (private): ``_recursion`` (the entry :func:`evaluate_sparse`, method not
 ``_common`` (problem check, tolerance, result), ``_transforms`` (Walsh-Hadamard transforms),
 ``_spectra`` (phases and their closed-form spectra), ``_steps`` (pieces of one step),
 ``_growing`` and ``_full`` (the two recursions), ``_adjoint`` (the growing contour's reverse
-sweep), ``_optimize`` (the angle optimizer).
+sweep), ``_chunked`` (the growing recursion on chunked vectors in an injected store: out of core
+or on Dask workers), ``_optimize`` (the angle optimizer).
 
 May import: numpy, :mod:`leadline.kernels.mixture`, the contour layout of
 :mod:`leadline.kernels.exact` and the angle helpers of :mod:`leadline.kernels.optimize`.
@@ -39,6 +40,12 @@ _WHERE = {
     "optimize_sparse": "_optimize",
     "SparseOptimization": "_optimize",
     "check_problem": "_common",
+    "evaluate_chunked": "_chunked",
+    "BandStore": "_chunked",
+    "rows_bits": "_chunked",
+    "band_bits": "_chunked",
+    "step_sizes": "_chunked",
+    "CHUNK_POINTS_BITS": "_chunked",
 }
 
 __all__ = list(_WHERE)
