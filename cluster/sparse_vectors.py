@@ -28,10 +28,20 @@ from leadline.storage.faults import crash_point
 __all__ = ["ZarrBandStore"]
 
 
-def _row_task(block, row_func, width, block_info=None):
+def _band_task(row_func, width, i, *blocks):
+    """Band i of a transform's row pass: (2-D band of the output, partial result or None)."""
     crash_point("sparse-band-task")
-    i = block_info[0]["chunk-location"][0]
-    return row_func(np.ascontiguousarray(block).reshape(-1), i).reshape(-1, width)
+    out = row_func(*[np.ascontiguousarray(b).reshape(-1) for b in blocks], i)
+    band, part = out if isinstance(out, tuple) else (out, None)
+    return band.reshape(-1, width), part
+
+
+def _band(result):
+    return result[0]
+
+
+def _partial(result):
+    return result[1]
 
 
 def _reduce_task(block, func, i):
@@ -90,26 +100,41 @@ class ZarrBandStore:
     def drop(self, name):
         self.scratch.delete(name)
 
-    def transform(self, out, row_func, src, out_n, bands, col_func):
+    def transform(self, out, row_func, srcs, out_n, bands, col_func=None):
+        import dask
         import dask.array as da
 
-        zs = self.scratch.array(src)
-        x = da.from_zarr(zs, chunks=(zs.shape[0] // bands, zs.shape[1]))
+        srcs = [srcs] if isinstance(srcs, str) else list(srcs)
+        inputs = []
+        for name in srcs:
+            z = self.scratch.array(name)
+            inputs.append(da.from_zarr(z, chunks=(z.shape[0] // bands, z.shape[1])).to_delayed().ravel())
         shape, chunks = self._layout(out_n, bands)
         R, W = shape
-        rows = da.map_blocks(_row_task, x, row_func=row_func, width=W, chunks=((R // bands,) * bands, (W,)),
-                             dtype=complex, meta=np.empty((0, 0), dtype=complex))
-        if self.exchange == "rechunk":
-            cols = rows.rechunk((R, chunks[1]))
+        results = [dask.delayed(_band_task, pure=True)(row_func, W, i, *[blocks[i] for blocks in inputs])
+                   for i in range(bands)]
+        rows = da.concatenate([da.from_delayed(dask.delayed(_band)(r), shape=(R // bands, W), dtype=complex)
+                               for r in results], axis=0)
+        partials = [dask.delayed(_partial)(r) for r in results]
+        if col_func is None:
+            result = rows
+        elif self.exchange == "rechunk":
+            result = rows.rechunk((R, chunks[1]))
         else:
             tmp = self.scratch.create(out + ".rows", shape, chunks)
-            self._compute(da.store(rows, tmp, lock=False, compute=False))
-            cols = da.from_zarr(tmp, chunks=(R, chunks[1]))
-        result = cols.map_blocks(col_func, dtype=complex, meta=np.empty((0, 0), dtype=complex))
+            partials = self._compute(da.store(rows, tmp, lock=False, compute=False), *partials)[1:]
+            result = da.from_zarr(tmp, chunks=(R, chunks[1]))
+            self.passes += 1
+        if col_func is not None:
+            result = result.map_blocks(col_func, dtype=complex, meta=np.empty((0, 0), dtype=complex))
         target = self.scratch.create(out, shape, chunks)
-        self._compute(da.store(result, target, lock=False, compute=False))
+        if col_func is not None and self.exchange == "disk":
+            self._compute(da.store(result, target, lock=False, compute=False))
+        else:
+            partials = self._compute(da.store(result, target, lock=False, compute=False), *partials)[1:]
         self.scratch.delete(out + ".rows")
-        self.passes += 2
+        self.passes += 1
+        return list(partials)
 
     def reduce(self, func, src, bands):
         import dask

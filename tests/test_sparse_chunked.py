@@ -2,7 +2,7 @@
 
 The reference is the in-memory growing-contour recursion, itself checked against brute-force
 statevectors and published values in test_sparse.py.  Here: the same value to 1e-14 when the
-step vectors are cut into bands (in process, out of core in a Zarr folder, on real Dask worker
+step vectors are cut into bands, in value and gradient (in process, out of core in a Zarr folder, on real Dask worker
 processes, also when one of them is killed by SIGKILL during a transform), the kill -9 resume
 of a checkpointed evaluation (no finished step computed again), and the one-line refusals of
 the command line's cost guard.
@@ -43,11 +43,18 @@ def _angles(p: int, D: float, seed: int):
 def test_banded_in_process_equals_in_memory(q, D, pmax):
     for p in range(1, pmax + 1):
         g, b = _angles(p, D, 10 * p + q)
-        ref = evaluate_sparse(q, D, g, b).value
+        ref = evaluate_sparse(q, D, g, b, gradient=True)
         for target in (4, 7, 22):  # many small bands, a few, one
-            got = evaluate_chunked(q, D, g, b, BandStore(), target_bits=target)
-            assert abs(got.value - ref) <= 1e-14, (p, target)
+            got = evaluate_chunked(q, D, g, b, BandStore(), target_bits=target, gradient=p <= 7)
+            assert abs(got.value - ref.value) <= 1e-14, (p, target)
             assert got.residuals["sum_fH"] <= 1e-13
+            if p <= 7:
+                _same_gradient(got, ref)
+
+
+def _same_gradient(got, ref):
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(got.gradient[k], ref.gradient[k], rtol=0, atol=1e-14)
 
 
 def _zarr_store(tmp_path, exchange, target=12, client=None):
@@ -58,14 +65,17 @@ def _zarr_store(tmp_path, exchange, target=12, client=None):
     return ZarrBandStore(scratch, target_bits=target, client=client, exchange=exchange)
 
 
-@pytest.mark.parametrize("q,D,p", [(2, 3, 7), (3, 4, 6)])
+@pytest.mark.parametrize("q,D,p", [(2, 3, 6), (3, 4, 5)])
 @pytest.mark.parametrize("exchange", ["disk", "rechunk"])
 def test_zarr_store_equals_in_memory(tmp_path, q, D, p, exchange):
     g, b = _angles(p, D, 7)
-    ref = evaluate_sparse(q, D, g, b).value
+    ref = evaluate_sparse(q, D, g, b, gradient=True)
     store = _zarr_store(tmp_path, exchange, target=10)
-    assert abs(evaluate_chunked(q, D, g, b, store, target_bits=10).value - ref) <= 1e-14
+    got = evaluate_chunked(q, D, g, b, store, target_bits=10, gradient=True)
+    assert abs(got.value - ref.value) <= 1e-14
+    _same_gradient(got, ref)
     assert store.scratch.finished()[0] == p  # every step recorded
+    assert [f.name for f in (store.scratch.path / "vectors.zarr").iterdir()] == ["zarr.json"]  # nothing left
 
 
 def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
@@ -75,9 +85,9 @@ def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
 
     from leadline.tests.test_cluster import ProcessCluster
 
-    q, D, p = 2, 3, 7
+    q, D, p = 2, 3, 6
     g, b = _angles(p, D, 3)
-    ref = evaluate_sparse(q, D, g, b).value
+    ref = evaluate_sparse(q, D, g, b, gradient=True)
     hold = tmp_path / "hold.json"
     monkeypatch.setenv("LEADLINE_HOLD_AT", "sparse-band-task:3")
     monkeypatch.setenv("LEADLINE_HOLD_FILE", str(hold))
@@ -105,7 +115,7 @@ def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
             t = threading.Thread(target=kill_when_held)
             t.start()
             try:
-                got = evaluate_chunked(q, D, g, b, store, target_bits=10)
+                got = evaluate_chunked(q, D, g, b, store, target_bits=10, gradient=True)
             finally:
                 stop.set()
                 t.join(timeout=60)
@@ -113,7 +123,8 @@ def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
             assert len(client.nthreads()) == 1  # the scheduler saw the worker go
     finally:
         cluster.close()
-    assert abs(got.value - ref) <= 1e-14
+    assert abs(got.value - ref.value) <= 1e-14
+    _same_gradient(got, ref)
 
 
 def _read_json(path: Path):
@@ -162,8 +173,6 @@ def test_refusals_before_any_work(tmp_path):
     r = _evaluate_cli(tmp_path, 20, tmp_path / "big")
     _refused(r, "GiB free")
     assert not (tmp_path / "big").exists()
-    # the gradient runs in memory only
-    _refused(_evaluate_cli(tmp_path, 4, tmp_path / "g", extra=["--gradient"]), "values only")
     # a folder that holds something else, and a folder of another evaluation
     (tmp_path / "other").mkdir()
     (tmp_path / "other" / "notes.txt").write_text("mine")

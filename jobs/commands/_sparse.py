@@ -66,7 +66,7 @@ def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) ->
         )
 
 
-SCRATCH_HELP = ("Sparse ensembles, value only: keep the step vectors as Zarr arrays in this folder (out of core; "
+SCRATCH_HELP = ("Sparse ensembles: keep the step vectors as Zarr arrays in this folder (out of core; "
                 "with --executor local/scheduler/batch they live on the Dask workers and the folder must be one "
                 "every worker sees) and record every finished step there, so a killed run given the same folder "
                 "resumes after its last finished step. Removed after success.")
@@ -74,6 +74,9 @@ SCRATCH_HELP = ("Sparse ensembles, value only: keep the step vectors as Zarr arr
 #: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py:
 #: the root's input, its outer transform and that transform's row-pass copy)
 SCRATCH_VECTORS = 3.0
+#: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25), plus the
+#: root's and the reverse sweep's vectors at the last depth (measured peak 5.3 at p = 8)
+SCRATCH_VECTORS_GRADIENT = 6.0
 #: complex numbers a task of the chunked path holds at most, in bands of 2^CHUNK_POINTS_BITS points
 #: (a band in, a band out, a column block and a transform scratch)
 BANDS_PER_TASK = 4
@@ -149,9 +152,7 @@ def plan_sparse_path(p: int, settings, scratch: str | None, gradient: bool, opti
     if scratch is None:
         check_sparse_depth(p, settings, option, gradient=gradient)
         return SparsePath("memory", SPARSE_VECTORS * vec * (GRADIENT_MEMORY_FACTOR if gradient else 1.0), 0.0)
-    if gradient:
-        raise InputError("--scratch computes values only (the gradient runs in memory); drop --gradient or --scratch")
-    disk = SCRATCH_VECTORS * vec
+    disk = (SCRATCH_VECTORS_GRADIENT if gradient else SCRATCH_VECTORS) * vec
     path = check_scratch(scratch, disk)
     task = BANDS_PER_TASK * 16.0 * 2**CHUNK_POINTS_BITS
     if distributed:
@@ -192,7 +193,7 @@ def transform_map(settings):
         yield ex.run_map
 
 
-def _evaluate_scratch(q, D, g, b, path: SparsePath, settings):
+def _evaluate_scratch(q, D, g, b, path: SparsePath, settings, gradient: bool = False):
     """The chunked evaluation in the scratch folder (out of core, or on the executor's Dask
     workers); progress per step on stderr unless --quiet; the folder is removed after success
     and kept (for the resume) after a failure."""
@@ -205,7 +206,7 @@ def _evaluate_scratch(q, D, g, b, path: SparsePath, settings):
 
     quiet = settings is None or settings.quiet
     fingerprint = {"q": q, "degree": D, "gamma": [float(x).hex() for x in g], "beta": [float(x).hex() for x in b],
-                   "band_bits": CHUNK_POINTS_BITS}
+                   "band_bits": CHUNK_POINTS_BITS, "gradient": bool(gradient)}
     try:
         scratch = SparseScratch.open(path.scratch, fingerprint)
     except StoreError as exc:
@@ -217,7 +218,8 @@ def _evaluate_scratch(q, D, g, b, path: SparsePath, settings):
 
     def progress(m, p, seconds):
         if not quiet:
-            what = "root" if m > p else f"step {m}/{p}"
+            what = ("root" if m > p else f"step {m}/{p}") if m > 0 else (
+                "reverse sweep: root" if -m > p else f"reverse sweep: step {-m}")
             typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
 
     if path.kind == "workers":
@@ -225,10 +227,12 @@ def _evaluate_scratch(q, D, g, b, path: SparsePath, settings):
 
         with compute.open_compute(settings) as ex:
             store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=ex.client)
-            ev = evaluate_chunked(q, D, g, b, store, target_bits=CHUNK_POINTS_BITS, progress=progress)
+            ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS,
+                                  progress=progress)
     else:
         store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS)
-        ev = evaluate_chunked(q, D, g, b, store, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS,
+                                  progress=progress)
     scratch.remove()
     return ev
 
@@ -252,7 +256,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         with transform_map(settings) as run_map:
             ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
     else:
-        ev = _evaluate_scratch(q, D, g, b, path, settings)
+        ev = _evaluate_scratch(q, D, g, b, path, settings, gradient)
     if as_json:
         out = ev.to_json()
         out["ensemble"] = ensemble_json(q, D)
