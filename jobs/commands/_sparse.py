@@ -102,6 +102,8 @@ class SparsePath:
 
 
 def _size(nbytes: float) -> str:
+    if nbytes < 2**20:
+        return "under 1 MiB"
     return f"{nbytes / 2**30:.1f} GiB" if nbytes >= 2**30 else f"{nbytes / 2**20:.0f} MiB"
 
 
@@ -193,10 +195,12 @@ def transform_map(settings):
         yield ex.run_map
 
 
-def _evaluate_scratch(q, D, g, b, path: SparsePath, settings, gradient: bool = False):
-    """The chunked evaluation in the scratch folder (out of core, or on the executor's Dask
-    workers); progress per step on stderr unless --quiet; the folder is removed after success
-    and kept (for the resume) after a failure."""
+@contextlib.contextmanager
+def scratch_runner(path: SparsePath, settings, label=None):
+    """``chunked(q, D, g, b, gradient)`` for :func:`evaluate_sparse`: each evaluation in the scratch
+    folder (out of core, or on the executor's Dask workers), progress per step on stderr unless
+    --quiet, the folder removed after success and kept (for the resume) after a failure.  With
+    ``label`` (the optimizer) every evaluation uses the subfolder "<label>" afresh."""
     import time
 
     from leadline.cluster.sparse_vectors import ZarrBandStore
@@ -205,36 +209,46 @@ def _evaluate_scratch(q, D, g, b, path: SparsePath, settings, gradient: bool = F
     from leadline.storage.sparse_scratch import SparseScratch
 
     quiet = settings is None or settings.quiet
-    fingerprint = {"q": q, "degree": D, "gamma": [float(x).hex() for x in g], "beta": [float(x).hex() for x in b],
-                   "band_bits": CHUNK_POINTS_BITS, "gradient": bool(gradient)}
-    try:
-        scratch = SparseScratch.open(path.scratch, fingerprint)
-    except StoreError as exc:
-        raise InputError(str(exc)) from None
-    p = g.size
-    if not quiet:
-        typer.echo(path.describe(p) + (f"; resuming after step {scratch.finished()[0]}" if scratch.resumed else ""), err=True)
-    start = time.perf_counter()
+    announced = []
 
-    def progress(m, p, seconds):
-        if not quiet:
-            what = ("root" if m > p else f"step {m}/{p}") if m > 0 else (
-                "reverse sweep: root" if -m > p else f"reverse sweep: step {-m}")
-            typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
+    def run(q, D, g, b, gradient, client=None):
+        fingerprint = {"q": q, "degree": D, "gamma": [float(x).hex() for x in g],
+                       "beta": [float(x).hex() for x in b], "band_bits": CHUNK_POINTS_BITS, "gradient": bool(gradient)}
+        folder = path.scratch if label is None else path.scratch / label
+        try:
+            if label is not None and folder.exists():
+                SparseScratch(folder, {}).remove()  # the optimizer's previous evaluation (other angles)
+            scratch = SparseScratch.open(folder, fingerprint)
+        except StoreError as exc:
+            raise InputError(str(exc)) from None
+        p = g.size
+        if not quiet and (label is None or not announced):
+            typer.echo(path.describe(p) + (f"; resuming after step {scratch.finished()[0]}" if scratch.resumed else ""),
+                       err=True)
+            announced.append(p)
+        start = time.perf_counter()
+
+        def progress(m, p, seconds):
+            if not quiet and label is None:
+                what = ("root" if m > p else f"step {m}/{p}") if m > 0 else (
+                    "reverse sweep: root" if -m > p else f"reverse sweep: step {-m}")
+                typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
+
+        store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=client)
+        ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        scratch.remove()
+        return ev
 
     if path.kind == "workers":
         from .. import compute
 
         with compute.open_compute(settings) as ex:
-            store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=ex.client)
-            ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS,
-                                  progress=progress)
+            yield lambda q, D, g, b, gradient: run(q, D, g, b, gradient, ex.client)
     else:
-        store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS)
-        ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS,
-                                  progress=progress)
-    scratch.remove()
-    return ev
+        yield run
+    if label is not None:
+        with contextlib.suppress(OSError):
+            path.scratch.rmdir()  # only if empty: the folder may hold the user's own files
 
 
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
@@ -256,7 +270,8 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         with transform_map(settings) as run_map:
             ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
     else:
-        ev = _evaluate_scratch(q, D, g, b, path, settings, gradient)
+        with scratch_runner(path, settings) as chunked:
+            ev = evaluate_sparse(q, D, g, b, gradient=gradient, chunked=chunked)
     if as_json:
         out = ev.to_json()
         out["ensemble"] = ensemble_json(q, D)
@@ -266,7 +281,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
 
 
 def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e-7, maxiter=500, output=None, as_json=False, start=None,
-                    settings=None) -> None:
+                    settings=None, scratch=None) -> None:
     """`leadline optimize --xorsat Q --degree D --depth P`: depths 1..P in turn (INTERP warm starts).
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
@@ -279,13 +294,18 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     q, D = check_sparse(xorsat, degree, xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
-    check_sparse_depth(depth, settings, "--depth", gradient=True)
+    path = plan_sparse_path(depth, settings, scratch, True, "--depth")
     if output is not None:
         check_output_file(output)
-    with transform_map(settings) as run_map:
-        run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
-                            maxiter=maxiter, ensemble=ensemble_json(q, D),
-                            evaluate_kw={"run_map": run_map} if run_map is not None else None)
+    if path.kind == "memory":
+        with transform_map(settings) as run_map:
+            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
+                                maxiter=maxiter, ensemble=ensemble_json(q, D),
+                                evaluate_kw={"run_map": run_map} if run_map is not None else None)
+    else:
+        with scratch_runner(path, settings, label="evaluation") as chunked:
+            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
+                                maxiter=maxiter, ensemble=ensemble_json(q, D), evaluate_kw={"chunked": chunked})
     result, ladder, first, wall = run.result, run.ladder, run.first_depth, run.wall_time
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))

@@ -45,6 +45,7 @@ def optimize_command(
     threads_per_worker: int = compute.threads_option(),
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
+    scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -64,7 +65,10 @@ def optimize_command(
     if sparse.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
-                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings)
+                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings,
+                                          scratch=scratch)
+    if scratch is not None:
+        raise InputError("--scratch is for sparse ensembles (--xorsat Q --degree D)")
     mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")

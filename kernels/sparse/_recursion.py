@@ -95,6 +95,7 @@ def evaluate_sparse(
     n_high: int | None = None,
     memory_budget_bytes: int | None = None,
     contour: str = "growing",
+    chunked=None,
 ) -> SparseEvaluation:
     """Exact nu_p(D; gamma, beta) of Max-q-XORSAT on a D-regular hypertree, optionally with gradient.
 
@@ -114,11 +115,16 @@ def evaluate_sparse(
         about 0.42 x 2^(2p+1) complex numbers.
     contour : "growing" (default: step m on the depth-m contour, transforms of at
         most 2^(2m-1) points) or "full" (every step on all 2^(2p+1) paths; the baseline)
+    chunked : ``chunked(q, D, gamma, beta, gradient) -> SparseEvaluation`` that runs the
+        evaluation on chunked vectors instead (``evaluate_chunked`` with a vector store; the
+        command line's ``--scratch`` passes one), or None (in memory)
     """
     t0 = time.perf_counter()
     q, D = check_problem(q, degree)
     g, b = check_angles(gamma, beta)
     p = g.size
+    if chunked is not None:
+        return chunked(q, D, g, b, gradient)
     if contour == "growing":
         return _evaluate_growing(q, D, g, b, gradient, run_map, n_high, t0)
     if contour != "full":
