@@ -135,7 +135,8 @@ print(json.dumps(out))
 """
 
 
-def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0, bits: int | None = None) -> dict:
+def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0, bits: int | None = None,
+                only: str | None = None) -> dict:
     """In memory, then out of core (and on a local cluster if ``workers``), fresh processes, interleaved."""
     import os
     import subprocess
@@ -146,6 +147,8 @@ def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0,
     env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
     runs = []
     for where in ["memory", "disk"] + (["workers"] if workers else []):
+        if only and where != only:
+            continue
         r = subprocess.run([sys.executable, "-c", _CHILD, str(p), where, scratch, str(workers), str(worker_gib), str(bits)],
                            capture_output=True, text=True, env=env)
         if r.returncode != 0:
@@ -185,10 +188,11 @@ def main(argv=None) -> int:
     ap.add_argument("--worker-gib", type=float, default=6.0, help="memory limit of each worker (GiB)")
     ap.add_argument("--scratch", default="bench-sparse-scratch", help="scratch folder of the chunked runs")
     ap.add_argument("--band-bits", type=int, default=None, help="bands of about 2^BITS points")
+    ap.add_argument("--only", choices=["memory", "disk", "workers"], default=None, help="with --chunked: run only this path")
     ap.add_argument("--published", action="store_true", help="the MaxCut D = 3 ladder p = 1..10 against the table")
     a = ap.parse_args(argv)
     if a.chunked:
-        out = run_chunked(a.chunked, a.scratch, a.workers, a.worker_gib, a.band_bits)
+        out = run_chunked(a.chunked, a.scratch, a.workers, a.worker_gib, a.band_bits, a.only)
     elif a.published:
         out = run_published()
     else:

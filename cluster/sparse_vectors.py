@@ -12,7 +12,9 @@ drives it; the protocol is in kernels/sparse/_chunked.py):
   same graph, but the row-transformed bands stay in worker memory and Dask's own ``rechunk``
   turns them into column blocks (the exchange between the halves of the transform); only the
   results are written to the scratch folder, which must be on a file system every worker
-  sees.  A killed worker's tasks are recomputed by Dask from the arrays on disk.
+  sees.  A transform whose vector would not fit twice in half the workers' memory exchanges
+  through the folder instead (the workers run the same tasks).  A killed worker's tasks are
+  recomputed by Dask from the arrays on disk.
 
 Every task is a pure function of its input blocks and writes whole Zarr chunks, so a task
 run twice (a retry, a lost worker) writes the same bytes.
@@ -54,15 +56,17 @@ class ZarrBandStore:
     client : a distributed Client (vectors computed on its workers, exchange by rechunk), or
         None (out of core in this process, exchange through the disk)
     target_bits : column blocks of about 2^target_bits points
-    exchange : "rechunk" or "disk" (default: rechunk with a client, disk without)
+    exchange : "rechunk" or "disk"; default: without a client "disk"; with one "rechunk" for every
+        transform whose vector, twice (row bands and their rechunked copy), fits in half of the
+        workers' memory limits, else "disk" (the workers then exchange through DIR)
     """
 
     def __init__(self, scratch, *, target_bits: int, client=None, exchange: str | None = None):
         self.scratch = scratch
         self.client = client
         self.target_bits = int(target_bits)
-        self.exchange = exchange or ("rechunk" if client is not None else "disk")
-        if self.exchange not in ("rechunk", "disk"):
+        self.exchange = exchange
+        if self.exchange not in (None, "rechunk", "disk"):
             raise ValueError(f"exchange must be 'rechunk' or 'disk', got {self.exchange!r}")
         self.passes = 0
 
@@ -81,6 +85,18 @@ class ZarrBandStore:
         R, W = 1 << B, 1 << (n - B)
         cols = max(1, min(W, (1 << self.target_bits) >> B))
         return (R, W), (R // bands, cols)
+
+    def exchange_for(self, n: int) -> str:
+        """How a transform of 2^n points exchanges its halves (see the class docstring)."""
+        if self.exchange is not None:
+            return self.exchange
+        if self.client is None:
+            return "disk"
+        workers = self.client.scheduler_info().get("workers", {})
+        limits = [w.get("memory_limit") or 0 for w in workers.values()]
+        if not limits or min(limits) <= 0:
+            return "rechunk"
+        return "rechunk" if 2 * 16 * 2.0**n / len(limits) <= 0.5 * min(limits) else "disk"
 
     # ---------------------------------------------------------------- protocol
     def put(self, name, flat):
@@ -105,6 +121,7 @@ class ZarrBandStore:
         import dask.array as da
 
         srcs = [srcs] if isinstance(srcs, str) else list(srcs)
+        mode = self.exchange_for(out_n)
         inputs = []
         for name in srcs:
             z = self.scratch.array(name)
@@ -118,7 +135,7 @@ class ZarrBandStore:
         partials = [dask.delayed(_partial)(r) for r in results]
         if col_func is None:
             result = rows
-        elif self.exchange == "rechunk":
+        elif mode == "rechunk":
             result = rows.rechunk((R, chunks[1]))
         else:
             tmp = self.scratch.create(out + ".rows", shape, chunks)
@@ -128,7 +145,7 @@ class ZarrBandStore:
         if col_func is not None:
             result = result.map_blocks(col_func, dtype=complex, meta=np.empty((0, 0), dtype=complex))
         target = self.scratch.create(out, shape, chunks)
-        if col_func is not None and self.exchange == "disk":
+        if col_func is not None and mode == "disk":
             self._compute(da.store(result, target, lock=False, compute=False))
         else:
             partials = self._compute(da.store(result, target, lock=False, compute=False), *partials)[1:]

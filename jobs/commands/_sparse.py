@@ -96,9 +96,12 @@ class SparsePath:
     def describe(self, p: int) -> str:
         if self.kind == "memory":
             return f"sparse path = in memory, about {_size(self.memory_bytes)} at p = {p}"
-        where = "out of core" if self.kind == "disk" else "on the Dask workers"
-        return (f"sparse path = {where}, about {_size(self.memory_bytes)} per "
-                f"{'process' if self.kind == 'disk' else 'worker'}, {_size(self.disk_bytes)} in {self.scratch}")
+        if self.kind == "disk":
+            return (f"sparse path = out of core, about {_size(self.memory_bytes)} per process, "
+                    f"{_size(self.disk_bytes)} in {self.scratch}")
+        return (f"sparse path = on the Dask workers, up to {_size(self.memory_bytes)} per worker (a transform that "
+                f"does not fit in half the workers' memory exchanges through the folder instead), "
+                f"{_size(self.disk_bytes)} in {self.scratch}")
 
 
 def _size(nbytes: float) -> str:
