@@ -203,3 +203,14 @@ def test_read_only_or_full_scratch_folder(tmp_path, fs):
     script = f"{mount} && " + " ".join(f"'{a}'" for a in cmd) + f"; rc=$?; ls -A {mnt}; exit $rc"
     r = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=120)
     _refused(r, "not writable" if fs == "read-only" else "GiB free")
+
+
+def test_sweep_refuses_a_sparse_depth_that_fits_nowhere(tmp_path):
+    # the memory check pretends a 5 kB machine (LEADLINE_SPARSE_MEMORY_BYTES); p = 20 needs 48 TiB of scratch
+    (tmp_path / "s.toml").write_text('[study]\nname = "t"\nstore = "s.zarr"\n[depths]\npmax = 20\n'
+                                     '[[ensemble]]\nlabel = "mc"\nkind = "sparse"\nq = 2\ndegree = 3\n')
+    env = {**os.environ, "LEADLINE_SPARSE_MEMORY_BYTES": "5000"}
+    r = subprocess.run([*LEADLINE, "sweep", "s.toml", "--quiet"], capture_output=True, text=True, timeout=120,
+                       cwd=tmp_path, env=env)
+    _refused(r, "GiB free")
+    assert sorted(os.listdir(tmp_path)) == ["s.toml"]  # no store, no scratch folder

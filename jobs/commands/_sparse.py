@@ -25,7 +25,7 @@ from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
 from ..errors import InputError
 from ..sparse_ensemble import check_sparse, ensemble_json
 
-__all__ = ["XORSAT_HELP", "DEGREE_HELP", "SCRATCH_HELP", "plan_sparse_path", "SparsePath", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
+__all__ = ["XORSAT_HELP", "DEGREE_HELP", "SCRATCH_HELP", "plan_sparse_path", "SparsePath", "scratch_runner", "fits_in_memory", "check_sweep_sparse", "sweep_scratch", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
 
 XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
 DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
@@ -44,6 +44,40 @@ SPARSE_VECTORS = 1.25
 GRADIENT_MEMORY_FACTOR = 2.5
 
 
+#: tests: pretend the machine has this many bytes of memory (the switch to chunked vectors)
+MEMORY_ENV = "LEADLINE_SPARSE_MEMORY_BYTES"
+
+
+def _memory_total() -> float:
+    import os
+
+    if os.environ.get(MEMORY_ENV):
+        return float(os.environ[MEMORY_ENV])
+    import psutil
+
+    return float(psutil.virtual_memory().total)
+
+
+def fits_in_memory(p: int, gradient: bool) -> bool:
+    """Does the in-memory recursion at depth p fit in 80% of this machine's memory?"""
+    need = SPARSE_VECTORS * 16 * 2 ** (2 * p - 1) * (GRADIENT_MEMORY_FACTOR if gradient else 1.0)
+    return need <= 0.8 * _memory_total()
+
+
+def sweep_scratch(store_path) -> Path:
+    """Where a sweep keeps the chunked vectors of its sparse ensembles: beside its store."""
+    store_path = Path(store_path)
+    return store_path.parent / f"{store_path.name}.sparse-scratch"
+
+
+def check_sweep_sparse(spec, settings) -> None:
+    """Before a sweep starts: every sparse ensemble's deepest depth fits in memory or, chunked,
+    in the scratch folder beside the store (InputError, one line, otherwise)."""
+    for ens in spec.ensembles:
+        if ens.kind == "sparse" and not fits_in_memory(spec.pmax, True):
+            plan_sparse_path(spec.pmax, settings, str(sweep_scratch(spec.store)), True, f"ensemble {ens.label!r}")
+
+
 def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) -> None:
     """Refuse depths whose whole-vector recursion cannot fit (InputError, one line)."""
     from ..spec import MAX_DEPTH
@@ -52,12 +86,7 @@ def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) ->
         raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
     need = SPARSE_VECTORS * 16 * 2 ** (2 * p - 1) * (GRADIENT_MEMORY_FACTOR if gradient else 1.0)
     distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
-    try:
-        import psutil
-
-        total = psutil.virtual_memory().total
-    except Exception:  # pragma: no cover - psutil is a dependency
-        return
+    total = _memory_total()
     if need > 0.8 * total and not distributed:
         raise InputError(
             f"{option}: the sparse recursion at p = {p} needs about {need / 2**30:.0f} GiB"
@@ -199,7 +228,7 @@ def transform_map(settings):
 
 
 @contextlib.contextmanager
-def scratch_runner(path: SparsePath, settings, label=None):
+def scratch_runner(path: SparsePath, settings, label=None, client=None):
     """``chunked(q, D, g, b, gradient)`` for :func:`evaluate_sparse`: each evaluation in the scratch
     folder (out of core, or on the executor's Dask workers), progress per step on stderr unless
     --quiet, the folder removed after success and kept (for the resume) after a failure.  With
@@ -242,7 +271,9 @@ def scratch_runner(path: SparsePath, settings, label=None):
         scratch.remove()
         return ev
 
-    if path.kind == "workers":
+    if path.kind == "workers" and client is not None:
+        yield lambda q, D, g, b, gradient: run(q, D, g, b, gradient, client)
+    elif path.kind == "workers":
         from .. import compute
 
         with compute.open_compute(settings) as ex:

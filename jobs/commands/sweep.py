@@ -21,6 +21,7 @@ from leadline.storage.errors import StoreError
 from .. import compute
 from ..errors import InputError
 from ..spec import check_new_store, load_spec, spec_from_json
+from ._sparse import check_sweep_sparse
 
 
 def _store_errors(func):
@@ -120,6 +121,7 @@ def sweep_command(
     spec = load_spec(spec_path)
     check_new_store(spec.store)
     settings = spec.compute_settings(quiet=quiet or as_json)
+    check_sweep_sparse(spec, settings)
     open_store = lambda: StudyStore.create(  # noqa: E731
         spec.store,
         name=spec.name,
@@ -161,6 +163,7 @@ def resume_command(
     if cluster_config is not None and not cluster_config.is_file():
         raise InputError(f"--cluster-config: file {cluster_config} does not exist")
     settings = _settings_with(spec, executor, scheduler, workers, cluster_config, quiet or as_json)
+    check_sweep_sparse(spec, settings)
     StudyStore.open(store_path, command="resume").close()  # refuse now if another writer holds it
     _run(lambda: StudyStore.open(store_path, command="resume"), spec, settings, as_json, quiet)
 
