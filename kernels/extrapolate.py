@@ -301,7 +301,7 @@ class Fit:
                 resid = (np.asarray(self.fitted_values) - self.predict(np.asarray(self.depths, dtype=float))) / s
                 chi2 = float(resid @ resid)
             scale = math.sqrt(max(1.0, chi2 / dof)) if dof > 0 else 1.0
-            out = (np.linalg.pinv(jac / s[:, None]) / s[None, :], scale)
+            out = (np.linalg.pinv(jac / s[:, None]), scale)  # covariance pinv pinv^T = (J^T W J)^-1
         object.__setattr__(self, "_sens", out)
         return out
 
@@ -707,6 +707,7 @@ class Extrapolation:
     last_depth: int = 0
     last_value: float | None = None
     uncertain_depths: int = 0
+    backtest_growth: float = BACKTEST_GROWTH
 
     @property
     def used(self) -> list[WindowFit]:
@@ -744,7 +745,7 @@ class Extrapolation:
         x_last = 1.0 / self.last_depth
         x = 0.0 if math.isinf(depth) else 1.0 / depth
         reach = w.backtest.reach if w.backtest is not None else x_last
-        grown = BACKTEST_GROWTH * (w.backtest_error or 0.0) * max(0.0, x_last - x) / reach
+        grown = self.backtest_growth * (w.backtest_error or 0.0) * max(0.0, x_last - x) / reach
         return math.hypot(fit.standard_error(depth), grown) * self._spread_factor()
 
     def _band(self, depth: float, probs: Sequence[float]) -> list[float]:
@@ -827,7 +828,7 @@ class Extrapolation:
             "upper_bound_name": self.bound_name,
             "headline_rule": (
                 f"each used fit predicts a normal distribution: mean its curve, sd sqrt(se^2 + "
-                f"({BACKTEST_GROWTH:g} x back-test error x reach)^2) x sqrt({REFERENCE_DEPTHS}/n) when n < "
+                f"({self.backtest_growth:g} x back-test error x reach)^2) x sqrt({REFERENCE_DEPTHS}/n) when n < "
                 f"{REFERENCE_DEPTHS} depths; central: median of the weighted mixture; low/high: its central "
                 f"{COVERAGE:.0%}, high cut at the upper bound, low raised to V at the last depth; "
                 f"no headline with fewer than {MIN_DEPTHS} depths or {MIN_FAMILIES} families"
@@ -869,6 +870,7 @@ def extrapolate(
     families: Iterable[str] | None = None,
     min_depths: int = MIN_DEPTHS,
     min_families: int = MIN_FAMILIES,
+    backtest_growth: float = BACKTEST_GROWTH,
 ) -> Extrapolation | None:
     """Fit every family over its windows, back-test each, and form the headline numbers.
 
@@ -899,6 +901,9 @@ def extrapolate(
     min_depths, min_families : int
         Fewer depths, or fewer families with a back-tested physical fit: no headline
         (``declined`` says why; every fit is still listed).
+    backtest_growth : float
+        How many standard deviations the grown back-test error counts for
+        (default :data:`BACKTEST_GROWTH`, chosen by the SK calibration).
 
     Returns
     -------
@@ -977,7 +982,8 @@ def extrapolate(
 
     result = Extrapolation(fits, h, scale, gain, gs, bound, None, bound_name=bound_name, n_depths=n,
                            last_depth=int(p[-1]), last_value=float(v[-1]),
-                           uncertain_depths=0 if s is None else int(np.sum(s > 0)))
+                           uncertain_depths=0 if s is None else int(np.sum(s > 0)),
+                           backtest_growth=float(backtest_growth))
     n_families = len({w.family for w in fits if w.used and w.weight > 0})
     if n < min_depths:
         result.declined = f"too few depths for an extrapolation ({n}, at least {min_depths} needed)"
