@@ -16,7 +16,7 @@ from leadline.kernels.sparse import scaled_value
 
 from ._model import StudyReport
 
-__all__ = ["write_plots", "angle_plot_path", "value_axis_limits", "inset_extent", "FIGURE_SIZE_INCHES", "FIGURE_DPI"]
+__all__ = ["write_plots", "angle_plot_path", "value_axis_limits", "inset_extent", "value_figure", "FIGURE_SIZE_INCHES", "FIGURE_DPI"]
 
 
 FIGURE_SIZE_INCHES = (11.0, 5.5)
@@ -125,7 +125,7 @@ def _draw_zoom(ax, report: StudyReport, zoomed) -> None:
     x_max = inset_extent(report)
     if x_max is None:
         return
-    inset = ax.inset_axes([0.47, 0.47, 0.5, 0.48])
+    inset = ax.inset_axes([0.47, 0.4, 0.5, 0.46])
     for rep, color in zoomed:
         rows = [r for r in rep.rows if r.inverse_depth <= x_max]
         inset.plot([r.inverse_depth for r in rows], [r.value for r in rows], "o", color=color, ms=4)
@@ -178,6 +178,20 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     output = Path(output)
     paths = [output, angle_plot_path(output)]
 
+    fig, _ = value_figure(report)
+    fig.savefig(paths[0], dpi=FIGURE_DPI)
+    plt.close(fig)
+    _angle_figure(report, paths[1])
+    return paths
+
+
+def value_figure(report: StudyReport):
+    """(figure, main axes) of V_p* against 1/p (see :func:`write_plots`); the inset is ``ax.child_axes``."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
     fig, ax = plt.subplots(figsize=FIGURE_SIZE_INCHES, dpi=FIGURE_DPI)
     colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
     zoomed = []  # dense ensembles with an extrapolation, drawn again in the inset
@@ -227,8 +241,11 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         ax.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
                   frameon=False)
     fig.subplots_adjust(left=0.075, right=0.63, top=0.86, bottom=0.1)
-    fig.savefig(paths[0], dpi=FIGURE_DPI)
-    plt.close(fig)
+    return fig, ax
+
+
+def _angle_figure(report: StudyReport, path: Path) -> None:
+    import matplotlib.pyplot as plt
 
     n = max(1, len(report.ensembles))
     width, height = ANGLE_PANEL_INCHES
@@ -256,6 +273,5 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     for ax_ in axes[-1]:
         ax_.set_xlabel("(t - 1/2)/p  (position in the schedule)")
     fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.35 / (height * n), bottom=0.55 / (height * n), hspace=0.45, wspace=0.2)
-    fig.savefig(paths[1], dpi=FIGURE_DPI)
+    fig.savefig(path, dpi=FIGURE_DPI)
     plt.close(fig)
-    return paths
