@@ -488,7 +488,7 @@ def _sk_ladder_study(pmax, name="sk-ladder", kind="dense", uncertainty=None):
     depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in ladder.items() if p <= pmax]
     if uncertainty is not None:
         for d in depths:
-            d["value_uncertainty"] = uncertainty(d["p"])
+            d["error_estimate"] = uncertainty(d["p"])  # as the bath engine records it
     return InMemoryStudy(name, [({"label": "sk", "kind": kind, "xi": "2:0.5", "reference": {}}, depths)])
 
 
@@ -577,7 +577,7 @@ def test_sparse_ensembles_follow_the_same_rules():
 
 
 def test_depth_uncertainties_in_the_records_weight_the_fits():
-    """Depths from an approximate engine carry value_uncertainty in their record: the fits are
+    """Depths from an approximate engine carry error_estimate in their record: the fits are
     weighted (exact depths far above them) and the table says so; records without it are exact."""
     report = build_report(_sk_ladder_study(12, uncertainty=lambda p: 2e-5 if p > 9 else None))
     ex = report.ensembles[0].extrapolation

@@ -202,8 +202,9 @@ def _describe(meta: Mapping) -> str:
 
 
 def _value_uncertainty(rec: Mapping) -> float | None:
-    """The stored standard uncertainty of V_p* of a depth record (None: exact)."""
-    for key in ("value_uncertainty", "uncertainty"):
+    """The stored uncertainty of V_p* of a depth record (None: exact): the bath engine's
+    ``error_estimate``, or a ``value_uncertainty`` / ``uncertainty`` given with the value."""
+    for key in ("error_estimate", "value_uncertainty", "uncertainty"):
         if rec.get(key) is not None:
             return rec.get(key)
     return None
