@@ -6,7 +6,7 @@ normalization E[H(z)H(z')] = n xi(R); larger is better).  docs/extrapolation.md
 is the user's description of everything below, with the calibration on the SK
 ladder that chose the constants.
 
-Fit families (each over several windows "the last n finished depths"):
+Fit families (each over several windows "the last w finished depths"):
 
 * ``linear-in-1/p``, ``quadratic-in-1/p``, ``cubic-in-1/p``: polynomials in
   x = 1/p of degree 1, 2, 3, V(p) = c_0 + c_1/p + ... + c_d/p^d; V_inf = c_0.
@@ -756,7 +756,8 @@ class Extrapolation:
         return _mixture_quantiles(means, sds, weights / weights.sum(), probs)
 
     def estimate_at(self, depth: float) -> Estimate | None:
-        """Headline of V at ``depth`` (math.inf: V_inf): mixture median and central interval, cut and raised."""
+        """Headline of V at ``depth`` (math.inf: V_inf): mixture median and central interval, cut at
+        the upper bound and, beyond the last depth, raised to V_pmax*."""
         if self.declined is not None or not self.used:
             return None
         tail = (1.0 - COVERAGE) / 2
@@ -765,7 +766,7 @@ class Extrapolation:
         if self.upper_bound is not None and high > self.upper_bound:
             high, capped = float(self.upper_bound), True
             central = min(central, high)
-        if self.last_value is not None and low < self.last_value:
+        if self.last_value is not None and depth >= self.last_depth and low < self.last_value:
             low, floored = float(self.last_value), True
             central = max(central, low)
         by_family = {fam: float(w.fit.predict(depth)) for fam, w in self.best_by_family().items()}
