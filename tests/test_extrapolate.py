@@ -525,3 +525,13 @@ def test_depths_with_error_estimates_widen_the_range_and_still_cover_the_truth()
         extrapolate(DEPTHS, noisy_values, uncertainties=sigma[:-1])
     with pytest.raises(ValueError, match="uncertainties"):
         extrapolate(DEPTHS, noisy_values, uncertainties=-sigma - 1e-3)
+
+
+def test_low_end_is_raised_to_the_last_value_only_beyond_the_last_depth():
+    """V_p* does not decrease with p (depth p emulates p - 1 with zero angles; Farhi, Goldstone,
+    Gutmann, arXiv:1411.4028 (2014)): beyond p = 12 no range reaches below V_12*, inside the data it may."""
+    depths, values = load_sk_fixture()
+    ex = extrapolate(depths[:12], values[:12], ground_state=PARISI, at_depths=[5, 13, 40], target_ratios=())
+    assert ex.at_depth[5].low < values[11] and ex.at_depth[5].covers(values[4])
+    assert ex.at_depth[13].low >= values[11] and ex.at_depth[40].low >= values[11]
+    assert ex.at_depth[13].covers(values[12])
