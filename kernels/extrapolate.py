@@ -558,19 +558,15 @@ def _mixture_quantiles(means: np.ndarray, sds: np.ndarray, weights: np.ndarray, 
     from scipy.special import ndtr
 
     sds = np.maximum(sds, 1e-15 * np.maximum(1.0, np.abs(means)))
-    lo0 = float(np.min(means - 9 * sds))
-    hi0 = float(np.max(means + 9 * sds))
-    out = []
-    for prob in probs:
-        lo, hi = lo0, hi0
-        for _ in range(80):
-            mid = 0.5 * (lo + hi)
-            if float(weights @ ndtr((mid - means) / sds)) < prob:
-                lo = mid
-            else:
-                hi = mid
-        out.append(0.5 * (lo + hi))
-    return out
+    target = np.asarray(probs, dtype=float)
+    lo = np.full(target.shape, float(np.min(means - 9 * sds)))
+    hi = np.full(target.shape, float(np.max(means + 9 * sds)))
+    for _ in range(64):  # all quantiles at once (2^-64 of the bracket)
+        mid = 0.5 * (lo + hi)
+        below = ndtr((mid[:, None] - means[None, :]) / sds[None, :]) @ weights < target
+        lo = np.where(below, mid, lo)
+        hi = np.where(below, hi, mid)
+    return [float(x) for x in 0.5 * (lo + hi)]
 
 
 @dataclass(frozen=True)
@@ -708,6 +704,7 @@ class Extrapolation:
     last_value: float | None = None
     uncertain_depths: int = 0
     backtest_growth: float = BACKTEST_GROWTH
+    _bands: dict = field(default_factory=dict, repr=False, compare=False)  # depth -> Estimate
 
     @property
     def used(self) -> list[WindowFit]:
@@ -760,6 +757,12 @@ class Extrapolation:
         the upper bound and, beyond the last depth, raised to V_pmax*."""
         if self.declined is not None or not self.used:
             return None
+        depth = float(depth)
+        if depth not in self._bands:
+            self._bands[depth] = self._estimate_at(depth)
+        return self._bands[depth]
+
+    def _estimate_at(self, depth: float) -> Estimate:
         tail = (1.0 - COVERAGE) / 2
         low, central, high = self._band(depth, (tail, 0.5, 1.0 - tail))
         capped = floored = False
@@ -777,7 +780,7 @@ class Extrapolation:
         if self.declined is not None or not self.used:
             return None
         p_last = float(self.last_depth)
-        grid = np.geomspace(p_last, 1e6, 241)
+        grid = np.geomspace(p_last, 1e6, 161)
         at = [self.estimate_at(float(d)) for d in grid]
         at_inf = self.estimate_at(math.inf)
 
