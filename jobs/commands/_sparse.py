@@ -5,8 +5,11 @@ Max-q-XORSAT on D-regular hypertrees (help texts, depth check, running, printing
 one place; what a sparse ensemble may be (``check_sparse``, the degree limit) is shared with
 the study spec and the Python API in ``leadline.jobs.sparse_ensemble``:
 
-    leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json]
-    leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE]
+    leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json] [--scratch DIR]
+    leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE] [--scratch DIR]
+
+Which path runs (in memory, or chunked vectors out of core / on Dask workers with --scratch),
+what it needs and what is refused: :func:`plan_sparse_path`.
 
 "value" is the satisfied fraction nu_p(D; gamma, beta) (the cut fraction for Q = 2).
 """
@@ -103,8 +106,9 @@ SCRATCH_HELP = ("Sparse ensembles: keep the step vectors as Zarr arrays in this 
 #: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py:
 #: the root's input, its outer transform and that transform's row-pass copy)
 SCRATCH_VECTORS = 3.0
-#: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25), plus the
-#: root's and the reverse sweep's vectors at the last depth (measured peak 5.3 at p = 8)
+#: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25 = 1.67), plus
+#: at most three more of the last size at once (the root's outer transform, an adjoint and its
+#: row-pass copy): 4.7 counted from the order of writes in kernels/sparse/_chunked.py, rounded up
 SCRATCH_VECTORS_GRADIENT = 6.0
 #: complex numbers a task of the chunked path holds at most, in bands of 2^CHUNK_POINTS_BITS points
 #: (a band in, a band out, a column block and a transform scratch)
