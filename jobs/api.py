@@ -410,7 +410,7 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
         value, uncertainty, ...), ``.overlap_gap``; ``.to_json()`` (plus
         ``"cached"``) is what ``leadline reference --json`` prints.
     """
-    from leadline.kernels.reference import reference_energies as compute
+    from leadline.kernels.reference import ReferenceRangeError, reference_energies as compute
 
     from . import reference_cache
     from .parsing import check_reference_settings
@@ -423,7 +423,10 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
     key = reference_cache.cache_key(mix.spec(), gs_tol, alg_tol, max_steps)
     refs = reference_cache.load(directory, key) if directory is not None else None
     if refs is None:
-        refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        try:
+            refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        except ReferenceRangeError as exc:
+            raise InputError(str(exc)) from None
         if directory is not None:
             with contextlib.suppress(OSError):
                 reference_cache.store(directory, key, refs)

@@ -44,6 +44,9 @@ from .mixture import Mixture
 
 #: half-width of the gamma search box in units of 1/sqrt(xi'(1))
 GAMMA_BOX = 4.0
+#: a best value at or below this (for the normal form of xi, xi(1) about 1) is the trivial
+#: value 0 and never reported as converged
+TRIVIAL_MARGIN = 1e-12
 
 __all__ = [
     "OptimizationResult",
@@ -329,6 +332,11 @@ def optimize_depth(
             local_run(len(candidates), g0, b0, "padded")
 
     value, x, gnorm, converged, message = best
+    if value <= TRIVIAL_MARGIN:
+        # V_p* > 0 at every depth (small gamma at a suitable beta gains to first order), so a
+        # stationary point at V = 0 is a flat region (huge gamma, or gamma = 0), not an optimum
+        converged = False
+        message = f"stopped at the trivial value 0 (what gamma = 0 gives) in a flat part of the landscape: not an optimum ({message})"
     g, b = canonical_angles(mixture, x[:p], x[p:])
     return OptimizationResult(
         value=value,
