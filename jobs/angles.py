@@ -94,7 +94,7 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
     if path.is_dir():
         raise InputError(f"angle file {path} is a folder; give the JSON file written by `leadline optimize --output`")
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
+        data = json.loads(path.read_text(encoding="utf-8-sig"))  # a leading BOM (some editors write one) is not content
     except FileNotFoundError:
         raise InputError(f"angle file {path} does not exist") from None
     except UnicodeDecodeError:

@@ -64,7 +64,7 @@ def _angles(gamma, beta) -> tuple[np.ndarray, np.ndarray]:
 def _start(angles, depth: int):
     """An angle file path, an AngleSet or (gamma, beta) of depth p-1 or p -> AngleSet or None."""
     from .angles import AngleSet
-    from .parsing import warm_start
+    from .parsing import check_start_depth, warm_start
 
     if angles is None:
         return None
@@ -75,8 +75,7 @@ def _start(angles, depth: int):
     else:
         g, b = _angles(*angles)
         start = AngleSet(p=g.size, gamma=g, beta=b, xi=None, value=None)
-    if start.p not in (depth - 1, depth):
-        raise InputError(f"angles have depth {start.p}; need depth {depth - 1} (warm start) or {depth}")
+    check_start_depth(start.p, depth, "angles")
     return start
 
 
@@ -91,9 +90,9 @@ def _executor(executor: str, scheduler: str | None, workers: int | None, memory_
 
 
 def _budget(memory_mb: float) -> int:
-    if not memory_mb > 0:
-        raise InputError("memory_mb must be positive")
-    return int(memory_mb * 2**20)
+    from .parsing import check_memory_mb
+
+    return int(check_memory_mb(memory_mb, "memory_mb") * 2**20)
 
 
 # ----------------------------------------------------------------- results

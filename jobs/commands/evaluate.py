@@ -13,7 +13,7 @@ from .. import compute
 from ..angles import read_angles
 from ..cost import COST_NOTE_SECONDS, check_cost
 from ..errors import InputError
-from ..parsing import angle_pair, check_representable, check_underflow, file_mixture, mixture_arg
+from ..parsing import angle_pair, check_memory_mb, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -49,8 +49,7 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    if not memory_mb > 0 or memory_mb == float("inf"):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     angle_set = None
     if angles is not None:
         if gamma is not None or beta is not None:

@@ -11,6 +11,7 @@ import typer
 
 from leadline.kernels.finite_size import estimate_energy_density
 from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
+from leadline.kernels.numtext import parse_int
 
 from ..cost import check_cost
 from ..errors import InputError
@@ -29,7 +30,7 @@ def spins_arg(text: str | None) -> list[int]:
     for item in str(text).split(","):
         item = item.strip()
         try:
-            n = int(item)
+            n = parse_int(item)
         except ValueError:
             raise InputError(f"--n: {item!r} is not a whole number of spins") from None
         if not MIN_SPINS <= n <= MAX_SPINS:

@@ -13,9 +13,8 @@ from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
 from ..api import optimize_ladder
 from ..cost import COST_NOTE_SECONDS, check_cost
-from ..errors import InputError
 from ..paths import check_output_file
-from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from ..parsing import check_memory_mb, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 from . import _sparse as sparse
 
 
@@ -54,8 +53,7 @@ def optimize_command(
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
-    if not (memory_mb > 0 and memory_mb < float("inf")):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
     if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):

@@ -235,7 +235,7 @@ def _read_instance(path: str | None):
         raise InputError("give an instance file: leadline transfer INSTANCE (format: docs/transfer.md)")
     p = Path(path)
     try:
-        text = p.read_text()
+        text = p.read_text(encoding="utf-8-sig")  # UTF-8, a leading BOM accepted
     except FileNotFoundError:
         raise InputError(f"instance file {path} does not exist") from None
     except (OSError, UnicodeDecodeError) as exc:

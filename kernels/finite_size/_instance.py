@@ -49,6 +49,7 @@ import numpy as np
 
 from ._statevector import apply_phase, mix_qubit, walsh_hadamard
 from ..mixture import Mixture
+from ..numtext import parse_float, parse_int
 
 __all__ = [
     "FORMAT",
@@ -152,12 +153,13 @@ class Instance:
 
 # --------------------------------------------------------------------------- parsing
 def _weight(value, where: str) -> float:
+    """A weight: ASCII decimal text (plain-text files) or a JSON number (never a JSON string)."""
     if isinstance(value, bool):
         raise InstanceError(f"{where}: weight {value!r} is not a number")
     try:
-        w = float(value)
-    except (TypeError, ValueError):
-        raise InstanceError(f"{where}: weight {value!r} is not a number") from None
+        w = parse_float(value) if isinstance(value, str) else float(value)
+    except (TypeError, ValueError, OverflowError):
+        raise InstanceError(f"{where}: weight {value!r} is not a number (ASCII decimal notation such as 1.5 or -2e-3)") from None
     if not math.isfinite(w):
         raise InstanceError(f"{where}: weight {value!r} is not finite")
     return w
@@ -167,11 +169,10 @@ def _index(value, where: str) -> int:
     if isinstance(value, bool):
         raise InstanceError(f"{where}: spin index {value!r} is not a whole number")
     if isinstance(value, str):
-        text = value.strip()
-        if text.lstrip("+-").isdigit():
-            i = int(text)
-        else:
-            raise InstanceError(f"{where}: spin index {value!r} is not a whole number")
+        try:
+            i = parse_int(value)
+        except ValueError:
+            raise InstanceError(f"{where}: spin index {value!r} is not a whole number (ASCII digits)") from None
     elif isinstance(value, (int, np.integer)):
         i = int(value)
     else:
@@ -249,7 +250,10 @@ def parse_instance_json(data, source: str = "instance") -> Instance:
             where = f"{source}, term {k}"
             if not isinstance(term, dict) or set(term) != {"weight", "spins"} or not isinstance(term["spins"], list):
                 raise InstanceError(f"{where}: each term is {{\"weight\": w, \"spins\": [i, ...]}}")
-            yield where, _weight(term["weight"], where), [_index(i, where) for i in term["spins"]]
+            weight, spins = term["weight"], term["spins"]
+            if isinstance(weight, str) or any(isinstance(i, str) for i in spins):
+                raise InstanceError(f"{where}: weights and spin indices are JSON numbers, not strings (got {json.dumps(term)})")
+            yield where, _weight(weight, where), [_index(i, where) for i in spins]
 
     return _build(entries(), n, source)
 
