@@ -204,11 +204,13 @@ def evaluate(
     """
     from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
+    from .cost import check_depth
     from .parsing import check_representable, check_underflow
 
     mix = _mixture(xi)
     g, b = _angles(gamma, beta)
     check_representable(mix, g, "gamma", beta=b)  # the same range as the command line
+    check_depth(g.size, "gamma/beta")
     plan = plan_chunks(g.size, _budget(memory_mb))
     with _executor(executor, scheduler, workers, memory_mb) as ex:
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
@@ -290,10 +292,12 @@ def optimize(
         full optimizer record of the last depth), ``.ladder``; ``.to_json()``
         is what ``leadline optimize --json`` prints.
     """
+    from .cost import check_depth
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    check_depth(depth, "depth")
     initial = _start(angles, depth)
     budget = _budget(memory_mb)
     with _executor(executor, scheduler, workers, memory_mb) as ex:

@@ -11,7 +11,7 @@ from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_B
 
 from .. import compute
 from ..angles import read_angles
-from ..cost import COST_NOTE_SECONDS, check_cost
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
 from ..parsing import angle_pair, check_memory_mb, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
@@ -73,6 +73,7 @@ def evaluate_command(
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
         return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
+    check_depth(g.size, "--angles" if angle_set is not None else "--gamma/--beta")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")

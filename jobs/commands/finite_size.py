@@ -13,7 +13,7 @@ from leadline.kernels.finite_size import estimate_energy_density
 from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 from leadline.kernels.numtext import parse_int
 
-from ..cost import check_cost
+from ..cost import check_cost, check_depth
 from ..errors import InputError
 from ..parsing import angle_pair, check_representable, mixture_arg
 
@@ -72,6 +72,7 @@ def finite_size_command(
     mix = mixture_arg(xi)
     g, b = angle_pair(gamma, beta)
     check_representable(mix, g, beta=b)  # the exact infinite-size column must be a double
+    check_depth(g.size, "--gamma/--beta")
     check_cost(g.size, plan_chunks(g.size), None, gradient=False, option="--gamma/--beta")
     sizes = spins_arg(spins)
     if not 2 <= instances <= MAX_INSTANCES:

@@ -12,7 +12,7 @@ from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
 from ..api import optimize_ladder
-from ..cost import COST_NOTE_SECONDS, check_cost
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..paths import check_output_file
 from ..parsing import check_memory_mb, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 from . import _sparse as sparse
@@ -55,6 +55,8 @@ def optimize_command(
     """
     check_memory_mb(memory_mb)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    if not sparse.sparse_requested(xorsat, degree):
+        check_depth(depth, "--depth")
     initial = warm_start(start, depth)
     if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
         # a file written by `optimize --xorsat`: continue on its own sparse ensemble

@@ -48,7 +48,7 @@ from typing import Callable
 import numpy as np
 
 from ._statevector import apply_phase, mix_qubit, walsh_hadamard
-from ..mixture import Mixture
+from ..mixture import WEIGHT_MAX, WEIGHT_MIN, Mixture, MixtureError
 from ..numtext import parse_float, parse_int
 
 __all__ = [
@@ -272,10 +272,19 @@ def parse_instance(text: str, source: str = "instance") -> Instance:
 # --------------------------------------------------------------------------- mixture
 def empirical_mixture(instance: Instance) -> Mixture:
     """xi(x) = sum_q w_q x^q with w_q = (1/n) sum over terms of order q of weight^2."""
-    weights: dict = {}
+    groups: dict = {}
     for S, w in instance.terms.items():
-        weights[len(S)] = weights.get(len(S), 0.0) + w * w
-    return Mixture.from_weights({q: v / instance.n for q, v in weights.items()})
+        groups.setdefault(len(S), []).append(abs(w))
+    weights = {}
+    for q, ws in groups.items():
+        # sum of squares relative to the largest, so that weights near 1e200 do not overflow w^2
+        top = max(ws)
+        log_w = 2.0 * math.log(top) + math.log(math.fsum((w / top) ** 2 for w in ws)) - math.log(instance.n)
+        if log_w > 709.0 or log_w < -745.0:
+            raise MixtureError(f"weight for q = {q} is about 1e{log_w / math.log(10.0):+.0f}, outside "
+                               f"{WEIGHT_MIN:g}..{WEIGHT_MAX:g}")
+        weights[q] = math.exp(log_w)
+    return Mixture.from_weights(weights)
 
 
 def shape_distance(a: Mixture, b: Mixture) -> float:
