@@ -26,6 +26,8 @@ from pathlib import Path
 
 import numpy as np
 
+from leadline.kernels.numtext import fmt, fmt_list
+
 from .errors import InputError
 from .paths import write_text_atomic
 
@@ -152,13 +154,13 @@ def optimum_report(header: list[str], result, evaluations: str, ladder: list[dic
     beta, gradient_norm and converged; ``ladder`` lists {"p", "value"} per depth run.
     """
     lines = list(header) + [
-        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
-        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
+        "gamma          = " + fmt_list(result.gamma),
+        "beta           = " + fmt_list(result.beta),
         f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
         f"evaluations    = {evaluations}",
     ]
     if len(ladder) > 1:
-        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
+        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {fmt(r['value'])}" for r in ladder))
     if output:
         lines.append(f"angles written to {output}")
     return "\n".join(lines)

@@ -19,6 +19,7 @@ import json
 import typer
 
 from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
+from leadline.kernels.numtext import fmt
 
 from ..errors import InputError
 from ..sparse_ensemble import check_sparse, ensemble_json
@@ -69,7 +70,7 @@ def _report(ev) -> str:
     lines = [
         f"ensemble   = Max-{ev.q}-XORSAT{' (MaxCut)' if ev.q == 2 else ''}, {int(ev.degree)}-regular, large girth",
         f"depth p    = {ev.p}",
-        f"{name} = {ev.value:.12f}",
+        f"{name} = {fmt(ev.value, 12)}",
     ]
     if ev.gradient is not None:
         lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
@@ -154,7 +155,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     header = [
         f"ensemble       = Max-{q}-XORSAT{' (MaxCut)' if q == 2 else ''}, {D}-regular, large girth",
         f"depth p        = {depth}",
-        f"{name} = {result.value:.10f}",
+        f"{name} = {fmt(result.value, 10)}",
     ]
     evaluations = f"{sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))

@@ -8,6 +8,7 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import read_angles
@@ -91,8 +92,8 @@ def evaluate_command(
 
 
 def _value_text(value: float) -> str:
-    """Twelve decimals, or twelve significant digits for a nonzero value too small to show them."""
-    return f"{value:.12f}" if value == 0.0 or abs(value) >= 1e-6 else f"{value:.12e}"
+    """Twelve decimals where they show the value, else scientific notation (kernels/numtext.py)."""
+    return fmt(value, 12)
 
 
 def report(result) -> str:

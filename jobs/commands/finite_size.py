@@ -11,7 +11,7 @@ import typer
 
 from leadline.kernels.finite_size import estimate_energy_density
 from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
-from leadline.kernels.numtext import parse_int
+from leadline.kernels.numtext import fmt, parse_int
 
 from ..cost import check_cost, check_depth
 from ..errors import InputError
@@ -121,7 +121,7 @@ def report(out: dict, label: str) -> str:
         f"xi(x)      = {label}",
         f"depth p    = {out['p']}",
         f"instances  = {out['instances']} per n, seed {out['seed']}, constant term {out['constant_term']}",
-        f"V_p        = {out['infinite_size_value']:.6f}  (exact, n -> infinity)",
+        f"V_p        = {fmt(out['infinite_size_value'])}  (exact, n -> infinity)",
         "",
         "   n   mean <H>/n   std error   mean - V_p   in std errors",
     ]

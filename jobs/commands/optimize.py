@@ -8,6 +8,7 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
@@ -98,7 +99,7 @@ def optimize_command(
     if as_json:
         typer.echo(json.dumps(run.to_json()))
         return
-    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
 

@@ -9,6 +9,7 @@ from typing import Optional
 
 import typer
 
+from leadline.kernels.numtext import fmt
 from .. import reference_cache
 from ..errors import InputError
 from ..parsing import check_reference_settings, mixture_arg
@@ -124,9 +125,9 @@ def report(mix, refs, cached: bool) -> str:
     gs_d = refs.details.get("ground_state", {})
     lines = [
         f"xi(x)                  = {mix.label()}",
-        f"ground state GS        = {refs.ground_state:.6f} +- {refs.ground_state_uncertainty:.1e}"
-        f"   (k = {len(refs.ground_state_k_sequence)} steps, best bound {gs_d.get('best_bound', float('nan')):.6f})",
-        f"algorithmic threshold  = {refs.algorithmic_threshold:.6f} +- {refs.algorithmic_threshold_uncertainty:.1e}"
+        f"ground state GS        = {fmt(refs.ground_state)} +- {refs.ground_state_uncertainty:.1e}"
+        f"   (k = {len(refs.ground_state_k_sequence)} steps, best bound {fmt(gs_d.get('best_bound', float('nan')))})",
+        f"algorithmic threshold  = {fmt(refs.algorithmic_threshold)} +- {refs.algorithmic_threshold_uncertainty:.1e}"
         f"   (k = {len(refs.algorithmic_threshold_k_sequence)} steps)",
         "overlap gap            = "
         + ("yes: ALG < GS beyond the uncertainties" if refs.overlap_gap else "not detected (ALG = GS within the uncertainties)"),

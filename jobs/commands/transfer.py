@@ -38,7 +38,7 @@ from leadline.kernels.finite_size import (
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
 from leadline.kernels.exact import plan_chunks
-from leadline.kernels.numtext import fmt
+from leadline.kernels.numtext import fmt, fmt_list
 
 from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
@@ -407,7 +407,7 @@ def _write_csv(path: str, gamma, beta, out: dict) -> None:
 
 
 def _fmt(x, digits: int = 6) -> str:
-    return "-" if x is None else f"{x:.{digits}f}"
+    return "-" if x is None else fmt(x, digits)
 
 
 def report(out: dict, xi: Mixture) -> str:
@@ -428,9 +428,9 @@ def report(out: dict, xi: Mixture) -> str:
         lines += [
             f"angles from     = {out['source']}",
             f"depth p         = {out['p']}",
-            f"lambda          = {out['lambda']:.6f}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
-            "gamma           = " + ", ".join(f"{x:.6f}" for x in out["gamma"]) + "   (instance units: source gamma / lambda)",
-            "beta            = " + ", ".join(f"{x:.6f}" for x in out["beta"]),
+            f"lambda          = {fmt(out['lambda'])}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
+            "gamma           = " + fmt_list(out["gamma"]) + "   (instance units: source gamma / lambda)",
+            "beta            = " + fmt_list(out["beta"]),
             f"predicted <C>   = {_fmt(out['predicted'])}   ({out['predicted_from']})",
         ]
         if out["predicted_finite_degree"] is not None:

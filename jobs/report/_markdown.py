@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 
 from leadline.kernels.extrapolate import FAMILIES, SE_FACTOR, SPREAD_MEANING, Extrapolation
+from leadline.kernels.numtext import fmt
 
 from ._model import EnsembleReport, StudyReport
 from ._references import References
@@ -40,12 +41,12 @@ def _reference_lines(refs: References) -> list[str]:
     out = []
     if refs.ground_state is not None:
         unc = f" +- {refs.ground_state_uncertainty:.2g}" if refs.ground_state_uncertainty else ""
-        out.append(f"- ground state GS = {refs.ground_state:.6f}{unc} ({refs.ground_state_origin}: {refs.ground_state_source})")
+        out.append(f"- ground state GS = {fmt(refs.ground_state)}{unc} ({refs.ground_state_origin}: {refs.ground_state_source})")
     else:
         out.append("- ground state GS: not known")
     if refs.threshold is not None:
         unc = f" +- {refs.threshold_uncertainty:.2g}" if refs.threshold_uncertainty else ""
-        out.append(f"- algorithmic threshold ALG = {refs.threshold:.6f}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
+        out.append(f"- algorithmic threshold ALG = {fmt(refs.threshold)}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
     else:
         out.append("- algorithmic threshold ALG: not known")
     return out
@@ -165,7 +166,7 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
     align.append("r")
     rows = []
     for r in rep.rows:
-        cells = [str(r.p), f"{r.inverse_depth:.4f}", f"{r.value:.6f}", _fmt(r.gain, "+.6f")]
+        cells = [str(r.p), f"{r.inverse_depth:.4f}", fmt(r.value), _fmt(r.gain, "+.6f")]
         if has_gs:
             cells.append(_fmt(r.ratio_gs, ".4f"))
         if has_alg:
