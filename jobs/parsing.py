@@ -62,9 +62,10 @@ def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndar
     return g, b
 
 
-#: smallest --memory-mb accepted: one MiB holds a chunk task of every depth's smallest plan,
-#: and a budget that rounds to 0 bytes would only fail later with a message about the planner
-MIN_MEMORY_MB = 1.0
+#: smallest --memory-mb accepted (2 KiB): the chunk planner's smallest chunk task takes about
+#: 1 KiB at every depth, and a budget that rounds to 0 bytes would only fail later with a
+#: message about the planner (tiny budgets are useful in tests: they force many chunks)
+MIN_MEMORY_MB = 0.002
 
 
 def check_memory_mb(memory_mb: float, option: str = "--memory-mb") -> float:
