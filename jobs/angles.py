@@ -118,6 +118,9 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
         raise InputError(f"angle file {path}: \"p\" must be an integer >= 1, got {json.dumps(p)}")
     g = _angle_list(data, "gamma", path)
     b = _angle_list(data, "beta", path)
+    from .parsing import check_periodic_angles
+
+    check_periodic_angles(b, f"angle file {path}", "beta_t", "pi")
     if g.size != p or b.size != p:
         raise InputError(f"angle file {path}: p = {p} but gamma has {g.size} and beta {b.size} angles")
     xi = data.get("xi")

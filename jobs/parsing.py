@@ -54,9 +54,28 @@ def angles_arg(text: str | None, option: str) -> np.ndarray:
     return np.array(values, dtype=float)
 
 
+#: largest |angle| accepted where V is periodic in it (every beta_t: period pi; sparse gamma_t: 2 pi,
+#: the satisfied count is an integer).  The input's own rounding, |x| x 2.2e-16, is 2e-10 rad here;
+#: at 1e300 it would be 1e284 rad, and the printed value would be that of an arbitrary angle.
+MAX_PERIODIC_ANGLE = 1e6
+
+
+def check_periodic_angles(values, option: str, name: str, period: str) -> None:
+    """InputError when a periodic angle is so large that its own rounding exceeds what V resolves."""
+    values = np.asarray(values, dtype=float).reshape(-1)
+    if values.size and float(np.max(np.abs(values))) > MAX_PERIODIC_ANGLE:
+        worst = float(np.max(np.abs(values)))
+        raise InputError(
+            f"{option}: |{name}| = {worst:.3g} is beyond {MAX_PERIODIC_ANGLE:.0e}: V_p is periodic in {name} "
+            f"(period {period}) and the rounding of so large an angle ({worst * 2.2e-16:.2g} rad) leaves its "
+            f"value undefined; reduce it modulo {period}"
+        )
+
+
 def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndarray]:
     g = angles_arg(gamma, "--gamma")
     b = angles_arg(beta, "--beta")
+    check_periodic_angles(b, "--beta", "beta_t", "pi")
     if g.size != b.size:
         raise InputError(f"--gamma has {g.size} angles but --beta has {b.size}; both need p values")
     return g, b
@@ -72,7 +91,8 @@ def check_memory_mb(memory_mb: float, option: str = "--memory-mb") -> float:
     """The memory budget of one chunk task in MiB: finite and at least MIN_MEMORY_MB."""
     if not (math.isfinite(memory_mb) and memory_mb >= MIN_MEMORY_MB):
         raise InputError(
-            f"{option} must be a finite number of MiB >= {MIN_MEMORY_MB:g} (the memory of one chunk task), got {memory_mb:g}"
+            f"{option} must be a positive finite number of MiB, at least {MIN_MEMORY_MB:g} (the planner's smallest "
+            f"chunk task takes about 1 KiB), got {memory_mb:g}"
         )
     return memory_mb
 

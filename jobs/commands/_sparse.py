@@ -100,7 +100,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
                     settings=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
     from ..angles import read_angles
-    from ..parsing import angle_pair
+    from ..parsing import angle_pair, check_periodic_angles
 
     q, D = check_sparse(xorsat, degree, xi)
     if angles is not None:
@@ -110,6 +110,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
+    check_periodic_angles(g, "--angles" if angles is not None else "--gamma", "gamma_t", "2 pi")
     check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta", gradient=gradient)
     with transform_map(settings) as run_map:
         ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
