@@ -58,6 +58,24 @@ class AngleSet:
         }
 
 
+#: largest |angle| accepted where V is periodic in it (every beta_t: period pi; sparse gamma_t: 2 pi,
+#: the satisfied count is an integer).  The input's own rounding, |x| x 2.2e-16, is 2e-10 rad here;
+#: at 1e300 it would be 1e284 rad, and the printed value would be that of an arbitrary angle.
+MAX_PERIODIC_ANGLE = 1e6
+
+
+def check_periodic_angles(values, option: str, name: str, period: str) -> None:
+    """InputError when a periodic angle is so large that its own rounding exceeds what V resolves."""
+    values = np.asarray(values, dtype=float).reshape(-1)
+    if values.size and float(np.max(np.abs(values))) > MAX_PERIODIC_ANGLE:
+        worst = float(np.max(np.abs(values)))
+        raise InputError(
+            f"{option}: |{name}| = {worst:.3g} is beyond {MAX_PERIODIC_ANGLE:.0e}: V_p is periodic in {name} "
+            f"(period {period}) and the rounding of so large an angle ({worst * 2.2e-16:.2g} rad) leaves its "
+            f"value undefined; reduce it modulo {period}"
+        )
+
+
 def _is_number(x) -> bool:
     return isinstance(x, (int, float)) and not isinstance(x, bool)
 
@@ -118,8 +136,6 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
         raise InputError(f"angle file {path}: \"p\" must be an integer >= 1, got {json.dumps(p)}")
     g = _angle_list(data, "gamma", path)
     b = _angle_list(data, "beta", path)
-    from .parsing import check_periodic_angles
-
     check_periodic_angles(b, f"angle file {path}", "beta_t", "pi")
     if g.size != p or b.size != p:
         raise InputError(f"angle file {path}: p = {p} but gamma has {g.size} and beta {b.size} angles")

@@ -58,7 +58,7 @@ def _angles(gamma, beta) -> tuple[np.ndarray, np.ndarray]:
         raise InputError(f"gamma and beta need the same number p >= 1 of angles, got {g.size} and {b.size}")
     if not (np.all(np.isfinite(g)) and np.all(np.isfinite(b))):
         raise InputError("angles must be finite")
-    from .parsing import check_periodic_angles
+    from .angles import check_periodic_angles
 
     check_periodic_angles(b, "beta", "beta_t", "pi")
     return g, b
@@ -344,7 +344,7 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     """
     from leadline.kernels.sparse import evaluate_sparse as kernel
 
-    from .parsing import check_periodic_angles
+    from .angles import check_periodic_angles
 
     q, D = _sparse_problem(q, degree)
     g, b = _angles(gamma, beta)

@@ -10,6 +10,7 @@ import numpy as np
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 from leadline.kernels.numtext import parse_float, parse_int
 
+from .angles import check_periodic_angles
 from .errors import InputError
 
 __all__ = [
@@ -52,24 +53,6 @@ def angles_arg(text: str | None, option: str) -> np.ndarray:
             raise InputError(f"{option}: angles must be finite, got {item!r}")
         values.append(x)
     return np.array(values, dtype=float)
-
-
-#: largest |angle| accepted where V is periodic in it (every beta_t: period pi; sparse gamma_t: 2 pi,
-#: the satisfied count is an integer).  The input's own rounding, |x| x 2.2e-16, is 2e-10 rad here;
-#: at 1e300 it would be 1e284 rad, and the printed value would be that of an arbitrary angle.
-MAX_PERIODIC_ANGLE = 1e6
-
-
-def check_periodic_angles(values, option: str, name: str, period: str) -> None:
-    """InputError when a periodic angle is so large that its own rounding exceeds what V resolves."""
-    values = np.asarray(values, dtype=float).reshape(-1)
-    if values.size and float(np.max(np.abs(values))) > MAX_PERIODIC_ANGLE:
-        worst = float(np.max(np.abs(values)))
-        raise InputError(
-            f"{option}: |{name}| = {worst:.3g} is beyond {MAX_PERIODIC_ANGLE:.0e}: V_p is periodic in {name} "
-            f"(period {period}) and the rounding of so large an angle ({worst * 2.2e-16:.2g} rad) leaves its "
-            f"value undefined; reduce it modulo {period}"
-        )
 
 
 def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndarray]:

@@ -135,14 +135,29 @@ def test_flat_start_is_not_taken_for_an_optimum():
     assert out["value"] >= grid - 1e-12
     # a start in the flat region (large gamma, where nu = 1/2 to 60 digits) is never "converged"
     flat = optimize_sparse(9, 300, 1, starts=[(np.array([2.5]), np.array([0.3]))])
-    if abs(flat.value - 0.5) <= 1e-9:
-        assert flat.converged is False and "trivial value" in flat.message
+    assert abs(flat.value - 0.5) <= 1e-9  # it does stop there ...
+    assert flat.converged is False and "trivial value" in flat.message  # ... and says so
     from leadline.kernels.mixture import parse_mixture
     from leadline.kernels.optimize import optimize_depth
 
-    dense = optimize_depth(parse_mixture("9:1"), 1, starts=[(np.array([0.0]), np.array([0.0]))], restarts=0)
-    if abs(dense.value) <= 1e-12:
+    # dense: the flat region far out in gamma (gamma sqrt(xi'(1)) = 3.9, the box edge) and gamma = 0
+    for g0 in (0.0, 1.3):
+        dense = optimize_depth(parse_mixture("9:1"), 1, starts=[(np.array([g0]), np.array([0.3 if g0 else 0.0]))],
+                               restarts=0)
+        assert abs(dense.value) <= 1e-12
         assert dense.converged is False and "trivial value" in dense.message
+
+
+def test_a_sweep_stores_the_optimum_not_the_flat_start(tmp_path):
+    # the same ensemble through a real sweep: it stored 0.5 as a finished, converged depth
+    (tmp_path / "s.toml").write_text('[study]\nname = "flat"\nstore = "flat.zarr"\n[depths]\npmax = 1\n'
+                                     '[[ensemble]]\nlabel = "x9"\nkind = "sparse"\nq = 9\ndegree = 300\n')
+    r = run("sweep", "s.toml", "--quiet", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    import leadline
+
+    (row,) = leadline.open_study(tmp_path / "flat.zarr").depths("x9")
+    assert row["converged"] is True and row["value"] > 0.52
 
 
 def test_reference_energies_use_the_exact_scaling():

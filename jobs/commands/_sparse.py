@@ -99,8 +99,8 @@ def transform_map(settings):
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
                     settings=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
-    from ..angles import read_angles
-    from ..parsing import angle_pair, check_periodic_angles
+    from ..angles import check_periodic_angles, read_angles
+    from ..parsing import angle_pair
 
     q, D = check_sparse(xorsat, degree, xi)
     if angles is not None:
