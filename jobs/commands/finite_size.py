@@ -129,7 +129,7 @@ def report(out: dict, label: str) -> str:
         z = row["difference_in_std_errors"]
         z_text = f"{z:+13.1f}" if z is not None else "            -"
         lines.append(
-            f"{row['n']:4d}   {row['mean']:10.6f}   {row['std_error']:9.6f}   {row['difference']:+10.6f}  {z_text}"
+            f"{row['n']:4d}   {fmt(row['mean']):>10}   {fmt(row['std_error']):>9}   {fmt(row['difference'], signed=True):>10}  {z_text}"
         )
     lines.append(f"({out['wall_time_s']:.1f} s)")
     return "\n".join(lines)

@@ -166,7 +166,7 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
     align.append("r")
     rows = []
     for r in rep.rows:
-        cells = [str(r.p), f"{r.inverse_depth:.4f}", fmt(r.value), _fmt(r.gain, "+.6f")]
+        cells = [str(r.p), f"{r.inverse_depth:.4f}", fmt(r.value), "-" if r.gain is None else fmt(r.gain, signed=True)]
         if has_gs:
             cells.append(_fmt(r.ratio_gs, ".4f"))
         if has_alg:
