@@ -105,6 +105,23 @@ def test_huge_and_tiny_weights_give_the_closed_form_value_and_gradient(w):
     assert out["gradient"]["beta"][0] == pytest.approx(d_beta, rel=1e-10)
 
 
+def test_the_normal_form_gives_the_same_digits():
+    # V_p(c xi; gamma) = sqrt(c) V_p(xi; sqrt(c) gamma) (H -> sqrt(c) H; docs/limits.md): computed on
+    # xi / 4^k at 2^k gamma, every product is the unscaled one times a power of 2, so the digits agree exactly
+    from leadline.kernels.exact import evaluate
+    from leadline.kernels.exact._iteration import _evaluate
+    from leadline.kernels.mixture import parse_mixture
+
+    mix = parse_mixture("2:3000.7,3:170.3,5:0.11")
+    assert mix.scale_exponent() == 6
+    g, b = np.array([0.01, 0.02, 0.005]), np.array([0.3, 0.2, 0.1])
+    scaled = evaluate(mix, g, b, gradient=True)
+    plain = _evaluate(mix, g, b, None, None, True, False, "growing")
+    assert scaled.value == plain.value
+    assert np.array_equal(scaled.gradient["gamma"], plain.gradient["gamma"])
+    assert np.array_equal(scaled.gradient["beta"], plain.gradient["beta"])
+
+
 @pytest.mark.parametrize("w", [1e100, 1e-100])
 def test_optimize_with_huge_or_tiny_weights_finds_the_scaled_sk_optimum(w):
     # xi = w x^2 = 2w (x^2/2): V_1* = sqrt(2w) / sqrt(4e) at gamma* = (1/2) / sqrt(2w), beta* = pi/8
