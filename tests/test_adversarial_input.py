@@ -188,6 +188,24 @@ def test_reference_energies_use_the_exact_scaling():
     assert refs.details["scaling"]["factor"] == 64.0
 
 
+def test_an_unphysical_cached_reference_is_not_served(tmp_path):
+    # a cache entry written before the check (the 60-spin ALG of -20918) is a miss, never a printed value
+    from leadline.jobs import reference_cache
+    from leadline.kernels.reference import References
+
+    key = reference_cache.cache_key("60:1", 1e-4, 1e-3, 10)
+    bad = References(xi="60:1", ground_state=1.17741, ground_state_uncertainty=1e-12, algorithmic_threshold=-20918.2,
+                     algorithmic_threshold_uncertainty=34.0, ground_state_k_sequence=[1.17741],
+                     algorithmic_threshold_k_sequence=[1.17741, -20918.2], overlap_gap=True, wall_time=1.0)
+    reference_cache.store(tmp_path, key, bad)
+    assert reference_cache.load(tmp_path, key) is None
+    good = References(xi="60:1", ground_state=1.17741, ground_state_uncertainty=1e-12, algorithmic_threshold=1.0,
+                      algorithmic_threshold_uncertainty=1e-3, ground_state_k_sequence=[1.17741],
+                      algorithmic_threshold_k_sequence=[1.1, 1.0], overlap_gap=True, wall_time=1.0)
+    reference_cache.store(tmp_path, key, good)
+    assert reference_cache.load(tmp_path, key).algorithmic_threshold == 1.0
+
+
 @pytest.mark.slow
 def test_unphysical_reference_energies_are_refused(tmp_path):
     # pure 60-spin: the step functional's ALG came out as -20918 (ALG is in (0, GS] by definition)

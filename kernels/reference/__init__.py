@@ -21,6 +21,7 @@ _WHERE = {
     "ground_state": "_functional",
     "reference_energies": "_functional",
     "ReferenceRangeError": "_functional",
+    "check_physical": "_functional",
     "step_functional": "_functional",
     "METHOD_VERSION": "_functional",
     "COARSE": "_functional",

@@ -64,6 +64,7 @@ __all__ = [
     "ground_state",
     "reference_energies",
     "ReferenceRangeError",
+    "check_physical",
     "step_functional",
     "METHOD_VERSION",
 ]
@@ -727,7 +728,7 @@ def reference_energies(
                                   discretization=discretization)
         return _rescaled(refs, mix, k)
     refs = _reference_energies(mix, gs_tol, alg_tol, max_steps, discretization)
-    _check_physical(refs, mix)
+    check_physical(refs, mix)
     return refs
 
 
@@ -735,7 +736,7 @@ class ReferenceRangeError(ValueError):
     """The variational functional gave a value that cannot be a reference energy (numerics failed)."""
 
 
-def _check_physical(refs: "References", mix: Mixture) -> None:
+def check_physical(refs: "References", mix: Mixture) -> None:
     """Refuse (ReferenceRangeError) what cannot be GS or ALG: 0 < ALG <= GS <= sqrt(2 ln 2 xi(1))."""
     top = math.sqrt(2.0 * math.log(2.0) * float(mix.xi(1.0)))
     for name, value, unc, seq in (
