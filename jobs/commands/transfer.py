@@ -431,7 +431,8 @@ def report(out: dict, xi: Mixture) -> str:
             f"lambda          = {fmt(out['lambda'])}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
             "gamma           = " + fmt_list(out["gamma"]) + "   (instance units: source gamma / lambda)",
             "beta            = " + fmt_list(out["beta"]),
-            f"predicted <C>   = {_fmt(out['predicted'])}   ({out['predicted_from']})",
+            f"predicted <C>   = {_fmt(out['predicted'])}   "
+            + (f"({out['predicted_from']})" if out["predicted"] is not None else "(none: see the note below)"),
         ]
         if out["predicted_finite_degree"] is not None:
             lines.append(f"finite degree   = {_fmt(out['predicted_finite_degree'])}   (sparse ensemble of the same q and D)")
