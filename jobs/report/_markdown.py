@@ -79,7 +79,7 @@ def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[st
     else:
         out.append("Back-test: too few depths to hold any out; no fit can pass.")
     if ex.upper_bound is not None:
-        out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {ex.upper_bound:.6f} "
+        out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {fmt(ex.upper_bound)} "
                    "is flagged unphysical.")
     out.append("")
     rows = []
