@@ -24,6 +24,7 @@ from pathlib import Path
 import typer
 
 from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
+from leadline.kernels.numtext import fmt
 
 from ..errors import InputError
 from ..sparse_ensemble import check_sparse, ensemble_json
@@ -205,7 +206,7 @@ def _report(ev) -> str:
     lines = [
         f"ensemble   = Max-{ev.q}-XORSAT{' (MaxCut)' if ev.q == 2 else ''}, {int(ev.degree)}-regular, large girth",
         f"depth p    = {ev.p}",
-        f"{name} = {ev.value:.12f}",
+        f"{name} = {fmt(ev.value, 12)}",
     ]
     if ev.gradient is not None:
         lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
@@ -248,6 +249,8 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
     announced = []
 
     def run(q, D, g, b, gradient, client=None):
+        if g.size < 3:  # a few points, nothing to chunk (the optimizer's p = 1 grid, depth 2)
+            return evaluate_chunked(q, D, g, b, None, gradient=gradient)
         fingerprint = {"q": q, "degree": D, "gamma": [float(x).hex() for x in g],
                        "beta": [float(x).hex() for x in b], "band_bits": CHUNK_POINTS_BITS, "gradient": bool(gradient)}
         folder = path.scratch if label is None else path.scratch / label
@@ -292,7 +295,7 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
                     settings=None, scratch=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
-    from ..angles import read_angles
+    from ..angles import check_periodic_angles, read_angles
     from ..parsing import angle_pair
 
     q, D = check_sparse(xorsat, degree, xi)
@@ -303,6 +306,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
+    check_periodic_angles(g, "--angles" if angles is not None else "--gamma", "gamma_t", "2 pi")
     path = plan_sparse_path(g.size, settings, scratch, gradient, "--angles" if angles is not None else "--gamma/--beta")
     if path.kind == "memory":
         with transform_map(settings) as run_map:
@@ -357,7 +361,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     header = [
         f"ensemble       = Max-{q}-XORSAT{' (MaxCut)' if q == 2 else ''}, {D}-regular, large girth",
         f"depth p        = {depth}",
-        f"{name} = {result.value:.10f}",
+        f"{name} = {fmt(result.value, 10)}",
     ]
     evaluations = f"{sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
