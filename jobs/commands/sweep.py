@@ -152,8 +152,10 @@ def resume_command(
     The chunk plan (memory-mb) stays the one of the spec; where passes run may be changed.
     """
     from leadline.storage import StudyStore, check_study
+    from leadline.storage.study import check_contents
 
     attrs = check_study(store_path)
+    check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
     spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
     _pin_kernel(attrs.get("kernel"))
     if workers is not None and workers < 1:
@@ -280,15 +282,19 @@ def status_text(progress: dict) -> str:
             values = "  ".join(f"p{d['p']}={d['value']:.6f}" for d in done)
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
-        if r is not None:
-            text = (f"    running  p = {r['p']}: {r['passes_cached']} passes checkpointed "
+        if r is not None and r.get("metadata_damaged"):
+            lines.append(f"    stopped  p = {r['p']}: its metadata cannot be read; resume starts this depth again")
+        elif r is not None:
+            # "running" only while a live writer holds the lock; otherwise the depth waits for resume
+            state, more = ("running", "") if r.get("active", True) else ("stopped", "; resume continues it")
+            text = (f"    {state:<8} p = {r['p']}: {r['passes_cached']} passes checkpointed "
                     f"(~{r['evaluations_done']} evaluations), session {r['sessions']}")
             if r["inflight"] is not None:
                 f = r["inflight"]
                 text += f"; pass in flight: {f['chunks_done']}/{f['n_chunks']} chunks done"
             if r["repairs"]:
                 text += f"; {r['repairs']} repaired"
-            lines.append(text)
+            lines.append(text + more)
         todo = [p for p in e["todo"] if r is None or p != r["p"]]
         if todo:
             lines.append(f"    to do    p = {_ranges(todo)}")
