@@ -414,9 +414,8 @@ class StudyStore:
     def finished_depth(self, label: str, p: int) -> dict | None:
         """The stored result of depth p (attrs "result"), or None if not done."""
         try:
-            g = self._ensemble_group(label)[L.depth_name(p)]
-            attrs = g.attrs.asdict()
-        except KeyError:
+            attrs = I.read_attrs(self.path / L.ENSEMBLES / label / L.depth_name(p))
+        except I.Unreadable:  # not started, or an unfinished depth whose metadata is damaged
             return None
         if attrs.get("state") != "done" or "result" not in attrs:
             return None

@@ -48,6 +48,24 @@ def _store_errors(func):
     return wrapper
 
 
+def _write_failed(exc: OSError, store: Path, creating: bool):
+    """One error line (exit 1) for a write the operating system refused (full disk, file-size limit, ...).
+
+    Every store write is ordered so that a failure at any point leaves a store that resume
+    can use (as a kill does), and a store being created is removed with its hidden folder.
+    """
+    import click
+
+    from ..paths import os_error_text
+
+    if creating and not Path(store).exists():
+        return click.ClickException(f"could not create store {store}: {os_error_text(exc)}; nothing was created")
+    return click.ClickException(
+        f"writing store {store} failed: {os_error_text(exc)}; every finished depth and checkpoint written before "
+        f"is kept: make room, then `leadline resume {store}`"
+    )
+
+
 def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
     """Start the executor, then open (or create) the store and sweep holding its lock.
 
@@ -130,7 +148,10 @@ def sweep_command(
         command="sweep",
         extra={"kernel": resolve_implementation()},
     )
-    _run(open_store, spec, settings, as_json, quiet)
+    try:
+        _run(open_store, spec, settings, as_json, quiet)
+    except OSError as exc:
+        raise _write_failed(exc, spec.store, creating=True) from None
 
 
 @_store_errors
@@ -163,8 +184,13 @@ def resume_command(
     if cluster_config is not None and not cluster_config.is_file():
         raise InputError(f"--cluster-config: file {cluster_config} does not exist")
     settings = _settings_with(spec, executor, scheduler, workers, cluster_config, quiet or as_json)
-    StudyStore.open(store_path, command="resume").close()  # refuse now if another writer holds it
-    _run(lambda: StudyStore.open(store_path, command="resume"), spec, settings, as_json, quiet)
+    try:
+        # refuse now if another writer holds it (this open prints what the user should know, once)
+        StudyStore.open(store_path, command="resume").close()
+        _run(lambda: StudyStore.open(store_path, command="resume", notice=lambda text: None), spec, settings,
+             as_json, quiet)
+    except OSError as exc:
+        raise _write_failed(exc, store_path, creating=False) from None
 
 
 def _pin_kernel(recorded: str | None) -> None:

@@ -7,6 +7,7 @@ module level: the command line must start without it (tests/test_startup.py).
 from __future__ import annotations
 
 import math
+import os
 from pathlib import Path
 
 import numpy as np
@@ -130,6 +131,27 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
 
     output = Path(output)
     paths = [output, angle_plot_path(output)]
+    # both figures are drawn into temporary files beside their final names and moved into place
+    # only when both are complete: a failed write (full disk, file-size limit) leaves no half file
+    temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in paths]
+    try:
+        _draw(report, temps, plt)
+        for tmp, final in zip(temps, paths):
+            os.replace(tmp, final)
+    except OSError as exc:
+        if exc.errno:
+            failed = OSError(exc.errno, exc.strerror, str(output))
+            failed.add_note("no figure was written")
+            raise failed from None
+        raise
+    finally:
+        for tmp in temps:
+            tmp.unlink(missing_ok=True)
+    return paths
+
+
+def _draw(report: StudyReport, paths: list[Path], plt) -> None:
+    """Draw the two figures of :func:`write_plots` into ``paths`` (PNG)."""
 
     fig, ax = plt.subplots(figsize=FIGURE_SIZE_INCHES, dpi=FIGURE_DPI)
     colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
@@ -177,7 +199,7 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         ax.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
                   frameon=False)
     fig.subplots_adjust(left=0.075, right=0.63, top=0.86, bottom=0.1)
-    fig.savefig(paths[0], dpi=FIGURE_DPI)
+    fig.savefig(paths[0], dpi=FIGURE_DPI, format="png")
     plt.close(fig)
 
     n = max(1, len(report.ensembles))
@@ -206,6 +228,5 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     for ax_ in axes[-1]:
         ax_.set_xlabel("(t - 1/2)/p  (position in the schedule)")
     fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.35 / (height * n), bottom=0.55 / (height * n), hspace=0.45, wspace=0.2)
-    fig.savefig(paths[1], dpi=FIGURE_DPI)
+    fig.savefig(paths[1], dpi=FIGURE_DPI, format="png")
     plt.close(fig)
-    return paths
