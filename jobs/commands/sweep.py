@@ -58,6 +58,11 @@ def _write_failed(exc: OSError, store: Path, creating: bool):
 
     from ..paths import os_error_text
 
+    try:  # as the user would type it: relative to the working folder when inside it
+        shown = Path(store).resolve().relative_to(Path.cwd())
+    except (OSError, ValueError):
+        shown = Path(store)
+    store = shown
     if creating and not Path(store).exists():
         return click.ClickException(f"could not create store {store}: {os_error_text(exc)}; nothing was created")
     return click.ClickException(
