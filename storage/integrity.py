@@ -153,7 +153,8 @@ def _ranges(ps) -> str:
 def _record_ok(record) -> bool:
     return (isinstance(record, dict) and isinstance(record.get("identity"), dict)
             and isinstance(record.get("ensembles"), dict) and isinstance(record.get("finished"), dict)
-            and all(isinstance(v, dict) for v in record["finished"].values()))
+            and all(isinstance(v, dict) and all(isinstance(p, str) and p.isdigit() for p in v)
+                    for v in record["finished"].values()))
 
 
 def _spec_labels(spec) -> list[str] | None:
@@ -257,9 +258,11 @@ def inspect(path: Path, attrs: dict, schema: int) -> Contents:
                 a = read_attrs(folder / name)
             except Unreadable as exc:
                 depths[p] = None
-                # the metadata of an unfinished depth is repairable (the writer starts the depth again);
-                # without a record nobody can tell whether it was finished
-                fatal = recorded or rec is None or "permission" in str(exc)
+                # the metadata of an unfinished depth is repairable (the writer starts the depth again).
+                # Without a record nobody can tell whether it was finished, except for a folder
+                # without metadata: what a kill leaves between creating a depth's folder and its
+                # zarr.json (every zarr.json is written whole, by a rename)
+                fatal = recorded or "permission" in str(exc) or (rec is None and (folder / name / "zarr.json").exists())
                 add(Finding(dpart, f"{exc}" + (" (finished in the record)" if recorded else ""), fatal))
                 continue
             depths[p] = a

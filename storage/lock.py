@@ -143,6 +143,7 @@ class StoreLock:
         self.token = uuid.uuid4().hex
         self.held = False
         self.took_over: dict | None = None
+        self.lost: StoreLockLostError | None = None  # set when verify() found the lock gone
 
     @property
     def lock_path(self) -> Path:
@@ -201,6 +202,8 @@ class StoreLock:
         anything more.  Costs one small file read (tens of microseconds; a store write
         costs milliseconds).
         """
+        if self.lost is not None:
+            raise self.lost  # every later write is refused too (the flush on the way out included)
         if not self.held:
             return
         holder = read_lock(self.directory)
@@ -213,11 +216,12 @@ class StoreLock:
         else:
             what = f"now names {describe_holder(holder)}"
         self.held = False  # not ours any more: never remove it
-        raise StoreLockLostError(
+        self.lost = StoreLockLostError(
             f"the writer lock of store {self.directory} ({LOCK_NAME}) {what} while this process was writing it; "
             "stopped before its next write so that two writers never mix. Everything written before is kept: "
             f"make sure no other leadline writes the store, then `leadline resume {self.directory}`"
         )
+        raise self.lost
 
     def release(self) -> None:
         if not self.held:

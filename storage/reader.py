@@ -183,16 +183,21 @@ def _describe(e: dict) -> dict:
 def _running_info(p: int, g, attrs: dict | None, writing: bool) -> dict:
     """A depth that is not finished: being computed (``writing``: a live writer holds the lock) or stopped.
 
-    ``attrs`` None: its metadata cannot be read (resume starts the depth again)."""
+    ``attrs`` None: its metadata cannot be read (resume starts the depth again).  zarr's warnings
+    about folders it does not recognize (leftovers, stray files) are not shown: resume checks
+    and cleans what it uses."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return _running_info_quiet(p, g, attrs, writing)
+
+
+def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
     damaged, attrs = attrs is None, attrs or {}
     passes = 0
     seconds = 0.0
     paths = 0.0
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            batches = list(g[L.PASSES].arrays()) if g is not None else []
-        for name, arr in batches:
+        for name, arr in (g[L.PASSES].arrays() if g is not None else ()):
             if L.parse_batch_name(name) is None:
                 continue
             for entry in arr.attrs.asdict().get("entries", []):

@@ -303,6 +303,26 @@ def test_malformed_lock_counts_as_unreadable_and_is_taken_over(tmp_path, content
         assert lock.took_over == {"unreadable": True}
 
 
+def test_a_lost_lock_refuses_every_later_write_of_the_process(tmp_path):
+    """After the lock is found gone, the flush of waiting passes on the way out writes nothing either."""
+    from leadline.storage import StoreLockLostError, StudyStore
+
+    spec = {"name": "unit", "depths": {"pmin": 1, "pmax": 1}, "checkpoint": {"interval_s": 30.0},
+            "ensembles": [{"label": "sk", "kind": "dense", "xi": "2:0.5"}]}
+    store = StudyStore.create(tmp_path / "u.zarr", name="unit", spec=spec, spec_toml="", ensembles=spec["ensembles"])
+    depth = store.depth("sk", 1)
+    depth.add_pass("k1", np.eye(4, 3, dtype=complex), {"kind": "forward", "step": 1, "n_chunks": 1, "completions": [1]})
+    (tmp_path / "u.zarr" / LOCK_NAME).unlink()
+    before = tree(tmp_path)
+    for _ in range(2):
+        with pytest.raises(StoreLockLostError, match="was deleted while this process was writing it"):
+            depth.flush()
+    with pytest.raises(StoreLockLostError):
+        store.finish_depth("sk", 1, {"gamma": [0.5], "beta": [0.4], "value": 0.3}, {})
+    store.close()
+    assert tree(tmp_path) == before
+
+
 def _hold(work: Path, point: str, name: str):
     hold = work / name
     proc = subprocess.Popen([*LEADLINE, "resume", "s.zarr", "--quiet"], cwd=work, stdout=subprocess.PIPE,
