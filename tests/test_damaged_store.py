@@ -285,6 +285,24 @@ def test_store_written_before_the_record_opens_and_gets_one(finished, work):
     one_line(run(["status", "s.zarr"], cwd=work), 2, "root attribute 'spec' differs")
 
 
+@pytest.mark.parametrize("edit, says", [
+    (lambda spec: spec["ensembles"][0].update(xi="2:-1"), "weight w in '2:-1' is negative"),
+    (lambda spec: spec["depths"].update(pmax=40), "depths 1..40 outside 1..30"),
+    (lambda spec: spec.pop("optimizer"), "'optimizer' is missing"),
+])
+def test_store_without_record_and_an_unusable_spec_does_not_run(work, edit, says):
+    """Without a record (schema 2) an edit cannot be told from the original, but a spec that
+    `sweep` would refuse is refused by `resume` as well, before anything runs."""
+    def older(attrs):
+        del attrs["integrity"]
+        attrs["schema_version"] = 2
+        edit(attrs["spec"])
+    edit_attrs(work / "s.zarr", older)
+    before = tree(work)
+    one_line(run(["resume", "s.zarr"], cwd=work), 2, "s.zarr is damaged: its root attribute 'spec' cannot be used", says)
+    assert tree(work) == before
+
+
 def test_stray_folder_gives_no_zarr_warning(work):
     (work / "s.zarr/ensembles/sk/notes").mkdir()
     (work / "s.zarr/ensembles/sk/p009").mkdir()  # a depth folder without metadata, not in the record

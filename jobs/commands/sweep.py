@@ -182,7 +182,7 @@ def resume_command(
 
     attrs = check_study(store_path)
     check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
-    spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
+    spec = _stored_spec(store_path, attrs)
     _pin_kernel(attrs.get("kernel"))
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be >= 1, got {workers}")
@@ -196,6 +196,30 @@ def resume_command(
              as_json, quiet)
     except OSError as exc:
         raise _write_failed(exc, store_path, creating=False) from None
+
+
+def _stored_spec(store_path: Path, attrs: dict):
+    """The spec a store was created with, checked again as `sweep` checks a new one.
+
+    A store with an integrity record has its spec's digest checked on open; an older store
+    has none, so a spec edited into nonsense (a negative weight, pmax beyond the limit) is
+    caught here before it runs."""
+    from ..spec import MAX_DEPTH
+
+    try:
+        spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
+        if not 1 <= spec.pmin <= spec.pmax <= MAX_DEPTH:
+            raise ValueError(f"depths {spec.pmin}..{spec.pmax} outside 1..{MAX_DEPTH}")
+        for ens in spec.ensembles:
+            if ens.kind == "dense":
+                ens.mixture()
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        detail = f"{exc.args[0]!r} is missing" if isinstance(exc, KeyError) else str(exc)
+        raise InputError(
+            f"store {store_path} is damaged: its root attribute 'spec' cannot be used ({detail}); nothing was run: "
+            "restore the store from a backup (or start a new sweep)"
+        ) from None
+    return spec
 
 
 def _pin_kernel(recorded: str | None) -> None:
