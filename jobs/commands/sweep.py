@@ -337,7 +337,9 @@ def status_text(progress: dict) -> str:
             values = "  ".join(f"p{d['p']}={d['value']:.6f}" for d in done)
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
-        if r is not None and r.get("metadata_damaged"):
+        if r is not None and r.get("metadata_damaged") and r.get("active"):
+            lines.append(f"    running  p = {r['p']}: starting")  # its folder is there, its metadata not yet
+        elif r is not None and r.get("metadata_damaged"):
             lines.append(f"    stopped  p = {r['p']}: its metadata cannot be read; resume starts this depth again")
         elif r is not None:
             # "running" only while a live writer holds the lock; otherwise the depth waits for resume
