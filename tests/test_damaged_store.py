@@ -201,6 +201,29 @@ def test_root_spec_missing_or_edited_is_refused(work, case):
     assert tree(work) == before  # the edited spec did not run
 
 
+@pytest.mark.parametrize("damage, says", [
+    ("record removed", "root attribute 'integrity' (the store's record of its spec and finished depths) is missing"),
+    ("depth folder removed", "ensembles/sk/p002 is missing (finished in the record)"),
+    ("depth marked unfinished", "ensembles/sk/p001 is no longer marked finished"),
+    ("ensemble folder removed", "ensembles/sk is missing (finished depths in the record: sk p = 1..2)"),
+])
+def test_other_losses_are_named(work, damage, says):
+    store = work / "s.zarr"
+    if damage == "record removed":
+        edit_attrs(store, lambda a: a.pop("integrity"))
+    elif damage == "depth folder removed":
+        shutil.rmtree(store / "ensembles/sk/p002")
+    elif damage == "depth marked unfinished":
+        edit_attrs(store / "ensembles/sk/p001", lambda a: a.update(state="running"))
+    else:
+        shutil.rmtree(store / "ensembles/sk")
+    before = tree(work)
+    results = run_all({"status": ["status", "s.zarr"], "table": ["table", "s.zarr"]}, cwd=work)
+    for r in results.values():
+        one_line(r, 2, "s.zarr is damaged: " + says)
+    assert tree(work) == before
+
+
 def test_finished_depth_with_truncated_metadata(work):
     meta = work / "s.zarr/ensembles/sk/p002/zarr.json"
     meta.write_bytes(meta.read_bytes()[:300])
