@@ -171,18 +171,51 @@ def _spec_labels(spec) -> list[str] | None:
     return labels
 
 
+#: the layout of the angle arrays as leadline writes them (one chunk, little-endian float64, zstd)
+_PLAIN_CODECS = ("bytes", "zstd")
+
+
+def _read_plain_vector(folder: Path) -> np.ndarray | None:
+    """A 1-D float64 array of one chunk in the layout leadline writes, decoded directly (about 30x
+    cheaper than opening it through zarr); None when the array is laid out otherwise."""
+    meta = json.loads((folder / "zarr.json").read_bytes())
+    shape = meta.get("shape")
+    codecs = meta.get("codecs") or []
+    plain = (
+        meta.get("data_type") == "float64" and isinstance(shape, list) and len(shape) == 1
+        and meta.get("chunk_grid", {}).get("configuration", {}).get("chunk_shape") == shape
+        and meta.get("chunk_key_encoding") == {"name": "default", "configuration": {"separator": "/"}}
+        and tuple(c.get("name") for c in codecs) == _PLAIN_CODECS
+        and codecs[0].get("configuration", {}).get("endian", "little") == "little"
+        and not meta.get("storage_transformers")
+    )
+    if not plain:
+        return None
+    try:
+        data = (folder / "c" / "0").read_bytes()
+    except FileNotFoundError:  # a chunk never written (or lost) reads as the fill value
+        return np.full(shape, float(meta.get("fill_value", 0.0)))
+    from numcodecs import Zstd
+
+    return np.frombuffer(Zstd().decode(data), dtype="<f8").reshape(shape)
+
+
 def _angles_problem(folder: Path, name: str, expected) -> str | None:
     """Why the angle array ``folder/name`` disagrees with the result's JSON angles, or None."""
     import zarr
 
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            stored = np.asarray(zarr.open_array(str(folder / name), mode="r")[...])
+        stored = _read_plain_vector(folder / name)
+        if stored is None:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                stored = np.asarray(zarr.open_array(str(folder / name), mode="r")[...])
     except PermissionError:
         return "cannot be read (permission denied)"
     except FileNotFoundError:
         return "is missing"
+    except json.JSONDecodeError:
+        return "has damaged metadata (zarr.json is truncated or not JSON)"
     except Exception as exc:  # noqa: BLE001 - zarr/numcodecs raise many kinds for a damaged chunk
         return f"cannot be decoded (a damaged chunk: {type(exc).__name__})"
     try:

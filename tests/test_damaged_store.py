@@ -265,6 +265,22 @@ def test_corrupted_angle_arrays_are_noticed(work, damage):
     all_refuse(work, "ensembles/sk/p002/gamma " + what)
 
 
+def test_direct_angle_decoding_agrees_with_zarr(tmp_path):
+    """The open check decodes angle arrays itself when they have the layout leadline writes, and
+    leaves any other layout to zarr: both give zarr's own values (zarr-python is the reference)."""
+    import zarr
+
+    from leadline.storage.integrity import _read_plain_vector
+
+    group = zarr.create_group(store=str(tmp_path / "g.zarr"), zarr_format=3)
+    values = np.random.default_rng(3).standard_normal(7)
+    group.create_array("written", data=values)  # as StudyStore.finish_depth writes the angles
+    group.create_array("other", data=values, compressors=None)
+    assert np.array_equal(_read_plain_vector(tmp_path / "g.zarr/written"), group["written"][...])
+    assert np.array_equal(group["written"][...], values)
+    assert _read_plain_vector(tmp_path / "g.zarr/other") is None
+
+
 def test_edited_result_differs_from_the_record(work):
     def edit(attrs):
         attrs["result"]["value"] = 0.5
