@@ -206,6 +206,8 @@ def test_root_spec_missing_or_edited_is_refused(work, case):
     ("depth folder removed", "ensembles/sk/p002 is missing (finished in the record)"),
     ("depth marked unfinished", "ensembles/sk/p001 is no longer marked finished"),
     ("ensemble folder removed", "ensembles/sk is missing (finished depths in the record: sk p = 1..2)"),
+    ("root metadata removed", "its root metadata zarr.json (name, spec and record of the study) is missing"),
+    ("root metadata truncated", "the root group has damaged metadata (zarr.json is truncated or not JSON)"),
 ])
 def test_other_losses_are_named(work, damage, says):
     store = work / "s.zarr"
@@ -215,6 +217,10 @@ def test_other_losses_are_named(work, damage, says):
         shutil.rmtree(store / "ensembles/sk/p002")
     elif damage == "depth marked unfinished":
         edit_attrs(store / "ensembles/sk/p001", lambda a: a.update(state="running"))
+    elif damage == "root metadata removed":
+        (store / "zarr.json").unlink()
+    elif damage == "root metadata truncated":
+        (store / "zarr.json").write_bytes((store / "zarr.json").read_bytes()[:400])
     else:
         shutil.rmtree(store / "ensembles/sk")
     before = tree(work)
