@@ -249,16 +249,15 @@ def inspect(path: Path, attrs: dict, schema: int) -> Contents:
         return out
     finished_rec = {label: {int(p) for p in (rec["finished"].get(label) or {})} for label in labels} if rec else {}
 
-    def lost(label: str) -> str:
-        ps = finished_rec.get(label)
-        return f" (finished depths in the record: {label} p = {_ranges(ps)})" if ps else ""
+    def lost(*labels: str) -> str:
+        listed = [f"{label} p = {_ranges(finished_rec[label])}" for label in labels if finished_rec.get(label)]
+        return f" (finished depths in the record: {', '.join(listed)})" if listed else ""
 
     top = path / L.ENSEMBLES
     try:
         read_attrs(top)
     except Unreadable as exc:
-        listed = "".join(lost(label) for label in labels)
-        add(Finding(f"{L.ENSEMBLES}/", f"{exc}{listed}"))
+        add(Finding(f"{L.ENSEMBLES}/", f"{exc}{lost(*labels)}"))
         return out
     for label in labels:
         folder = top / label
