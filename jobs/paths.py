@@ -89,4 +89,3 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> None:
             failed.add_note("nothing was written")
             raise failed from None
         raise
-
