@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import resource
 import shutil
 import signal
@@ -366,8 +367,15 @@ def test_malformed_lock_counts_as_unreadable_and_is_taken_over(tmp_path, content
         assert lock.took_over == {"unreadable": True}
 
 
-def test_a_lost_lock_refuses_every_later_write_of_the_process(tmp_path):
-    """After the lock is found gone, the flush of waiting passes on the way out writes nothing either."""
+@pytest.mark.parametrize("lock, says", [
+    (None, "was deleted while this process was writing it"),
+    ("{}", "was replaced by an unreadable file"),
+    ('{"pid": 4242, "host": "node17", "token": "theirs", "command": "resume", "started_utc": "T"}',
+     "now names pid 4242 on host node17 (resume, since T)"),
+])
+def test_a_lost_lock_refuses_every_later_write_of_the_process(tmp_path, lock, says):
+    """After the lock is found gone (or replaced), the flush of waiting passes on the way out writes
+    nothing either, and the replacement is left alone."""
     from leadline.storage import StoreLockLostError, StudyStore
 
     spec = {"name": "unit", "depths": {"pmin": 1, "pmax": 1}, "checkpoint": {"interval_s": 30.0},
@@ -376,9 +384,11 @@ def test_a_lost_lock_refuses_every_later_write_of_the_process(tmp_path):
     depth = store.depth("sk", 1)
     depth.add_pass("k1", np.eye(4, 3, dtype=complex), {"kind": "forward", "step": 1, "n_chunks": 1, "completions": [1]})
     (tmp_path / "u.zarr" / LOCK_NAME).unlink()
+    if lock is not None:
+        (tmp_path / "u.zarr" / LOCK_NAME).write_text(lock)
     before = tree(tmp_path)
     for _ in range(2):
-        with pytest.raises(StoreLockLostError, match="was deleted while this process was writing it"):
+        with pytest.raises(StoreLockLostError, match=re.escape(says)):
             depth.flush()
     with pytest.raises(StoreLockLostError):
         store.finish_depth("sk", 1, {"gamma": [0.5], "beta": [0.4], "value": 0.3}, {})
