@@ -38,7 +38,7 @@ import numpy as np
 
 from . import layout as L
 
-__all__ = ["RECORD", "IDENTITY", "Finding", "Contents", "digest", "read_attrs", "new_record", "inspect",
+__all__ = ["RECORD", "IDENTITY", "Finding", "Contents", "Unreadable", "digest", "read_attrs", "new_record", "inspect",
            "describe_findings", "ensemble_digest"]
 
 #: root attribute holding the record
