@@ -95,17 +95,6 @@ def test_mps_matches_dense_without_truncation(spec, basis, p):
         assert np.max(np.abs(mps.correlations - dense.correlations)) < 1e-10
 
 
-@pytest.mark.parametrize("spec,p", [("2:0.5", 5), ("3:1", 5), ("2:0.5,4:0.5", 6), ("1:0.2,5:0.8", 4)])
-def test_error_estimate_bounds_true_error(spec, p):
-    mix = parse_mixture(spec)
-    g, b = angles(5, mix, p)
-    exact = evaluate(mix, g, b).value
-    for fock, chi in [(3, 2), (4, 4), (6, 8), (8, 16)]:
-        res = evaluate_bath(mix, g, b, fock=fock, tail=3, chi=chi, basis="cholesky")
-        assert abs(res.value - exact) <= res.error_estimate
-        assert res.value == res.run.value and res.run.chi == 2 * chi
-
-
 OPTIMA = os.path.join(os.path.dirname(__file__), os.pardir, "benchmarks", "data", "bath_angles.json")
 
 
@@ -222,24 +211,29 @@ def run_cli(*args):
 
 def test_cli_bath_json():
     r = run_cli("evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", str(math.pi / 8), "--method", "bath",
-                "--fock", "8", "--bond", "4", "--json")
+                "--tolerance", "1e-8", "--json")
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
-    assert out["method"] == "bath"
+    assert out["method"] == "bath" and out["tolerance"] == 1e-8
     assert out["value"] == pytest.approx(1 / math.sqrt(4 * math.e), abs=1e-8)
-    assert out["error_estimate"] >= abs(out["value"] - 1 / math.sqrt(4 * math.e))
+    assert abs(out["value"] - 1 / math.sqrt(4 * math.e)) <= out["error_estimate"] <= 1e-8
     t = out["truncation"]
-    assert t["fock_levels"] == [12] and t["bond_cap"] == 8 and "discarded_weight" in t
-    assert out["check_truncation"]["bond_cap"] == 4
+    assert t["bond_cap"] == 256 and t["readout"] == "modes" and "discarded_weight" in t and "cutoff" in t
+    assert out["limiting"] in ("cut-off", "Fock levels", "bond cap") and len(out["ladder"]) >= 3
 
 
 @pytest.mark.parametrize("args,fragment", [
     (["--method", "nope"], "--method"),
     (["--fock", "5"], "--fock applies only"),
+    (["--tolerance", "1e-3"], "--tolerance applies only"),
     (["--method", "bath", "--bond", "0"], "--bond"),
+    (["--method", "bath", "--bond", "100000"], "--bond"),
     (["--method", "bath", "--fock", "1"], "--fock"),
+    (["--method", "bath", "--fock", "100000"], "--fock"),
+    (["--method", "bath", "--tolerance", "0"], "--tolerance"),
+    (["--method", "bath", "--tolerance", "1e-15"], "--tolerance"),
+    (["--method", "bath", "--time-limit", "-1"], "--time-limit"),
     (["--method", "bath", "--gradient"], "value only"),
-    (["--method", "bath", "--basis", "qr"], "--basis"),
 ])
 def test_cli_bath_bad_input(args, fragment, capsys):
     from leadline.jobs.cli import main
@@ -250,3 +244,73 @@ def test_cli_bath_bad_input(args, fragment, capsys):
     assert exc.value.code == 2
     assert fragment in out.err and out.out == ""
     assert len(out.err.strip().splitlines()) == 1
+
+
+# ---------------------------------------------------------------- the error estimate and the tolerance
+ESTIMATE_CASES = [("sk", 3), ("sk", 7), ("q3", 4), ("q3", 8), ("q4", 4), ("q4", 8), ("mix24", 5), ("mix24", 8)]
+
+
+@pytest.mark.parametrize("name,p", ESTIMATE_CASES)
+@pytest.mark.parametrize("tol", [1e-4, 1e-6, 1e-8])
+def test_error_estimate_bounds_true_error(name, p, tol):
+    mix, g, b, _ = optimum(name, p)
+    exact = evaluate(mix, g, b).value
+    res = evaluate_bath(mix, g, b, tolerance=tol)
+    assert abs(res.value - exact) <= res.error_estimate <= tol
+    assert res.value == res.run.value and res.run.cutoff < res.check.cutoff
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["sk", "q3", "q4", "mix24"])
+@pytest.mark.parametrize("p", [10, 12, 13, 14])
+def test_error_estimate_bounds_true_error_deeper(name, p):
+    # p = 13, 14: INTERP angles from the p = 12 optimum (Zhou et al., PRX 10, 021067 (2020))
+    from leadline.kernels.optimize import interpolate_angles
+
+    if p <= 12:
+        mix, g, b, _ = optimum(name, p)
+    else:
+        mix, g, b, _ = optimum(name, 12)
+        while g.size < p:
+            g, b = interpolate_angles(g, b)
+    exact = evaluate(mix, g, b).value
+    res = evaluate_bath(mix, g, b, tolerance=1e-6)
+    assert abs(res.value - exact) <= res.error_estimate <= 1e-6
+
+
+@pytest.mark.parametrize("spec", MIXTURES)
+def test_error_estimate_corner_cases(spec):
+    # one mode (p = 1, closed form of Claes, van Dam 2021) and zero angles (tiny pivots)
+    mix = parse_mixture(spec)
+    g, b = 0.3 / math.sqrt(float(mix.dxi(1.0))), 0.7
+    G01 = math.cos(2 * b) - 1j * math.sin(2 * b) * math.exp(-2 * g * g * float(mix.dxi(1.0)))
+    res = evaluate_bath(spec, [g], [b], tolerance=1e-8)  # a mixture string is accepted
+    assert abs(res.value - (-2 * g * complex(mix.xi(G01)).imag)) <= res.error_estimate <= 1e-8
+    gz, bz = [0.3, 0.0, 0.5, 0.4], [0.4, 0.3, 0.0, 0.2]
+    gz = [x / math.sqrt(float(mix.dxi(1.0))) for x in gz]
+    res = evaluate_bath(mix, gz, bz, tolerance=1e-6)
+    assert abs(res.value - evaluate(mix, gz, bz).value) <= res.error_estimate <= 1e-6
+    assert res.run.carried  # the zero angles were detected and carried
+
+
+def test_deterministic_bits_whatever_the_thread_count():
+    code = ("import leadline;"
+            "r = leadline.evaluate_bath('2:0.5', [0.3, 0.5, 0.6], [0.5, 0.4, 0.2]);"
+            "print(r.value.hex(), r.error_estimate.hex())")
+    outs = set()
+    for threads in ("1", "2"):
+        env = dict(os.environ, OMP_NUM_THREADS=threads, OPENBLAS_NUM_THREADS=threads, MKL_NUM_THREADS=threads)
+        r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120)
+        assert r.returncode == 0, r.stderr
+        outs.add(r.stdout)
+    assert len(outs) == 1
+
+
+def test_limits_refused_in_one_line():
+    from leadline.kernels.bath import BathLimitError
+
+    mix, g, b, _ = optimum("sk", 10)
+    with pytest.raises(BathLimitError, match="bond cap 4 binds"):
+        evaluate_bath(mix, g, b, tolerance=1e-8, bond_cap=4)
+    with pytest.raises(BathLimitError, match="time limit"):
+        evaluate_bath(mix, g, b, tolerance=1e-10, time_limit=1e-3)

@@ -36,7 +36,7 @@ from ._dense import DenseState
 from ._modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
 from ._mps import MPSState
 
-__all__ = ["BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
+__all__ = ["BathLimitError", "BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
 
 BASES = ("cholesky", "principal")
 
@@ -72,6 +72,7 @@ class BathRun:
     readout: str = "carried"
     carried: list = field(default_factory=list)
     top_population: float = 0.0
+    cutoff: float = 0.0
 
     def to_json(self) -> dict:
         return {
@@ -82,6 +83,7 @@ class BathRun:
             "engine": self.engine,
             "fock_levels": [int(d) for d in self.fock],
             "bond_cap": self.chi,
+            "cutoff": float(self.cutoff),
             "max_bond": int(self.max_bond),
             "discarded_weight": float(self.discarded),
             "steps": int(self.steps),
@@ -198,8 +200,12 @@ def _back_substitute(W, t, zb, g, C, known) -> None:
         W[k, t] = np.conj(W[t, k])
 
 
+class BathLimitError(ValueError):
+    """The engine cannot reach what was asked within the limits it was given (one-line message)."""
+
+
 def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8, fock_max=None,
-                  fock_tol=None, reverse=True, pivot_tol=1e-3):
+                  fock_tol=None, reverse=True, pivot_tol=1e-3, deadline=None, progress=None):
     """Spin correlations W (p+1 x p+1) of the causal Cholesky sweep, read from ONE state.
 
     Before layer t, W(t, s) for s < t follows by back substitution (:func:`_back_substitute`)
@@ -209,6 +215,8 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
     is carried and W(t, s) = <psi_t| Z |chi_s> is used instead.
     Fock levels start at ``fock`` per mode; with ``fock_tol`` set (MPS), before each layer every
     mode it drives gets the levels :func:`levels_needed` asks for (up to ``fock_max``).
+    deadline: time.perf_counter() value after which the sweep stops with BathLimitError;
+    progress(t, p, largest_bond) is called after every layer.
     Returns (W, info) with info: states (psi and carried), fock levels, carried times, top-level
     population (largest seen), pivots.
     """
@@ -252,6 +260,10 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
         for st in [psi, *carried.values()]:
             st.apply_layer(ops)
             st.apply_spin(U)
+        if progress is not None:
+            progress(t + 1, p, max(psi.bond_dimensions(), default=1))
+        if deadline is not None and time.perf_counter() > deadline:
+            raise BathLimitError(f"time limit reached at layer {t + 1} of {p}")
     info = {"states": [psi, *carried.values()], "fock": dims, "carried": sorted(carried), "top": top_max,
             "pivots": pivots}
     return W, info
@@ -281,6 +293,8 @@ def run_bath(
     fock_max: int | None = None,
     fock_tol: float | None = None,
     pivot_tol: float = 1e-3,
+    deadline: float | None = None,
+    progress=None,
 ) -> BathRun:
     """V_p(gamma, beta) from the bath form at one truncation.
 
@@ -313,12 +327,13 @@ def run_bath(
         raise ValueError(f"unknown readout {readout!r}: use 'modes' or 'carried'")
     if basis == "cholesky" and readout == "modes":
         W, info = readout_sweep(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, fock_max=fock_max,
-                                fock_tol=fock_tol, reverse=reverse, pivot_tol=pivot_tol)
+                                fock_tol=fock_tol, reverse=reverse, pivot_tol=pivot_tol, deadline=deadline,
+                                progress=progress)
         states = info["states"]
         return BathRun(_value(mixture, g, W), p, basis, engine, W, list(info["fock"]), chi,
                        max(max(s.bond_dimensions(), default=1) for s in states),
                        sum(s.discarded for s in states), 1, 0.0, time.perf_counter() - t0, reverse=reverse,
-                       readout="modes", carried=info["carried"], top_population=info["top"])
+                       readout="modes", carried=info["carried"], top_population=info["top"], cutoff=cutoff)
     if basis == "cholesky":
         W, states = bath_correlations(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, reverse=reverse)
         run = BathRun(_value(mixture, g, W), p, basis, engine, W, [fock] * p, chi,
