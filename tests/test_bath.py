@@ -187,6 +187,45 @@ def test_readout_at_optimal_angles_deeper(name, p):
     assert abs(run.value - exact) < 1e-8
 
 
+@pytest.mark.parametrize("spec", MIXTURES)
+@pytest.mark.parametrize("p,chi,cutoff", [(3, None, 0.0), (5, None, 0.0), (7, 12, 1e-9)])
+def test_parity_blocks_match_dense_mps(spec, p, chi, cutoff):
+    # the block-sparse MPS (X (x) prod (-1)^n_k) against the dense-tensor MPS: same truncations,
+    # same state; untruncated and truncated (the two SVD blocks cut together by one cut-off)
+    mix = parse_mixture(spec)
+    g, b = angles(19, mix, p)
+    kw = dict(fock=6, chi=chi, cutoff=cutoff)
+    blocks = run_bath(mix, g, b, engine="mps", **kw)
+    dense = run_bath(mix, g, b, engine="dense-mps", **kw)
+    assert np.max(np.abs(blocks.correlations - dense.correlations)) < 1e-12
+    assert blocks.max_bond == dense.max_bond
+    assert blocks.discarded == pytest.approx(dense.discarded, rel=1e-6, abs=1e-15)
+
+
+def test_parity_blocks_hold_half_the_numbers_and_the_dense_state():
+    from leadline.kernels.bath import ParityMPS
+    from leadline.kernels.bath._engine import readout_sweep
+
+    mix = parse_mixture("2:0.5")
+    g, b = angles(23, mix, 6)
+    W, info = readout_sweep(mix, g, b, engine="mps", fock=6, chi=None, cutoff=0.0)
+    psi = info["states"][0]
+    assert isinstance(psi, ParityMPS)
+    stored = sum(v.size for blk in psi.blocks for v in blk.values())
+    dense = sum(t.size for t in psi.to_dense_tensors())
+    assert stored <= 0.5 * dense + 8
+    _, info_d = readout_sweep(mix, g, b, engine="dense", fock=6)
+    # contract the blocks back into the Fock-space array (spin in the Z basis) and compare
+    ts = psi.to_dense_tensors()
+    x = ts[0]
+    for t in ts[1:]:
+        x = np.tensordot(x, t, axes=([-1], [0]))
+    x = x.reshape(x.shape[1:-1])
+    ref = info_d["states"][0].data
+    # both in the chain order spin, mode p, ..., mode 1
+    assert np.max(np.abs(x - ref)) < 1e-12
+
+
 def test_truncation_is_reported_and_matters():
     mix = parse_mixture("2:0.5")
     g, b = angles(5, mix, 6)

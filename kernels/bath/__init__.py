@@ -8,7 +8,8 @@ per-mode Fock cut-offs and a bond cap chi; the modes are the bath's principal mo
 (step-by-step form) or the causal Cholesky modes (one sweep).  :func:`evaluate_bath` tightens
 the truncation until its error estimate meets the tolerance asked for.
 
-Modules (private): ``_dense``, ``_mps`` (the two states), ``_modes`` (bath modes and bases),
+Modules (private): ``_dense``, ``_mps``, ``_parity`` (the states: Fock array, dense-tensor MPS,
+parity block-sparse MPS), ``_modes`` (bath modes and bases),
 ``_engine`` (one run), ``_estimate`` (two runs and the error estimate).  May import: numpy,
 scipy.linalg and the contour layout of :mod:`leadline.kernels.exact`.  Names are imported on
 first use.
@@ -38,6 +39,7 @@ _WHERE = {
     "mode_amplitudes": "_modes",
     "principal_factor": "_modes",
     "MPSState": "_mps",
+    "ParityMPS": "_parity",
 }
 
 __all__ = list(_WHERE)

@@ -35,6 +35,7 @@ from ..exact import check_angles
 from ._dense import DenseState
 from ._modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
 from ._mps import MPSState
+from ._parity import ParityMPS
 
 __all__ = ["BathLimitError", "BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
 
@@ -101,12 +102,19 @@ def _order_label(basis: str, reverse: bool) -> str:
     return "smallest-first" if reverse else "largest-first"
 
 
-def _make_state(engine: str, dims, chi, cutoff):
+ENGINES = ("mps", "dense-mps", "dense")
+
+
+def _make_state(engine: str, dims, chi, cutoff, parity=False):
+    """engine "mps": block-sparse by parity where the caller supports it (parity=True), else the
+    dense-tensor MPS; "dense-mps": always the dense-tensor MPS; "dense": the Fock-space array."""
     if engine == "dense":
         return DenseState.initial(list(dims))
-    if engine == "mps":
+    if engine == "mps" and parity:
+        return ParityMPS.initial(list(dims), chi=chi, cutoff=cutoff)
+    if engine in ("mps", "dense-mps"):
         return MPSState.initial(list(dims), chi=chi, cutoff=cutoff)
-    raise ValueError(f"unknown engine {engine!r}: use 'dense' or 'mps'")
+    raise ValueError(f"unknown engine {engine!r}: use one of {', '.join(ENGINES)}")
 
 
 def _mixer(b: float) -> np.ndarray:
@@ -226,7 +234,7 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
     C = np.zeros((p, p), complex)
     site = (lambda k: p - k) if reverse else (lambda k: k + 1)  # tensor index of mode k
     chain = (lambda xs: list(xs)[::-1]) if reverse else list
-    psi = _make_state(engine, chain(dims), chi, cutoff)
+    psi = _make_state(engine, chain(dims), chi, cutoff, parity=True)
     carried: dict[int, object] = {}
     W = np.eye(p + 1, dtype=complex)
     scale = float(np.max(np.abs(g))) * float(np.sqrt(max(np.real(mixture.dxi(1.0)), 0.0)))
@@ -245,7 +253,7 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
         row = mixture.dxi(W[t, : t + 1])
         row[t] = np.real(row[t])
         cholesky_row(C, t, row)
-        if fock_tol is not None and engine == "mps":
+        if fock_tol is not None and engine != "dense":
             for k in range(t + 1):
                 need = levels_needed(pops[k] if k < t else np.ones(1), g[t] * C[t, k], dims[k], fock_max, fock_tol)
                 if need > dims[k]:
@@ -256,10 +264,9 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
         if pivots[t] <= pivot_tol * scale:
             carried[t] = psi.copy().apply_z()
         ops = chain(layer_unitaries(g[t], C[t], dims))
-        U = _mixer(b[t])
         for st in [psi, *carried.values()]:
             st.apply_layer(ops)
-            st.apply_spin(U)
+            st.apply_mixer(b[t])
         if progress is not None:
             progress(t + 1, p, max(psi.bond_dimensions(), default=1))
         if deadline is not None and time.perf_counter() > deadline:
@@ -310,6 +317,8 @@ def run_bath(
     readout : Cholesky sweep only. "modes" (default): one state, W read from the modes'
             memory (:func:`readout_sweep`, O(p^2 chi^3 d)); "carried": psi and every chi_s
             carried through every layer (O(p^3 chi^3 d), the reference).
+    engine : "mps" (the parity block-sparse MPS in the readout; dense tensors elsewhere),
+            "dense-mps" (dense tensors always: the reference) or "dense" (the Fock-space array)
     fock_max, fock_tol : readout only: a mode whose top Fock level holds more than fock_tol
             gets two more levels, up to fock_max (default: fixed ``fock`` levels).
     pivot_tol : readout only: relative size of g_s C[s, s] below which chi_s is carried.
