@@ -67,7 +67,7 @@ def _one(mix, g, b, exact, d, chi, basis="cholesky", tail=None, reverse=None) ->
     r = run_bath(mix, g, b, fock=d, tail=d if tail is None else tail, chi=chi, basis=basis, reverse=reverse)
     return {"d": d, "tail": d if tail is None else tail, "chi": chi, "basis": basis,
             "order": r.to_json()["mode_order"], "value": r.value,
-            "error": None if exact is None else abs(r.value - exact), "max_bond": r.max_bond,
+            "error": None if exact is None else abs(r.value - exact), "largest_bond": r.largest_bond,
             "discarded": r.discarded, "steps": r.steps, "seconds": round(time.process_time() - c0, 3),
             "wall_s": round(r.wall_time, 3)}
 
@@ -82,7 +82,7 @@ def error_table(angles, names, ps, truncations, record, result_rows=None) -> lis
             for d, chi in truncations:
                 row = {"mixture": name, "p": p, "exact": exact, **_one(mix, g, b, exact, d, chi)}
                 rows.append(row)
-                _log(f"errors {name} p={p:2d} d={d:2d} chi={chi:3d}: err {row['error']:.2e} bond {row['max_bond']} "
+                _log(f"errors {name} p={p:2d} d={d:2d} chi={chi:3d}: err {row['error']:.2e} bond {row['largest_bond']} "
                      f"disc {row['discarded']:.1e} {row['seconds']:.1f}s")
                 record()
     return rows
@@ -96,7 +96,7 @@ def chi_needed(angles, names, ps, d, ladder, target, record, stop_after_s=300.0,
             found, tried = None, []
             for chi in ladder:
                 r = _one(mix, g, b, exact, d, chi)
-                tried.append({"chi": chi, "error": r["error"], "max_bond": r["max_bond"], "discarded": r["discarded"],
+                tried.append({"chi": chi, "error": r["error"], "largest_bond": r["largest_bond"], "discarded": r["discarded"],
                               "seconds": r["seconds"]})
                 if r["error"] <= target:
                     found = chi
@@ -138,7 +138,7 @@ def growth_table(angles, names, ps, d, chi, record, stop_after_s, result_rows=No
             wall = time.process_time() - t0
             rows.append({"mixture": name, "p": p, "d": d, "chi": chi, "value": res.value,
                          "error_estimate": res.error_estimate, "check_value": res.check.value,
-                         "max_bond": res.check.max_bond, "discarded": res.check.discarded,
+                         "largest_bond": res.check.largest_bond, "discarded": res.check.discarded,
                          "seconds_small": round(res.check.wall_time, 2), "seconds_both": round(wall, 2)})
             _log(f"growth {name} p={p}: V {res.value:.8f} +- {res.error_estimate:.1e} ({res.check.wall_time:.1f}s + {res.run.wall_time:.1f}s)")
             record()
@@ -164,7 +164,7 @@ def deep_table(angles, names, ps, d, ladder, record, stop_after_s, fock_check_ma
             for chi in ladder:
                 r = _one(mix, g, b, None, d, chi)
                 runs.append(r)
-                _log(f"deep {name} p={p} d={d} chi={chi}: V {r['value']:.12f} bond {r['max_bond']} disc {r['discarded']:.1e} "
+                _log(f"deep {name} p={p} d={d} chi={chi}: V {r['value']:.12f} bond {r['largest_bond']} disc {r['discarded']:.1e} "
                      f"{r['seconds']:.1f}s")
                 if r["seconds"] > stop_after_s:
                     break
@@ -313,7 +313,7 @@ def format_tables(result: dict) -> str:
                 "|---|---|---|---|---|---|---|"]
         for r in result["growth"]:
             out.append(f"| {r['mixture']} | {r['p']} | {r['value']:.8f} | {r['error_estimate']:.1e} | {r['check_value']:.8f} | "
-                       f"{r['max_bond']} | {r['seconds_both']:.0f} |")
+                       f"{r['largest_bond']} | {r['seconds_both']:.0f} |")
         out.append("")
     return "\n".join(out)
 

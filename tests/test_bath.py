@@ -198,7 +198,7 @@ def test_parity_blocks_match_dense_mps(spec, p, chi, cutoff):
     blocks = run_bath(mix, g, b, engine="mps", **kw)
     dense = run_bath(mix, g, b, engine="dense-mps", **kw)
     assert np.max(np.abs(blocks.correlations - dense.correlations)) < 1e-12
-    assert blocks.max_bond == dense.max_bond
+    assert blocks.largest_bond == dense.largest_bond
     assert blocks.discarded == pytest.approx(dense.discarded, rel=1e-6, abs=1e-15)
 
 
@@ -232,7 +232,7 @@ def test_truncation_is_reported_and_matters():
     exact = evaluate(mix, g, b).value
     loose = run_bath(mix, g, b, fock=6, chi=4, basis="cholesky")
     tight = run_bath(mix, g, b, fock=16, chi=64, basis="cholesky")
-    assert loose.max_bond == 4 and loose.discarded > 1e-6
+    assert loose.largest_bond == 4 and loose.discarded > 1e-6
     assert abs(tight.value - exact) < 1e-3 * abs(loose.value - exact)
 
 
@@ -330,6 +330,42 @@ def test_error_estimate_corner_cases(spec):
     res = evaluate_bath(mix, gz, bz, tolerance=1e-6)
     assert abs(res.value - evaluate(mix, gz, bz).value) <= res.error_estimate <= 1e-6
     assert res.run.carried  # the zero angles were detected and carried
+
+
+@pytest.mark.parametrize("gamma,beta,fragment", [
+    ("3", "0.5", "exceeds the value"),     # V_1 ~ 4e-8, below what the default tolerance resolves
+    ("0.3", "0", "exceeds the value"),     # V_1 = 0 up to rounding
+    ("18.5", "0.3", "Fock cap 40 binds"),  # displacements of ~18: hundreds of Fock levels
+    ("1000", "1000", "double-precision"),  # the value underflows (the exact method's range check)
+])
+def test_cli_bath_refuses_untrustworthy_values(gamma, beta, fragment):
+    r = run_cli("evaluate", "--xi", "2:0.5", f"--gamma={gamma}", f"--beta={beta}", "--method", "bath")
+    assert r.returncode == 2 and r.stdout == ""
+    assert fragment in r.stderr and len(r.stderr.strip().splitlines()) == 1
+
+
+def test_physical_range_and_sizes_refused():
+    from leadline.jobs.commands._evaluate_bath import check_bath_size, check_bath_value, energy_bound
+    from leadline.jobs.errors import InputError
+
+    sk = parse_mixture("2:0.5")
+    # sqrt(2 ln 2 xi(1)) lies above the Parisi ground state of SK, 0.763166 (Crisanti, Rizzo, Phys. Rev. E
+    # 65, 046137 (2002))
+    assert 0.7632 < energy_bound(sk) == pytest.approx(math.sqrt(math.log(2)), abs=1e-15)
+    check_bath_value(0.5, 1e-7, sk, 1e-6)  # fine
+    with pytest.raises(InputError, match="physical range"):
+        check_bath_value(0.9, 1e-7, sk, 1e-6)
+    with pytest.raises(InputError, match="at most p = 200"):
+        check_bath_size(201, 16, 40)
+    with pytest.raises(InputError, match="GiB"):
+        check_bath_size(100, 4096, 200)
+
+
+def test_json_names_the_largest_bond_and_the_cap():
+    res = evaluate_bath("2:0.5", [0.4, 0.5], [0.5, 0.3], tolerance=1e-6)
+    t = res.to_json()["truncation"]
+    assert "largest_bond" in t and "bond_cap" in t and "max_bond" not in t
+    assert all("largest_bond" in row for row in res.to_json()["ladder"])
 
 
 def test_deterministic_bits_whatever_the_thread_count():

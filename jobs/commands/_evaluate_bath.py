@@ -89,7 +89,34 @@ def run_checked(mix, g, b, *, tolerance=None, bond=None, fock=None, time_limit=N
     if p > NOTE_DEPTH and not quiet:
         typer.echo(f"leadline: the bath engine at p = {p} is deeper than measured (p <= {NOTE_DEPTH}: minutes); "
                    f"its cost grows like p^2 to p^3 x bond^3 (--time-limit bounds it)", err=True)
-    return _run(evaluate_bath, BathLimitError, mix, g, b, tolerance, bond, fock, time_limit, quiet)
+    res = _run(evaluate_bath, BathLimitError, mix, g, b, tolerance, bond, fock, time_limit, quiet)
+    check_bath_value(res.value, res.error_estimate, mix, tolerance)
+    return res
+
+
+def energy_bound(mix) -> float:
+    """sqrt(2 ln 2 xi(1)): no state has |energy density| above it, so neither has any V_p.
+
+    H(sigma)/N is a centred Gaussian of variance xi(1)/N for each of the 2^N configurations, and
+    the expected maximum of M centred Gaussians of variance s^2 is at most s sqrt(2 ln M) (the
+    Gaussian maximal inequality, common practice); for SK (xi(1) = 1/2) it gives 0.8326 against
+    the Parisi ground state 0.763166 (Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002)).
+    """
+    import math
+
+    return math.sqrt(2.0 * math.log(2.0) * float(abs(mix.xi(1.0))))
+
+
+def check_bath_value(value: float, estimate: float, mix, tolerance: float) -> None:
+    """Refuse (one line) a value that cannot be trusted: its estimate exceeds its size, or it
+    leaves the physical range |V_p| <= sqrt(2 ln 2 xi(1)) by more than its estimate."""
+    if estimate > abs(value):
+        raise InputError(f"V_p = {value:.3e} +- {estimate:.1e}: the error estimate exceeds the value, so not even "
+                         f"its sign is known; ask a smaller --tolerance (now {tolerance:g})")
+    bound = energy_bound(mix)
+    if abs(value) - estimate > bound:
+        raise InputError(f"V_p = {value:.6f} leaves the physical range |V_p| <= sqrt(2 ln 2 xi(1)) = {bound:.6f}: "
+                         f"the truncation broke down; not reported")
 
 
 def evaluate_bath_command(mix, g, b, tolerance, fock, bond, time_limit, as_json: bool, quiet: bool) -> None:
@@ -127,7 +154,7 @@ def report(mix, p: int, res) -> str:
         f"xi(x)      = {mix.label()}",
         f"depth p    = {p}",
         f"V_p        = {res.value:.12f} +- {res.error_estimate:.1e} (bosonic bath; tolerance {res.tolerance:.0e})",
-        f"truncation = cut-off {r.cutoff:.0e}, bond {r.max_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
+        f"truncation = cut-off {r.cutoff:.0e}, bond {r.largest_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
         f"limiting: {res.limiting}",
         f"discarded  = {r.discarded:.1e}, top Fock level population {r.top_population:.1e}, carried states: {carried}",
         f"ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {x['value']:.10f}" for x in res.ladder),

@@ -50,7 +50,7 @@ class BathRun:
     correlations: (p+1, p+1) spin correlations W(t, s), times 1..p+1
     fock        : Fock levels per mode (of the last step)
     chi         : bond cap (None: no cap)
-    max_bond    : largest bond dimension reached
+    largest_bond: largest bond dimension reached (JSON "largest_bond"; the cap is "bond_cap")
     discarded   : total discarded squared norm summed over every truncation of every state
     steps       : sweeps run (1 for the Cholesky sweep)
     step_change : max|W_m - W_{m-1}| of the last step (principal basis)
@@ -63,7 +63,7 @@ class BathRun:
     correlations: np.ndarray = field(repr=False)
     fock: list
     chi: int | None
-    max_bond: int
+    largest_bond: int
     discarded: float
     steps: int
     step_change: float
@@ -85,7 +85,7 @@ class BathRun:
             "fock_levels": [int(d) for d in self.fock],
             "bond_cap": self.chi,
             "cutoff": float(self.cutoff),
-            "max_bond": int(self.max_bond),
+            "largest_bond": int(self.largest_bond),
             "discarded_weight": float(self.discarded),
             "steps": int(self.steps),
             "step_change": float(self.step_change),
@@ -357,7 +357,7 @@ def run_bath(
     steps = 0
     change = np.inf
     max_steps = p if max_steps is None else max_steps
-    max_bond = 1
+    largest_bond = 1
     discarded = 0.0
     while steps < max_steps and change > step_tol:
         WB = bath_matrix(mixture, W[:p, :p])
@@ -368,7 +368,7 @@ def run_bath(
         change = float(np.max(np.abs(Wn - W)))
         W = Wn
         steps += 1
-        max_bond = max(max(s.bond_dimensions(), default=1) for s in states)
+        largest_bond = max(max(s.bond_dimensions(), default=1) for s in states)
         discarded = sum(s.discarded for s in states)
-    return BathRun(_value(mixture, g, W), p, basis, engine, W, dims, chi, max_bond, discarded, steps,
+    return BathRun(_value(mixture, g, W), p, basis, engine, W, dims, chi, largest_bond, discarded, steps,
                    change, time.perf_counter() - t0, [float(x) for x in lam], reverse)

@@ -78,7 +78,7 @@ class BathEvaluation:
 
 
 def _limiting(run: BathRun, bond_cap: int, fock_cap: int) -> str:
-    if run.max_bond >= bond_cap:
+    if run.largest_bond >= bond_cap:
         return "bond cap"
     if np.sqrt(run.top_population) > run.discarded or max(run.fock) >= fock_cap:
         return "Fock levels"
@@ -134,7 +134,7 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
                 raise BathLimitError(f"cannot reach tolerance {tolerance:.1e} within --time-limit {time_limit:g} s: "
                                      f"{exc}{last}") from None
             runs.append(run)
-            ladder.append({"cutoff": cutoff, "value": run.value, "largest_bond": run.max_bond,
+            ladder.append({"cutoff": cutoff, "value": run.value, "largest_bond": run.largest_bond,
                            "max_fock": max(run.fock), "wall_time_s": run.wall_time})
             if len(runs) >= 3:
                 est = _estimate(runs)
@@ -145,7 +145,7 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
                     raise BathLimitError(
                         f"cannot reach tolerance {tolerance:.1e}: the Fock cap {fock_cap} binds "
                         f"(top-level population {run.top_population:.1e}); raise --fock")
-                capped = [r.max_bond >= bond_cap for r in runs[-2:]]
+                capped = [r.largest_bond >= bond_cap for r in runs[-2:]]
                 if all(capped):
                     raise BathLimitError(
                         f"cannot reach tolerance {tolerance:.1e}: the bond cap {bond_cap} binds "
