@@ -5,23 +5,24 @@ drops the smallest singular values whose squared share stays below c (the bond c
 as a memory guard), and every mode keeps enough Fock levels that its top two levels hold at
 most c^2 of the norm after each layer: the Heisenberg identity the readout rests on breaks at
 the top level by a term whose expectation is bounded (Cauchy-Schwarz) by the square root of
-that level's population, and errors of that size were measured.  The ladder runs c_k = tolerance / 10^k, k = 0, 1, ...
-and stops at the first k >= 2 with
+that level's population, and errors of that size were measured.  The ladder runs
+c_k = tolerance / 10^k, k = 0, 1, ... and stops at the first k >= 2 with
 
     estimate_k = 2 max(|V_k - V_(k-1)|, |V_(k-1) - V_(k-2)| / 3) + discarded_k + sqrt(top_k) <= tolerance
 
-and discarded_k <= discarded_(k-1) / 2 (or below 1e-4 tolerance), reporting V_k = V(c_k).  The truncation errors fall
-several-fold per step of the ladder (measured for SK, pure q = 3, q = 4 and 2+4, docs/bath.md),
-so the first term exceeds the error of V_k whenever they fall at least 1.5x per step; the
-step before (at a third of its size) catches two runs that agree by accident although the
+and discarded_k <= discarded_(k-1) / 2 (or below 1e-4 tolerance), reporting V_k = V(c_k).
+The truncation errors fall several-fold per step of the ladder (measured for SK, pure q = 3,
+q = 4 and 2+4, docs/bath.md), so the first term exceeds the error of V_k whenever they fall at
+least 1.5x per step; the step before (at a third of its size) catches two runs that agree by accident although the
 error is not converged (measured: pure q = 4 at p = 10, cut-offs 1e-10 and 1e-11 agree to 8e-11
 while both are 4e-9 off); the last two terms (what the run itself threw away) guard as well.
 The second condition refuses the agreement of two runs that truncated alike: where the
 Schmidt spectrum has a gap, cut-offs 1e-6..1e-8 can keep the same bond and discard the same
-weight, so their values agree to 1e-12 while both are 1e-7 off (pure q = 3 at p = 4).  The tests check that the estimate bounds the true error wherever the exact value is
-known.  If the ladder cannot reach the tolerance -- the bond cap binds in two runs in a row, the
-cut-off reaches rounding level, or the time limit passes -- :class:`BathLimitError` says so in
-one line, naming the limiting truncation.
+weight, so their values agree to 1e-12 while both are 1e-7 off (pure q = 3 at p = 4).  The
+tests check that the estimate bounds the true error wherever the exact value is known.  If the
+ladder cannot reach the tolerance -- the bond cap binds in two runs in a row, the
+Fock cap binds, the cut-off reaches rounding level, or the time limit passes --
+:class:`BathLimitError` says so in one line, naming the limiting truncation.
 
 Determinism: BLAS runs on one thread inside (threadpoolctl), so the same inputs give the same
 bits whatever thread count the caller's process uses.
