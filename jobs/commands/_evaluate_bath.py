@@ -28,7 +28,7 @@ BOND_RANGE = (4, 4096)
 FOCK_RANGE = (4, 200)
 #: deepest circuit the bath engine accepts; beyond NOTE_DEPTH a cost note is printed
 MAX_BATH_DEPTH = 200
-NOTE_DEPTH = 40
+NOTE_DEPTH = 32
 
 
 def check_method(method: str, tolerance: Optional[float], fock: Optional[int], bond: Optional[int],
@@ -59,7 +59,7 @@ def check_bath_size(p: int, bond: int, fock: int) -> None:
     """Refuse depths beyond the engine's range and bond caps whose states cannot fit in memory."""
     if p > MAX_BATH_DEPTH:
         raise InputError(f"--method bath accepts at most p = {MAX_BATH_DEPTH} layers (its cost grows like "
-                         f"p^2 to p^3 times bond^3; measured to p = 40, docs/bath.md), got p = {p}")
+                         f"p^2 to p^3 times bond^3; measured to p = 32, docs/bath.md), got p = {p}")
     need = state_bytes(p, bond, fock)
     import psutil
 
@@ -87,7 +87,7 @@ def run_checked(mix, g, b, *, tolerance=None, bond=None, fock=None, time_limit=N
     p = int(g.size)
     check_bath_size(p, bond, fock)
     if p > NOTE_DEPTH and not quiet:
-        typer.echo(f"leadline: the bath engine at p = {p} is deeper than measured (p <= {NOTE_DEPTH}: minutes); "
+        typer.echo(f"leadline: the bath engine at p = {p} is deeper than measured (p <= {NOTE_DEPTH}: up to minutes of CPU); "
                    f"its cost grows like p^2 to p^3 x bond^3 (--time-limit bounds it)", err=True)
     res = _run(evaluate_bath, BathLimitError, mix, g, b, tolerance, bond, fock, time_limit, quiet)
     check_bath_value(res.value, res.error_estimate, mix, tolerance)
