@@ -13,6 +13,8 @@ from typing import Optional
 
 import typer
 
+from leadline.kernels.numtext import fmt
+
 from ..errors import InputError
 
 METHODS = ("exact", "bath")
@@ -153,10 +155,10 @@ def report(mix, p: int, res) -> str:
     return "\n".join([
         f"xi(x)      = {mix.label()}",
         f"depth p    = {p}",
-        f"V_p        = {res.value:.12f} +- {res.error_estimate:.1e} (bosonic bath; tolerance {res.tolerance:.0e})",
+        f"V_p        = {fmt(res.value, 12)} +- {res.error_estimate:.1e} (bosonic bath; tolerance {res.tolerance:.0e})",
         f"truncation = cut-off {r.cutoff:.0e}, bond {r.largest_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
         f"limiting: {res.limiting}",
         f"discarded  = {r.discarded:.1e}, top Fock level population {r.top_population:.1e}, carried states: {carried}",
-        f"ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {x['value']:.10f}" for x in res.ladder),
+        "ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {fmt(x['value'], 10)}" for x in res.ladder),
         f"time       = {sum(x['wall_time_s'] for x in res.ladder):.2f} s",
     ])
