@@ -257,10 +257,14 @@ def optimize(
     seed: int = 0,
     gtol: float = 1e-7,
     maxiter: int = 500,
-    memory_mb: float = 256.0,
+    memory_mb: float | None = None,
     executor: str = "auto",
     scheduler: str | None = None,
     workers: int | None = None,
+    method: str = "exact",
+    fock: int | None = None,
+    bond: int | None = None,
+    basis: str | None = None,
 ) -> Ladder:
     """Optimal angles and V_p* at depth ``depth`` (maximizes V_p).
 
@@ -282,7 +286,15 @@ def optimize(
     seed, gtol, maxiter
         Seed of the random starts; gradient tolerance; iteration cap per local run.
     memory_mb, executor, scheduler, workers
-        As for :func:`evaluate`.
+        As for :func:`evaluate` (``memory_mb``: exact method only, default 256).
+    method : str
+        ``"exact"`` (default: the exact iteration and its reverse-mode gradient) or
+        ``"bath"`` (the bosonic-bath engine with finite differences, for depths past
+        exact reach; docs/bath.md).  With ``"bath"``, ``result.error_estimate`` is the
+        engine's estimate of V_p*'s truncation error and restarts default to none
+        after a warm start.
+    fock, bond, basis
+        Bath engine truncation (method ``"bath"`` only), as ``--fock/--bond/--basis``.
 
     Returns
     -------
@@ -291,11 +303,18 @@ def optimize(
         full optimizer record of the last depth), ``.ladder``; ``.to_json()``
         is what ``leadline optimize --json`` prints.
     """
+    from .bath import bath_ladder, check_optimize_method, engine_settings
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    use_bath = check_optimize_method(method, fock=fock, bond=bond, basis=basis, memory_mb=memory_mb)
     initial = _start(angles, depth)
+    if use_bath:
+        with _executor(executor, scheduler, workers, 256.0) as ex:
+            return bath_ladder(mix, depth, initial, run_map=ex.run_map, engine=engine_settings(fock, bond, basis),
+                               restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter)
+    memory_mb = 256.0 if memory_mb is None else memory_mb
     budget = _budget(memory_mb)
     with _executor(executor, scheduler, workers, memory_mb) as ex:
         return optimize_ladder(mix, depth, initial, run_pass=ex.run_pass, budget=budget, restarts=restarts,

@@ -11,18 +11,13 @@ from typing import Optional
 
 import typer
 
+from ..bath import DEFAULT_BASIS, DEFAULT_BOND, DEFAULT_FOCK, DEFAULT_TAIL, METHODS, check_engine_values  # noqa: F401
 from ..errors import InputError
 
-METHODS = ("exact", "bath")
 METHOD_HELP = "exact (default): the exact path-sum iteration. bath: the bosonic-bath engine (matrix product state, any depth, with a truncation error estimate; see docs/bath.md)."
 FOCK_HELP = "--method bath: Fock levels d of each bath mode in the first run (default 10; principal basis: of the most driven mode, weaker ones down to 3). The value comes from a second run at 1.5 d levels and 2 chi; the difference of the two runs is the error estimate."
 BOND_HELP = "--method bath: bond dimension cap chi of the matrix product state in the first run (default 32)."
 BASIS_HELP = "--method bath: bath mode basis, cholesky (default: one causal sweep) or principal (eigenmodes, step by step)."
-
-DEFAULT_FOCK = 10
-DEFAULT_TAIL = 3
-DEFAULT_BOND = 32
-DEFAULT_BASIS = "cholesky"
 
 
 def check_method(method: str, fock: Optional[int], bond: Optional[int], basis: Optional[str], *, gradient: bool,
@@ -39,12 +34,7 @@ def check_method(method: str, fock: Optional[int], bond: Optional[int], basis: O
         raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
     if gradient or fixed_point:
         raise InputError("--method bath gives the value only: drop --gradient/--check-fixed-point")
-    if fock is not None and fock < 2:
-        raise InputError(f"--fock must be >= 2 levels, got {fock}")
-    if bond is not None and bond < 1:
-        raise InputError(f"--bond must be >= 1, got {bond}")
-    if basis is not None and basis not in ("cholesky", "principal"):
-        raise InputError(f"--basis must be cholesky or principal, got {basis!r}")
+    check_engine_values(fock, bond, basis)
     return True
 
 

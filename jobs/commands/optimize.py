@@ -16,7 +16,8 @@ from ..cost import COST_NOTE_SECONDS, check_cost
 from ..errors import InputError
 from ..paths import check_output_file
 from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
-from . import _sparse as sparse
+from ..bath import bath_ladder, check_optimize_method, engine_settings
+from . import _evaluate_bath as bath, _sparse as sparse
 
 
 def optimize_command(
@@ -35,7 +36,7 @@ def optimize_command(
     gtol: float = typer.Option(1e-7, "--gtol", help="Stop when the largest gradient component is below this."),
     maxiter: int = typer.Option(500, "--maxiter", help="Iteration cap of each local quasi-Newton run."),
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
-    memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB."),
+    memory_mb: Optional[float] = typer.Option(None, "--memory-mb", help=f"Memory budget of one chunk task in MiB (exact method; default {DEFAULT_MEMORY_BUDGET / 2**20:g})."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
     xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
@@ -45,6 +46,10 @@ def optimize_command(
     threads_per_worker: int = compute.threads_option(),
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
+    method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP + " With bath the gradient is a finite difference, its evaluations run on the executor."),
+    fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
+    bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
+    basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -53,7 +58,12 @@ def optimize_command(
         leadline optimize --xi 2:0.5 --depth 5            # SK: V_5* = 0.5476
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
+
+        leadline optimize --xi 2:0.5 --depth 18 --angles p17.json --method bath
     """
+    use_bath = check_optimize_method(method, fock=fock, bond=bond, basis=basis, memory_mb=memory_mb,
+                                     sparse=sparse.sparse_requested(xorsat, degree))
+    memory_mb = DEFAULT_MEMORY_BUDGET / 2**20 if memory_mb is None else memory_mb
     if not (memory_mb > 0 and memory_mb < float("inf")):
         raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
@@ -71,6 +81,9 @@ def optimize_command(
     if output is not None:
         check_output_file(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    if use_bath:
+        return _optimize_bath(mix, depth, initial, settings, engine_settings(fock, bond, basis), restarts=restarts,
+                              seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json)
     cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
         typer.echo(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", err=True)
@@ -101,6 +114,35 @@ def optimize_command(
     header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
+
+
+def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gtol, maxiter, output, as_json) -> None:
+    """`optimize --method bath`: the bath ladder on the executor, reported with the error estimate."""
+    with compute.open_compute(settings) as ex:
+        run = bath_ladder(
+            mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gtol,
+            maxiter=maxiter,
+            on_evaluation=lambda info, p: ex.progress.evaluation_done(
+                info["value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
+                detail=f" +- {info['error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
+        )
+    result = run.result
+    if output is not None:
+        write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
+    warning = convergence_warning(result)
+    if warning:
+        typer.echo(warning, err=True)
+    if as_json:
+        typer.echo(json.dumps(run.to_json()))
+        return
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}",
+              f"V_p*           = {result.value:.10f} +- {result.error_estimate:.1e} (bosonic bath)"]
+    evaluations = (f"{run.evaluations_total} over depths {run.first_depth}..{depth} ({result.gradients} gradients at "
+                   f"p = {depth}, {result.evaluation_seconds:.3f} CPU s each), {run.wall_time:.1f} s")
+    text = optimum_report(header, result, evaluations, run.ladder, output)
+    text = text.replace(f"gradient (max) = {result.gradient_norm:.1e}",
+                        f"gradient (max) = {result.gradient_norm:.1e} (noise level {result.gradient_noise:.1e})")
+    typer.echo(text)
 
 
 def register(app: typer.Typer) -> None:

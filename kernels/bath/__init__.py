@@ -9,7 +9,8 @@ per-mode Fock cut-offs and a bond cap chi; the modes are the bath's principal mo
 truncations and reports the larger one's value with |difference| as its error estimate.
 
 Modules (private): ``_dense``, ``_mps`` (the two states), ``_modes`` (bath modes and bases),
-``_engine`` (one run), ``_estimate`` (two runs and the error estimate).  May import: numpy,
+``_engine`` (one run), ``_estimate`` (two runs and the error estimate), ``_optimize``
+(optimal angles by noise-aware finite differences).  May import: numpy,
 scipy.linalg and the contour layout of :mod:`leadline.kernels.exact`.  Names are imported on
 first use.
 """
@@ -34,6 +35,10 @@ _WHERE = {
     "mode_amplitudes": "_modes",
     "principal_factor": "_modes",
     "MPSState": "_mps",
+    "BathOptimization": "_optimize",
+    "optimize_bath_depth": "_optimize",
+    "bath_point": "_optimize",
+    "fourier_basis": "_optimize",
 }
 
 __all__ = list(_WHERE)

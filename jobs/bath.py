@@ -1,0 +1,103 @@
+"""The bath method of `optimize` and of sweeps: engine settings, option checks, the depth ladder.
+
+The kernel is :func:`leadline.kernels.bath.optimize_bath_depth`; this module turns the user's
+options into its engine settings, checks the options the bath method does not have (and the
+reverse), and runs depths in turn, each warm-started by INTERP from the one before.
+"""
+
+from __future__ import annotations
+
+import time
+
+from .errors import InputError
+
+__all__ = ["DEFAULT_FOCK", "DEFAULT_TAIL", "DEFAULT_BOND", "DEFAULT_BASIS", "engine_settings",
+           "check_optimize_method", "bath_ladder", "bath_restarts"]
+
+DEFAULT_FOCK = 10
+DEFAULT_TAIL = 3
+DEFAULT_BOND = 32
+DEFAULT_BASIS = "cholesky"
+METHODS = ("exact", "bath")
+
+
+def engine_settings(fock: int | None = None, bond: int | None = None, basis: str | None = None) -> dict:
+    """Keyword arguments of ``evaluate_bath`` from the command line's --fock/--bond/--basis."""
+    fock = DEFAULT_FOCK if fock is None else int(fock)
+    return {
+        "fock": fock,
+        "tail": min(DEFAULT_TAIL, fock),
+        "chi": DEFAULT_BOND if bond is None else int(bond),
+        "basis": DEFAULT_BASIS if basis is None else str(basis),
+    }
+
+
+def check_engine_values(fock, bond, basis, *, prefix: str = "--") -> None:
+    """Range checks of the bath truncation settings (one InputError line)."""
+    if fock is not None and (isinstance(fock, bool) or not isinstance(fock, int) or fock < 2):
+        raise InputError(f"{prefix}fock must be an integer >= 2 levels, got {fock!r}")
+    if bond is not None and (isinstance(bond, bool) or not isinstance(bond, int) or bond < 1):
+        raise InputError(f"{prefix}bond must be an integer >= 1, got {bond!r}")
+    if basis is not None and basis not in ("cholesky", "principal"):
+        raise InputError(f"{prefix}basis must be cholesky or principal, got {basis!r}")
+
+
+def check_optimize_method(method: str, *, fock=None, bond=None, basis=None, memory_mb=None,
+                          sparse: bool = False) -> bool:
+    """Validate the method options of `optimize`; True when the bath method is asked for."""
+    if method not in METHODS:
+        raise InputError(f"--method must be one of {', '.join(METHODS)}, got {method!r}")
+    if method == "exact":
+        for name, value in (("--fock", fock), ("--bond", bond), ("--basis", basis)):
+            if value is not None:
+                raise InputError(f"{name} applies only to --method bath")
+        return False
+    if sparse:
+        raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
+    if memory_mb is not None:
+        raise InputError("--memory-mb sets the chunk plan of the exact method; --method bath has none (drop it)")
+    check_engine_values(fock, bond, basis)
+    return True
+
+
+def bath_restarts(restarts: int | None, warm: bool, p: int) -> int:
+    """Extra starts of a bath depth: as given, else none after a warm start, else the exact default."""
+    from leadline.kernels.optimize import default_restarts
+
+    if restarts is not None:
+        return int(restarts)
+    return 0 if warm else default_restarts(p)
+
+
+def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=None, seed=0, gtol=1e-7,
+                maxiter=500, on_evaluation=None):
+    """Optimize depths in turn up to ``depth`` with the bath engine (from ``initial``, an AngleSet).
+
+    Shared by :func:`leadline.optimize` (``method="bath"``) and ``leadline optimize --method bath``.
+    ``on_evaluation(info, p)`` is called after every gradient (the progress line).
+    """
+    from leadline.kernels.bath import optimize_bath_depth
+
+    from .api import Ladder
+
+    t0 = time.perf_counter()
+    if initial is not None:
+        first = depth
+        previous = (initial.gamma, initial.beta)
+        previous_value = initial.value if initial.p == depth - 1 else None
+    else:
+        first, previous, previous_value = 1, None, None
+    ladder, result = [], None
+    for p in range(first, depth + 1):
+        callback = None
+        if on_evaluation is not None:
+            callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
+        result = optimize_bath_depth(
+            mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
+            restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol, maxiter=maxiter,
+            callback=callback,
+        )
+        ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
+                       "evaluations": result.evaluations})
+        previous, previous_value = (result.gamma, result.beta), result.value
+    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
