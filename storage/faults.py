@@ -26,6 +26,7 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   depth-arrays-written    a depth's angle arrays are on disk, its done flag is not
   depth-done              a depth's done flag is on disk
   depth-started           a depth is marked running, its optimizer not yet started
+  bath-evaluations-cached a batch of bath evaluations of a depth is on disk (jobs/bath.py)
 """
 
 from __future__ import annotations
