@@ -74,9 +74,15 @@ def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, 
 
     def live(info: dict) -> None:
         # what `leadline status` shows for the depth in progress (one small attribute write)
-        depth.group.attrs.update({"bath_progress": {k: info[k] for k in (
-            "value", "error_estimate", "gradient_norm", "evaluation_s")} | {"evaluations": evaluations.computed
-                                                                           + evaluations.from_checkpoint}})
+        depth.group.attrs.update({"bath_progress": {
+            "value": info["best_value"], "error_estimate": info["best_error_estimate"],
+            "gradient_norm": info["gradient_norm"], "evaluation_s": info["evaluation_s"],
+            "evaluations": evaluations.computed + evaluations.from_checkpoint}})
+        progress = getattr(executor, "progress", None)
+        if progress is not None:  # the sweep's progress line
+            progress.evaluation_done(
+                info["best_value"], label=f"{ens.label} p = {p} (bath)", count=info["evaluations"],
+                detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.3f} s per evaluation")
 
     evaluations = CheckpointedEvaluations(depth, executor)
     try:

@@ -123,8 +123,8 @@ def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gto
             mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gtol,
             maxiter=maxiter,
             on_evaluation=lambda info, p: ex.progress.evaluation_done(
-                info["value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
-                detail=f" +- {info['error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
+                info["best_value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
+                detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
         )
     result = run.result
     if output is not None:

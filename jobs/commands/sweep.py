@@ -277,10 +277,19 @@ def status_text(progress: dict) -> str:
         done = e["done"]
         lines.append(f"  {e['label']}")
         if done:
-            values = "  ".join(f"p{d['p']}={d['value']:.6f}" for d in done)
+            values = "  ".join(f"p{d['p']}={d['value']:.6f}" + (f"(bath +- {d['error_estimate']:.0e})"
+                                if d.get("method") == "bath" else "") for d in done)
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
-        if r is not None:
+        if r is not None and r.get("bath"):
+            b = r["bath"]
+            text = f"    running  p = {r['p']} (bath): {b['evaluations_checkpointed']} evaluations checkpointed"
+            if b.get("value") is not None:
+                text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, |grad| "
+                         f"{b['gradient_norm']:.1e}")
+            text += f", {b['evaluation_cpu_s']:.3f} CPU s per evaluation, session {r['sessions']}"
+            lines.append(text)
+        elif r is not None:
             text = (f"    running  p = {r['p']}: {r['passes_cached']} passes checkpointed "
                     f"(~{r['evaluations_done']} evaluations), session {r['sessions']}")
             if r["inflight"] is not None:

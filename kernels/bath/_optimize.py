@@ -173,7 +173,7 @@ class _Objective:
         self.record["values"].append(value)
         if self.callback is not None:
             self.callback({"evaluation": self.evaluations, "evaluations": len(tasks), "value": value,
-                           "error_estimate": error,
+                           "error_estimate": error, "best_value": self.best[0], "best_error_estimate": self.best[1],
                            "gradient_norm": float(np.max(np.abs(grad))),
                            "evaluation_s": self.seconds / max(1, self.evaluations)})
         return -value, -grad
@@ -254,8 +254,8 @@ def optimize_bath_depth(
     stages : Fourier coefficients per schedule of each stage (default :func:`default_stages`)
     gtol : stop when the largest gradient component is below max(gtol, its noise level)
     maxiter : iteration cap of each stage
-    callback : called after each gradient with a dict (evaluation, value, error_estimate,
-        gradient_norm, evaluation_s)
+    callback : called after each gradient with a dict (evaluation, evaluations, value,
+        error_estimate, best_value, best_error_estimate (of the stage), gradient_norm, evaluation_s)
     """
     t0 = time.perf_counter()
     if p < 1:
