@@ -12,6 +12,9 @@ Sources:
 - The spin-boson form for SK: Boulebnane et al., arXiv:2505.07929 (2025); the form for any
   xi (bath two-point function xi' of the spin's correlations) is what these tests establish
   numerically.
+- Optimal angles: leadline's exact optimizer (benchmarks/data/bath_angles.json); the SK optimal
+  values agree with tests/sk_optima.csv, which cites Basso et al., arXiv:2110.14206, Table 1 and
+  Farhi et al., Quantum 6, 759 (2022), Table 1.
 """
 
 from __future__ import annotations
@@ -24,7 +27,9 @@ import sys
 import numpy as np
 import pytest
 
-from leadline.kernels.bath import evaluate_bath, fock_levels, principal_factor, run_bath
+import os
+
+from leadline.kernels.bath import evaluate_bath, fock_levels, principal_factor, readout_sweep, run_bath
 from leadline.kernels.exact import evaluate
 from leadline.kernels.mixture import parse_mixture
 
@@ -99,6 +104,98 @@ def test_error_estimate_bounds_true_error(spec, p):
         res = evaluate_bath(mix, g, b, fock=fock, tail=3, chi=chi, basis="cholesky")
         assert abs(res.value - exact) <= res.error_estimate
         assert res.value == res.run.value and res.run.chi == 2 * chi
+
+
+OPTIMA = os.path.join(os.path.dirname(__file__), os.pardir, "benchmarks", "data", "bath_angles.json")
+
+
+def optimum(name: str, p: int):
+    with open(OPTIMA) as fh:
+        entry = json.load(fh)[name]
+    e = entry["depths"][str(p)]
+    return parse_mixture(entry["xi"]), np.array(e["gamma"]), np.array(e["beta"]), float(e["value"])
+
+
+def sk_optimum_value(p: int) -> float:
+    """V_p* of SK from tests/sk_optima.csv (Basso et al. arXiv:2110.14206 / Farhi et al. 2022, Table 1)."""
+    with open(os.path.join(os.path.dirname(__file__), "sk_optima.csv")) as fh:
+        rows = [ln.split(",") for ln in fh if ln[0].isdigit()]
+    return {int(a): float(v) for a, v in rows}[p]
+
+
+@pytest.mark.parametrize("spec", MIXTURES)
+@pytest.mark.parametrize("p", [1, 2, 3, 4])
+def test_readout_matches_carried_states_and_dense_fock(spec, p):
+    # one state + back substitution against psi and every chi_s carried, both in the dense Fock
+    # space and in an untruncated MPS; the identity is exact in the full Fock space, so enough levels
+    mix = parse_mixture(spec)
+    g, b = angles(13, mix, p)
+    fock = {1: 20, 2: 20, 3: 18, 4: 14}[p]
+    carried = run_bath(mix, g, b, fock=fock, engine="dense", readout="carried")
+    dense = run_bath(mix, g, b, fock=fock, engine="dense", readout="modes")
+    mps = run_bath(mix, g, b, fock=fock, engine="mps", chi=None, cutoff=0.0, readout="modes")
+    assert dense.readout == "modes" and dense.carried == []
+    assert np.max(np.abs(dense.correlations - carried.correlations)) < 1e-10
+    assert np.max(np.abs(mps.correlations - dense.correlations)) < 1e-10
+    assert dense.value == pytest.approx(evaluate(mix, g, b).value, abs=1e-10)
+
+
+def test_readout_dense_p5():
+    mix = parse_mixture("2:0.5")
+    g, b = angles(17, mix, 5)
+    dense = run_bath(mix, g, b, fock=11, engine="dense")
+    carried = run_bath(mix, g, b, fock=11, engine="dense", readout="carried")
+    assert abs(dense.value - carried.value) < 1e-10
+    assert abs(dense.value - evaluate(mix, g, b).value) < 1e-9
+
+
+@pytest.mark.parametrize("engine", ["dense", "mps"])
+def test_tiny_pivots_carry_their_states(engine):
+    # a zero gamma (pivot g_s C[s,s] = 0) and a zero beta (Z_4 = Z_3: the bath row is spanned
+    # by earlier modes, C[3,3] = 0): those s carry chi_s and say so; the value stays exact
+    mix = parse_mixture("2:0.3,3:0.7")
+    g, b = np.array([0.3, 0.0, 0.5, 0.4]), np.array([0.4, 0.3, 0.0, 0.2])
+    run = run_bath(mix, g, b, fock=18, engine=engine, chi=None, cutoff=0.0)
+    assert 1 in run.carried and 3 in run.carried and 0 not in run.carried
+    assert run.to_json()["carried_times"] == [s + 1 for s in run.carried]
+    assert run.value == pytest.approx(evaluate(mix, g, b).value, abs=1e-9)
+
+
+def test_fock_levels_grow_from_occupation():
+    mix, g, b, exact = optimum("sk", 6)
+    fixed = run_bath(mix, g, b, fock=4, chi=64)
+    grown = run_bath(mix, g, b, fock=4, fock_max=30, fock_tol=1e-12, chi=64)
+    assert abs(fixed.value - exact) > 1e-4 and fixed.top_population > 1e-4
+    assert abs(grown.value - exact) < 1e-10 and grown.top_population < 1e-12
+    assert max(grown.fock) > 12 and min(grown.fock) < max(grown.fock)  # per mode, from its occupation
+
+
+FAST_OPTIMA = [("sk", 2), ("sk", 5), ("sk", 8), ("q3", 4), ("q3", 7), ("q4", 3), ("q4", 6), ("mix24", 5), ("mix24", 8)]
+SLOW_OPTIMA = [(n, p) for n in ("sk", "q3", "q4", "mix24") for p in (10, 12)]
+
+
+def _readout_at_optimum(name, p, chi):
+    mix, g, b, stored = optimum(name, p)
+    exact = evaluate(mix, g, b).value
+    assert exact == pytest.approx(stored, abs=1e-12)
+    if name == "sk":
+        assert exact == pytest.approx(sk_optimum_value(p), abs=1e-9)
+    run = run_bath(mix, g, b, fock=4, fock_max=30, fock_tol=1e-12, chi=chi)
+    return run, exact
+
+
+@pytest.mark.parametrize("name,p", FAST_OPTIMA)
+def test_readout_at_optimal_angles(name, p):
+    run, exact = _readout_at_optimum(name, p, 48)
+    assert run.carried == []
+    assert abs(run.value - exact) < 1e-8
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name,p", SLOW_OPTIMA)
+def test_readout_at_optimal_angles_deeper(name, p):
+    run, exact = _readout_at_optimum(name, p, 64)
+    assert abs(run.value - exact) < 1e-8
 
 
 def test_truncation_is_reported_and_matters():

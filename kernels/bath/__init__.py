@@ -25,6 +25,7 @@ _WHERE = {
     "BathRun": "_engine",
     "bath_correlations": "_engine",
     "run_bath": "_engine",
+    "readout_sweep": "_engine",
     "BathEvaluation": "_estimate",
     "evaluate_bath": "_estimate",
     "larger_truncation": "_estimate",

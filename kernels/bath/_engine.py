@@ -36,7 +36,7 @@ from ._dense import DenseState
 from ._modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
 from ._mps import MPSState
 
-__all__ = ["BathRun", "bath_correlations", "run_bath", "BASES"]
+__all__ = ["BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
 
 BASES = ("cholesky", "principal")
 
@@ -69,6 +69,9 @@ class BathRun:
     wall_time: float
     eigenvalues: list | None = None
     reverse: bool = False
+    readout: str = "carried"
+    carried: list = field(default_factory=list)
+    top_population: float = 0.0
 
     def to_json(self) -> dict:
         return {
@@ -83,6 +86,9 @@ class BathRun:
             "discarded_weight": float(self.discarded),
             "steps": int(self.steps),
             "step_change": float(self.step_change),
+            "readout": self.readout,
+            "carried_times": [int(s) + 1 for s in self.carried],
+            "top_level_population": float(self.top_population),
             "wall_time_s": float(self.wall_time),
         }
 
@@ -145,6 +151,112 @@ def bath_correlations(mixture, g, b, *, C=None, dims=None, engine="mps", chi=Non
     return W, [psi, *chis]
 
 
+def levels_needed(pops, x, d: int, d_max: int, tol: float) -> int:
+    """Fock levels (d..d_max) a mode needs so that after the displacement exp(-i x b - i x* b^+)
+    its top two levels hold at most ``tol`` of the norm.
+
+    pops are the mode's level populations now; the populations after the displacement are
+    estimated level by level (|<m|U|n>|^2 pops[n], interference ignored), with U on d_max levels.
+    """
+    if x == 0 or d >= d_max:
+        return d
+    e, V = _quadrature(d_max)
+    U = (V * np.exp(-1j * abs(x) * e)[None, :]) @ V.T
+    after = (np.abs(U[:, : len(pops)]) ** 2) @ np.asarray(pops, float)
+    tail = np.cumsum(after[::-1])[::-1]  # tail[m] = population of levels >= m
+    for dn in range(d, d_max + 1):
+        if tail[max(dn - 2, 0)] <= tol:
+            return dn
+    return d_max
+
+
+_QUAD: dict = {}
+
+
+def _quadrature(d: int):
+    """Eigenvectors of b + b^+ on d levels (cached): the displacement generator up to a phase."""
+    if d not in _QUAD:
+        a = np.diag(np.sqrt(np.arange(1, d, dtype=float)), 1)
+        _QUAD[d] = np.linalg.eigh(a + a.T)
+    return _QUAD[d]
+
+
+def _back_substitute(W, t, zb, g, C, known) -> None:
+    """Row t of W from a_k = <psi_t| Z b_k |psi_t>, k < t (the modes' memory of the spin).
+
+    Heisenberg picture of exp(-i g_s Z B_s): b_k -> b_k - i g_s conj(C[s, k]) Z_s, and b_k
+    annihilates the vacuum, so a_k = -i sum_{s=k}^{t-1} g_s conj(C[s, k]) W(t, s): triangular
+    with diagonal g_k C[k, k].  Entries in ``known`` (s -> value, from carried states) are used
+    as given and their equation is skipped.
+    """
+    for k in range(t - 1, -1, -1):
+        if k in known:
+            W[t, k] = known[k]
+        else:
+            acc = 1j * zb[k] - np.dot(g[k + 1:t] * np.conj(C[k + 1:t, k]), W[t, k + 1:t])
+            W[t, k] = acc / (g[k] * C[k, k].real)
+        W[k, t] = np.conj(W[t, k])
+
+
+def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8, fock_max=None,
+                  fock_tol=None, reverse=True, pivot_tol=1e-3):
+    """Spin correlations W (p+1 x p+1) of the causal Cholesky sweep, read from ONE state.
+
+    Before layer t, W(t, s) for s < t follows by back substitution (:func:`_back_substitute`)
+    from <psi_t| Z b_k |psi_t>, one left-to-right sweep of the state.  Where the pivot
+    |g_s C[s, s]| is below ``pivot_tol`` times the largest possible one (max|g| sqrt(xi'(1))),
+    dividing by it would amplify truncation errors: for those s alone chi_s = U(s -> now) Z psi_s
+    is carried and W(t, s) = <psi_t| Z |chi_s> is used instead.
+    Fock levels start at ``fock`` per mode; with ``fock_tol`` set (MPS), before each layer every
+    mode it drives gets the levels :func:`levels_needed` asks for (up to ``fock_max``).
+    Returns (W, info) with info: states (psi and carried), fock levels, carried times, top-level
+    population (largest seen), pivots.
+    """
+    p = len(g)
+    dims = [int(fock)] * p
+    fock_max = int(fock) if fock_max is None else int(fock_max)
+    C = np.zeros((p, p), complex)
+    site = (lambda k: p - k) if reverse else (lambda k: k + 1)  # tensor index of mode k
+    chain = (lambda xs: list(xs)[::-1]) if reverse else list
+    psi = _make_state(engine, chain(dims), chi, cutoff)
+    carried: dict[int, object] = {}
+    W = np.eye(p + 1, dtype=complex)
+    scale = float(np.max(np.abs(g))) * float(np.sqrt(max(np.real(mixture.dxi(1.0)), 0.0)))
+    top_max = 0.0
+    pivots = np.zeros(p)
+    for t in range(p + 1):
+        if t > 0:
+            zb_sites, pop_sites = psi.mode_readout()
+            zb = np.array([zb_sites[site(k) - 1] for k in range(p)])
+            pops = [pop_sites[site(k) - 1] for k in range(p)]
+            top_max = max(top_max, max(float(pops[k][-1]) for k in range(t)))
+            known = {s: psi.z_overlap(ch) for s, ch in carried.items()}
+            _back_substitute(W, t, zb, g, C, known)
+        if t == p:
+            break
+        row = mixture.dxi(W[t, : t + 1])
+        row[t] = np.real(row[t])
+        cholesky_row(C, t, row)
+        if fock_tol is not None and engine == "mps":
+            for k in range(t + 1):
+                need = levels_needed(pops[k] if k < t else np.ones(1), g[t] * C[t, k], dims[k], fock_max, fock_tol)
+                if need > dims[k]:
+                    dims[k] = need
+                    for st in [psi, *carried.values()]:
+                        st.pad_site(site(k), need)
+        pivots[t] = abs(g[t] * C[t, t].real)
+        if pivots[t] <= pivot_tol * scale:
+            carried[t] = psi.copy().apply_z()
+        ops = chain(layer_unitaries(g[t], C[t], dims))
+        U = _mixer(b[t])
+        for st in [psi, *carried.values()]:
+            st.apply_layer(ops)
+            st.apply_spin(U)
+    info = {"states": [psi, *carried.values()], "fock": dims, "carried": sorted(carried), "top": top_max,
+            "pivots": pivots}
+    return W, info
+
+
 def _value(mixture, g, W) -> float:
     p = len(g)
     return float(2.0 * np.sum(np.asarray(g) * np.imag(mixture.xi(W[p, :p]))))
@@ -165,6 +277,10 @@ def run_bath(
     step_tol: float = 1e-12,
     guess: np.ndarray | None = None,
     reverse: bool | None = None,
+    readout: str = "modes",
+    fock_max: int | None = None,
+    fock_tol: float | None = None,
+    pivot_tol: float = 1e-3,
 ) -> BathRun:
     """V_p(gamma, beta) from the bath form at one truncation.
 
@@ -177,6 +293,12 @@ def run_bath(
     reverse : MPS chain order.  Default: Cholesky modes newest first (spin, mode p, ..., mode 1:
             the spin sits beside the modes it is creating, measured to need about half the
             bond of the creation order); principal modes largest first (spin, largest, ...).
+    readout : Cholesky sweep only. "modes" (default): one state, W read from the modes'
+            memory (:func:`readout_sweep`, O(p^2 chi^3 d)); "carried": psi and every chi_s
+            carried through every layer (O(p^3 chi^3 d), the reference).
+    fock_max, fock_tol : readout only: a mode whose top Fock level holds more than fock_tol
+            gets two more levels, up to fock_max (default: fixed ``fock`` levels).
+    pivot_tol : readout only: relative size of g_s C[s, s] below which chi_s is carried.
     """
     t0 = time.perf_counter()
     g, b = check_angles(gamma, beta)
@@ -187,6 +309,16 @@ def run_bath(
         raise ValueError("fock must be >= 1")
     if reverse is None:
         reverse = basis == "cholesky"
+    if readout not in ("modes", "carried"):
+        raise ValueError(f"unknown readout {readout!r}: use 'modes' or 'carried'")
+    if basis == "cholesky" and readout == "modes":
+        W, info = readout_sweep(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, fock_max=fock_max,
+                                fock_tol=fock_tol, reverse=reverse, pivot_tol=pivot_tol)
+        states = info["states"]
+        return BathRun(_value(mixture, g, W), p, basis, engine, W, list(info["fock"]), chi,
+                       max(max(s.bond_dimensions(), default=1) for s in states),
+                       sum(s.discarded for s in states), 1, 0.0, time.perf_counter() - t0, reverse=reverse,
+                       readout="modes", carried=info["carried"], top_population=info["top"])
     if basis == "cholesky":
         W, states = bath_correlations(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, reverse=reverse)
         run = BathRun(_value(mixture, g, W), p, basis, engine, W, [fock] * p, chi,

@@ -123,6 +123,40 @@ class MPSState:
             ts[j - 1] = np.tensordot(ts[j - 1], U[:, :keep] * S[None, :], axes=([2], [0]))
         ts[0] /= np.linalg.norm(ts[0])
 
+    def mode_readout(self) -> tuple[np.ndarray, list]:
+        """(<Z b>, Fock-level populations) of every mode site 1..K, in one left-to-right sweep.
+
+        With the centre on the spin and every site to its right right-orthonormal, the part of
+        the chain right of site j contracts to the identity, so <Z_0 O_j> needs only the left
+        transfer matrices: E_Z (Z on the spin) and E_1 (no operator) carried site by site.
+        """
+        ts = self.tensors
+        Z = np.array([1.0, -1.0])
+        A = ts[0]
+        E = np.stack([np.einsum("lar,las->rs", np.conj(A) * Z[None, :, None], A),
+                      np.einsum("lar,las->rs", np.conj(A), A)])
+        zb = np.zeros(len(ts) - 1, complex)
+        pops = []
+        for j in range(1, len(ts)):
+            A = ts[j]
+            d = A.shape[1]
+            # M[e, n, m] = sum_{l,l',r} E[e,l,l'] conj(A[l,n,r]) A[l',m,r]  (reduced matrix of the site)
+            EA = np.einsum("elm,mnr->elnr", E, A, optimize=True)
+            M = np.einsum("lkr,elnr->ekn", np.conj(A), EA, optimize=True)
+            if d > 1:
+                zb[j - 1] = np.sum(np.diagonal(M[0], 1) * np.sqrt(np.arange(1, d)))
+            pops.append(np.real(np.diagonal(M[1])).copy())
+            E = np.einsum("lnr,elns->ers", np.conj(A), EA, optimize=True)
+        return zb, pops
+
+    def pad_site(self, j: int, d: int) -> None:
+        """Give site j (a mode) d >= its Fock levels; the new levels start empty (canonical form kept)."""
+        A = self.tensors[j]
+        if d > A.shape[1]:
+            B = np.zeros((A.shape[0], d, A.shape[2]), complex)
+            B[:, : A.shape[1], :] = A
+            self.tensors[j] = B
+
     def z_overlap(self, other: "MPSState") -> complex:
         """<self| Z |other>."""
         a, b = self.tensors, other.tensors
