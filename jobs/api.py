@@ -248,6 +248,40 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 
 
+def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=None, seed=0, gtol=1e-7,
+                maxiter=500, on_evaluation=None):
+    """Optimize depths in turn up to ``depth`` with the bath engine (from ``initial``, an AngleSet).
+
+    Shared by :func:`leadline.optimize` (``method="bath"``) and ``leadline optimize --method bath``.
+    ``on_evaluation(info, p)`` is called after every gradient (the progress line).
+    """
+    from leadline.kernels.bath import optimize_bath_depth
+
+    from .bath import bath_restarts
+
+    t0 = time.perf_counter()
+    if initial is not None:
+        first = depth
+        previous = (initial.gamma, initial.beta)
+        previous_value = initial.value if initial.p == depth - 1 else None
+    else:
+        first, previous, previous_value = 1, None, None
+    ladder, result = [], None
+    for p in range(first, depth + 1):
+        callback = None
+        if on_evaluation is not None:
+            callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
+        result = optimize_bath_depth(
+            mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
+            restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol, maxiter=maxiter,
+            callback=callback,
+        )
+        ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
+                       "evaluations": result.evaluations})
+        previous, previous_value = (result.gamma, result.beta), result.value
+    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
+
+
 def optimize(
     xi,
     depth: int,
@@ -303,7 +337,7 @@ def optimize(
         full optimizer record of the last depth), ``.ladder``; ``.to_json()``
         is what ``leadline optimize --json`` prints.
     """
-    from .bath import bath_ladder, check_optimize_method, engine_settings
+    from .bath import check_optimize_method, engine_settings
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)

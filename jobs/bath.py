@@ -1,18 +1,17 @@
-"""The bath method of `optimize` and of sweeps: engine settings, option checks, the depth ladder.
+"""The bath method of `optimize` and of sweeps: engine settings, option checks, checkpointed map.
 
 The kernel is :func:`leadline.kernels.bath.optimize_bath_depth`; this module turns the user's
 options into its engine settings, checks the options the bath method does not have (and the
-reverse), and runs depths in turn, each warm-started by INTERP from the one before.
+reverse), and gives sweeps a ``run_map`` that checkpoints every bath evaluation.  The depth
+ladder (:func:`leadline.jobs.api.bath_ladder`) lives next to the exact one in api.py.
 """
 
 from __future__ import annotations
 
-import time
-
 from .errors import InputError
 
 __all__ = ["DEFAULT_FOCK", "DEFAULT_TAIL", "DEFAULT_BOND", "DEFAULT_BASIS", "engine_settings",
-           "check_optimize_method", "bath_ladder", "bath_restarts"]
+           "check_optimize_method", "bath_restarts", "CheckpointedEvaluations"]
 
 DEFAULT_FOCK = 10
 DEFAULT_TAIL = 3
@@ -67,40 +66,6 @@ def bath_restarts(restarts: int | None, warm: bool, p: int) -> int:
     if restarts is not None:
         return int(restarts)
     return 0 if warm else default_restarts(p)
-
-
-def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=None, seed=0, gtol=1e-7,
-                maxiter=500, on_evaluation=None):
-    """Optimize depths in turn up to ``depth`` with the bath engine (from ``initial``, an AngleSet).
-
-    Shared by :func:`leadline.optimize` (``method="bath"``) and ``leadline optimize --method bath``.
-    ``on_evaluation(info, p)`` is called after every gradient (the progress line).
-    """
-    from leadline.kernels.bath import optimize_bath_depth
-
-    from .api import Ladder
-
-    t0 = time.perf_counter()
-    if initial is not None:
-        first = depth
-        previous = (initial.gamma, initial.beta)
-        previous_value = initial.value if initial.p == depth - 1 else None
-    else:
-        first, previous, previous_value = 1, None, None
-    ladder, result = [], None
-    for p in range(first, depth + 1):
-        callback = None
-        if on_evaluation is not None:
-            callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
-        result = optimize_bath_depth(
-            mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
-            restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol, maxiter=maxiter,
-            callback=callback,
-        )
-        ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
-                       "evaluations": result.evaluations})
-        previous, previous_value = (result.gamma, result.beta), result.value
-    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 
 
 class CheckpointedEvaluations:

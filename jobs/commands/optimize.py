@@ -11,12 +11,12 @@ from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
-from ..api import optimize_ladder
+from ..api import bath_ladder, optimize_ladder
 from ..cost import COST_NOTE_SECONDS, check_cost
 from ..errors import InputError
 from ..paths import check_output_file
 from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
-from ..bath import bath_ladder, check_optimize_method, engine_settings
+from ..bath import check_optimize_method, engine_settings
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
