@@ -28,6 +28,8 @@ LEADLINE = [sys.executable, "-m", "leadline"]
 # Quantum 6, 759 (2022), Table 1 (SK model), to 4 decimals
 SK_TABLE_1 = {4: 0.5157, 6: 0.5721}
 ENGINE = {"fock": 10, "tail": 3, "chi": 8, "basis": "cholesky"}
+#: from p = 5 on a bond of 8 is the limiting truncation (estimate ~1e-5 at p = 6); 16 is exact there
+ENGINE_DEEPER = dict(ENGINE, chi=16)
 
 
 def _exact_ladder(xi: str, p: int):
@@ -48,7 +50,7 @@ def _bath_from_exact(xi: str, p: int):
     from leadline.kernels.bath import optimize_bath_depth
 
     mix, before, exact = _exact_ladder(xi, p)
-    got = optimize_bath_depth(mix, p, engine=ENGINE, previous=(before.gamma, before.beta), previous_value=before.value)
+    got = optimize_bath_depth(mix, p, engine=ENGINE if p <= 4 else ENGINE_DEEPER, previous=(before.gamma, before.beta), previous_value=before.value)
     return got, exact
 
 
@@ -59,7 +61,8 @@ def test_bath_optimizer_finds_the_exact_optimum(xi, p):
     assert abs(got.value - exact.value) <= 1e-6, (got.value, exact.value)
     # the estimate is honest: the reported value is not above the optimum by more than it
     assert got.value <= exact.value + got.error_estimate + 1e-9
-    assert got.error_estimate <= 1e-6 and got.gradient_norm <= max(1e-3, 10 * got.gradient_noise)
+    # stopped near the optimum (a generic point has |grad| ~ 0.1 .. 1), not at the iteration cap
+    assert got.error_estimate <= 1e-6 and got.gradient_norm <= 1e-2 and got.converged
     if xi == "2:0.5":
         assert round(got.value, 4) == SK_TABLE_1[p]
     # the same optimum, not a nearby point: the angles agree with the exact optimizer's
