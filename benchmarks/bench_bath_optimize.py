@@ -12,7 +12,7 @@ one process, evaluations in process.
 (one stage) against a smooth start (stages q, p): evaluations and CPU to the optimum.
 
 Usage:  OMP_NUM_THREADS=1 python benchmarks/bench_bath_optimize.py [--quick] [--pmax 17]
-        [--fock 10 --bond 24] [--json FILE] [--compare P]
+        [--tolerance 1e-6] [--json FILE] [--compare P]
 """
 
 from __future__ import annotations
@@ -89,8 +89,7 @@ def compare(p: int, engine: dict, log=_log) -> list[dict]:
 
 def run(quick: bool = False) -> dict:
     """`make bench`: quick keeps to p = 12 at a small truncation."""
-    engine = {"fock": 8, "tail": 3, "chi": 12, "basis": "cholesky"} if quick else \
-        {"fock": 10, "tail": 3, "chi": 24, "basis": "cholesky"}
+    engine = {"tolerance": 1e-5} if quick else {"tolerance": 1e-6}
     return {"engine": engine, "rows": chain(12, 12 if quick else 17, engine)}
 
 
@@ -99,12 +98,11 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--pmin", type=int, default=12)
     ap.add_argument("--pmax", type=int, default=17)
-    ap.add_argument("--fock", type=int, default=10)
-    ap.add_argument("--bond", type=int, default=24)
+    ap.add_argument("--tolerance", type=float, default=1e-6)
     ap.add_argument("--compare", type=int, default=None)
     ap.add_argument("--json", default=None)
     args = ap.parse_args(argv)
-    engine = {"fock": args.fock, "tail": 3, "chi": args.bond, "basis": "cholesky"}
+    engine = {"tolerance": args.tolerance}
     if args.compare:
         out = {"engine": engine, "compare": compare(args.compare, engine)}
     elif args.quick:

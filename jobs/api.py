@@ -33,6 +33,7 @@ __all__ = [
     "optimize",
     "evaluate_sparse",
     "optimize_sparse",
+    "evaluate_bath",
     "reference_energies",
     "open_study",
     "study_dataframe",
@@ -296,9 +297,9 @@ def optimize(
     scheduler: str | None = None,
     workers: int | None = None,
     method: str = "exact",
+    tolerance: float | None = None,
     fock: int | None = None,
     bond: int | None = None,
-    basis: str | None = None,
 ) -> Ladder:
     """Optimal angles and V_p* at depth ``depth`` (maximizes V_p).
 
@@ -327,8 +328,9 @@ def optimize(
         exact reach; docs/bath.md).  With ``"bath"``, ``result.error_estimate`` is the
         engine's estimate of V_p*'s truncation error and restarts default to none
         after a warm start.
-    fock, bond, basis
-        Bath engine truncation (method ``"bath"`` only), as ``--fock/--bond/--basis``.
+    tolerance, fock, bond
+        Bath engine settings (method ``"bath"`` only), as ``--tolerance/--fock/--bond``: the
+        error asked of every evaluation (default 1e-6), the Fock-level and bond caps.
 
     Returns
     -------
@@ -342,11 +344,11 @@ def optimize(
 
     mix = _mixture(xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
-    use_bath = check_optimize_method(method, fock=fock, bond=bond, basis=basis, memory_mb=memory_mb)
+    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb)
     initial = _start(angles, depth)
     if use_bath:
         with _executor(executor, scheduler, workers, 256.0) as ex:
-            return bath_ladder(mix, depth, initial, run_map=ex.run_map, engine=engine_settings(fock, bond, basis),
+            return bath_ladder(mix, depth, initial, run_map=ex.run_map, engine=engine_settings(tolerance, fock, bond),
                                restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter)
     memory_mb = 256.0 if memory_mb is None else memory_mb
     budget = _budget(memory_mb)
@@ -360,6 +362,44 @@ def _sparse_problem(q, degree) -> tuple[int, int]:
     from .sparse_ensemble import check_sparse
 
     return check_sparse(q, degree, None)
+
+
+def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, tolerance: float = 1e-6,
+                  bond_cap: int = 256, fock_cap: int = 40, time_limit: float | None = None) -> "BathEvaluation":
+    """V_p(gamma, beta) from the bosonic-bath engine (any depth), to an error estimate <= tolerance.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture as ``q:w`` pairs (``"2:0.5"`` is SK).
+    gamma, beta : sequence of float
+        Angles in radians (t = 1 acts first).
+    tolerance : float
+        Error asked for; the engine tightens its truncation until its estimate meets it.
+    bond_cap, fock_cap : int
+        Largest bond dimension and most Fock levels per mode it may use.
+    time_limit : float or None
+        Wall seconds allowed.
+
+    Returns
+    -------
+    BathEvaluation
+        ``.value``, ``.error_estimate``, ``.limiting`` (the truncation that dominates what is
+        left), ``.run`` (its truncation); ``.to_json()`` as ``evaluate --method bath --json``.
+        Raises InputError (one line) when the tolerance cannot be met within the limits, or
+        when the value cannot be trusted.
+
+    Examples
+    --------
+    >>> import leadline
+    >>> round(leadline.evaluate_bath("2:0.5", [0.5], [0.392699]).value, 6)
+    0.303265
+    """
+    from .commands._evaluate_bath import run_checked
+
+    mix = _mixture(xi)
+    g, b = _angles(gamma, beta)
+    return run_checked(mix, g, b, tolerance=tolerance, bond=bond_cap, fock=fock_cap, time_limit=time_limit)
 
 
 def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float], *,

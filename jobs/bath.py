@@ -13,41 +13,41 @@ from .errors import InputError
 __all__ = ["DEFAULT_FOCK", "DEFAULT_TAIL", "DEFAULT_BOND", "DEFAULT_BASIS", "engine_settings",
            "check_optimize_method", "bath_restarts", "CheckpointedEvaluations"]
 
-DEFAULT_FOCK = 10
-DEFAULT_TAIL = 3
-DEFAULT_BOND = 32
-DEFAULT_BASIS = "cholesky"
 METHODS = ("exact", "bath")
 
 
-def engine_settings(fock: int | None = None, bond: int | None = None, basis: str | None = None) -> dict:
-    """Keyword arguments of ``evaluate_bath`` from the command line's --fock/--bond/--basis."""
-    fock = DEFAULT_FOCK if fock is None else int(fock)
+def engine_settings(tolerance: float | None = None, fock: int | None = None, bond: int | None = None) -> dict:
+    """Keyword arguments of ``evaluate_bath`` from --tolerance/--fock/--bond (engine defaults when None)."""
+    from leadline.kernels.bath import DEFAULT_BOND_CAP, DEFAULT_FOCK_CAP, DEFAULT_TOLERANCE
+
     return {
-        "fock": fock,
-        "tail": min(DEFAULT_TAIL, fock),
-        "chi": DEFAULT_BOND if bond is None else int(bond),
-        "basis": DEFAULT_BASIS if basis is None else str(basis),
+        "tolerance": DEFAULT_TOLERANCE if tolerance is None else float(tolerance),
+        "fock_cap": DEFAULT_FOCK_CAP if fock is None else int(fock),
+        "bond_cap": DEFAULT_BOND_CAP if bond is None else int(bond),
     }
 
 
-def check_engine_values(fock, bond, basis, *, prefix: str = "--") -> None:
-    """Range checks of the bath truncation settings (one InputError line)."""
-    if fock is not None and (isinstance(fock, bool) or not isinstance(fock, int) or fock < 2):
-        raise InputError(f"{prefix}fock must be an integer >= 2 levels, got {fock!r}")
-    if bond is not None and (isinstance(bond, bool) or not isinstance(bond, int) or bond < 1):
-        raise InputError(f"{prefix}bond must be an integer >= 1, got {bond!r}")
-    if basis is not None and basis not in ("cholesky", "principal"):
-        raise InputError(f"{prefix}basis must be cholesky or principal, got {basis!r}")
+def check_engine_values(tolerance, fock, bond, *, names=("--tolerance", "--fock", "--bond")) -> None:
+    """Ranges of the bath engine settings, as `evaluate --method bath` checks them (one InputError line)."""
+    from .commands._evaluate_bath import BOND_RANGE, FOCK_RANGE, TOLERANCE_RANGE
+
+    for name, value, (lo, hi), integer in ((names[0], tolerance, TOLERANCE_RANGE, False),
+                                           (names[1], fock, FOCK_RANGE, True), (names[2], bond, BOND_RANGE, True)):
+        if value is None:
+            continue
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or (integer and not isinstance(value, int)):
+            raise InputError(f"{name} must be {'an integer' if integer else 'a number'}, got {value!r}")
+        if not lo <= value <= hi:
+            raise InputError(f"{name} must be between {lo:g} and {hi:g}, got {value:g}")
 
 
-def check_optimize_method(method: str, *, fock=None, bond=None, basis=None, memory_mb=None,
+def check_optimize_method(method: str, *, tolerance=None, fock=None, bond=None, memory_mb=None,
                           sparse: bool = False) -> bool:
     """Validate the method options of `optimize`; True when the bath method is asked for."""
     if method not in METHODS:
         raise InputError(f"--method must be one of {', '.join(METHODS)}, got {method!r}")
     if method == "exact":
-        for name, value in (("--fock", fock), ("--bond", bond), ("--basis", basis)):
+        for name, value in (("--tolerance", tolerance), ("--fock", fock), ("--bond", bond)):
             if value is not None:
                 raise InputError(f"{name} applies only to --method bath")
         return False
@@ -55,7 +55,7 @@ def check_optimize_method(method: str, *, fock=None, bond=None, basis=None, memo
         raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
     if memory_mb is not None:
         raise InputError("--memory-mb sets the chunk plan of the exact method; --method bath has none (drop it)")
-    check_engine_values(fock, bond, basis)
+    check_engine_values(tolerance, fock, bond)
     return True
 
 

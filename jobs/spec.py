@@ -35,8 +35,9 @@ Layout (version 1; every key is checked, unknown keys are errors)::
     xi = "2:0.5"                     # required for dense: q:w pairs, xi(x) = sum w x^q
     bath-from = 17                   # optional, dense only: depths >= this use the bath engine
                                      # (pmin < bath-from <= pmax; docs/bath.md)
-    bath-fock = 10                   # optional with bath-from: Fock levels of the first engine run
-    bath-bond = 32                   # optional with bath-from: bond cap of the first engine run
+    bath-tolerance = 1e-6            # optional with bath-from: error asked of every bath evaluation
+    bath-fock = 40                   # optional with bath-from: Fock-level cap of the engine
+    bath-bond = 256                  # optional with bath-from: bond cap of the engine
     [ensemble.reference]             # optional
     ground-state = 0.763166          # reference ground-state energy density (same normalization as xi)
     source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"   # required with ground-state
@@ -104,6 +105,7 @@ class EnsembleSpec:
     bath_from: int | None = None
     bath_fock: int | None = None
     bath_bond: int | None = None
+    bath_tolerance: float | None = None
 
     def description(self) -> dict:
         out = {
@@ -115,7 +117,8 @@ class EnsembleSpec:
             "reference": {"ground_state": self.ground_state, "source": self.source},
         }
         if self.bath_from is not None:
-            out["bath"] = {"from": self.bath_from, "fock": self.bath_fock, "bond": self.bath_bond}
+            out["bath"] = {"from": self.bath_from, "tolerance": self.bath_tolerance, "fock": self.bath_fock,
+                           "bond": self.bath_bond}
         return out
 
     def method(self, p: int) -> str:
@@ -126,7 +129,7 @@ class EnsembleSpec:
         """Keyword arguments of the bath engine for this ensemble's bath depths."""
         from .bath import engine_settings
 
-        return engine_settings(self.bath_fock, self.bath_bond)
+        return engine_settings(self.bath_tolerance, self.bath_fock, self.bath_bond)
 
     def mixture(self):
         return parse_mixture(self.xi)
@@ -257,24 +260,25 @@ def _table(doc: dict, name: str) -> dict:
 def _dense(item: dict, where: str, label: str) -> dict:
     from .bath import check_engine_values
 
-    _unknown(item, {"label", "kind", "xi", "reference", "bath-from", "bath-fock", "bath-bond"}, where)
+    _unknown(item, {"label", "kind", "xi", "reference", "bath-from", "bath-tolerance", "bath-fock", "bath-bond"}, where)
     xi = _text(item, where, "xi", required=True)
     try:
         mixture = parse_mixture(xi)
     except MixtureError as exc:
         raise InputError(f"{where} xi: {exc}") from None
     bath_from = _int(item, where, "bath-from", None, minimum=2)
-    fock, bond = item.get("bath-fock"), item.get("bath-bond")
-    if bath_from is None and (fock is not None or bond is not None):
-        raise InputError(f"{where}: bath-fock and bath-bond set the bath engine, which runs only with bath-from")
-    check_engine_values(fock, bond, None, prefix=f"{where} bath-")
-    return {"xi": mixture.spec(), "bath_from": bath_from, "bath_fock": fock, "bath_bond": bond}
+    tolerance, fock, bond = item.get("bath-tolerance"), item.get("bath-fock"), item.get("bath-bond")
+    if bath_from is None and (tolerance is not None or fock is not None or bond is not None):
+        raise InputError(f"{where}: bath-tolerance, bath-fock and bath-bond set the bath engine, which runs only with bath-from")
+    check_engine_values(tolerance, fock, bond, names=tuple(f"{where} bath-{k}" for k in ("tolerance", "fock", "bond")))
+    return {"xi": mixture.spec(), "bath_from": bath_from, "bath_tolerance": tolerance, "bath_fock": fock,
+            "bath_bond": bond}
 
 
 def _sparse(item: dict, where: str, label: str) -> dict:
     from leadline.kernels.sparse import check_problem
 
-    if any(key in item for key in ("bath-from", "bath-fock", "bath-bond")):
+    if any(key in item for key in ("bath-from", "bath-tolerance", "bath-fock", "bath-bond")):
         raise InputError(f"{where}: bath-from applies to dense ensembles (kind = \"dense\") only")
     _unknown(item, {"label", "kind", "q", "degree", "reference"}, where)
     for key in ("q", "degree"):
@@ -474,7 +478,8 @@ def spec_from_json(data: dict, text: str = "") -> StudySpec:
             EnsembleSpec(
                 label=e["label"], kind=e.get("kind", "dense"), xi=e.get("xi"), q=e.get("q"),
                 degree=e.get("degree"), ground_state=ref.get("ground_state"), source=ref.get("source"),
-                bath_from=bath.get("from"), bath_fock=bath.get("fock"), bath_bond=bath.get("bond"),
+                bath_from=bath.get("from"), bath_tolerance=bath.get("tolerance"), bath_fock=bath.get("fock"),
+                bath_bond=bath.get("bond"),
             )
         )
     return StudySpec(

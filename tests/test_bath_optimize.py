@@ -27,9 +27,7 @@ from leadline.storage import open_study
 LEADLINE = [sys.executable, "-m", "leadline"]
 # Quantum 6, 759 (2022), Table 1 (SK model), to 4 decimals
 SK_TABLE_1 = {4: 0.5157, 6: 0.5721}
-ENGINE = {"fock": 10, "tail": 3, "chi": 8, "basis": "cholesky"}
-#: from p = 5 on a bond of 8 is the limiting truncation (estimate ~1e-5 at p = 6); 16 is exact there
-ENGINE_DEEPER = dict(ENGINE, chi=16)
+ENGINE = {"tolerance": 1e-8}
 
 
 def _exact_ladder(xi: str, p: int):
@@ -50,7 +48,7 @@ def _bath_from_exact(xi: str, p: int):
     from leadline.kernels.bath import optimize_bath_depth
 
     mix, before, exact = _exact_ladder(xi, p)
-    got = optimize_bath_depth(mix, p, engine=ENGINE if p <= 4 else ENGINE_DEEPER, previous=(before.gamma, before.beta), previous_value=before.value)
+    got = optimize_bath_depth(mix, p, engine=ENGINE, previous=(before.gamma, before.beta), previous_value=before.value)
     return got, exact
 
 
@@ -77,7 +75,7 @@ def test_same_bits_on_one_and_two_workers():
 
     mix = parse_mixture("2:0.5")
     previous = ([0.5], [0.3927])
-    engine = {"fock": 6, "tail": 3, "chi": 4, "basis": "cholesky"}
+    engine = {"tolerance": 1e-6}
     results = []
     for workers in (1, 2):
         with start_local_cluster(ComputeSettings(mode="local", workers=workers).resolved()) as ex:
@@ -112,8 +110,7 @@ interval-s = 0
 label = "sk"
 xi = "2:0.5"
 bath-from = 3
-bath-fock = 6
-bath-bond = 6
+bath-tolerance = 1e-6
 """
 
 
@@ -182,10 +179,10 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path):
 # ------------------------------------------------------------------ bad input
 BAD_OPTIMIZE = {
     "exact option with bath": (["--method", "bath", "--memory-mb", "64"], "--memory-mb sets the chunk plan"),
-    "bath option with exact": (["--fock", "8"], "--fock applies only to --method bath"),
+    "bath option with exact": (["--tolerance", "1e-8"], "--tolerance applies only to --method bath"),
     "bath on sparse": (["--method", "bath", "--xorsat", "3", "--degree", "4"], "not --xorsat/--degree"),
     "unknown method": (["--method", "fast"], "--method must be one of exact, bath"),
-    "fock too small": (["--method", "bath", "--fock", "1"], "--fock must be an integer >= 2"),
+    "fock too small": (["--method", "bath", "--fock", "1"], "--fock must be between 4 and 200"),
 }
 
 
@@ -204,9 +201,11 @@ BAD_SPECS = {
     "bath-from at pmin": ("pmin = 3\npmax = 5", 'bath-from = 3', "must be above [depths] pmin = 3"),
     "bath-from beyond pmax": ("pmax = 5", 'bath-from = 9', "is beyond [depths] pmax = 5"),
     "fock without bath-from": ("pmax = 5", 'bath-fock = 8', "runs only with bath-from"),
+    "tolerance without bath-from": ("pmax = 5", 'bath-tolerance = 1e-7', "runs only with bath-from"),
     "deep exact ensemble": ("pmax = 40", "", "continue it with the bath engine"),
     "bath-from too deep": ("pmax = 40", "bath-from = 35", "exact depths end at 30"),
-    "bad bond": ("pmax = 5", "bath-from = 3\nbath-bond = 0", "bath-bond must be an integer >= 1"),
+    "bad bond": ("pmax = 5", "bath-from = 3\nbath-bond = 0", "bath-bond must be between 4 and 4096"),
+    "bad tolerance": ("pmax = 5", "bath-from = 3\nbath-tolerance = 2.0", "bath-tolerance must be between"),
 }
 
 

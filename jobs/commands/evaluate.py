@@ -39,9 +39,10 @@ def evaluate_command(
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
     method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP),
+    tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP),
     fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
     bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
-    basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
+    time_limit: Optional[float] = typer.Option(None, "--time-limit", help=bath.TIME_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -59,8 +60,8 @@ def evaluate_command(
         if angle_set.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
             # a file written by `optimize --xorsat`: evaluate on its own sparse ensemble
             xorsat, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
-    use_bath = bath.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
-                                     sparse=sparse.sparse_requested(xorsat, degree))
+    use_bath = bath.check_method(method, tolerance, fock, bond, time_limit, gradient=gradient,
+                                 fixed_point=fixed_point, sparse=sparse.sparse_requested(xorsat, degree))
     if sparse.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
@@ -73,7 +74,7 @@ def evaluate_command(
         g, b = angle_pair(gamma, beta)
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
-        return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
+        return bath.evaluate_bath_command(mix, g, b, tolerance, fock, bond, time_limit, as_json, quiet)
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")

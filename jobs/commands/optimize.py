@@ -47,9 +47,9 @@ def optimize_command(
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
     method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP + " With bath the gradient is a finite difference, its evaluations run on the executor."),
+    tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP + " Every evaluation of the optimizer is asked for it; the optimizer never chases changes below its error estimate."),
     fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
     bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
-    basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -61,7 +61,7 @@ def optimize_command(
 
         leadline optimize --xi 2:0.5 --depth 18 --angles p17.json --method bath
     """
-    use_bath = check_optimize_method(method, fock=fock, bond=bond, basis=basis, memory_mb=memory_mb,
+    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb,
                                      sparse=sparse.sparse_requested(xorsat, degree))
     memory_mb = DEFAULT_MEMORY_BUDGET / 2**20 if memory_mb is None else memory_mb
     if not (memory_mb > 0 and memory_mb < float("inf")):
@@ -82,7 +82,7 @@ def optimize_command(
         check_output_file(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     if use_bath:
-        return _optimize_bath(mix, depth, initial, settings, engine_settings(fock, bond, basis), restarts=restarts,
+        return _optimize_bath(mix, depth, initial, settings, engine_settings(tolerance, fock, bond), restarts=restarts,
                               seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json)
     cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
@@ -118,14 +118,19 @@ def optimize_command(
 
 def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gtol, maxiter, output, as_json) -> None:
     """`optimize --method bath`: the bath ladder on the executor, reported with the error estimate."""
+    from leadline.kernels.bath import BathLimitError
+
     with compute.open_compute(settings) as ex:
-        run = bath_ladder(
-            mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gtol,
-            maxiter=maxiter,
-            on_evaluation=lambda info, p: ex.progress.evaluation_done(
-                info["best_value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
-                detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
-        )
+        try:
+            run = bath_ladder(
+                mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gtol,
+                maxiter=maxiter,
+                on_evaluation=lambda info, p: ex.progress.evaluation_done(
+                    info["best_value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
+                    detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
+            )
+        except BathLimitError as exc:  # the engine cannot meet the tolerance at some point it was asked for
+            raise InputError(f"{exc}; nothing written") from None
     result = run.result
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))

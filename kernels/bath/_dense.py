@@ -62,6 +62,11 @@ class DenseState:
             pops.append(np.sum(np.abs(np.moveaxis(x, 1, 0)) ** 2, axis=tuple(range(1, K + 1))))
         return zb, pops
 
+    def apply_mixer(self, beta: float) -> None:
+        """exp(-i beta X) on the spin."""
+        c, s = np.cos(beta), np.sin(beta)
+        self.apply_spin(np.array([[c, -1j * s], [-1j * s, c]]))
+
     def z_overlap(self, other: "DenseState") -> complex:
         """<self| Z |other>."""
         return complex(np.vdot(self.data[0], other.data[0]) - np.vdot(self.data[1], other.data[1]))

@@ -1,5 +1,8 @@
 """A small matrix product state over (spin, mode_1, ..., mode_K) for the bath sweep.
 
+Dense tensors: the reference for the parity block-sparse MPS of ``_parity`` (which the
+one-state readout uses by default), and the state of the carried-state and principal forms.
+
 Site 0 is the spin (dimension 2), site k the k-th bosonic mode cut to d_k Fock levels.
 Tensors have shape (left bond, physical, right bond).  The state is kept in mixed canonical
 form with its orthogonality centre on the spin, so the one-spin mixer costs nothing and each
@@ -23,7 +26,13 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-__all__ = ["MPSState"]
+__all__ = ["MPSState", "mixer_matrix"]
+
+
+def mixer_matrix(beta: float) -> np.ndarray:
+    """exp(-i beta X) in the Z basis."""
+    c, s = np.cos(beta), np.sin(beta)
+    return np.array([[c, -1j * s], [-1j * s, c]])
 
 
 def _svd(M: np.ndarray):
@@ -63,6 +72,10 @@ class MPSState:
 
     def apply_spin(self, U: np.ndarray) -> None:
         self.tensors[0] = np.einsum("ab,lbr->lar", U, self.tensors[0])
+
+    def apply_mixer(self, beta: float) -> None:
+        """exp(-i beta X) on the spin."""
+        self.apply_spin(mixer_matrix(beta))
 
     def bond_dimensions(self) -> list[int]:
         return [t.shape[2] for t in self.tensors[:-1]]
