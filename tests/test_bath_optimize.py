@@ -2,7 +2,8 @@
 
 External references:
 - Optimal V_p of the SK model (xi = x^2/2): Farhi, Goldstone, Gutmann, Zhou, "The QAOA and the SK
-  model at infinite size", Quantum 6, 759 (2022), Table 1: V_4* = 0.5157, V_6* = 0.5721 (4 decimals).
+  model at infinite size", Quantum 6, 759 (2022), Table 1: V_3* = 0.4726, V_4* = 0.5157, V_6* = 0.5721
+  (4 decimals).
 - The exact optimizer of this package (reverse-mode gradient of the exact iteration, itself
   checked against that table in tests/test_optimize.py) gives V_p* to 1e-8; the bath optimizer,
   started from INTERP of the exact depth p - 1 optimum, must find it to 1e-6 (pure q = 3 has no
@@ -26,8 +27,8 @@ from leadline.storage import open_study
 
 LEADLINE = [sys.executable, "-m", "leadline"]
 # Quantum 6, 759 (2022), Table 1 (SK model), to 4 decimals
-SK_TABLE_1 = {4: 0.5157, 6: 0.5721}
-ENGINE = {"tolerance": 1e-8}
+SK_TABLE_1 = {3: 0.4726, 4: 0.5157, 6: 0.5721}
+ENGINE = {"tolerance": 1e-7}
 
 
 def _exact_ladder(xi: str, p: int):
@@ -52,7 +53,7 @@ def _bath_from_exact(xi: str, p: int):
     return got, exact
 
 
-@pytest.mark.parametrize("xi,p", [("2:0.5", 4), ("3:1", 3), pytest.param("2:0.5", 6, marks=pytest.mark.slow),
+@pytest.mark.parametrize("xi,p", [("2:0.5", 3), ("3:1", 3), pytest.param("2:0.5", 4, marks=pytest.mark.slow), pytest.param("2:0.5", 6, marks=pytest.mark.slow),
                                   pytest.param("3:1", 6, marks=pytest.mark.slow)])
 def test_bath_optimizer_finds_the_exact_optimum(xi, p):
     got, exact = _bath_from_exact(xi, p)
