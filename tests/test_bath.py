@@ -109,7 +109,7 @@ def sk_optimum_value(p: int) -> float:
     """V_p* of SK from tests/sk_optima.csv (Basso et al. arXiv:2110.14206 / Farhi et al. 2022, Table 1)."""
     with open(os.path.join(os.path.dirname(__file__), "sk_optima.csv")) as fh:
         rows = [ln.split(",") for ln in fh if ln[0].isdigit()]
-    return {int(a): float(v) for a, v in rows}[p]
+    return {int(r[0]): float(r[1]) for r in rows}[p]  # columns p, value[, ...]
 
 
 @pytest.mark.parametrize("spec", MIXTURES)
