@@ -13,6 +13,8 @@ from typing import Optional
 
 import typer
 
+from leadline.kernels.numtext import fmt
+
 from ..errors import InputError
 
 METHODS = ("exact", "bath")
@@ -28,7 +30,7 @@ BOND_RANGE = (4, 4096)
 FOCK_RANGE = (4, 200)
 #: deepest circuit the bath engine accepts; beyond NOTE_DEPTH a cost note is printed
 MAX_BATH_DEPTH = 200
-NOTE_DEPTH = 40
+NOTE_DEPTH = 32
 
 
 def check_method(method: str, tolerance: Optional[float], fock: Optional[int], bond: Optional[int],
@@ -59,7 +61,7 @@ def check_bath_size(p: int, bond: int, fock: int) -> None:
     """Refuse depths beyond the engine's range and bond caps whose states cannot fit in memory."""
     if p > MAX_BATH_DEPTH:
         raise InputError(f"--method bath accepts at most p = {MAX_BATH_DEPTH} layers (its cost grows like "
-                         f"p^2 to p^3 times bond^3; measured to p = 40, docs/bath.md), got p = {p}")
+                         f"p^2 to p^3 times bond^3; measured to p = 32, docs/bath.md), got p = {p}")
     need = state_bytes(p, bond, fock)
     import psutil
 
@@ -87,7 +89,7 @@ def run_checked(mix, g, b, *, tolerance=None, bond=None, fock=None, time_limit=N
     p = int(g.size)
     check_bath_size(p, bond, fock)
     if p > NOTE_DEPTH and not quiet:
-        typer.echo(f"leadline: the bath engine at p = {p} is deeper than measured (p <= {NOTE_DEPTH}: minutes); "
+        typer.echo(f"leadline: the bath engine at p = {p} is deeper than measured (p <= {NOTE_DEPTH}: up to minutes of CPU); "
                    f"its cost grows like p^2 to p^3 x bond^3 (--time-limit bounds it)", err=True)
     res = _run(evaluate_bath, BathLimitError, mix, g, b, tolerance, bond, fock, time_limit, quiet)
     check_bath_value(res.value, res.error_estimate, mix, tolerance)
@@ -153,10 +155,10 @@ def report(mix, p: int, res) -> str:
     return "\n".join([
         f"xi(x)      = {mix.label()}",
         f"depth p    = {p}",
-        f"V_p        = {res.value:.12f} +- {res.error_estimate:.1e} (bosonic bath; tolerance {res.tolerance:.0e})",
+        f"V_p        = {fmt(res.value, 12)} +- {res.error_estimate:.1e} (bosonic bath; tolerance {res.tolerance:.0e})",
         f"truncation = cut-off {r.cutoff:.0e}, bond {r.largest_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
         f"limiting: {res.limiting}",
         f"discarded  = {r.discarded:.1e}, top Fock level population {r.top_population:.1e}, carried states: {carried}",
-        f"ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {x['value']:.10f}" for x in res.ladder),
+        "ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {fmt(x['value'], 10)}" for x in res.ladder),
         f"time       = {sum(x['wall_time_s'] for x in res.ladder):.2f} s",
     ])

@@ -8,12 +8,13 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import read_angles
-from ..cost import COST_NOTE_SECONDS, check_cost
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
-from ..parsing import angle_pair, check_representable, check_underflow, file_mixture, mixture_arg
+from ..parsing import angle_pair, check_memory_mb, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -50,8 +51,7 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    if not memory_mb > 0 or memory_mb == float("inf"):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     angle_set = None
     if angles is not None:
         if gamma is not None or beta is not None:
@@ -75,6 +75,7 @@ def evaluate_command(
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
         return bath.evaluate_bath_command(mix, g, b, tolerance, fock, bond, time_limit, as_json, quiet)
+    check_depth(g.size, "--angles" if angle_set is not None else "--gamma/--beta")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")
@@ -92,8 +93,8 @@ def evaluate_command(
 
 
 def _value_text(value: float) -> str:
-    """Twelve decimals, or twelve significant digits for a nonzero value too small to show them."""
-    return f"{value:.12f}" if value == 0.0 or abs(value) >= 1e-6 else f"{value:.12e}"
+    """Twelve decimals where they show the value, else scientific notation (kernels/numtext.py)."""
+    return fmt(value, 12)
 
 
 def report(result) -> str:

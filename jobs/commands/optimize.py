@@ -8,15 +8,16 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
 from ..api import bath_ladder, optimize_ladder
-from ..cost import COST_NOTE_SECONDS, check_cost
+from ..bath import check_optimize_method, engine_settings
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
 from ..paths import check_output_file
-from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
-from ..bath import check_optimize_method, engine_settings
+from ..parsing import check_memory_mb, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -64,9 +65,10 @@ def optimize_command(
     use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb,
                                      sparse=sparse.sparse_requested(xorsat, degree))
     memory_mb = DEFAULT_MEMORY_BUDGET / 2**20 if memory_mb is None else memory_mb
-    if not (memory_mb > 0 and memory_mb < float("inf")):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    if not sparse.sparse_requested(xorsat, degree) and not use_bath:
+        check_depth(depth, "--depth")
     initial = warm_start(start, depth)
     if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
         # a file written by `optimize --xorsat`: continue on its own sparse ensemble
@@ -111,7 +113,7 @@ def optimize_command(
     if as_json:
         typer.echo(json.dumps(run.to_json()))
         return
-    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
 
