@@ -122,22 +122,25 @@ class ProgressDisplay:
         self._maybe_show()
 
     # ------------------------------------------------------------------ optimizations
-    def evaluation_done(self, value: float | None = None, label: str = "optimize") -> None:
-        """One more evaluation of an optimization; keeps the best value seen (maximization).
+    def evaluation_done(self, value: float | None = None, label: str = "optimize", detail: str = "",
+                        count: int = 1) -> None:
+        """``count`` more evaluations of an optimization; keeps the best value seen (maximization).
 
-        The bar's label becomes e.g. "optimize: 12 evaluations, best V = 0.4075...".
+        The bar's label becomes e.g. "optimize: 12 evaluations, best V = 0.4075...", followed by
+        ``detail`` (the bath method: the error estimate and the time per evaluation).
         """
         prog = self._ensure()
         if prog is None:
             return
         if label != self._label:  # a new optimization (e.g. the next depth)
             self._label, self._evaluations, self._best = label, 0, None
-        self._evaluations += 1
+        self._evaluations += count
         if value is not None and (self._best is None or value > self._best):
             self._best = float(value)
         text = f"{label}: {self._evaluations} evaluations"
         if self._best is not None:
             text += f", best V = {self._best:.10f}"
+        text += detail
         prog.update(self._pass_task, description=text)
         self._maybe_show()
 

@@ -253,6 +253,40 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 
 
+def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=None, seed=0, gtol=1e-7,
+                maxiter=500, on_evaluation=None):
+    """Optimize depths in turn up to ``depth`` with the bath engine (from ``initial``, an AngleSet).
+
+    Shared by :func:`leadline.optimize` (``method="bath"``) and ``leadline optimize --method bath``.
+    ``on_evaluation(info, p)`` is called after every gradient (the progress line).
+    """
+    from leadline.kernels.bath import optimize_bath_depth
+
+    from .bath import bath_restarts
+
+    t0 = time.perf_counter()
+    if initial is not None:
+        first = depth
+        previous = (initial.gamma, initial.beta)
+        previous_value = initial.value if initial.p == depth - 1 else None
+    else:
+        first, previous, previous_value = 1, None, None
+    ladder, result = [], None
+    for p in range(first, depth + 1):
+        callback = None
+        if on_evaluation is not None:
+            callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
+        result = optimize_bath_depth(
+            mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
+            restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol, maxiter=maxiter,
+            callback=callback,
+        )
+        ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
+                       "evaluations": result.evaluations})
+        previous, previous_value = (result.gamma, result.beta), result.value
+    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
+
+
 def optimize(
     xi,
     depth: int,
@@ -262,10 +296,14 @@ def optimize(
     seed: int = 0,
     gtol: float = 1e-7,
     maxiter: int = 500,
-    memory_mb: float = 256.0,
+    memory_mb: float | None = None,
     executor: str = "auto",
     scheduler: str | None = None,
     workers: int | None = None,
+    method: str = "exact",
+    tolerance: float | None = None,
+    fock: int | None = None,
+    bond: int | None = None,
 ) -> Ladder:
     """Optimal angles and V_p* at depth ``depth`` (maximizes V_p).
 
@@ -287,7 +325,16 @@ def optimize(
     seed, gtol, maxiter
         Seed of the random starts; gradient tolerance; iteration cap per local run.
     memory_mb, executor, scheduler, workers
-        As for :func:`evaluate`.
+        As for :func:`evaluate` (``memory_mb``: exact method only, default 256).
+    method : str
+        ``"exact"`` (default: the exact iteration and its reverse-mode gradient) or
+        ``"bath"`` (the bosonic-bath engine with finite differences, for depths past
+        exact reach; docs/bath.md).  With ``"bath"``, ``result.error_estimate`` is the
+        engine's estimate of V_p*'s truncation error and restarts default to none
+        after a warm start.
+    tolerance, fock, bond
+        Bath engine settings (method ``"bath"`` only), as ``--tolerance/--fock/--bond``: the
+        error asked of every evaluation (default 1e-6), the Fock-level and bond caps.
 
     Returns
     -------
@@ -296,13 +343,21 @@ def optimize(
         full optimizer record of the last depth), ``.ladder``; ``.to_json()``
         is what ``leadline optimize --json`` prints.
     """
+    from .bath import check_optimize_method, engine_settings
     from .cost import check_depth
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
-    check_depth(depth, "depth")
+    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb)
+    if not use_bath:
+        check_depth(depth, "depth")
     initial = _start(angles, depth)
+    if use_bath:
+        with _executor(executor, scheduler, workers, 256.0) as ex:
+            return bath_ladder(mix, depth, initial, run_map=ex.run_map, engine=engine_settings(tolerance, fock, bond),
+                               restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter)
+    memory_mb = 256.0 if memory_mb is None else memory_mb
     budget = _budget(memory_mb)
     with _executor(executor, scheduler, workers, memory_mb) as ex:
         return optimize_ladder(mix, depth, initial, run_pass=ex.run_pass, budget=budget, restarts=restarts,

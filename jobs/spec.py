@@ -8,7 +8,8 @@ Layout (version 1; every key is checked, unknown keys are errors)::
 
     [depths]
     pmin = 1                         # default 1
-    pmax = 6                         # required, pmin <= pmax <= 30
+    pmax = 6                         # required, pmin <= pmax <= 30 (<= 200 when every ensemble
+                                     # continues with the bath engine from a depth <= 30)
 
     [optimizer]                      # all optional
     restarts = 2                     # extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, 0 after)
@@ -32,6 +33,11 @@ Layout (version 1; every key is checked, unknown keys are errors)::
     label = "sk"                     # required; letters, digits, - _ . (it names a folder in the store)
     kind = "dense"                   # default "dense" (a mixed-spin glass given by xi)
     xi = "2:0.5"                     # required for dense: q:w pairs, xi(x) = sum w x^q
+    bath-from = 17                   # optional, dense only: depths >= this use the bath engine
+                                     # (pmin < bath-from <= pmax; docs/bath.md)
+    bath-tolerance = 1e-6            # optional with bath-from: error asked of every bath evaluation
+    bath-fock = 40                   # optional with bath-from: Fock-level cap of the engine
+    bath-bond = 256                  # optional with bath-from: bond cap of the engine
     [ensemble.reference]             # optional
     ground-state = 0.763166          # reference ground-state energy density (same normalization as xi)
     source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"   # required with ground-state
@@ -68,8 +74,10 @@ from .parsing import MAX_GTOL, MIN_MEMORY_MB
 __all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
 SPEC_VERSION = 1
-#: deepest depth a spec may ask for (2^61 paths per pass: far beyond any machine already)
+#: deepest exact depth a spec may ask for (2^61 paths per pass: far beyond any machine already)
 MAX_DEPTH = 30
+#: deepest depth of an ensemble that continues with the bath engine (its cost is polynomial in p)
+MAX_BATH_DEPTH = 200
 _LABEL = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
 _EXECUTORS = ("auto", "inprocess", "local", "scheduler", "batch")
 
@@ -94,9 +102,13 @@ class EnsembleSpec:
     degree: float | None = None
     ground_state: float | None = None
     source: str | None = None
+    bath_from: int | None = None
+    bath_fock: int | None = None
+    bath_bond: int | None = None
+    bath_tolerance: float | None = None
 
     def description(self) -> dict:
-        return {
+        out = {
             "label": self.label,
             "kind": self.kind,
             "xi": self.xi,
@@ -104,6 +116,20 @@ class EnsembleSpec:
             "degree": self.degree,
             "reference": {"ground_state": self.ground_state, "source": self.source},
         }
+        if self.bath_from is not None:
+            out["bath"] = {"from": self.bath_from, "tolerance": self.bath_tolerance, "fock": self.bath_fock,
+                           "bond": self.bath_bond}
+        return out
+
+    def method(self, p: int) -> str:
+        """How depth p of this ensemble is optimized: "bath" from ``bath_from`` on, else "exact"."""
+        return "bath" if self.bath_from is not None and p >= self.bath_from else "exact"
+
+    def bath_engine(self) -> dict:
+        """Keyword arguments of the bath engine for this ensemble's bath depths."""
+        from .bath import engine_settings
+
+        return engine_settings(self.bath_tolerance, self.bath_fock, self.bath_bond)
 
     def mixture(self):
         return parse_mixture(self.xi)
@@ -232,18 +258,28 @@ def _table(doc: dict, name: str) -> dict:
 
 
 def _dense(item: dict, where: str, label: str) -> dict:
-    _unknown(item, {"label", "kind", "xi", "reference"}, where)
+    from .bath import check_engine_values
+
+    _unknown(item, {"label", "kind", "xi", "reference", "bath-from", "bath-tolerance", "bath-fock", "bath-bond"}, where)
     xi = _text(item, where, "xi", required=True)
     try:
         mixture = parse_mixture(xi)
     except MixtureError as exc:
         raise InputError(f"{where} xi: {exc}") from None
-    return {"xi": mixture.spec()}
+    bath_from = _int(item, where, "bath-from", None, minimum=2)
+    tolerance, fock, bond = item.get("bath-tolerance"), item.get("bath-fock"), item.get("bath-bond")
+    if bath_from is None and (tolerance is not None or fock is not None or bond is not None):
+        raise InputError(f"{where}: bath-tolerance, bath-fock and bath-bond set the bath engine, which runs only with bath-from")
+    check_engine_values(tolerance, fock, bond, names=tuple(f"{where} bath-{k}" for k in ("tolerance", "fock", "bond")))
+    return {"xi": mixture.spec(), "bath_from": bath_from, "bath_tolerance": tolerance, "bath_fock": fock,
+            "bath_bond": bond}
 
 
 def _sparse(item: dict, where: str, label: str) -> dict:
     from leadline.kernels.sparse import check_problem
 
+    if any(key in item for key in ("bath-from", "bath-tolerance", "bath-fock", "bath-bond")):
+        raise InputError(f"{where}: bath-from applies to dense ensembles (kind = \"dense\") only")
     _unknown(item, {"label", "kind", "q", "degree", "reference"}, where)
     for key in ("q", "degree"):
         if key not in item:
@@ -309,6 +345,29 @@ def _ensembles(doc: dict) -> tuple[EnsembleSpec, ...]:
     return tuple(out)
 
 
+def _check_depths(ensembles, pmin: int, pmax: int) -> None:
+    """Depth limits per ensemble: exact depths <= MAX_DEPTH, bath-from inside pmin+1..pmax."""
+    for ens in ensembles:
+        where = f"[[ensemble]] {ens.label!r}"
+        if ens.bath_from is not None:
+            if ens.bath_from <= pmin:
+                raise InputError(
+                    f"{where} bath-from = {ens.bath_from} must be above [depths] pmin = {pmin}: the bath "
+                    "optimizer starts from the optimum of the exact depth before it"
+                )
+            if ens.bath_from > pmax:
+                raise InputError(f"{where} bath-from = {ens.bath_from} is beyond [depths] pmax = {pmax}: no depth would use it")
+            if ens.bath_from > MAX_DEPTH + 1:
+                raise InputError(f"{where} bath-from = {ens.bath_from}: exact depths end at {MAX_DEPTH}")
+            if pmax > MAX_BATH_DEPTH:
+                raise InputError(f"[depths] pmax = {pmax} is beyond {MAX_BATH_DEPTH}, the deepest bath depth")
+        elif pmax > MAX_DEPTH:
+            raise InputError(
+                f"[depths] pmax = {pmax} is beyond {MAX_DEPTH} (2^{2 * pmax + 1} paths per pass) for {where}; "
+                "continue it with the bath engine (bath-from)"
+            )
+
+
 def _resolve(base: Path, text: str) -> Path:
     path = Path(os.path.expanduser(text))
     return (path if path.is_absolute() else base / path).resolve()
@@ -337,8 +396,6 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
         raise InputError(f"[depths] pmax must be >= 1, got {pmax}")
     if pmax < pmin:
         raise InputError(f"[depths] pmax = {pmax} is below pmin = {pmin}")
-    if pmax > MAX_DEPTH:
-        raise InputError(f"[depths] pmax = {pmax} is beyond {MAX_DEPTH} (2^{2 * pmax + 1} paths per pass)")
 
     restarts = _int(opt, "optimizer", "restarts", None, minimum=0)
     seed = _int(opt, "optimizer", "seed", 0, minimum=0)
@@ -373,12 +430,14 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
         except ExecutorConfigError as exc:
             raise InputError(f"[compute] cluster-config: {exc}") from None
 
+    ensembles = _ensembles(doc)
+    _check_depths(ensembles, pmin, pmax)
     spec = StudySpec(
         name=name,
         store=store,
         pmin=pmin,
         pmax=pmax,
-        ensembles=_ensembles(doc),
+        ensembles=ensembles,
         restarts=restarts,
         seed=seed,
         gtol=gtol,
@@ -416,10 +475,13 @@ def spec_from_json(data: dict, text: str = "") -> StudySpec:
     ensembles = []
     for e in data["ensembles"]:
         ref = e.get("reference") or {}
+        bath = e.get("bath") or {}
         ensembles.append(
             EnsembleSpec(
                 label=e["label"], kind=e.get("kind", "dense"), xi=e.get("xi"), q=e.get("q"),
                 degree=e.get("degree"), ground_state=ref.get("ground_state"), source=ref.get("source"),
+                bath_from=bath.get("from"), bath_tolerance=bath.get("tolerance"), bath_fock=bath.get("fock"),
+                bath_bond=bath.get("bond"),
             )
         )
     return StudySpec(

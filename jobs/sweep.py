@@ -80,6 +80,40 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     return result, CheckpointStats()
 
 
+def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
+    """A depth past exact reach: the bath optimizer, its evaluations checkpointed one by one."""
+    from leadline.kernels.bath import optimize_bath_depth
+
+    from .bath import CheckpointedEvaluations, bath_restarts
+
+    def live(info: dict) -> None:
+        # what `leadline status` shows for the depth in progress (one small attribute write)
+        depth.group.attrs.update({"bath_progress": {
+            "value": info["best_value"], "error_estimate": info["best_error_estimate"],
+            "gradient_norm": info["gradient_norm"], "evaluation_s": info["evaluation_s"],
+            "evaluations": evaluations.computed + evaluations.from_checkpoint}})
+        progress = getattr(executor, "progress", None)
+        if progress is not None:  # the sweep's progress line
+            progress.evaluation_done(
+                info["best_value"], label=f"{ens.label} p = {p} (bath)", count=info["evaluations"],
+                detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.3f} s per evaluation")
+
+    evaluations = CheckpointedEvaluations(depth, executor)
+    try:
+        result = optimize_bath_depth(
+            ens.mixture(), p, engine=ens.bath_engine(), run_map=evaluations, previous=previous,
+            previous_value=previous_value, restarts=bath_restarts(spec.restarts, previous is not None, p),
+            seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter, callback=live,
+        )
+    finally:
+        try:
+            depth.flush()
+        except Exception:  # noqa: BLE001 - the original error (if any) is the one to report
+            pass
+    stats = CheckpointStats()
+    return result, stats, evaluations
+
+
 #: how each ensemble kind optimizes one depth (extension point, see jobs/spec.py ENSEMBLE_KINDS)
 OPTIMIZERS = {"dense": _optimize_dense, "sparse": _optimize_sparse}
 
@@ -105,11 +139,15 @@ def run_study(
                 previous = (np.asarray(stored["gamma"], dtype=float), np.asarray(stored["beta"], dtype=float))
                 previous_value = float(stored["value"])
                 continue
-            plan = plan_chunks(p, spec.memory_budget)
+            plan = plan_chunks(p, spec.memory_budget) if ens.method(p) == "exact" else None
             depth = store.depth(ens.label, p, plan)
             crash_point("depth-started")
             t0, c0 = time.perf_counter(), time.process_time()
-            result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
+            bath = None
+            if ens.method(p) == "bath":
+                result, stats, bath = _optimize_bath(ens, spec, p, depth, executor, previous, previous_value)
+            else:
+                result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
             session_s = time.perf_counter() - t0
             session_cpu_s = time.process_time() - c0
             pass_compute_s = depth.pass_seconds()
@@ -126,9 +164,18 @@ def run_study(
                 "sessions": int(depth.group.attrs.get("sessions", 1)),
                 "this_session": stats.to_json(),
             }
+            if bath is not None:
+                # the evaluations' CPU seconds, over every session (the checkpoint keeps each one's)
+                timings.update({
+                    "wall_time_s": session_s, "pass_compute_s": 0.0, "optimizer_overhead_s": session_s,
+                    "bath_evaluations": result.evaluations, "bath_evaluations_computed": bath.computed,
+                    "bath_evaluations_from_checkpoint": bath.from_checkpoint,
+                    "bath_evaluation_cpu_s": result.evaluation_seconds * result.evaluations,
+                })
             record = result.to_json()
             record["wall_time_s"] = timings["wall_time_s"]
-            record["plan"] = plan.to_json()
+            record["plan"] = plan.to_json() if bath is None else None
+            record.setdefault("method", "exact")
             store.finish_depth(ens.label, p, record, timings)
             previous = (result.gamma, result.beta)
             previous_value = float(result.value)
@@ -143,6 +190,13 @@ def depth_line(line: dict) -> str:
     """One human-readable line for a finished depth."""
     r, t = line["result"], line["timings"]
     s = t["this_session"]
+    if r.get("method") == "bath":
+        return (
+            f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f} +- {r['error_estimate']:.1e} (bath)  "
+            f"|grad| {r['gradient_norm']:.1e} (noise {r['gradient_noise']:.1e})  {r['evaluations']} evaluations, "
+            f"{t['bath_evaluations_from_checkpoint']} from checkpoint, {r['evaluation_s']:.3f} s each, "
+            f"{t['wall_time_s']:.2f} s"
+        )
     passes = (f"{s['passes_computed']} passes computed, {s['passes_from_cache']} from checkpoint, "
               if s["passes_requested"] else "")
     return (

@@ -56,6 +56,7 @@ __all__ = [
     "canonical_width",
     "interpolate_angles",
     "default_restarts",
+    "start_candidates",
 ]
 
 
@@ -179,6 +180,41 @@ def _random_start(rng: np.random.Generator, mixture: Mixture, p: int) -> tuple[n
     return g, b
 
 
+def start_candidates(mixture: Mixture, p: int, *, previous=None, starts=None, restarts: int | None = None,
+                     seed: int = 0) -> list[tuple[np.ndarray, np.ndarray, str]]:
+    """The starts of a depth, in the order they are tried: (gamma, beta, kind).
+
+    Given starts first, then the warm start (INTERP of a depth p-1 ``previous``, or
+    ``previous`` itself at depth p), then ``restarts`` seeded extra starts (perturbations
+    of the warm start, or random ones without it; default :func:`default_restarts`).
+    Shared by the exact and the bath optimizer, so both try the same starts.
+    """
+    rng = np.random.default_rng([int(seed), int(p)])
+    n_extra = default_restarts(p) if restarts is None else int(restarts)
+    candidates: list[tuple[np.ndarray, np.ndarray, str]] = []
+    for g, b in starts or []:
+        candidates.append((np.asarray(g, float), np.asarray(b, float), "given"))
+    warm = None
+    if previous is not None and len(previous[0]) == p - 1 and p > 1:
+        warm = interpolate_angles(*previous)
+        candidates.append((warm[0], warm[1], "interp"))
+    elif previous is not None and len(previous[0]) == p:
+        warm = (np.asarray(previous[0], float), np.asarray(previous[1], float))
+        candidates.append((warm[0], warm[1], "previous"))
+    for _ in range(n_extra):
+        if warm is not None:
+            g = warm[0] * (1 + 0.1 * rng.standard_normal(p)) + 0.02 * rng.standard_normal(p)
+            b = warm[1] * (1 + 0.1 * rng.standard_normal(p)) + 0.02 * rng.standard_normal(p)
+            candidates.append((g, b, "perturbed"))
+        else:
+            g, b = _random_start(rng, mixture, p)
+            candidates.append((g, b, "random"))
+    if not candidates:
+        g, b = _random_start(rng, mixture, p)
+        candidates.append((g, b, "random"))
+    return candidates
+
+
 def optimize_depth(
     mixture: Mixture,
     p: int,
@@ -236,30 +272,7 @@ def optimize_depth(
     if p < 1:
         raise ValueError("depth p must be >= 1")
     plan = plan or plan_chunks(p)
-    rng = np.random.default_rng([int(seed), int(p)])
-    n_extra = default_restarts(p) if restarts is None else int(restarts)
-
-    candidates: list[tuple[np.ndarray, np.ndarray, str]] = []
-    for g, b in starts or []:
-        candidates.append((np.asarray(g, float), np.asarray(b, float), "given"))
-    warm = None
-    if previous is not None and len(previous[0]) == p - 1 and p > 1:
-        warm = interpolate_angles(*previous)
-        candidates.append((warm[0], warm[1], "interp"))
-    elif previous is not None and len(previous[0]) == p:
-        warm = (np.asarray(previous[0], float), np.asarray(previous[1], float))
-        candidates.append((warm[0], warm[1], "previous"))
-    for _ in range(n_extra):
-        if warm is not None:
-            g = warm[0] * (1 + 0.1 * rng.standard_normal(p)) + 0.02 * rng.standard_normal(p)
-            b = warm[1] * (1 + 0.1 * rng.standard_normal(p)) + 0.02 * rng.standard_normal(p)
-            candidates.append((g, b, "perturbed"))
-        else:
-            g, b = _random_start(rng, mixture, p)
-            candidates.append((g, b, "random"))
-    if not candidates:
-        g, b = _random_start(rng, mixture, p)
-        candidates.append((g, b, "random"))
+    candidates = start_candidates(mixture, p, previous=previous, starts=starts, restarts=restarts, seed=seed)
 
     # search box: b over two periods (V is periodic in each b_t), |g| up to
     # GAMMA_BOX / sqrt(xi'(1)), far beyond the optima (|g| sqrt(xi'(1)) < 1 in every

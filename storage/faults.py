@@ -29,6 +29,7 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   depth-started           a depth is marked running, its optimizer not yet started
   sparse-step-finished    a chunked sparse evaluation recorded a finished step (storage/sparse_scratch.py)
   sparse-band-task        a row-band task of a chunked sparse transform starts (cluster/sparse_vectors.py)
+  bath-evaluations-cached a batch of bath evaluations of a depth is on disk (jobs/bath.py)
 """
 
 from __future__ import annotations

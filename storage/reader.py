@@ -27,7 +27,8 @@ from .study import check_contents, check_study, inflight_summary, store_usage
 __all__ = ["open_study", "StudyReader"]
 
 #: the fields of one finished depth in :meth:`StudyReader.depths`
-DEPTH_FIELDS = ("p", "value", "gamma", "beta", "gradient_norm", "evaluations", "wall_time_s", "converged")
+DEPTH_FIELDS = ("p", "value", "gamma", "beta", "gradient_norm", "evaluations", "wall_time_s", "converged", "method",
+                "error_estimate")
 
 
 def open_study(path: str | os.PathLike) -> "StudyReader":
@@ -95,9 +96,11 @@ class StudyReader:
 
     def depths(self, label: str) -> list[dict]:
         """Finished depths of ``label`` sorted by p: {"p", "value", "gamma", "beta",
-        "gradient_norm", "evaluations", "wall_time_s", "converged"} (angles as lists, radians)."""
+        "gradient_norm", "evaluations", "wall_time_s", "converged", "method", "error_estimate"}
+        (angles as lists, radians; method "exact" or "bath", error_estimate None for exact)."""
         self.ensemble(label)
-        return [{k: a["result"].get(k) for k in DEPTH_FIELDS} | {"p": p} for p, a in self.contents.done(label).items()]
+        return [{k: a["result"].get(k) for k in DEPTH_FIELDS} | {"p": p, "method": a["result"].get("method", "exact")}
+                for p, a in self.contents.done(label).items()]
 
     def depth(self, label: str, p: int) -> dict | None:
         """Everything stored about depth p: result (with optimizer history), timings, repairs, state."""
@@ -132,7 +135,8 @@ class StudyReader:
                 if attrs.get("state") == "done" and "result" in attrs:
                     r, t = attrs["result"], attrs.get("timings", {})
                     done.append({"p": p, "value": r.get("value"), "evaluations": r.get("evaluations"),
-                                 "wall_time_s": r.get("wall_time_s")})
+                                 "wall_time_s": r.get("wall_time_s"), "method": r.get("method", "exact"),
+                                 "error_estimate": r.get("error_estimate")})
                     finished_timings.append((p, r.get("evaluations") or 0, t.get("pass_compute_s", r.get("wall_time_s") or 0.0),
                                              t.get("paths")))
                     if t.get("pass_compute_s") and t.get("passes"):
@@ -193,14 +197,18 @@ def _running_info(p: int, g, attrs: dict | None, writing: bool) -> dict:
 
 def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
     damaged, attrs = attrs is None, attrs or {}
-    passes = 0
-    seconds = 0.0
+    passes = bath_done = 0
+    seconds = bath_seconds = 0.0
     paths = 0.0
     try:
         for name, arr in (g[L.PASSES].arrays() if g is not None else ()):
             if L.parse_batch_name(name) is None:
                 continue
             for entry in arr.attrs.asdict().get("entries", []):
+                if entry.get("kind") == "bath":  # a bath evaluation, not a pass
+                    bath_done += 1
+                    bath_seconds += float(entry.get("wall_s", 0.0))
+                    continue
                 passes += 1
                 seconds += float(entry.get("wall_s", 0.0))
                 paths += float(entry.get("paths") or 2.0 ** (2 * int(entry.get("step", p)) + 1))
@@ -222,6 +230,10 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
         "paths": paths,
         "inflight": inflight,
         "repairs": len(attrs.get("repairs", [])),
+        # a bath depth: the live state of its optimizer and its checkpointed evaluations
+        "bath": None if not (bath_done or attrs.get("bath_progress")) else dict(
+            attrs.get("bath_progress") or {}, evaluations_checkpointed=bath_done,
+            evaluation_cpu_s=bath_seconds / max(1, bath_done)),
     }
 
 

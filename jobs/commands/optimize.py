@@ -12,11 +12,13 @@ from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
-from ..api import optimize_ladder
+from ..api import bath_ladder, optimize_ladder
+from ..bath import check_optimize_method, engine_settings
 from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
+from ..errors import InputError
 from ..paths import check_output_file
 from ..parsing import check_memory_mb, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
-from . import _sparse as sparse
+from . import _evaluate_bath as bath, _sparse as sparse
 
 
 def optimize_command(
@@ -35,7 +37,7 @@ def optimize_command(
     gtol: float = typer.Option(1e-7, "--gtol", help="Stop when the largest gradient component is below this."),
     maxiter: int = typer.Option(500, "--maxiter", help="Iteration cap of each local quasi-Newton run."),
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
-    memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB."),
+    memory_mb: Optional[float] = typer.Option(None, "--memory-mb", help=f"Memory budget of one chunk task in MiB (exact method; default {DEFAULT_MEMORY_BUDGET / 2**20:g})."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
     xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
@@ -45,6 +47,10 @@ def optimize_command(
     threads_per_worker: int = compute.threads_option(),
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
+    method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP + " With bath the gradient is a finite difference, its evaluations run on the executor."),
+    tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP + " Every evaluation of the optimizer is asked for it; the optimizer never chases changes below its error estimate."),
+    fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
+    bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
     scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
@@ -54,10 +60,15 @@ def optimize_command(
         leadline optimize --xi 2:0.5 --depth 5            # SK: V_5* = 0.5476
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
+
+        leadline optimize --xi 2:0.5 --depth 18 --angles p17.json --method bath
     """
+    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb,
+                                     sparse=sparse.sparse_requested(xorsat, degree))
+    memory_mb = DEFAULT_MEMORY_BUDGET / 2**20 if memory_mb is None else memory_mb
     check_memory_mb(memory_mb)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
-    if not sparse.sparse_requested(xorsat, degree):
+    if not sparse.sparse_requested(xorsat, degree) and not use_bath:
         check_depth(depth, "--depth")
     initial = warm_start(start, depth)
     if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
@@ -76,6 +87,9 @@ def optimize_command(
     if output is not None:
         check_output_file(output)
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    if use_bath:
+        return _optimize_bath(mix, depth, initial, settings, engine_settings(tolerance, fock, bond), restarts=restarts,
+                              seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json)
     cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
         typer.echo(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", err=True)
@@ -106,6 +120,40 @@ def optimize_command(
     header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
+
+
+def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gtol, maxiter, output, as_json) -> None:
+    """`optimize --method bath`: the bath ladder on the executor, reported with the error estimate."""
+    from leadline.kernels.bath import BathLimitError
+
+    with compute.open_compute(settings) as ex:
+        try:
+            run = bath_ladder(
+                mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gtol,
+                maxiter=maxiter,
+                on_evaluation=lambda info, p: ex.progress.evaluation_done(
+                    info["best_value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
+                    detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
+            )
+        except BathLimitError as exc:  # the engine cannot meet the tolerance at some point it was asked for
+            raise InputError(f"{exc}; nothing written") from None
+    result = run.result
+    if output is not None:
+        write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
+    warning = convergence_warning(result)
+    if warning:
+        typer.echo(warning, err=True)
+    if as_json:
+        typer.echo(json.dumps(run.to_json()))
+        return
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}",
+              f"V_p*           = {result.value:.10f} +- {result.error_estimate:.1e} (bosonic bath)"]
+    evaluations = (f"{run.evaluations_total} over depths {run.first_depth}..{depth} ({result.gradients} gradients at "
+                   f"p = {depth}, {result.evaluation_seconds:.3f} CPU s each), {run.wall_time:.1f} s")
+    text = optimum_report(header, result, evaluations, run.ladder, output)
+    text = text.replace(f"gradient (max) = {result.gradient_norm:.1e}",
+                        f"gradient (max) = {result.gradient_norm:.1e} (noise level {result.gradient_noise:.1e})")
+    typer.echo(text)
 
 
 def register(app: typer.Typer) -> None:

@@ -338,10 +338,20 @@ def status_text(progress: dict) -> str:
         done = e["done"]
         lines.append(f"  {e['label']}")
         if done:
-            values = "  ".join(f"p{d['p']}={fmt(d['value'])}" for d in done)
+            values = "  ".join(f"p{d['p']}={fmt(d['value'])}" + (f"(bath +- {d['error_estimate']:.0e})"
+                                if d.get("method") == "bath" else "") for d in done)
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
-        if r is not None and r.get("metadata_damaged") and r.get("active"):
+        if r is not None and r.get("bath") and not r.get("metadata_damaged"):
+            b = r["bath"]
+            state = "running" if r.get("active", True) else "stopped"
+            text = f"    {state:<8} p = {r['p']} (bath): {b['evaluations_checkpointed']} evaluations checkpointed"
+            if b.get("value") is not None:
+                text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, |grad| "
+                         f"{b['gradient_norm']:.1e}")
+            text += f", {b['evaluation_cpu_s']:.3f} CPU s per evaluation, session {r['sessions']}"
+            lines.append(text)
+        elif r is not None and r.get("metadata_damaged") and r.get("active"):
             lines.append(f"    running  p = {r['p']}: starting")  # its folder is there, its metadata not yet
         elif r is not None and r.get("metadata_damaged"):
             lines.append(f"    stopped  p = {r['p']}: its metadata cannot be read; resume starts this depth again")

@@ -133,7 +133,8 @@ def render_csv(report: StudyReport) -> str:
         for r in rep.rows:
             emit(ensemble=rep.label, record="depth", quantity="V_p", p=r.p, inv_p=r.inverse_depth, value=r.value,
                  gain=r.gain, ratio_gs=r.ratio_gs, ratio_alg=r.ratio_alg, exceeds_alg=r.exceeds_alg,
-                 gradient_norm=r.gradient_norm)
+                 gradient_norm=r.gradient_norm,
+                 **({"uncertainty": r.error_estimate, "note": "bath engine"} if r.method == "bath" else {}))
         if rep.extrapolation is not None:
             _emit_extrapolation(emit, rep.label, rep.extrapolation)
         for note in rep.notes:

@@ -207,6 +207,10 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
         align += ["r", "l"]
     header.append("grad norm")
     align.append("r")
+    bath = any(r.method == "bath" for r in rep.rows)
+    if bath:  # which depths come from the bath engine, with its error estimate
+        header.append("method")
+        align.append("l")
     rows = []
     for r in rep.rows:
         cells = [str(r.p), f"{r.inverse_depth:.4f}", fmt(r.value), "-" if r.gain is None else fmt(r.gain, signed=True)]
@@ -215,6 +219,8 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
         if has_alg:
             cells += [_fmt(r.ratio_alg, ".4f"), "yes" if r.exceeds_alg else "no"]
         cells.append(_fmt(r.gradient_norm, ".1e"))
+        if bath:
+            cells.append(f"bath +- {r.error_estimate:.1e}" if r.method == "bath" else "exact")
         rows.append(cells)
     if rows:
         out += _markdown_table(header, rows, align)

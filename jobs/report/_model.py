@@ -121,6 +121,8 @@ class DepthRow:
     converged: bool | None
     gamma: tuple[float, ...]
     beta: tuple[float, ...]
+    method: str = "exact"
+    error_estimate: float | None = None
 
     @property
     def inverse_depth(self) -> float:
@@ -139,6 +141,8 @@ class DepthRow:
             "converged": self.converged,
             "gamma": list(self.gamma),
             "beta": list(self.beta),
+            "method": self.method,
+            "error_estimate": self.error_estimate,
         }
 
 
@@ -246,6 +250,8 @@ def build_ensemble_report(
                 converged=rec.get("converged"),
                 gamma=tuple(float(x) for x in rec.get("gamma", ())),
                 beta=tuple(float(x) for x in rec.get("beta", ())),
+                method=str(rec.get("method", "exact")),
+                error_estimate=finite_or_none(rec.get("error_estimate")),
             )
         )
 

@@ -10,7 +10,8 @@ the truncation until its error estimate meets the tolerance asked for.
 
 Modules (private): ``_dense``, ``_mps``, ``_parity`` (the states: Fock array, dense-tensor MPS,
 parity block-sparse MPS), ``_modes`` (bath modes and bases),
-``_engine`` (one run), ``_estimate`` (two runs and the error estimate).  May import: numpy,
+``_engine`` (one run), ``_estimate`` (the tolerance ladder and its error estimate), ``_optimize``
+(optimal angles by noise-aware finite differences).  May import: numpy,
 scipy.linalg and the contour layout of :mod:`leadline.kernels.exact`.  Names are imported on
 first use.
 """
@@ -39,6 +40,10 @@ _WHERE = {
     "mode_amplitudes": "_modes",
     "principal_factor": "_modes",
     "MPSState": "_mps",
+    "BathOptimization": "_optimize",
+    "optimize_bath_depth": "_optimize",
+    "bath_point": "_optimize",
+    "fourier_basis": "_optimize",
     "ParityMPS": "_parity",
 }
 

@@ -1,0 +1,133 @@
+"""The bath method of `optimize` and of sweeps: engine settings, option checks, checkpointed map.
+
+The kernel is :func:`leadline.kernels.bath.optimize_bath_depth`; this module turns the user's
+options into its engine settings, checks the options the bath method does not have (and the
+reverse), and gives sweeps a ``run_map`` that checkpoints every bath evaluation.  The depth
+ladder (:func:`leadline.jobs.api.bath_ladder`) lives next to the exact one in api.py.
+"""
+
+from __future__ import annotations
+
+from .errors import InputError
+
+__all__ = ["DEFAULT_FOCK", "DEFAULT_TAIL", "DEFAULT_BOND", "DEFAULT_BASIS", "engine_settings",
+           "check_optimize_method", "bath_restarts", "CheckpointedEvaluations"]
+
+METHODS = ("exact", "bath")
+
+
+def engine_settings(tolerance: float | None = None, fock: int | None = None, bond: int | None = None) -> dict:
+    """Keyword arguments of ``evaluate_bath`` from --tolerance/--fock/--bond (engine defaults when None)."""
+    from leadline.kernels.bath import DEFAULT_BOND_CAP, DEFAULT_FOCK_CAP, DEFAULT_TOLERANCE
+
+    return {
+        "tolerance": DEFAULT_TOLERANCE if tolerance is None else float(tolerance),
+        "fock_cap": DEFAULT_FOCK_CAP if fock is None else int(fock),
+        "bond_cap": DEFAULT_BOND_CAP if bond is None else int(bond),
+    }
+
+
+def check_engine_values(tolerance, fock, bond, *, names=("--tolerance", "--fock", "--bond")) -> None:
+    """Ranges of the bath engine settings, as `evaluate --method bath` checks them (one InputError line)."""
+    from .commands._evaluate_bath import BOND_RANGE, FOCK_RANGE, TOLERANCE_RANGE
+
+    for name, value, (lo, hi), integer in ((names[0], tolerance, TOLERANCE_RANGE, False),
+                                           (names[1], fock, FOCK_RANGE, True), (names[2], bond, BOND_RANGE, True)):
+        if value is None:
+            continue
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or (integer and not isinstance(value, int)):
+            raise InputError(f"{name} must be {'an integer' if integer else 'a number'}, got {value!r}")
+        if not lo <= value <= hi:
+            raise InputError(f"{name} must be between {lo:g} and {hi:g}, got {value:g}")
+
+
+def check_optimize_method(method: str, *, tolerance=None, fock=None, bond=None, memory_mb=None,
+                          sparse: bool = False) -> bool:
+    """Validate the method options of `optimize`; True when the bath method is asked for."""
+    if method not in METHODS:
+        raise InputError(f"--method must be one of {', '.join(METHODS)}, got {method!r}")
+    if method == "exact":
+        for name, value in (("--tolerance", tolerance), ("--fock", fock), ("--bond", bond)):
+            if value is not None:
+                raise InputError(f"{name} applies only to --method bath")
+        return False
+    if sparse:
+        raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
+    if memory_mb is not None:
+        raise InputError("--memory-mb sets the chunk plan of the exact method; --method bath has none (drop it)")
+    check_engine_values(tolerance, fock, bond)
+    return True
+
+
+def bath_restarts(restarts: int | None, warm: bool, p: int) -> int:
+    """Extra starts of a bath depth: as given, else none after a warm start, else the exact default."""
+    from leadline.kernels.optimize import default_restarts
+
+    if restarts is not None:
+        return int(restarts)
+    return 0 if warm else default_restarts(p)
+
+
+class CheckpointedEvaluations:
+    """A ``run_map`` for bath evaluations that reads finished ones from the depth's store.
+
+    Every evaluation is keyed by a content fingerprint of (mixture, angles, engine settings)
+    and written into the depth's pass batches (kind "bath": value, error estimate, CPU
+    seconds), following the checkpoint policy (at once when ``interval-s = 0``).  A depth
+    that is killed and resumed replays the deterministic optimizer; every evaluation it had
+    finished is read back bit for bit, so the resumed depth follows the same path and gives
+    the same numbers.  ``on_progress(info)`` is called after each batch (live status).
+    """
+
+    def __init__(self, depth, executor, *, on_progress=None):
+        self.depth = depth
+        self.executor = executor
+        self.on_progress = on_progress
+        self.computed = 0
+        self.from_checkpoint = 0
+        self.seconds = 0.0
+
+    @staticmethod
+    def key(task) -> str:
+        import hashlib
+        import json
+
+        import numpy as np
+
+        mixture, gamma, beta, engine = task
+        h = hashlib.sha256()
+        h.update(json.dumps({"xi": mixture.spec(), "engine": engine}, sort_keys=True).encode())
+        h.update(np.ascontiguousarray(gamma, dtype="<f8").tobytes())
+        h.update(np.ascontiguousarray(beta, dtype="<f8").tobytes())
+        return "bath-" + h.hexdigest()[:32]
+
+    def __call__(self, func, tasks) -> list:
+        import numpy as np
+
+        from leadline.storage.faults import crash_point
+
+        tasks = list(tasks)
+        keys = [self.key(t) for t in tasks]
+        out: list = [None] * len(tasks)
+        missing = []
+        for i, key in enumerate(keys):
+            cached = self.depth.cached_pass(key, backward=False)
+            if cached is not None:
+                out[i] = (float(cached[0].real), float(cached[1].real), float(cached[2].real))
+                self.from_checkpoint += 1
+            else:
+                missing.append(i)
+        if missing:
+            run_map = getattr(self.executor, "run_map", None)
+            results = run_map(func, [tasks[i] for i in missing]) if run_map else [func(tasks[i]) for i in missing]
+            for i, res in zip(missing, results):
+                out[i] = tuple(float(x) for x in res)
+                meta = {"kind": "bath", "step": int(len(tasks[i][1])), "plan": None, "n_chunks": 1,
+                        "completions": [1], "paths": 0.0, "wall_s": float(res[2])}
+                self.depth.add_pass(keys[i], np.array(out[i], dtype=np.complex128), meta)
+                self.computed += 1
+                self.seconds += float(res[2])
+            if self.depth.policy.flush_after(self.depth.pending_seconds):
+                self.depth.flush()
+                crash_point("bath-evaluations-cached")
+        return out
