@@ -18,6 +18,7 @@ from typing import Optional
 import typer
 
 from .errors import InputError
+from .renames import renamed_option
 
 app = typer.Typer(
     name="leadline",
@@ -92,6 +93,9 @@ def main(argv: list[str] | None = None) -> None:
         if "NoArgsIsHelpError" in kinds:
             exc.ctx and print(exc.ctx.get_help())
             sys.exit(0)
+        if "NoSuchOption" in kinds and renamed_option(getattr(exc, "option_name", "") or ""):
+            print(f"leadline: error: {renamed_option(exc.option_name)}", file=sys.stderr)
+            sys.exit(2)
         if "UsageError" in kinds:
             ctx = getattr(exc, "ctx", None)
             where = ctx.command_path if ctx is not None else "leadline"

@@ -61,12 +61,12 @@ def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndar
     return g, b
 
 
-#: largest --gtol accepted: a gradient max-norm above it is not a stationary point of V_p
+#: largest --gradient-tol accepted: a gradient max-norm above it is not a stationary point of V_p
 #: (values are O(1); common practice for double-precision quasi-Newton runs is 1e-5..1e-8)
-MAX_GTOL = 1e-4
+MAX_GRADIENT_TOL = 1e-4
 
 
-def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float, maxiter: int, seed: int = 0) -> int:
+def check_optimizer_options(depth: int | None, restarts: int | None, gradient_tol: float, max_iterations: int, seed: int = 0) -> int:
     """Validate the options shared by dense and sparse `optimize`; returns the depth."""
     if depth is None:
         raise InputError("--depth is required (the depth p to optimize, >= 1)")
@@ -74,13 +74,13 @@ def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float
         raise InputError(f"--depth must be >= 1, got {depth}")
     if restarts is not None and restarts < 0:
         raise InputError("--restarts must be >= 0")
-    if not (gtol > 0 and gtol <= MAX_GTOL):
+    if not (gradient_tol > 0 and gradient_tol <= MAX_GRADIENT_TOL):
         raise InputError(
-            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol}: a larger tolerance stops the "
+            f"--gradient-tol must be a number in (0, {MAX_GRADIENT_TOL:g}], got {gradient_tol}: a larger tolerance stops the "
             "optimizer before a stationary point"
         )
-    if maxiter < 1:
-        raise InputError("--maxiter must be >= 1")
+    if max_iterations < 1:
+        raise InputError("--max-iterations must be >= 1")
     if seed < 0:
         raise InputError(f"--seed must be >= 0, got {seed}")
     return depth

@@ -39,8 +39,8 @@ def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor,
             previous_value=previous_value,
             restarts=spec.restarts,
             seed=spec.seed,
-            gtol=spec.gtol,
-            maxiter=spec.maxiter,
+            gtol=spec.gradient_tol,
+            maxiter=spec.max_iterations,
         )
         if depth.policy.keep_passes:
             passes.flush()
@@ -61,7 +61,7 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     kwargs = {} if spec.restarts is None else {"restarts": spec.restarts}
     result = optimize_sparse(
         ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
-        seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter, **kwargs,
+        seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations, **kwargs,
     )
     return result, CheckpointStats()
 
@@ -129,9 +129,9 @@ def depth_line(line: dict) -> str:
     """One human-readable line for a finished depth."""
     r, t = line["result"], line["timings"]
     s = t["this_session"]
-    passes = (f"{s['passes_computed']} passes computed, {s['passes_from_cache']} from checkpoint, "
+    passes = (f"{s['passes_computed']} passes computed, {s['passes_reused']} reused, "
               if s["passes_requested"] else "")
     return (
-        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  |grad| {r['gradient_norm']:.1e}  "
+        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  gradient norm {r['gradient_norm']:.1e}  "
         f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
     )

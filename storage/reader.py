@@ -30,7 +30,7 @@ DEPTH_FIELDS = ("p", "value", "gamma", "beta", "gradient_norm", "evaluations", "
 
 
 def open_study(path: str | os.PathLike) -> "StudyReader":
-    """Open the study store at ``path`` for reading (format and schema version checked)."""
+    """Open the study store at ``path`` for reading (format and format version checked)."""
     return StudyReader(path)
 
 
@@ -52,7 +52,7 @@ class StudyReader:
         self.name: str = attrs["name"]
         self.spec: dict = attrs["spec"]
         self.spec_toml: str = attrs.get("spec_toml", "")
-        self.schema_version: int = attrs["schema_version"]
+        self.format_version: int = attrs[L.VERSION]
         self.created_utc: str | None = attrs.get("created_utc")
         self._root = zarr.open_group(str(self.path), mode="r", zarr_format=3)
 
@@ -69,19 +69,20 @@ class StudyReader:
                     stored = self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict()
                 except KeyError:
                     stored = {}
-                return dict(stored) if stored.get("label") == label else _describe(e)
+                return L.current_ensemble_attrs(stored) if stored.get("label") == label else _describe(e)
         raise KeyError(f"no ensemble {label!r} in study {self.name!r} (have {', '.join(self.ensembles())})")
 
     def references(self, label: str):
         """Computed GS/ALG cached in the store by `leadline reference --store`, or None.
 
-        Returns a kernels.reference.References (attribute ``references`` of the
-        ensemble group holds its JSON form).
+        Returns a kernels.reference.References (attribute ``computed_reference`` of the
+        ensemble group holds its JSON form; ``references`` in stores before schema 3).
         """
         from leadline.kernels.reference import References
 
         try:
-            data = self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict().get("references")
+            stored = L.current_ensemble_attrs(self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict())
+            data = stored.get(L.COMPUTED_REFERENCE)
         except KeyError:
             return None
         return References.from_json(data) if data else None
@@ -199,7 +200,7 @@ def _running_info(p: int, g: zarr.Group, attrs: dict) -> dict:
         "plan": attrs.get("plan"),
         "started_utc": attrs.get("started_utc"),
         "sessions": attrs.get("sessions"),
-        "passes_cached": passes,
+        "passes_saved": passes,
         "evaluations_done": passes // (2 * p),  # p forward and p adjoint passes per evaluation
         "pass_compute_s": seconds,
         "paths": paths,

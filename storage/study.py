@@ -93,12 +93,17 @@ def check_study(path: str | os.PathLike) -> dict:
         raise NotAStudyError(f"{path} is not a readable Zarr v3 group: {exc}") from None
     if attrs.get("format") != L.FORMAT:
         raise NotAStudyError(f"{path} is a Zarr group but not a leadline study store (format {attrs.get('format')!r})")
-    version = attrs.get("schema_version")
+    version = L.store_version(attrs)
     if version not in L.READABLE_SCHEMAS:
         raise SchemaVersionError(
-            f"store {path} has schema version {version!r}, this leadline reads versions "
+            f"store {path} has format version {version!r}, this leadline reads versions "
             f"{', '.join(map(str, L.READABLE_SCHEMAS))}; use the leadline release that wrote it"
         )
+    # the names of this release, whichever release wrote the store (renamed on disk by a writer)
+    attrs[L.VERSION] = version
+    attrs.pop(L.OLD_VERSION, None)
+    if isinstance(attrs.get("spec"), dict):
+        attrs["spec"] = L.current_spec(attrs["spec"])
     return attrs
 
 
@@ -184,7 +189,7 @@ class StudyStore:
         try:
             attrs = {
                 "format": L.FORMAT,
-                "schema_version": L.SCHEMA_VERSION,
+                L.VERSION: L.SCHEMA_VERSION,
                 "name": name,
                 "spec": spec,
                 "spec_toml": spec_toml,
@@ -272,15 +277,47 @@ class StudyStore:
                     yield ens.name, p, d
 
     def _upgrade(self, notice) -> None:
+        """Bring an older layout to this release's: schema 1 -> 2 drops old pass caches,
+        2 -> 3 renames attributes (:data:`layout.RENAMED_IN_3`).  Safe to repeat after a kill:
+        the version attribute is written last."""
+        version = L.store_version(self.root.attrs.asdict())
+        if version == L.SCHEMA_VERSION:
+            return
+        if version == 1:
+            self._upgrade_1_to_2(notice)
+        self._rename_attributes(version)
+
+    def _rename_attributes(self, version) -> None:
+        """Schema 2 -> 3: the attributes get this release's names (values unchanged)."""
+        for label in list(self.root.require_group(L.ENSEMBLES).group_keys()):
+            group = self.root[f"{L.ENSEMBLES}/{label}"]
+            attrs = group.attrs.asdict()
+            if "references" in attrs:
+                group.attrs[L.COMPUTED_REFERENCE] = attrs["references"]
+                del group.attrs["references"]
+            for name in list(group.group_keys()):
+                if L.parse_depth_name(name) is None:
+                    continue
+                depth = group[name]
+                timings = depth.attrs.asdict().get("timings")
+                if isinstance(timings, dict) and isinstance(timings.get("this_session"), dict):
+                    timings["this_session"] = L.current_session(timings["this_session"])
+                    depth.attrs["timings"] = timings
+        root = self.root.attrs.asdict()
+        migrated = list(root.get("migrated", []))
+        migrated.append({"from": 2, "to": L.SCHEMA_VERSION, "utc": utc_now(), "renamed": "attribute names"})
+        self.root.attrs.update({"spec": L.current_spec(root["spec"]), "migrated": migrated, L.VERSION: L.SCHEMA_VERSION})
+        if L.OLD_VERSION in self.root.attrs:
+            del self.root.attrs[L.OLD_VERSION]
+
+    def _upgrade_1_to_2(self, notice) -> None:
         """Schema 1 -> 2: keep every depth record, drop the pass caches and ledgers of the old layout.
 
         Old cached passes were keyed for the full-contour iteration (one plan
         per depth); the current iteration never asks for them, and reusing them
         would mix results of different plans.  Safe to repeat after a kill.
         """
-        version = self.root.attrs.get("schema_version")
-        if version == L.SCHEMA_VERSION:
-            return
+        version = 1
         dropped = 0
         depths = set()
         for label, p, d in self._depth_dirs():
@@ -291,8 +328,8 @@ class StudyStore:
                     shutil.rmtree(d / sub, ignore_errors=True)
                     depths.add((label, p))
         migrated = list(self.root.attrs.get("migrated", []))
-        migrated.append({"from": version, "to": L.SCHEMA_VERSION, "utc": utc_now(), "passes_dropped": dropped})
-        self.root.attrs.update({"schema_version": L.SCHEMA_VERSION, "migrated": migrated})
+        migrated.append({"from": version, "to": 2, "utc": utc_now(), "passes_dropped": dropped})
+        self.root.attrs.update({"migrated": migrated})
         if depths:
             notice(
                 f"store {self.path} was written by an older leadline (schema {version}): finished depths are "
@@ -338,10 +375,10 @@ class StudyStore:
 
     def save_references(self, label: str, references: dict) -> None:
         """Cache computed reference energies (kernels.reference.References.to_json())
-        in the ensemble's attribute ``references``."""
+        in the ensemble's attribute ``computed_reference``."""
         self.root.require_group(L.ENSEMBLES)
         group = self.root.require_group(f"{L.ENSEMBLES}/{label}")
-        group.attrs["references"] = references
+        group.attrs[L.COMPUTED_REFERENCE] = references
 
     def finished_depth(self, label: str, p: int) -> dict | None:
         """The stored result of depth p (attrs "result"), or None if not done."""

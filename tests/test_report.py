@@ -173,7 +173,7 @@ def test_csv_parses_and_holds_the_stored_values(study, report):
 
 def test_json_is_one_object_with_the_stored_values(study, report):
     obj = json.loads(render_json(report))
-    assert obj["format"] == "leadline.table" and obj["version"] == 2
+    assert obj["format"] == "leadline.table" and obj["format_version"] == 3
     assert [e["label"] for e in obj["ensembles"]] == study.ensembles()
     for ens in obj["ensembles"]:
         stored = study.depths(ens["label"])

@@ -36,7 +36,7 @@ def check_method(method: str, fock: Optional[int], bond: Optional[int], basis: O
                 raise InputError(f"{name} applies only to --method bath")
         return False
     if sparse:
-        raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
+        raise InputError("--method bath is for the mixed-spin (dense) model, not --sparse-q/--degree")
     if gradient or fixed_point:
         raise InputError("--method bath gives the value only: drop --gradient/--check-fixed-point")
     if fock is not None and fock < 2:

@@ -32,18 +32,18 @@ def optimize_command(
         None, "--restarts", help="Extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, else 0)."
     ),
     seed: int = typer.Option(0, "--seed", help="Seed of the random and perturbed starts (results are reproducible)."),
-    gtol: float = typer.Option(1e-7, "--gtol", help="Stop when the largest gradient component is below this."),
-    maxiter: int = typer.Option(500, "--maxiter", help="Iteration cap of each local quasi-Newton run."),
+    gradient_tol: float = typer.Option(1e-7, "--gradient-tol", help="Stop when the largest gradient component is below this."),
+    max_iterations: int = typer.Option(500, "--max-iterations", help="Iteration cap of each local quasi-Newton run."),
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
-    memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB."),
+    memory_mib: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mib", help="Memory budget of one chunk task in MiB."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
-    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
+    sparse_q: Optional[int] = typer.Option(None, "--sparse-q", help=sparse.SPARSE_Q_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
     executor: str = compute.executor_option(),
     scheduler: Optional[str] = compute.scheduler_option(),
     workers: Optional[int] = compute.workers_option(),
     threads_per_worker: int = compute.threads_option(),
-    cluster_config: Optional[str] = compute.cluster_config_option(),
+    batch_file: Optional[str] = compute.batch_file_option(),
     quiet: bool = compute.quiet_option(),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
@@ -54,24 +54,24 @@ def optimize_command(
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
-    if not (memory_mb > 0 and memory_mb < float("inf")):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    if not (memory_mib > 0 and memory_mib < float("inf")):
+        raise InputError(f"--memory-mib must be a positive finite number of MiB, got {memory_mib}")
+    depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
     initial = warm_start(start, depth)
-    if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
-        # a file written by `optimize --xorsat`: continue on its own sparse ensemble
-        xorsat, degree = initial.ensemble["q"], str(initial.ensemble["degree"])
-    if sparse.sparse_requested(xorsat, degree):
-        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-        return sparse.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
-                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings)
+    if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(sparse_q, degree):
+        # a file written by `optimize --sparse-q`: continue on its own sparse ensemble
+        sparse_q, degree = initial.ensemble["q"], str(initial.ensemble["degree"])
+    if sparse.sparse_requested(sparse_q, degree):
+        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
+        return sparse.optimize_xorsat(sparse_q, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gradient_tol=gradient_tol,
+                                          max_iterations=max_iterations, output=output, as_json=as_json, start=start, settings=settings)
     mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")
     if output is not None:
         check_output_file(output)
-    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-    cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
+    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
+    cost = check_cost(depth, plan_chunks(depth, int(memory_mib * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
         typer.echo(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", err=True)
 
@@ -81,11 +81,11 @@ def optimize_command(
             depth,
             initial,
             run_pass=ex.run_pass,
-            budget=int(memory_mb * 2**20),
+            budget=int(memory_mib * 2**20),
             restarts=restarts,
             seed=seed,
-            gtol=gtol,
-            maxiter=maxiter,
+            gradient_tol=gradient_tol,
+            max_iterations=max_iterations,
             on_evaluation=lambda value, p: ex.progress.evaluation_done(value, label=f"optimize p = {p}"),
         )
     result, ladder, first, total_evals, wall = run.result, run.ladder, run.first_depth, run.evaluations_total, run.wall_time

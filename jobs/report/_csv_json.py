@@ -124,7 +124,7 @@ def render_csv(report: StudyReport) -> str:
             emit(ensemble=rep.label, record="reference", quantity="algorithmic_threshold", value=refs.threshold,
                  uncertainty=refs.threshold_uncertainty, note=f"{refs.threshold_origin}: {refs.threshold_source}")
         for r in rep.rows:
-            emit(ensemble=rep.label, record="depth", quantity="V_p", p=r.p, inv_p=r.inverse_depth, value=r.value,
+            emit(ensemble=rep.label, record="depth", quantity="V_p", p=r.p, inv_p=r.inv_p, value=r.value,
                  gain=r.gain, ratio_gs=r.ratio_gs, ratio_alg=r.ratio_alg, exceeds_alg=r.exceeds_alg,
                  gradient_norm=r.gradient_norm)
         if rep.extrapolation is not None:

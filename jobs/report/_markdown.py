@@ -161,11 +161,11 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
     if has_alg:
         header += ["V_p*/ALG", "> ALG"]
         align += ["r", "l"]
-    header.append("grad norm")
+    header.append("gradient norm")
     align.append("r")
     rows = []
     for r in rep.rows:
-        cells = [str(r.p), f"{r.inverse_depth:.4f}", f"{r.value:.6f}", _fmt(r.gain, "+.6f")]
+        cells = [str(r.p), f"{r.inv_p:.4f}", f"{r.value:.6f}", _fmt(r.gain, "+.6f")]
         if has_gs:
             cells.append(_fmt(r.ratio_gs, ".4f"))
         if has_alg:

@@ -50,7 +50,7 @@ __all__ = [
 ]
 
 TABLE_FORMAT = "leadline.table"
-TABLE_VERSION = 2  # 2: extrapolation by fit families with back-tests
+TABLE_VERSION = 3  # 2: extrapolation by fit families with back-tests; 3: key "format_version" (was "version")
 
 
 class InMemoryStudy:
@@ -118,13 +118,13 @@ class DepthRow:
     beta: tuple[float, ...]
 
     @property
-    def inverse_depth(self) -> float:
+    def inv_p(self) -> float:
         return 1.0 / self.p
 
     def to_json(self) -> dict:
         return {
             "p": self.p,
-            "inv_p": self.inverse_depth,
+            "inv_p": self.inv_p,
             "value": self.value,
             "gain": self.gain,
             "ratio_gs": self.ratio_gs,
@@ -179,7 +179,7 @@ class StudyReport:
     def to_json(self) -> dict:
         return {
             "format": TABLE_FORMAT,
-            "version": TABLE_VERSION,
+            "format_version": TABLE_VERSION,
             "study": self.name,
             "units": "energy density per spin, dimensionless; E[H(z)H(z')] = n xi(R); V_p is maximized",
             "note": self.note,

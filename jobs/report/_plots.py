@@ -84,8 +84,8 @@ def _draw_zoom(ax, zoomed) -> None:
     x_max = 1.15 / min(firsts)
     inset = ax.inset_axes([0.47, 0.47, 0.5, 0.48])
     for rep, color in zoomed:
-        rows = [r for r in rep.rows if r.inverse_depth <= x_max]
-        inset.plot([r.inverse_depth for r in rows], [r.value for r in rows], "o", color=color, ms=4)
+        rows = [r for r in rep.rows if r.inv_p <= x_max]
+        inset.plot([r.inv_p for r in rows], [r.value for r in rows], "o", color=color, ms=4)
         _draw_extrapolation(inset, rep.extrapolation, color, None)
         if rep.references.ground_state is not None:
             inset.axhline(rep.references.ground_state, color=color, ls="--", lw=1.0)
@@ -138,7 +138,7 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         color = colors[i % len(colors)]
         if not rep.rows:
             continue
-        x = np.array([r.inverse_depth for r in rep.rows])
+        x = np.array([r.inv_p for r in rep.rows])
         y = np.array([r.value for r in rep.rows])
         if rep.kind == "sparse":
             # a satisfied fraction is not an energy: show the scaled value, which tends
