@@ -32,7 +32,7 @@ def optimize_command(
         None, "--restarts", help="Extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, else 0)."
     ),
     seed: int = typer.Option(0, "--seed", help="Seed of the random and perturbed starts (results are reproducible)."),
-    gradient_tol: float = typer.Option(1e-7, "--gradient-tol", help="Stop when the largest gradient component is below this."),
+    gradient_tol: float = typer.Option(1e-7, "--gradient-tol", help="Stop when the gradient norm (the largest component of dV/d(gamma, beta)) is below this."),
     max_iterations: int = typer.Option(500, "--max-iterations", help="Iteration cap of each local quasi-Newton run."),
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
     memory_mib: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mib", help="Memory budget of one chunk task in MiB."),
