@@ -333,7 +333,7 @@ class StudyStore:
         if depths:
             notice(
                 f"store {self.path} was written by an older leadline (schema {version}): finished depths are "
-                f"kept; {dropped} cached passes of {len(depths)} depths no longer apply and were dropped "
+                f"kept; {dropped} saved passes of {len(depths)} depths no longer apply and were dropped "
                 "(an unfinished depth restarts from its recorded start)"
             )
 
