@@ -54,7 +54,7 @@ def _emit_extrapolation(emit, label: str, ex: Extrapolation) -> None:
     """CSV records of one extrapolation (see :func:`render_csv`)."""
     for w in ex.fits:
         f = w.fit
-        span = f"{f.depths[0]}-{f.depths[-1]}"
+        span = f"{f.depths[0]}..{f.depths[-1]}"
         params = ("coefficients " + " ".join(f"{c:.6g}" for c in f.params) if f.is_polynomial
                   else f"A = {f.params[1]:.6g}, alpha = {f.params[2]:.6g}")
         emit(ensemble=label, record="fit", quantity="V_inf", value=f.limit, uncertainty=f.standard_error(math.inf),
@@ -62,7 +62,7 @@ def _emit_extrapolation(emit, label: str, ex: Extrapolation) -> None:
              backtest_error=w.backtest_error, status=w.status, note="; ".join(x for x in (params, w.reason) if x))
         if w.backtest is not None:
             bt = w.backtest
-            fitted = f"{bt.fit.depths[0]}-{bt.fit.depths[-1]}"
+            fitted = f"{bt.fit.depths[0]}..{bt.fit.depths[-1]}"
             for p, pred, err in zip(bt.held_out, bt.predicted, bt.errors):
                 emit(ensemble=label, record="backtest", quantity="V_p", p=p, inv_p=1.0 / p, value=pred,
                      backtest_error=err, family=w.family, k=f.k, depths=fitted, status=w.status,
