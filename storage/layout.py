@@ -74,7 +74,7 @@ VERSION = "format_version"
 OLD_VERSION = "schema_version"
 #: layout version this release writes
 SCHEMA_VERSION = 3
-#: layout versions this release reads (1: one array per cached pass; 2: old attribute
+#: layout versions this release reads (1: one array per saved pass; 2: old attribute
 #: names; both upgraded when the store is opened for writing)
 READABLE_SCHEMAS = (1, 2, 3)
 #: ensemble attribute with the GS/ALG computed by `leadline reference --store`
@@ -149,7 +149,7 @@ def parse_depth_name(name: str) -> int | None:
 
 
 def batch_name(n: int) -> str:
-    """Array name of the n-th batch of cached passes of a depth: 'b000001'."""
+    """Array name of the n-th batch of saved passes of a depth: 'b000001'."""
     return f"b{int(n):06d}"
 
 

@@ -313,7 +313,7 @@ class StudyStore:
     def _upgrade_1_to_2(self, notice) -> None:
         """Schema 1 -> 2: keep every depth record, drop the pass caches and ledgers of the old layout.
 
-        Old cached passes were keyed for the full-contour iteration (one plan
+        Old saved passes were keyed for the full-contour iteration (one plan
         per depth); the current iteration never asks for them, and reusing them
         would mix results of different plans.  Safe to repeat after a kill.
         """
@@ -395,7 +395,7 @@ class StudyStore:
         """The working record of depth p (created on first use; sessions counted).
 
         ``plan`` (optional) is recorded in the depth's attribute "plan" for
-        information only: every cached pass and ledger carries its own plan
+        information only: every saved pass and ledger carries its own plan
         (each step of an evaluation may have its own).
         """
         ens = self._ensemble_group(label)
@@ -443,7 +443,7 @@ class StudyStore:
 
 
 class _Entry:
-    """Index entry of one cached pass: which batch, where in it, and its record."""
+    """Index entry of one saved pass: which batch, where in it, and its record."""
 
     __slots__ = ("batch", "record")
 
@@ -455,7 +455,7 @@ class _Entry:
 class DepthStore:
     """Pass batches, pending passes and in-flight ledger of one depth of one ensemble.
 
-    Cached passes are written in batches (one array per batch); computed passes
+    Saved passes are written in batches (one array per batch); computed passes
     wait in memory until :meth:`flush` (called by the checkpoint layer when the
     policy says so).  The index of the batches on disk is read once, at open.
     """
@@ -550,7 +550,7 @@ class DepthStore:
         if problem is None:
             self._seen[key] = (float(record.get("wall_s", 0.0)), float(record.get("paths", 0.0)))
             return total
-        self.note_repair("pass cache entry dropped", key, detail=problem)
+        self.note_repair("saved pass dropped", key, detail=problem)
         del self._index[key]
         return None
 

@@ -221,7 +221,7 @@ def test_damaged_pass_cache_entry_is_dropped_and_recomputed(tmp_path):
         assert np.array_equal(again, good)
         # this was the last pass in flight: its verified ledger still holds every chunk
         assert runner.computed == []
-        assert depth.group.attrs["repairs"][0]["what"] == "pass cache entry dropped"
+        assert depth.group.attrs["repairs"][0]["what"] == "saved pass dropped"
         assert depth.cached_pass(key, backward=False) is not None  # stored again
 
 
