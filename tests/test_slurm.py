@@ -141,7 +141,7 @@ xi = "2:0.5"
 def test_sweep_killed_on_slurm_resumes_to_in_process_values(batch, tmp_path):
     config, tag = batch
     (tmp_path / "study.toml").write_text(
-        SPEC.format(store="batch.zarr", compute=f'executor = "batch"\ncluster-config = "{config}"'))
+        SPEC.format(store="batch.zarr", compute=f'executor = "batch"\nbatch-file = "{config}"'))
     (tmp_path / "ref").mkdir()
     (tmp_path / "ref" / "study.toml").write_text(SPEC.format(store="ref.zarr", compute='executor = "inprocess"'))
     ref = _run(["sweep", str(tmp_path / "ref" / "study.toml"), "--quiet"])
