@@ -356,7 +356,7 @@ class Fit:
             "family": self.family,
             "window": self.k,
             "depths": list(self.depths),
-            "limit": _clean(self.limit),
+            "v_inf": _clean(self.limit),
             "rms_residual": _clean(self.rms_residual),
         }
         if self.is_polynomial:
@@ -840,8 +840,8 @@ class Extrapolation:
             "declined": self.declined,
             "family_values": {fam: _clean(v) for fam, (_, v) in self.family_values().items()},
             "uncertain_depths": self.uncertain_depths,
-            "limit": self.limit.to_json() if self.limit else None,
-            "limit_ratio_gs": (self.limit.scaled(1.0 / self.ground_state).to_json()
+            "v_inf": self.limit.to_json() if self.limit else None,
+            "ratio_gs_inf": (self.limit.scaled(1.0 / self.ground_state).to_json()
                                if self.limit and self.ground_state else None),
             "at_depth": [
                 {"p": p, "value": est.to_json(), "ratio_gs": ratio[p].to_json() if p in ratio else None}

@@ -181,7 +181,7 @@ def test_json_is_one_object_with_the_stored_values(study, report):
     assert "not bounds" in obj["note"]
     sk = obj["ensembles"][0]
     assert sk["extrapolation"]["fits"][0]["family"] == "linear-in-1/p"
-    assert sk["extrapolation"]["limit"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
+    assert sk["extrapolation"]["v_inf"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
 
 
 @pytest.fixture()
