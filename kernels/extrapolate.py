@@ -819,7 +819,7 @@ class Extrapolation:
         return {
             "families": {f.name: f.description for f in FAMILIES.values()},
             "families_used": self.families_used,
-            "holdout": self.holdout,
+            "held_out_count": self.holdout,  # how many last depths each back-test holds out
             "weight_rule": (
                 f"weight = 1 / (1 + (back-test error / scale)^{WEIGHT_POWER}) / (windows of the family), "
                 f"scale = max({SCALE_GAIN_FRACTION:g} x held-out gain, {SCALE_BEST_FACTOR:g} x smallest "
