@@ -58,13 +58,16 @@ def _angles(gamma, beta) -> tuple[np.ndarray, np.ndarray]:
         raise InputError(f"gamma and beta need the same number p >= 1 of angles, got {g.size} and {b.size}")
     if not (np.all(np.isfinite(g)) and np.all(np.isfinite(b))):
         raise InputError("angles must be finite")
+    from .angles import check_periodic_angles
+
+    check_periodic_angles(b, "beta", "beta_t", "pi")
     return g, b
 
 
 def _start(angles, depth: int):
     """An angle file path, an AngleSet or (gamma, beta) of depth p-1 or p -> AngleSet or None."""
     from .angles import AngleSet
-    from .parsing import warm_start
+    from .parsing import check_start_depth, warm_start
 
     if angles is None:
         return None
@@ -75,8 +78,7 @@ def _start(angles, depth: int):
     else:
         g, b = _angles(*angles)
         start = AngleSet(p=g.size, gamma=g, beta=b, xi=None, value=None)
-    if start.p not in (depth - 1, depth):
-        raise InputError(f"angles have depth {start.p}; need depth {depth - 1} (warm start) or {depth}")
+    check_start_depth(start.p, depth, "angles")
     return start
 
 
@@ -91,9 +93,9 @@ def _executor(executor: str, scheduler: str | None, workers: int | None, memory_
 
 
 def _budget(memory_mib: float) -> int:
-    if not memory_mib > 0:
-        raise InputError("memory_mib must be positive")
-    return int(memory_mib * 2**20)
+    from .parsing import check_memory_mib
+
+    return int(check_memory_mib(memory_mib, "memory_mib") * 2**20)
 
 
 # ----------------------------------------------------------------- results
@@ -205,11 +207,13 @@ def evaluate(
     """
     from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
+    from .cost import check_depth
     from .parsing import check_representable, check_underflow
 
     mix = _mixture(xi)
     g, b = _angles(gamma, beta)
     check_representable(mix, g, "gamma", beta=b)  # the same range as the command line
+    check_depth(g.size, "gamma/beta")
     plan = plan_chunks(g.size, _budget(memory_mib))
     with _executor(executor, scheduler, workers, memory_mib) as ex:
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
@@ -291,10 +295,12 @@ def optimize(
         full optimizer record of the last depth), ``.ladder``; ``.to_json()``
         is what ``leadline optimize --json`` prints.
     """
+    from .cost import check_depth
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
     depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
+    check_depth(depth, "depth")
     initial = _start(angles, depth)
     budget = _budget(memory_mib)
     with _executor(executor, scheduler, workers, memory_mib) as ex:
@@ -338,8 +344,11 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     """
     from leadline.kernels.sparse import evaluate_sparse as kernel
 
+    from .angles import check_periodic_angles
+
     q, D = _sparse_problem(q, degree)
     g, b = _angles(gamma, beta)
+    check_periodic_angles(g, "gamma", "gamma_t", "2 pi")
     return kernel(q, D, g, b, gradient=gradient)
 
 
@@ -410,7 +419,7 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
         value, uncertainty, ...), ``.overlap_gap``; ``.to_json()`` (plus
         ``"cached"``) is what ``leadline reference --json`` prints.
     """
-    from leadline.kernels.reference import reference_energies as compute
+    from leadline.kernels.reference import ReferenceRangeError, reference_energies as compute
 
     from . import reference_cache
     from .parsing import check_reference_settings
@@ -423,7 +432,10 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
     key = reference_cache.cache_key(mix.spec(), gs_tol, alg_tol, max_steps)
     refs = reference_cache.load(directory, key) if directory is not None else None
     if refs is None:
-        refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        try:
+            refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        except ReferenceRangeError as exc:
+            raise InputError(str(exc)) from None
         if directory is not None:
             with contextlib.suppress(OSError):
                 reference_cache.store(directory, key, refs)

@@ -36,6 +36,7 @@ if TYPE_CHECKING:  # the executor module (asyncio, Dask hooks) loads when a comm
     from leadline.cluster.executor import Executor
 
 from .errors import InputError
+from .parsing import check_memory_mib
 
 __all__ = [
     "EXECUTOR_CHOICES",
@@ -115,8 +116,7 @@ def settings_from_options(
         raise InputError(f"--workers must be >= 1, got {workers}")
     if threads_per_worker < 1:
         raise InputError(f"--threads-per-worker must be >= 1, got {threads_per_worker}")
-    if not (memory_mib > 0 and memory_mib < float("inf")):
-        raise InputError(f"--memory-mib must be a positive finite number of MiB, got {memory_mib}")
+    check_memory_mib(memory_mib)
     if scheduler is not None and batch_file is not None:
         raise InputError("give either --scheduler or --batch-file, not both")
     if scheduler is not None and executor not in ("auto", "scheduler"):

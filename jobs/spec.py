@@ -64,7 +64,7 @@ from leadline.kernels.mixture import MixtureError, parse_mixture
 from leadline.storage.layout import SPEC_FORMAT_VERSION, current_spec
 
 from .errors import InputError
-from .parsing import MAX_GRADIENT_TOL
+from .parsing import MAX_GRADIENT_TOL, MIN_MEMORY_MIB
 from .renames import renamed_spec_key
 
 __all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
@@ -361,6 +361,8 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
     workers = _int(comp, "compute", "workers", None, minimum=1)
     threads = _int(comp, "compute", "threads-per-worker", 1, minimum=1)
     memory_mib = _float(comp, "compute", "memory-mib", 256.0, positive=True)
+    if memory_mib < MIN_MEMORY_MIB:
+        raise InputError(f"{_where('compute', 'memory-mib')} must be >= {MIN_MEMORY_MIB:g} MiB (the memory of one chunk task), got {memory_mib!r}")
     interval_s = _float(ckpt, "checkpoint", "interval-s", 30.0)
     if interval_s < 0:
         raise InputError(f"[checkpoint] interval-s must be >= 0 seconds, got {interval_s!r}")
@@ -404,7 +406,7 @@ def load_spec(path: str | os.PathLike) -> StudySpec:
     """Read and validate the spec file at ``path`` (InputError on any problem)."""
     path = Path(path)
     try:
-        text = path.read_text()
+        text = path.read_text(encoding="utf-8-sig")  # UTF-8, a leading BOM accepted
     except FileNotFoundError:
         raise InputError(f"spec file {path} does not exist") from None
     except (OSError, UnicodeDecodeError) as exc:

@@ -17,6 +17,7 @@ import numpy as np
 
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.exact import plan_chunks
+from leadline.kernels.numtext import fmt
 from leadline.cluster import CheckpointedPasses, CheckpointStats
 from leadline.storage import StudyStore
 from leadline.storage.faults import crash_point
@@ -132,6 +133,6 @@ def depth_line(line: dict) -> str:
     passes = (f"{s['passes_computed']} passes computed, {s['passes_reused']} reused, "
               if s["passes_requested"] else "")
     return (
-        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  gradient norm {r['gradient_norm']:.1e}  "
+        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  gradient norm {r['gradient_norm']:.1e}  "
         f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
     )

@@ -11,6 +11,8 @@ from typing import Optional
 
 import typer
 
+from leadline.kernels.numtext import fmt
+
 from ..errors import InputError
 
 METHODS = ("exact", "bath")
@@ -66,8 +68,8 @@ def evaluate_bath_command(mix, g, b, fock, bond, basis, as_json: bool) -> None:
     typer.echo("\n".join([
         f"xi(x)      = {mix.label()}",
         f"depth p    = {g.size}",
-        f"V_p        = {res.value:.12f} +- {res.error_estimate:.1e} (bosonic bath, {r.basis} modes)",
+        f"V_p        = {fmt(res.value, 12)} +- {res.error_estimate:.1e} (bosonic bath, {r.basis} modes)",
         f"truncation = Fock levels {max(r.fock)}..{min(r.fock)}, bond <= {r.chi} (reached {r.max_bond}), discarded weight {r.discarded:.1e}",
-        f"check run  = Fock levels {max(c.fock)}..{min(c.fock)}, bond <= {c.chi}: V_p = {c.value:.12f}",
+        f"check run  = Fock levels {max(c.fock)}..{min(c.fock)}, bond <= {c.chi}: V_p = {fmt(c.value, 12)}",
         f"time       = {r.wall_time + c.wall_time:.2f} s",
     ]))

@@ -19,6 +19,7 @@ import json
 import typer
 
 from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
+from leadline.kernels.numtext import fmt
 
 from ..errors import InputError
 from ..sparse_ensemble import check_sparse, ensemble_json
@@ -70,7 +71,7 @@ def _report(ev) -> str:
     lines = [
         f"ensemble   = Max-{ev.q}-XORSAT{' (MaxCut)' if ev.q == 2 else ''}, {int(ev.degree)}-regular, large girth",
         f"depth p    = {ev.p}",
-        f"{name} = {ev.value:.12f}",
+        f"{name} = {fmt(ev.value, 12)}",
     ]
     if ev.gradient is not None:
         lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
@@ -99,7 +100,7 @@ def transform_map(settings):
 def evaluate_xorsat(sparse_q, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
                     settings=None) -> None:
     """`leadline evaluate --sparse-q Q --degree D ...`: validate everything, evaluate, print."""
-    from ..angles import read_angles
+    from ..angles import check_periodic_angles, read_angles
     from ..parsing import angle_pair
 
     q, D = check_sparse(sparse_q, degree, xi)
@@ -110,6 +111,7 @@ def evaluate_xorsat(sparse_q, degree, *, xi, gamma, beta, angles=None, gradient=
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
+    check_periodic_angles(g, "--angles" if angles is not None else "--gamma", "gamma_t", "2 pi")
     check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta", gradient=gradient)
     with transform_map(settings) as run_map:
         ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
@@ -155,7 +157,7 @@ def optimize_xorsat(sparse_q, degree, *, xi, depth, restarts=None, seed=0, gradi
     header = [
         f"ensemble       = Max-{q}-XORSAT{' (MaxCut)' if q == 2 else ''}, {D}-regular, large girth",
         f"depth p        = {depth}",
-        f"{name} = {result.value:.10f}",
+        f"{name} = {fmt(result.value, 10)}",
     ]
     evaluations = f"{sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))

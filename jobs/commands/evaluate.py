@@ -8,12 +8,13 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import read_angles
-from ..cost import COST_NOTE_SECONDS, check_cost
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
-from ..parsing import angle_pair, check_representable, check_underflow, file_mixture, mixture_arg
+from ..parsing import angle_pair, check_memory_mib, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -49,8 +50,7 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    if not memory_mib > 0 or memory_mib == float("inf"):
-        raise InputError(f"--memory-mib must be a positive finite number of MiB, got {memory_mib}")
+    check_memory_mib(memory_mib)
     angle_set = None
     if angles is not None:
         if gamma is not None or beta is not None:
@@ -74,6 +74,7 @@ def evaluate_command(
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
         return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
+    check_depth(g.size, "--angles" if angle_set is not None else "--gamma/--beta")
     plan = plan_chunks(g.size, int(memory_mib * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")
@@ -91,8 +92,8 @@ def evaluate_command(
 
 
 def _value_text(value: float) -> str:
-    """Twelve decimals, or twelve significant digits for a nonzero value too small to show them."""
-    return f"{value:.12f}" if value == 0.0 or abs(value) >= 1e-6 else f"{value:.12e}"
+    """Twelve decimals where they show the value, else scientific notation (kernels/numtext.py)."""
+    return fmt(value, 12)
 
 
 def report(result) -> str:

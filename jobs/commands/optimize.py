@@ -8,14 +8,14 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
 from ..api import optimize_ladder
-from ..cost import COST_NOTE_SECONDS, check_cost
-from ..errors import InputError
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..paths import check_output_file
-from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from ..parsing import check_memory_mib, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 from . import _sparse as sparse
 
 
@@ -54,9 +54,10 @@ def optimize_command(
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
-    if not (memory_mib > 0 and memory_mib < float("inf")):
-        raise InputError(f"--memory-mib must be a positive finite number of MiB, got {memory_mib}")
+    check_memory_mib(memory_mib)
     depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
+    if not sparse.sparse_requested(sparse_q, degree):
+        check_depth(depth, "--depth")
     initial = warm_start(start, depth)
     if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(sparse_q, degree):
         # a file written by `optimize --sparse-q`: continue on its own sparse ensemble
@@ -98,7 +99,7 @@ def optimize_command(
     if as_json:
         typer.echo(json.dumps(run.to_json()))
         return
-    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
 

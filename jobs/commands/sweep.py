@@ -16,6 +16,7 @@ import typer
 
 from leadline import __version__ as _version
 from leadline.kernels.exact import IMPLEMENTATION_ENV, resolve_implementation
+from leadline.kernels.numtext import fmt
 from leadline.storage.errors import StoreError
 
 from .. import compute
@@ -277,7 +278,7 @@ def status_text(progress: dict) -> str:
         done = e["done"]
         lines.append(f"  {e['label']}")
         if done:
-            values = "  ".join(f"p{d['p']}={d['value']:.6f}" for d in done)
+            values = "  ".join(f"p{d['p']}={fmt(d['value'])}" for d in done)
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
         if r is not None:

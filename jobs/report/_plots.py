@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from leadline.kernels.extrapolate import FAMILIES, Extrapolation
+from leadline.kernels.numtext import fmt
 from leadline.kernels.sparse import scaled_value
 
 from ._model import StudyReport
@@ -108,7 +109,7 @@ def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None
         ax.plot([1.0 / p for p in bt.held_out], bt.actual, "o", mfc="none", mec=color, ms=10, mew=1.0)
     if ex.limit is not None:
         lim = ex.limit
-        text = f"{label}: V_inf ~ {lim.central:.4f} ({lim.low:.4f}..{lim.high:.4f}, estimate)" if label else None
+        text = f"{label}: V_inf ~ {fmt(lim.central, 4)} ({fmt(lim.low, 4)}..{fmt(lim.high, 4)}, estimate)" if label else None
         ax.errorbar([0.0], [lim.central], yerr=[[lim.central - lim.low], [lim.high - lim.central]], fmt="s",
                     color=color, capsize=4, ms=5, label=text)
 
@@ -215,10 +216,10 @@ def value_figure(report: StudyReport):
         refs = rep.references
         if refs.ground_state is not None:
             ax.axhline(refs.ground_state, color=color, ls="--", lw=1.0,
-                       label=f"  GS = {refs.ground_state:.4f} ({refs.ground_state_origin})")
+                       label=f"  GS = {fmt(refs.ground_state, 4)} ({refs.ground_state_origin})")
         if refs.threshold is not None:
             ax.axhline(refs.threshold, color=color, ls=":", lw=1.2,
-                       label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
+                       label=f"  ALG = {fmt(refs.threshold, 4)} ({refs.threshold_origin})")
     limits = value_axis_limits(report)
     if limits is not None:
         ax.set_ylim(*limits)
