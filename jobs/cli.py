@@ -153,6 +153,13 @@ def main(argv: list[str] | None = None) -> None:
         if "ClickException" in kinds:
             print(f"leadline: error: {exc.format_message()}", file=sys.stderr)
             sys.exit(getattr(exc, "exit_code", 1))
+        if isinstance(exc, OSError):
+            # the system refused a read or write (full disk, file-size limit, I/O error): one line, exit 1;
+            # outputs are written through a temporary file and a rename, so no half-written file is left
+            from .paths import os_error_text
+
+            print(f"leadline: error: {os_error_text(exc)}", file=sys.stderr)
+            sys.exit(1)
         raise
     if isinstance(rv, int) and rv:
         sys.exit(rv)

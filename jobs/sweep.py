@@ -10,6 +10,8 @@ cluster/checkpointed.py for why this reproduces the uninterrupted numbers).
 
 from __future__ import annotations
 
+import contextlib
+
 import time
 from typing import Callable
 
@@ -59,11 +61,22 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     """Max-q-XORSAT on a D-regular hypertree: in process, checkpointed per depth only."""
     from leadline.kernels.sparse import optimize_sparse
 
+    from .commands import _sparse as sparse_cli
+
     kwargs = {} if spec.restarts is None else {"restarts": spec.restarts}
-    result = optimize_sparse(
-        ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
-        seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations, **kwargs,
-    )
+    chunked = contextlib.nullcontext(None)
+    if not sparse_cli.fits_in_memory(p, gradient=True):
+        # past memory: every evaluation on chunked vectors in the folder beside the store
+        path = sparse_cli.plan_sparse_path(p, executor.settings, str(sparse_cli.sweep_scratch(spec.store)), True,
+                                           f"ensemble {ens.label!r}")
+        chunked = sparse_cli.scratch_runner(path, executor.settings, label=f"{ens.label}-p{p}",
+                                            client=getattr(executor, "client", None))
+    with chunked as run_chunked:
+        result = optimize_sparse(
+            ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
+            seed=spec.seed, gradient_tol=spec.gradient_tol, max_iterations=spec.max_iterations,
+            evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, **kwargs,
+        )
     return result, CheckpointStats()
 
 

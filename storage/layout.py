@@ -5,7 +5,8 @@ without leadline in docs/store.md::
 
     <store>/                                 root group
         attrs: format, format_version, name, spec, spec_toml, created_utc, writer,
-               kernel, migrated (list of layout upgrades, when any)
+               kernel, integrity (the store's record of itself: storage/integrity.py),
+               migrated (list of layout upgrades, when any)
     <store>/ensembles/<label>/               one group per ensemble of the spec
         attrs: label, kind, xi, q, degree, reference (as the spec gives it)
                [, computed_reference (written by `leadline reference --store`)]
@@ -29,11 +30,11 @@ without leadline in docs/store.md::
 keeps them).  Schema version 1 (before the growing-contour iteration) stored one
 array per pass, ``passes/<fingerprint>-h<n_high>r<rows>``; its finished depths
 read unchanged, its pass caches are dropped when the store is resumed.  Schema 2
-named the version attribute ``schema_version``, the computed reference energies
+had no integrity record (storage/integrity.py).  Schemas 1-3 named the version attribute ``schema_version``, the computed reference energies
 ``references``, the stored spec's keys ``gtol``, ``maxiter``, ``memory_mb``,
 ``cluster_config`` (and ``spec_version``) and a session's reused passes
 ``passes_from_cache``: read under both names, renamed in place when the store is
-opened for writing (:data:`RENAMED_IN_3`).
+opened for writing (:data:`RENAMED_IN_4`).
 """
 
 from __future__ import annotations
@@ -50,7 +51,7 @@ __all__ = [
     "OLD_VERSION",
     "SCHEMA_VERSION",
     "COMPUTED_REFERENCE",
-    "RENAMED_IN_3",
+    "RENAMED_IN_4",
     "store_version",
     "current_spec",
     "READABLE_SCHEMAS",
@@ -73,15 +74,15 @@ FORMAT = "leadline.study"
 VERSION = "format_version"
 OLD_VERSION = "schema_version"
 #: layout version this release writes
-SCHEMA_VERSION = 3
-#: layout versions this release reads (1: one array per saved pass; 2: old attribute
-#: names; both upgraded when the store is opened for writing)
-READABLE_SCHEMAS = (1, 2, 3)
+SCHEMA_VERSION = 4
+#: layout versions this release reads (1: one array per saved pass; 2: no integrity record;
+#: 3: old attribute names; all upgraded when the store is opened for writing)
+READABLE_SCHEMAS = (1, 2, 3, 4)
 #: ensemble attribute with the GS/ALG computed by `leadline reference --store`
 COMPUTED_REFERENCE = "computed_reference"
 
-#: names schema 3 changed: (where, old name) -> new name
-RENAMED_IN_3 = {
+#: names schema 4 changed: (where, old name) -> new name
+RENAMED_IN_4 = {
     ("root", "schema_version"): VERSION,
     ("ensemble", "references"): COMPUTED_REFERENCE,
     ("spec", "spec_version"): "format_version",
@@ -103,7 +104,7 @@ def store_version(attrs: dict):
 def _renamed(table: dict, where: str) -> dict:
     out = {}
     for key, value in table.items():
-        out[RENAMED_IN_3.get((where, key), key)] = value
+        out[RENAMED_IN_4.get((where, key), key)] = value
     return out
 
 

@@ -43,6 +43,7 @@ def evaluate_command(
     fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
     bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
     basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
+    scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -64,7 +65,9 @@ def evaluate_command(
     if sparse.sparse_requested(sparse_q, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
         return sparse.evaluate_xorsat(sparse_q, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
-                                          gradient=gradient, as_json=as_json, settings=settings)
+                                          gradient=gradient, as_json=as_json, settings=settings, scratch=scratch)
+    if scratch is not None:
+        raise InputError("--scratch is for sparse ensembles (--sparse-q Q --degree D); the dense evaluation checkpoints through `leadline sweep`")
     if angle_set is not None:
         mix = file_mixture(xi, angle_set, angles)
         g, b = angle_set.gamma, angle_set.beta

@@ -45,6 +45,7 @@ def optimize_command(
     threads_per_worker: int = compute.threads_option(),
     batch_file: Optional[str] = compute.batch_file_option(),
     quiet: bool = compute.quiet_option(),
+    scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -65,7 +66,10 @@ def optimize_command(
     if sparse.sparse_requested(sparse_q, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
         return sparse.optimize_xorsat(sparse_q, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gradient_tol=gradient_tol,
-                                          max_iterations=max_iterations, output=output, as_json=as_json, start=start, settings=settings)
+                                          max_iterations=max_iterations, output=output, as_json=as_json, start=start, settings=settings,
+                                          scratch=scratch)
+    if scratch is not None:
+        raise InputError("--scratch is for sparse ensembles (--sparse-q Q --degree D)")
     mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")

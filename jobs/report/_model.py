@@ -95,10 +95,14 @@ def load_study(path: str | Path) -> Any:
         from leadline.storage import open_study
     except ImportError:  # pragma: no cover - the store package is part of the tool
         raise InputError("this installation has no study store support (leadline.storage.open_study)") from None
+    from leadline.storage.errors import StoreDamagedError
+
     try:
         return open_study(path)
     except InputError:
         raise
+    except StoreDamagedError as exc:  # its message names the store, the parts and what to do
+        raise InputError(str(exc)) from None
     except Exception as exc:  # any failure to open is a bad path from the user's point of view
         raise InputError(f"cannot read study store {str(path)!r}: {exc}") from None
 

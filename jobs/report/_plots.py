@@ -7,6 +7,7 @@ module level: the command line must start without it (tests/test_startup.py).
 from __future__ import annotations
 
 import math
+import os
 from pathlib import Path
 
 import numpy as np
@@ -178,11 +179,25 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
 
     output = Path(output)
     paths = [output, angle_plot_path(output)]
-
-    fig, _ = value_figure(report)
-    fig.savefig(paths[0], dpi=FIGURE_DPI)
-    plt.close(fig)
-    _angle_figure(report, paths[1])
+    # both figures are drawn into temporary files beside their final names and moved into place
+    # only when both are complete: a failed write (full disk, file-size limit) leaves no half file
+    temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in paths]
+    try:
+        fig, _ = value_figure(report)
+        fig.savefig(temps[0], dpi=FIGURE_DPI, format="png")
+        plt.close(fig)
+        _angle_figure(report, temps[1])
+        for tmp, final in zip(temps, paths):
+            os.replace(tmp, final)
+    except OSError as exc:
+        if exc.errno:
+            failed = OSError(exc.errno, exc.strerror, str(output))
+            failed.add_note("no figure was written")
+            raise failed from None
+        raise
+    finally:
+        for tmp in temps:
+            tmp.unlink(missing_ok=True)
     return paths
 
 
@@ -274,5 +289,5 @@ def _angle_figure(report: StudyReport, path: Path) -> None:
     for ax_ in axes[-1]:
         ax_.set_xlabel("(t - 1/2)/p  (position in the schedule)")
     fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.35 / (height * n), bottom=0.55 / (height * n), hspace=0.45, wspace=0.2)
-    fig.savefig(path, dpi=FIGURE_DPI)
+    fig.savefig(path, dpi=FIGURE_DPI, format="png")
     plt.close(fig)
