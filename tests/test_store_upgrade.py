@@ -161,8 +161,9 @@ SCHEMA2_REFERENCES = {
 }
 
 
-def write_schema2_store(path: Path) -> None:
-    """A schema-2 store with the attribute names of that layout: a p = 1..2 study with p = 1 done."""
+def write_old_names_store(path: Path, schema: int) -> None:
+    """A store with the attribute names of schemas 2-3 (schema 2: no integrity record; schema 3: a
+    record over the old names): a p = 1..2 study with p = 1 done."""
     from leadline.jobs.cli import main
 
     spec = path.parent / "s2.toml"
@@ -178,7 +179,7 @@ def write_schema2_store(path: Path) -> None:
     old_spec["compute"] = {"executor": "inprocess", "scheduler": None, "cluster_config": None, "workers": None,
                            "threads_per_worker": 1, "memory_mb": 0.016}
     del root.attrs["format_version"]
-    root.attrs.update({"schema_version": 2, "spec": old_spec})
+    root.attrs.update({"schema_version": schema, "spec": old_spec})
     ens = root["ensembles/sk"]
     from leadline.kernels.reference import METHOD_VERSION
 
@@ -188,16 +189,24 @@ def write_schema2_store(path: Path) -> None:
     session = timings["this_session"]
     session["passes_from_cache"] = session.pop("passes_reused")
     depth.attrs["timings"] = timings
+    from leadline.storage import integrity as I
+
+    if schema == 2:
+        del root.attrs[I.RECORD]
+    else:  # the record as that release wrote it: over the old spec
+        record = root.attrs[I.RECORD]
+        root.attrs[I.RECORD] = dict(record, identity=dict(record["identity"], spec=I.digest(old_spec)))
 
 
-def test_schema2_store_reads_with_new_names_and_resume_renames_in_place(tmp_path, capsys):
+@pytest.mark.parametrize("schema", [2, 3])
+def test_old_names_store_reads_with_new_names_and_resume_renames_in_place(tmp_path, capsys, schema):
     from leadline.jobs.cli import main
 
     path = tmp_path / "s2.zarr"
-    write_schema2_store(path)
+    write_old_names_store(path, schema)
     before = _tree(path)
     study = open_study(path)  # reading renames nothing on disk, but speaks the new names
-    assert study.format_version == 2
+    assert study.format_version == schema
     assert study.spec["optimizer"]["gradient_tol"] == 1e-07 and study.spec["optimizer"]["max_iterations"] == 500
     assert study.spec["compute"]["memory_mib"] == 0.016 and "cluster_config" not in study.spec["compute"]
     assert study.references("sk").ground_state == 0.763166
@@ -212,8 +221,8 @@ def test_schema2_store_reads_with_new_names_and_resume_renames_in_place(tmp_path
     assert capsys.readouterr().err == ""  # renaming loses nothing: nothing to say
     root = zarr.open_group(str(path), mode="r")
     attrs = root.attrs.asdict()
-    assert attrs["format_version"] == L.SCHEMA_VERSION == 3 and "schema_version" not in attrs
-    assert attrs["migrated"][-1]["from"] == 2 and attrs["migrated"][-1]["to"] == 3
+    assert attrs["format_version"] == L.SCHEMA_VERSION == 4 and "schema_version" not in attrs
+    assert [(m["from"], m["to"]) for m in attrs["migrated"]] == ([(2, 3)] if schema == 2 else []) + [(3, 4)]
     spec = attrs["spec"]
     assert spec["format_version"] == 2 and "spec_version" not in spec
     assert spec["optimizer"] == {"restarts": 0, "seed": 0, "gradient_tol": 1e-07, "max_iterations": 500}
@@ -222,6 +231,7 @@ def test_schema2_store_reads_with_new_names_and_resume_renames_in_place(tmp_path
     assert ens["computed_reference"]["ground_state"] == 0.763166 and "references" not in ens
     session = root["ensembles/sk/p001"].attrs["timings"]["this_session"]
     assert "passes_reused" in session and "passes_from_cache" not in session
-    # p = 2 ran after the upgrade: SK optimum of Quantum 6, 759 (2022), Table 1
+    # the renamed store passes its own integrity check; p = 2 ran after the upgrade: SK optimum of
+    # Quantum 6, 759 (2022), Table 1
     depths = open_study(path).depths("sk")
     assert [d["p"] for d in depths] == [1, 2] and depths[1]["value"] == pytest.approx(0.4075, abs=5e-5)
