@@ -74,7 +74,7 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     with chunked as run_chunked:
         result = optimize_sparse(
             ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
-            seed=spec.seed, gradient_tol=spec.gradient_tol, max_iterations=spec.max_iterations,
+            seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations,
             evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, **kwargs,
         )
     return result, CheckpointStats()
