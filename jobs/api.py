@@ -33,6 +33,7 @@ __all__ = [
     "optimize",
     "evaluate_sparse",
     "optimize_sparse",
+    "evaluate_bath",
     "reference_energies",
     "open_study",
     "study_dataframe",
@@ -313,6 +314,44 @@ def _sparse_problem(q, degree) -> tuple[int, int]:
     from .sparse_ensemble import check_sparse
 
     return check_sparse(q, degree, None)
+
+
+def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, tolerance: float = 1e-6,
+                  bond_cap: int = 256, fock_cap: int = 40, time_limit: float | None = None) -> "BathEvaluation":
+    """V_p(gamma, beta) from the bosonic-bath engine (any depth), to an error estimate <= tolerance.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture as ``q:w`` pairs (``"2:0.5"`` is SK).
+    gamma, beta : sequence of float
+        Angles in radians (t = 1 acts first).
+    tolerance : float
+        Error asked for; the engine tightens its truncation until its estimate meets it.
+    bond_cap, fock_cap : int
+        Largest bond dimension and most Fock levels per mode it may use.
+    time_limit : float or None
+        Wall seconds allowed.
+
+    Returns
+    -------
+    BathEvaluation
+        ``.value``, ``.error_estimate``, ``.limiting`` (the truncation that dominates what is
+        left), ``.run`` (its truncation); ``.to_json()`` as ``evaluate --method bath --json``.
+        Raises InputError (one line) when the tolerance cannot be met within the limits, or
+        when the value cannot be trusted.
+
+    Examples
+    --------
+    >>> import leadline
+    >>> round(leadline.evaluate_bath("2:0.5", [0.5], [0.392699]).value, 6)
+    0.303265
+    """
+    from .commands._evaluate_bath import run_checked
+
+    mix = _mixture(xi)
+    g, b = _angles(gamma, beta)
+    return run_checked(mix, g, b, tolerance=tolerance, bond=bond_cap, fock=fock_cap, time_limit=time_limit)
 
 
 def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float], *,

@@ -7,6 +7,7 @@ Python API (documented with examples in docs/api.md)::
     opt = leadline.optimize("3:1", 3)                       # optimal angles, pure 3-spin, p = 3
     leadline.evaluate_sparse(2, 3, [0.6155], [0.3927])      # MaxCut on 3-regular graphs
     leadline.optimize_sparse(3, 4, 2)
+    leadline.evaluate_bath("2:0.5", [0.5], [0.392699])        # bosonic-bath engine, error estimate <= 1e-6
     leadline.reference_energies("2:0.5")                    # ground state and algorithmic threshold
     study = leadline.open_study("runs/study.zarr")          # a study store, read-only
     leadline.study_dataframe(study)                         # finished depths as a pandas DataFrame
@@ -28,6 +29,7 @@ _API = (
     "optimize",
     "evaluate_sparse",
     "optimize_sparse",
+    "evaluate_bath",
     "reference_energies",
     "open_study",
     "study_dataframe",

@@ -40,9 +40,10 @@ def evaluate_command(
     batch_file: Optional[str] = compute.batch_file_option(),
     quiet: bool = compute.quiet_option(),
     method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP),
+    tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP),
     fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
     bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
-    basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
+    time_limit: Optional[float] = typer.Option(None, "--time-limit", help=bath.TIME_HELP),
     scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
@@ -60,8 +61,8 @@ def evaluate_command(
         if angle_set.ensemble is not None and xi is None and not sparse.sparse_requested(sparse_q, degree):
             # a file written by `optimize --sparse-q`: evaluate on its own sparse ensemble
             sparse_q, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
-    use_bath = bath.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
-                                     sparse=sparse.sparse_requested(sparse_q, degree))
+    use_bath = bath.check_method(method, tolerance, fock, bond, time_limit, gradient=gradient,
+                                 fixed_point=fixed_point, sparse=sparse.sparse_requested(sparse_q, degree))
     if sparse.sparse_requested(sparse_q, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
         return sparse.evaluate_xorsat(sparse_q, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
@@ -76,7 +77,7 @@ def evaluate_command(
         g, b = angle_pair(gamma, beta)
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
-        return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
+        return bath.evaluate_bath_command(mix, g, b, tolerance, fock, bond, time_limit, as_json, quiet)
     check_depth(g.size, "--angles" if angle_set is not None else "--gamma/--beta")
     plan = plan_chunks(g.size, int(memory_mib * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
