@@ -58,7 +58,7 @@ def chain(p_first: int, p_last: int, engine: dict, stages=None, log=_log, out_pa
                "gamma": [float(x) for x in r.gamma], "beta": [float(x) for x in r.beta]}
         rows.append(row)
         log(f"p = {p}: V = {r.value:.6f} +- {r.error_estimate:.1e} (published {PUBLISHED.get(p)}), "
-            f"|grad| {r.gradient_norm:.1e} (noise {r.gradient_noise:.1e}), {r.evaluations} evaluations "
+            f"gradient norm {r.gradient_norm:.1e} (noise {r.gradient_noise:.1e}), {r.evaluations} evaluations "
             f"({r.evaluation_seconds:.2f} CPU s each), {row['cpu_s']:.0f} CPU s, {row['wall_s']:.0f} s wall")
         if out_path:
             with open(out_path, "w") as fh:

@@ -6,7 +6,7 @@ so typos do not pass silently)::
     system = "slurm"              # "slurm" or "pbs"
     jobs = 2                      # batch jobs to keep running (1..MAX_JOBS)
     walltime = "01:00:00"         # per job, [D-]HH:MM:SS, at most MAX_WALLTIME_H hours
-    wait-for-workers = 600        # seconds a pass waits for the first worker
+    wait-for-workers-s = 600      # seconds a pass waits for the first worker
 
     [job]                         # what one batch job asks for
     cores = 4                     # cores per job
@@ -22,7 +22,7 @@ so typos do not pass silently)::
     setup = ["module load python/3.11"]             # shell lines before the worker starts
 
 Modest defaults: one job of 4 cores and 8 GB for one hour.  Nothing is
-submitted unless the user asked for batch mode (``--cluster-config``); the
+submitted unless the user asked for batch mode (``--batch-file``); the
 jobs end with the run (the cluster is closed) or at their walltime.
 """
 
@@ -45,7 +45,9 @@ MAX_JOBS = 256
 #: hard bound on walltime per job, hours (7 days)
 MAX_WALLTIME_H = 168
 
-_TOP_KEYS = {"system", "jobs", "walltime", "wait-for-workers", "job"}
+_TOP_KEYS = {"system", "jobs", "walltime", "wait-for-workers-s", "job"}
+#: keys of earlier releases -> their new name (refused with one line naming it)
+_RENAMED = {"wait-for-workers": "wait-for-workers-s"}
 _JOB_KEYS = {
     "cores", "memory", "workers", "queue", "account", "interface",
     "local-directory", "log-directory", "python", "directives", "setup",
@@ -111,6 +113,8 @@ def parse_batch_config(data: dict, source: str = "<memory>") -> BatchConfig:
         return BatchConfigError(f"{source}: {msg}")
 
     unknown = set(data) - _TOP_KEYS
+    for key in sorted(unknown & set(_RENAMED)):
+        raise bad(f"{key} is now called {_RENAMED[key]} (same meaning, in seconds); rename the key")
     if unknown:
         raise bad(f"unknown key(s) {', '.join(sorted(unknown))}; allowed: {', '.join(sorted(_TOP_KEYS))}")
     job = data.get("job", {})
@@ -152,9 +156,9 @@ def parse_batch_config(data: dict, source: str = "<memory>") -> BatchConfig:
         raise bad(str(exc)) from None
     if not 0 < hours <= MAX_WALLTIME_H:
         raise bad(f"walltime must be positive and at most {MAX_WALLTIME_H} hours, got {walltime}")
-    wait = data.get("wait-for-workers", 600)
+    wait = data.get("wait-for-workers-s", 600)
     if isinstance(wait, bool) or not isinstance(wait, (int, float)) or not wait > 0:
-        raise bad(f"wait-for-workers must be a positive number of seconds, got {wait!r}")
+        raise bad(f"wait-for-workers-s must be a positive number of seconds, got {wait!r}")
     cores = integer(job, "cores", 4, 1, 4096, "[job] ")
     workers = integer(job, "workers", None, 1, cores, "[job] ")
     memory = text(job, "memory", "8GB")
@@ -188,13 +192,13 @@ def load_batch_config(path) -> BatchConfig:
         try:
             import tomli as tomllib
         except ModuleNotFoundError:
-            raise BatchConfigError("reading a cluster config needs Python >= 3.11 (tomllib) or the tomli package") from None
+            raise BatchConfigError("reading a batch file needs Python >= 3.11 (tomllib) or the tomli package") from None
 
     path = Path(path)
     try:
         raw = path.read_bytes()
     except OSError as exc:
-        raise BatchConfigError(f"cannot read cluster config {path}: {exc.strerror or exc}") from None
+        raise BatchConfigError(f"cannot read batch file {path}: {exc.strerror or exc}") from None
     try:
         data = tomllib.loads(raw.decode("utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
@@ -234,7 +238,7 @@ def make_batch_cluster(config: BatchConfig, *, submit: bool = True):
     if submit and shutil.which(command) is None:
         raise BatchConfigError(
             f"{config.source}: batch system {config.system!r} needs `{command}` on PATH; "
-            "run from a login node of the cluster, or drop --cluster-config"
+            "run from a login node of the cluster, or drop --batch-file"
         )
     cls = SLURMCluster if config.system == "slurm" else PBSCluster
     cluster = cls(**cluster_kwargs(config))

@@ -50,7 +50,7 @@ class CheckpointStats:
     """What the checkpointed run_pass did in this process."""
 
     passes_requested: int = 0
-    passes_from_cache: int = 0
+    passes_reused: int = 0
     passes_computed: int = 0
     chunks_computed: int = 0
     chunks_reused: int = 0
@@ -101,7 +101,7 @@ class CheckpointedPasses:
         try:
             cached = self.depth.cached_pass(key, inp.backward)
             if cached is not None:
-                self.stats.passes_from_cache += 1
+                self.stats.passes_reused += 1
                 return cached
             expected = self.expected_seconds(plan)
             if self.policy.flush_before(self.depth.pending_seconds, expected):

@@ -387,11 +387,11 @@ def connect_scheduler(address: str, settings: ComputeSettings, progress: Progres
 
 
 def start_batch_cluster(settings: ComputeSettings, progress: ProgressDisplay | None = None) -> DaskExecutor:
-    """Submit the batch jobs described by ``settings.batch_config`` and connect to them."""
+    """Submit the batch jobs described by ``settings.batch_file`` and connect to them."""
 
     from .batch import load_batch_config, make_batch_cluster
 
-    config = load_batch_config(settings.batch_config)
+    config = load_batch_config(settings.batch_file)
     cluster = make_batch_cluster(config, submit=True)
     client = _client_for(cluster)
     return DaskExecutor(

@@ -6,7 +6,7 @@ inprocess : every pass in this process, no Dask (small work, tests)
 local     : a Dask LocalCluster of worker processes started and stopped by the tool
 scheduler : an existing Dask scheduler reached by address (``--scheduler``)
 batch     : an HPC batch cluster (SLURM or PBS through dask-jobqueue) described
-            by a TOML file (``--cluster-config``); jobs are submitted only in this mode
+            by a TOML file (``--batch-file``); jobs are submitted only in this mode
 auto      : in-process until a pass is large enough to pay for a LocalCluster
             (see :data:`AUTO_MIN_PATHS_PER_PASS`), then a LocalCluster for the rest
             of the run
@@ -159,7 +159,7 @@ class ComputeSettings:
     workers : worker processes of a LocalCluster (default: usable cores)
     threads_per_worker : threads per worker process (default 1; BLAS stays at 1 per thread)
     memory_budget : bytes of one chunk task; sets the chunk plan and worker memory limits
-    batch_config : path of the batch-cluster TOML file (mode "batch")
+    batch_file : path of the batch-cluster TOML file (mode "batch")
     quiet : no progress bar
     connect_timeout : seconds to reach a scheduler
     workers_given : True when the user chose the worker count (set by :meth:`resolved`)
@@ -170,7 +170,7 @@ class ComputeSettings:
     workers: int | None = None
     threads_per_worker: int = 1
     memory_budget: int = DEFAULT_MEMORY_BUDGET
-    batch_config: Path | None = None
+    batch_file: Path | None = None
     quiet: bool = False
     connect_timeout: float = DEFAULT_CONNECT_TIMEOUT_S
     workers_given: bool = False
@@ -180,20 +180,20 @@ class ComputeSettings:
         mode = self.mode
         if mode not in MODES:
             raise ExecutorConfigError(f"executor must be one of {', '.join(MODES)}, got {mode!r}")
-        if self.scheduler is not None and self.batch_config is not None:
-            raise ExecutorConfigError("give either a scheduler address or a cluster config file, not both")
+        if self.scheduler is not None and self.batch_file is not None:
+            raise ExecutorConfigError("give either a scheduler address or a batch file, not both")
         if self.scheduler is not None:
             if mode not in ("auto", "scheduler"):
                 raise ExecutorConfigError(f"a scheduler address cannot be combined with executor {mode!r}")
             mode = "scheduler"
-        elif self.batch_config is not None:
+        elif self.batch_file is not None:
             if mode not in ("auto", "batch"):
-                raise ExecutorConfigError(f"a cluster config file cannot be combined with executor {mode!r}")
+                raise ExecutorConfigError(f"a batch file cannot be combined with executor {mode!r}")
             mode = "batch"
         elif mode == "scheduler":
             raise ExecutorConfigError("executor 'scheduler' needs a scheduler address")
         elif mode == "batch":
-            raise ExecutorConfigError("executor 'batch' needs a cluster config file")
+            raise ExecutorConfigError("executor 'batch' needs a batch file")
         if self.workers is not None and self.workers < 1:
             raise ExecutorConfigError(f"number of workers must be >= 1, got {self.workers}")
         if self.threads_per_worker < 1:
@@ -222,5 +222,5 @@ class ComputeSettings:
             raise ExecutorConfigError(
                 f"{workers} workers x {self.threads_per_worker} threads x "
                 f"{self.memory_budget / 2**20:.0f} MiB per chunk task need ~{need / 2**30:.1f} GiB, "
-                f"more than this machine's {total / 2**30:.1f} GiB; lower --workers or --memory-mb"
+                f"more than this machine's {total / 2**30:.1f} GiB; lower --workers or --memory-mib"
             )

@@ -1,10 +1,10 @@
 """Angle files: one small versioned JSON layout read and written by every command.
 
-Layout (version 1)::
+Layout (format_version 1; files written before the key was renamed say "version": 1 and read the same)::
 
     {
       "format": "leadline.angles",
-      "version": 1,
+      "format_version": 1,
       "xi": "2:0.5",              # mixture spec (q:w pairs), or null for sparse ensembles
       "ensemble": {...},          # optional: e.g. {"kind": "sparse", "q": 3, "degree": 4}
       "p": 2,
@@ -33,7 +33,7 @@ from .paths import write_text_atomic
 
 FORMAT = "leadline.angles"
 VERSION = 1
-_KEYS = {"format", "version", "xi", "ensemble", "p", "gamma", "beta", "value"}
+_KEYS = {"format", "format_version", "version", "xi", "ensemble", "p", "gamma", "beta", "value"}
 
 
 @dataclass
@@ -48,7 +48,7 @@ class AngleSet:
     def to_json(self) -> dict:
         return {
             "format": FORMAT,
-            "version": VERSION,
+            "format_version": VERSION,
             "xi": self.xi,
             "ensemble": self.ensemble,
             "p": int(self.p),
@@ -123,8 +123,9 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
         raise InputError(f"angle file {path} is not readable JSON: {exc}") from None
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise InputError(f"angle file {path} is not a leadline angle file (\"format\": \"{FORMAT}\" missing)")
-    if data.get("version") != VERSION:
-        raise InputError(f"angle file {path} has version {data.get('version')!r}; this leadline reads version {VERSION}")
+    version = data.get("format_version", data.get("version"))  # "version" in files of earlier releases
+    if version != VERSION:
+        raise InputError(f"angle file {path} has format_version {version!r}; this leadline reads format_version {VERSION}")
     unknown = set(data) - _KEYS
     if unknown:
         raise InputError(f"angle file {path} has unknown keys: {', '.join(sorted(unknown))}")
@@ -175,7 +176,7 @@ def optimum_report(header: list[str], result, evaluations: str, ladder: list[dic
     lines = list(header) + [
         "gamma          = " + fmt_list(result.gamma),
         "beta           = " + fmt_list(result.beta),
-        f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
+        f"gradient norm  = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
         f"evaluations    = {evaluations}",
     ]
     if len(ladder) > 1:

@@ -84,19 +84,19 @@ def _start(angles, depth: int):
 
 
 @contextlib.contextmanager
-def _executor(executor: str, scheduler: str | None, workers: int | None, memory_mb: float) -> Iterator[Any]:
+def _executor(executor: str, scheduler: str | None, workers: int | None, memory_mib: float) -> Iterator[Any]:
     """An executor like the command line's (quiet), closed on exit."""
     from . import compute
 
-    settings = compute.settings_from_options(executor, scheduler, workers, 1, memory_mb, None, True)
+    settings = compute.settings_from_options(executor, scheduler, workers, 1, memory_mib, None, True)
     with compute.open_compute(settings) as ex:
         yield ex
 
 
-def _budget(memory_mb: float) -> int:
-    from .parsing import check_memory_mb
+def _budget(memory_mib: float) -> int:
+    from .parsing import check_memory_mib
 
-    return int(check_memory_mb(memory_mb, "memory_mb") * 2**20)
+    return int(check_memory_mib(memory_mib, "memory_mib") * 2**20)
 
 
 # ----------------------------------------------------------------- results
@@ -169,7 +169,7 @@ def evaluate(
     *,
     gradient: bool = False,
     check_fixed_point: bool = False,
-    memory_mb: float = 256.0,
+    memory_mib: float = 256.0,
     executor: str = "auto",
     scheduler: str | None = None,
     workers: int | None = None,
@@ -187,7 +187,7 @@ def evaluate(
         Also compute dV/dgamma and dV/dbeta (reverse mode, about 3x one evaluation).
     check_fixed_point : bool
         One extra pass; ``residuals["fixed_point"]`` = max|G_(p+1) - G_p|.
-    memory_mb : float
+    memory_mib : float
         Memory budget of one chunk task (sets the chunk plan).
     executor, scheduler, workers
         Where passes run, as on the command line: ``"auto"``, ``"inprocess"``,
@@ -215,16 +215,16 @@ def evaluate(
     g, b = _angles(gamma, beta)
     check_representable(mix, g, "gamma", beta=b)  # the same range as the command line
     check_depth(g.size, "gamma/beta")
-    plan = plan_chunks(g.size, _budget(memory_mb))
-    with _executor(executor, scheduler, workers, memory_mb) as ex:
+    plan = plan_chunks(g.size, _budget(memory_mib))
+    with _executor(executor, scheduler, workers, memory_mib) as ex:
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
                                  fixed_point_check=check_fixed_point)
     check_underflow(result.value, mix, g, "gamma")
     return result
 
 
-def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts=None, seed=0, gtol=1e-7,
-                    maxiter=500, on_evaluation=None) -> Ladder:
+def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts=None, seed=0, gradient_tol=1e-7,
+                    max_iterations=500, on_evaluation=None) -> Ladder:
     """Optimize depths in turn up to ``depth`` (from ``initial``, an AngleSet, if given).
 
     The loop shared by :func:`optimize` and ``leadline optimize``.  ``on_evaluation(value, p)``
@@ -247,7 +247,7 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
             callback = lambda info, p=p: on_evaluation(info.get("value"), p)  # noqa: E731
         result = optimize_depth(mix, p, run_pass=run_pass, callback=callback, plan=plan_chunks(p, budget),
                                 previous=previous, previous_value=previous_value, restarts=restarts,
-                                seed=seed, gtol=gtol, maxiter=maxiter)
+                                seed=seed, gtol=gradient_tol, maxiter=max_iterations)
         ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
         previous, previous_value = (result.gamma, result.beta), result.value
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
@@ -294,9 +294,9 @@ def optimize(
     angles=None,
     restarts: int | None = None,
     seed: int = 0,
-    gtol: float = 1e-7,
-    maxiter: int = 500,
-    memory_mb: float | None = None,
+    gradient_tol: float = 1e-7,
+    max_iterations: int = 500,
+    memory_mib: float | None = None,
     executor: str = "auto",
     scheduler: str | None = None,
     workers: int | None = None,
@@ -322,10 +322,10 @@ def optimize(
         Start, as ``leadline optimize --angles``.
     restarts : int, optional
         Extra seeded starts per depth (default 8 at p <= 2, 4 at p <= 4, 2 at p <= 8, else 0).
-    seed, gtol, maxiter
+    seed, gradient_tol, max_iterations
         Seed of the random starts; gradient tolerance; iteration cap per local run.
-    memory_mb, executor, scheduler, workers
-        As for :func:`evaluate` (``memory_mb``: exact method only, default 256).
+    memory_mib, executor, scheduler, workers
+        As for :func:`evaluate` (``memory_mib``: exact method only, default 256).
     method : str
         ``"exact"`` (default: the exact iteration and its reverse-mode gradient) or
         ``"bath"`` (the bosonic-bath engine with finite differences, for depths past
@@ -348,20 +348,20 @@ def optimize(
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
-    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb)
+    depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
+    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mib=memory_mib)
     if not use_bath:
         check_depth(depth, "depth")
     initial = _start(angles, depth)
     if use_bath:
         with _executor(executor, scheduler, workers, 256.0) as ex:
             return bath_ladder(mix, depth, initial, run_map=ex.run_map, engine=engine_settings(tolerance, fock, bond),
-                               restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter)
-    memory_mb = 256.0 if memory_mb is None else memory_mb
-    budget = _budget(memory_mb)
-    with _executor(executor, scheduler, workers, memory_mb) as ex:
+                               restarts=restarts, seed=seed, gtol=gradient_tol, maxiter=max_iterations)
+    memory_mib = 256.0 if memory_mib is None else memory_mib
+    budget = _budget(memory_mib)
+    with _executor(executor, scheduler, workers, memory_mib) as ex:
         return optimize_ladder(mix, depth, initial, run_pass=ex.run_pass, budget=budget, restarts=restarts,
-                               seed=seed, gtol=gtol, maxiter=maxiter)
+                               seed=seed, gradient_tol=gradient_tol, max_iterations=max_iterations)
 
 
 # ----------------------------------------------------------------- sparse
@@ -428,7 +428,7 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     -------
     SparseEvaluation
         ``.value``, ``.correlator``, ``.gradient``, ``.residuals``; ``.to_json()``
-        plus ``"ensemble"`` is what ``leadline evaluate --xorsat Q --degree D --json`` prints.
+        plus ``"ensemble"`` is what ``leadline evaluate --sparse-q Q --degree D --json`` prints.
 
     Examples
     --------
@@ -447,7 +447,7 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
 
 
 def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | None = None, seed: int = 0,
-                    gtol: float = 1e-7, maxiter: int = 500) -> Ladder:
+                    gradient_tol: float = 1e-7, max_iterations: int = 500) -> Ladder:
     """Optimal angles and nu_p* of Max-q-XORSAT on D-regular large-girth hypergraphs.
 
     Depths 1..depth in turn (INTERP warm starts), or only ``depth`` from
@@ -457,7 +457,7 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
     Returns
     -------
     Ladder
-        ``.to_json()`` is what ``leadline optimize --xorsat Q --degree D --json`` prints.
+        ``.to_json()`` is what ``leadline optimize --sparse-q Q --degree D --json`` prints.
     """
     from leadline.kernels.sparse import optimize_sparse as kernel
 
@@ -465,15 +465,15 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
     from .sparse_ensemble import ensemble_json
 
     q, D = _sparse_problem(q, degree)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
     initial = _start(angles, depth)
-    return sparse_ladder(kernel, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol, maxiter=maxiter,
+    return sparse_ladder(kernel, q, D, depth, initial, restarts=restarts, seed=seed, gradient_tol=gradient_tol, max_iterations=max_iterations,
                          ensemble=ensemble_json(q, D))
 
 
-def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gtol, maxiter, ensemble,
+def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol, max_iterations, ensemble,
                   evaluate_kw=None) -> Ladder:
-    """The depth loop shared by :func:`optimize_sparse` and ``leadline optimize --xorsat``."""
+    """The depth loop shared by :func:`optimize_sparse` and ``leadline optimize --sparse-q``."""
     t0 = time.perf_counter()
     first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
     previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
@@ -481,7 +481,7 @@ def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gtol, maxiter
     for p in range(first, depth + 1):
         n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
         result = kernel(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
-                        seed=seed, gtol=gtol, maxiter=maxiter, evaluate_kw=evaluate_kw)
+                        seed=seed, gtol=gradient_tol, maxiter=max_iterations, evaluate_kw=evaluate_kw)
         previous, previous_value = (result.gamma, result.beta), result.value
         ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0, ensemble=ensemble)

@@ -41,7 +41,7 @@ def check_engine_values(tolerance, fock, bond, *, names=("--tolerance", "--fock"
             raise InputError(f"{name} must be between {lo:g} and {hi:g}, got {value:g}")
 
 
-def check_optimize_method(method: str, *, tolerance=None, fock=None, bond=None, memory_mb=None,
+def check_optimize_method(method: str, *, tolerance=None, fock=None, bond=None, memory_mib=None,
                           sparse: bool = False) -> bool:
     """Validate the method options of `optimize`; True when the bath method is asked for."""
     if method not in METHODS:
@@ -52,9 +52,9 @@ def check_optimize_method(method: str, *, tolerance=None, fock=None, bond=None, 
                 raise InputError(f"{name} applies only to --method bath")
         return False
     if sparse:
-        raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
-    if memory_mb is not None:
-        raise InputError("--memory-mb sets the chunk plan of the exact method; --method bath has none (drop it)")
+        raise InputError("--method bath is for the mixed-spin (dense) model, not --sparse-q/--degree")
+    if memory_mib is not None:
+        raise InputError("--memory-mib sets the chunk plan of the exact method; --method bath has none (drop it)")
     check_engine_values(tolerance, fock, bond)
     return True
 
@@ -84,7 +84,7 @@ class CheckpointedEvaluations:
         self.executor = executor
         self.on_progress = on_progress
         self.computed = 0
-        self.from_checkpoint = 0
+        self.reused = 0
         self.seconds = 0.0
 
     @staticmethod
@@ -114,7 +114,7 @@ class CheckpointedEvaluations:
             cached = self.depth.cached_pass(key, backward=False)
             if cached is not None:
                 out[i] = (float(cached[0].real), float(cached[1].real), float(cached[2].real))
-                self.from_checkpoint += 1
+                self.reused += 1
             else:
                 missing.append(i)
         if missing:

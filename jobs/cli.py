@@ -18,6 +18,7 @@ from typing import Optional
 import typer
 
 from .errors import InputError
+from .renames import renamed_option
 
 app = typer.Typer(
     name="leadline",
@@ -80,7 +81,7 @@ def strict_numbers(command) -> None:
     """Make every float and int option of ``command`` (and its subcommands) parse strictly.
 
     click converts option values with Python's float/int, which accept ``1_000`` and digits of
-    other scripts; a typo like ``--gtol 1_e-7`` would then be a different number.  The options
+    other scripts; a typo like ``--gradient-tol 1_e-7`` would then be a different number.  The options
     take ASCII decimal notation only (kernels/numtext.py), like every number leadline reads.
     """
     import click
@@ -132,6 +133,9 @@ def main(argv: list[str] | None = None) -> None:
         if "NoArgsIsHelpError" in kinds:
             exc.ctx and print(exc.ctx.get_help())
             sys.exit(0)
+        if "NoSuchOption" in kinds and renamed_option(getattr(exc, "option_name", "") or ""):
+            print(f"leadline: error: {renamed_option(exc.option_name)}", file=sys.stderr)
+            sys.exit(2)
         if "UsageError" in kinds:
             ctx = getattr(exc, "ctx", None)
             where = ctx.command_path if ctx is not None else "leadline"

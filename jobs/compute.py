@@ -2,15 +2,15 @@
 
 Usage in a command (options are functions so each command gets its own copy)::
 
-    def my_command(..., memory_mb: float = ...,
+    def my_command(..., memory_mib: float = ...,
                    executor: str = compute.executor_option(),
                    scheduler: Optional[str] = compute.scheduler_option(),
                    workers: Optional[int] = compute.workers_option(),
                    threads_per_worker: int = compute.threads_option(),
-                   cluster_config: Optional[str] = compute.cluster_config_option(),
+                   batch_file: Optional[str] = compute.batch_file_option(),
                    quiet: bool = compute.quiet_option()):
         settings = compute.settings_from_options(executor, scheduler, workers,
-                                                 threads_per_worker, memory_mb, cluster_config, quiet)
+                                                 threads_per_worker, memory_mib, batch_file, quiet)
         with compute.open_compute(settings) as ex:
             evaluate(..., run_pass=ex.run_pass)
 
@@ -30,13 +30,13 @@ import typer
 
 from leadline.cluster.batch import load_batch_config
 from leadline.cluster.errors import ExecutorConfigError, ExecutorError
-from leadline.cluster.settings import DEFAULT_CONNECT_TIMEOUT_S, ComputeSettings
+from leadline.cluster.settings import DEFAULT_CONNECT_TIMEOUT_S, MODES, ComputeSettings
 
 if TYPE_CHECKING:  # the executor module (asyncio, Dask hooks) loads when a command computes
     from leadline.cluster.executor import Executor
 
 from .errors import InputError
-from .parsing import check_memory_mb
+from .parsing import check_memory_mib
 
 __all__ = [
     "EXECUTOR_CHOICES",
@@ -44,13 +44,14 @@ __all__ = [
     "scheduler_option",
     "workers_option",
     "threads_option",
-    "cluster_config_option",
+    "batch_file_option",
     "quiet_option",
     "settings_from_options",
     "open_compute",
 ]
 
-EXECUTOR_CHOICES = ("auto", "inprocess", "local")
+#: the values of --executor, of [compute] executor and of `resume --executor` (one set everywhere)
+EXECUTOR_CHOICES = MODES
 
 
 def executor_option():
@@ -58,9 +59,9 @@ def executor_option():
         "auto",
         "--executor",
         help="Where passes run: auto (in this process for small work; a local Dask cluster once a pass "
-        "has >= 2^29 paths, i.e. p >= 14, and >= 2 cores are idle), inprocess (never Dask), "
-        "local (always a local Dask cluster). "
-        "--scheduler and --cluster-config choose the other two ways.",
+        "has >= 2^29 paths, i.e. p >= 14, and >= 2 cores are idle; a running scheduler or a batch cluster "
+        "when --scheduler or --batch-file is given), inprocess (never Dask), local (always a local Dask "
+        "cluster), scheduler (the one at --scheduler ADDRESS), batch (jobs described by --batch-file FILE).",
     )
 
 
@@ -83,10 +84,10 @@ def threads_option():
     )
 
 
-def cluster_config_option():
+def batch_file_option():
     return typer.Option(
         None,
-        "--cluster-config",
+        "--batch-file",
         help="TOML file describing a SLURM or PBS batch cluster; batch jobs are submitted for this run "
         "(layout: docs/clusters.md).",
     )
@@ -101,8 +102,8 @@ def settings_from_options(
     scheduler: Optional[str] = None,
     workers: Optional[int] = None,
     threads_per_worker: int = 1,
-    memory_mb: float = 256.0,
-    cluster_config: Optional[str] = None,
+    memory_mib: float = 256.0,
+    batch_file: Optional[str] = None,
     quiet: bool = False,
     connect_timeout: float = DEFAULT_CONNECT_TIMEOUT_S,
 ) -> ComputeSettings:
@@ -115,24 +116,29 @@ def settings_from_options(
         raise InputError(f"--workers must be >= 1, got {workers}")
     if threads_per_worker < 1:
         raise InputError(f"--threads-per-worker must be >= 1, got {threads_per_worker}")
-    check_memory_mb(memory_mb)
-    if executor != "auto" and (scheduler is not None or cluster_config is not None):
-        which = "--scheduler" if scheduler is not None else "--cluster-config"
-        raise InputError(f"--executor {executor} cannot be combined with {which}")
-    if scheduler is not None and cluster_config is not None:
-        raise InputError("give either --scheduler or --cluster-config, not both")
-    if cluster_config is not None:
+    check_memory_mib(memory_mib)
+    if scheduler is not None and batch_file is not None:
+        raise InputError("give either --scheduler or --batch-file, not both")
+    if scheduler is not None and executor not in ("auto", "scheduler"):
+        raise InputError(f"--executor {executor} cannot be combined with --scheduler (use --executor scheduler or auto)")
+    if batch_file is not None and executor not in ("auto", "batch"):
+        raise InputError(f"--executor {executor} cannot be combined with --batch-file (use --executor batch or auto)")
+    if executor == "scheduler" and scheduler is None:
+        raise InputError("--executor scheduler needs --scheduler ADDRESS (e.g. tcp://10.0.0.5:8786)")
+    if executor == "batch" and batch_file is None:
+        raise InputError("--executor batch needs --batch-file FILE.toml (layout: docs/clusters.md)")
+    if batch_file is not None:
         try:
-            load_batch_config(cluster_config)  # reject a bad file before any work
+            load_batch_config(batch_file)  # reject a bad file before any work
         except ExecutorConfigError as exc:
-            raise InputError(f"--cluster-config: {exc}") from None
+            raise InputError(f"--batch-file: {exc}") from None
     settings = ComputeSettings(
         mode=executor,
         scheduler=scheduler.strip() if scheduler is not None else None,
         workers=workers,
         threads_per_worker=threads_per_worker,
-        memory_budget=int(memory_mb * 2**20),
-        batch_config=Path(cluster_config) if cluster_config is not None else None,
+        memory_budget=int(memory_mib * 2**20),
+        batch_file=Path(batch_file) if batch_file is not None else None,
         quiet=quiet,
         connect_timeout=connect_timeout,
     )

@@ -110,12 +110,12 @@ def check_cost(p: int, plan: ChunkPlan, settings: ComputeSettings | None, *, gra
     if plan.chunk_bytes() > plan_budget(settings):
         raise InputError(
             f"{option}: at p = {p} one chunk task needs {plan.chunk_bytes() / 2**20:.0f} MiB, more than "
-            f"--memory-mb {plan_budget(settings) / 2**20:g}; raise --memory-mb"
+            f"--memory-mib {plan_budget(settings) / 2**20:g}; raise --memory-mib"
         )
     if cost.seconds is not None and cost.seconds > MAX_LOCAL_SECONDS:
         raise InputError(
             f"{option}: {cost.line()}, beyond the {_duration(MAX_LOCAL_SECONDS)} this machine's executors "
-            "accept; run it on a cluster (--scheduler or --cluster-config) or lower the depth"
+            "accept; run it on a cluster (--scheduler or --batch-file) or lower the depth"
         )
     return cost
 

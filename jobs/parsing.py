@@ -64,28 +64,28 @@ def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndar
     return g, b
 
 
-#: smallest --memory-mb accepted (2 KiB): the chunk planner's smallest chunk task takes about
+#: smallest --memory-mib accepted (2 KiB): the chunk planner's smallest chunk task takes about
 #: 1 KiB at every depth, and a budget that rounds to 0 bytes would only fail later with a
 #: message about the planner (tiny budgets are useful in tests: they force many chunks)
-MIN_MEMORY_MB = 0.002
+MIN_MEMORY_MIB = 0.002
 
 
-def check_memory_mb(memory_mb: float, option: str = "--memory-mb") -> float:
-    """The memory budget of one chunk task in MiB: finite and at least MIN_MEMORY_MB."""
-    if not (math.isfinite(memory_mb) and memory_mb >= MIN_MEMORY_MB):
+def check_memory_mib(memory_mib: float, option: str = "--memory-mib") -> float:
+    """The memory budget of one chunk task in MiB: finite and at least MIN_MEMORY_MIB."""
+    if not (math.isfinite(memory_mib) and memory_mib >= MIN_MEMORY_MIB):
         raise InputError(
-            f"{option} must be a positive finite number of MiB, at least {MIN_MEMORY_MB:g} (the planner's smallest "
-            f"chunk task takes about 1 KiB), got {memory_mb:g}"
+            f"{option} must be a positive finite number of MiB, at least {MIN_MEMORY_MIB:g} (the planner's smallest "
+            f"chunk task takes about 1 KiB), got {memory_mib:g}"
         )
-    return memory_mb
+    return memory_mib
 
 
-#: largest --gtol accepted: a gradient max-norm above it is not a stationary point of V_p
+#: largest --gradient-tol accepted: a gradient max-norm above it is not a stationary point of V_p
 #: (values are O(1); common practice for double-precision quasi-Newton runs is 1e-5..1e-8)
-MAX_GTOL = 1e-4
+MAX_GRADIENT_TOL = 1e-4
 
 
-def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float, maxiter: int, seed: int = 0) -> int:
+def check_optimizer_options(depth: int | None, restarts: int | None, gradient_tol: float, max_iterations: int, seed: int = 0) -> int:
     """Validate the options shared by dense and sparse `optimize`; returns the depth."""
     if depth is None:
         raise InputError("--depth is required (the depth p to optimize, >= 1)")
@@ -93,18 +93,18 @@ def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float
         raise InputError(f"--depth must be >= 1, got {depth}")
     if restarts is not None and restarts < 0:
         raise InputError("--restarts must be >= 0")
-    if not gtol > 0:
+    if not gradient_tol > 0:
         raise InputError(
-            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol:g}: the optimizer stops when the largest "
+            f"--gradient-tol must be a number in (0, {MAX_GRADIENT_TOL:g}], got {gradient_tol:g}: the optimizer stops when the largest "
             "gradient component is below it, which a tolerance <= 0 never allows"
         )
-    if not gtol <= MAX_GTOL:
+    if not gradient_tol <= MAX_GRADIENT_TOL:
         raise InputError(
-            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol:g}: a larger tolerance stops the "
+            f"--gradient-tol must be a number in (0, {MAX_GRADIENT_TOL:g}], got {gradient_tol:g}: a larger tolerance stops the "
             "optimizer before a stationary point"
         )
-    if maxiter < 1:
-        raise InputError("--maxiter must be >= 1")
+    if max_iterations < 1:
+        raise InputError("--max-iterations must be >= 1")
     if seed < 0:
         raise InputError(f"--seed must be >= 0, got {seed}")
     return depth

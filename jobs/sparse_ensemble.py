@@ -30,20 +30,20 @@ def degree_limit_message(degree) -> str:
     )
 
 
-def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
-    """Validate --xorsat/--degree (and that --xi is absent); returns (q, D). Raises InputError."""
+def check_sparse(sparse_q, degree, xi) -> tuple[int, int]:
+    """Validate --sparse-q/--degree (and that --xi is absent); returns (q, D). Raises InputError."""
     if xi is not None:
-        raise InputError("--xi and --xorsat are two different ensembles: give one of them")
-    if xorsat is None:
-        raise InputError("--degree needs --xorsat Q (the constraint size, Q >= 2)")
+        raise InputError("--xi and --sparse-q are two different ensembles: give one of them")
+    if sparse_q is None:
+        raise InputError("--degree needs --sparse-q Q (the constraint size, Q >= 2)")
     try:
-        q = int(xorsat)
+        q = int(sparse_q)
     except (TypeError, ValueError):
-        raise InputError(f"--xorsat must be an integer >= 2, got {xorsat!r}") from None
+        raise InputError(f"--sparse-q must be an integer >= 2, got {sparse_q!r}") from None
     if q < 2:
-        raise InputError(f"--xorsat must be an integer >= 2 (constraint size), got {q}")
+        raise InputError(f"--sparse-q must be an integer >= 2 (constraint size), got {q}")
     if degree is None:
-        raise InputError("--xorsat needs --degree D (every spin in D constraints, D >= 2)")
+        raise InputError("--sparse-q needs --degree D (every spin in D constraints, D >= 2)")
     try:
         d = parse_float(str(degree))
     except ValueError:

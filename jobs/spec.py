@@ -14,16 +14,16 @@ Layout (version 1; every key is checked, unknown keys are errors)::
     [optimizer]                      # all optional
     restarts = 2                     # extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, 0 after)
     seed = 0                         # seeds every random start (default 0)
-    gtol = 1e-7                      # stop when the largest gradient component is below this
-    maxiter = 500                    # iteration cap of each local quasi-Newton run
+    gradient-tol = 1e-7              # stop when the gradient norm (largest component) is below this
+    max-iterations = 500             # iteration cap of each local quasi-Newton run
 
     [compute]                        # all optional
     executor = "auto"                # auto | inprocess | local | scheduler | batch
     scheduler = "tcp://10.0.0.5:8786"    # a running Dask scheduler (executor auto or scheduler)
-    cluster-config = "slurm.toml"    # batch-cluster file (executor auto or batch), relative to this file
+    batch-file = "slurm.toml"        # batch-cluster file (executor auto or batch), relative to this file
     workers = 4                      # local Dask workers (default: one per core)
     threads-per-worker = 1
-    memory-mb = 256                  # memory budget of one chunk task; sets the chunk plan
+    memory-mib = 256                 # memory budget of one chunk task; sets the chunk plan
 
     [checkpoint]                     # all optional (docs/store.md)
     interval-s = 30                  # a kill loses at most about max(one pass, this) of computing; 0 = write every pass
@@ -67,13 +67,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from leadline.kernels.mixture import MixtureError, parse_mixture
+from leadline.storage.layout import SPEC_FORMAT_VERSION, current_spec
 
 from .errors import InputError
-from .parsing import MAX_GTOL, MIN_MEMORY_MB
+from .parsing import MAX_GRADIENT_TOL, MIN_MEMORY_MIB
+from .renames import renamed_spec_key
 
 __all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
-SPEC_VERSION = 1
 #: deepest exact depth a spec may ask for (2^61 paths per pass: far beyond any machine already)
 MAX_DEPTH = 30
 #: deepest depth of an ensemble that continues with the bath engine (its cost is polynomial in p)
@@ -84,8 +85,8 @@ _EXECUTORS = ("auto", "inprocess", "local", "scheduler", "batch")
 _SECTIONS = {
     "study": {"name", "store"},
     "depths": {"pmin", "pmax"},
-    "optimizer": {"restarts", "seed", "gtol", "maxiter"},
-    "compute": {"executor", "scheduler", "cluster-config", "workers", "threads-per-worker", "memory-mb"},
+    "optimizer": {"restarts", "seed", "gradient-tol", "max-iterations"},
+    "compute": {"executor", "scheduler", "batch-file", "workers", "threads-per-worker", "memory-mib"},
     "checkpoint": {"interval-s", "keep-passes"},
     "ensemble": None,  # array of tables, checked per kind
 }
@@ -146,37 +147,37 @@ class StudySpec:
     ensembles: tuple[EnsembleSpec, ...]
     restarts: int | None = None
     seed: int = 0
-    gtol: float = 1e-7
-    maxiter: int = 500
+    gradient_tol: float = 1e-7
+    max_iterations: int = 500
     executor: str = "auto"
     scheduler: str | None = None
-    cluster_config: Path | None = None
+    batch_file: Path | None = None
     workers: int | None = None
     threads_per_worker: int = 1
-    memory_mb: float = 256.0
+    memory_mib: float = 256.0
     checkpoint_interval_s: float = 30.0
     keep_passes: bool = False
     source_text: str = field(default="", repr=False, compare=False)
 
     @property
     def memory_budget(self) -> int:
-        return int(self.memory_mb * 2**20)
+        return int(self.memory_mib * 2**20)
 
     def to_json(self) -> dict:
         """The normalized spec (stored in the store's root attribute "spec")."""
         return {
-            "spec_version": SPEC_VERSION,
+            "format_version": SPEC_FORMAT_VERSION,
             "name": self.name,
             "store": str(self.store),
             "depths": {"pmin": self.pmin, "pmax": self.pmax},
-            "optimizer": {"restarts": self.restarts, "seed": self.seed, "gtol": self.gtol, "maxiter": self.maxiter},
+            "optimizer": {"restarts": self.restarts, "seed": self.seed, "gradient_tol": self.gradient_tol, "max_iterations": self.max_iterations},
             "compute": {
                 "executor": self.executor,
                 "scheduler": self.scheduler,
-                "cluster_config": str(self.cluster_config) if self.cluster_config else None,
+                "batch_file": str(self.batch_file) if self.batch_file else None,
                 "workers": self.workers,
                 "threads_per_worker": self.threads_per_worker,
-                "memory_mb": self.memory_mb,
+                "memory_mib": self.memory_mib,
             },
             "checkpoint": {"interval_s": self.checkpoint_interval_s, "keep_passes": self.keep_passes},
             "ensembles": [e.description() for e in self.ensembles],
@@ -192,7 +193,7 @@ class StudySpec:
             "workers": self.workers,
             "threads_per_worker": self.threads_per_worker,
             "memory_budget": self.memory_budget,
-            "batch_config": self.cluster_config,
+            "batch_file": self.batch_file,
         }
         values.update({k: v for k, v in overrides.items() if v is not None})
         try:
@@ -245,6 +246,10 @@ def _text(table: dict, section: str, key: str, default=None, *, required=False):
 
 def _unknown(table: dict, allowed: set, where: str) -> None:
     extra = sorted(set(table) - allowed)
+    for key in extra:
+        renamed = renamed_spec_key(where.strip("[]"), key)
+        if renamed:
+            raise InputError(renamed)
     if extra:
         raise InputError(f"{where}: unknown key {extra[0]!r} (allowed: {', '.join(sorted(allowed))})")
 
@@ -399,36 +404,36 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
 
     restarts = _int(opt, "optimizer", "restarts", None, minimum=0)
     seed = _int(opt, "optimizer", "seed", 0, minimum=0)
-    gtol = _float(opt, "optimizer", "gtol", 1e-7, positive=True)
-    if gtol > MAX_GTOL:
-        raise InputError(f"[optimizer] gtol must be at most {MAX_GTOL:g}, got {gtol!r}: a larger tolerance stops before a stationary point")
-    maxiter = _int(opt, "optimizer", "maxiter", 500, minimum=1)
+    gradient_tol = _float(opt, "optimizer", "gradient-tol", 1e-7, positive=True)
+    if gradient_tol > MAX_GRADIENT_TOL:
+        raise InputError(f"[optimizer] gradient-tol must be at most {MAX_GRADIENT_TOL:g}, got {gradient_tol!r}: a larger tolerance stops before a stationary point")
+    max_iterations = _int(opt, "optimizer", "max-iterations", 500, minimum=1)
 
     executor = _text(comp, "compute", "executor", "auto")
     if executor not in _EXECUTORS:
         raise InputError(f"[compute] executor must be one of {', '.join(_EXECUTORS)}, got {executor!r}")
     scheduler = _text(comp, "compute", "scheduler")
-    cluster_text = _text(comp, "compute", "cluster-config")
-    cluster_config = _resolve(base, cluster_text) if cluster_text else None
+    batch_text = _text(comp, "compute", "batch-file")
+    batch_file = _resolve(base, batch_text) if batch_text else None
     workers = _int(comp, "compute", "workers", None, minimum=1)
     threads = _int(comp, "compute", "threads-per-worker", 1, minimum=1)
-    memory_mb = _float(comp, "compute", "memory-mb", 256.0, positive=True)
-    if memory_mb < MIN_MEMORY_MB:
-        raise InputError(f"{_where('compute', 'memory-mb')} must be >= {MIN_MEMORY_MB:g} MiB (the memory of one chunk task), got {memory_mb!r}")
+    memory_mib = _float(comp, "compute", "memory-mib", 256.0, positive=True)
+    if memory_mib < MIN_MEMORY_MIB:
+        raise InputError(f"{_where('compute', 'memory-mib')} must be >= {MIN_MEMORY_MIB:g} MiB (the memory of one chunk task), got {memory_mib!r}")
     interval_s = _float(ckpt, "checkpoint", "interval-s", 30.0)
     if interval_s < 0:
         raise InputError(f"[checkpoint] interval-s must be >= 0 seconds, got {interval_s!r}")
     keep_passes = ckpt.get("keep-passes", False)
     if not isinstance(keep_passes, bool):
         raise InputError(f"[checkpoint] keep-passes must be true or false, got {keep_passes!r}")
-    if cluster_config is not None:
+    if batch_file is not None:
         from leadline.cluster import ExecutorConfigError
         from leadline.cluster.batch import load_batch_config
 
         try:
-            load_batch_config(cluster_config)
+            load_batch_config(batch_file)
         except ExecutorConfigError as exc:
-            raise InputError(f"[compute] cluster-config: {exc}") from None
+            raise InputError(f"[compute] batch-file: {exc}") from None
 
     ensembles = _ensembles(doc)
     _check_depths(ensembles, pmin, pmax)
@@ -440,19 +445,19 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
         ensembles=ensembles,
         restarts=restarts,
         seed=seed,
-        gtol=gtol,
-        maxiter=maxiter,
+        gradient_tol=gradient_tol,
+        max_iterations=max_iterations,
         executor=executor,
         scheduler=scheduler,
-        cluster_config=cluster_config,
+        batch_file=batch_file,
         workers=workers,
         threads_per_worker=threads,
-        memory_mb=memory_mb,
+        memory_mib=memory_mib,
         checkpoint_interval_s=interval_s,
         keep_passes=keep_passes,
         source_text=text,
     )
-    spec.compute_settings()  # the combination (executor with scheduler/cluster-config, memory)
+    spec.compute_settings()  # the combination (executor with scheduler/batch-file, memory)
     return spec
 
 
@@ -469,7 +474,9 @@ def load_spec(path: str | os.PathLike) -> StudySpec:
 
 
 def spec_from_json(data: dict, text: str = "") -> StudySpec:
-    """Rebuild a StudySpec from its stored normalized form (the store's "spec" attribute)."""
+    """Rebuild a StudySpec from its stored normalized form (the store's "spec" attribute;
+    the key names of older stores are read too)."""
+    data = current_spec(data)
     d, o, c = data["depths"], data["optimizer"], data["compute"]
     k = data.get("checkpoint") or {}
     ensembles = []
@@ -492,14 +499,14 @@ def spec_from_json(data: dict, text: str = "") -> StudySpec:
         ensembles=tuple(ensembles),
         restarts=o.get("restarts"),
         seed=int(o.get("seed", 0)),
-        gtol=float(o.get("gtol", 1e-7)),
-        maxiter=int(o.get("maxiter", 500)),
+        gradient_tol=float(o.get("gradient_tol", 1e-7)),
+        max_iterations=int(o.get("max_iterations", 500)),
         executor=c.get("executor", "auto"),
         scheduler=c.get("scheduler"),
-        cluster_config=Path(c["cluster_config"]) if c.get("cluster_config") else None,
+        batch_file=Path(c["batch_file"]) if c.get("batch_file") else None,
         workers=c.get("workers"),
         threads_per_worker=int(c.get("threads_per_worker", 1)),
-        memory_mb=float(c.get("memory_mb", 256.0)),
+        memory_mib=float(c.get("memory_mib", 256.0)),
         checkpoint_interval_s=float(k.get("interval_s", 30.0)),
         keep_passes=bool(k.get("keep_passes", False)),
         source_text=text,

@@ -42,8 +42,8 @@ def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor,
             previous_value=previous_value,
             restarts=spec.restarts,
             seed=spec.seed,
-            gtol=spec.gtol,
-            maxiter=spec.maxiter,
+            gtol=spec.gradient_tol,
+            maxiter=spec.max_iterations,
         )
         if depth.policy.keep_passes:
             passes.flush()
@@ -74,7 +74,7 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     with chunked as run_chunked:
         result = optimize_sparse(
             ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
-            seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter,
+            seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations,
             evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, **kwargs,
         )
     return result, CheckpointStats()
@@ -91,7 +91,7 @@ def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, 
         depth.group.attrs.update({"bath_progress": {
             "value": info["best_value"], "error_estimate": info["best_error_estimate"],
             "gradient_norm": info["gradient_norm"], "evaluation_s": info["evaluation_s"],
-            "evaluations": evaluations.computed + evaluations.from_checkpoint}})
+            "evaluations": evaluations.computed + evaluations.reused}})
         progress = getattr(executor, "progress", None)
         if progress is not None:  # the sweep's progress line
             progress.evaluation_done(
@@ -103,7 +103,7 @@ def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, 
         result = optimize_bath_depth(
             ens.mixture(), p, engine=ens.bath_engine(), run_map=evaluations, previous=previous,
             previous_value=previous_value, restarts=bath_restarts(spec.restarts, previous is not None, p),
-            seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter, callback=live,
+            seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations, callback=live,
         )
     finally:
         try:
@@ -169,7 +169,7 @@ def run_study(
                 timings.update({
                     "wall_time_s": session_s, "pass_compute_s": 0.0, "optimizer_overhead_s": session_s,
                     "bath_evaluations": result.evaluations, "bath_evaluations_computed": bath.computed,
-                    "bath_evaluations_from_checkpoint": bath.from_checkpoint,
+                    "bath_evaluations_reused": bath.reused,
                     "bath_evaluation_cpu_s": result.evaluation_seconds * result.evaluations,
                 })
             record = result.to_json()
@@ -192,14 +192,14 @@ def depth_line(line: dict) -> str:
     s = t["this_session"]
     if r.get("method") == "bath":
         return (
-            f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f} +- {r['error_estimate']:.1e} (bath)  "
-            f"|grad| {r['gradient_norm']:.1e} (noise {r['gradient_noise']:.1e})  {r['evaluations']} evaluations, "
-            f"{t['bath_evaluations_from_checkpoint']} from checkpoint, {r['evaluation_s']:.3f} s each, "
+            f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)} +- {r['error_estimate']:.1e} (bath)  "
+            f"gradient norm {r['gradient_norm']:.1e} (noise {r['gradient_noise']:.1e})  {r['evaluations']} evaluations, "
+            f"{t['bath_evaluations_reused']} reused, {r['evaluation_s']:.3f} s each, "
             f"{t['wall_time_s']:.2f} s"
         )
-    passes = (f"{s['passes_computed']} passes computed, {s['passes_from_cache']} from checkpoint, "
+    passes = (f"{s['passes_computed']} passes computed, {s['passes_reused']} reused, "
               if s["passes_requested"] else "")
     return (
-        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  |grad| {r['gradient_norm']:.1e}  "
+        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  gradient norm {r['gradient_norm']:.1e}  "
         f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
     )

@@ -90,7 +90,7 @@ __all__ = [
     "default_holdout",
     "extrapolate",
     "depth_for_ratio",
-    "backtest_weight",
+    "back_test_weight",
     "FREE_POWER",
     "ANCHORED_POWER",
     "BACKTEST_GROWTH",
@@ -356,7 +356,7 @@ class Fit:
             "family": self.family,
             "window": self.k,
             "depths": list(self.depths),
-            "limit": _clean(self.limit),
+            "v_inf": _clean(self.limit),
             "rms_residual": _clean(self.rms_residual),
         }
         if self.is_polynomial:
@@ -505,7 +505,7 @@ class Backtest:
 USED, UNPHYSICAL, UNTESTED = "used", "unphysical", "no back-test"
 
 
-def backtest_weight(error: float, scale: float) -> float:
+def back_test_weight(error: float, scale: float) -> float:
     """Smooth weight of a back-test error: 1 / (1 + (error / scale)^WEIGHT_POWER) (1 at 0, 0.5 at the scale)."""
     if not math.isfinite(error):
         return 0.0
@@ -518,14 +518,14 @@ def backtest_weight(error: float, scale: float) -> float:
 class WindowFit:
     """A fit on the last depths (its window), its back-test, status and weight in the headline.
 
-    ``score`` is :func:`backtest_weight` of the back-test error (0 without a
+    ``score`` is :func:`back_test_weight` of the back-test error (0 without a
     back-test); ``weight`` the share of the fit in the headline mixture (score
     divided by the number of windows of its family, normalized over all fits;
     0 when unphysical or untested).
     """
 
     fit: Fit
-    backtest: Backtest | None
+    back_test: Backtest | None
     status: str
     reason: str = ""
     score: float = 0.0
@@ -536,8 +536,8 @@ class WindowFit:
         return self.fit.family
 
     @property
-    def backtest_error(self) -> float | None:
-        return None if self.backtest is None else self.backtest.max_error
+    def back_test_error(self) -> float | None:
+        return None if self.back_test is None else self.back_test.max_error
 
     @property
     def used(self) -> bool:
@@ -546,8 +546,8 @@ class WindowFit:
     def to_json(self) -> dict:
         out = self.fit.to_json()
         out.update(status=self.status, reason=self.reason or None,
-                   backtest=self.backtest.to_json() if self.backtest else None,
-                   backtest_error=_clean(self.backtest_error), backtest_score=_clean(self.score),
+                   back_test=self.back_test.to_json() if self.back_test else None,
+                   back_test_error=_clean(self.back_test_error), back_test_score=_clean(self.score),
                    weight=_clean(self.weight))
         return out
 
@@ -703,7 +703,7 @@ class Extrapolation:
     last_depth: int = 0
     last_value: float | None = None
     uncertain_depths: int = 0
-    backtest_growth: float = BACKTEST_GROWTH
+    back_test_growth: float = BACKTEST_GROWTH
     _bands: dict = field(default_factory=dict, repr=False, compare=False)  # depth -> Estimate
 
     @property
@@ -741,8 +741,8 @@ class Extrapolation:
         fit = w.fit
         x_last = 1.0 / self.last_depth
         x = 0.0 if math.isinf(depth) else 1.0 / depth
-        reach = w.backtest.reach if w.backtest is not None else x_last
-        grown = self.backtest_growth * (w.backtest_error or 0.0) * max(0.0, x_last - x) / reach
+        reach = w.back_test.reach if w.back_test is not None else x_last
+        grown = self.back_test_growth * (w.back_test_error or 0.0) * max(0.0, x_last - x) / reach
         return math.hypot(fit.standard_error(depth), grown) * self._spread_factor()
 
     def _band(self, depth: float, probs: Sequence[float]) -> list[float]:
@@ -819,7 +819,7 @@ class Extrapolation:
         return {
             "families": {f.name: f.description for f in FAMILIES.values()},
             "families_used": self.families_used,
-            "holdout": self.holdout,
+            "held_out_count": self.holdout,  # how many last depths each back-test holds out
             "weight_rule": (
                 f"weight = 1 / (1 + (back-test error / scale)^{WEIGHT_POWER}) / (windows of the family), "
                 f"scale = max({SCALE_GAIN_FRACTION:g} x held-out gain, {SCALE_BEST_FACTOR:g} x smallest "
@@ -832,7 +832,7 @@ class Extrapolation:
             "upper_bound_name": self.bound_name,
             "headline_rule": (
                 f"each used fit predicts a normal distribution: mean its curve, sd sqrt(se^2 + "
-                f"({self.backtest_growth:g} x back-test error x reach)^2) x sqrt({REFERENCE_DEPTHS}/n) when n < "
+                f"({self.back_test_growth:g} x back-test error x reach)^2) x sqrt({REFERENCE_DEPTHS}/n) when n < "
                 f"{REFERENCE_DEPTHS} depths; central: median of the weighted mixture; low/high: its central "
                 f"{COVERAGE:.0%}, high cut at the upper bound, low raised to V at the last depth; "
                 f"no headline with fewer than {MIN_DEPTHS} depths or {MIN_FAMILIES} families"
@@ -840,8 +840,8 @@ class Extrapolation:
             "declined": self.declined,
             "family_values": {fam: _clean(v) for fam, (_, v) in self.family_values().items()},
             "uncertain_depths": self.uncertain_depths,
-            "limit": self.limit.to_json() if self.limit else None,
-            "limit_ratio_gs": (self.limit.scaled(1.0 / self.ground_state).to_json()
+            "v_inf": self.limit.to_json() if self.limit else None,
+            "ratio_gs_inf": (self.limit.scaled(1.0 / self.ground_state).to_json()
                                if self.limit and self.ground_state else None),
             "at_depth": [
                 {"p": p, "value": est.to_json(), "ratio_gs": ratio[p].to_json() if p in ratio else None}
@@ -874,7 +874,7 @@ def extrapolate(
     families: Iterable[str] | None = None,
     min_depths: int = MIN_DEPTHS,
     min_families: int = MIN_FAMILIES,
-    backtest_growth: float = BACKTEST_GROWTH,
+    back_test_growth: float = BACKTEST_GROWTH,
 ) -> Extrapolation | None:
     """Fit every family over its windows, back-test each, and form the headline numbers.
 
@@ -905,7 +905,7 @@ def extrapolate(
     min_depths, min_families : int
         Fewer depths, or fewer families with a back-tested physical fit: no headline
         (``declined`` says why; every fit is still listed).
-    backtest_growth : float
+    back_test_growth : float
         How many standard deviations the grown back-test error counts for
         (default :data:`BACKTEST_GROWTH`, chosen by the SK calibration).
 
@@ -972,7 +972,7 @@ def extrapolate(
             status, reason = UNPHYSICAL, f"fitted curve reaches {peak:.4f} > {bound_name} {bound:.4f}"
         else:
             status, reason = USED, ""
-        score = backtest_weight(bt.max_error, scale) if bt is not None else 0.0
+        score = back_test_weight(bt.max_error, scale) if bt is not None else 0.0
         staged.append((fit, bt, status, reason, score))
     windows_per_family = {}
     for fit, bt, *_ in staged:
@@ -987,7 +987,7 @@ def extrapolate(
     result = Extrapolation(fits, h, scale, gain, gs, bound, None, bound_name=bound_name, n_depths=n,
                            last_depth=int(p[-1]), last_value=float(v[-1]),
                            uncertain_depths=0 if s is None else int(np.sum(s > 0)),
-                           backtest_growth=float(backtest_growth))
+                           back_test_growth=float(back_test_growth))
     n_families = len({w.family for w in fits if w.used and w.weight > 0})
     if n < min_depths:
         result.declined = f"too few depths for an extrapolation ({n}, at least {min_depths} needed)"

@@ -2,7 +2,7 @@
 # Bring up a single-node SLURM on this machine: one partition, this host as its only node.
 #
 # For the batch-cluster integration test (tests/test_slurm.py) and for trying
-# `--cluster-config` by hand. Idempotent: run it again and it only starts what is not
+# `--batch-file` by hand. Idempotent: run it again and it only starts what is not
 # running. Needs root and a Debian-family system (apt-get; packages slurmctld, slurmd,
 # munge). Nothing here is needed on a real cluster.
 #

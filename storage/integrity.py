@@ -1,11 +1,11 @@
 """The store's record of itself, and the check every open runs against it.
 
-A store keeps, in its root attribute ``integrity`` (schema 3), a record written when it
+A store keeps, in its root attribute ``integrity`` (schema 3 and later), a record written when it
 was created and extended by every finished depth::
 
     {"version": 1,
      "identity": {"name": "<digest>", "spec": "<digest>", "spec_toml": ..., "kernel": ..., "created_utc": ...},
-     "ensembles": {"<label>": "<digest of the ensemble group's attributes without 'references'>"},
+     "ensembles": {"<label>": "<digest of the ensemble group's attributes without 'computed_reference'>"},
      "finished": {"<label>": {"<p>": "<digest of the depth's 'result' attribute>"}}}
 
 (digest: the first 16 hex digits of SHA-256 of the canonical JSON).  A depth is recorded
@@ -57,8 +57,9 @@ def digest(value) -> str:
 
 
 def ensemble_digest(attrs: dict) -> str:
-    """Digest of an ensemble group's attributes; 'references' (added by `leadline reference --store`) excluded."""
-    return digest({k: v for k, v in attrs.items() if k != "references"})
+    """Digest of an ensemble group's attributes; the computed reference energies (added later by
+    `leadline reference --store`: 'computed_reference', 'references' before schema 4) excluded."""
+    return digest({k: v for k, v in attrs.items() if k not in ("references", "computed_reference")})
 
 
 class Unreadable(Exception):

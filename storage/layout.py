@@ -4,11 +4,12 @@ A study store is a Zarr (format 3) directory hierarchy, documented for readers
 without leadline in docs/store.md::
 
     <store>/                                 root group
-        attrs: format, schema_version, name, spec, spec_toml, created_utc, writer,
+        attrs: format, format_version, name, spec, spec_toml, created_utc, writer,
                kernel, integrity (the store's record of itself: storage/integrity.py),
                migrated (list of layout upgrades, when any)
     <store>/ensembles/<label>/               one group per ensemble of the spec
-        attrs: label, kind, xi, q, degree, reference[, references]
+        attrs: label, kind, xi, q, degree, reference (as the spec gives it)
+               [, computed_reference (written by `leadline reference --store`)]
     <store>/ensembles/<label>/p003/          one group per depth started (3 digits)
         attrs: p, plan, state ("running" | "done"), started_utc, sessions, repairs,
                result, timings, finished_utc (when done)
@@ -28,7 +29,12 @@ without leadline in docs/store.md::
 ``passes`` and ``inflight`` are dropped once the depth is done (unless the spec
 keeps them).  Schema version 1 (before the growing-contour iteration) stored one
 array per pass, ``passes/<fingerprint>-h<n_high>r<rows>``; its finished depths
-read unchanged, its pass caches are dropped when the store is resumed.
+read unchanged, its pass caches are dropped when the store is resumed.  Schema 2
+had no integrity record (storage/integrity.py).  Schemas 1-3 named the version attribute ``schema_version``, the computed reference energies
+``references``, the stored spec's keys ``gtol``, ``maxiter``, ``memory_mb``,
+``cluster_config`` (and ``spec_version``) and a session's reused passes
+``passes_from_cache``: read under both names, renamed in place when the store is
+opened for writing (:data:`RENAMED_IN_4`).
 """
 
 from __future__ import annotations
@@ -41,7 +47,13 @@ import numpy as np
 
 __all__ = [
     "FORMAT",
+    "VERSION",
+    "OLD_VERSION",
     "SCHEMA_VERSION",
+    "COMPUTED_REFERENCE",
+    "RENAMED_IN_4",
+    "store_version",
+    "current_spec",
     "READABLE_SCHEMAS",
     "ENSEMBLES",
     "PASSES",
@@ -58,11 +70,63 @@ __all__ = [
 
 #: value of the root attribute "format"
 FORMAT = "leadline.study"
+#: root attribute holding the layout version (schema 1 and 2 called it OLD_VERSION)
+VERSION = "format_version"
+OLD_VERSION = "schema_version"
 #: layout version this release writes
-SCHEMA_VERSION = 3
-#: layout versions this release reads (1: one array per cached pass; 2: no integrity record;
-#: both upgraded when a writer opens them)
-READABLE_SCHEMAS = (1, 2, 3)
+SCHEMA_VERSION = 4
+#: layout versions this release reads (1: one array per saved pass; 2: no integrity record;
+#: 3: old attribute names; all upgraded when the store is opened for writing)
+READABLE_SCHEMAS = (1, 2, 3, 4)
+#: ensemble attribute with the GS/ALG computed by `leadline reference --store`
+COMPUTED_REFERENCE = "computed_reference"
+
+#: names schema 4 changed: (where, old name) -> new name
+RENAMED_IN_4 = {
+    ("root", "schema_version"): VERSION,
+    ("ensemble", "references"): COMPUTED_REFERENCE,
+    ("spec", "spec_version"): "format_version",
+    ("spec.optimizer", "gtol"): "gradient_tol",
+    ("spec.optimizer", "maxiter"): "max_iterations",
+    ("spec.compute", "memory_mb"): "memory_mib",
+    ("spec.compute", "cluster_config"): "batch_file",
+    ("session", "passes_from_cache"): "passes_reused",
+}
+#: version of the stored spec's layout (its key "format_version")
+SPEC_FORMAT_VERSION = 2
+
+
+def store_version(attrs: dict):
+    """The layout version of a store's root attributes (either attribute name)."""
+    return attrs.get(VERSION, attrs.get(OLD_VERSION))
+
+
+def _renamed(table: dict, where: str) -> dict:
+    out = {}
+    for key, value in table.items():
+        out[RENAMED_IN_4.get((where, key), key)] = value
+    return out
+
+
+def current_spec(spec: dict) -> dict:
+    """A stored spec with the key names of this release (older stores wrote gtol, maxiter, ...)."""
+    spec = _renamed(dict(spec), "spec")
+    for section in ("optimizer", "compute"):
+        if isinstance(spec.get(section), dict):
+            spec[section] = _renamed(spec[section], f"spec.{section}")
+    if spec.get("format_version", 1) < SPEC_FORMAT_VERSION:
+        spec["format_version"] = SPEC_FORMAT_VERSION
+    return spec
+
+
+def current_ensemble_attrs(attrs: dict) -> dict:
+    """An ensemble group's attributes with this release's names."""
+    return _renamed(dict(attrs), "ensemble")
+
+
+def current_session(stats: dict) -> dict:
+    """A depth's per-session pass counts ("this_session" of its timings) with this release's names."""
+    return _renamed(dict(stats), "session")
 
 ENSEMBLES = "ensembles"
 PASSES = "passes"
@@ -86,7 +150,7 @@ def parse_depth_name(name: str) -> int | None:
 
 
 def batch_name(n: int) -> str:
-    """Array name of the n-th batch of cached passes of a depth: 'b000001'."""
+    """Array name of the n-th batch of saved passes of a depth: 'b000001'."""
     return f"b{int(n):06d}"
 
 

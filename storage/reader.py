@@ -34,7 +34,7 @@ DEPTH_FIELDS = ("p", "value", "gamma", "beta", "gradient_norm", "evaluations", "
 def open_study(path: str | os.PathLike) -> "StudyReader":
     """Open the study store at ``path`` for reading.
 
-    Format and schema version are checked, then every part against the store's own record
+    Format and format version are checked, then every part against the store's own record
     (storage/integrity.py): a store with a finished depth, its spec or an ensemble missing,
     unreadable or altered raises StoreDamagedError naming the parts.
     """
@@ -59,9 +59,9 @@ class StudyReader:
         self.contents = check_contents(self.path, attrs)
         self.attrs = attrs
         self.name: str = attrs["name"]
-        self.spec: dict = attrs["spec"]
+        self.spec: dict = L.current_spec(attrs["spec"])
         self.spec_toml: str = attrs.get("spec_toml", "")
-        self.schema_version: int = attrs["schema_version"]
+        self.format_version: int = attrs[L.VERSION]
         self.created_utc: str | None = attrs.get("created_utc")
         self._root = zarr.open_group(str(self.path), mode="r", zarr_format=3)
 
@@ -75,18 +75,18 @@ class StudyReader:
         for e in self.spec["ensembles"]:
             if e["label"] == label:
                 stored = self.contents.ensembles.get(label, {})
-                return dict(stored) if stored.get("label") == label else _describe(e)
+                return L.current_ensemble_attrs(stored) if stored.get("label") == label else _describe(e)
         raise KeyError(f"no ensemble {label!r} in study {self.name!r} (have {', '.join(self.ensembles())})")
 
     def references(self, label: str):
         """Computed GS/ALG cached in the store by `leadline reference --store`, or None.
 
-        Returns a kernels.reference.References (attribute ``references`` of the
-        ensemble group holds its JSON form).
+        Returns a kernels.reference.References (attribute ``computed_reference`` of the
+        ensemble group holds its JSON form; ``references`` in stores before schema 3).
         """
         from leadline.kernels.reference import References
 
-        data = self.contents.ensembles.get(label, {}).get("references")
+        data = L.current_ensemble_attrs(self.contents.ensembles.get(label, {})).get(L.COMPUTED_REFERENCE)
         return References.from_json(data) if data else None
 
     def _depth_attrs(self, label: str) -> list[tuple[int, dict | None]]:
@@ -224,7 +224,7 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
         "plan": attrs.get("plan"),
         "started_utc": attrs.get("started_utc"),
         "sessions": attrs.get("sessions"),
-        "passes_cached": passes,
+        "passes_saved": passes,
         "evaluations_done": passes // (2 * p),  # p forward and p adjoint passes per evaluation
         "pass_compute_s": seconds,
         "paths": paths,

@@ -100,12 +100,15 @@ def check_study(path: str | os.PathLike) -> dict:
         raise NotAStudyError(f"{path} is not a readable Zarr v3 group: the folder {exc}") from None
     if attrs.get("format") != L.FORMAT:
         raise NotAStudyError(f"{path} is a Zarr group but not a leadline study store (format {attrs.get('format')!r})")
-    version = attrs.get("schema_version")
+    version = L.store_version(attrs)
     if version not in L.READABLE_SCHEMAS:
         raise SchemaVersionError(
-            f"store {path} has schema version {version!r}, this leadline reads versions "
+            f"store {path} has format version {version!r}, this leadline reads versions "
             f"{', '.join(map(str, L.READABLE_SCHEMAS))}; use the leadline release that wrote it"
         )
+    # the version under this release's name, whichever release wrote the store; the spec stays as
+    # stored (the integrity record holds its digest): readers take it through layout.current_spec
+    attrs[L.VERSION] = version
     return attrs
 
 
@@ -116,7 +119,7 @@ def check_contents(path: str | os.PathLike, attrs: dict) -> "I.Contents":
     or an ensemble is missing, unreadable or altered; returns what was read otherwise.
     """
     path = Path(path)
-    contents = I.inspect(path, attrs, int(attrs.get("schema_version", 0)))
+    contents = I.inspect(path, attrs, int(L.store_version(attrs) or 0))
     fatal = contents.fatal
     if fatal and all(f.permission for f in fatal):
         raise StoreDamagedError(
@@ -213,7 +216,7 @@ class StudyStore:
         try:
             attrs = {
                 "format": L.FORMAT,
-                "schema_version": L.SCHEMA_VERSION,
+                L.VERSION: L.SCHEMA_VERSION,
                 "name": name,
                 "spec": spec,
                 "spec_toml": spec_toml,
@@ -307,17 +310,56 @@ class StudyStore:
                     yield ens.name, p, d
 
     def _upgrade(self, notice, contents: "I.Contents") -> None:
+        """Bring an older layout to this release's: schema 1 drops old pass caches, schemas 1-2
+        get the integrity record, schemas 1-3 get this release's attribute names
+        (:data:`layout.RENAMED_IN_4`).  Safe to repeat after a kill: the version attribute is
+        written last."""
+        version = L.store_version(self.root.attrs.asdict())
+        if version == L.SCHEMA_VERSION:
+            return
+        if version in (1, 2):
+            self._upgrade_to_3(notice, contents, version)
+        self._rename_attributes(version)
+
+    def _rename_attributes(self, version) -> None:
+        """Schema 3 -> 4: the attributes get this release's names (values unchanged); the
+        integrity record's digest of the spec follows the renamed spec."""
+        for label in list(self.root.require_group(L.ENSEMBLES).group_keys()):
+            group = self.root[f"{L.ENSEMBLES}/{label}"]
+            attrs = group.attrs.asdict()
+            if "references" in attrs:
+                group.attrs[L.COMPUTED_REFERENCE] = attrs["references"]
+                del group.attrs["references"]
+            for name in list(group.group_keys()):
+                if L.parse_depth_name(name) is None:
+                    continue
+                depth = group[name]
+                timings = depth.attrs.asdict().get("timings")
+                if isinstance(timings, dict) and isinstance(timings.get("this_session"), dict):
+                    timings["this_session"] = L.current_session(timings["this_session"])
+                    depth.attrs["timings"] = timings
+        root = self.root.attrs.asdict()
+        migrated = list(root.get("migrated", []))
+        migrated.append({"from": 3, "to": L.SCHEMA_VERSION, "utc": utc_now(), "renamed": "attribute names"})
+        spec = L.current_spec(root["spec"])
+        changes = {"spec": spec, "migrated": migrated}
+        record = root.get(I.RECORD)
+        if isinstance(record, dict) and isinstance(record.get("identity"), dict):
+            changes[I.RECORD] = dict(record, identity=dict(record["identity"], spec=I.digest(spec)))
+        self.root.attrs.update(changes)
+        self.root.attrs[L.VERSION] = L.SCHEMA_VERSION
+        if L.OLD_VERSION in self.root.attrs:
+            del self.root.attrs[L.OLD_VERSION]
+
+    def _upgrade_to_3(self, notice, contents: "I.Contents", version) -> None:
         """Schema 1 -> 3: keep every depth record, drop the pass caches and ledgers of the old layout.
         Schema 1 or 2 -> 3: write the integrity record from what is on disk (it was checked
         for readability and for angle arrays that agree with their results).
 
-        Old cached passes were keyed for the full-contour iteration (one plan
+        Old saved passes were keyed for the full-contour iteration (one plan
         per depth); the current iteration never asks for them, and reusing them
         would mix results of different plans.  Safe to repeat after a kill.
         """
-        version = self.root.attrs.get("schema_version")
-        if version == L.SCHEMA_VERSION:
-            return
         if I.RECORD not in self.root.attrs:
             # finished depths are added by _reconcile, which runs next
             self.root.attrs[I.RECORD] = I.new_record(self.root.attrs.asdict(), contents.ensembles)
@@ -332,12 +374,12 @@ class StudyStore:
                     shutil.rmtree(d / sub, ignore_errors=True)
                     depths.add((label, p))
         migrated = list(self.root.attrs.get("migrated", []))
-        migrated.append({"from": version, "to": L.SCHEMA_VERSION, "utc": utc_now(), "passes_dropped": dropped})
-        self.root.attrs.update({"schema_version": L.SCHEMA_VERSION, "migrated": migrated})
+        migrated.append({"from": version, "to": 3, "utc": utc_now(), "passes_dropped": dropped})
+        self.root.attrs.update({"migrated": migrated})
         if depths:
             notice(
                 f"store {self.path} was written by an older leadline (schema {version}): finished depths are "
-                f"kept; {dropped} cached passes of {len(depths)} depths no longer apply and were dropped "
+                f"kept; {dropped} saved passes of {len(depths)} depths no longer apply and were dropped "
                 "(an unfinished depth restarts from its recorded start)"
             )
 
@@ -405,11 +447,11 @@ class StudyStore:
 
     def save_references(self, label: str, references: dict) -> None:
         """Cache computed reference energies (kernels.reference.References.to_json())
-        in the ensemble's attribute ``references``."""
+        in the ensemble's attribute ``computed_reference``."""
         self.lock.verify()
         self.root.require_group(L.ENSEMBLES)
         group = self.root.require_group(f"{L.ENSEMBLES}/{label}")
-        group.attrs["references"] = references
+        group.attrs[L.COMPUTED_REFERENCE] = references
 
     def finished_depth(self, label: str, p: int) -> dict | None:
         """The stored result of depth p (attrs "result"), or None if not done."""
@@ -425,7 +467,7 @@ class StudyStore:
         """The working record of depth p (created on first use; sessions counted).
 
         ``plan`` (optional) is recorded in the depth's attribute "plan" for
-        information only: every cached pass and ledger carries its own plan
+        information only: every saved pass and ledger carries its own plan
         (each step of an evaluation may have its own).
         """
         self.lock.verify()
@@ -478,7 +520,7 @@ class StudyStore:
 
 
 class _Entry:
-    """Index entry of one cached pass: which batch, where in it, and its record."""
+    """Index entry of one saved pass: which batch, where in it, and its record."""
 
     __slots__ = ("batch", "record")
 
@@ -490,7 +532,7 @@ class _Entry:
 class DepthStore:
     """Pass batches, pending passes and in-flight ledger of one depth of one ensemble.
 
-    Cached passes are written in batches (one array per batch); computed passes
+    Saved passes are written in batches (one array per batch); computed passes
     wait in memory until :meth:`flush` (called by the checkpoint layer when the
     policy says so).  The index of the batches on disk is read once, at open.
     """
@@ -589,7 +631,7 @@ class DepthStore:
         if problem is None:
             self._seen[key] = (float(record.get("wall_s", 0.0)), float(record.get("paths", 0.0)))
             return total
-        self.note_repair("pass cache entry dropped", key, detail=problem)
+        self.note_repair("saved pass dropped", key, detail=problem)
         del self._index[key]
         return None
 

@@ -54,7 +54,7 @@ class CalibrationRow:
 
 
 def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
-              backtest_growth: float = BACKTEST_GROWTH) -> list[CalibrationRow]:
+              back_test_growth: float = BACKTEST_GROWTH) -> list[CalibrationRow]:
     """For each k: the extrapolation of p <= k as `leadline table --at-depth k+1..pmax` forms it.
 
     The table declines below MIN_DEPTHS depths; the range it would print is computed anyway
@@ -69,7 +69,7 @@ def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
         values = [ladder[p] for p in depths]
         later = list(range(k + 1, pmax + 1))
         kwargs = dict(ground_state=PARISI, ground_state_uncertainty=PARISI_UNCERTAINTY, upper_bound=bound,
-                      at_depths=later, target_ratios=(), backtest_growth=backtest_growth)
+                      at_depths=later, target_ratios=(), back_test_growth=back_test_growth)
         table = extrapolate(depths, values, **kwargs)
         forced = table if table.declined is None else extrapolate(depths, values, min_depths=0, **kwargs)
         lim = forced.limit
@@ -110,7 +110,7 @@ def render_growth_scan(growths=(0.25, 0.35, 0.4, 0.5, 0.75, 1.0)) -> str:
     lines = ["| growth | every later V_p* and Parisi in range (k = 6..12) | worst margin | V_inf width at k = 8 | V_16 width at k = 8 |",
              "|-------:|--------------------------------------------------|-------------:|---------------------:|--------------------:|"]
     for g in growths:
-        rows = calibrate(backtest_growth=g)
+        rows = calibrate(back_test_growth=g)
         ok = all(r.later_contained == len(r.later) and r.parisi_contained for r in rows)
         worst = min(r.worst_margin for r in rows)
         r8 = next(r for r in rows if r.k == 8)

@@ -143,7 +143,7 @@ def test_weights_beyond_the_range_are_refused_with_the_scaling_law(tmp_path):
 
 def test_flat_start_is_not_taken_for_an_optimum():
     # Max-9-XORSAT, D = 300, p = 1: the optimum beats the trivial value 1/2 and every point of a grid
-    out = ok_json("optimize", "--xorsat", "9", "--degree", "300", "--depth", "1")
+    out = ok_json("optimize", "--sparse-q", "9", "--degree", "300", "--depth", "1")
     assert out["converged"] is True and out["value"] > 0.52
     from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
 
@@ -246,7 +246,7 @@ def test_overflowing_inputs_are_one_line(tmp_path):
         (["transfer", "small.txt", "--depth", "31", "--output", "a.csv"], "depth p = 31 is beyond 30"),
         (["transfer", "small.txt", "--depth", "5000"], "depth p = 5000 is beyond 30"),
         # periodic angles so large that their own rounding (1e300 x 2.2e-16 rad) leaves V undefined
-        (["evaluate", "--xorsat", "3", "--degree", "4", "--gamma", "1e300", "--beta", "0.3"], "reduce it modulo 2 pi"),
+        (["evaluate", "--sparse-q", "3", "--degree", "4", "--gamma", "1e300", "--beta", "0.3"], "reduce it modulo 2 pi"),
         (["evaluate", "--xi", "2:0.5", "--gamma", "0.3", "--beta", "1e300"], "reduce it modulo pi"),
     ]
     for args, fragment in cases:
@@ -270,10 +270,10 @@ def test_one_line_in_a_real_process(tmp_path):
 def test_messages_point_the_right_way(tmp_path):
     (tmp_path / "p2.json").write_text(json.dumps({"format": "leadline.angles", "version": 1, "xi": "2:0.5", "p": 2,
                                                   "gamma": [0.38, 0.66], "beta": [0.49, 0.27]}))
-    line = refused(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--gtol", "0"], "tolerance <= 0 never")
+    line = refused(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--gradient-tol", "0"], "tolerance <= 0 never")
     assert "larger tolerance" not in line
-    refused(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--memory-mb", "1e-9"], "at least 0.002")
-    refused(tmp_path, ["evaluate", "--xi", "2:0.5", "--gamma", "1", "--beta", "1", "--memory-mb", "0.001"], "at least 0.002")
+    refused(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--memory-mib", "1e-9"], "at least 0.002")
+    refused(tmp_path, ["evaluate", "--xi", "2:0.5", "--gamma", "1", "--beta", "1", "--memory-mib", "0.001"], "at least 0.002")
     line = refused(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--angles", "p2.json"], "depth 3 (warm start")
     assert "depth 0" not in line
 
@@ -325,8 +325,8 @@ def test_strict_number_parsing(tmp_path):
         (["evaluate", "--xi", "2:0.5", "--gamma", "1_0", "--beta", "0.2"], "is not a number"),
         (["optimize", "--xi", "2:0.5", "--depth", "1_0"], "is not a whole number"),
         (["optimize", "--xi", "2:0.5", "--depth", "\u0661"], "is not a whole number"),
-        (["evaluate", "--xi", "2:0.5", "--gamma", "1", "--beta", "1", "--memory-mb", "1_000"], "is not a number"),
-        (["evaluate", "--xorsat", "3", "--degree", "1_000", "--gamma", "0.1", "--beta", "0.2"], "--degree"),
+        (["evaluate", "--xi", "2:0.5", "--gamma", "1", "--beta", "1", "--memory-mib", "1_000"], "is not a number"),
+        (["evaluate", "--sparse-q", "3", "--degree", "1_000", "--gamma", "0.1", "--beta", "0.2"], "--degree"),
         (["transfer", "s.json"], "JSON numbers, not strings"),
         (["transfer", "arab.txt"], "is not a whole number"),
         (["transfer", "under.txt"], "is not a number"),

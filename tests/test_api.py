@@ -65,14 +65,14 @@ def test_sparse_maxcut_p1_closed_form(D):
     exact = 0.5 + 0.5 * D**-0.5 * ((D - 1) / D) ** ((D - 1) / 2)  # Wang et al., PRA 97, 022304 (2018)
     ev = leadline.evaluate_sparse(2, D, [g], [b])
     assert abs(ev.value - exact) < 1e-10
-    cli = _cli_json("evaluate", "--xorsat", "2", "--degree", str(D), "--gamma", repr(g), "--beta", repr(b))
+    cli = _cli_json("evaluate", "--sparse-q", "2", "--degree", str(D), "--gamma", repr(g), "--beta", repr(b))
     assert _strip(ev.to_json()) == {k: v for k, v in _strip(cli).items() if k != "ensemble"}
 
 
 def test_optimize_sparse_record_is_the_cli_record():
     opt = leadline.optimize_sparse(2, 3, 1)
     assert round(opt.value, 4) == 0.6925  # Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014)
-    cli = _cli_json("optimize", "--xorsat", "2", "--degree", "3", "--depth", "1")
+    cli = _cli_json("optimize", "--sparse-q", "2", "--degree", "3", "--depth", "1")
     assert set(opt.to_json()) == set(cli)
     assert opt.to_json()["ensemble"] == cli["ensemble"] and opt.to_json()["value"] == cli["value"]
 

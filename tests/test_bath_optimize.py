@@ -60,7 +60,7 @@ def test_bath_optimizer_finds_the_exact_optimum(xi, p):
     assert abs(got.value - exact.value) <= 1e-6, (got.value, exact.value)
     # the estimate is honest: the reported value is not above the optimum by more than it
     assert got.value <= exact.value + got.error_estimate + 1e-9
-    # stopped near the optimum (a generic point has |grad| ~ 0.1 .. 1), not at the iteration cap
+    # stopped near the optimum (a generic point has gradient norm ~ 0.1 .. 1), not at the iteration cap
     assert got.error_estimate <= 1e-6 and got.gradient_norm <= 1e-2 and got.converged
     if xi == "2:0.5":
         assert round(got.value, 4) == SK_TABLE_1[p]
@@ -166,7 +166,7 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path):
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
     (line,) = out["finished_now"]
-    assert line["p"] == 3 and line["timings"]["bath_evaluations_from_checkpoint"] > 10
+    assert line["p"] == 3 and line["timings"]["bath_evaluations_reused"] > 10
     got, want = _depths(store), _depths(tmp_path / "ref" / "ref.zarr")
     for p in (1, 2, 3):
         assert got[p]["value"] == want[p]["value"]
@@ -179,9 +179,9 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path):
 
 # ------------------------------------------------------------------ bad input
 BAD_OPTIMIZE = {
-    "exact option with bath": (["--method", "bath", "--memory-mb", "64"], "--memory-mb sets the chunk plan"),
+    "exact option with bath": (["--method", "bath", "--memory-mib", "64"], "--memory-mib sets the chunk plan"),
     "bath option with exact": (["--tolerance", "1e-8"], "--tolerance applies only to --method bath"),
-    "bath on sparse": (["--method", "bath", "--xorsat", "3", "--degree", "4"], "not --xorsat/--degree"),
+    "bath on sparse": (["--method", "bath", "--sparse-q", "3", "--degree", "4"], "not --sparse-q/--degree"),
     "unknown method": (["--method", "fast"], "--method must be one of exact, bath"),
     "fock too small": (["--method", "bath", "--fock", "1"], "--fock must be between 4 and 200"),
 }
@@ -191,7 +191,7 @@ BAD_OPTIMIZE = {
 def test_bad_optimize_options_one_line_exit_2(case, tmp_path):
     args, needle = BAD_OPTIMIZE[case]
     base = ["optimize", "--depth", "3", "--output", str(tmp_path / "out.json")]
-    if "--xorsat" not in args:
+    if "--sparse-q" not in args:
         base += ["--xi", "2:0.5"]
     r = _run([*base, *args])
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1 and needle in r.stderr, r.stderr

@@ -135,7 +135,7 @@ def test_optimize_json_and_angle_file(tmp_path):
     for key in ("gamma", "beta", "p", "xi", "gradient_norm", "evaluations", "wall_time_s"):
         assert key in out
     saved = json.loads(out_file.read_text())
-    assert saved["format"] == "leadline.angles" and saved["version"] == 1 and saved["p"] == 2
+    assert saved["format"] == "leadline.angles" and saved["format_version"] == 1 and saved["p"] == 2
     # evaluate reads the file back and reproduces the value
     r2 = run("evaluate", "--angles", str(out_file), "--json")
     assert r2.returncode == 0, r2.stderr
@@ -182,7 +182,7 @@ def test_dense_optimize_on_a_local_cluster_matches_in_process():
     """`optimize` with its passes on a Dask LocalCluster (worker processes on 127.0.0.1):
     the same optimum as in process, and the published value (Quantum 6, 759 (2022), Table 1:
     V_2* = 0.4075 for SK)."""
-    args = ["optimize", "--xi", "2:0.5", "--depth", "2", "--restarts", "0", "--memory-mb", "0.004", "--json"]
+    args = ["optimize", "--xi", "2:0.5", "--depth", "2", "--restarts", "0", "--memory-mib", "0.004", "--json"]
     here = run(*args)
     assert here.returncode == 0, here.stderr
     there = subprocess.run([*LEADLINE, *args, "--executor", "local", "--workers", "1", "--quiet"],

@@ -226,7 +226,7 @@ def test_external_scheduler_through_cli(process_cluster, reference_p5):
 
     with Client(process_cluster.address, timeout=10, set_as_default=False) as client:
         process_cluster.wait_for_workers(client, 2)
-        # --memory-mb 0.02 gives the plan of P5_PLAN's size class: many chunks
+        # --memory-mib 0.02 gives the plan of P5_PLAN's size class: many chunks
         budget = int(0.02 * 2**20)
         plan = plan_chunks(5, budget)
         assert plan.n_chunks >= 16
@@ -235,7 +235,7 @@ def test_external_scheduler_through_cli(process_cluster, reference_p5):
         cmd = LEADLINE + [
             "evaluate", "--xi", MIXED.spec(),
             "--gamma", ",".join(repr(float(x)) for x in P5_ANGLES[0]), "--beta", ",".join(repr(float(x)) for x in P5_ANGLES[1]),
-            "--gradient", "--json", "--memory-mb", "0.02", "--scheduler", process_cluster.address,
+            "--gradient", "--json", "--memory-mib", "0.02", "--scheduler", process_cluster.address,
         ]
         out = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
         assert out.returncode == 0, out.stderr
@@ -451,7 +451,7 @@ OVERNIGHT_SLURM = """
 system = "slurm"
 jobs = 8
 walltime = "10:00:00"
-wait-for-workers = 3600
+wait-for-workers-s = 3600
 
 [job]
 cores = 32
@@ -507,14 +507,14 @@ def test_cli_batch_mode_refuses_without_submit_command(tmp_path):
     (tmp_path / "empty-bin").mkdir()
     env = {**os.environ, "PATH": str(tmp_path / "empty-bin")}  # no sbatch here: nothing can be submitted
     out = subprocess.run(
-        LEADLINE + ["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3927", "--cluster-config", str(cfg)],
+        LEADLINE + ["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3927", "--batch-file", str(cfg)],
         capture_output=True, text=True, timeout=60, env=env,
     )
     assert out.returncode == 2 and "sbatch" in out.stderr and len(out.stderr.strip().splitlines()) == 1
     bad = tmp_path / "bad.toml"
     bad.write_text('system = "slurm"\njobs = 0\n')
     out = subprocess.run(
-        LEADLINE + ["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3927", "--cluster-config", str(bad)],
+        LEADLINE + ["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3927", "--batch-file", str(bad)],
         capture_output=True, text=True, timeout=60,
     )
     assert out.returncode == 2 and "jobs must be an integer" in out.stderr

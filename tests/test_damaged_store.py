@@ -45,7 +45,7 @@ restarts = 0
 
 [compute]
 executor = "inprocess"
-memory-mb = 0.004
+memory-mib = 0.004
 
 [checkpoint]
 interval-s = 0
@@ -318,6 +318,7 @@ def test_store_written_before_the_record_opens_and_gets_one(finished, work):
     a writer adds the record silently, after which an edit is detected."""
     def older(attrs):
         del attrs["integrity"]
+        del attrs["format_version"]  # schema 2 named it schema_version
         attrs["schema_version"] = 2
     edit_attrs(work / "s.zarr", older)
     r = run(["status", "s.zarr"], cwd=work)
@@ -325,7 +326,7 @@ def test_store_written_before_the_record_opens_and_gets_one(finished, work):
     r = run(["resume", "s.zarr", "--quiet"], cwd=work)
     assert r.returncode == 0 and r.stderr == "", r.stderr
     attrs = zarr_json(work / "s.zarr/zarr.json")["attributes"]
-    assert attrs["schema_version"] == 3 and sorted(attrs["integrity"]["finished"]["sk"]) == ["1", "2"]
+    assert attrs["format_version"] == 4 and "schema_version" not in attrs and sorted(attrs["integrity"]["finished"]["sk"]) == ["1", "2"]
     same_as_reference(finished, work / "s.zarr")
     edit_attrs(work / "s.zarr", lambda a: a["spec"]["depths"].update(pmax=40))
     one_line(run(["status", "s.zarr"], cwd=work), 2, "root attribute 'spec' differs")
@@ -341,6 +342,7 @@ def test_store_without_record_and_an_unusable_spec_does_not_run(work, edit, says
     `sweep` would refuse is refused by `resume` as well, before anything runs."""
     def older(attrs):
         del attrs["integrity"]
+        del attrs["format_version"]  # schema 2 named it schema_version
         attrs["schema_version"] = 2
         edit(attrs["spec"])
     edit_attrs(work / "s.zarr", older)

@@ -29,7 +29,7 @@ from leadline.kernels.extrapolate import (
     SCALE_BEST_FACTOR,
     SCALE_GAIN_FRACTION,
     SPREAD_MEANING,
-    backtest_weight,
+    back_test_weight,
     default_holdout,
     depth_for_ratio,
     extrapolate,
@@ -126,19 +126,19 @@ def test_backtest_refits_on_earlier_depths_and_predicts_the_held_out_ones():
     h = default_holdout(DEPTHS.size)
     assert ex.holdout == h == 3
     for w in ex.fits:
-        bt = w.backtest
+        bt = w.back_test
         assert bt is not None
         assert bt.held_out == (10, 11, 12)
         assert bt.fit.family == w.family and bt.fit.k == w.fit.k and bt.fit.depths[-1] == 9
         assert bt.predicted == pytest.approx(list(bt.fit.predict(np.array(bt.held_out))), abs=0)
         assert bt.actual == tuple(values[-3:])
         assert bt.max_error == max(abs(e) for e in bt.errors)
-    errors = [w.backtest_error for w in ex.fits]
+    errors = [w.back_test_error for w in ex.fits]
     gain = values[-1] - values[-4]
     assert ex.held_out_gain == pytest.approx(gain)
     assert ex.weight_scale == pytest.approx(max(SCALE_GAIN_FRACTION * gain, SCALE_BEST_FACTOR * min(errors)))
     for w in ex.fits:
-        assert w.score == backtest_weight(w.backtest_error, ex.weight_scale)
+        assert w.score == back_test_weight(w.back_test_error, ex.weight_scale)
     assert sum(w.weight for w in ex.fits) == pytest.approx(1.0)
 
 
@@ -159,7 +159,7 @@ def test_power_law_ladders_are_recovered_by_the_power_family_and_covered(alpha, 
     fit = best[FREE_POWER].fit
     assert fit.limit == pytest.approx(V_INF, abs=5e-4)
     assert fit.params[2] == pytest.approx(alpha, abs=5e-3)
-    assert best[FREE_POWER].backtest_error < 1e-5
+    assert best[FREE_POWER].back_test_error < 1e-5
     assert ex.limit.covers(V_INF), (ex.limit, alpha, seed)
     if alpha == 0.5:
         # a polynomial in 1/p cannot follow p^-1/2: every polynomial fit is biased low
@@ -172,7 +172,7 @@ def test_polynomial_ladder_is_recovered_by_the_polynomials_and_covered(seed):
     best = ex.best_by_family()
     for fam in ("quadratic-in-1/p", "cubic-in-1/p"):
         assert best[fam].fit.limit == pytest.approx(V_INF, abs=1e-4)
-        assert best[fam].backtest_error < 1e-5
+        assert best[fam].back_test_error < 1e-5
     assert best["quadratic-in-1/p"].fit.params[1:] == pytest.approx((-0.5, 0.1), abs=1e-2)
     assert ex.limit.covers(V_INF)
     assert ex.limit.central == pytest.approx(V_INF, abs=2e-3)
@@ -236,9 +236,9 @@ def test_headline_is_the_weighted_mixture_of_the_fits_predictions():
         assert (est.low, est.central, est.high) == pytest.approx(expected, abs=1e-9)
     # each family's share: its windows split it, so a family with more windows does not outvote the others
     for x in used:
-        same = [y for y in ex.fits if y.family == x.family and y.backtest is not None]
+        same = [y for y in ex.fits if y.family == x.family and y.back_test is not None]
         assert x.weight == pytest.approx(x.score / len(same) / sum(
-            y.score / len([z for z in ex.fits if z.family == y.family and z.backtest is not None])
+            y.score / len([z for z in ex.fits if z.family == y.family and z.back_test is not None])
             for y in used))
     js = ex.to_json()
     assert js["spread_meaning"] == SPREAD_MEANING and "not a confidence interval" in SPREAD_MEANING
@@ -274,7 +274,7 @@ def test_few_depths():
     ex = extrapolate([1, 2], [0.3, 0.4])
     assert ex.limit is None and not ex.used
     ex = extrapolate([1, 2, 3, 4], [0.3, 0.4, 0.45, 0.47])
-    assert all(w.backtest is None for w in ex.fits if w.fit.k > 3)
+    assert all(w.back_test is None for w in ex.fits if w.fit.k > 3)
     with pytest.raises(ValueError):
         extrapolate([1, 1], [0.3, 0.4])
     with pytest.raises(ValueError):
@@ -339,7 +339,7 @@ def test_sk_predicted_ratio_at_p160_is_held_against_the_published_value():
 def test_sk_backtest_numbers_are_reproducible():
     a, b = sk_extrapolation(), sk_extrapolation()
     assert json.dumps(a.to_json()) == json.dumps(b.to_json())
-    assert a.holdout == 3 and a.fits[0].backtest.held_out == (10, 11, 12)
+    assert a.holdout == 3 and a.fits[0].back_test.held_out == (10, 11, 12)
     # regression values recorded from this code on tests/sk_optima.csv (not an external source):
     # a change in the fitting or the back-test rule shows up here
     recorded = {
@@ -349,7 +349,7 @@ def test_sk_backtest_numbers_are_reproducible():
         (FREE_POWER, 4): 6.862319941126627e-04,
         (ANCHORED_POWER, 3): 1.5309058119988839e-03,
     }
-    got = {(w.family, w.fit.k): w.backtest_error for w in a.fits if w.backtest is not None}
+    got = {(w.family, w.fit.k): w.back_test_error for w in a.fits if w.back_test is not None}
     for key, value in recorded.items():
         assert got[key] == pytest.approx(value, rel=1e-6), key
 
@@ -445,26 +445,26 @@ def test_a_1e_5_change_in_one_back_test_error_does_not_switch_the_headline():
         return extrapolate(depths, v, upper_bound=bound)
 
     def widest_cubic(ex):
-        (w,) = [w for w in ex.fits if w.family == "cubic-in-1/p" and w.backtest and w.backtest.fit.depths[0] == 1]
+        (w,) = [w for w in ex.fits if w.family == "cubic-in-1/p" and w.back_test and w.back_test.fit.depths[0] == 1]
         return w
 
     base = run(values[0])
-    others = {(w.family, w.fit.k): w.backtest_error for w in base.fits if w.backtest and w is not widest_cubic(base)}
+    others = {(w.family, w.fit.k): w.back_test_error for w in base.fits if w.back_test and w is not widest_cubic(base)}
     # the back-test prediction is linear in V_1: solve for the V_1 that puts the error at the scale
-    e0 = widest_cubic(base).backtest.errors
-    e1 = widest_cubic(run(values[0] + 1e-3)).backtest.errors
+    e0 = widest_cubic(base).back_test.errors
+    e1 = widest_cubic(run(values[0] + 1e-3)).back_test.errors
     i = int(np.argmax(np.abs(e0)))
     slope = (e1[i] - e0[i]) / 1e-3
     target = math.copysign(base.weight_scale, e0[i])
     v1 = values[0] + (target - e0[i]) / slope
     at = run(v1)
-    assert widest_cubic(at).backtest_error == pytest.approx(base.weight_scale, rel=1e-6)
+    assert widest_cubic(at).back_test_error == pytest.approx(base.weight_scale, rel=1e-6)
     estimates = []
     for delta in (-1e-5, 0.0, 1e-5):
         ex = run(v1 + math.copysign(1.0, e0[i]) * delta / slope)  # |error| = scale + delta
-        assert {(w.family, w.fit.k): w.backtest_error for w in ex.fits
-                if w.backtest and w is not widest_cubic(ex)} == pytest.approx(others, rel=1e-12)
-        assert widest_cubic(ex).backtest_error == pytest.approx(base.weight_scale + delta, abs=1e-9)
+        assert {(w.family, w.fit.k): w.back_test_error for w in ex.fits
+                if w.back_test and w is not widest_cubic(ex)} == pytest.approx(others, rel=1e-12)
+        assert widest_cubic(ex).back_test_error == pytest.approx(base.weight_scale + delta, abs=1e-9)
         assert ex.declined is None and ex.limit is not None
         estimates.append(ex.limit)
     width = estimates[1].high - estimates[1].low
@@ -475,12 +475,12 @@ def test_a_1e_5_change_in_one_back_test_error_does_not_switch_the_headline():
 
 def test_weights_fall_smoothly_with_the_back_test_error():
     scale = 2.0e-3
-    assert backtest_weight(0.0, scale) == 1.0 and backtest_weight(scale, scale) == pytest.approx(0.5)
+    assert back_test_weight(0.0, scale) == 1.0 and back_test_weight(scale, scale) == pytest.approx(0.5)
     grid = np.linspace(0, 4 * scale, 4001)
-    w = np.array([backtest_weight(e, scale) for e in grid])
+    w = np.array([back_test_weight(e, scale) for e in grid])
     assert np.all(np.diff(w) < 0)  # strictly falling
     assert np.max(np.abs(np.diff(w))) < 2e-3  # no jump anywhere: |dw/de| <= 1.3 / scale
-    assert backtest_weight(scale + 1e-5, scale) == pytest.approx(backtest_weight(scale - 1e-5, scale), abs=1e-2)
+    assert back_test_weight(scale + 1e-5, scale) == pytest.approx(back_test_weight(scale - 1e-5, scale), abs=1e-2)
 
 
 # ------------------------------------------------ per-depth uncertainties

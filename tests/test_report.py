@@ -173,7 +173,7 @@ def test_csv_parses_and_holds_the_stored_values(study, report):
 
 def test_json_is_one_object_with_the_stored_values(study, report):
     obj = json.loads(render_json(report))
-    assert obj["format"] == "leadline.table" and obj["version"] == 3
+    assert obj["format"] == "leadline.table" and obj["format_version"] == 4
     assert [e["label"] for e in obj["ensembles"]] == study.ensembles()
     for ens in obj["ensembles"]:
         stored = study.depths(ens["label"])
@@ -181,7 +181,7 @@ def test_json_is_one_object_with_the_stored_values(study, report):
     assert "not bounds" in obj["note"]
     sk = obj["ensembles"][0]
     assert sk["extrapolation"]["fits"][0]["family"] == "linear-in-1/p"
-    assert sk["extrapolation"]["limit"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
+    assert sk["extrapolation"]["v_inf"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
 
 
 @pytest.fixture()
@@ -387,13 +387,13 @@ def test_rendering_of_the_published_sk_series_held_in_memory():
     assert "Predicted at given depths" in text and "| 160 |" in text and "ratio 0.99" in text
     rows = list(csv.DictReader(io.StringIO(render_csv(report))))
     kinds = {r["record"] for r in rows}
-    assert {"fit", "backtest", "extrapolation", "at_depth", "depth_for"} <= kinds
+    assert {"fit", "back_test", "extrapolation", "at_depth", "depth_for"} <= kinds
     for r in rows:
-        if r["record"] == "backtest":
-            assert float(r["backtest_error"]) == pytest.approx(float(r["value"]) - SK_PUBLISHED[int(r["p"])], abs=1e-15)
+        if r["record"] == "back_test":
+            assert float(r["back_test_error"]) == pytest.approx(float(r["value"]) - SK_PUBLISHED[int(r["p"])], abs=1e-15)
     obj = json.loads(render_json(report))
     fits = obj["ensembles"][0]["extrapolation"]["fits"]
-    assert all(f["backtest"]["held_out"] == [7, 8] for f in fits if f["backtest"])
+    assert all(f["back_test"]["held_out"] == [7, 8] for f in fits if f["back_test"])
 
 
 # ------------------------------------------- computed GS / ALG (kernels.reference)
@@ -551,7 +551,7 @@ def test_plot_limits_are_set_by_the_data_and_the_used_fits(drawn, tmp_path):
     assert value_axis_limits(replace(report, ensembles=[kept])) == pytest.approx((lo, hi))
     (inset,) = [a for a in ax.child_axes if getattr(a, "get_title", lambda: "")().startswith("zoom")]
     x0, x1 = inset.get_xlim()
-    last = [r.inverse_depth for r in rep.rows[-5:]]
+    last = [r.inv_p for r in rep.rows[-5:]]
     assert x0 < 0 and x1 == pytest.approx(inset_extent(report)) and all(x0 < x < x1 for x in last)
     assert 1.0 / 7 > x1  # depth 7 and below are outside the inset: it shows the last depths
     ilo, ihi = inset.get_ylim()

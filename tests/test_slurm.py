@@ -75,7 +75,7 @@ def batch(tmp_path):
     tag = f"leadline-test-{uuid.uuid4().hex[:12]}"
     config = tmp_path / "slurm.toml"
     config.write_text(
-        'system = "slurm"\njobs = 1\nwalltime = "00:15:00"\nwait-for-workers = 120\n\n'
+        'system = "slurm"\njobs = 1\nwalltime = "00:15:00"\nwait-for-workers-s = 120\n\n'
         "[job]\ncores = 1\nmemory = \"2GB\"\ninterface = \"lo\"\n"
         f'local-directory = "{tmp_path}"\nlog-directory = "{tmp_path / "logs"}"\n'
         f'directives = ["--comment={tag}"]\n'
@@ -103,10 +103,10 @@ def _run(args, env=None, timeout=300):
 def test_evaluate_on_slurm_matches_in_process(batch):
     config, tag = batch
     args = ["evaluate", "--xi", "2:0.5,3:0.3,4:0.2", "--gamma", "0.21,0.35,0.42,0.47", "--beta", "0.55,0.44,0.3,0.15",
-            "--gradient", "--json", "--memory-mb", "0.05", "--quiet"]
+            "--gradient", "--json", "--memory-mib", "0.05", "--quiet"]
     here = _run(args)
     assert here.returncode == 0, here.stderr
-    there = _run([*args, "--cluster-config", str(config)])
+    there = _run([*args, "--batch-file", str(config)])
     assert there.returncode == 0, there.stderr
     a, b = json.loads(here.stdout), json.loads(there.stdout)
     assert a["plan"] == b["plan"] and a["plan"]["n_high"] >= 2  # several chunks per pass went to the job
@@ -129,7 +129,7 @@ restarts = 0
 seed = 0
 [compute]
 {compute}
-memory-mb = 0.004
+memory-mib = 0.004
 [checkpoint]
 interval-s = 0  # every pass keeps a chunk ledger, so the kill lands mid-pass after chunk records
 [[ensemble]]
@@ -141,7 +141,7 @@ xi = "2:0.5"
 def test_sweep_killed_on_slurm_resumes_to_in_process_values(batch, tmp_path):
     config, tag = batch
     (tmp_path / "study.toml").write_text(
-        SPEC.format(store="batch.zarr", compute=f'executor = "batch"\ncluster-config = "{config}"'))
+        SPEC.format(store="batch.zarr", compute=f'executor = "batch"\nbatch-file = "{config}"'))
     (tmp_path / "ref").mkdir()
     (tmp_path / "ref" / "study.toml").write_text(SPEC.format(store="ref.zarr", compute='executor = "inprocess"'))
     ref = _run(["sweep", str(tmp_path / "ref" / "study.toml"), "--quiet"])
@@ -165,7 +165,7 @@ def test_sweep_killed_on_slurm_resumes_to_in_process_values(batch, tmp_path):
     status = json.loads(_run(["status", str(tmp_path / "batch.zarr"), "--json"]).stdout)
     assert not status["complete"] and not status["lock"]["alive"]
 
-    resumed = _run(["resume", str(tmp_path / "batch.zarr"), "--cluster-config", str(config), "--quiet"])
+    resumed = _run(["resume", str(tmp_path / "batch.zarr"), "--batch-file", str(config), "--quiet"])
     assert resumed.returncode == 0, resumed.stderr
     got = {d["p"]: d for d in open_study(tmp_path / "batch.zarr").depths("sk")}
     want = {d["p"]: d for d in open_study(tmp_path / "ref" / "ref.zarr").depths("sk")}

@@ -286,7 +286,7 @@ def test_maxcut_3regular_published_optima_to_p6():
     t <= v < t + 1e-4 for the truncated table value t (arXiv:2503.12789, Table 1)."""
     from leadline.jobs.api import sparse_ladder
 
-    run = sparse_ladder(optimize_sparse, 2, 3, 6, None, restarts=None, seed=0, gtol=1e-9, maxiter=500, ensemble=None)
+    run = sparse_ladder(optimize_sparse, 2, 3, 6, None, restarts=None, seed=0, gradient_tol=1e-9, max_iterations=500, ensemble=None)
     for row, t in zip(run.ladder, PUBLISHED_MAXCUT_D3):
         assert t <= row["value"] < t + 1e-4, (row["p"], row["value"], t)
 
@@ -340,12 +340,12 @@ def _cli(*args):
 
 def test_cli_evaluate_and_optimize():
     g = math.atan(1 / math.sqrt(2))
-    r = _cli("evaluate", "--xorsat", "2", "--degree", "3", "--gamma", f"{g:.15f}", "--beta", f"{math.pi / 8:.15f}", "--gradient", "--json")
+    r = _cli("evaluate", "--sparse-q", "2", "--degree", "3", "--gamma", f"{g:.15f}", "--beta", f"{math.pi / 8:.15f}", "--gradient", "--json")
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
     assert abs(out["value"] - wang_p1(3)) < 1e-12  # Wang et al., PRA 97, 022304 (2018)
     assert out["q"] == 2 and out["degree"] == 3 and max(abs(x) for x in out["gradient"]["gamma"]) < 1e-9
-    r = _cli("optimize", "--xorsat", "2", "--degree", "3", "--depth", "2", "--json")
+    r = _cli("optimize", "--sparse-q", "2", "--degree", "3", "--depth", "2", "--json")
     assert r.returncode == 0, r.stderr
     assert round(json.loads(r.stdout)["value"], 4) == 0.7559  # Wurtz, Love, PRA 103, 042612 (2021)
 
@@ -353,12 +353,12 @@ def test_cli_evaluate_and_optimize():
 @pytest.mark.parametrize(
     "args",
     [
-        ["evaluate", "--xorsat", "1", "--degree", "3", "--gamma", "0.1", "--beta", "0.1"],
-        ["evaluate", "--xorsat", "3", "--degree", "1", "--gamma", "0.1", "--beta", "0.1"],
-        ["evaluate", "--xi", "3:1", "--xorsat", "3", "--degree", "4", "--gamma", "0.1", "--beta", "0.1"],
-        ["optimize", "--xorsat", "1", "--degree", "3", "--depth", "1"],
-        ["optimize", "--xorsat", "2", "--degree", "1", "--depth", "1"],
-        ["optimize", "--xi", "2:1", "--xorsat", "2", "--degree", "3", "--depth", "1"],
+        ["evaluate", "--sparse-q", "1", "--degree", "3", "--gamma", "0.1", "--beta", "0.1"],
+        ["evaluate", "--sparse-q", "3", "--degree", "1", "--gamma", "0.1", "--beta", "0.1"],
+        ["evaluate", "--xi", "3:1", "--sparse-q", "3", "--degree", "4", "--gamma", "0.1", "--beta", "0.1"],
+        ["optimize", "--sparse-q", "1", "--degree", "3", "--depth", "1"],
+        ["optimize", "--sparse-q", "2", "--degree", "1", "--depth", "1"],
+        ["optimize", "--xi", "2:1", "--sparse-q", "2", "--degree", "3", "--depth", "1"],
     ],
 )
 def test_cli_rejections(args):

@@ -136,7 +136,7 @@ def _read_json(path: Path):
 
 def _evaluate_cli(tmp_path, p, scratch, env_extra=None, extra=()):
     g, b = _angles(p, 3, 5)
-    args = ["evaluate", "--xorsat", "2", "--degree", "3", "--gamma", ",".join(repr(float(x)) for x in g), "--beta",
+    args = ["evaluate", "--sparse-q", "2", "--degree", "3", "--gamma", ",".join(repr(float(x)) for x in g), "--beta",
             ",".join(repr(float(x)) for x in b), "--json", *(["--scratch", str(scratch)] if scratch else []), *extra]
     env = {**os.environ, **(env_extra or {})}
     return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, timeout=300, cwd=tmp_path, env=env)
@@ -198,7 +198,7 @@ def test_read_only_or_full_scratch_folder(tmp_path, fs):
     mount = (f"mount --bind {mnt} {mnt} && mount -o remount,ro,bind {mnt}" if fs == "read-only"
              else f"mount -t tmpfs -o size=1m tmpfs {mnt}")
     g, b = _angles(9, 3, 1)  # p = 9: 3 x 2^17 x 16 bytes = 6 MiB of scratch
-    cmd = [*LEADLINE, "evaluate", "--xorsat", "2", "--degree", "3", "--gamma", ",".join(repr(float(x)) for x in g),
+    cmd = [*LEADLINE, "evaluate", "--sparse-q", "2", "--degree", "3", "--gamma", ",".join(repr(float(x)) for x in g),
            "--beta", ",".join(repr(float(x)) for x in b), "--scratch", f"{mnt}/s"]
     script = f"{mount} && " + " ".join(f"'{a}'" for a in cmd) + f"; rc=$?; ls -A {mnt}; exit $rc"
     r = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=120)

@@ -17,7 +17,7 @@ import pytest
 
 
 def evaluate(*extra):
-    args = ["evaluate", "--xorsat", "3", "--degree", "4", "--gamma", "0.4,0.6,0.7", "--beta", "0.5,0.3,0.2",
+    args = ["evaluate", "--sparse-q", "3", "--degree", "4", "--gamma", "0.4,0.6,0.7", "--beta", "0.5,0.3,0.2",
             "--gradient", "--json", *extra]
     r = subprocess.run([sys.executable, "-m", "leadline", *args], capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
@@ -35,7 +35,7 @@ def test_local_cluster_matches_in_process():
 def test_optimize_on_local_cluster_reproduces_published_maxcut():
     # MaxCut, 3-regular, triangle-free, p = 1 optimum 1/2 + 1/(3 sqrt 3) (Wang, Hadfield, Jiang,
     # Rieffel, PRA 97, 022304 (2018)); one start keeps the number of Dask round trips small
-    args = ["optimize", "--xorsat", "2", "--degree", "3", "--depth", "1", "--restarts", "0", "--json",
+    args = ["optimize", "--sparse-q", "2", "--degree", "3", "--depth", "1", "--restarts", "0", "--json",
             "--executor", "local", "--workers", "1", "--quiet"]
     r = subprocess.run([sys.executable, "-m", "leadline", *args], capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr

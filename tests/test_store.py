@@ -45,11 +45,11 @@ B3 = np.array([0.52, 0.37, 0.19])
 def _spec(store: Path, interval_s: float = 0.0) -> dict:
     # interval 0: every pass and every chunk is written at once (the mechanics under test here)
     return {
-        "spec_version": 1,
+        "format_version": 2,
         "name": "unit",
         "store": str(store),
         "depths": {"pmin": 1, "pmax": 3},
-        "optimizer": {"restarts": 0, "seed": 0, "gtol": 1e-7, "maxiter": 500},
+        "optimizer": {"restarts": 0, "seed": 0, "gradient_tol": 1e-7, "max_iterations": 500},
         "compute": {"executor": "inprocess"},
         "checkpoint": {"interval_s": interval_s, "keep_passes": False},
         "ensembles": [{"label": "sk", "kind": "dense", "xi": "2:0.5", "q": None, "degree": None,
@@ -121,7 +121,7 @@ def test_checkpointed_pass_equals_inprocess_bit_for_bit(tmp_path, plan):
         # asked again: every pass from the store, nothing computed
         again = evaluate(SK, G3, B3, plan=plan, run_pass=cp.run_pass, gradient=True)
         assert again.value == ref.value and len(runner.computed) == chunks
-        assert cp.stats.passes_from_cache == len(log)
+        assert cp.stats.passes_reused == len(log)
     # every pass recorded with its own step and its own plan (flip explicit)
     with StudyStore.open(tmp_path / "unit.zarr") as store:
         records = store.depth("sk", 3, plan).pass_records()
@@ -221,7 +221,7 @@ def test_damaged_pass_cache_entry_is_dropped_and_recomputed(tmp_path):
         assert np.array_equal(again, good)
         # this was the last pass in flight: its verified ledger still holds every chunk
         assert runner.computed == []
-        assert depth.group.attrs["repairs"][0]["what"] == "pass cache entry dropped"
+        assert depth.group.attrs["repairs"][0]["what"] == "saved pass dropped"
         assert depth.cached_pass(key, backward=False) is not None  # stored again
 
 
@@ -249,9 +249,9 @@ def test_schema_version_checked_on_open(tmp_path):
     path = tmp_path / "unit.zarr"
     new_store(tmp_path).close()
     meta = json.loads((path / "zarr.json").read_text())
-    meta["attributes"]["schema_version"] = 99
+    meta["attributes"]["format_version"] = 99
     (path / "zarr.json").write_text(json.dumps(meta))
-    with pytest.raises(SchemaVersionError, match="schema version 99"):
+    with pytest.raises(SchemaVersionError, match="format version 99"):
         open_study(path)
     with pytest.raises(SchemaVersionError):
         StudyStore.open(path)
@@ -358,7 +358,7 @@ pmax = 2
 restarts = 0
 [compute]
 executor = "inprocess"
-memory-mb = 0.004
+memory-mib = 0.004
 [checkpoint]
 keep-passes = true
 [[ensemble]]
@@ -391,7 +391,7 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
 
     # the same numbers with plain zarr, following the documented layout
     root = zarr.open_group(str(tmp_path / "api.zarr"), mode="r")
-    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 3
+    assert root.attrs["format"] == "leadline.study" and root.attrs["format_version"] == 4
     g = root["ensembles/sk/p002"]
     assert g.attrs["state"] == "done"
     assert g.attrs["result"]["value"] == depths[1]["value"]
@@ -454,7 +454,7 @@ def test_small_passes_wait_for_their_batch_and_are_recomputed_to_the_same_bits(t
         runner = CountingRunner()
         cp = CheckpointedPasses(store.depth("sk", 3, PLAN3), runner)
         third = evaluate(SK, G3, B3, plan=PLAN3, run_pass=cp.run_pass, gradient=True)
-        assert third.value == ref.value and runner.computed == [] and cp.stats.passes_from_cache == len(log)
+        assert third.value == ref.value and runner.computed == [] and cp.stats.passes_reused == len(log)
 
 
 @pytest.mark.parametrize("seconds_per_path, ledger", [(1e-2, True), (1e-9, False)])

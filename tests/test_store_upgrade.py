@@ -101,11 +101,11 @@ def test_schema1_store_reads_and_resumes_keeping_finished_depths(tmp_path, capsy
     main(["resume", str(path), "--quiet"])
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1, err  # one line says what was dropped
-    assert "older leadline (schema 1)" in err[0] and "8 cached passes of 2 depths" in err[0]
+    assert "older leadline (schema 1)" in err[0] and "8 saved passes of 2 depths" in err[0]
     assert "finished depths are kept" in err[0]
 
     root = zarr.open_group(str(path), mode="r")
-    assert root.attrs["schema_version"] == L.SCHEMA_VERSION
+    assert root.attrs["format_version"] == L.SCHEMA_VERSION and "schema_version" not in root.attrs
     assert root.attrs["migrated"][0]["from"] == 1 and root.attrs["migrated"][0]["passes_dropped"] == 8
     # the finished depth is untouched: same record, same angle arrays, bit for bit
     after = _tree(path / "ensembles/sk/p001")
@@ -149,3 +149,89 @@ def test_chunk_plan_json_with_and_without_flip_keys_passes_apart():
     other = PassInput(3, np.eye(7, dtype=complex), np.array([0.1, 0.2, 0.3]))
     assert L.pass_key(inp, Plan(**old)).split("-")[0] != L.pass_key(other, Plan(**old)).split("-")[0]
     json.dumps(L.plan_json(Plan(**old, flip=True).to_json()))
+
+
+# ------------------------------------------------------------------ schema 2 -> 3: renamed attributes
+#: the reference energies of the SK model as `leadline reference --store` cached them (GS: Parisi value,
+#: Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002): 0.763166; ALG = GS for SK, no overlap gap)
+SCHEMA2_REFERENCES = {
+    "xi": "2:0.5", "ground_state": 0.763166, "ground_state_uncertainty": 1e-6, "algorithmic_threshold": 0.763166,
+    "algorithmic_threshold_uncertainty": 1e-6, "ground_state_k_sequence": [], "algorithmic_threshold_k_sequence": [],
+    "overlap_gap": False, "wall_time": 1.0, "details": {},
+}
+
+
+def write_old_names_store(path: Path, schema: int) -> None:
+    """A store with the attribute names of schemas 2-3 (schema 2: no integrity record; schema 3: a
+    record over the old names): a p = 1..2 study with p = 1 done."""
+    from leadline.jobs.cli import main
+
+    spec = path.parent / "s2.toml"
+    spec.write_text(f'[study]\nname = "s2"\nstore = "{path.name}"\n[depths]\npmax = 1\n[optimizer]\nrestarts = 0\n'
+                    '[compute]\nexecutor = "inprocess"\nmemory-mib = 0.016\n[[ensemble]]\nlabel = "sk"\nxi = "2:0.5"\n')
+    main(["sweep", str(spec), "--quiet"])
+    root = zarr.open_group(str(path), mode="r+")
+    attrs = root.attrs.asdict()
+    s = attrs["spec"]
+    old_spec = {"spec_version": 1, **{k: v for k, v in s.items() if k != "format_version"}}
+    old_spec["depths"] = {"pmin": 1, "pmax": 2}
+    old_spec["optimizer"] = {"restarts": 0, "seed": 0, "gtol": 1e-07, "maxiter": 500}
+    old_spec["compute"] = {"executor": "inprocess", "scheduler": None, "cluster_config": None, "workers": None,
+                           "threads_per_worker": 1, "memory_mb": 0.016}
+    del root.attrs["format_version"]
+    root.attrs.update({"schema_version": schema, "spec": old_spec})
+    ens = root["ensembles/sk"]
+    from leadline.kernels.reference import METHOD_VERSION
+
+    ens.attrs["references"] = dict(SCHEMA2_REFERENCES, method_version=METHOD_VERSION)
+    depth = root["ensembles/sk/p001"]
+    timings = depth.attrs["timings"]
+    session = timings["this_session"]
+    session["passes_from_cache"] = session.pop("passes_reused")
+    depth.attrs["timings"] = timings
+    from leadline.storage import integrity as I
+
+    if schema == 2:
+        del root.attrs[I.RECORD]
+    else:  # the record as that release wrote it: over the old spec
+        record = root.attrs[I.RECORD]
+        root.attrs[I.RECORD] = dict(record, identity=dict(record["identity"], spec=I.digest(old_spec)))
+
+
+@pytest.mark.parametrize("schema", [2, 3])
+def test_old_names_store_reads_with_new_names_and_resume_renames_in_place(tmp_path, capsys, schema):
+    from leadline.jobs.cli import main
+
+    path = tmp_path / "s2.zarr"
+    write_old_names_store(path, schema)
+    before = _tree(path)
+    study = open_study(path)  # reading renames nothing on disk, but speaks the new names
+    assert study.format_version == schema
+    assert study.spec["optimizer"]["gradient_tol"] == 1e-07 and study.spec["optimizer"]["max_iterations"] == 500
+    assert study.spec["compute"]["memory_mib"] == 0.016 and "cluster_config" not in study.spec["compute"]
+    assert study.references("sk").ground_state == 0.763166
+    assert "computed_reference" in study.ensemble("sk") and "references" not in study.ensemble("sk")
+    main(["table", str(path), "--format", "json", "--output", str(tmp_path / "t.json")])
+    table = json.loads((tmp_path / "t.json").read_text())
+    assert table["ensembles"][0]["references"]["ground_state"] == 0.763166
+    assert _tree(path) == before
+
+    capsys.readouterr()
+    main(["resume", str(path), "--quiet"])
+    assert capsys.readouterr().err == ""  # renaming loses nothing: nothing to say
+    root = zarr.open_group(str(path), mode="r")
+    attrs = root.attrs.asdict()
+    assert attrs["format_version"] == L.SCHEMA_VERSION == 4 and "schema_version" not in attrs
+    assert [(m["from"], m["to"]) for m in attrs["migrated"]] == ([(2, 3)] if schema == 2 else []) + [(3, 4)]
+    spec = attrs["spec"]
+    assert spec["format_version"] == 2 and "spec_version" not in spec
+    assert spec["optimizer"] == {"restarts": 0, "seed": 0, "gradient_tol": 1e-07, "max_iterations": 500}
+    assert spec["compute"]["memory_mib"] == 0.016 and spec["compute"]["batch_file"] is None
+    ens = root["ensembles/sk"].attrs.asdict()
+    assert ens["computed_reference"]["ground_state"] == 0.763166 and "references" not in ens
+    session = root["ensembles/sk/p001"].attrs["timings"]["this_session"]
+    assert "passes_reused" in session and "passes_from_cache" not in session
+    # the renamed store passes its own integrity check; p = 2 ran after the upgrade: SK optimum of
+    # Quantum 6, 759 (2022), Table 1
+    depths = open_study(path).depths("sk")
+    assert [d["p"] for d in depths] == [1, 2] and depths[1]["value"] == pytest.approx(0.4075, abs=5e-5)

@@ -46,7 +46,7 @@ seed = 0
 
 [compute]
 {compute}
-memory-mb = {memory_mb}
+memory-mib = {memory_mib}
 
 [checkpoint]
 interval-s = {interval_s}
@@ -58,15 +58,15 @@ xi = "2:0.5"
 """
 
 
-def write_spec(folder: Path, store: str, memory_mb: float = 0.004, interval_s: float = 0,
+def write_spec(folder: Path, store: str, memory_mib: float = 0.004, interval_s: float = 0,
                keep_passes: bool = False, compute: str = 'executor = "inprocess"') -> Path:
     """The kill-test spec; interval-s = 0 writes every pass and every chunk as soon as it is done.
 
-    memory-mb 0.004: with the growing contour the passes of step 1 are single-chunk, step 2
+    memory-mib 0.004: with the growing contour the passes of step 1 are single-chunk, step 2
     has 2 chunks and step 3 has 8."""
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "study.toml"
-    path.write_text(SPEC.format(store=store, memory_mb=memory_mb, interval_s=interval_s,
+    path.write_text(SPEC.format(store=store, memory_mib=memory_mib, interval_s=interval_s,
                                 keep=str(keep_passes).lower(), compute=compute))
     return path
 
@@ -216,7 +216,7 @@ def test_kill_at_random_moments_then_resume_matches_uninterrupted(reference, tmp
     # (crash point, count, how) with counts chosen by the seeded generator. "self": the process
     # kills itself at the point (LEADLINE_CRASH_AT); "external": it holds at the point and this
     # test sends the SIGKILL (a kill from outside, at a moment the code announced, not a delay).
-    # Counts are per process; with memory-mb = 0.004 and the growing contour the passes of
+    # Counts are per process; with memory-mib = 0.004 and the growing contour the passes of
     # step 1 are single-chunk, step 2 has 2 chunks and step 3 has 8, so the mid-pass kills
     # land inside p = 2 or p = 3.
     kills = [
@@ -330,11 +330,11 @@ BAD_SPECS = {
     "pmax missing": (spec_text({"depths": "pmin = 1"}), "[depths] pmax is required"),
     "pmax not integer": (spec_text({"depths": "pmax = 2.5"}), "must be an integer"),
     "negative restarts": (spec_text({"optimizer": "restarts = -1"}), "restarts must be >= 0"),
-    "zero gtol": (spec_text({"optimizer": "gtol = 0"}), "gtol must be positive"),
+    "zero gtol": (spec_text({"optimizer": "gradient-tol = 0"}), "gradient-tol must be positive"),
     "unknown executor": (spec_text({"compute": 'executor = "cloud"'}), "executor must be one of"),
     "zero workers": (spec_text({"compute": "workers = 0"}), "workers must be >= 1"),
-    "zero memory": (spec_text({"compute": "memory-mb = 0"}), "memory-mb must be positive"),
-    "missing cluster config": (spec_text({"compute": 'cluster-config = "nope.toml"'}), "cluster-config"),
+    "zero memory": (spec_text({"compute": "memory-mib = 0"}), "memory-mib must be positive"),
+    "missing cluster config": (spec_text({"compute": 'batch-file = "nope.toml"'}), "batch-file"),
     "scheduler with local executor": (spec_text({"compute": 'executor = "local"\nscheduler = "tcp://127.0.0.1:1"'}),
                                       "scheduler"),
     "negative checkpoint interval": (spec_text(extra="[checkpoint]\ninterval-s = -1"), "interval-s must be >= 0"),
@@ -575,5 +575,5 @@ def test_sigterm_writes_the_waiting_passes_and_releases_the_lock(reference, tmp_
     assert len(batches) == 1 and len(batches[0][1].attrs["entries"]) == 8
     r = run(["resume", str(store)])
     assert r.returncode == 0, r.stderr
-    assert "8 from checkpoint" in [line for line in r.stdout.splitlines() if "p = 2" in line][0]
+    assert "8 reused" in [line for line in r.stdout.splitlines() if "p = 2" in line][0]
     _compare_with_reference(reference, store)

@@ -153,8 +153,8 @@ def test_large_angles_report_shows_tiny_values():
 @pytest.mark.parametrize(
     "args",
     [
-        ["evaluate", "--xorsat", "9", "--degree", "1e12", "--gamma", "0.1,0.2", "--beta", "0.1,0.2"],
-        ["optimize", "--xorsat", "2", "--degree", "1e10", "--depth", "2"],
+        ["evaluate", "--sparse-q", "9", "--degree", "1e12", "--gamma", "0.1,0.2", "--beta", "0.1,0.2"],
+        ["optimize", "--sparse-q", "2", "--degree", "1e10", "--depth", "2"],
     ],
 )
 def test_degree_beyond_double_precision_is_refused(tmp_path, args):
@@ -168,7 +168,7 @@ def test_degree_1e8_optimizes(tmp_path):
     # nu_p* = 1/2 + V_p*(SK) / sqrt(D) + o(1/sqrt(D)) (Basso, Farhi, Marwaha, Villalonga, Zhou,
     # TQC 2022, arXiv:2110.14206), with V_2*(SK) = 0.4075 (Farhi, Goldstone, Gutmann, Zhou,
     # Quantum 6, 759 (2022), Table 1)
-    r = run("optimize", "--xorsat", "2", "--degree", "1e8", "--depth", "2", "--json", cwd=tmp_path)
+    r = run("optimize", "--sparse-q", "2", "--degree", "1e8", "--depth", "2", "--json", cwd=tmp_path)
     assert r.returncode == 0, r.stderr
     nu = json.loads(r.stdout)["value"]
     assert math.sqrt(1e8) * (nu - 0.5) == pytest.approx(0.4075, abs=1e-4)
@@ -217,11 +217,11 @@ def test_optimize_bad_seed_output_memory(tmp_path):
     refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--seed", "-1"], "--seed must be >= 0")
     (tmp_path / "sub").mkdir()
     refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--output", "sub"], "is a folder")
-    refused_in(tmp_path, ["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3", "--memory-mb", "inf"],
-               "--memory-mb must be a positive finite")
-    refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--memory-mb", "inf"],
-               "--memory-mb must be a positive finite")
-    refused_in(tmp_path, ["optimize", "--xorsat", "2", "--degree", "3", "--depth", "1", "--seed", "-2"], "--seed")
+    refused_in(tmp_path, ["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3", "--memory-mib", "inf"],
+               "--memory-mib must be a positive finite")
+    refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--memory-mib", "inf"],
+               "--memory-mib must be a positive finite")
+    refused_in(tmp_path, ["optimize", "--sparse-q", "2", "--degree", "3", "--depth", "1", "--seed", "-2"], "--seed")
 
 
 # ------------------------------------------------------------------ 6: depth and cost limits
@@ -232,7 +232,7 @@ def test_depth_beyond_the_limit_is_refused_with_its_cost(tmp_path):
     angles = ",".join(["0.01"] * 40)
     refused_in(tmp_path, ["evaluate", "--xi", "2:0.5", "--gamma", angles, "--beta", angles], "beyond 30")
     refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "40"], "beyond 30")
-    refused_in(tmp_path, ["optimize", "--xorsat", "3", "--degree", "4", "--depth", "31"], "beyond 30")
+    refused_in(tmp_path, ["optimize", "--sparse-q", "3", "--degree", "4", "--depth", "31"], "beyond 30")
 
 
 def test_depth_this_machine_cannot_finish_is_refused(tmp_path):
@@ -249,7 +249,7 @@ def test_evaluate_and_optimize_take_the_ensemble_from_the_file(tmp_path):
                         gamma=[0.3], beta=[0.4])
     r = run("evaluate", "--angles", str(sparse), "--json")
     assert r.returncode == 0, r.stderr
-    direct = run("evaluate", "--xorsat", "3", "--degree", "4", "--gamma", "0.3", "--beta", "0.4", "--json")
+    direct = run("evaluate", "--sparse-q", "3", "--degree", "4", "--gamma", "0.3", "--beta", "0.4", "--json")
     assert json.loads(r.stdout)["value"] == json.loads(direct.stdout)["value"]
     dense = angle_file(tmp_path / "sk1.json", gamma=[0.5], beta=[math.pi / 8])
     r = run("optimize", "--depth", "2", "--angles", str(dense), "--json")
@@ -266,11 +266,11 @@ def test_angle_file_without_mixture_needs_xi(tmp_path):
 # ------------------------------------------------------------------ 10: optimizer tolerance
 @pytest.mark.parametrize("gtol", ["inf", "0.5"])
 def test_gtol_that_cannot_reach_a_stationary_point_is_refused(tmp_path, gtol):
-    refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--gtol", gtol], "--gtol must be")
+    refused_in(tmp_path, ["optimize", "--xi", "2:0.5", "--depth", "1", "--gradient-tol", gtol], "--gradient-tol must be")
 
 
 def test_non_convergence_is_reported():
-    r = run("optimize", "--xi", "2:0.5", "--depth", "2", "--maxiter", "1", "--restarts", "0", "--json")
+    r = run("optimize", "--xi", "2:0.5", "--depth", "2", "--max-iterations", "1", "--restarts", "0", "--json")
     assert r.returncode == 0
     assert json.loads(r.stdout)["converged"] is False
     assert "did not converge" in r.stderr
@@ -295,7 +295,7 @@ def test_spec_ensemble_place_is_spelled_right(tmp_path):
 def test_json_echoes_values_as_written():
     r = run("evaluate", "--xi", "3:1", "--gamma", "0.1", "--beta", "0.2", "--json")
     assert json.loads(r.stdout)["xi"]["spec"] == "3:1"
-    r = run("evaluate", "--xorsat", "3", "--degree", "3", "--gamma", "0.1", "--beta", "0.2", "--json")
+    r = run("evaluate", "--sparse-q", "3", "--degree", "3", "--gamma", "0.1", "--beta", "0.2", "--json")
     out = json.loads(r.stdout)
     assert out["degree"] == 3 and isinstance(out["degree"], int) and out["ensemble"]["degree"] == 3
 

@@ -6,7 +6,7 @@ and prints; it exposes ``register(app)``, and ``jobs/cli.py`` lists the modules.
 module of the tool imports a command module (tests may).
 
 - ``evaluate``: V_p(gamma, beta) of a mixture (exact, or ``--method bath`` through the
-  private ``_evaluate_bath``) or of a sparse ensemble (``--xorsat``, through ``_sparse``);
+  private ``_evaluate_bath``) or of a sparse ensemble (``--sparse-q``, through ``_sparse``);
 - ``optimize``: optimal angles and V_p* at one depth (dense, or sparse through ``_sparse``);
 - ``reference``: ground-state energy and algorithmic threshold of a mixture or of a store;
 - ``finite_size``: statevector averages at finite n next to the exact V_p;

@@ -45,7 +45,7 @@ def check_method(method: str, tolerance: Optional[float], fock: Optional[int], b
                 raise InputError(f"{name} applies only to --method bath")
         return False
     if sparse:
-        raise InputError("--method bath is for the mixed-spin (dense) model, not --xorsat/--degree")
+        raise InputError("--method bath is for the mixed-spin (dense) model, not --sparse-q/--degree")
     if gradient or fixed_point:
         raise InputError("--method bath gives the value only: drop --gradient/--check-fixed-point")
     for name, value, (lo, hi) in (("--tolerance", tolerance, TOLERANCE_RANGE), ("--fock", fock, FOCK_RANGE),

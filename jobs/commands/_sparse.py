@@ -1,12 +1,12 @@
-"""The sparse ensemble (--xorsat Q --degree D) of `evaluate` and `optimize`.
+"""The sparse ensemble (--sparse-q Q --degree D) of `evaluate` and `optimize`.
 
 The two command modules call into here with a few lines, so the command-line side of
 Max-q-XORSAT on D-regular hypertrees (help texts, depth check, running, printing) lives in
 one place; what a sparse ensemble may be (``check_sparse``, the degree limit) is shared with
 the study spec and the Python API in ``leadline.jobs.sparse_ensemble``:
 
-    leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json] [--scratch DIR]
-    leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE] [--scratch DIR]
+    leadline evaluate --sparse-q Q --degree D --gamma ... --beta ... [--gradient] [--json] [--scratch DIR]
+    leadline optimize --sparse-q Q --degree D --depth P [--json] [--output FILE] [--scratch DIR]
 
 Which path runs (in memory, or chunked vectors out of core / on Dask workers with --scratch),
 what it needs and what is refused: :func:`plan_sparse_path`.
@@ -31,13 +31,14 @@ from ..sparse_ensemble import check_sparse, ensemble_json
 
 __all__ = ["XORSAT_HELP", "DEGREE_HELP", "SCRATCH_HELP", "plan_sparse_path", "SparsePath", "scratch_runner", "fits_in_memory", "check_sweep_sparse", "sweep_scratch", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
 
-XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
-DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
+SPARSE_Q_HELP = ("Sparse ensemble of arity q: Max-q-XORSAT (q spins per constraint; q = 2: MaxCut) on "
+                 "D-regular hypergraphs of large girth; needs --degree.")
+DEGREE_HELP = "Degree D >= 2 of every spin (with --sparse-q); large values up to 1e9 are fine."
 
 
-def sparse_requested(xorsat, degree) -> bool:
+def sparse_requested(sparse_q, degree) -> bool:
     """True when the user asked for the sparse ensemble (either option given)."""
-    return xorsat is not None or degree is not None
+    return sparse_q is not None or degree is not None
 
 
 #: complex numbers the growing-contour recursion holds at most, in units of 2^(2p-1): its two
@@ -211,7 +212,7 @@ def _report(ev) -> str:
     if ev.gradient is not None:
         lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
         lines.append("d/dbeta    = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["beta"]))
-    lines.append("invariants = " + ", ".join(f"{k} {v:.1e}" for k, v in ev.residuals.items()))
+    lines.append("residuals  = " + ", ".join(f"{k} {v:.1e}" for k, v in ev.residuals.items()))
     lines.append(f"work       = {ev.transforms} Walsh-Hadamard transforms, {ev.wall_time:.2f} s")
     return "\n".join(lines)
 
@@ -292,13 +293,13 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
             path.scratch.rmdir()  # only if empty: the folder may hold the user's own files
 
 
-def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
+def evaluate_xorsat(sparse_q, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
                     settings=None, scratch=None) -> None:
-    """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
+    """`leadline evaluate --sparse-q Q --degree D ...`: validate everything, evaluate, print."""
     from ..angles import check_periodic_angles, read_angles
     from ..parsing import angle_pair
 
-    q, D = check_sparse(xorsat, degree, xi)
+    q, D = check_sparse(sparse_q, degree, xi)
     if angles is not None:
         if gamma is not None or beta is not None:
             raise InputError("give either --angles FILE or --gamma/--beta, not both")
@@ -322,9 +323,9 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         typer.echo(_report(ev))
 
 
-def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e-7, maxiter=500, output=None, as_json=False, start=None,
+def optimize_xorsat(sparse_q, degree, *, xi, depth, restarts=None, seed=0, gradient_tol=1e-7, max_iterations=500, output=None, as_json=False, start=None,
                     settings=None, scratch=None) -> None:
-    """`leadline optimize --xorsat Q --degree D --depth P`: depths 1..P in turn (INTERP warm starts).
+    """`leadline optimize --sparse-q Q --degree D --depth P`: depths 1..P in turn (INTERP warm starts).
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
@@ -333,21 +334,21 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     from ..parsing import check_optimizer_options, warm_start
     from ..paths import check_output_file
 
-    q, D = check_sparse(xorsat, degree, xi)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    q, D = check_sparse(sparse_q, degree, xi)
+    depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
     initial = warm_start(start, depth)
     path = plan_sparse_path(depth, settings, scratch, True, "--depth")
     if output is not None:
         check_output_file(output)
     if path.kind == "memory":
         with transform_map(settings) as run_map:
-            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
-                                maxiter=maxiter, ensemble=ensemble_json(q, D),
+            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gradient_tol=gradient_tol,
+                                max_iterations=max_iterations, ensemble=ensemble_json(q, D),
                                 evaluate_kw={"run_map": run_map} if run_map is not None else None)
     else:
         with scratch_runner(path, settings, label="evaluation") as chunked:
-            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
-                                maxiter=maxiter, ensemble=ensemble_json(q, D), evaluate_kw={"chunked": chunked})
+            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gradient_tol=gradient_tol,
+                                max_iterations=max_iterations, ensemble=ensemble_json(q, D), evaluate_kw={"chunked": chunked})
     result, ladder, first, wall = run.result, run.ladder, run.first_depth, run.wall_time
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))

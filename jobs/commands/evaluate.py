@@ -14,7 +14,7 @@ from .. import compute
 from ..angles import read_angles
 from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
-from ..parsing import angle_pair, check_memory_mb, check_representable, check_underflow, file_mixture, mixture_arg
+from ..parsing import angle_pair, check_memory_mib, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -29,15 +29,15 @@ def evaluate_command(
     angles: Optional[str] = typer.Option(None, "--angles", help="Angle file (JSON written by `leadline optimize --output`) instead of --gamma/--beta; its xi is used when --xi is not given."),
     gradient: bool = typer.Option(False, "--gradient", help="Also compute dV/dgamma and dV/dbeta (reverse mode, about 3x one evaluation)."),
     fixed_point: bool = typer.Option(False, "--check-fixed-point", help="Run one extra pass and report max|G_(p+1) - G_p| (should be ~1e-15)."),
-    memory_mb: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mb", help="Memory budget of one chunk task in MiB; sets the chunk plan."),
+    memory_mib: float = typer.Option(DEFAULT_MEMORY_BUDGET / 2**20, "--memory-mib", help="Memory budget of one chunk task in MiB; sets the chunk plan."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object (value, p, xi, residuals, ...) instead of a report."),
-    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
+    sparse_q: Optional[int] = typer.Option(None, "--sparse-q", help=sparse.SPARSE_Q_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
     executor: str = compute.executor_option(),
     scheduler: Optional[str] = compute.scheduler_option(),
     workers: Optional[int] = compute.workers_option(),
     threads_per_worker: int = compute.threads_option(),
-    cluster_config: Optional[str] = compute.cluster_config_option(),
+    batch_file: Optional[str] = compute.batch_file_option(),
     quiet: bool = compute.quiet_option(),
     method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP),
     tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP),
@@ -52,23 +52,23 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    check_memory_mb(memory_mb)
+    check_memory_mib(memory_mib)
     angle_set = None
     if angles is not None:
         if gamma is not None or beta is not None:
             raise InputError("give either --angles FILE or --gamma/--beta, not both")
         angle_set = read_angles(angles)
-        if angle_set.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
-            # a file written by `optimize --xorsat`: evaluate on its own sparse ensemble
-            xorsat, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
+        if angle_set.ensemble is not None and xi is None and not sparse.sparse_requested(sparse_q, degree):
+            # a file written by `optimize --sparse-q`: evaluate on its own sparse ensemble
+            sparse_q, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
     use_bath = bath.check_method(method, tolerance, fock, bond, time_limit, gradient=gradient,
-                                 fixed_point=fixed_point, sparse=sparse.sparse_requested(xorsat, degree))
-    if sparse.sparse_requested(xorsat, degree):
-        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-        return sparse.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
+                                 fixed_point=fixed_point, sparse=sparse.sparse_requested(sparse_q, degree))
+    if sparse.sparse_requested(sparse_q, degree):
+        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
+        return sparse.evaluate_xorsat(sparse_q, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
                                           gradient=gradient, as_json=as_json, settings=settings, scratch=scratch)
     if scratch is not None:
-        raise InputError("--scratch is for sparse ensembles (--xorsat Q --degree D); the dense evaluation checkpoints through `leadline sweep`")
+        raise InputError("--scratch is for sparse ensembles (--sparse-q Q --degree D); the dense evaluation checkpoints through `leadline sweep`")
     if angle_set is not None:
         mix = file_mixture(xi, angle_set, angles)
         g, b = angle_set.gamma, angle_set.beta
@@ -79,8 +79,8 @@ def evaluate_command(
     if use_bath:
         return bath.evaluate_bath_command(mix, g, b, tolerance, fock, bond, time_limit, as_json, quiet)
     check_depth(g.size, "--angles" if angle_set is not None else "--gamma/--beta")
-    plan = plan_chunks(g.size, int(memory_mb * 2**20))
-    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    plan = plan_chunks(g.size, int(memory_mib * 2**20))
+    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
         typer.echo(f"leadline: {cost.line()}", err=True)
@@ -110,7 +110,7 @@ def report(result) -> str:
         lines.append("dV/dgamma  = " + ", ".join(f"{x:+.6e}" for x in result.gradient["gamma"]))
         lines.append("dV/dbeta   = " + ", ".join(f"{x:+.6e}" for x in result.gradient["beta"]))
     res = ", ".join(f"{k} {v:.1e}" for k, v in result.residuals.items())
-    lines.append(f"invariants = {res}")
+    lines.append(f"residuals  = {res}")
     plan = result.plan
     lines.append(
         f"work       = {result.passes} passes on growing contours, {result.path_visits:.3g} path visits "

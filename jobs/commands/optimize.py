@@ -17,7 +17,7 @@ from ..bath import check_optimize_method, engine_settings
 from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
 from ..paths import check_output_file
-from ..parsing import check_memory_mb, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from ..parsing import check_memory_mib, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -34,18 +34,18 @@ def optimize_command(
         None, "--restarts", help="Extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, else 0)."
     ),
     seed: int = typer.Option(0, "--seed", help="Seed of the random and perturbed starts (results are reproducible)."),
-    gtol: float = typer.Option(1e-7, "--gtol", help="Stop when the largest gradient component is below this."),
-    maxiter: int = typer.Option(500, "--maxiter", help="Iteration cap of each local quasi-Newton run."),
+    gradient_tol: float = typer.Option(1e-7, "--gradient-tol", help="Stop when the gradient norm (the largest component of dV/d(gamma, beta)) is below this."),
+    max_iterations: int = typer.Option(500, "--max-iterations", help="Iteration cap of each local quasi-Newton run."),
     output: Optional[str] = typer.Option(None, "--output", "-o", help="Write the optimal angles to this angle file (JSON)."),
-    memory_mb: Optional[float] = typer.Option(None, "--memory-mb", help=f"Memory budget of one chunk task in MiB (exact method; default {DEFAULT_MEMORY_BUDGET / 2**20:g})."),
+    memory_mib: Optional[float] = typer.Option(None, "--memory-mib", help=f"Memory budget of one chunk task in MiB (exact method; default {DEFAULT_MEMORY_BUDGET / 2**20:g})."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of a report."),
-    xorsat: Optional[int] = typer.Option(None, "--xorsat", help=sparse.XORSAT_HELP),
+    sparse_q: Optional[int] = typer.Option(None, "--sparse-q", help=sparse.SPARSE_Q_HELP),
     degree: Optional[str] = typer.Option(None, "--degree", help=sparse.DEGREE_HELP),
     executor: str = compute.executor_option(),
     scheduler: Optional[str] = compute.scheduler_option(),
     workers: Optional[int] = compute.workers_option(),
     threads_per_worker: int = compute.threads_option(),
-    cluster_config: Optional[str] = compute.cluster_config_option(),
+    batch_file: Optional[str] = compute.batch_file_option(),
     quiet: bool = compute.quiet_option(),
     method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP + " With bath the gradient is a finite difference, its evaluations run on the executor."),
     tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP + " Every evaluation of the optimizer is asked for it; the optimizer never chases changes below its error estimate."),
@@ -63,34 +63,34 @@ def optimize_command(
 
         leadline optimize --xi 2:0.5 --depth 18 --angles p17.json --method bath
     """
-    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mb=memory_mb,
-                                     sparse=sparse.sparse_requested(xorsat, degree))
-    memory_mb = DEFAULT_MEMORY_BUDGET / 2**20 if memory_mb is None else memory_mb
-    check_memory_mb(memory_mb)
-    depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
-    if not sparse.sparse_requested(xorsat, degree) and not use_bath:
+    use_bath = check_optimize_method(method, tolerance=tolerance, fock=fock, bond=bond, memory_mib=memory_mib,
+                                     sparse=sparse.sparse_requested(sparse_q, degree))
+    memory_mib = DEFAULT_MEMORY_BUDGET / 2**20 if memory_mib is None else memory_mib
+    check_memory_mib(memory_mib)
+    depth = check_optimizer_options(depth, restarts, gradient_tol, max_iterations, seed)
+    if not sparse.sparse_requested(sparse_q, degree) and not use_bath:
         check_depth(depth, "--depth")
     initial = warm_start(start, depth)
-    if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
-        # a file written by `optimize --xorsat`: continue on its own sparse ensemble
-        xorsat, degree = initial.ensemble["q"], str(initial.ensemble["degree"])
-    if sparse.sparse_requested(xorsat, degree):
-        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
-        return sparse.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
-                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings,
+    if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(sparse_q, degree):
+        # a file written by `optimize --sparse-q`: continue on its own sparse ensemble
+        sparse_q, degree = initial.ensemble["q"], str(initial.ensemble["degree"])
+    if sparse.sparse_requested(sparse_q, degree):
+        settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
+        return sparse.optimize_xorsat(sparse_q, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gradient_tol=gradient_tol,
+                                          max_iterations=max_iterations, output=output, as_json=as_json, start=start, settings=settings,
                                           scratch=scratch)
     if scratch is not None:
-        raise InputError("--scratch is for sparse ensembles (--xorsat Q --degree D)")
+        raise InputError("--scratch is for sparse ensembles (--sparse-q Q --degree D)")
     mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")
     if output is not None:
         check_output_file(output)
-    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
+    settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mib, batch_file, quiet)
     if use_bath:
         return _optimize_bath(mix, depth, initial, settings, engine_settings(tolerance, fock, bond), restarts=restarts,
-                              seed=seed, gtol=gtol, maxiter=maxiter, output=output, as_json=as_json)
-    cost = check_cost(depth, plan_chunks(depth, int(memory_mb * 2**20)), settings, gradient=True, option="--depth")
+                              seed=seed, gradient_tol=gradient_tol, max_iterations=max_iterations, output=output, as_json=as_json)
+    cost = check_cost(depth, plan_chunks(depth, int(memory_mib * 2**20)), settings, gradient=True, option="--depth")
     if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
         typer.echo(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", err=True)
 
@@ -100,11 +100,11 @@ def optimize_command(
             depth,
             initial,
             run_pass=ex.run_pass,
-            budget=int(memory_mb * 2**20),
+            budget=int(memory_mib * 2**20),
             restarts=restarts,
             seed=seed,
-            gtol=gtol,
-            maxiter=maxiter,
+            gradient_tol=gradient_tol,
+            max_iterations=max_iterations,
             on_evaluation=lambda value, p: ex.progress.evaluation_done(value, label=f"optimize p = {p}"),
         )
     result, ladder, first, total_evals, wall = run.result, run.ladder, run.first_depth, run.evaluations_total, run.wall_time
@@ -122,15 +122,15 @@ def optimize_command(
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
 
 
-def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gtol, maxiter, output, as_json) -> None:
+def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gradient_tol, max_iterations, output, as_json) -> None:
     """`optimize --method bath`: the bath ladder on the executor, reported with the error estimate."""
     from leadline.kernels.bath import BathLimitError
 
     with compute.open_compute(settings) as ex:
         try:
             run = bath_ladder(
-                mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gtol,
-                maxiter=maxiter,
+                mix, depth, initial, run_map=ex.run_map, engine=engine, restarts=restarts, seed=seed, gtol=gradient_tol,
+                maxiter=max_iterations,
                 on_evaluation=lambda info, p: ex.progress.evaluation_done(
                     info["best_value"], label=f"optimize p = {p} (bath)", count=info["evaluations"],
                     detail=f" +- {info['best_error_estimate']:.1e}, {info['evaluation_s']:.2f} s per evaluation"),
@@ -151,8 +151,8 @@ def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gto
     evaluations = (f"{run.evaluations_total} over depths {run.first_depth}..{depth} ({result.gradients} gradients at "
                    f"p = {depth}, {result.evaluation_seconds:.3f} CPU s each), {run.wall_time:.1f} s")
     text = optimum_report(header, result, evaluations, run.ladder, output)
-    text = text.replace(f"gradient (max) = {result.gradient_norm:.1e}",
-                        f"gradient (max) = {result.gradient_norm:.1e} (noise level {result.gradient_noise:.1e})")
+    text = text.replace(f"gradient norm  = {result.gradient_norm:.1e}",
+                        f"gradient norm  = {result.gradient_norm:.1e} (noise level {result.gradient_noise:.1e})")
     typer.echo(text)
 
 

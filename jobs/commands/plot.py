@@ -14,7 +14,7 @@ from ..report import angle_plot_path, build_report, load_study, write_plots
 
 def plot_command(
     store: str = typer.Argument(..., help="Study store directory written by 'leadline sweep'."),
-    output: Optional[str] = typer.Option(None, "--output", help="PNG file for V_p* vs 1/p; the angle schedules go to FILE-angles.png beside it."),
+    output: Optional[str] = typer.Option(None, "--output", "-o", help="PNG file for V_p* vs 1/p; the angle schedules go to FILE-angles.png beside it."),
     ground_state: Optional[List[str]] = typer.Option(
         None, "--ground-state", help="Reference ground-state energy density: VALUE or LABEL=VALUE, repeatable (drawn as a dashed line)."
     ),

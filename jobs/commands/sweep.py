@@ -168,7 +168,7 @@ def resume_command(
     executor: Optional[str] = typer.Option(None, "--executor", help="Override [compute] executor: auto, inprocess, local, scheduler, batch."),
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Override [compute] scheduler (address of a running Dask scheduler)."),
     workers: Optional[int] = typer.Option(None, "--workers", help="Override [compute] workers."),
-    cluster_config: Optional[Path] = typer.Option(None, "--cluster-config", help="Override [compute] cluster-config (batch-cluster TOML)."),
+    batch_file: Optional[Path] = typer.Option(None, "--batch-file", help="Override [compute] batch-file (batch-cluster TOML)."),
     quiet: bool = compute.quiet_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
 ) -> None:
@@ -178,7 +178,7 @@ def resume_command(
 
         leadline resume runs/study.zarr
 
-    The chunk plan (memory-mb) stays the one of the spec; where passes run may be changed.
+    The chunk plan (memory-mib) stays the one of the spec; where passes run may be changed.
     """
     from leadline.storage import StudyStore, check_study
     from leadline.storage.study import check_contents
@@ -189,9 +189,9 @@ def resume_command(
     _pin_kernel(attrs.get("kernel"))
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be >= 1, got {workers}")
-    if cluster_config is not None and not cluster_config.is_file():
-        raise InputError(f"--cluster-config: file {cluster_config} does not exist")
-    settings = _settings_with(spec, executor, scheduler, workers, cluster_config, quiet or as_json)
+    if batch_file is not None and not batch_file.is_file():
+        raise InputError(f"--batch-file: file {batch_file} does not exist")
+    settings = _settings_with(spec, executor, scheduler, workers, batch_file, quiet or as_json)
     check_sweep_sparse(spec, settings)
     try:
         # refuse now if another writer holds it (this open prints what the user should know, once)
@@ -241,7 +241,7 @@ def _pin_kernel(recorded: str | None) -> None:
         )
 
 
-def _settings_with(spec, executor, scheduler, workers, cluster_config, quiet):
+def _settings_with(spec, executor, scheduler, workers, batch_file, quiet):
     """The spec's compute settings with the command-line overrides of `resume`."""
     from dataclasses import replace
 
@@ -252,18 +252,18 @@ def _settings_with(spec, executor, scheduler, workers, cluster_config, quiet):
     if executor is not None:
         changes["mode"] = executor
         if executor not in ("scheduler", "batch"):
-            changes.update(scheduler=None, batch_config=None)
+            changes.update(scheduler=None, batch_file=None)
     if scheduler is not None:
-        changes.update(mode=executor or "scheduler", scheduler=scheduler.strip(), batch_config=None)
-    if cluster_config is not None:
-        changes.update(mode=executor or "batch", batch_config=cluster_config.resolve(), scheduler=None)
+        changes.update(mode=executor or "scheduler", scheduler=scheduler.strip(), batch_file=None)
+    if batch_file is not None:
+        changes.update(mode=executor or "batch", batch_file=batch_file.resolve(), scheduler=None)
     if workers is not None:
         changes["workers"] = workers
     try:
-        if changes.get("batch_config") is not None:
+        if changes.get("batch_file") is not None:
             from leadline.cluster.batch import load_batch_config
 
-            load_batch_config(changes["batch_config"])
+            load_batch_config(changes["batch_file"])
         return replace(settings, **changes).resolved()
     except ExecutorConfigError as exc:
         raise InputError(str(exc)) from None
@@ -347,7 +347,7 @@ def status_text(progress: dict) -> str:
             state = "running" if r.get("active", True) else "stopped"
             text = f"    {state:<8} p = {r['p']} (bath): {b['evaluations_checkpointed']} evaluations checkpointed"
             if b.get("value") is not None:
-                text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, |grad| "
+                text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, gradient norm "
                          f"{b['gradient_norm']:.1e}")
             text += f", {b['evaluation_cpu_s']:.3f} CPU s per evaluation, session {r['sessions']}"
             lines.append(text)
@@ -358,7 +358,7 @@ def status_text(progress: dict) -> str:
         elif r is not None:
             # "running" only while a live writer holds the lock; otherwise the depth waits for resume
             state, more = ("running", "") if r.get("active", True) else ("stopped", "; resume continues it")
-            text = (f"    {state:<8} p = {r['p']}: {r['passes_cached']} passes checkpointed "
+            text = (f"    {state:<8} p = {r['p']}: {r['passes_saved']} passes saved "
                     f"(~{r['evaluations_done']} evaluations), session {r['sessions']}")
             if r["inflight"] is not None:
                 f = r["inflight"]

@@ -17,7 +17,7 @@ FORMATS = {"markdown": render_markdown, "csv": render_csv, "json": render_json}
 def table_command(
     store: str = typer.Argument(..., help="Study store directory written by 'leadline sweep'."),
     fmt: str = typer.Option("markdown", "--format", help="markdown (reads well in a terminal), csv (one long table, column 'record' says what a row is) or json (one object)."),
-    output: Optional[str] = typer.Option(None, "--output", help="Write to this file instead of stdout."),
+    output: Optional[str] = typer.Option(None, "--output", "-o", help="Write to this file instead of stdout."),
     ground_state: Optional[List[str]] = typer.Option(
         None, "--ground-state",
         help="Reference ground-state energy density: VALUE (one-ensemble study) or LABEL=VALUE, repeatable. Overrides the spec, computed and shipped values.",

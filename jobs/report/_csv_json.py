@@ -34,7 +34,7 @@ CSV_COLUMNS = [
     "note",
     "family",
     "status",
-    "backtest_error",
+    "back_test_error",
     "weight",
     "low",
     "high",
@@ -55,20 +55,20 @@ def _emit_extrapolation(emit, label: str, ex: Extrapolation) -> None:
     """CSV records of one extrapolation (see :func:`render_csv`)."""
     for w in ex.fits:
         f = w.fit
-        span = f"{f.depths[0]}-{f.depths[-1]}"
+        span = f"{f.depths[0]}..{f.depths[-1]}"
         params = ("coefficients " + " ".join(f"{c:.6g}" for c in f.params) if f.is_polynomial
                   else f"A = {f.params[1]:.6g}, alpha = {f.params[2]:.6g}")
         emit(ensemble=label, record="fit", quantity="V_inf", value=f.limit, uncertainty=f.standard_error(math.inf),
              family=w.family, degree=FAMILIES[w.family].degree, window=f.k, depths=span,
-             backtest_error=w.backtest_error, weight=w.weight, status=w.status,
+             back_test_error=w.back_test_error, weight=w.weight, status=w.status,
              note="; ".join(x for x in (params, w.reason) if x))
-        if w.backtest is not None:
-            bt = w.backtest
-            fitted = f"{bt.fit.depths[0]}-{bt.fit.depths[-1]}"
+        if w.back_test is not None:
+            bt = w.back_test
+            fitted = f"{bt.fit.depths[0]}..{bt.fit.depths[-1]}"
             for p, pred, err in zip(bt.held_out, bt.predicted, bt.errors):
-                emit(ensemble=label, record="backtest", quantity="V_p", p=p, inv_p=1.0 / p, value=pred,
-                     backtest_error=err, family=w.family, window=f.k, depths=fitted, status=w.status,
-                     note="predicted from the fitted depths; backtest_error = predicted - stored")
+                emit(ensemble=label, record="back_test", quantity="V_p", p=p, inv_p=1.0 / p, value=pred,
+                     back_test_error=err, family=w.family, window=f.k, depths=fitted, status=w.status,
+                     note="predicted from the fitted depths; back_test_error = predicted - stored")
     if ex.declined is not None:
         emit(ensemble=label, record="note", note=f"no headline: {ex.declined}")
     lim = ex.limit
@@ -104,10 +104,10 @@ def render_csv(report: StudyReport) -> str:
     algorithmic_threshold, value, uncertainty, note (source).  "fit": one fit
     of one family over its window of last depths: family, degree (polynomials),
     window (number of depths), depths, value (V_inf), uncertainty (its
-    standard error), backtest_error (largest absolute error on the held-out
+    standard error), back_test_error (largest absolute error on the held-out
     depths), weight (its share of the headline), status (used / unphysical /
-    no back-test), note (why).  "backtest": one
-    held-out depth p of one fit: value (predicted V_p), backtest_error
+    no back-test), note (why).  "back_test": one
+    held-out depth p of one fit: value (predicted V_p), back_test_error
     (predicted - stored), depths (the depths the back-test fit used).
     "extrapolation": quantity V_inf or ratio_gs_inf, value (central), low,
     high.  "at_depth": quantity V_p or ratio_gs at depth p, value, low, high.
@@ -131,7 +131,7 @@ def render_csv(report: StudyReport) -> str:
             emit(ensemble=rep.label, record="reference", quantity="algorithmic_threshold", value=refs.threshold,
                  uncertainty=refs.threshold_uncertainty, note=f"{refs.threshold_origin}: {refs.threshold_source}")
         for r in rep.rows:
-            emit(ensemble=rep.label, record="depth", quantity="V_p", p=r.p, inv_p=r.inverse_depth, value=r.value,
+            emit(ensemble=rep.label, record="depth", quantity="V_p", p=r.p, inv_p=r.inv_p, value=r.value,
                  gain=r.gain, ratio_gs=r.ratio_gs, ratio_alg=r.ratio_alg, exceeds_alg=r.exceeds_alg,
                  gradient_norm=r.gradient_norm,
                  **({"uncertainty": r.error_estimate, "note": "bath engine"} if r.method == "bath" else {}))

@@ -91,7 +91,7 @@ def _family_lines(ex: Extrapolation, value_name: str) -> list[str]:
     out = []
     for fam, (w, value) in ex.family_values().items():
         f = w.fit
-        err = "no back-test" if w.backtest is None else f"back-test error {w.backtest_error:.1e}"
+        err = "no back-test" if w.back_test is None else f"back-test error {w.back_test_error:.1e}"
         extra = "" if w.used else f", {w.status}"
         out.append(f"- {fam} (window {f.k}, depths {f.depths[0]}..{f.depths[-1]}): "
                    f"{value_name}_inf = {value:.4f} ({err}{extra})")
@@ -101,9 +101,9 @@ def _family_lines(ex: Extrapolation, value_name: str) -> list[str]:
 def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[str]:
     """The extrapolation block: every fit with its back-test and weight, the headline, predictions."""
     out = [f"Extrapolation of {value_name}_p* to p -> infinity (fit families over windows of the last depths):", ""]
-    tested = [w for w in ex.fits if w.backtest is not None]
+    tested = [w for w in ex.fits if w.back_test is not None]
     if tested:
-        bt = tested[0].backtest
+        bt = tested[0].back_test
         held = f"p = {bt.held_out[0]}" + (f"..{bt.held_out[-1]}" if len(bt.held_out) > 1 else "")
         out.append(
             f"Back-test: each fit is refitted on the same number of depths ending at p = {bt.fit.depths[-1]} and "
@@ -127,7 +127,7 @@ def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[st
         rows.append([
             w.family, str(f.k), f"{f.depths[0]}..{f.depths[-1]}", f"{f.limit:.5f}",
             "GS given" if w.family == ANCHORED_POWER else f"{f.standard_error(math.inf):.1e}",
-            _fmt(w.backtest_error, ".2e"), f"{w.weight:.3f}", w.status,
+            _fmt(w.back_test_error, ".2e"), f"{w.weight:.3f}", w.status,
         ])
     out += _markdown_table(["family", "window", "depths", f"{value_name}_inf", "std err", "back-test error",
                             "weight", "status"], rows, ["l", "r", "l", "r", "r", "r", "r", "l"])
@@ -205,7 +205,7 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
     if has_alg:
         header += ["V_p*/ALG", "> ALG"]
         align += ["r", "l"]
-    header.append("grad norm")
+    header.append("gradient norm")
     align.append("r")
     bath = any(r.method == "bath" for r in rep.rows)
     if bath:  # which depths come from the bath engine, with its error estimate
@@ -213,7 +213,7 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
         align.append("l")
     rows = []
     for r in rep.rows:
-        cells = [str(r.p), f"{r.inverse_depth:.4f}", fmt(r.value), "-" if r.gain is None else fmt(r.gain, signed=True)]
+        cells = [str(r.p), f"{r.inv_p:.4f}", fmt(r.value), "-" if r.gain is None else fmt(r.gain, signed=True)]
         if has_gs:
             cells.append(_fmt(r.ratio_gs, ".4f"))
         if has_alg:

@@ -51,7 +51,8 @@ __all__ = [
 ]
 
 TABLE_FORMAT = "leadline.table"
-TABLE_VERSION = 3  # 2: extrapolation by fit families with back-tests; 3: smooth weights, mixture range, family names
+TABLE_VERSION = 4  # 2: extrapolation by fit families with back-tests; 3: smooth weights, mixture range, family names;
+#                  4: key "format_version" (was "version")
 
 
 class InMemoryStudy:
@@ -125,13 +126,13 @@ class DepthRow:
     error_estimate: float | None = None
 
     @property
-    def inverse_depth(self) -> float:
+    def inv_p(self) -> float:
         return 1.0 / self.p
 
     def to_json(self) -> dict:
         return {
             "p": self.p,
-            "inv_p": self.inverse_depth,
+            "inv_p": self.inv_p,
             "value": self.value,
             "gain": self.gain,
             "ratio_gs": self.ratio_gs,
@@ -188,7 +189,7 @@ class StudyReport:
     def to_json(self) -> dict:
         return {
             "format": TABLE_FORMAT,
-            "version": TABLE_VERSION,
+            "format_version": TABLE_VERSION,
             "study": self.name,
             "units": "energy density per spin, dimensionless; E[H(z)H(z')] = n xi(R); V_p is maximized",
             "note": self.note,

@@ -47,7 +47,7 @@ def _drawn_fits(ex: Extrapolation) -> list:
     for fam in FAMILIES:
         cands = [w for w in ex.fits if w.family == fam]
         if cands:
-            w = best.get(fam) or min(cands, key=lambda c: (c.backtest_error if c.backtest else math.inf, c.fit.k))
+            w = best.get(fam) or min(cands, key=lambda c: (c.back_test_error if c.back_test else math.inf, c.fit.k))
             out.append((w, fam in best))
     return out
 
@@ -71,9 +71,9 @@ def value_axis_limits(report: StudyReport, x_max: float = math.inf) -> tuple[flo
         if not rep.rows:
             continue
         if rep.kind == "sparse":
-            ys += [scaled_value(rep.q, rep.degree, r.value) for r in rep.rows if r.inverse_depth <= x_max]
+            ys += [scaled_value(rep.q, rep.degree, r.value) for r in rep.rows if r.inv_p <= x_max]
             continue
-        ys += [r.value for r in rep.rows if r.inverse_depth <= x_max]
+        ys += [r.value for r in rep.rows if r.inv_p <= x_max]
         ex = rep.extrapolation
         if ex is not None:
             for w, used in _drawn_fits(ex):
@@ -101,12 +101,12 @@ def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None
         xs, ys = _curve(fit, 1.0 / fit.depths[0])
         ax.plot(xs, ys, color=color, ls=FAMILY_LINESTYLES[fam], lw=1.4 if used else 0.7,
                 alpha=0.9 if used else REJECTED_ALPHA)
-        if w.backtest is not None and used:
-            bt = w.backtest
+        if w.back_test is not None and used:
+            bt = w.back_test
             ax.plot([1.0 / p for p in bt.held_out], bt.predicted, "x", color=color, ms=5, alpha=0.9)
-    tested = [w for w in ex.fits if w.backtest is not None]
+    tested = [w for w in ex.fits if w.back_test is not None]
     if tested:
-        bt = tested[0].backtest
+        bt = tested[0].back_test
         ax.plot([1.0 / p for p in bt.held_out], bt.actual, "o", mfc="none", mec=color, ms=10, mew=1.0)
     if ex.limit is not None:
         lim = ex.limit
@@ -129,8 +129,8 @@ def _draw_zoom(ax, report: StudyReport, zoomed) -> None:
         return
     inset = ax.inset_axes([0.47, 0.4, 0.5, 0.46])
     for rep, color in zoomed:
-        rows = [r for r in rep.rows if r.inverse_depth <= x_max]
-        inset.plot([r.inverse_depth for r in rows], [r.value for r in rows], "o", color=color, ms=4)
+        rows = [r for r in rep.rows if r.inv_p <= x_max]
+        inset.plot([r.inv_p for r in rows], [r.value for r in rows], "o", color=color, ms=4)
         _draw_extrapolation(inset, rep.extrapolation, color, None)
         if rep.references.ground_state is not None:
             inset.axhline(rep.references.ground_state, color=color, ls="--", lw=1.0)
@@ -215,7 +215,7 @@ def value_figure(report: StudyReport):
         color = colors[i % len(colors)]
         if not rep.rows:
             continue
-        x = np.array([r.inverse_depth for r in rep.rows])
+        x = np.array([r.inv_p for r in rep.rows])
         y = np.array([r.value for r in rep.rows])
         if rep.kind == "sparse":
             # a satisfied fraction is not an energy: show the scaled value, which tends

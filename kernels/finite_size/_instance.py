@@ -10,9 +10,9 @@ MAXIMIZED.  Two spellings are read, both pure text handed in by the caller
 
 * plain text, one term per line: the weight, then the 0-based spin indices of
   the term; ``#`` starts a comment; a weight alone is a constant;
-* JSON (version 1)::
+* JSON (format_version 1; "version": 1, the key of earlier releases, reads the same)::
 
-      {"format": "leadline.instance", "version": 1,
+      {"format": "leadline.instance", "format_version": 1,
        "n": 4,                                   # optional, >= 1 + largest index
        "terms": [{"weight": 1.0, "spins": [0, 1]},
                  {"weight": -0.5, "spins": []}]}   # empty spins: a constant
@@ -148,7 +148,7 @@ class Instance:
         terms = [{"weight": float(w), "spins": list(S)} for S, w in self.terms.items()]
         if self.constant:
             terms.append({"weight": float(self.constant), "spins": []})
-        return {"format": FORMAT, "version": VERSION, "n": int(self.n), "terms": terms}
+        return {"format": FORMAT, "format_version": VERSION, "n": int(self.n), "terms": terms}
 
 
 # --------------------------------------------------------------------------- parsing
@@ -232,9 +232,10 @@ def parse_instance_json(data, source: str = "instance") -> Instance:
     """JSON instance (already decoded); checks format, version and every key."""
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise InstanceError(f"{source}: JSON instance needs \"format\": \"{FORMAT}\"")
-    if data.get("version") != VERSION:
-        raise InstanceError(f"{source}: instance version {data.get('version')!r}; this leadline reads version {VERSION}")
-    unknown = set(data) - {"format", "version", "n", "terms", "name"}
+    version = data.get("format_version", data.get("version"))
+    if version != VERSION:
+        raise InstanceError(f"{source}: instance format_version {version!r}; this leadline reads format_version {VERSION}")
+    unknown = set(data) - {"format", "format_version", "version", "n", "terms", "name"}
     if unknown:
         raise InstanceError(f"{source}: unknown keys {', '.join(sorted(unknown))}")
     n = data.get("n")
