@@ -129,8 +129,11 @@ def depth_line(line: dict) -> str:
     """One human-readable line for a finished depth."""
     r, t = line["result"], line["timings"]
     s = t["this_session"]
-    passes = (f"{s['passes_computed']} passes computed, {s['passes_from_cache']} from checkpoint, "
-              if s["passes_requested"] else "")
+    passes = ""
+    if s["passes_requested"]:
+        # reuse is only mentioned when there was some (a resumed or replayed depth)
+        reused = f", {s['passes_from_cache']} from checkpoint" if s["passes_from_cache"] else ""
+        passes = f"{s['passes_computed']} passes computed{reused}, "
     return (
         f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  |grad| {r['gradient_norm']:.1e}  "
         f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"

@@ -19,7 +19,7 @@ from leadline.kernels.exact import IMPLEMENTATION_ENV, resolve_implementation
 from leadline.storage.errors import StoreError
 
 from .. import compute
-from ..errors import InputError
+from ..errors import InputError, Stopped
 from ..spec import check_new_store, load_spec, spec_from_json
 
 
@@ -63,9 +63,17 @@ def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
         if not as_json:
             typer.echo(depth_line(line))
 
-    with _sigterm_as_exit(), compute.open_compute(settings) as executor:
-        with open_store() as store:
-            lines = run_study(store, spec, executor, report=report)
+    store_path = None
+    try:
+        with _sigterm_as_exit(), compute.open_compute(settings) as executor:
+            with open_store() as store:
+                store_path = store.path
+                lines = run_study(store, spec, executor, report=report)
+    except (KeyboardInterrupt, _Terminated) as exc:
+        # the lock is released and the passes computed so far are written: say what is kept
+        why = "interrupted" if isinstance(exc, KeyboardInterrupt) else "stopped by SIGTERM"
+        code = 130 if isinstance(exc, KeyboardInterrupt) else int(exc.code)
+        raise Stopped(stopped_text(why, store_path), code) from None
     if as_json:
         typer.echo(json.dumps({"store": str(store.path), "finished_now": lines, "progress": open_study(store.path).progress()}))
     elif not quiet:
@@ -228,6 +236,35 @@ def status_command(
         typer.echo(status_text(progress))
 
 
+def stopped_text(why: str, store_path) -> str:
+    """What a stopped sweep kept and how to go on (printed on stderr)."""
+    from leadline.storage import open_study
+
+    if store_path is None:
+        return f"{why} before the store was created; nothing was written (run the sweep again)"
+    progress = open_study(store_path).progress()
+    lines = [f"{why}; saved in {store_path}:"]
+    for e in progress["ensembles"]:
+        parts = []
+        done = [d["p"] for d in e["done"]]
+        if done:
+            parts.append(f"p = {_ranges(done)} done")
+        r = e["running"]
+        if r is not None:
+            text = f"p = {r['p']} stopped with {r['passes_cached']} passes checkpointed"
+            if r["inflight"] is not None:
+                text += f" and {r['inflight']['chunks_done']}/{r['inflight']['n_chunks']} chunks of the next"
+            parts.append(text)
+        if not parts:
+            parts.append("not started")
+        lines.append(f"  {e['label']}: " + "; ".join(parts))
+    if progress["complete"]:
+        lines.append("the study is complete")
+    else:
+        lines.append(f"continue with: leadline resume {store_path}")
+    return "\n".join(lines)
+
+
 def _duration(seconds: float | None) -> str:
     if seconds is None:
         return "unknown (no pass measured yet)"
@@ -281,7 +318,9 @@ def status_text(progress: dict) -> str:
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
         if r is not None:
-            text = (f"    running  p = {r['p']}: {r['passes_cached']} passes checkpointed "
+            # a depth is only running while a writer holds the lock; otherwise it was stopped
+            state = "running" if lock is not None and lock.get("alive") else "stopped"
+            text = (f"    {state:<8} p = {r['p']}: {r['passes_cached']} passes checkpointed "
                     f"(~{r['evaluations_done']} evaluations), session {r['sessions']}")
             if r["inflight"] is not None:
                 f = r["inflight"]
