@@ -26,6 +26,7 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   depth-arrays-written    a depth's angle arrays are on disk, its done flag is not
   depth-done              a depth's done flag is on disk
   depth-started           a depth is marked running, its optimizer not yet started
+  chunk-task              a worker has started a task of chunks (cluster/mapreduce.py), not computed it yet
 """
 
 from __future__ import annotations
@@ -35,7 +36,7 @@ import os
 import signal
 import time
 
-__all__ = ["crash_point", "witness", "ENV_VAR", "AUDIT_ENV", "HOLD_ENV", "HOLD_FILE_ENV"]
+__all__ = ["crash_point", "witness", "rearm", "ENV_VAR", "AUDIT_ENV", "HOLD_ENV", "HOLD_FILE_ENV"]
 
 ENV_VAR = "LEADLINE_CRASH_AT"
 #: if set, every chunk recorded as finished appends "<depth group>/<pass key> <chunk>" to this file
@@ -79,6 +80,23 @@ def crash_point(name: str) -> None:
         count, signum = _targets[name]
         if _counts[name] == count:
             os.kill(os.getpid(), signum)
+
+
+def rearm(**env: str | None) -> int:
+    """Set (or with None remove) these variables in this process and read the points afresh.
+
+    For tests that arm a process that is already running (a Dask worker, through
+    ``client.run``); returns the pid.
+    """
+    global _targets
+    for key, value in env.items():
+        if value is None:
+            os.environ.pop(key, None)
+        else:
+            os.environ[key] = value
+    _targets = None
+    _counts.clear()
+    return os.getpid()
 
 
 def _hold(name: str, count: int) -> None:

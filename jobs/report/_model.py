@@ -249,6 +249,14 @@ def build_ensemble_report(
         notes.append("algorithmic threshold not known for this ensemble: V_p*/ALG columns left out")
     mixture = ensemble_mixture(meta)
     shipped = lookup_ground_state(mixture) if mixture is not None else None
+    if computed is not None and getattr(computed, "details", None) is not None:
+        from ._references import short_of_tolerance
+
+        short = short_of_tolerance(computed)
+        for key, name, origin in (("ground_state", "GS", refs.ground_state_origin),
+                                  ("algorithmic_threshold", "ALG", refs.threshold_origin)):
+            if key in short and origin == "computed":
+                notes.append(f"the computed {name} uncertainty is {short[key]}")
     stored_gs = finite_or_none(getattr(computed, "ground_state", None)) if computed is not None else None
     if stored_gs is not None and refs.ground_state_origin == "shipped table":
         stored_unc = finite_or_none(getattr(computed, "ground_state_uncertainty", None))
@@ -298,7 +306,7 @@ def build_ensemble_report(
             names = sorted({w.family for w in flagged}, key=list(FAMILIES).index)
             notes.append(
                 f"{len(flagged)} fit(s) that pass the back-test ({', '.join(names)}) extrapolate above the upper "
-                f"bound {extrap.bound_name} = {extrap.upper_bound:.4f} (up to {top:.4f}): flagged unphysical and "
+                f"bound ({extrap.bound_name}) = {extrap.upper_bound:.4f} (up to {top:.4f}): flagged unphysical and "
                 "left out of the headline"
             )
         if extrap.limit is None:

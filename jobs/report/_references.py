@@ -24,7 +24,8 @@ from typing import Any, Mapping
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 from leadline.kernels.reference import lookup_ground_state
 
-__all__ = ["References", "resolve_references", "computed_references", "ensemble_mixture", "finite_or_none"]
+__all__ = ["References", "resolve_references", "computed_references", "ensemble_mixture", "finite_or_none",
+           "short_of_tolerance"]
 
 
 @dataclass(frozen=True)
@@ -177,3 +178,17 @@ def computed_references(study: Any, label: str, meta: Mapping | None = None) -> 
         return getter(label)
     except (KeyError, LookupError, ValueError, NotImplementedError):
         return None
+
+
+def short_of_tolerance(refs) -> dict[str, str]:
+    """{"ground_state" | "algorithmic_threshold": why} for each value whose uncertainty is above the
+    tolerance asked for (the step limit was reached first); empty when both met it."""
+    tols = refs.details.get("tolerances") or {}
+    out = {}
+    for key, unc, option in (("ground_state", refs.ground_state_uncertainty, "--gs-tol"),
+                             ("algorithmic_threshold", refs.algorithmic_threshold_uncertainty, "--alg-tol")):
+        tol = tols.get(key)
+        if tol is not None and unc > tol:
+            out[key] = (f"above the requested {option} {tol:.0e}: the limit of {tols.get('max_steps')} steps "
+                        "was reached first (raise --max-steps)")
+    return out
