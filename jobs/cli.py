@@ -78,10 +78,17 @@ def _exception_kinds(exc: BaseException) -> set[str]:
 
 def main(argv: list[str] | None = None) -> None:
     """Console entry point: user errors become one stderr line and exit code 2."""
+    command = typer.main.get_command(app)
+    interrupted, restore = _note_interrupts()
+    try:
+        _main(command, argv, interrupted)
+    finally:
+        restore()
+
+
+def _main(command, argv, interrupted: list[int]) -> None:
     from leadline.cluster.workerenv import in_process_blas, in_process_threads
 
-    command = typer.main.get_command(app)
-    interrupted = _note_interrupts()
     try:
         try:
             threads = in_process_threads()
@@ -129,27 +136,29 @@ def main(argv: list[str] | None = None) -> None:
         sys.exit(rv)
 
 
-def _note_interrupts() -> list[int]:
+def _note_interrupts():
     """Record SIGINT arrivals (then raise KeyboardInterrupt as Python's default handler does).
 
     typer returns Ctrl-C as a bare exit code, so this is how ``main`` knows that a 130 was an
-    interrupt.  Left alone where SIGINT is ignored or handled by someone else, or off the main thread.
+    interrupt.  Left alone where SIGINT is ignored or handled by someone else, or off the main
+    thread.  Returns (the arrivals, a function that puts the previous handler back).
     """
     import signal
     import threading
 
     seen: list[int] = []
     if threading.current_thread() is not threading.main_thread():
-        return seen
-    if signal.getsignal(signal.SIGINT) is not signal.default_int_handler:
-        return seen
+        return seen, lambda: None
+    previous = signal.getsignal(signal.SIGINT)
+    if previous is not signal.default_int_handler:
+        return seen, lambda: None
 
     def handler(signum, frame):
         seen.append(signum)
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGINT, handler)
-    return seen
+    return seen, lambda: signal.signal(signal.SIGINT, previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

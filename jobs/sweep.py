@@ -23,7 +23,24 @@ from leadline.storage.faults import crash_point
 
 from .spec import EnsembleSpec, StudySpec
 
-__all__ = ["run_study", "depth_line"]
+__all__ = ["run_study", "depth_line", "create_store"]
+
+
+def create_store(spec: StudySpec, command: str = "sweep") -> StudyStore:
+    """The new store of ``spec`` (its path checked free beforehand), holding the writer lock."""
+    from leadline import __version__
+    from leadline.kernels.exact import resolve_implementation
+
+    return StudyStore.create(
+        spec.store,
+        name=spec.name,
+        spec=spec.to_json(),
+        spec_toml=spec.source_text,
+        ensembles=[e.description() for e in spec.ensembles],
+        writer=f"leadline {__version__}",
+        command=command,
+        extra={"kernel": resolve_implementation()},
+    )
 
 
 def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):

@@ -14,8 +14,7 @@ from typing import Optional
 
 import typer
 
-from leadline import __version__ as _version
-from leadline.kernels.exact import IMPLEMENTATION_ENV, resolve_implementation
+from leadline.kernels.exact import IMPLEMENTATION_ENV
 from leadline.storage.errors import StoreError
 
 from .. import compute
@@ -123,22 +122,12 @@ def sweep_command(
 
     If it stops (killed, crashed, out of time), `leadline resume STORE` continues exactly where it was.
     """
-    from leadline.storage import StudyStore
+    from ..sweep import create_store
 
     spec = load_spec(spec_path)
     check_new_store(spec.store)
     settings = spec.compute_settings(quiet=quiet or as_json)
-    open_store = lambda: StudyStore.create(  # noqa: E731
-        spec.store,
-        name=spec.name,
-        spec=spec.to_json(),
-        spec_toml=spec.source_text,
-        ensembles=[e.description() for e in spec.ensembles],
-        writer=f"leadline {_version}",
-        command="sweep",
-        extra={"kernel": resolve_implementation()},
-    )
-    _run(open_store, spec, settings, as_json, quiet)
+    _run(lambda: create_store(spec), spec, settings, as_json, quiet)
 
 
 @_store_errors
