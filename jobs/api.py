@@ -33,11 +33,35 @@ __all__ = [
     "optimize",
     "evaluate_sparse",
     "optimize_sparse",
+    "evaluate_bath",
     "reference_energies",
+    "sweep",
+    "resume",
+    "transfer",
     "open_study",
     "study_dataframe",
     "Ladder",
+    "Transfer",
 ]
+
+
+def _blas_capped(func):
+    """Run an API function with BLAS capped as on the command line (``LEADLINE_BLAS_THREADS``,
+    default 1; see cluster/workerenv.py); the process's own setting is restored afterwards."""
+    import functools
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        from leadline.cluster.workerenv import in_process_blas, in_process_threads
+
+        try:
+            threads = in_process_threads()
+        except ValueError as exc:
+            raise InputError(str(exc)) from None
+        with in_process_blas(threads):
+            return func(*args, **kwargs)
+
+    return wrapper
 
 
 # ----------------------------------------------------------------- helpers
@@ -159,6 +183,7 @@ class Ladder:
 
 
 # ----------------------------------------------------------------- dense
+@_blas_capped
 def evaluate(
     xi,
     gamma: Sequence[float],
@@ -248,6 +273,7 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 
 
+@_blas_capped
 def optimize(
     xi,
     depth: int,
@@ -309,6 +335,7 @@ def _sparse_problem(q, degree) -> tuple[int, int]:
     return check_sparse(q, degree, None)
 
 
+@_blas_capped
 def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float], *,
                     gradient: bool = False) -> "SparseEvaluation":
     """Satisfied fraction nu_p(D; gamma, beta) of Max-q-XORSAT on D-regular hypergraphs of large girth.
@@ -343,6 +370,7 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     return kernel(q, D, g, b, gradient=gradient)
 
 
+@_blas_capped
 def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | None = None, seed: int = 0,
                     gtol: float = 1e-7, maxiter: int = 500) -> Ladder:
     """Optimal angles and nu_p* of Max-q-XORSAT on D-regular large-girth hypergraphs.
@@ -385,6 +413,7 @@ def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gtol, maxiter
 
 
 # ----------------------------------------------------------------- references
+@_blas_capped
 def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_steps: int = 10,
                        cache: bool = True, cache_dir: str | Path | None = None) -> "References":
     """Ground-state energy density GS and algorithmic threshold ALG of a mixture.
@@ -430,7 +459,146 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
     return refs
 
 
+# ----------------------------------------------------------------- bath
+@_blas_capped
+def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, fock: int | None = None,
+                  bond: int | None = None, basis: str | None = None):
+    """V_p from the bosonic-bath engine (any depth), with a truncation error estimate; docs/bath.md.
+
+    As ``leadline evaluate --method bath``: a run at ``fock`` levels and bond cap ``bond``, and a
+    check run at 1.5 times the levels and twice the bond; the value is the check run's, the
+    error estimate their difference.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture (``"2:0.5"``: SK).
+    gamma, beta : sequence of float
+        Angles in radians, t = 1 first.
+    fock, bond, basis
+        Fock levels (default 10), bond dimension cap (default 32), ``"cholesky"`` (default)
+        or ``"principal"`` bath modes.
+
+    Returns
+    -------
+    BathEvaluation
+        ``.value``, ``.error_estimate``, ``.run``, ``.check``; ``.to_json()``.
+    """
+    from leadline.kernels.bath import evaluate_bath as kernel
+
+    from .commands._evaluate_bath import DEFAULT_BASIS, DEFAULT_BOND, DEFAULT_FOCK, DEFAULT_TAIL, check_method
+    from .parsing import check_representable
+
+    mix = _mixture(xi)
+    g, b = _angles(gamma, beta)
+    check_representable(mix, g, "gamma", beta=b)
+    check_method("bath", fock, bond, basis, gradient=False, fixed_point=False, sparse=False)
+    fock = DEFAULT_FOCK if fock is None else int(fock)
+    return kernel(mix, g, b, fock=fock, tail=min(DEFAULT_TAIL, fock), chi=DEFAULT_BOND if bond is None else int(bond),
+                  basis=DEFAULT_BASIS if basis is None else basis)
+
+
+# ----------------------------------------------------------------- transfer
+class Transfer(dict):
+    """What ``leadline transfer --json`` prints, as a dict (``["ratio"]``, ``["gamma"]``, ``["notes"]``, ...)."""
+
+    def to_json(self) -> dict:
+        return dict(self)
+
+
+@_blas_capped
+def transfer(instance: str | Path, *, angles: str | Path | None = None, store: str | Path | None = None,
+             ensemble: str | None = None, depth: int | None = None, max_spins: int | None = None,
+             shape_tolerance: float | None = None, seed: int = 0, output: str | Path | None = None) -> Transfer:
+    """Angles for a concrete instance file: rescaled ensemble angles, predicted <C>, exact check at small n.
+
+    As ``leadline transfer`` (docs/transfer.md): give ``angles`` (an angle file), ``store`` (a
+    study; ``ensemble`` and ``depth`` pick the optimum) or ``depth`` alone (optimize for the
+    instance's own mixture).  ``output`` writes the instance-unit angles as CSV.
+
+    Returns
+    -------
+    Transfer
+        A dict: ``xi``, ``gamma``, ``beta`` (instance units), ``predicted``, ``expectation``,
+        ``best``, ``ratio``, ``notes``, ...; ``.to_json()`` is what ``--json`` prints.
+    """
+    from .commands import transfer as command
+
+    def text(x):
+        return None if x is None else str(x)
+
+    options = {}
+    if max_spins is not None:
+        options["max_spins"] = int(max_spins)
+    if shape_tolerance is not None:
+        options["shape_tolerance"] = float(shape_tolerance)
+    return Transfer(command.transfer_instance(
+        text(instance), angles=text(angles), store=text(store), ensemble=ensemble, depth=depth, seed=seed,
+        output=text(output), quiet=True, **options,
+    ))
+
+
 # ----------------------------------------------------------------- studies
+@_blas_capped
+def sweep(spec: str | Path) -> "StudyReader":
+    """Run the depth study of a spec file (TOML, docs/cli.md), as ``leadline sweep SPEC --quiet``.
+
+    Creates the store named in the spec (refused if it exists: continue one with :func:`resume`).
+
+    Parameters
+    ----------
+    spec : path
+        The study spec; its relative paths are taken relative to its folder.
+
+    Returns
+    -------
+    StudyReader
+        The store, opened for reading (as :func:`open_study`).
+    """
+    from .commands.sweep import _store_errors
+    from .spec import check_new_store, load_spec
+    from .sweep import create_store
+
+    spec_obj = load_spec(spec)
+    check_new_store(spec_obj.store)
+    _store_errors(_run_study)(lambda: create_store(spec_obj), spec_obj, spec_obj.compute_settings(quiet=True))
+    return open_study(spec_obj.store)
+
+
+@_blas_capped
+def resume(store: str | Path) -> "StudyReader":
+    """Continue a stopped study exactly where it was, as ``leadline resume STORE --quiet``.
+
+    Returns
+    -------
+    StudyReader
+        The store, opened for reading (as :func:`open_study`).
+    """
+    from leadline.storage import StudyStore, check_study
+    from leadline.storage.errors import StoreError
+
+    from .commands.sweep import _pin_kernel, _store_errors
+    from .spec import spec_from_json
+
+    try:
+        attrs = check_study(store)
+    except StoreError as exc:
+        raise InputError(str(exc)) from None
+    spec_obj = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
+    _pin_kernel(attrs.get("kernel"))
+    _store_errors(_run_study)(lambda: StudyStore.open(store, command="resume"), spec_obj,
+                              spec_obj.compute_settings(quiet=True))
+    return open_study(store)
+
+
+def _run_study(open_store, spec, settings) -> None:
+    from . import compute
+    from .sweep import run_study
+
+    with compute.open_compute(settings) as executor, open_store() as writer:
+        run_study(writer, spec, executor)
+
+
 def open_study(path: str | Path) -> "StudyReader":
     """Open a study store (written by ``leadline sweep``) for reading; never takes the lock.
 
