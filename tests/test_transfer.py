@@ -611,3 +611,16 @@ def test_weighted_low_degree_graph_is_matched_to_the_sparse_ensemble(tmp_path):
     # the text report says the same in one note line
     text = run_cli("transfer", path, "--depth", "1", "--quiet").stdout
     assert "note: every spin is in 3 terms of order 2, girth 5" in text
+
+
+def test_mixtures_read_rounded_in_text_and_exact_in_json(tmp_path):
+    """A ring of 7 with weights 1/3 has xi = (1/9) x^2: the report's text reads 2:0.111111, the
+    JSON keeps the exact float (its shortest text that reads back to the same number)."""
+    path = tmp_path / "third.txt"
+    path.write_text("".join(f"{1 / 3!r} {i} {(i + 1) % 7}\n" for i in range(7)))
+    text = run_cli("transfer", path, "--depth", "1", "--quiet").stdout
+    assert "optimized for the instance's mixture 2:0.111111\n" in text, text
+    out = json.loads(run_cli("transfer", path, "--depth", "1", "--json").stdout)
+    exact = parse_mixture(out["xi"])
+    assert exact.spec() == out["xi"] and abs(exact.terms[0][1] - 1 / 9) < 1e-15 and out["xi"] != "2:0.111111"
+    assert parse_mixture("2:0.6696428571428571").rounded_spec() == "2:0.669643"
