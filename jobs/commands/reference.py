@@ -12,7 +12,7 @@ import typer
 from .. import reference_cache
 from ..errors import InputError
 from ..parsing import check_reference_settings, mixture_arg
-from ..report._references import short_of_tolerance
+from ..report import short_of_tolerance
 
 
 def reference_command(

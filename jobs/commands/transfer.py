@@ -239,7 +239,7 @@ def transfer_instance(instance: str | None, *, angles: str | None = None, store:
     else:
         notes.append(f"n = {inst.n} > --max-spins {max_spins}: no exact check (at most {MAX_STATEVECTOR_SPINS})")
     if structure is None:
-        _weighted_low_degree(inst, xi, gamma, beta, out, max_spins, seed)
+        _weighted_low_degree(inst, xi, gamma, beta, out, seed)
     out["wall_time_s"] = time.perf_counter() - started
 
     if output is not None and gamma is not None:
@@ -247,7 +247,7 @@ def transfer_instance(instance: str | None, *, angles: str | None = None, store:
     return out
 
 
-def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, max_spins: int, seed: int) -> None:
+def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, seed: int) -> None:
     """A graph of one order whose spins are in few terms, with weights of several sizes: the dense
     ensemble is only its D -> infinity limit.  Say which ensemble fits it (degree, girth) and, when
     its degree is regular, compare the sparse ensemble's angles on the exact check."""
@@ -259,8 +259,10 @@ def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, max_spins: i
     for S in inst.terms:
         counts[list(S)] += 1
     d_min, d_max = int(counts.min()), int(counts.max())
-    if d_max > LOW_DEGREE or d_min < 1:
+    if q < 2 or d_max > LOW_DEGREE or d_min < 1:
         return
+    sizes = np.abs(np.fromiter(inst.terms.values(), dtype=float))
+    unequal = not np.allclose(sizes, sizes[0], rtol=1e-12, atol=0)
     p = None if gamma is None else int(np.asarray(gamma).size)
     out["degrees"] = {"q": int(q), "min": d_min, "max": d_max, "mean": float(counts.mean())}
     where = f"{d_min} terms" if d_min == d_max else f"{d_min} to {d_max} terms"
@@ -271,7 +273,8 @@ def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, max_spins: i
         out["girth"], out["girth_above"] = found, (limit if found is None else None)
         text += f", girth {found}" if found is not None else f", girth > {limit}"
     D = round(float(counts.mean()))
-    text += (f", weights of several sizes: closer to the sparse ensemble (q = {q}, D = {D}) than to the dense one, "
+    text += ", weights of several sizes" if unequal else ""
+    text += (f": closer to the sparse ensemble (q = {q}, D = {D}) than to the dense one, "
              "which is its large-degree limit")
     notes = out["notes"]
     if d_min != d_max or d_min < 2 or gamma is None or p > SPARSE_ANGLES_MAX_P or out["ratio"] is None:
@@ -279,9 +282,13 @@ def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, max_spins: i
         notes.append(text + f"; sparse angles: leadline optimize --xorsat {q} --degree {D} --depth {depth} "
                      f"--output sparse.json, then leadline transfer {out['instance']} --angles sparse.json")
         return
-    from ..api import optimize_sparse
+    from leadline.kernels.sparse import optimize_sparse
 
-    ladder = optimize_sparse(q, D, p, seed=seed)
+    ladder = previous = previous_value = None
+    for depth in range(1, p + 1):  # warm-started depth by depth, as `optimize --xorsat` does
+        ladder = optimize_sparse(q, D, depth, previous=previous, previous_value=previous_value, seed=seed,
+                                 restarts=3 if depth <= 2 else 1)
+        previous, previous_value = (ladder.gamma, ladder.beta), ladder.value
     xi_s, g_s, _ = sparse_reference(q, D, ladder.gamma, ladder.value)
     g_inst = rescale_angles(xi, xi_s, g_s).gamma  # scaled by the weights' variance
     check = statevector_check(inst, g_inst, ladder.beta)
