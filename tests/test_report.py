@@ -165,14 +165,14 @@ def test_csv_parses_and_holds_the_stored_values(study, report):
 
 def test_json_is_one_object_with_the_stored_values(study, report):
     obj = json.loads(render_json(report))
-    assert obj["format"] == "leadline.table" and obj["version"] == 2
+    assert obj["format"] == "leadline.table" and obj["version"] == 3
     assert [e["label"] for e in obj["ensembles"]] == study.ensembles()
     for ens in obj["ensembles"]:
         stored = study.depths(ens["label"])
         assert [d["value"] for d in ens["depths"]] == [d["value"] for d in stored]
     assert "not bounds" in obj["note"]
     sk = obj["ensembles"][0]
-    assert sk["extrapolation"]["fits"][0]["family"] == "poly1"
+    assert sk["extrapolation"]["fits"][0]["family"] == "linear-in-1/p"
     assert sk["extrapolation"]["limit"] is None and "not a confidence interval" in sk["extrapolation"]["spread_meaning"]
 
 
@@ -503,10 +503,119 @@ def test_plot_draws_every_family_and_the_back_test(tmp_path):
     study = InMemoryStudy("published", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
     report = build_report(study)
     ex = report.ensembles[0].extrapolation
-    assert ex.limit is not None and {w.family for w in ex.fits} == {"poly1", "poly2", "poly3", "power", "power-gs"}
+    assert ex.limit is not None and {w.family for w in ex.fits} == {
+        "linear-in-1/p", "quadratic-in-1/p", "cubic-in-1/p", "free-power-law", "power-law-to-GS"}
     out = tmp_path / "sk.png"
     write_plots(report, out)
     img = imread(out)
     w, h = FIGURE_SIZE_INCHES
     assert img.shape[:2] == (round(h * FIGURE_DPI), round(w * FIGURE_DPI))
     assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 20
+
+
+# ----------------------------------------------- honest extrapolation output
+def _sk_ladder_study(pmax, name="sk-ladder", kind="dense", uncertainty=None):
+    """The stored SK optima of this tool (tests/sk_optima.csv) up to pmax, held in memory."""
+    from leadline.tests.extrapolation_calibration import load_ladder
+
+    ladder = load_ladder()
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None} for p, v in ladder.items() if p <= pmax]
+    if uncertainty is not None:
+        for d in depths:
+            d["error_estimate"] = uncertainty(d["p"])  # as the bath engine records it
+    return InMemoryStudy(name, [({"label": "sk", "kind": kind, "xi": "2:0.5", "reference": {}}, depths)])
+
+
+def test_six_depths_give_no_headline_but_say_what_each_family_gives():
+    report = build_report(_sk_ladder_study(6), at_depths=(50,))
+    ex = report.ensembles[0].extrapolation
+    assert ex.limit is None and ex.at_depth == {} and ex.levels == []
+    text = render_markdown(report)
+    assert "No headline: too few depths for an extrapolation (6, at least 8 needed)" in text
+    assert "V_inf estimate" not in text and "Predicted depth" not in text
+    for fam in ("linear-in-1/p", "quadratic-in-1/p", "cubic-in-1/p", "free-power-law", "power-law-to-GS"):
+        assert f"- {fam} (window " in text
+    rows = list(csv.DictReader(io.StringIO(render_csv(report))))
+    assert not [r for r in rows if r["record"] in ("extrapolation", "at_depth", "depth_for")]
+    assert any(r["note"].startswith("no headline: too few depths") for r in rows)
+    assert json.loads(render_json(report))["ensembles"][0]["extrapolation"]["declined"].startswith("too few depths")
+
+
+def test_depth_for_a_ratio_says_when_these_depths_do_not_determine_it():
+    report = build_report(_sk_ladder_study(12))
+    ex = report.ensembles[0].extrapolation
+    ninety_nine = next(lv for lv in ex.levels if lv.name == "ratio 0.99")
+    # the low band of V_inf stays below 0.99 GS: the depth has no upper end on this evidence
+    assert ex.limit.low < 0.99 * SK_PARISI and not ninety_nine.determined
+    assert "not determined by these depths" in render_markdown(report)
+    rows = list(csv.DictReader(io.StringIO(render_csv(report))))
+    (row,) = [r for r in rows if r["quantity"] == "depth_for_ratio_0.99"]
+    assert row["high"] == "" and "not determined" in row["note"]
+
+
+def test_plot_limits_are_set_by_the_data_and_the_used_fits(drawn, tmp_path):
+    """SK p <= 12: the free power law is unphysical (it rises to ~0.83 > GS) and must not stretch the
+    axis; every stored value and every used fit as drawn lies inside the limits; the inset shows the
+    last depths."""
+    from leadline.jobs.report import inset_extent, value_axis_limits
+
+    report = build_report(_sk_ladder_study(12))
+    rep = report.ensembles[0]
+    ex = rep.extrapolation
+    write_plots(report, tmp_path / "sk.png")
+    value_fig = drawn[0]
+    (ax,) = [a for a in value_fig.axes if a.get_xlabel()]
+    lo, hi = ax.get_ylim()
+    assert (lo, hi) == pytest.approx(value_axis_limits(report))
+    for r in rep.rows:
+        assert lo < r.value < hi
+    used_lines = [line for line in ax.get_lines() if len(line.get_xdata()) == 200 and line.get_alpha() == 0.9]
+    assert len(used_lines) == len(ex.best_by_family())
+    for line in used_lines:
+        assert lo < min(line.get_ydata()) and max(line.get_ydata()) < hi
+    rejected = [w for w in ex.fits if not w.used]
+    assert rejected and max(w.fit.peak_beyond(12) for w in rejected) > hi + 0.02  # would have stretched it
+    faint = [line for line in ax.get_lines() if len(line.get_xdata()) == 200 and line.get_alpha() != 0.9]
+    assert faint and all(line.get_alpha() <= 0.25 for line in faint)
+    assert ex.limit.low > lo and ex.limit.high < hi
+    # no rejected fit decides the limits: drop them and the limits stay
+    from dataclasses import replace
+
+    kept = replace(rep, extrapolation=replace(ex, fits=[w for w in ex.fits if w.used]))
+    assert value_axis_limits(replace(report, ensembles=[kept])) == pytest.approx((lo, hi))
+    (inset,) = [a for a in ax.child_axes if getattr(a, "get_title", lambda: "")().startswith("zoom")]
+    x0, x1 = inset.get_xlim()
+    last = [r.inverse_depth for r in rep.rows[-5:]]
+    assert x0 < 0 and x1 == pytest.approx(inset_extent(report)) and all(x0 < x < x1 for x in last)
+    assert 1.0 / 7 > x1  # depth 7 and below are outside the inset: it shows the last depths
+    ilo, ihi = inset.get_ylim()
+    assert all(ilo < r.value < ihi for r in rep.rows[-5:])
+
+
+def test_sparse_ensembles_follow_the_same_rules():
+    """A sparse ensemble's satisfied fraction: the same minimum of depths, a range below the
+    fraction's maximum 1 and above the last computed value (a stated synthetic model
+    nu_p = 0.95 - 0.3 p^-0.8, not physics data)."""
+    def study(pmax):
+        depths = [{"p": p, "value": 0.95 - 0.3 * p ** -0.8, "gamma": [], "beta": [], "gradient_norm": None}
+                  for p in range(1, pmax + 1)]
+        return InMemoryStudy("sparse", [({"label": "x", "kind": "sparse", "q": 3, "degree": 4}, depths)])
+
+    few = build_report(study(6)).ensembles[0].extrapolation
+    assert few.limit is None and few.declined.startswith("too few depths")
+    ex = build_report(study(10)).ensembles[0].extrapolation
+    assert ex.upper_bound == 1.0 and ex.declined is None
+    assert 0.95 - 0.3 * 10 ** -0.8 <= ex.limit.low <= ex.limit.central <= ex.limit.high <= 1.0
+    assert ex.limit.covers(0.95)
+    assert "nu_inf estimate" in render_markdown(build_report(study(10)))
+
+
+def test_depth_uncertainties_in_the_records_weight_the_fits():
+    """Depths from an approximate engine carry error_estimate in their record: the fits are
+    weighted (exact depths far above them) and the table says so; records without it are exact."""
+    report = build_report(_sk_ladder_study(12, uncertainty=lambda p: 2e-5 if p > 9 else None))
+    ex = report.ensembles[0].extrapolation
+    assert ex.uncertain_depths == 3 and all(w.fit.sigmas is not None for w in ex.fits)
+    assert "3 depth(s) carry an uncertainty" in render_markdown(report)
+    plain = build_report(_sk_ladder_study(12)).ensembles[0].extrapolation
+    assert plain.uncertain_depths == 0 and all(w.fit.sigmas is None for w in plain.fits)

@@ -22,10 +22,11 @@ def plot_command(
     """Two figures of a study: V_p* vs 1/p per ensemble, and the optimal angle schedules.
 
     FILE.png: stored V_p* (markers), each extrapolation family's curve out to
-    1/p = 0 (one line style per family), the held-out depths of the back-test
-    (rings) with the back-test predictions (x), the headline V_inf and its range
-    at 1/p = 0 (an estimate, not a bound), and reference lines GS (dashed) and
-    ALG (dotted) where known.
+    1/p = 0 (one line style per family; faint when not used), the held-out
+    depths of the back-test (rings) with the back-test predictions (x), the
+    headline V_inf and its range at 1/p = 0 (an estimate, not a bound), and
+    reference lines GS (dashed) and ALG (dotted) where known; the value axis
+    is set by the data and the used fits, an inset shows the last depths.
     FILE-angles.png: gamma_t and beta_t against (t - 1/2)/p, one curve per depth.
 
     Example: leadline plot study.zarr --output study.png

@@ -34,9 +34,10 @@ def table_command(
     is known, the final gradient norm; then the extrapolation: fit families
     (polynomials in 1/p of degree 1-3, a free power law V_inf - A p^-alpha, the
     power law anchored at GS) over several windows, each back-tested on held-out
-    depths, the headline V_inf with its range from the fits that pass, and the
-    predicted depths for ratios 0.95, 0.99 and ALG. Extrapolations are
-    estimates, not bounds (docs/extrapolation.md).
+    depths and weighted by its back-test error; from 8 depths on, the headline
+    V_inf with a range from the weighted fits, and the predicted depths for
+    ratios 0.95, 0.99 and ALG (fewer depths: what each family gives, no
+    headline). Extrapolations are estimates, not bounds (docs/extrapolation.md).
 
     Example: leadline table study.zarr --at-depth 50,100,160 --format csv --output table.csv
     """

@@ -43,6 +43,9 @@ _WHERE = {
     "render_json": "_csv_json",
     "write_plots": "_plots",
     "angle_plot_path": "_plots",
+    "value_figure": "_plots",
+    "value_axis_limits": "_plots",
+    "inset_extent": "_plots",
     "FIGURE_SIZE_INCHES": "_plots",
     "FIGURE_DPI": "_plots",
 }

@@ -8,7 +8,7 @@ import json
 import math
 from typing import Any
 
-from leadline.kernels.extrapolate import Extrapolation
+from leadline.kernels.extrapolate import COVERAGE, FAMILIES, Extrapolation
 
 from ._model import StudyReport
 
@@ -29,12 +29,13 @@ CSV_COLUMNS = [
     "exceeds_alg",
     "gradient_norm",
     "degree",
-    "k",
+    "window",
     "depths",
     "note",
     "family",
     "status",
     "backtest_error",
+    "weight",
     "low",
     "high",
 ]
@@ -58,18 +59,22 @@ def _emit_extrapolation(emit, label: str, ex: Extrapolation) -> None:
         params = ("coefficients " + " ".join(f"{c:.6g}" for c in f.params) if f.is_polynomial
                   else f"A = {f.params[1]:.6g}, alpha = {f.params[2]:.6g}")
         emit(ensemble=label, record="fit", quantity="V_inf", value=f.limit, uncertainty=f.standard_error(math.inf),
-             family=w.family, degree=int(w.family[4:]) if f.is_polynomial else None, k=f.k, depths=span,
-             backtest_error=w.backtest_error, status=w.status, note="; ".join(x for x in (params, w.reason) if x))
+             family=w.family, degree=FAMILIES[w.family].degree, window=f.k, depths=span,
+             backtest_error=w.backtest_error, weight=w.weight, status=w.status,
+             note="; ".join(x for x in (params, w.reason) if x))
         if w.backtest is not None:
             bt = w.backtest
             fitted = f"{bt.fit.depths[0]}-{bt.fit.depths[-1]}"
             for p, pred, err in zip(bt.held_out, bt.predicted, bt.errors):
                 emit(ensemble=label, record="backtest", quantity="V_p", p=p, inv_p=1.0 / p, value=pred,
-                     backtest_error=err, family=w.family, k=f.k, depths=fitted, status=w.status,
+                     backtest_error=err, family=w.family, window=f.k, depths=fitted, status=w.status,
                      note="predicted from the fitted depths; backtest_error = predicted - stored")
+    if ex.declined is not None:
+        emit(ensemble=label, record="note", note=f"no headline: {ex.declined}")
     lim = ex.limit
     if lim is not None:
-        rule = "central: median over families of the best back-tested windows; low/high: extremes over used fits"
+        rule = ("central: median of the weighted mixture of the fits' predictions; low/high: its central "
+                f"{COVERAGE:.0%}")
         emit(ensemble=label, record="extrapolation", quantity="V_inf", value=lim.central, low=lim.low, high=lim.high,
              note=f"{rule}; an estimate, not a bound")
         if ex.ground_state is not None:
@@ -85,9 +90,10 @@ def _emit_extrapolation(emit, label: str, ex: Extrapolation) -> None:
                  low=ratio[p].low, high=ratio[p].high, note="estimate")
     for lv in ex.levels:
         name = "ALG" if lv.name == "ALG" else lv.name.replace("ratio ", "ratio_")
+        determined = "" if lv.determined else "; not determined by these depths (empty high)"
         emit(ensemble=label, record="depth_for", quantity=f"depth_for_{name}", value=lv.central, low=lv.low,
-             high=lv.high, note=f"estimate at level {lv.level!r}; empty = never; "
-                                f"{lv.fits_reaching} of {lv.fits} used fits reach it")
+             high=lv.high, note=f"estimate at level {lv.level!r}; empty = never{determined}; "
+                                f"{lv.fits_reaching} of {lv.fits} weighted fits reach it")
 
 
 def render_csv(report: StudyReport) -> str:
@@ -96,10 +102,11 @@ def render_csv(report: StudyReport) -> str:
     record = "depth": p, inv_p, value (V_p*), gain, ratio_gs, ratio_alg,
     exceeds_alg, gradient_norm.  "reference": quantity ground_state or
     algorithmic_threshold, value, uncertainty, note (source).  "fit": one fit
-    of one family over the last k depths: family, degree (polynomials), k,
-    depths, value (V_inf), uncertainty (its standard error), backtest_error
-    (largest absolute error on the held-out depths), status (used / failed
-    back-test / unphysical / no back-test), note (why).  "backtest": one
+    of one family over its window of last depths: family, degree (polynomials),
+    window (number of depths), depths, value (V_inf), uncertainty (its
+    standard error), backtest_error (largest absolute error on the held-out
+    depths), weight (its share of the headline), status (used / unphysical /
+    no back-test), note (why).  "backtest": one
     held-out depth p of one fit: value (predicted V_p), backtest_error
     (predicted - stored), depths (the depths the back-test fit used).
     "extrapolation": quantity V_inf or ratio_gs_inf, value (central), low,

@@ -10,7 +10,18 @@ from __future__ import annotations
 
 import math
 
-from leadline.kernels.extrapolate import FAMILIES, SE_FACTOR, SPREAD_MEANING, Extrapolation
+from leadline.kernels.extrapolate import (
+    ANCHORED_POWER,
+    BACKTEST_GROWTH,
+    COVERAGE,
+    FAMILIES,
+    REFERENCE_DEPTHS,
+    SCALE_BEST_FACTOR,
+    SCALE_GAIN_FRACTION,
+    SPREAD_MEANING,
+    WEIGHT_POWER,
+    Extrapolation,
+)
 
 from ._model import EnsembleReport, StudyReport
 from ._references import References
@@ -63,55 +74,86 @@ def _fmt_level_depth(d: float | None) -> str:
     return f"{d:.3g}" if d < 1e4 else f"{d:.2e}"
 
 
+def headline_rule_text() -> str:
+    """How the headline and its range are formed, in one sentence (table and docs)."""
+    return (
+        "each weighted fit predicts a normal distribution (mean: its curve; standard deviation: its "
+        f"least-squares error and {BACKTEST_GROWTH:g} x its back-test error grown with the distance in 1/p "
+        "beyond the data, both x sqrt(" f"{REFERENCE_DEPTHS}/n) with n < {REFERENCE_DEPTHS} depths); central = median "
+        f"of the weighted mixture, range = its central {COVERAGE:.0%}, high end cut at the upper bound, low end "
+        "raised to the last computed value"
+    )
+
+
+def _family_lines(ex: Extrapolation, value_name: str) -> list[str]:
+    """What each family gives (its best window), when there is no headline."""
+    out = []
+    for fam, (w, value) in ex.family_values().items():
+        f = w.fit
+        err = "no back-test" if w.backtest is None else f"back-test error {w.backtest_error:.1e}"
+        extra = "" if w.used else f", {w.status}"
+        out.append(f"- {fam} (window {f.k}, depths {f.depths[0]}..{f.depths[-1]}): "
+                   f"{value_name}_inf = {value:.4f} ({err}{extra})")
+    return out
+
+
 def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[str]:
-    """The extrapolation block: every fit with its back-test, the headline, predictions."""
-    out = [f"Extrapolation of {value_name}_p* to p -> infinity (fit families over windows of the last k depths):", ""]
+    """The extrapolation block: every fit with its back-test and weight, the headline, predictions."""
+    out = [f"Extrapolation of {value_name}_p* to p -> infinity (fit families over windows of the last depths):", ""]
     tested = [w for w in ex.fits if w.backtest is not None]
     if tested:
         bt = tested[0].backtest
         held = f"p = {bt.held_out[0]}" + (f"..{bt.held_out[-1]}" if len(bt.held_out) > 1 else "")
         out.append(
             f"Back-test: each fit is refitted on the same number of depths ending at p = {bt.fit.depths[-1]} and "
-            f"predicts the held-out {held}; it passes when its largest error is <= {ex.pass_threshold:.2e} "
-            f"= max(0.1 x the rise over the held-out depths, 3 x the smallest error)."
+            f"predicts the held-out {held}; its weight falls smoothly with its largest error e, "
+            f"1 / (1 + (e / {ex.weight_scale:.2e})^{WEIGHT_POWER}), where {ex.weight_scale:.2e} = "
+            f"max({SCALE_GAIN_FRACTION:g} x the rise over the held-out depths, {SCALE_BEST_FACTOR:g} x the smallest "
+            "error); a family's windows share its weight."
         )
     else:
-        out.append("Back-test: too few depths to hold any out; no fit can pass.")
+        out.append("Back-test: too few depths to hold any out; no fit can be weighted.")
     if ex.upper_bound is not None:
         out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {ex.upper_bound:.6f} "
-                   "is flagged unphysical.")
+                   "is flagged unphysical (weight 0).")
+    if ex.uncertain_depths:
+        out.append(f"{ex.uncertain_depths} depth(s) carry an uncertainty (approximate engine): fits weighted by "
+                   "1/uncertainty^2, exact depths far above them.")
     out.append("")
     rows = []
     for w in ex.fits:
         f = w.fit
         rows.append([
             w.family, str(f.k), f"{f.depths[0]}..{f.depths[-1]}", f"{f.limit:.5f}",
-            "GS given" if w.family == "power-gs" else f"{f.standard_error(math.inf):.1e}",
-            _fmt(w.backtest_error, ".2e"), w.status,
+            "GS given" if w.family == ANCHORED_POWER else f"{f.standard_error(math.inf):.1e}",
+            _fmt(w.backtest_error, ".2e"), f"{w.weight:.3f}", w.status,
         ])
-    out += _markdown_table(["family", "k", "depths", f"{value_name}_inf", "std err", "back-test error", "status"],
-                           rows, ["l", "r", "l", "r", "r", "r", "l"])
+    out += _markdown_table(["family", "window", "depths", f"{value_name}_inf", "std err", "back-test error",
+                            "weight", "status"], rows, ["l", "r", "l", "r", "r", "r", "r", "l"])
     out.append("")
-    out.append("Families: " + "; ".join(f"{f.name}: {f.description}" for f in FAMILIES.values()) + ".")
+    out.append("Families: " + "; ".join(f"{f.name}: {f.description}" for f in FAMILIES.values())
+               + ". window = number of last depths fitted.")
     out.append("")
+    if ex.declined is not None:
+        out.append(f"No headline: {ex.declined}. What each family gives (its best window; not an estimate):")
+        out += _family_lines(ex, value_name)
+        out.append("")
+        return out
     lim = ex.limit
     if lim is None:
-        out.append("No headline: no fit passes the back-test and stays physical.")
+        out.append("No headline: no fit was back-tested and stays physical.")
         out.append("")
         return out
     best = ex.best_by_family()
-    fams = ", ".join(f"{fam} k = {w.fit.k}: {w.fit.limit:.4f}" for fam, w in best.items())
+    fams = ", ".join(f"{fam} window {w.fit.k}: {w.fit.limit:.4f}" for fam, w in best.items())
     out.append(
         f"{value_name}_inf estimate: {lim.central:.4f}, range {_fmt_range(lim.low, lim.high, '.4f', lim.capped)} "
-        f"({lim.n_fits} used fits of {len(best)} families)"
+        f"({lim.n_fits} weighted fits of {len(best)} families)"
     )
     if ex.ground_state is not None:
         r = lim.scaled(1.0 / ex.ground_state)
         out.append(f"{value_name}_inf / GS estimate: {r.central:.4f}, range {_fmt_range(r.low, r.high, '.4f', r.capped)}")
-    out.append(
-        f"Headline rule: central = median over families of each family's best back-tested window ({fams}); "
-        f"range = smallest and largest over every used fit, each +- {SE_FACTOR:g} least-squares standard errors."
-    )
+    out.append(f"Headline rule: {headline_rule_text()}. Best window per family: {fams}.")
     out.append(f"What the range means: {SPREAD_MEANING}")
     out.append("")
     if ex.at_depth:
@@ -129,12 +171,13 @@ def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[st
         out += _markdown_table(header, p_rows, ["r"] * len(header))
         out.append("")
     if ex.levels:
-        l_rows = [
-            [lv.name, f"{lv.level:.6f}", _fmt_level_depth(lv.central),
-             f"{_fmt_level_depth(lv.low)} .. {_fmt_level_depth(lv.high)}", f"{lv.fits_reaching} of {lv.fits}"]
-            for lv in ex.levels
-        ]
-        out.append("Predicted depth to reach a target (same headline rule; never = the fit saturates below it):")
+        l_rows = []
+        for lv in ex.levels:
+            hi = _fmt_level_depth(lv.high) if lv.determined else "not determined by these depths"
+            l_rows.append([lv.name, f"{lv.level:.6f}", _fmt_level_depth(lv.central),
+                           f"{_fmt_level_depth(lv.low)} .. {hi}", f"{lv.fits_reaching} of {lv.fits}"])
+        out.append("Predicted depth to reach a target (where the high band, the median and the low band of the "
+                   "headline rule reach it; never = stays below):")
         out.append("")
         out += _markdown_table(["target", "level", "depth p", "range", "fits reaching"], l_rows,
                                ["l", "r", "r", "r", "r"])

@@ -50,7 +50,7 @@ __all__ = [
 ]
 
 TABLE_FORMAT = "leadline.table"
-TABLE_VERSION = 2  # 2: extrapolation by fit families with back-tests
+TABLE_VERSION = 3  # 2: extrapolation by fit families with back-tests; 3: smooth weights, mixture range, family names
 
 
 class InMemoryStudy:
@@ -201,6 +201,15 @@ def _describe(meta: Mapping) -> str:
     return ", ".join(parts)
 
 
+def _value_uncertainty(rec: Mapping) -> float | None:
+    """The stored uncertainty of V_p* of a depth record (None: exact): the bath engine's
+    ``error_estimate``, or a ``value_uncertainty`` / ``uncertainty`` given with the value."""
+    for key in ("error_estimate", "value_uncertainty", "uncertainty"):
+        if rec.get(key) is not None:
+            return rec.get(key)
+    return None
+
+
 def build_ensemble_report(
     meta: Mapping,
     depth_records: Sequence[Mapping],
@@ -282,11 +291,14 @@ def build_ensemble_report(
             notes.append("ALG equals GS within their uncertainties (no overlap gap): no separate depth to reach ALG")
     depths = [r.p for r in rows]
     values = [r.value for r in rows]
+    # depths from an approximate engine carry a standard uncertainty of V_p*; exact depths none
+    uncertainties = [finite_or_none(_value_uncertainty(rec)) for rec in records]
     dense = meta.get("kind", "dense") == "dense"
     extrap = None
     if len(rows) >= 2:
         extrap = extrapolate(
             depths, values,
+            uncertainties=uncertainties if any(u for u in uncertainties) else None,
             ground_state=gs if dense else None,
             ground_state_uncertainty=(refs.ground_state_uncertainty or 0.0) if dense else 0.0,
             upper_bound=union_bound(mixture) if mixture is not None else (1.0 if not dense else None),
@@ -305,13 +317,12 @@ def build_ensemble_report(
             top = max(w.fit.peak_beyond(float(depths[-1])) for w in flagged)
             names = sorted({w.family for w in flagged}, key=list(FAMILIES).index)
             notes.append(
-                f"{len(flagged)} fit(s) that pass the back-test ({', '.join(names)}) extrapolate above the upper "
+                f"{len(flagged)} back-tested fit(s) ({', '.join(names)}) extrapolate above the upper "
                 f"bound ({extrap.bound_name}) = {extrap.upper_bound:.4f} (up to {top:.4f}): flagged unphysical and "
-                "left out of the headline"
+                "given weight 0 in the headline"
             )
-        if extrap.limit is None:
-            notes.append("no fit passes the back-test and stays physical (or too few depths for a back-test): "
-                         "no headline extrapolation")
+        if extrap.declined is None and extrap.limit is None:
+            notes.append("no fit was back-tested and stays physical: no headline extrapolation")
 
     return EnsembleReport(
         label=str(meta.get("label")),

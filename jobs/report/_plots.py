@@ -16,7 +16,7 @@ from leadline.kernels.sparse import scaled_value
 
 from ._model import StudyReport
 
-__all__ = ["write_plots", "angle_plot_path", "FIGURE_SIZE_INCHES", "FIGURE_DPI"]
+__all__ = ["write_plots", "angle_plot_path", "value_axis_limits", "inset_extent", "value_figure", "FIGURE_SIZE_INCHES", "FIGURE_DPI"]
 
 
 FIGURE_SIZE_INCHES = (11.0, 5.5)
@@ -30,13 +30,16 @@ def angle_plot_path(output: Path) -> Path:
     return output.with_name(output.stem + "-angles" + output.suffix)
 
 
-FAMILY_LINESTYLES = {"poly1": (0, (1, 1.5)), "poly2": (0, (4, 2)), "poly3": (0, (6, 2, 1, 2)),
-                     "power": "-", "power-gs": (0, (3, 1, 1, 1))}
+FAMILY_LINESTYLES = {"linear-in-1/p": (0, (1, 1.5)), "quadratic-in-1/p": (0, (4, 2)),
+                     "cubic-in-1/p": (0, (6, 2, 1, 2)), "free-power-law": "-",
+                     "power-law-to-GS": (0, (3, 1, 1, 1))}
+INSET_DEPTHS = 5  # the inset shows the last five depths and the fits out to 1/p = 0
+REJECTED_ALPHA = 0.25
 
 
 def _drawn_fits(ex: Extrapolation) -> list:
-    """[(WindowFit, used)]: per family its used window with the smallest back-test error, else
-    (family not used) its window with the smallest back-test error."""
+    """[(WindowFit, used)]: per family its used window with the highest back-test weight, else
+    (family not used: unphysical or not back-tested) its window with the smallest back-test error."""
     best = ex.best_by_family()
     out = []
     for fam in FAMILIES:
@@ -47,24 +50,58 @@ def _drawn_fits(ex: Extrapolation) -> list:
     return out
 
 
+def _curve(fit, x_max: float):
+    xs = np.linspace(0.0, x_max, 200)
+    return xs, np.asarray(fit.predict(np.where(xs > 0, 1.0 / np.maximum(xs, 1e-300), np.inf)))
+
+
+def _padded(lo: float, hi: float, pad: float = 0.04) -> tuple[float, float]:
+    span = hi - lo if hi > lo else max(abs(hi), 1.0) * 1e-3
+    return lo - pad * span, hi + pad * span
+
+
+def value_axis_limits(report: StudyReport, x_max: float = math.inf) -> tuple[float, float] | None:
+    """Limits of the value axis over 1/p in [0, x_max]: the stored values, the curves of the used
+    fits as drawn, the headline bars and the reference lines; never a rejected fit (unphysical or
+    not back-tested), which would squash the data. None when nothing is drawn."""
+    ys: list[float] = []
+    for rep in report.ensembles:
+        if not rep.rows:
+            continue
+        if rep.kind == "sparse":
+            ys += [scaled_value(rep.q, rep.degree, r.value) for r in rep.rows if r.inverse_depth <= x_max]
+            continue
+        ys += [r.value for r in rep.rows if r.inverse_depth <= x_max]
+        ex = rep.extrapolation
+        if ex is not None:
+            for w, used in _drawn_fits(ex):
+                if used:
+                    ys += list(_curve(w.fit, min(x_max, 1.0 / w.fit.depths[0]))[1])
+            if ex.limit is not None:
+                ys += [ex.limit.low, ex.limit.high]
+        refs = rep.references
+        ys += [y for y in (refs.ground_state, refs.threshold) if y is not None]
+    ys = [y for y in ys if math.isfinite(y)]
+    return _padded(min(ys), max(ys)) if ys else None
+
+
 def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None:
     """Each family's curve out to 1/p = 0, its back-test, and the headline at 1/p = 0.
 
-    Per family the used window with the smallest back-test error is drawn
-    (bold); a family with no used window is drawn thin and faint with its best
-    back-tested window.  The held-out depths are ringed, and each drawn fit's
-    back-test predictions at them are marked with x.  The headline V_inf
-    (central, range) is an error bar at 1/p = 0.
+    Per family the used window with the highest weight is drawn (bold); a
+    family with no used window (unphysical, or no back-test) is drawn thin and
+    faint.  The held-out depths are ringed, and each used fit's back-test
+    predictions at them are marked with x.  The headline V_inf (central,
+    range) is an error bar at 1/p = 0.
     """
     for w, used in _drawn_fits(ex):
         fit, fam = w.fit, w.family
-        xs = np.linspace(0.0, 1.0 / fit.depths[0], 200)
-        ax.plot(xs, fit.predict(np.where(xs > 0, 1.0 / np.maximum(xs, 1e-300), np.inf)), color=color,
-                ls=FAMILY_LINESTYLES[fam], lw=1.4 if used else 0.8, alpha=0.9 if used else 0.35)
-        if w.backtest is not None:
+        xs, ys = _curve(fit, 1.0 / fit.depths[0])
+        ax.plot(xs, ys, color=color, ls=FAMILY_LINESTYLES[fam], lw=1.4 if used else 0.7,
+                alpha=0.9 if used else REJECTED_ALPHA)
+        if w.backtest is not None and used:
             bt = w.backtest
-            ax.plot([1.0 / p for p in bt.held_out], bt.predicted, "x", color=color, ms=5 if used else 3,
-                    alpha=0.9 if used else 0.35)
+            ax.plot([1.0 / p for p in bt.held_out], bt.predicted, "x", color=color, ms=5, alpha=0.9)
     tested = [w for w in ex.fits if w.backtest is not None]
     if tested:
         bt = tested[0].backtest
@@ -76,23 +113,32 @@ def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None
                     color=color, capsize=4, ms=5, label=text)
 
 
-def _draw_zoom(ax, zoomed) -> None:
-    """Inset (upper right) magnifying 1/p from 0 to just beyond the earliest fitted window."""
-    firsts = [w.fit.depths[0] for rep, _ in zoomed for w, _ in _drawn_fits(rep.extrapolation)]
-    if not firsts:
+def inset_extent(report: StudyReport) -> float | None:
+    """Right end (in 1/p) of the inset: just beyond the earliest of the last INSET_DEPTHS depths."""
+    firsts = [rep.rows[-min(INSET_DEPTHS, len(rep.rows))].p for rep in report.ensembles
+              if rep.kind != "sparse" and rep.extrapolation is not None and rep.rows]
+    return 1.1 / min(firsts) if firsts else None
+
+
+def _draw_zoom(ax, report: StudyReport, zoomed) -> None:
+    """Inset (upper right) magnifying the last depths and the fits out to 1/p = 0."""
+    x_max = inset_extent(report)
+    if x_max is None:
         return
-    x_max = 1.15 / min(firsts)
-    inset = ax.inset_axes([0.47, 0.47, 0.5, 0.48])
+    inset = ax.inset_axes([0.47, 0.4, 0.5, 0.46])
     for rep, color in zoomed:
         rows = [r for r in rep.rows if r.inverse_depth <= x_max]
         inset.plot([r.inverse_depth for r in rows], [r.value for r in rows], "o", color=color, ms=4)
         _draw_extrapolation(inset, rep.extrapolation, color, None)
         if rep.references.ground_state is not None:
             inset.axhline(rep.references.ground_state, color=color, ls="--", lw=1.0)
-    inset.set_xlim(-0.02 * x_max, x_max)
+    inset.set_xlim(-0.03 * x_max, x_max)
+    limits = value_axis_limits(StudyReport(report.name, [rep for rep, _ in zoomed]), x_max)
+    if limits is not None:
+        inset.set_ylim(*limits)
     inset.tick_params(labelsize=7)
     inset.grid(True, alpha=0.3)
-    inset.set_title("zoom: fits out to 1/p = 0", fontsize=7, pad=2)
+    inset.set_title(f"zoom: the last {INSET_DEPTHS} depths and the fits out to 1/p = 0", fontsize=7, pad=2)
 
 
 def _family_legend_handles():
@@ -104,7 +150,8 @@ def _family_legend_handles():
     handles.append(Line2D([], [], color="0.3", ls="none", marker="o", mfc="none", ms=9,
                           label="held-out depths of the back-test"))
     handles.append(Line2D([], [], color="0.3", ls="none", marker="x", label="back-test predictions (fit on earlier depths)"))
-    handles.append(Line2D([], [], color="0.3", lw=0.8, alpha=0.35, label="faint: family not used (failed / unphysical)"))
+    handles.append(Line2D([], [], color="0.3", lw=0.7, alpha=REJECTED_ALPHA,
+                          label="faint: family not used (unphysical / no back-test)"))
     return handles
 
 
@@ -130,6 +177,20 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
 
     output = Path(output)
     paths = [output, angle_plot_path(output)]
+
+    fig, _ = value_figure(report)
+    fig.savefig(paths[0], dpi=FIGURE_DPI)
+    plt.close(fig)
+    _angle_figure(report, paths[1])
+    return paths
+
+
+def value_figure(report: StudyReport):
+    """(figure, main axes) of V_p* against 1/p (see :func:`write_plots`); the inset is ``ax.child_axes``."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
 
     fig, ax = plt.subplots(figsize=FIGURE_SIZE_INCHES, dpi=FIGURE_DPI)
     colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
@@ -158,8 +219,11 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         if refs.threshold is not None:
             ax.axhline(refs.threshold, color=color, ls=":", lw=1.2,
                        label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
+    limits = value_axis_limits(report)
+    if limits is not None:
+        ax.set_ylim(*limits)
     if zoomed:
-        _draw_zoom(ax, zoomed)
+        _draw_zoom(ax, report, zoomed)
     ax.set_xlabel("1/p  (inverse QAOA depth)")
     ax.set_ylabel("V_p*  (energy density per spin, dimensionless)")
     ax.set_title(f"{report.name}\noptimal QAOA energy vs 1/p (extrapolations are estimates, not bounds)", fontsize=9)
@@ -177,8 +241,11 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
         ax.legend(handles=handles, fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
                   frameon=False)
     fig.subplots_adjust(left=0.075, right=0.63, top=0.86, bottom=0.1)
-    fig.savefig(paths[0], dpi=FIGURE_DPI)
-    plt.close(fig)
+    return fig, ax
+
+
+def _angle_figure(report: StudyReport, path: Path) -> None:
+    import matplotlib.pyplot as plt
 
     n = max(1, len(report.ensembles))
     width, height = ANGLE_PANEL_INCHES
@@ -206,6 +273,5 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     for ax_ in axes[-1]:
         ax_.set_xlabel("(t - 1/2)/p  (position in the schedule)")
     fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.35 / (height * n), bottom=0.55 / (height * n), hspace=0.45, wspace=0.2)
-    fig.savefig(paths[1], dpi=FIGURE_DPI)
+    fig.savefig(path, dpi=FIGURE_DPI)
     plt.close(fig)
-    return paths
