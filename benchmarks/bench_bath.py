@@ -1,21 +1,23 @@
-"""Bosonic-bath engine: error against the exact V_p, bond dimension needed, wall time.
+"""Bosonic-bath engine: cost to a tolerance, bond growth with p, against the exact evaluation.
 
-At the optimal angles of benchmarks/data/bath_angles.json (found by leadline's exact
-optimizer; regenerate with benchmarks/bath_angles.py) for SK (2:0.5), pure q = 3, pure q = 4 and
-the 2+4 mixture 2:0.5,4:0.5, the bath engine's V_p is compared with the exact optimum V_p*:
+Angles: the optima p = 1..12 of benchmarks/data/bath_angles.json (leadline's exact optimizer;
+regenerate with benchmarks/bath_angles.py) for SK (2:0.5), pure q = 3, pure q = 4 and
+2:0.5,4:0.5; beyond p = 12 INTERP from the p = 12 optimum (a smooth near-optimal schedule).
+Sections:
 
-* errors:    |V_bath - V_p*| at fixed truncations (Fock levels d, bond cap chi), p = 2..P
-* chi_1e-6:  the smallest chi of a ladder with |error| <= 1e-6 (Fock levels fixed)
-* bases:     principal (step-by-step, eigenmodes) against Cholesky (one sweep), same (d, chi)
-* growth:    wall time and the two-truncation error estimate beyond exact reach, with angles
-             interpolated from the deepest optimum (INTERP), fixed (d, chi)
+* readout:  one-state readout against the carried states (the previous engine), same cut-off,
+            interleaved, medians of 3 (SK p = 10, 12, 14)
+* versus:   evaluate_bath at tolerance 1e-8 against the exact evaluation (leadline.kernels.exact,
+            one process), p = 10..16: where the bath is faster at equal or better accuracy
+* growth:   largest bond and CPU seconds of one run at a fixed cut-off (default 1e-7),
+            p = 8, 16, .., MAX, the four mixtures
+* target:   evaluate_bath on the targets (SK p = 24 at 1e-6; with --p40 also SK and q = 3 at
+            p = 40 at 1e-5, which take long)
 
-run(quick=True) (used by `make bench --quick`) keeps to small depths; the tables in
-docs/bath.md come from `python benchmarks/bench_bath.py --full --json FILE` (about half an hour
-on one core).  "seconds" are CPU seconds of the process (time.process_time, single-threaded
-BLAS), so a busy machine does not inflate them; "wall_s" is the wall-clock time.
+"seconds" are CPU seconds of this process (time.process_time) with one BLAS thread, so a busy
+machine does not inflate them; peak RSS is the process's maximum resident set.
 
-Usage:  OMP_NUM_THREADS=1 python benchmarks/bench_bath.py [--quick | --full] [--json FILE]
+Usage:  OMP_NUM_THREADS=1 python benchmarks/bench_bath.py [--quick] [--section S ...] [--json FILE]
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import resource
 import sys
 import time
 
@@ -35,6 +38,7 @@ from leadline.kernels.optimize import interpolate_angles
 HERE = os.path.dirname(os.path.abspath(__file__))
 ANGLES = os.path.join(HERE, "data", "bath_angles.json")
 MIXTURES = ("sk", "q3", "q4", "mix24")
+SECTIONS = ("readout", "versus", "growth", "target")
 
 
 def _log(msg: str) -> None:
@@ -46,151 +50,97 @@ def load_angles() -> dict:
         return json.load(fh)
 
 
-def _case(angles: dict, name: str, p: int):
-    """(mixture, gamma, beta, exact V_p): the optimum if stored, else INTERP angles from the
-    deepest stored optimum with V_p from the exact iteration."""
+def schedule(angles: dict, name: str, p: int):
+    """(mixture, gamma, beta): the stored optimum at p <= 12, else INTERP from the p = 12 optimum."""
     mix = parse_mixture(angles[name]["xi"])
-    if str(p) in angles[name]["depths"]:
-        e = angles[name]["depths"][str(p)]
-        return mix, np.array(e["gamma"]), np.array(e["beta"]), float(e["value"])
-    top = max(int(k) for k in angles[name]["depths"])
-    g, b = (np.array(angles[name]["depths"][str(top)][k]) for k in ("gamma", "beta"))
+    depths = angles[name]["depths"]
+    key = str(p) if str(p) in depths else str(max(int(k) for k in depths))
+    g, b = np.array(depths[key]["gamma"]), np.array(depths[key]["beta"])
     while g.size < p:
         g, b = interpolate_angles(g, b)
+    return mix, g, b
+
+
+def _rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def readout_table(angles, ps, cutoff, record, rows, reps=3):
+    """One state against the carried states, same truncation, interleaved (medians)."""
+    for p in ps:
+        mix, g, b = schedule(angles, "sk", p)
+        times = {"modes": [], "carried": []}
+        vals = {}
+        for _ in range(reps):
+            for readout in ("modes", "carried"):
+                c0 = time.process_time()
+                r = run_bath(mix, g, b, fock=12, chi=256, cutoff=cutoff, readout=readout)
+                times[readout].append(time.process_time() - c0)
+                vals[readout] = r
+        row = {"p": p, "cutoff": cutoff, "modes_s": float(np.median(times["modes"])),
+               "carried_s": float(np.median(times["carried"])), "modes_value": vals["modes"].value,
+               "carried_value": vals["carried"].value, "modes_bond": vals["modes"].largest_bond,
+               "carried_bond": vals["carried"].largest_bond}
+        rows.append(row)
+        _log(f"readout p={p}: modes {row['modes_s']:.2f} s, carried {row['carried_s']:.2f} s")
+        record()
+
+
+def versus_table(angles, ps, tol, record, rows):
     from leadline.kernels.exact import evaluate
 
-    return mix, g, b, evaluate(mix, g, b).value
+    for p in ps:
+        mix, g, b = schedule(angles, "sk", p)
+        c0 = time.process_time()
+        exact = evaluate(mix, g, b).value
+        t_exact = time.process_time() - c0
+        c0 = time.process_time()
+        res = evaluate_bath(mix, g, b, tolerance=tol)
+        t_bath = time.process_time() - c0
+        rows.append({"p": p, "tolerance": tol, "exact_s": t_exact, "bath_s": t_bath, "error": abs(res.value - exact),
+                     "estimate": res.error_estimate, "largest_bond": res.run.largest_bond})
+        _log(f"versus p={p}: exact {t_exact:.2f} s, bath {t_bath:.2f} s, error {abs(res.value - exact):.1e} "
+             f"(estimate {res.error_estimate:.1e})")
+        record()
 
 
-def _one(mix, g, b, exact, d, chi, basis="cholesky", tail=None, reverse=None) -> dict:
-    c0 = time.process_time()
-    r = run_bath(mix, g, b, fock=d, tail=d if tail is None else tail, chi=chi, basis=basis, reverse=reverse)
-    return {"d": d, "tail": d if tail is None else tail, "chi": chi, "basis": basis,
-            "order": r.to_json()["mode_order"], "value": r.value,
-            "error": None if exact is None else abs(r.value - exact), "max_bond": r.max_bond,
-            "discarded": r.discarded, "steps": r.steps, "seconds": round(time.process_time() - c0, 3),
-            "wall_s": round(r.wall_time, 3)}
-
-
-def error_table(angles, names, ps, truncations, record, result_rows=None) -> list:
-    rows = result_rows if result_rows is not None else []
+def growth_table(angles, names, ps, cutoff, record, rows, stop_after_s=600.0):
     for name in names:
         for p in ps:
-            if str(p) not in angles[name]["depths"]:
-                continue
-            mix, g, b, exact = _case(angles, name, p)
-            for d, chi in truncations:
-                row = {"mixture": name, "p": p, "exact": exact, **_one(mix, g, b, exact, d, chi)}
-                rows.append(row)
-                _log(f"errors {name} p={p:2d} d={d:2d} chi={chi:3d}: err {row['error']:.2e} bond {row['max_bond']} "
-                     f"disc {row['discarded']:.1e} {row['seconds']:.1f}s")
-                record()
-    return rows
-
-
-def chi_needed(angles, names, ps, d, ladder, target, record, stop_after_s=300.0, result_rows=None) -> list:
-    rows = result_rows if result_rows is not None else []
-    for name in names:
-        for p in ps:
-            mix, g, b, exact = _case(angles, name, p)
-            found, tried = None, []
-            for chi in ladder:
-                r = _one(mix, g, b, exact, d, chi)
-                tried.append({"chi": chi, "error": r["error"], "max_bond": r["max_bond"], "discarded": r["discarded"],
-                              "seconds": r["seconds"]})
-                if r["error"] <= target:
-                    found = chi
-                    break
-                if r["seconds"] > stop_after_s:
-                    break
-            rows.append({"mixture": name, "p": p, "d": d, "target": target, "chi": found, "tried": tried})
-            _log(f"chi_needed {name} p={p:2d}: chi {found} ({tried[-1]['error']:.1e}, {tried[-1]['seconds']:.1f}s)")
+            mix, g, b = schedule(angles, name, p)
+            c0 = time.process_time()
+            r = run_bath(mix, g, b, fock=2, fock_max=40, fock_tol=cutoff**2, chi=1024, cutoff=cutoff)
+            s = time.process_time() - c0
+            rows.append({"name": name, "p": p, "cutoff": cutoff, "largest_bond": r.largest_bond, "seconds": s,
+                         "max_fock": max(r.fock), "discarded": r.discarded, "value": r.value})
+            _log(f"growth {name} p={p}: bond {r.largest_bond}, {s:.1f} s, discarded {r.discarded:.1e}")
             record()
-    return rows
-
-
-def basis_table(angles, names, ps, settings, record, result_rows=None) -> list:
-    rows = result_rows if result_rows is not None else []
-    for name in names:
-        for p in ps:
-            mix, g, b, exact = _case(angles, name, p)
-            for basis, reverse, d, tail, chi in settings:
-                row = {"mixture": name, "p": p, **_one(mix, g, b, exact, d, chi, basis=basis, tail=tail, reverse=reverse)}
-                rows.append(row)
-                _log(f"basis {name} p={p} {basis} {row['order']} d={d}/{tail} chi={chi}: err {row['error']:.2e} "
-                     f"{row['seconds']:.1f}s")
-                record()
-    return rows
-
-
-def growth_table(angles, names, ps, d, chi, record, stop_after_s, result_rows=None) -> list:
-    rows = result_rows if result_rows is not None else []
-    for name in names:
-        depths = sorted(int(k) for k in angles[name]["depths"])
-        top = depths[-1]
-        g, b = (np.array(x) for x in (angles[name]["depths"][str(top)]["gamma"], angles[name]["depths"][str(top)]["beta"]))
-        mix = parse_mixture(angles[name]["xi"])
-        for p in ps:
-            while g.size < p:
-                g, b = interpolate_angles(g, b)
-            t0 = time.process_time()
-            res = evaluate_bath(mix, g[:p], b[:p], fock=d, tail=d, chi=chi, basis="cholesky")
-            wall = time.process_time() - t0
-            rows.append({"mixture": name, "p": p, "d": d, "chi": chi, "value": res.value,
-                         "error_estimate": res.error_estimate, "check_value": res.check.value,
-                         "max_bond": res.check.max_bond, "discarded": res.check.discarded,
-                         "seconds_small": round(res.check.wall_time, 2), "seconds_both": round(wall, 2)})
-            _log(f"growth {name} p={p}: V {res.value:.8f} +- {res.error_estimate:.1e} ({res.check.wall_time:.1f}s + {res.run.wall_time:.1f}s)")
-            record()
-            if wall > stop_after_s:
+            if s > stop_after_s:
                 break
-    return rows
 
 
-def deep_table(angles, names, ps, d, ladder, record, stop_after_s, fock_check_max_p=20, result_rows=None) -> list:
-    """Beyond the stored optima: INTERP angles, a chi ladder at fixed d, each value compared
-    with the largest chi that ran (a self-reference: it tells how fast V converges in chi);
-    plus the largest chi at d + 4 levels, to show the Fock cut-off is not what limits."""
-    rows = result_rows if result_rows is not None else []
-    for name in names:
-        top = max(int(k) for k in angles[name]["depths"])
-        g0, b0 = (np.array(angles[name]["depths"][str(top)][k]) for k in ("gamma", "beta"))
-        mix = parse_mixture(angles[name]["xi"])
-        for p in ps:
-            g, b = g0, b0
-            while g.size < p:
-                g, b = interpolate_angles(g, b)
-            runs = []
-            for chi in ladder:
-                r = _one(mix, g, b, None, d, chi)
-                runs.append(r)
-                _log(f"deep {name} p={p} d={d} chi={chi}: V {r['value']:.12f} bond {r['max_bond']} disc {r['discarded']:.1e} "
-                     f"{r['seconds']:.1f}s")
-                if r["seconds"] > stop_after_s:
-                    break
-            more_d = None
-            if p <= fock_check_max_p:
-                more_d = _one(mix, g, b, None, d + 4, runs[-1]["chi"])
-                _log(f"deep {name} p={p} d={d + 4} chi={runs[-1]['chi']}: V {more_d['value']:.12f} {more_d['seconds']:.1f}s")
-            ref = runs[-1]["value"]
-            for r in runs:
-                r["diff_to_largest"] = abs(r["value"] - ref)
-            rows.append({"mixture": name, "p": p, "d": d, "runs": runs, "more_fock": more_d,
-                         "fock_diff": None if more_d is None else abs(more_d["value"] - ref)})
-            record()
-            if runs[-1]["seconds"] > stop_after_s:
-                break
-    return rows
+def target_rows(angles, cases, record, rows):
+    for name, p, tol in cases:
+        mix, g, b = schedule(angles, name, p)
+        c0 = time.process_time()
+        try:
+            res = evaluate_bath(mix, g, b, tolerance=tol)
+            row = {"name": name, "p": p, "tolerance": tol, "value": res.value, "estimate": res.error_estimate,
+                   "limiting": res.limiting, "largest_bond": res.run.largest_bond, "max_fock": max(res.run.fock),
+                   "ladder": res.ladder}
+        except ValueError as exc:
+            row = {"name": name, "p": p, "tolerance": tol, "refused": str(exc)}
+        row.update(seconds=time.process_time() - c0, peak_rss_mb=_rss_mb())
+        rows.append(row)
+        _log(f"target {name} p={p} tol {tol:g}: {row.get('value', row.get('refused'))} in {row['seconds']:.0f} s")
+        record()
 
 
-SECTIONS = ("chi", "errors", "bases", "growth", "deep")
-
-
-def run(quick: bool = False, full: bool = False, out_path: str | None = None, sections=SECTIONS,
-        deep_names=("sk", "q3"), deep_ps=(16, 20, 24, 28, 32)) -> dict:
+def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS, growth_max=40,
+        growth_cutoff=1e-7, p40=False) -> dict:
     """Run the measurements; returns a JSON-ready dict."""
     angles = load_angles()
-    result = {"benchmark": "bath", "quick": quick, "full": full}
+    result = {"benchmark": "bath", "quick": quick}
 
     def record():
         if out_path:
@@ -198,124 +148,37 @@ def run(quick: bool = False, full: bool = False, out_path: str | None = None, se
                 json.dump(result, fh, indent=1, default=float)
             os.replace(out_path + ".tmp", out_path)
 
-    def rows(key):
-        return result.setdefault(key, [])
-
+    rows = result.setdefault
     if quick:
-        error_table(angles, ("sk", "q3"), range(2, 7), [(8, 16)], record, result_rows=rows("errors"))
-        chi_needed(angles, ("sk",), range(2, 7), 10, (4, 8, 16, 32), 1e-6, record, result_rows=rows("chi_needed"))
-        basis_table(angles, ("sk",), (4,), [("cholesky", True, 12, 12, 16), ("principal", False, 16, 4, 16)], record,
-                    result_rows=rows("bases"))
+        readout_table(angles, (8, 10), 1e-8, record, rows("readout", []), reps=1)
+        versus_table(angles, (8, 10), 1e-6, record, rows("versus", []))
         return result
-    pmax = 12 if full else 9
-    if "chi" in sections:
-        chi_needed(angles, ("sk", "q3"), range(2, pmax + (3 if full else 1)), 10, (4, 6, 8, 12, 16, 24, 32, 48, 64, 96),
-                   1e-6, record, result_rows=rows("chi_needed"))
-    if "errors" in sections:
-        error_table(angles, MIXTURES, range(2, pmax + 1, 2 if full else 1), [(8, 16), (10, 32), (12, 64)], record,
-                    result_rows=rows("errors"))
-    if "bases" in sections:
-        settings = [(basis, rev, d, tail, chi) for chi in (8, 16, 32)
-                    for basis, d, tail in (("cholesky", 12, 12), ("principal", 20, 4)) for rev in (True, False)]
-        basis_table(angles, ("sk",), (4, 6, 8) if full else (4, 6), settings, record, result_rows=rows("bases"))
-    if full and "deep" in sections:
-        deep_table(angles, deep_names, deep_ps, 10, (16, 32, 48, 64), record, stop_after_s=300, result_rows=rows("deep"))
-    if full and "growth" in sections:
-        growth_table(angles, ("sk", "q3"), (12, 16, 20, 24, 28, 32), 8, 16, record, stop_after_s=600,
-                     result_rows=rows("growth"))
-    return result
-    pmax = 12 if full else 9
-    if "chi" in sections:
-        chi_needed(angles, ("sk", "q3"), range(2, pmax + (3 if full else 1)), 10,
-                                          (4, 6, 8, 12, 16, 24, 32, 48, 64, 96), 1e-6, record, result_rows=result.setdefault("chi_needed", []))
-    if "errors" in sections:
-        error_table(angles, MIXTURES, range(2, pmax + 1, 2 if full else 1),
-                                       [(8, 16), (10, 32), (12, 64)], record, result_rows=result.setdefault("errors", []))
-    if "bases" in sections:
-        basis_table(angles, ("sk",), (4, 6, 8) if full else (4, 6),
-                                      [(basis, rev, d, tail, chi) for chi in (8, 16, 32)
-                                       for basis, d, tail in (("cholesky", 12, 12), ("principal", 20, 4))
-                                       for rev in (True, False)], record, result_rows=result.setdefault("bases", []))
-    if full and "deep" in sections:
-        deep_table(angles, deep_names, deep_ps, 10, (16, 32, 48, 64), record, stop_after_s=300,
-                   result_rows=result.setdefault("deep", []))
-    if full and "growth" in sections:
-        growth_table(angles, ("sk", "q3"), (12, 16, 20, 24, 28, 32), 8, 16, record, stop_after_s=600, result_rows=result.setdefault("growth", []))
+    if "readout" in sections:
+        readout_table(angles, (10, 12, 14), 1e-8, record, rows("readout", []))
+    if "versus" in sections:
+        versus_table(angles, (10, 12, 14, 15, 16), 1e-8, record, rows("versus", []))
+    if "growth" in sections:
+        growth_table(angles, MIXTURES, range(8, growth_max + 1, 8), growth_cutoff, record, rows("growth", []))
+    if "target" in sections:
+        cases = [("sk", 24, 1e-6)] + ([("sk", 40, 1e-5), ("q3", 40, 1e-5)] if p40 else [])
+        target_rows(angles, cases, record, rows("target", []))
     return result
 
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
-    ap.add_argument("--full", action="store_true", help="p up to 12, basis comparison to p = 8, growth beyond exact reach")
-    ap.add_argument("--json", default=None, help="write the result to this file (updated after every measurement)")
-    ap.add_argument("--section", action="append", choices=SECTIONS, help="only these parts (repeatable)")
-    ap.add_argument("--deep-p", type=int, nargs="+", default=[16, 20, 24, 28, 32], help="depths of the deep section")
-    ap.add_argument("--deep-xi", nargs="+", default=["sk", "q3"], choices=MIXTURES, help="mixtures of the deep section")
-    ap.add_argument("--tables", nargs="+", metavar="JSON", help="print markdown tables of result files and exit")
-    a = ap.parse_args(argv)
-    if a.tables:
-        for path in a.tables:
-            with open(path) as fh:
-                print(format_tables(json.load(fh)))
-        return 0
-    out = run(quick=a.quick, full=a.full, out_path=a.json, sections=a.section or SECTIONS,
-              deep_names=tuple(a.deep_xi), deep_ps=tuple(a.deep_p))
-    print(json.dumps(out, default=float))
+    ap.add_argument("--section", nargs="+", choices=SECTIONS, default=list(SECTIONS))
+    ap.add_argument("--growth-max", type=int, default=40)
+    ap.add_argument("--growth-cutoff", type=float, default=1e-7)
+    ap.add_argument("--p40", action="store_true", help="target section: also SK and q = 3 at p = 40 (long)")
+    ap.add_argument("--json", help="write the results here (updated after every row)")
+    args = ap.parse_args(argv)
+    res = run(quick=args.quick, out_path=args.json, sections=args.section, growth_max=args.growth_max,
+              growth_cutoff=args.growth_cutoff, p40=args.p40)
+    if not args.json:
+        print(json.dumps(res, indent=1, default=float))
     return 0
-
-
-
-def format_tables(result: dict) -> str:
-    """Markdown tables of a result (the form pasted into docs/bath.md)."""
-    out = []
-    if result.get("chi_needed"):
-        out += ["| mixture | p | d | chi for 1e-6 | error at that chi | CPU s | ladder tried (chi: error) |",
-                "|---|---|---|---|---|---|---|"]
-        for r in result["chi_needed"]:
-            last = r["tried"][-1]
-            ladder = ", ".join(f"{t['chi']}: {t['error']:.1e}" for t in r["tried"])
-            out.append(f"| {r['mixture']} | {r['p']} | {r['d']} | {r['chi'] if r['chi'] else '> ' + str(last['chi'])} | "
-                       f"{last['error']:.1e} | {last['seconds']:.1f} | {ladder} |")
-        out.append("")
-    if result.get("errors"):
-        truncs = sorted({(r["d"], r["chi"]) for r in result["errors"]})
-        out += ["| mixture | p | V_p* (exact) | " + " | ".join(f"error d={d}, chi={c}" for d, c in truncs)
-                + " | CPU s (largest) |", "|---|---|---|" + "---|" * len(truncs) + "---|"]
-        keys = sorted({(r["mixture"], r["p"]) for r in result["errors"]}, key=lambda k: (MIXTURES.index(k[0]), k[1]))
-        for name, p in keys:
-            rows = {(r["d"], r["chi"]): r for r in result["errors"] if r["mixture"] == name and r["p"] == p}
-            cells = [f"{rows[t]['error']:.1e}" if t in rows else "" for t in truncs]
-            last = rows[truncs[-1]] if truncs[-1] in rows else None
-            exact = next(iter(rows.values()))["exact"]
-            out.append(f"| {name} | {p} | {exact:.8f} | " + " | ".join(cells) + f" | {last['seconds']:.1f} |" if last else "")
-        out.append("")
-    if result.get("bases"):
-        out += ["| mixture | p | basis | chain order | d (top/rest) | chi | error | CPU s |", "|---|---|---|---|---|---|---|---|"]
-        for r in result["bases"]:
-            out.append(f"| {r['mixture']} | {r['p']} | {r['basis']} | {r['order']} | {r['d']}/{r['tail']} | {r['chi']} | "
-                       f"{r['error']:.1e} | {r['seconds']:.1f} |")
-        out.append("")
-    if result.get("deep"):
-        chis = sorted({r["chi"] for row in result["deep"] for r in row["runs"]})
-        out += ["| mixture | p | V_p (largest chi) | " + " | ".join(f"chi={c}" for c in chis)
-                + " | d+4 at largest chi | CPU s (largest chi) |", "|---|---|---|" + "---|" * len(chis) + "---|---|"]
-        for row in result["deep"]:
-            by = {r["chi"]: r for r in row["runs"]}
-            cells = [f"{by[c]['diff_to_largest']:.1e}" if c in by and c != row["runs"][-1]["chi"] else ("ref" if c in by else "")
-                     for c in chis]
-            fd = "" if row["fock_diff"] is None else f"{row['fock_diff']:.1e}"
-            out.append(f"| {row['mixture']} | {row['p']} | {row['runs'][-1]['value']:.10f} | " + " | ".join(cells)
-                       + f" | {fd} | {row['runs'][-1]['seconds']:.0f} |")
-        out.append("")
-    if result.get("growth"):
-        out += ["| mixture | p | V_p (d=12, chi=32) | error estimate | check run (d=8, chi=16) | bond reached | CPU s (both runs) |",
-                "|---|---|---|---|---|---|---|"]
-        for r in result["growth"]:
-            out.append(f"| {r['mixture']} | {r['p']} | {r['value']:.8f} | {r['error_estimate']:.1e} | {r['check_value']:.8f} | "
-                       f"{r['max_bond']} | {r['seconds_both']:.0f} |")
-        out.append("")
-    return "\n".join(out)
 
 
 if __name__ == "__main__":

@@ -26,6 +26,8 @@ from pathlib import Path
 
 import numpy as np
 
+from leadline.kernels.numtext import fmt, fmt_list
+
 from .errors import InputError
 from .paths import write_text_atomic
 
@@ -54,6 +56,24 @@ class AngleSet:
             "beta": [float(x) for x in self.beta],
             "value": None if self.value is None else float(self.value),
         }
+
+
+#: largest |angle| accepted where V is periodic in it (every beta_t: period pi; sparse gamma_t: 2 pi,
+#: the satisfied count is an integer).  The input's own rounding, |x| x 2.2e-16, is 2e-10 rad here;
+#: at 1e300 it would be 1e284 rad, and the printed value would be that of an arbitrary angle.
+MAX_PERIODIC_ANGLE = 1e6
+
+
+def check_periodic_angles(values, option: str, name: str, period: str) -> None:
+    """InputError when a periodic angle is so large that its own rounding exceeds what V resolves."""
+    values = np.asarray(values, dtype=float).reshape(-1)
+    if values.size and float(np.max(np.abs(values))) > MAX_PERIODIC_ANGLE:
+        worst = float(np.max(np.abs(values)))
+        raise InputError(
+            f"{option}: |{name}| = {worst:.3g} is beyond {MAX_PERIODIC_ANGLE:.0e}: V_p is periodic in {name} "
+            f"(period {period}) and the rounding of so large an angle ({worst * 2.2e-16:.2g} rad) leaves its "
+            f"value undefined; reduce it modulo {period}"
+        )
 
 
 def _is_number(x) -> bool:
@@ -94,7 +114,7 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
     if path.is_dir():
         raise InputError(f"angle file {path} is a folder; give the JSON file written by `leadline optimize --output`")
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
+        data = json.loads(path.read_text(encoding="utf-8-sig"))  # a leading BOM (some editors write one) is not content
     except FileNotFoundError:
         raise InputError(f"angle file {path} does not exist") from None
     except UnicodeDecodeError:
@@ -116,6 +136,7 @@ def read_angles(path: str | os.PathLike) -> AngleSet:
         raise InputError(f"angle file {path}: \"p\" must be an integer >= 1, got {json.dumps(p)}")
     g = _angle_list(data, "gamma", path)
     b = _angle_list(data, "beta", path)
+    check_periodic_angles(b, f"angle file {path}", "beta_t", "pi")
     if g.size != p or b.size != p:
         raise InputError(f"angle file {path}: p = {p} but gamma has {g.size} and beta {b.size} angles")
     xi = data.get("xi")
@@ -152,13 +173,13 @@ def optimum_report(header: list[str], result, evaluations: str, ladder: list[dic
     beta, gradient_norm and converged; ``ladder`` lists {"p", "value"} per depth run.
     """
     lines = list(header) + [
-        "gamma          = " + ", ".join(f"{x:.6f}" for x in result.gamma),
-        "beta           = " + ", ".join(f"{x:.6f}" for x in result.beta),
+        "gamma          = " + fmt_list(result.gamma),
+        "beta           = " + fmt_list(result.beta),
         f"gradient (max) = {result.gradient_norm:.1e}" + ("" if result.converged else "  (not converged)"),
         f"evaluations    = {evaluations}",
     ]
     if len(ladder) > 1:
-        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {r['value']:.6f}" for r in ladder))
+        lines.append("ladder         = " + ", ".join(f"p{r['p']}: {fmt(r['value'])}" for r in ladder))
     if output:
         lines.append(f"angles written to {output}")
     return "\n".join(lines)

@@ -82,13 +82,16 @@ def _angles(gamma, beta) -> tuple[np.ndarray, np.ndarray]:
         raise InputError(f"gamma and beta need the same number p >= 1 of angles, got {g.size} and {b.size}")
     if not (np.all(np.isfinite(g)) and np.all(np.isfinite(b))):
         raise InputError("angles must be finite")
+    from .angles import check_periodic_angles
+
+    check_periodic_angles(b, "beta", "beta_t", "pi")
     return g, b
 
 
 def _start(angles, depth: int):
     """An angle file path, an AngleSet or (gamma, beta) of depth p-1 or p -> AngleSet or None."""
     from .angles import AngleSet
-    from .parsing import warm_start
+    from .parsing import check_start_depth, warm_start
 
     if angles is None:
         return None
@@ -99,8 +102,7 @@ def _start(angles, depth: int):
     else:
         g, b = _angles(*angles)
         start = AngleSet(p=g.size, gamma=g, beta=b, xi=None, value=None)
-    if start.p not in (depth - 1, depth):
-        raise InputError(f"angles have depth {start.p}; need depth {depth - 1} (warm start) or {depth}")
+    check_start_depth(start.p, depth, "angles")
     return start
 
 
@@ -115,9 +117,9 @@ def _executor(executor: str, scheduler: str | None, workers: int | None, memory_
 
 
 def _budget(memory_mb: float) -> int:
-    if not memory_mb > 0:
-        raise InputError("memory_mb must be positive")
-    return int(memory_mb * 2**20)
+    from .parsing import check_memory_mb
+
+    return int(check_memory_mb(memory_mb, "memory_mb") * 2**20)
 
 
 # ----------------------------------------------------------------- results
@@ -230,11 +232,13 @@ def evaluate(
     """
     from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
 
+    from .cost import check_depth
     from .parsing import check_representable, check_underflow
 
     mix = _mixture(xi)
     g, b = _angles(gamma, beta)
     check_representable(mix, g, "gamma", beta=b)  # the same range as the command line
+    check_depth(g.size, "gamma/beta")
     plan = plan_chunks(g.size, _budget(memory_mb))
     with _executor(executor, scheduler, workers, memory_mb) as ex:
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
@@ -317,10 +321,12 @@ def optimize(
         full optimizer record of the last depth), ``.ladder``; ``.to_json()``
         is what ``leadline optimize --json`` prints.
     """
+    from .cost import check_depth
     from .parsing import check_optimizer_options
 
     mix = _mixture(xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    check_depth(depth, "depth")
     initial = _start(angles, depth)
     budget = _budget(memory_mb)
     with _executor(executor, scheduler, workers, memory_mb) as ex:
@@ -333,6 +339,45 @@ def _sparse_problem(q, degree) -> tuple[int, int]:
     from .sparse_ensemble import check_sparse
 
     return check_sparse(q, degree, None)
+
+
+@_blas_capped
+def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, tolerance: float = 1e-6,
+                  bond_cap: int = 256, fock_cap: int = 40, time_limit: float | None = None) -> "BathEvaluation":
+    """V_p(gamma, beta) from the bosonic-bath engine (any depth), to an error estimate <= tolerance.
+
+    Parameters
+    ----------
+    xi : str or Mixture
+        The mixture as ``q:w`` pairs (``"2:0.5"`` is SK).
+    gamma, beta : sequence of float
+        Angles in radians (t = 1 acts first).
+    tolerance : float
+        Error asked for; the engine tightens its truncation until its estimate meets it.
+    bond_cap, fock_cap : int
+        Largest bond dimension and most Fock levels per mode it may use.
+    time_limit : float or None
+        Wall seconds allowed.
+
+    Returns
+    -------
+    BathEvaluation
+        ``.value``, ``.error_estimate``, ``.limiting`` (the truncation that dominates what is
+        left), ``.run`` (its truncation); ``.to_json()`` as ``evaluate --method bath --json``.
+        Raises InputError (one line) when the tolerance cannot be met within the limits, or
+        when the value cannot be trusted.
+
+    Examples
+    --------
+    >>> import leadline
+    >>> round(leadline.evaluate_bath("2:0.5", [0.5], [0.392699]).value, 6)
+    0.303265
+    """
+    from .commands._evaluate_bath import run_checked
+
+    mix = _mixture(xi)
+    g, b = _angles(gamma, beta)
+    return run_checked(mix, g, b, tolerance=tolerance, bond=bond_cap, fock=fock_cap, time_limit=time_limit)
 
 
 @_blas_capped
@@ -365,8 +410,11 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     """
     from leadline.kernels.sparse import evaluate_sparse as kernel
 
+    from .angles import check_periodic_angles
+
     q, D = _sparse_problem(q, degree)
     g, b = _angles(gamma, beta)
+    check_periodic_angles(g, "gamma", "gamma_t", "2 pi")
     return kernel(q, D, g, b, gradient=gradient)
 
 
@@ -439,7 +487,7 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
         value, uncertainty, ...), ``.overlap_gap``; ``.to_json()`` (plus
         ``"cached"``) is what ``leadline reference --json`` prints.
     """
-    from leadline.kernels.reference import reference_energies as compute
+    from leadline.kernels.reference import ReferenceRangeError, reference_energies as compute
 
     from . import reference_cache
     from .parsing import check_reference_settings
@@ -452,50 +500,14 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
     key = reference_cache.cache_key(mix.spec(), gs_tol, alg_tol, max_steps)
     refs = reference_cache.load(directory, key) if directory is not None else None
     if refs is None:
-        refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        try:
+            refs = compute(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        except ReferenceRangeError as exc:
+            raise InputError(str(exc)) from None
         if directory is not None:
             with contextlib.suppress(OSError):
                 reference_cache.store(directory, key, refs)
     return refs
-
-
-# ----------------------------------------------------------------- bath
-@_blas_capped
-def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, fock: int | None = None,
-                  bond: int | None = None, basis: str | None = None):
-    """V_p from the bosonic-bath engine (any depth), with a truncation error estimate; docs/bath.md.
-
-    As ``leadline evaluate --method bath``: a run at ``fock`` levels and bond cap ``bond``, and a
-    check run at 1.5 times the levels and twice the bond; the value is the check run's, the
-    error estimate their difference.
-
-    Parameters
-    ----------
-    xi : str or Mixture
-        The mixture (``"2:0.5"``: SK).
-    gamma, beta : sequence of float
-        Angles in radians, t = 1 first.
-    fock, bond, basis
-        Fock levels (default 10), bond dimension cap (default 32), ``"cholesky"`` (default)
-        or ``"principal"`` bath modes.
-
-    Returns
-    -------
-    BathEvaluation
-        ``.value``, ``.error_estimate``, ``.run``, ``.check``; ``.to_json()``.
-    """
-    from leadline.kernels.bath import evaluate_bath as kernel
-
-    from .commands._evaluate_bath import DEFAULT_BASIS, DEFAULT_BOND, DEFAULT_FOCK, DEFAULT_TAIL, check_method
-    from .parsing import check_representable
-
-    mix = _mixture(xi)
-    g, b = _angles(gamma, beta)
-    check_representable(mix, g, "gamma", beta=b)
-    check_method("bath", fock, bond, basis, gradient=False, fixed_point=False, sparse=False)
-    fock = DEFAULT_FOCK if fock is None else int(fock)
-    return kernel(mix, g, b, fock=fock, tail=min(DEFAULT_TAIL, fock), chi=DEFAULT_BOND if bond is None else int(bond),
-                  basis=DEFAULT_BASIS if basis is None else basis)
 
 
 # ----------------------------------------------------------------- transfer

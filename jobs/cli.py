@@ -76,9 +76,49 @@ def _exception_kinds(exc: BaseException) -> set[str]:
     return {cls.__name__ for cls in type(exc).__mro__}
 
 
+def strict_numbers(command) -> None:
+    """Make every float and int option of ``command`` (and its subcommands) parse strictly.
+
+    click converts option values with Python's float/int, which accept ``1_000`` and digits of
+    other scripts; a typo like ``--gtol 1_e-7`` would then be a different number.  The options
+    take ASCII decimal notation only (kernels/numtext.py), like every number leadline reads.
+    """
+    import click
+
+    from leadline.kernels.numtext import parse_float, parse_int
+
+    class StrictFloat(click.types.FloatParamType):
+        def convert(self, value, param, ctx):
+            if isinstance(value, str):
+                try:
+                    value = parse_float(value)
+                except ValueError:
+                    self.fail(f"{value!r} is not a number (ASCII decimal notation such as 0.5 or 1e-7)", param, ctx)
+            return super().convert(value, param, ctx)
+
+    class StrictInt(click.types.IntParamType):
+        def convert(self, value, param, ctx):
+            if isinstance(value, str):
+                try:
+                    value = parse_int(value)
+                except ValueError:
+                    self.fail(f"{value!r} is not a whole number (ASCII digits)", param, ctx)
+            return super().convert(value, param, ctx)
+
+    for param in getattr(command, "params", []):
+        kind = type(param.type).__name__
+        if kind == "FloatParamType":
+            param.type = StrictFloat()
+        elif kind == "IntParamType":
+            param.type = StrictInt()
+    for sub in getattr(command, "commands", {}).values():
+        strict_numbers(sub)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Console entry point: user errors become one stderr line and exit code 2."""
     command = typer.main.get_command(app)
+    strict_numbers(command)
     interrupted, restore = _note_interrupts()
     try:
         _main(command, argv, interrupted)
@@ -128,6 +168,13 @@ def _main(command, argv, interrupted: list[int]) -> None:
         if "ClickException" in kinds:
             print(f"leadline: error: {exc.format_message()}", file=sys.stderr)
             sys.exit(getattr(exc, "exit_code", 1))
+        if isinstance(exc, OSError):
+            # the system refused a read or write (full disk, file-size limit, I/O error): one line, exit 1;
+            # outputs are written through a temporary file and a rename, so no half-written file is left
+            from .paths import os_error_text
+
+            print(f"leadline: error: {os_error_text(exc)}", file=sys.stderr)
+            sys.exit(1)
         raise
     if isinstance(rv, int) and rv:
         if rv == 130 and interrupted:

@@ -36,6 +36,7 @@ if TYPE_CHECKING:  # the executor module (asyncio, Dask hooks) loads when a comm
     from leadline.cluster.executor import Executor
 
 from .errors import InputError
+from .parsing import check_memory_mb
 
 __all__ = [
     "EXECUTOR_CHOICES",
@@ -114,8 +115,7 @@ def settings_from_options(
         raise InputError(f"--workers must be >= 1, got {workers}")
     if threads_per_worker < 1:
         raise InputError(f"--threads-per-worker must be >= 1, got {threads_per_worker}")
-    if not (memory_mb > 0 and memory_mb < float("inf")):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     if executor != "auto" and (scheduler is not None or cluster_config is not None):
         which = "--scheduler" if scheduler is not None else "--cluster-config"
         raise InputError(f"--executor {executor} cannot be combined with {which}")

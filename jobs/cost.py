@@ -10,6 +10,7 @@ order of magnitude for planning, not a promise: it scales with the machine.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -21,7 +22,7 @@ from .spec import MAX_DEPTH
 if TYPE_CHECKING:  # pragma: no cover
     from leadline.cluster import ComputeSettings
 
-__all__ = ["PATH_VISITS_PER_CORE_S", "COST_NOTE_SECONDS", "MAX_LOCAL_SECONDS", "GRADIENT_FACTOR", "Cost", "evaluation_cost", "check_cost"]
+__all__ = ["check_depth", "PATH_VISITS_PER_CORE_S", "COST_NOTE_SECONDS", "MAX_LOCAL_SECONDS", "GRADIENT_FACTOR", "Cost", "evaluation_cost", "check_cost"]
 
 #: measured in-process rate, path visits per second per core (see the module docstring)
 PATH_VISITS_PER_CORE_S = 8.6e8
@@ -88,13 +89,23 @@ def evaluation_cost(p: int, plan: ChunkPlan, settings: ComputeSettings | None = 
     return Cost(p, visits, plan.chunk_bytes(), workers, seconds, core_seconds)
 
 
-def check_cost(p: int, plan: ChunkPlan, settings: ComputeSettings | None, *, gradient: bool, option: str) -> Cost:
-    """Refuse depths the executor cannot hold (InputError, one line with the cost); return the cost."""
+def check_depth(p: int, option: str) -> None:
+    """Refuse a dense depth beyond MAX_DEPTH (InputError, one line); cheap, call it before planning."""
     if p > MAX_DEPTH:
+        # (4/3)(4^p - 1) visits (kernels/exact/_plan.py), written from its logarithm: 4^p itself
+        # would take minutes to build at p = 1e8
+        log10_visits = math.log10(4.0 / 3.0) + p * math.log10(4.0)
+        exponent = math.floor(log10_visits)
+        visits = f"{10 ** (log10_visits - exponent):.1f}e+{exponent}"
         raise InputError(
             f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs "
-            f"(2^{2 * p + 1} paths per pass, {float(evaluation_path_visits(p)):.2g} path visits per evaluation)"
+            f"(2^{2 * p + 1} paths per pass, {visits} path visits per evaluation)"
         )
+
+
+def check_cost(p: int, plan: ChunkPlan, settings: ComputeSettings | None, *, gradient: bool, option: str) -> Cost:
+    """Refuse depths the executor cannot hold (InputError, one line with the cost); return the cost."""
+    check_depth(p, option)
     cost = evaluation_cost(p, plan, settings, gradient=gradient)
     if plan.chunk_bytes() > plan_budget(settings):
         raise InputError(

@@ -8,7 +8,9 @@ from collections.abc import Sequence
 import numpy as np
 
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
+from leadline.kernels.numtext import parse_float, parse_int
 
+from .angles import check_periodic_angles
 from .errors import InputError
 
 __all__ = [
@@ -44,9 +46,9 @@ def angles_arg(text: str | None, option: str) -> np.ndarray:
     for item in str(text).split(","):
         item = item.strip()
         try:
-            x = float(item)
+            x = parse_float(item)
         except ValueError:
-            raise InputError(f"{option}: {item!r} is not a number") from None
+            raise InputError(f"{option}: {item!r} is not a number (ASCII decimal notation such as 0.5 or -1e-3)") from None
         if not math.isfinite(x):
             raise InputError(f"{option}: angles must be finite, got {item!r}")
         values.append(x)
@@ -56,9 +58,26 @@ def angles_arg(text: str | None, option: str) -> np.ndarray:
 def angle_pair(gamma: str | None, beta: str | None) -> tuple[np.ndarray, np.ndarray]:
     g = angles_arg(gamma, "--gamma")
     b = angles_arg(beta, "--beta")
+    check_periodic_angles(b, "--beta", "beta_t", "pi")
     if g.size != b.size:
         raise InputError(f"--gamma has {g.size} angles but --beta has {b.size}; both need p values")
     return g, b
+
+
+#: smallest --memory-mb accepted (2 KiB): the chunk planner's smallest chunk task takes about
+#: 1 KiB at every depth, and a budget that rounds to 0 bytes would only fail later with a
+#: message about the planner (tiny budgets are useful in tests: they force many chunks)
+MIN_MEMORY_MB = 0.002
+
+
+def check_memory_mb(memory_mb: float, option: str = "--memory-mb") -> float:
+    """The memory budget of one chunk task in MiB: finite and at least MIN_MEMORY_MB."""
+    if not (math.isfinite(memory_mb) and memory_mb >= MIN_MEMORY_MB):
+        raise InputError(
+            f"{option} must be a positive finite number of MiB, at least {MIN_MEMORY_MB:g} (the planner's smallest "
+            f"chunk task takes about 1 KiB), got {memory_mb:g}"
+        )
+    return memory_mb
 
 
 #: largest --gtol accepted: a gradient max-norm above it is not a stationary point of V_p
@@ -74,9 +93,14 @@ def check_optimizer_options(depth: int | None, restarts: int | None, gtol: float
         raise InputError(f"--depth must be >= 1, got {depth}")
     if restarts is not None and restarts < 0:
         raise InputError("--restarts must be >= 0")
-    if not (gtol > 0 and gtol <= MAX_GTOL):
+    if not gtol > 0:
         raise InputError(
-            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol}: a larger tolerance stops the "
+            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol:g}: the optimizer stops when the largest "
+            "gradient component is below it, which a tolerance <= 0 never allows"
+        )
+    if not gtol <= MAX_GTOL:
+        raise InputError(
+            f"--gtol must be a number in (0, {MAX_GTOL:g}], got {gtol:g}: a larger tolerance stops the "
             "optimizer before a stationary point"
         )
     if maxiter < 1:
@@ -91,9 +115,18 @@ def warm_start(path: str | None, depth: int):
     from .angles import read_angles
 
     initial = read_angles(path) if path is not None else None
-    if initial is not None and initial.p not in (depth - 1, depth):
-        raise InputError(f"--angles has depth {initial.p}; need depth {depth - 1} (warm start) or {depth}")
+    if initial is not None:
+        check_start_depth(initial.p, depth, "--angles")
     return initial
+
+
+def check_start_depth(given: int, depth: int, option: str) -> None:
+    """Start angles of depth ``given`` fit depth ``depth`` when given is depth - 1 (warm start) or depth."""
+    if given not in (depth - 1, depth):
+        raise InputError(
+            f"{option} holds angles of depth {given}, which start depth {given} (as given) or depth {given + 1} "
+            f"(warm start by interpolation), not --depth {depth}"
+        )
 
 
 def check_representable(mixture: Mixture, gamma, where: str = "--gamma", beta=None) -> None:
@@ -166,7 +199,7 @@ def parse_ground_state_options(values: Sequence[str] | None, labels: Sequence[st
         label, sep, number = str(text).rpartition("=")
         label = label.strip() if sep else None
         try:
-            value = float(number)
+            value = parse_float(number)
         except ValueError:
             raise InputError(f"--ground-state {text!r}: expected VALUE or LABEL=VALUE with a number, e.g. --ground-state sk=0.763166") from None
         if not (math.isfinite(value) and value > 0):
@@ -192,7 +225,7 @@ def parse_at_depths(text: str | None) -> tuple[int, ...]:
     for part in str(text).split(","):
         part = part.strip()
         try:
-            depth = int(part)
+            depth = parse_int(part)
         except ValueError:
             raise InputError(f"--at-depth {text!r}: expected comma-separated positive integers, e.g. --at-depth 50,100,160") from None
         if depth < 1:

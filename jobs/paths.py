@@ -6,13 +6,14 @@ files, transfer CSVs) and by the reference cache.
 
 from __future__ import annotations
 
+import errno
 import os
 import tempfile
 from pathlib import Path
 
 from .errors import InputError
 
-__all__ = ["check_output_file", "write_text_atomic"]
+__all__ = ["check_output_file", "write_text_atomic", "os_error_text"]
 
 
 def check_output_file(path: str | os.PathLike, suffix: str | None = None, option: str = "--output") -> Path:
@@ -43,6 +44,28 @@ def check_output_file(path: str | os.PathLike, suffix: str | None = None, option
     return path
 
 
+#: what a failed write most often means, by errno
+_ERRNO_HINTS = {
+    errno.EFBIG: "a file-size limit: see `ulimit -f`",
+    errno.ENOSPC: "the disk is full",
+    errno.EDQUOT: "the disk quota is used up",
+    errno.EROFS: "a read-only file system",
+}
+
+
+def os_error_text(exc: OSError) -> str:
+    """One line for an OS error: its reason, errno name and (if known) the file, e.g.
+    "File too large (errno 27 EFBIG: a file-size limit: see `ulimit -f`)"."""
+    name = errno.errorcode.get(exc.errno or 0, "")
+    hint = _ERRNO_HINTS.get(exc.errno or 0)
+    detail = f"errno {exc.errno} {name}".strip() + (f": {hint}" if hint else "") if exc.errno else ""
+    text = exc.strerror or str(exc) or type(exc).__name__
+    if detail:
+        text += f" ({detail})"
+    text = "; ".join([text, *getattr(exc, "__notes__", [])])
+    return f"{exc.filename}: {text}" if exc.filename else text
+
+
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     """Write ``text`` (UTF-8) to ``path`` through a temporary file beside it and a rename.
 
@@ -58,7 +81,11 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> None:
         os.umask(umask)
         os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the usual permissions of a new file
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         if os.path.exists(tmp):
             os.unlink(tmp)
+        if isinstance(exc, OSError) and exc.errno:
+            failed = OSError(exc.errno, exc.strerror, str(path))
+            failed.add_note("nothing was written")
+            raise failed from None
         raise

@@ -57,9 +57,17 @@ def load(cache_dir: Path, key: dict) -> References | None:
         data = json.loads(path.read_text())
         if data.get("key") != key:
             return None
-        return References.from_json(data["references"])
+        refs = References.from_json(data["references"])
     except (OSError, ValueError, KeyError, TypeError):
         return None
+    from leadline.kernels.mixture import parse_mixture
+    from leadline.kernels.reference import check_physical
+
+    try:  # a value cached before the physical check existed (ALG < 0 at large q) is not served
+        check_physical(refs, parse_mixture(key["xi"]))
+    except ValueError:  # ReferenceRangeError, or a mixture this version refuses
+        return None
+    return refs
 
 
 def store(cache_dir: Path, key: dict, refs: References) -> Path:

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import math
 
+from leadline.kernels.numtext import parse_float
+
 from .errors import InputError
 
 __all__ = ["MAX_DEGREE", "degree_limit_message", "check_sparse", "ensemble_json"]
@@ -43,7 +45,7 @@ def check_sparse(xorsat, degree, xi) -> tuple[int, int]:
     if degree is None:
         raise InputError("--xorsat needs --degree D (every spin in D constraints, D >= 2)")
     try:
-        d = float(str(degree).strip())
+        d = parse_float(str(degree))
     except ValueError:
         raise InputError(f"--degree must be an integer >= 2, got {degree!r}") from None
     if not math.isfinite(d) or not d.is_integer():

@@ -63,7 +63,7 @@ from pathlib import Path
 from leadline.kernels.mixture import MixtureError, parse_mixture
 
 from .errors import InputError
-from .parsing import MAX_GTOL
+from .parsing import MAX_GTOL, MIN_MEMORY_MB
 
 __all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
@@ -356,6 +356,8 @@ def parse_spec(text: str, base: Path, origin: str = "spec") -> StudySpec:
     workers = _int(comp, "compute", "workers", None, minimum=1)
     threads = _int(comp, "compute", "threads-per-worker", 1, minimum=1)
     memory_mb = _float(comp, "compute", "memory-mb", 256.0, positive=True)
+    if memory_mb < MIN_MEMORY_MB:
+        raise InputError(f"{_where('compute', 'memory-mb')} must be >= {MIN_MEMORY_MB:g} MiB (the memory of one chunk task), got {memory_mb!r}")
     interval_s = _float(ckpt, "checkpoint", "interval-s", 30.0)
     if interval_s < 0:
         raise InputError(f"[checkpoint] interval-s must be >= 0 seconds, got {interval_s!r}")
@@ -399,7 +401,7 @@ def load_spec(path: str | os.PathLike) -> StudySpec:
     """Read and validate the spec file at ``path`` (InputError on any problem)."""
     path = Path(path)
     try:
-        text = path.read_text()
+        text = path.read_text(encoding="utf-8-sig")  # UTF-8, a leading BOM accepted
     except FileNotFoundError:
         raise InputError(f"spec file {path} does not exist") from None
     except (OSError, UnicodeDecodeError) as exc:

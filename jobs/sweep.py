@@ -10,6 +10,8 @@ cluster/checkpointed.py for why this reproduces the uninterrupted numbers).
 
 from __future__ import annotations
 
+import contextlib
+
 import time
 from typing import Callable
 
@@ -17,6 +19,7 @@ import numpy as np
 
 from leadline.kernels.optimize import optimize_depth
 from leadline.kernels.exact import plan_chunks
+from leadline.kernels.numtext import fmt
 from leadline.cluster import CheckpointedPasses, CheckpointStats
 from leadline.storage import StudyStore
 from leadline.storage.faults import crash_point
@@ -75,11 +78,22 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     """Max-q-XORSAT on a D-regular hypertree: in process, checkpointed per depth only."""
     from leadline.kernels.sparse import optimize_sparse
 
+    from .commands import _sparse as sparse_cli
+
     kwargs = {} if spec.restarts is None else {"restarts": spec.restarts}
-    result = optimize_sparse(
-        ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
-        seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter, **kwargs,
-    )
+    chunked = contextlib.nullcontext(None)
+    if not sparse_cli.fits_in_memory(p, gradient=True):
+        # past memory: every evaluation on chunked vectors in the folder beside the store
+        path = sparse_cli.plan_sparse_path(p, executor.settings, str(sparse_cli.sweep_scratch(spec.store)), True,
+                                           f"ensemble {ens.label!r}")
+        chunked = sparse_cli.scratch_runner(path, executor.settings, label=f"{ens.label}-p{p}",
+                                            client=getattr(executor, "client", None))
+    with chunked as run_chunked:
+        result = optimize_sparse(
+            ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
+            seed=spec.seed, gtol=spec.gtol, maxiter=spec.maxiter,
+            evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, **kwargs,
+        )
     return result, CheckpointStats()
 
 
@@ -152,6 +166,6 @@ def depth_line(line: dict) -> str:
         reused = f", {s['passes_from_cache']} from checkpoint" if s["passes_from_cache"] else ""
         passes = f"{s['passes_computed']} passes computed{reused}, "
     return (
-        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {r['value']:.12f}  |grad| {r['gradient_norm']:.1e}  "
+        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  |grad| {r['gradient_norm']:.1e}  "
         f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
     )

@@ -21,7 +21,21 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Mixture", "MixtureError", "parse_mixture"]
+from .numtext import parse_float
+
+__all__ = ["Mixture", "MixtureError", "parse_mixture", "MAX_POWER", "WEIGHT_MIN", "WEIGHT_MAX"]
+
+#: largest power q accepted in a mixture (the closed forms used for range checks sum binomials
+#: C(q, k) over k <= q, and nothing in the literature this tool is checked against goes near it)
+MAX_POWER = 1000
+#: range of every weight w_q.  V_p scales exactly, V_p(c xi; gamma, beta) = sqrt(c) V_p(xi; sqrt(c) gamma, beta)
+#: (H -> sqrt(c) H), and leadline computes on the mixture divided by a power of 4 near xi(1)
+#: (:meth:`Mixture.normal_form`); the limits keep the weights' ratios (up to 1e300) and the
+#: gradient dV/dgamma (of size xi(1)) inside the double range.
+WEIGHT_MIN = 1e-150
+WEIGHT_MAX = 1e150
+#: mixtures with xi(1) in [2^-6, 2^6] are computed as given (normal_form's exponent is 0)
+_NORMAL_BAND = 6.0
 
 
 class MixtureError(ValueError):
@@ -45,6 +59,8 @@ class Mixture:
         for q, w in self.terms:
             if not isinstance(q, int) or isinstance(q, bool) or q < 1:
                 raise MixtureError(f"power q must be an integer >= 1, got {q!r}")
+            if q > MAX_POWER:
+                raise MixtureError(f"power q = {q} is beyond {MAX_POWER}, the largest this tool accepts")
             if q in seen:
                 raise MixtureError(f"power q = {q} appears twice in the mixture")
             seen.add(q)
@@ -52,6 +68,12 @@ class Mixture:
                 raise MixtureError(f"weight for q = {q} is not finite ({w!r})")
             if w <= 0:
                 raise MixtureError(f"weight for q = {q} must be > 0, got {w!r}")
+            if not WEIGHT_MIN <= w <= WEIGHT_MAX:
+                raise MixtureError(
+                    f"weight for q = {q} is {w:.3g}, outside {WEIGHT_MIN:g}..{WEIGHT_MAX:g}; V_p scales exactly, "
+                    "V_p(c xi; gamma, beta) = sqrt(c) V_p(xi; sqrt(c) gamma, beta): divide the weights by c and "
+                    "multiply gamma by sqrt(c)"
+                )
 
     @classmethod
     def from_weights(cls, weights: dict[int, float]) -> "Mixture":
@@ -117,6 +139,36 @@ class Mixture:
         """The mixture c * xi (c > 0)."""
         return Mixture(tuple((q, w * c) for q, w in self.terms))
 
+    def scale_exponent(self) -> int:
+        """k such that xi / 4^k has xi(1) near 1: 0 when xi(1) is within [2^-6, 2^6], else round(log_4 xi(1))."""
+        top = max(w for _, w in self.terms)
+        log2_total = math.log2(top) + math.log2(sum(w / top for _, w in self.terms))
+        if abs(log2_total) <= _NORMAL_BAND:
+            return 0
+        return int(math.floor(log2_total / 2.0 + 0.5))
+
+    def normal_form(self) -> tuple[int, "Mixture"]:
+        """(k, xi / 4^k) with k = :meth:`scale_exponent`; the division by a power of 4 is exact.
+
+        The energy scales exactly with the mixture (the cost H of c xi is sqrt(c) H):
+
+            V_p(xi; gamma, beta) = 2^k V_p(xi / 4^k; 2^k gamma, beta),
+            dV/dgamma = 4^k dV'/dgamma',  dV/dbeta = 2^k dV'/dbeta',
+
+        and multiplying by powers of 2 is exact in binary floating point, so computing on the
+        normal form gives the same digits as computing on xi wherever the latter stays in the
+        double range, and keeps every intermediate product of size 1 where it would not.
+        """
+        k = self.scale_exponent()
+        if k == 0:
+            return 0, self
+        factor = math.ldexp(1.0, -2 * k)
+        # built without __post_init__: the scaled weights may lie below WEIGHT_MIN (their ratios
+        # to the largest, which is about 1 now, are what WEIGHT_MIN/WEIGHT_MAX bound)
+        normal = object.__new__(Mixture)
+        object.__setattr__(normal, "terms", tuple((q, w * factor) for q, w in self.terms))
+        return k, normal
+
     # -------------------------------------------------------------- spelling
     def spec(self) -> str:
         """Canonical text form, the inverse of :func:`parse_mixture`."""
@@ -160,18 +212,18 @@ def parse_mixture(spec: str) -> Mixture:
             raise MixtureError(f"term {item!r} is not of the form q:w (for example 3:1)")
         qs, ws = (s.strip() for s in item.split(":", 1))
         try:
-            qf = float(qs)
+            qf = parse_float(qs)
         except ValueError:
-            raise MixtureError(f"power q in {item!r} is not a number") from None
+            raise MixtureError(f"power q in {item!r} is not a number (ASCII digits)") from None
         if not math.isfinite(qf) or qf != int(qf) or not _looks_integer(qs):
             raise MixtureError(f"power q in {item!r} must be an integer, got {qs!r}")
         q = int(qf)
         if q < 1:
             raise MixtureError(f"power q must be >= 1, got {q} in {item!r}")
         try:
-            w = float(ws)
+            w = parse_float(ws)
         except ValueError:
-            raise MixtureError(f"weight w in {item!r} is not a number") from None
+            raise MixtureError(f"weight w in {item!r} is not a number (ASCII decimal notation such as 0.5 or 1e-3)") from None
         if not math.isfinite(w):
             raise MixtureError(f"weight w in {item!r} is not finite")
         if w < 0:
@@ -191,4 +243,4 @@ def _weight_text(w: float) -> str:
 
 def _looks_integer(text: str) -> bool:
     text = text.strip().lstrip("+")
-    return text.isdigit()
+    return text.isascii() and text.isdigit()

@@ -44,6 +44,9 @@ from .mixture import Mixture
 
 #: half-width of the gamma search box in units of 1/sqrt(xi'(1))
 GAMMA_BOX = 4.0
+#: a best value at or below this (for the normal form of xi, xi(1) about 1) is the trivial
+#: value 0 and never reported as converged
+TRIVIAL_MARGIN = 1e-12
 
 __all__ = [
     "OptimizationResult",
@@ -58,7 +61,13 @@ __all__ = [
 
 @dataclass
 class OptimizationResult:
-    """Outcome of :func:`optimize_depth` (printed as JSON by the CLI, stored by sweeps)."""
+    """Outcome of :func:`optimize_depth` (printed as JSON by the CLI, stored by sweeps).
+
+    ``gradient_norm`` is the largest component of the gradient in the mixture's own units:
+    for xi(1) within [2^-6, 2^6] the plain gradient of V_p; otherwise that of
+    V_p / 2^k in the angles (2^k gamma, beta), with xi / 4^k the normal form
+    (:meth:`Mixture.normal_form`), so that ``gtol`` means the same for every scale of xi.
+    """
 
     value: float
     gamma: np.ndarray
@@ -202,6 +211,27 @@ def optimize_depth(
     maxiter : iteration cap of each local run
     callback : called after each evaluation with a dict (start, evaluation, value)
     """
+    k, normal = mixture.normal_form()
+    if k:
+        # optimize in the mixture's own units (Mixture.normal_form: exact powers of 2), where the
+        # tolerances gtol and ftol mean what they mean for an O(1) mixture:
+        # V(xi; g) = 2^k V(xi / 4^k; 2^k g)
+        def up(pair):
+            return None if pair is None else (np.ldexp(np.asarray(pair[0], float), k), pair[1])
+
+        res = optimize_depth(normal, p, run_pass=run_pass, plan=plan, previous=up(previous),
+                             previous_value=None if previous_value is None else math.ldexp(previous_value, -k),
+                             starts=[up(s) for s in starts] if starts else None, restarts=restarts, seed=seed,
+                             gtol=gtol, maxiter=maxiter,
+                             callback=None if callback is None else (lambda info: callback({**info, "value": math.ldexp(info["value"], k)})))
+        res.value = math.ldexp(res.value, k)
+        res.gamma = np.ldexp(res.gamma, -k)
+        res.mixture = mixture
+        for record in res.history:
+            record["values"] = [None if v is None else math.ldexp(v, k) for v in record["values"]]
+            if "value" in record:
+                record["value"] = math.ldexp(record["value"], k)
+        return res
     t0 = time.perf_counter()
     if p < 1:
         raise ValueError("depth p must be >= 1")
@@ -303,6 +333,11 @@ def optimize_depth(
             local_run(len(candidates), g0, b0, "padded")
 
     value, x, gnorm, converged, message = best
+    if value <= TRIVIAL_MARGIN:
+        # V_p* > 0 at every depth (small gamma at a suitable beta gains to first order), so a
+        # stationary point at V = 0 is a flat region (huge gamma, or gamma = 0), not an optimum
+        converged = False
+        message = f"stopped at the trivial value 0 (what gamma = 0 gives) in a flat part of the landscape: not an optimum ({message})"
     g, b = canonical_angles(mixture, x[:p], x[p:])
     return OptimizationResult(
         value=value,

@@ -7,7 +7,7 @@ Python API (documented with examples in docs/api.md)::
     opt = leadline.optimize("3:1", 3)                       # optimal angles, pure 3-spin, p = 3
     leadline.evaluate_sparse(2, 3, [0.6155], [0.3927])      # MaxCut on 3-regular graphs
     leadline.optimize_sparse(3, 4, 2)
-    leadline.evaluate_bath("2:0.5", [0.5], [0.392699])      # the bosonic-bath engine, any depth
+    leadline.evaluate_bath("2:0.5", [0.5], [0.392699])        # bosonic-bath engine, error estimate <= 1e-6
     leadline.reference_energies("2:0.5")                    # ground state and algorithmic threshold
     leadline.sweep("study.toml")                            # a depth study (resume("runs/study.zarr") goes on)
     leadline.transfer("graph.txt", depth=2)                 # angles for one instance, checked exactly

@@ -21,6 +21,8 @@ _WHERE = {
     "StoreLockedError": "errors",
     "SchemaVersionError": "errors",
     "NotAStudyError": "errors",
+    "StoreDamagedError": "errors",
+    "StoreLockLostError": "errors",
     "FORMAT": "layout",
     "SCHEMA_VERSION": "layout",
     "StoreLock": "lock",

@@ -6,7 +6,8 @@ and exit code 2.
 
 from __future__ import annotations
 
-__all__ = ["StoreError", "StoreLockedError", "StoreReadOnlyError", "SchemaVersionError", "NotAStudyError"]
+__all__ = ["StoreError", "StoreLockedError", "StoreReadOnlyError", "SchemaVersionError", "NotAStudyError",
+           "StoreDamagedError", "StoreLockLostError"]
 
 
 class StoreError(RuntimeError):
@@ -27,3 +28,11 @@ class SchemaVersionError(StoreError):
 
 class NotAStudyError(StoreError):
     """The path is not a leadline study store (or was never fully created)."""
+
+
+class StoreDamagedError(StoreError):
+    """Parts of the store are missing, unreadable or differ from the store's own record."""
+
+
+class StoreLockLostError(StoreError):
+    """The writer lock of this process was deleted or replaced while it ran: it stops before its next write."""

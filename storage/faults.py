@@ -3,9 +3,10 @@
 ``LEADLINE_CRASH_AT="chunk-written:7"`` makes the 7th arrival at the point
 named ``chunk-written`` kill the process with SIGKILL (no cleanup, no flush),
 exactly like ``kill -9`` at that instant; ``"chunk-written:7:TERM"`` sends
-SIGTERM instead (what a batch system sends at its time limit).  Several
-points may be listed, comma-separated.  Unset (the normal case) the check is
-one dict lookup.
+SIGTERM instead (what a batch system sends at its time limit), and
+``"pass-cached:3:ENOSPC"`` (any errno name) raises ``OSError`` with that errno
+there, as a write that fails on a full disk would.  Several points may be
+listed, comma-separated.  Unset (the normal case) the check is one dict lookup.
 
 ``LEADLINE_CHUNK_AUDIT=/path/file`` appends one line per chunk recorded as
 finished (see :func:`witness`), written right after the record and before
@@ -27,10 +28,13 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   depth-done              a depth's done flag is on disk
   depth-started           a depth is marked running, its optimizer not yet started
   chunk-task              a worker has started a task of chunks (cluster/mapreduce.py), not computed it yet
+  sparse-step-finished    a chunked sparse evaluation recorded a finished step (storage/sparse_scratch.py)
+  sparse-band-task        a row-band task of a chunked sparse transform starts (cluster/sparse_vectors.py)
 """
 
 from __future__ import annotations
 
+import errno
 import json
 import os
 import signal
@@ -52,7 +56,7 @@ _counts: dict[str, int] = {}
 
 
 def _parse(var: str = ENV_VAR) -> dict[str, tuple[int, int]]:
-    """{point: (count, signal)} from "point:count[:TERM],..." in $var."""
+    """{point: (count, signal)} from "point:count[:TERM|:ERRNO],..." in $var (an errno as its negative)."""
     out: dict[str, tuple[int, int]] = {}
     for item in os.environ.get(var, "").split(","):
         item = item.strip()
@@ -60,7 +64,8 @@ def _parse(var: str = ENV_VAR) -> dict[str, tuple[int, int]]:
             continue
         name, _, rest = item.partition(":")
         count, _, sig = rest.partition(":")
-        signum = signal.SIGTERM if sig.strip().upper() == "TERM" else signal.SIGKILL
+        sig = sig.strip().upper()
+        signum = signal.SIGTERM if sig == "TERM" else -getattr(errno, sig) if sig.startswith("E") else signal.SIGKILL
         out[name.strip()] = (int(count or 1), signum)
     return out
 
@@ -79,6 +84,8 @@ def crash_point(name: str) -> None:
     if name in _targets:
         count, signum = _targets[name]
         if _counts[name] == count:
+            if signum < 0:
+                raise OSError(-signum, os.strerror(-signum))
             os.kill(os.getpid(), signum)
 
 

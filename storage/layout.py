@@ -5,7 +5,8 @@ without leadline in docs/store.md::
 
     <store>/                                 root group
         attrs: format, schema_version, name, spec, spec_toml, created_utc, writer,
-               kernel, migrated (list of layout upgrades, when any)
+               kernel, integrity (the store's record of itself: storage/integrity.py),
+               migrated (list of layout upgrades, when any)
     <store>/ensembles/<label>/               one group per ensemble of the spec
         attrs: label, kind, xi, q, degree, reference[, references]
     <store>/ensembles/<label>/p003/          one group per depth started (3 digits)
@@ -58,9 +59,10 @@ __all__ = [
 #: value of the root attribute "format"
 FORMAT = "leadline.study"
 #: layout version this release writes
-SCHEMA_VERSION = 2
-#: layout versions this release reads (1: one array per cached pass; upgraded on resume)
-READABLE_SCHEMAS = (1, 2)
+SCHEMA_VERSION = 3
+#: layout versions this release reads (1: one array per cached pass; 2: no integrity record;
+#: both upgraded when a writer opens them)
+READABLE_SCHEMAS = (1, 2, 3)
 
 ENSEMBLES = "ensembles"
 PASSES = "passes"

@@ -14,6 +14,7 @@ Everything here can also be read with plain zarr (see docs/store.md).
 from __future__ import annotations
 
 import os
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +22,7 @@ import zarr
 
 from . import layout as L
 from .lock import describe_holder, holder_alive, read_lock
-from .study import check_study, inflight_summary, store_usage
+from .study import check_contents, check_study, inflight_summary, store_usage
 
 __all__ = ["open_study", "StudyReader"]
 
@@ -30,7 +31,12 @@ DEPTH_FIELDS = ("p", "value", "gamma", "beta", "gradient_norm", "evaluations", "
 
 
 def open_study(path: str | os.PathLike) -> "StudyReader":
-    """Open the study store at ``path`` for reading (format and schema version checked)."""
+    """Open the study store at ``path`` for reading.
+
+    Format and schema version are checked, then every part against the store's own record
+    (storage/integrity.py): a store with a finished depth, its spec or an ensemble missing,
+    unreadable or altered raises StoreDamagedError naming the parts.
+    """
     return StudyReader(path)
 
 
@@ -48,6 +54,8 @@ class StudyReader:
     def __init__(self, path: str | os.PathLike):
         self.path = Path(path)
         attrs = check_study(self.path)
+        #: what the check on open read: ensemble and depth attributes (read once, then served from here)
+        self.contents = check_contents(self.path, attrs)
         self.attrs = attrs
         self.name: str = attrs["name"]
         self.spec: dict = attrs["spec"]
@@ -65,10 +73,7 @@ class StudyReader:
         """{"label", "kind": "dense"|"sparse", "xi", "q", "degree", "reference": {...}}."""
         for e in self.spec["ensembles"]:
             if e["label"] == label:
-                try:
-                    stored = self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict()
-                except KeyError:
-                    stored = {}
+                stored = self.contents.ensembles.get(label, {})
                 return dict(stored) if stored.get("label") == label else _describe(e)
         raise KeyError(f"no ensemble {label!r} in study {self.name!r} (have {', '.join(self.ensembles())})")
 
@@ -80,42 +85,25 @@ class StudyReader:
         """
         from leadline.kernels.reference import References
 
-        try:
-            data = self._root[f"{L.ENSEMBLES}/{label}"].attrs.asdict().get("references")
-        except KeyError:
-            return None
+        data = self.contents.ensembles.get(label, {}).get("references")
         return References.from_json(data) if data else None
 
-    def _depth_groups(self, label: str) -> list[tuple[int, zarr.Group]]:
+    def _depth_attrs(self, label: str) -> list[tuple[int, dict | None]]:
+        """(p, attributes) of every depth group of ``label`` sorted by p (None: unreadable metadata)."""
         self.ensemble(label)  # KeyError for unknown labels
-        try:
-            ens = self._root[f"{L.ENSEMBLES}/{label}"]
-        except KeyError:
-            return []
-        out = []
-        for name in ens.group_keys():
-            p = L.parse_depth_name(name)
-            if p is not None:
-                out.append((p, ens[name]))
-        return sorted(out, key=lambda t: t[0])
+        return sorted(self.contents.depths.get(label, {}).items())
 
     def depths(self, label: str) -> list[dict]:
         """Finished depths of ``label`` sorted by p: {"p", "value", "gamma", "beta",
         "gradient_norm", "evaluations", "wall_time_s", "converged"} (angles as lists, radians)."""
-        out = []
-        for p, g in self._depth_groups(label):
-            attrs = g.attrs.asdict()
-            if attrs.get("state") != "done" or "result" not in attrs:
-                continue
-            r = attrs["result"]
-            out.append({k: r.get(k) for k in DEPTH_FIELDS} | {"p": p})
-        return out
+        self.ensemble(label)
+        return [{k: a["result"].get(k) for k in DEPTH_FIELDS} | {"p": p} for p, a in self.contents.done(label).items()]
 
     def depth(self, label: str, p: int) -> dict | None:
         """Everything stored about depth p: result (with optimizer history), timings, repairs, state."""
-        for q, g in self._depth_groups(label):
+        for q, attrs in self._depth_attrs(label):
             if q == p:
-                return g.attrs.asdict()
+                return attrs
         return None
 
     # ---------------------------------------------------------------- progress
@@ -132,10 +120,15 @@ class StudyReader:
         ensembles = []
         finished_timings = []  # (p, evaluations, wall seconds)
         pass_rates = []  # (seconds, path-passes)
+        lock = self.lock_holder()
+        writing = lock is not None and bool(lock.get("alive"))
         for label in self.ensembles():
             done, running = [], None
-            for p, g in self._depth_groups(label):
-                attrs = g.attrs.asdict()
+            for p, attrs in self._depth_attrs(label):
+                if attrs is None:  # an unfinished depth whose metadata is damaged: resume starts it again
+                    if pmin <= p <= pmax:
+                        running = _running_info(p, None, None, writing)
+                    continue
                 if attrs.get("state") == "done" and "result" in attrs:
                     r, t = attrs["result"], attrs.get("timings", {})
                     done.append({"p": p, "value": r.get("value"), "evaluations": r.get("evaluations"),
@@ -146,7 +139,7 @@ class StudyReader:
                         paths = t.get("paths") or t["passes"] * 2.0 ** (2 * p + 1)
                         pass_rates.append((t["pass_compute_s"], paths))
                 elif pmin <= p <= pmax:
-                    running = _running_info(p, g, attrs)
+                    running = _running_info(p, self._depth_group(label, p), attrs, writing)
                     if running["pass_compute_s"] > 0 and running["paths"]:
                         pass_rates.append((running["pass_compute_s"], running["paths"]))
             done_ps = {d["p"] for d in done}
@@ -160,9 +153,19 @@ class StudyReader:
             "ensembles": ensembles,
             "complete": all(not e["todo"] for e in ensembles),
             "estimated_seconds_left": eta,
-            "lock": self.lock_holder(),
+            "lock": lock,
             "store": store_usage(self.path),
         }
+
+
+    def _depth_group(self, label: str, p: int):
+        """The zarr group of depth p (for the pass batches of a running depth); None if unreadable."""
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                return self._root[f"{L.ENSEMBLES}/{label}/{L.depth_name(p)}"]
+        except Exception:  # noqa: BLE001 - being written, or damaged: shown without its passes
+            return None
 
 
 def _describe(e: dict) -> dict:
@@ -177,25 +180,39 @@ def _describe(e: dict) -> dict:
     }
 
 
-def _running_info(p: int, g: zarr.Group, attrs: dict) -> dict:
+def _running_info(p: int, g, attrs: dict | None, writing: bool) -> dict:
+    """A depth that is not finished: being computed (``writing``: a live writer holds the lock) or stopped.
+
+    ``attrs`` None: its metadata cannot be read (resume starts the depth again).  zarr's warnings
+    about folders it does not recognize (leftovers, stray files) are not shown: resume checks
+    and cleans what it uses."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return _running_info_quiet(p, g, attrs, writing)
+
+
+def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
+    damaged, attrs = attrs is None, attrs or {}
     passes = 0
     seconds = 0.0
     paths = 0.0
     try:
-        for name, arr in g[L.PASSES].arrays():
+        for name, arr in (g[L.PASSES].arrays() if g is not None else ()):
             if L.parse_batch_name(name) is None:
                 continue
             for entry in arr.attrs.asdict().get("entries", []):
                 passes += 1
                 seconds += float(entry.get("wall_s", 0.0))
                 paths += float(entry.get("paths") or 2.0 ** (2 * int(entry.get("step", p)) + 1))
-    except (KeyError, TypeError, ValueError):
+    except Exception:  # noqa: BLE001 - a batch being written or damaged: resume checks and recomputes it
         pass
-    inflight = inflight_summary(g)
+    inflight = inflight_summary(g) if g is not None else None
     if inflight is not None:
         seconds += inflight["wall_s"]
     return {
         "p": p,
+        "active": writing,
+        "metadata_damaged": damaged,
         "plan": attrs.get("plan"),
         "started_utc": attrs.get("started_utc"),
         "sessions": attrs.get("sessions"),

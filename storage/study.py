@@ -32,14 +32,15 @@ from zarr.codecs import ZstdCodec
 
 from leadline.kernels.exact import sum_w_tolerance
 
+from . import integrity as I
 from . import layout as L
-from .errors import NotAStudyError, SchemaVersionError, StoreError
+from .errors import NotAStudyError, SchemaVersionError, StoreDamagedError, StoreError
 from .faults import crash_point, witness
 from .lock import StoreLock, holder_alive, read_lock
 from .policy import CheckpointPolicy
 
-__all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "utc_now", "inflight_summary", "store_usage",
-           "write_cost_probe"]
+__all__ = ["StudyStore", "DepthStore", "InflightPass", "check_study", "check_contents", "utc_now", "inflight_summary",
+           "store_usage", "write_cost_probe"]
 
 #: leftovers of writes a kill interrupted: zarr's temporary files, and lock files not yet linked
 _ZARR_TEMP = re.compile(r"(\.[0-9a-f]{32}\.partial|^\.leadline\.lock\.[0-9a-f]{32}\.tmp)$")
@@ -85,12 +86,18 @@ def check_study(path: str | os.PathLike) -> dict:
     if not path.is_dir():
         raise NotAStudyError(f"{path} is a file, not a study store ({looks_like})")
     if not (path / "zarr.json").is_file():
+        if (path / L.ENSEMBLES).is_dir() or (path / "leadline.lock").exists():
+            raise StoreDamagedError(
+                f"store {path} is damaged: its root metadata zarr.json (name, spec and record of the study) is "
+                "missing; restore the store from a backup"
+            )
         raise NotAStudyError(f"{path} is a folder without zarr.json, not a study store ({looks_like})")
     try:
-        root = zarr.open_group(str(path), mode="r", zarr_format=3)
-        attrs = root.attrs.asdict()
-    except Exception as exc:  # noqa: BLE001 - zarr raises many kinds
-        raise NotAStudyError(f"{path} is not a readable Zarr v3 group: {exc}") from None
+        attrs = I.read_attrs(path)
+    except I.Unreadable as exc:
+        if (path / L.ENSEMBLES).is_dir():
+            raise StoreDamagedError(f"store {path} is damaged: the root group {exc}; restore the store from a backup") from None
+        raise NotAStudyError(f"{path} is not a readable Zarr v3 group: the folder {exc}") from None
     if attrs.get("format") != L.FORMAT:
         raise NotAStudyError(f"{path} is a Zarr group but not a leadline study store (format {attrs.get('format')!r})")
     version = attrs.get("schema_version")
@@ -100,6 +107,28 @@ def check_study(path: str | os.PathLike) -> dict:
             f"{', '.join(map(str, L.READABLE_SCHEMAS))}; use the leadline release that wrote it"
         )
     return attrs
+
+
+def check_contents(path: str | os.PathLike, attrs: dict) -> "I.Contents":
+    """Check the store's parts against its record and layout (storage/integrity.py).
+
+    Raises StoreDamagedError naming the damaged parts when anything finished, the spec
+    or an ensemble is missing, unreadable or altered; returns what was read otherwise.
+    """
+    path = Path(path)
+    contents = I.inspect(path, attrs, int(attrs.get("schema_version", 0)))
+    fatal = contents.fatal
+    if fatal and all(f.permission for f in fatal):
+        raise StoreDamagedError(
+            f"store {path} cannot be read: {I.describe_findings(fatal)}. Nothing was changed; give this user "
+            "read access to those parts (or run as the store's owner)"
+        )
+    if fatal:
+        raise StoreDamagedError(
+            f"store {path} is damaged: {I.describe_findings(fatal)}. Nothing was changed; restore the store "
+            "from a backup (or start a new sweep)"
+        )
+    return contents
 
 
 def store_usage(path: str | os.PathLike) -> dict:
@@ -196,6 +225,9 @@ class StudyStore:
             top = root.require_group(L.ENSEMBLES)
             for desc in ensembles:
                 top.create_group(desc["label"], attributes=dict(desc))
+            # the record of what the store was created with, from the attributes as they read back
+            stored = {d["label"]: I.read_attrs(building / L.ENSEMBLES / d["label"]) for d in ensembles}
+            root.attrs[I.RECORD] = I.new_record(I.read_attrs(building), stored)
             crash_point("store-built")
             try:
                 if path.exists():
@@ -225,10 +257,13 @@ class StudyStore:
         check_study(path)
         lock = StoreLock(path, command).acquire()
         try:
+            attrs = check_study(path)  # again, now that no other writer can change it
+            contents = check_contents(path, attrs)
             root = zarr.open_group(str(path), mode="r+", zarr_format=3)
             store = cls(path, root, lock)
             store._remove_temp_files()
-            store._upgrade(notice)
+            store._upgrade(notice, contents)
+            store._reconcile(contents, notice)
             store._drop_finished_caches()
             return store
         except BaseException:
@@ -271,8 +306,10 @@ class StudyStore:
                 if p is not None and d.is_dir():
                     yield ens.name, p, d
 
-    def _upgrade(self, notice) -> None:
-        """Schema 1 -> 2: keep every depth record, drop the pass caches and ledgers of the old layout.
+    def _upgrade(self, notice, contents: "I.Contents") -> None:
+        """Schema 1 -> 3: keep every depth record, drop the pass caches and ledgers of the old layout.
+        Schema 1 or 2 -> 3: write the integrity record from what is on disk (it was checked
+        for readability and for angle arrays that agree with their results).
 
         Old cached passes were keyed for the full-contour iteration (one plan
         per depth); the current iteration never asks for them, and reusing them
@@ -281,9 +318,13 @@ class StudyStore:
         version = self.root.attrs.get("schema_version")
         if version == L.SCHEMA_VERSION:
             return
+        if I.RECORD not in self.root.attrs:
+            # finished depths are added by _reconcile, which runs next
+            self.root.attrs[I.RECORD] = I.new_record(self.root.attrs.asdict(), contents.ensembles)
+            contents.record = self.root.attrs[I.RECORD]
         dropped = 0
         depths = set()
-        for label, p, d in self._depth_dirs():
+        for label, p, d in (self._depth_dirs() if version == 1 else ()):
             for sub in (L.PASSES, L.INFLIGHT):
                 if (d / sub).exists():
                     if sub == L.PASSES:
@@ -299,6 +340,31 @@ class StudyStore:
                 f"kept; {dropped} cached passes of {len(depths)} depths no longer apply and were dropped "
                 "(an unfinished depth restarts from its recorded start)"
             )
+
+    def _reconcile(self, contents: "I.Contents", notice) -> None:
+        """Record finished depths the record does not list yet (a kill right after a depth's done flag)."""
+        record = dict(self.root.attrs[I.RECORD])
+        finished = {label: dict(v) for label, v in record["finished"].items()}
+        changed = False
+        for label in contents.ensembles:
+            mine = finished.setdefault(label, {})
+            for p, attrs in contents.done(label).items():
+                if str(p) not in mine:
+                    mine[str(p)] = I.digest(attrs["result"])
+                    changed = True
+        if changed:
+            self.root.attrs[I.RECORD] = dict(record, finished=finished)
+        for f in contents.findings:  # not fatal: the metadata of an unfinished depth
+            notice(f"store {self.path}: {f.text()}; that unfinished depth starts again")
+
+    def _record_finished(self, label: str, p: int, directory: Path) -> None:
+        """Add depth p of ``label`` to the record, with the digest of its result as it reads back."""
+        result = I.read_attrs(directory)["result"]
+        record = dict(self.root.attrs[I.RECORD])
+        finished = {k: dict(v) for k, v in record["finished"].items()}
+        finished.setdefault(label, {})[str(p)] = I.digest(result)
+        self.lock.verify()
+        self.root.attrs[I.RECORD] = dict(record, finished=finished)
 
     def _drop_finished_caches(self) -> None:
         """Pass batches and ledgers of finished depths (left by a kill right after a depth finished)."""
@@ -326,6 +392,7 @@ class StudyStore:
 
     def ensure_ensembles(self, ensembles: list[dict]) -> None:
         """Create the ensemble groups that are missing (idempotent, kill-safe)."""
+        self.lock.verify()
         top = self.root.require_group(L.ENSEMBLES)
         for desc in ensembles:
             label = desc["label"]
@@ -339,6 +406,7 @@ class StudyStore:
     def save_references(self, label: str, references: dict) -> None:
         """Cache computed reference energies (kernels.reference.References.to_json())
         in the ensemble's attribute ``references``."""
+        self.lock.verify()
         self.root.require_group(L.ENSEMBLES)
         group = self.root.require_group(f"{L.ENSEMBLES}/{label}")
         group.attrs["references"] = references
@@ -346,9 +414,8 @@ class StudyStore:
     def finished_depth(self, label: str, p: int) -> dict | None:
         """The stored result of depth p (attrs "result"), or None if not done."""
         try:
-            g = self._ensemble_group(label)[L.depth_name(p)]
-            attrs = g.attrs.asdict()
-        except KeyError:
+            attrs = I.read_attrs(self.path / L.ENSEMBLES / label / L.depth_name(p))
+        except I.Unreadable:  # not started, or an unfinished depth whose metadata is damaged
             return None
         if attrs.get("state") != "done" or "result" not in attrs:
             return None
@@ -361,14 +428,16 @@ class StudyStore:
         information only: every cached pass and ledger carries its own plan
         (each step of an evaluation may have its own).
         """
+        self.lock.verify()
         ens = self._ensemble_group(label)
         name = L.depth_name(p)
         group = None
-        if name in ens:
+        folder = self.path / L.ENSEMBLES / label / name
+        if folder.is_dir():
             try:
+                I.read_attrs(folder)  # the metadata of an unfinished depth may be damaged: start it again
                 group = ens[name]
-                group.attrs.asdict()
-            except (KeyError, TypeError, ValueError):
+            except (I.Unreadable, KeyError, TypeError, ValueError):
                 group = None
         if group is None:
             group = ens.create_group(
@@ -384,7 +453,7 @@ class StudyStore:
                 overwrite=True,
             )
         group.attrs.update({"sessions": int(group.attrs.get("sessions", 0)) + 1})
-        return DepthStore(group, p, self.path / group.path, self.policy)
+        return DepthStore(group, p, self.path / group.path, self.policy, guard=self.lock.verify)
 
     def finish_depth(self, label: str, p: int, result: dict, timings: dict) -> None:
         """Record a finished depth: angle arrays first, then result + done flag in one write.
@@ -392,14 +461,17 @@ class StudyStore:
         The depth's pass batches and ledger are deleted afterwards (nothing asks
         for them again) unless the policy keeps them.
         """
+        self.lock.verify()
         group = self._ensemble_group(label)[L.depth_name(p)]
         group.create_array("gamma", data=np.asarray(result["gamma"], dtype=np.float64), overwrite=True)
         group.create_array("beta", data=np.asarray(result["beta"], dtype=np.float64), overwrite=True)
         crash_point("depth-arrays-written")
+        self.lock.verify()
         group.attrs.update(
             {"state": "done", "result": result, "timings": timings, "finished_utc": utc_now()}
         )
         crash_point("depth-done")
+        self._record_finished(label, p, self.path / group.path)
         shutil.rmtree(self.path / group.path / L.INFLIGHT, ignore_errors=True)
         if not self.policy.keep_passes:
             shutil.rmtree(self.path / group.path / L.PASSES, ignore_errors=True)
@@ -423,7 +495,10 @@ class DepthStore:
     policy says so).  The index of the batches on disk is read once, at open.
     """
 
-    def __init__(self, group: zarr.Group, p: int, directory: Path, policy: CheckpointPolicy | None = None):
+    def __init__(self, group: zarr.Group, p: int, directory: Path, policy: CheckpointPolicy | None = None,
+                 guard=None):
+        #: called before every write (the writer lock's verify: raises if the lock was lost)
+        self.guard = guard or (lambda: None)
         self.group = group
         self.p = p
         self.directory = Path(directory)
@@ -458,6 +533,7 @@ class DepthStore:
     def note_repair(self, what: str, key: str, chunk: int | None = None, detail: str = "") -> None:
         event = {"what": what, "key": key, "chunk": chunk, "detail": detail[:200], "utc": utc_now()}
         self.repairs.append(event)
+        self.guard()
         old = list(self.group.attrs.get("repairs", []))
         self.group.attrs.update({"repairs": old + [event]})
 
@@ -553,6 +629,7 @@ class DepthStore:
         """Write the pending passes as one batch array (data and index in one create); returns how many."""
         if not self._pending:
             return 0
+        self.guard()
         names = [L.parse_batch_name(b) for b in self._batches]
         name = L.batch_name(max(names, default=0) + 1)
         parts, records, offset = [], [], 0
@@ -596,6 +673,7 @@ class DepthStore:
         writes one attribute update (key and a new serial), which invalidates
         every row of the previous pass at once.
         """
+        self.guard()
         state = self._inflight_arrays(n_chunks, tuple(shape))
         attrs = state.group.attrs.asdict()
         if attrs.get("key") == key and attrs.get("fingerprint") == meta.get("fingerprint"):
@@ -606,6 +684,7 @@ class DepthStore:
 
     def restart_inflight(self, inflight: "InflightPass") -> "InflightPass":
         """Invalidate every chunk of ``inflight`` (new serial) to recompute the pass from scratch."""
+        self.guard()
         state = inflight.state
         serial = inflight.serial + 1
         state.group.attrs.update({"serial": serial, "started_utc": utc_now()})
@@ -744,6 +823,7 @@ class InflightPass:
         completions = int(self.rows[k, L.COMPLETIONS]) + 1 if same_pass else 1
         row = np.array([self.serial, L.checksum(partial), completions, int(wall_us)], dtype=np.int64)
         partials, ledger = self.state.partials, self.state.ledger
+        self.depth.guard()
 
         async def write_in_order() -> None:
             await partials.async_array.setitem(k, partial)

@@ -180,7 +180,7 @@ def test_no_private_module_of_another_subject_is_imported():
 
 
 @pytest.mark.parametrize("kernel", ["leadline.kernels.exact._chunks", "leadline.kernels.exact._blocked",
-                                    "leadline.kernels.sparse._recursion", "leadline.cluster.executor"])
+                                    "leadline.kernels.sparse._growing", "leadline.cluster.executor"])
 def test_storage_never_runs_a_kernel(kernel):
     assert kernel in MODULES
     storage = [m for m in GRAPH if m.startswith("leadline.storage")]

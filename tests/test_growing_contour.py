@@ -257,7 +257,7 @@ def _brute_half_spectrum(gamma, kind):
 
 @pytest.mark.parametrize("kind", ["cos", "sin"])
 def test_closed_form_phase_spectrum_equals_the_transform(kind):
-    from leadline.kernels.sparse._recursion import _PhaseSpectrum
+    from leadline.kernels.sparse._spectra import _PhaseSpectrum
 
     rng = np.random.default_rng(21 if kind == "cos" else 22)
     for m in range(1, 5):
@@ -274,7 +274,7 @@ def test_closed_form_spectrum_keeps_the_zero_entry_at_tiny_angles():
 
     import mpmath
 
-    from leadline.kernels.sparse._recursion import _PhaseSpectrum
+    from leadline.kernels.sparse._spectra import _PhaseSpectrum
 
     g = [1.3e-5, 2.1e-5, 0.7e-5]
     Gam = g + [0.0] + [-x for x in reversed(g)]
@@ -288,7 +288,7 @@ def test_closed_form_spectrum_keeps_the_zero_entry_at_tiny_angles():
 
 
 def test_site_product_adjoint_against_brute_force():
-    from leadline.kernels.sparse._recursion import _kron_env, _kron_pairs
+    from leadline.kernels.sparse._spectra import _kron_env, _kron_pairs
 
     rng = np.random.default_rng(23)
     for n in range(1, 7):
@@ -318,7 +318,7 @@ def test_sparse_growing_at_large_angles_equals_full():
 @pytest.mark.parametrize("chunk_bits", [2, 5])
 def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits):
     # the row-by-row paths (several groups per step, several row tables per spectrum)
-    import leadline.kernels.sparse._recursion as sparse
+    import leadline.kernels.sparse._steps as sparse
 
     monkeypatch.setattr(sparse, "CHUNK_BITS", chunk_bits)
     rng = np.random.default_rng(30 + chunk_bits)
@@ -335,7 +335,7 @@ def test_sparse_growing_in_small_row_groups_equals_full(monkeypatch, chunk_bits)
 
 def test_integer_degree_power_by_multiplication_equals_exp_log1p(monkeypatch):
     # (1 + z)^(D-1) by multiplication (small integer D) against exp((D-1) log1p(z))
-    import leadline.kernels.sparse._recursion as sparse
+    import leadline.kernels.sparse._steps as sparse
 
     rng = np.random.default_rng(40)
     for q, D in [(2, 2), (3, 4), (4, 9)]:
@@ -359,7 +359,7 @@ def test_in_place_four_step_transform_equals_butterflies(monkeypatch, row_bits, 
     the radix-2 butterflies and, at small size, scipy.linalg.hadamard (Sylvester's construction)."""
     from scipy.linalg import hadamard
 
-    import leadline.kernels.sparse._recursion as sparse
+    import leadline.kernels.sparse._transforms as sparse
 
     monkeypatch.setattr(sparse, "ROW_BITS", row_bits)
     monkeypatch.setattr(sparse, "BLOCK_BITS", block_bits)

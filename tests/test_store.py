@@ -392,7 +392,7 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
 
     # the same numbers with plain zarr, following the documented layout
     root = zarr.open_group(str(tmp_path / "api.zarr"), mode="r")
-    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 2
+    assert root.attrs["format"] == "leadline.study" and root.attrs["schema_version"] == 3
     g = root["ensembles/sk/p002"]
     assert g.attrs["state"] == "done"
     assert g.attrs["result"]["value"] == depths[1]["value"]

@@ -5,8 +5,11 @@ Max-q-XORSAT on D-regular hypertrees (help texts, depth check, running, printing
 one place; what a sparse ensemble may be (``check_sparse``, the degree limit) is shared with
 the study spec and the Python API in ``leadline.jobs.sparse_ensemble``:
 
-    leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json]
-    leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE]
+    leadline evaluate --xorsat Q --degree D --gamma ... --beta ... [--gradient] [--json] [--scratch DIR]
+    leadline optimize --xorsat Q --degree D --depth P [--json] [--output FILE] [--scratch DIR]
+
+Which path runs (in memory, or chunked vectors out of core / on Dask workers with --scratch),
+what it needs and what is refused: :func:`plan_sparse_path`.
 
 "value" is the satisfied fraction nu_p(D; gamma, beta) (the cut fraction for Q = 2).
 """
@@ -15,15 +18,18 @@ from __future__ import annotations
 
 import contextlib
 import json
+from dataclasses import dataclass
+from pathlib import Path
 
 import typer
 
 from leadline.kernels.sparse import evaluate_sparse, optimize_sparse
+from leadline.kernels.numtext import fmt
 
 from ..errors import InputError
 from ..sparse_ensemble import check_sparse, ensemble_json
 
-__all__ = ["XORSAT_HELP", "DEGREE_HELP", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
+__all__ = ["XORSAT_HELP", "DEGREE_HELP", "SCRATCH_HELP", "plan_sparse_path", "SparsePath", "scratch_runner", "fits_in_memory", "check_sweep_sparse", "sweep_scratch", "sparse_requested", "check_sparse_depth", "evaluate_xorsat", "optimize_xorsat"]
 
 XORSAT_HELP = "Sparse ensemble: Max-Q-XORSAT (Q = 2: MaxCut) on D-regular hypergraphs of large girth; needs --degree."
 DEGREE_HELP = "Degree D >= 2 of every spin (with --xorsat); large values up to 1e9 are fine."
@@ -35,11 +41,45 @@ def sparse_requested(xorsat, degree) -> bool:
 
 
 #: complex numbers the growing-contour recursion holds at most, in units of 2^(2p-1): its two
-#: buffers allocated once at the final size (kernels/sparse/_recursion.py); measured peak RSS
+#: buffers allocated once at the final size (kernels/sparse/_growing.py); measured peak RSS
 #: 2.6 GiB at p = 14 and 10.1 GiB at p = 15 (docs/performance.md)
 SPARSE_VECTORS = 1.25
 #: the reverse sweep keeps about this many times the evaluation's memory (measured at p = 12)
 GRADIENT_MEMORY_FACTOR = 2.5
+
+
+#: tests: pretend the machine has this many bytes of memory (the switch to chunked vectors)
+MEMORY_ENV = "LEADLINE_SPARSE_MEMORY_BYTES"
+
+
+def _memory_total() -> float:
+    import os
+
+    if os.environ.get(MEMORY_ENV):
+        return float(os.environ[MEMORY_ENV])
+    import psutil
+
+    return float(psutil.virtual_memory().total)
+
+
+def fits_in_memory(p: int, gradient: bool) -> bool:
+    """Does the in-memory recursion at depth p fit in 80% of this machine's memory?"""
+    need = SPARSE_VECTORS * 16 * 2 ** (2 * p - 1) * (GRADIENT_MEMORY_FACTOR if gradient else 1.0)
+    return need <= 0.8 * _memory_total()
+
+
+def sweep_scratch(store_path) -> Path:
+    """Where a sweep keeps the chunked vectors of its sparse ensembles: beside its store."""
+    store_path = Path(store_path)
+    return store_path.parent / f"{store_path.name}.sparse-scratch"
+
+
+def check_sweep_sparse(spec, settings) -> None:
+    """Before a sweep starts: every sparse ensemble's deepest depth fits in memory or, chunked,
+    in the scratch folder beside the store (InputError, one line, otherwise)."""
+    for ens in spec.ensembles:
+        if ens.kind == "sparse" and not fits_in_memory(spec.pmax, True):
+            plan_sparse_path(spec.pmax, settings, str(sweep_scratch(spec.store)), True, f"ensemble {ens.label!r}")
 
 
 def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) -> None:
@@ -50,18 +90,115 @@ def check_sparse_depth(p: int, settings, option: str, gradient: bool = False) ->
         raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
     need = SPARSE_VECTORS * 16 * 2 ** (2 * p - 1) * (GRADIENT_MEMORY_FACTOR if gradient else 1.0)
     distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
-    try:
-        import psutil
-
-        total = psutil.virtual_memory().total
-    except Exception:  # pragma: no cover - psutil is a dependency
-        return
+    total = _memory_total()
     if need > 0.8 * total and not distributed:
         raise InputError(
             f"{option}: the sparse recursion at p = {p} needs about {need / 2**30:.0f} GiB"
             f"{' with the gradient' if gradient else ''}, more than 80% of this machine's "
-            f"{total / 2**30:.0f} GiB; lower the depth"
+            f"{total / 2**30:.0f} GiB; lower the depth" + ("" if gradient else " or give --scratch DIR (out of core)")
         )
+
+
+SCRATCH_HELP = ("Sparse ensembles: keep the step vectors as Zarr arrays in this folder (out of core; "
+                "with --executor local/scheduler/batch they live on the Dask workers and the folder must be one "
+                "every worker sees) and record every finished step there, so a killed run given the same folder "
+                "resumes after its last finished step. Removed after success.")
+
+#: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py:
+#: the root's input, its outer transform and that transform's row-pass copy)
+SCRATCH_VECTORS = 3.0
+#: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25 = 1.67), plus
+#: at most three more of the last size at once (the root's outer transform, an adjoint and its
+#: row-pass copy): 4.7 counted from the order of writes in kernels/sparse/_chunked.py, rounded up
+SCRATCH_VECTORS_GRADIENT = 6.0
+#: complex numbers a task of the chunked path holds at most, in bands of 2^CHUNK_POINTS_BITS points
+#: (a band in, a band out, a column block and a transform scratch)
+BANDS_PER_TASK = 4
+#: leave this much of the scratch file system free (other users of a shared disk)
+DISK_MARGIN = 1.1
+
+
+@dataclass
+class SparsePath:
+    """Which path a sparse evaluation takes and what it needs (the cost guard's statement)."""
+
+    kind: str              # "memory", "disk" (out of core) or "workers" (Dask workers)
+    memory_bytes: float    # per process (memory, disk) or per worker (workers)
+    disk_bytes: float      # scratch folder, 0 for "memory"
+    scratch: Path | None = None
+
+    def describe(self, p: int) -> str:
+        if self.kind == "memory":
+            return f"sparse path = in memory, about {_size(self.memory_bytes)} at p = {p}"
+        if self.kind == "disk":
+            return (f"sparse path = out of core, about {_size(self.memory_bytes)} per process, "
+                    f"{_size(self.disk_bytes)} in {self.scratch}")
+        return (f"sparse path = on the Dask workers, up to {_size(self.memory_bytes)} per worker (a transform that "
+                f"does not fit in half the workers' memory exchanges through the folder instead), "
+                f"{_size(self.disk_bytes)} in {self.scratch}")
+
+
+def _size(nbytes: float) -> str:
+    if nbytes < 2**20:
+        return "under 1 MiB"
+    return f"{nbytes / 2**30:.1f} GiB" if nbytes >= 2**30 else f"{nbytes / 2**20:.0f} MiB"
+
+
+def _existing_ancestor(path: Path) -> Path:
+    path = path.absolute()
+    while not path.exists():
+        path = path.parent
+    return path
+
+
+def check_scratch(scratch: str, need: float) -> Path:
+    """The scratch folder as a Path, or InputError (one line): not writable, a file, or too
+    little free space for ``need`` bytes (less what a resumable run already holds there)."""
+    import shutil
+    import tempfile
+
+    path = Path(scratch).expanduser()
+    if path.exists() and not path.is_dir():
+        raise InputError(f"--scratch {scratch}: is a file, not a folder")
+    base = _existing_ancestor(path)
+    try:  # a real write (permissions alone do not tell for root or a read-only mount)
+        with tempfile.TemporaryFile(dir=base):
+            pass
+    except OSError as exc:
+        raise InputError(f"--scratch {scratch}: {base} is not writable ({exc.strerror or 'read-only or no permission'})") from None
+    held = sum(f.stat().st_size for f in path.rglob("*") if f.is_file()) if path.is_dir() else 0
+    free = shutil.disk_usage(base).free
+    if DISK_MARGIN * need - held > free:
+        raise InputError(f"--scratch {scratch}: the chunked evaluation needs about {need / 2**30:.1f} GiB there, "
+                         f"{free / 2**30:.1f} GiB free; give a folder on a larger disk or lower the depth")
+    return path
+
+
+def plan_sparse_path(p: int, settings, scratch: str | None, gradient: bool, option: str) -> SparsePath:
+    """Choose the path of a sparse evaluation at depth p and check it fits, before any work.
+
+    In memory unless --scratch is given; with --scratch the vectors are chunked (out of core in
+    this process, or on Dask workers with a distributed executor).  InputError (one line) for a
+    depth that fits nowhere, a gradient with --scratch, or an unusable scratch folder."""
+    from leadline.kernels.sparse import CHUNK_POINTS_BITS
+
+    from ..spec import MAX_DEPTH
+
+    if p > MAX_DEPTH:
+        raise InputError(f"{option}: depth p = {p} is beyond {MAX_DEPTH}, the deepest this tool runs (vectors of 2^{2 * p + 1} entries)")
+    vec = 16.0 * 2 ** (2 * p - 1)
+    distributed = settings is not None and settings.mode in ("local", "scheduler", "batch")
+    if scratch is None:
+        check_sparse_depth(p, settings, option, gradient=gradient)
+        return SparsePath("memory", SPARSE_VECTORS * vec * (GRADIENT_MEMORY_FACTOR if gradient else 1.0), 0.0)
+    disk = (SCRATCH_VECTORS_GRADIENT if gradient else SCRATCH_VECTORS) * vec
+    path = check_scratch(scratch, disk)
+    task = BANDS_PER_TASK * 16.0 * 2**CHUNK_POINTS_BITS
+    if distributed:
+        workers = max(1, int(getattr(settings, "workers", None) or 1))
+        # a transform's row bands and their rechunked copy, spread over the workers
+        return SparsePath("workers", max(task, 2.0 * vec / workers), disk, path)
+    return SparsePath("disk", min(task, 2.5 * vec), disk, path)
 
 
 def _report(ev) -> str:
@@ -69,7 +206,7 @@ def _report(ev) -> str:
     lines = [
         f"ensemble   = Max-{ev.q}-XORSAT{' (MaxCut)' if ev.q == 2 else ''}, {int(ev.degree)}-regular, large girth",
         f"depth p    = {ev.p}",
-        f"{name} = {ev.value:.12f}",
+        f"{name} = {fmt(ev.value, 12)}",
     ]
     if ev.gradient is not None:
         lines.append("d/dgamma   = " + ", ".join(f"{x:+.6e}" for x in ev.gradient["gamma"]))
@@ -95,10 +232,70 @@ def transform_map(settings):
         yield ex.run_map
 
 
+@contextlib.contextmanager
+def scratch_runner(path: SparsePath, settings, label=None, client=None):
+    """``chunked(q, D, g, b, gradient)`` for :func:`evaluate_sparse`: each evaluation in the scratch
+    folder (out of core, or on the executor's Dask workers), progress per step on stderr unless
+    --quiet, the folder removed after success and kept (for the resume) after a failure.  With
+    ``label`` (the optimizer) every evaluation uses the subfolder "<label>" afresh."""
+    import time
+
+    from leadline.cluster.sparse_vectors import ZarrBandStore
+    from leadline.kernels.sparse import CHUNK_POINTS_BITS, evaluate_chunked
+    from leadline.storage.errors import StoreError
+    from leadline.storage.sparse_scratch import SparseScratch
+
+    quiet = settings is None or settings.quiet
+    announced = []
+
+    def run(q, D, g, b, gradient, client=None):
+        if g.size < 3:  # a few points, nothing to chunk (the optimizer's p = 1 grid, depth 2)
+            return evaluate_chunked(q, D, g, b, None, gradient=gradient)
+        fingerprint = {"q": q, "degree": D, "gamma": [float(x).hex() for x in g],
+                       "beta": [float(x).hex() for x in b], "band_bits": CHUNK_POINTS_BITS, "gradient": bool(gradient)}
+        folder = path.scratch if label is None else path.scratch / label
+        try:
+            if label is not None and folder.exists():
+                SparseScratch(folder, {}).remove()  # the optimizer's previous evaluation (other angles)
+            scratch = SparseScratch.open(folder, fingerprint)
+        except StoreError as exc:
+            raise InputError(str(exc)) from None
+        p = g.size
+        if not quiet and (label is None or not announced):
+            typer.echo(path.describe(p) + (f"; resuming after step {scratch.finished()[0]}" if scratch.resumed else ""),
+                       err=True)
+            announced.append(p)
+        start = time.perf_counter()
+
+        def progress(m, p, seconds):
+            if not quiet and label is None:
+                what = ("root" if m > p else f"step {m}/{p}") if m > 0 else (
+                    "reverse sweep: root" if -m > p else f"reverse sweep: step {-m}")
+                typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
+
+        store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=client)
+        ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        scratch.remove()
+        return ev
+
+    if path.kind == "workers" and client is not None:
+        yield lambda q, D, g, b, gradient: run(q, D, g, b, gradient, client)
+    elif path.kind == "workers":
+        from .. import compute
+
+        with compute.open_compute(settings) as ex:
+            yield lambda q, D, g, b, gradient: run(q, D, g, b, gradient, ex.client)
+    else:
+        yield run
+    if label is not None:
+        with contextlib.suppress(OSError):
+            path.scratch.rmdir()  # only if empty: the folder may hold the user's own files
+
+
 def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=False, as_json=False,
-                    settings=None) -> None:
+                    settings=None, scratch=None) -> None:
     """`leadline evaluate --xorsat Q --degree D ...`: validate everything, evaluate, print."""
-    from ..angles import read_angles
+    from ..angles import check_periodic_angles, read_angles
     from ..parsing import angle_pair
 
     q, D = check_sparse(xorsat, degree, xi)
@@ -109,9 +306,14 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
         g, b = aset.gamma, aset.beta
     else:
         g, b = angle_pair(gamma, beta)
-    check_sparse_depth(g.size, settings, "--angles" if angles is not None else "--gamma/--beta", gradient=gradient)
-    with transform_map(settings) as run_map:
-        ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
+    check_periodic_angles(g, "--angles" if angles is not None else "--gamma", "gamma_t", "2 pi")
+    path = plan_sparse_path(g.size, settings, scratch, gradient, "--angles" if angles is not None else "--gamma/--beta")
+    if path.kind == "memory":
+        with transform_map(settings) as run_map:
+            ev = evaluate_sparse(q, D, g, b, gradient=gradient, run_map=run_map)
+    else:
+        with scratch_runner(path, settings) as chunked:
+            ev = evaluate_sparse(q, D, g, b, gradient=gradient, chunked=chunked)
     if as_json:
         out = ev.to_json()
         out["ensemble"] = ensemble_json(q, D)
@@ -121,7 +323,7 @@ def evaluate_xorsat(xorsat, degree, *, xi, gamma, beta, angles=None, gradient=Fa
 
 
 def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e-7, maxiter=500, output=None, as_json=False, start=None,
-                    settings=None) -> None:
+                    settings=None, scratch=None) -> None:
     """`leadline optimize --xorsat Q --degree D --depth P`: depths 1..P in turn (INTERP warm starts).
 
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
@@ -134,13 +336,18 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     q, D = check_sparse(xorsat, degree, xi)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
     initial = warm_start(start, depth)
-    check_sparse_depth(depth, settings, "--depth", gradient=True)
+    path = plan_sparse_path(depth, settings, scratch, True, "--depth")
     if output is not None:
         check_output_file(output)
-    with transform_map(settings) as run_map:
-        run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
-                            maxiter=maxiter, ensemble=ensemble_json(q, D),
-                            evaluate_kw={"run_map": run_map} if run_map is not None else None)
+    if path.kind == "memory":
+        with transform_map(settings) as run_map:
+            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
+                                maxiter=maxiter, ensemble=ensemble_json(q, D),
+                                evaluate_kw={"run_map": run_map} if run_map is not None else None)
+    else:
+        with scratch_runner(path, settings, label="evaluation") as chunked:
+            run = sparse_ladder(optimize_sparse, q, D, depth, initial, restarts=restarts, seed=seed, gtol=gtol,
+                                maxiter=maxiter, ensemble=ensemble_json(q, D), evaluate_kw={"chunked": chunked})
     result, ladder, first, wall = run.result, run.ladder, run.first_depth, run.wall_time
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=None, value=result.value, ensemble=ensemble_json(q, D)))
@@ -154,7 +361,7 @@ def optimize_xorsat(xorsat, degree, *, xi, depth, restarts=None, seed=0, gtol=1e
     header = [
         f"ensemble       = Max-{q}-XORSAT{' (MaxCut)' if q == 2 else ''}, {D}-regular, large girth",
         f"depth p        = {depth}",
-        f"{name} = {result.value:.10f}",
+        f"{name} = {fmt(result.value, 10)}",
     ]
     evaluations = f"{sum(r['evaluations'] for r in ladder)} over depths {first}..{depth}, {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))

@@ -8,12 +8,13 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import evaluate as evaluate_kernel, DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import read_angles
-from ..cost import COST_NOTE_SECONDS, check_cost
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
-from ..parsing import angle_pair, check_representable, check_underflow, file_mixture, mixture_arg
+from ..parsing import angle_pair, check_memory_mb, check_representable, check_underflow, file_mixture, mixture_arg
 from . import _evaluate_bath as bath, _sparse as sparse
 
 
@@ -39,9 +40,11 @@ def evaluate_command(
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
     method: str = typer.Option("exact", "--method", help=bath.METHOD_HELP),
+    tolerance: Optional[float] = typer.Option(None, "--tolerance", help=bath.TOLERANCE_HELP),
     fock: Optional[int] = typer.Option(None, "--fock", help=bath.FOCK_HELP),
     bond: Optional[int] = typer.Option(None, "--bond", help=bath.BOND_HELP),
-    basis: Optional[str] = typer.Option(None, "--basis", help=bath.BASIS_HELP),
+    time_limit: Optional[float] = typer.Option(None, "--time-limit", help=bath.TIME_HELP),
+    scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Evaluate the exact infinite-size QAOA energy density V_p(gamma, beta).
 
@@ -49,8 +52,7 @@ def evaluate_command(
 
         leadline evaluate --xi 2:0.5 --gamma 0.5 --beta 0.392699
     """
-    if not memory_mb > 0 or memory_mb == float("inf"):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     angle_set = None
     if angles is not None:
         if gamma is not None or beta is not None:
@@ -59,12 +61,14 @@ def evaluate_command(
         if angle_set.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
             # a file written by `optimize --xorsat`: evaluate on its own sparse ensemble
             xorsat, degree = angle_set.ensemble["q"], str(angle_set.ensemble["degree"])
-    use_bath = bath.check_method(method, fock, bond, basis, gradient=gradient, fixed_point=fixed_point,
-                                     sparse=sparse.sparse_requested(xorsat, degree))
+    use_bath = bath.check_method(method, tolerance, fock, bond, time_limit, gradient=gradient,
+                                 fixed_point=fixed_point, sparse=sparse.sparse_requested(xorsat, degree))
     if sparse.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse.evaluate_xorsat(xorsat, degree, xi=xi, gamma=gamma, beta=beta, angles=angles,
-                                          gradient=gradient, as_json=as_json, settings=settings)
+                                          gradient=gradient, as_json=as_json, settings=settings, scratch=scratch)
+    if scratch is not None:
+        raise InputError("--scratch is for sparse ensembles (--xorsat Q --degree D); the dense evaluation checkpoints through `leadline sweep`")
     if angle_set is not None:
         mix = file_mixture(xi, angle_set, angles)
         g, b = angle_set.gamma, angle_set.beta
@@ -73,7 +77,8 @@ def evaluate_command(
         g, b = angle_pair(gamma, beta)
     check_representable(mix, g, "--angles" if angle_set is not None else "--gamma", beta=b)
     if use_bath:
-        return bath.evaluate_bath_command(mix, g, b, fock, bond, basis, as_json)
+        return bath.evaluate_bath_command(mix, g, b, tolerance, fock, bond, time_limit, as_json, quiet)
+    check_depth(g.size, "--angles" if angle_set is not None else "--gamma/--beta")
     plan = plan_chunks(g.size, int(memory_mb * 2**20))
     settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
     cost = check_cost(g.size, plan, settings, gradient=gradient, option="--gamma/--beta")
@@ -91,8 +96,8 @@ def evaluate_command(
 
 
 def _value_text(value: float) -> str:
-    """Twelve decimals, or twelve significant digits for a nonzero value too small to show them."""
-    return f"{value:.12f}" if value == 0.0 or abs(value) >= 1e-6 else f"{value:.12e}"
+    """Twelve decimals where they show the value, else scientific notation (kernels/numtext.py)."""
+    return fmt(value, 12)
 
 
 def report(result) -> str:

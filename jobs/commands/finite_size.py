@@ -11,8 +11,9 @@ import typer
 
 from leadline.kernels.finite_size import estimate_energy_density
 from leadline.kernels.exact import evaluate as evaluate_kernel, plan_chunks
+from leadline.kernels.numtext import fmt, parse_int
 
-from ..cost import check_cost
+from ..cost import check_cost, check_depth
 from ..errors import InputError
 from ..parsing import angle_pair, check_representable, mixture_arg
 
@@ -29,7 +30,7 @@ def spins_arg(text: str | None) -> list[int]:
     for item in str(text).split(","):
         item = item.strip()
         try:
-            n = int(item)
+            n = parse_int(item)
         except ValueError:
             raise InputError(f"--n: {item!r} is not a whole number of spins") from None
         if not MIN_SPINS <= n <= MAX_SPINS:
@@ -71,6 +72,7 @@ def finite_size_command(
     mix = mixture_arg(xi)
     g, b = angle_pair(gamma, beta)
     check_representable(mix, g, beta=b)  # the exact infinite-size column must be a double
+    check_depth(g.size, "--gamma/--beta")
     check_cost(g.size, plan_chunks(g.size), None, gradient=False, option="--gamma/--beta")
     sizes = spins_arg(spins)
     if not 2 <= instances <= MAX_INSTANCES:
@@ -119,7 +121,7 @@ def report(out: dict, label: str) -> str:
         f"xi(x)      = {label}",
         f"depth p    = {out['p']}",
         f"instances  = {out['instances']} per n, seed {out['seed']}, constant term {out['constant_term']}",
-        f"V_p        = {out['infinite_size_value']:.6f}  (exact, n -> infinity)",
+        f"V_p        = {fmt(out['infinite_size_value'])}  (exact, n -> infinity)",
         "",
         "   n   mean <H>/n   std error   mean - V_p   in std errors",
     ]
@@ -127,7 +129,7 @@ def report(out: dict, label: str) -> str:
         z = row["difference_in_std_errors"]
         z_text = f"{z:+13.1f}" if z is not None else "            -"
         lines.append(
-            f"{row['n']:4d}   {row['mean']:10.6f}   {row['std_error']:9.6f}   {row['difference']:+10.6f}  {z_text}"
+            f"{row['n']:4d}   {fmt(row['mean']):>10}   {fmt(row['std_error']):>9}   {fmt(row['difference'], signed=True):>10}  {z_text}"
         )
     lines.append(f"({out['wall_time_s']:.1f} s)")
     return "\n".join(lines)

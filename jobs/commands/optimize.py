@@ -8,14 +8,14 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import DEFAULT_MEMORY_BUDGET, plan_chunks
+from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
 from ..api import optimize_ladder
-from ..cost import COST_NOTE_SECONDS, check_cost
-from ..errors import InputError
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..paths import check_output_file
-from ..parsing import check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
+from ..parsing import check_memory_mb, check_optimizer_options, check_representable, file_mixture, mixture_arg, warm_start
 from . import _sparse as sparse
 
 
@@ -45,6 +45,7 @@ def optimize_command(
     threads_per_worker: int = compute.threads_option(),
     cluster_config: Optional[str] = compute.cluster_config_option(),
     quiet: bool = compute.quiet_option(),
+    scratch: Optional[str] = typer.Option(None, "--scratch", help=sparse.SCRATCH_HELP),
 ) -> None:
     """Find the angles that maximize V_p and report V_p* in canonical form.
 
@@ -54,9 +55,10 @@ def optimize_command(
 
         leadline optimize --xi 3:1 --depth 4 --angles p3.json --output p4.json
     """
-    if not (memory_mb > 0 and memory_mb < float("inf")):
-        raise InputError(f"--memory-mb must be a positive finite number of MiB, got {memory_mb}")
+    check_memory_mb(memory_mb)
     depth = check_optimizer_options(depth, restarts, gtol, maxiter, seed)
+    if not sparse.sparse_requested(xorsat, degree):
+        check_depth(depth, "--depth")
     initial = warm_start(start, depth)
     if initial is not None and initial.ensemble is not None and xi is None and not sparse.sparse_requested(xorsat, degree):
         # a file written by `optimize --xorsat`: continue on its own sparse ensemble
@@ -64,7 +66,10 @@ def optimize_command(
     if sparse.sparse_requested(xorsat, degree):
         settings = compute.settings_from_options(executor, scheduler, workers, threads_per_worker, memory_mb, cluster_config, quiet)
         return sparse.optimize_xorsat(xorsat, degree, xi=xi, depth=depth, restarts=restarts, seed=seed, gtol=gtol,
-                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings)
+                                          maxiter=maxiter, output=output, as_json=as_json, start=start, settings=settings,
+                                          scratch=scratch)
+    if scratch is not None:
+        raise InputError("--scratch is for sparse ensembles (--xorsat Q --degree D)")
     mix = file_mixture(xi, initial, start) if initial is not None else mixture_arg(xi)
     if initial is not None:
         check_representable(mix, initial.gamma, "--angles")
@@ -98,7 +103,7 @@ def optimize_command(
     if as_json:
         typer.echo(json.dumps(run.to_json()))
         return
-    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {result.value:.10f}"]
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
     evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
     typer.echo(optimum_report(header, result, evaluations, ladder, output))
 

@@ -9,6 +9,7 @@ from typing import Optional
 
 import typer
 
+from leadline.kernels.numtext import fmt
 from .. import reference_cache
 from ..errors import InputError
 from ..parsing import check_reference_settings, mixture_arg
@@ -53,8 +54,6 @@ def reference_command(
         return
     if ensemble is not None:
         raise InputError("--ensemble goes with --store")
-    from leadline.kernels.reference import reference_energies
-
     mix = mixture_arg(xi)
     check_reference_settings(gs_tol, alg_tol, max_steps)
     directory = None
@@ -66,7 +65,7 @@ def reference_command(
     refs = reference_cache.load(directory, key) if directory is not None else None
     cached = refs is not None
     if refs is None:
-        refs = reference_energies(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+        refs = _computed(mix, gs_tol, alg_tol, max_steps)
         if directory is not None:
             try:
                 reference_cache.store(directory, key, refs)
@@ -80,10 +79,19 @@ def reference_command(
     typer.echo(report(mix, refs, cached))
 
 
+def _computed(mix, gs_tol: float, alg_tol: float, max_steps: int, where: str = ""):
+    """reference_energies, with a result that cannot be GS/ALG turned into one line (InputError)."""
+    from leadline.kernels.reference import ReferenceRangeError, reference_energies
+
+    try:
+        return reference_energies(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+    except ReferenceRangeError as exc:
+        raise InputError(f"{where}{exc}") from None
+
+
 def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: float, max_steps: int, as_json: bool) -> None:
     """Compute and cache GS/ALG in a study store (one writer at a time: takes the lock)."""
     from leadline.kernels.mixture import parse_mixture
-    from leadline.kernels.reference import reference_energies
     from leadline.storage import StoreError, StudyStore, open_study
 
     try:
@@ -102,16 +110,16 @@ def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: floa
         raise InputError(str(exc)) from None
     results = {}
     with writer:
-        for label in chosen:
+        for label in chosen:  # all computed (and checked) before the first is saved
             mix = parse_mixture(reader.ensemble(label)["xi"])
-            refs = reference_energies(mix, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps)
+            results[label] = (mix, _computed(mix, gs_tol, alg_tol, max_steps, f"ensemble {label!r}: "))
+        for label, (mix, refs) in results.items():
             writer.save_references(label, refs.to_json())
-            results[label] = refs
             if not as_json:
                 typer.echo(f"[{label}]")
                 typer.echo(report(mix, refs, False))
     if as_json:
-        typer.echo(json.dumps({label: r.to_json() for label, r in results.items()}))
+        typer.echo(json.dumps({label: r.to_json() for label, (_, r) in results.items()}))
 
 
 def report(mix, refs, cached: bool) -> str:
@@ -119,10 +127,10 @@ def report(mix, refs, cached: bool) -> str:
     short = short_of_tolerance(refs)
     lines = [
         f"xi(x)                  = {mix.label()}",
-        f"ground state GS        = {refs.ground_state:.6f} +- {refs.ground_state_uncertainty:.1e}"
-        f"   (k = {len(refs.ground_state_k_sequence)} steps, best bound {gs_d.get('best_bound', float('nan')):.6f})",
+        f"ground state GS        = {fmt(refs.ground_state)} +- {refs.ground_state_uncertainty:.1e}"
+        f"   (k = {len(refs.ground_state_k_sequence)} steps, best bound {fmt(gs_d.get('best_bound', float('nan')))})",
         *([f"                         {short['ground_state']}"] if "ground_state" in short else []),
-        f"algorithmic threshold  = {refs.algorithmic_threshold:.6f} +- {refs.algorithmic_threshold_uncertainty:.1e}"
+        f"algorithmic threshold  = {fmt(refs.algorithmic_threshold)} +- {refs.algorithmic_threshold_uncertainty:.1e}"
         f"   (k = {len(refs.algorithmic_threshold_k_sequence)} steps)",
         *([f"                         {short['algorithmic_threshold']}"] if "algorithmic_threshold" in short else []),
         "overlap gap            = "

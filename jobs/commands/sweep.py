@@ -15,11 +15,13 @@ from typing import Optional
 import typer
 
 from leadline.kernels.exact import IMPLEMENTATION_ENV
+from leadline.kernels.numtext import fmt
 from leadline.storage.errors import StoreError
 
 from .. import compute
 from ..errors import InputError, Stopped
 from ..spec import check_new_store, load_spec, spec_from_json
+from ._sparse import check_sweep_sparse
 
 
 def _store_errors(func):
@@ -45,6 +47,29 @@ def _store_errors(func):
             ) from None
 
     return wrapper
+
+
+def _write_failed(exc: OSError, store: Path, creating: bool):
+    """One error line (exit 1) for a write the operating system refused (full disk, file-size limit, ...).
+
+    Every store write is ordered so that a failure at any point leaves a store that resume
+    can use (as a kill does), and a store being created is removed with its hidden folder.
+    """
+    import click
+
+    from ..paths import os_error_text
+
+    try:  # as the user would type it: relative to the working folder when inside it
+        shown = Path(store).resolve().relative_to(Path.cwd())
+    except (OSError, ValueError):
+        shown = Path(store)
+    store = shown
+    if creating and not Path(store).exists():
+        return click.ClickException(f"could not create store {store}: {os_error_text(exc)}; nothing was created")
+    return click.ClickException(
+        f"writing store {store} failed: {os_error_text(exc)}; every finished depth and checkpoint written before "
+        f"is kept: make room, then `leadline resume {store}`"
+    )
 
 
 def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
@@ -127,7 +152,11 @@ def sweep_command(
     spec = load_spec(spec_path)
     check_new_store(spec.store)
     settings = spec.compute_settings(quiet=quiet or as_json)
-    _run(lambda: create_store(spec), spec, settings, as_json, quiet)
+    check_sweep_sparse(spec, settings)
+    try:
+        _run(lambda: create_store(spec), spec, settings, as_json, quiet)
+    except OSError as exc:
+        raise _write_failed(exc, spec.store, creating=True) from None
 
 
 @_store_errors
@@ -149,17 +178,49 @@ def resume_command(
     The chunk plan (memory-mb) stays the one of the spec; where passes run may be changed.
     """
     from leadline.storage import StudyStore, check_study
+    from leadline.storage.study import check_contents
 
     attrs = check_study(store_path)
-    spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
+    check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
+    spec = _stored_spec(store_path, attrs)
     _pin_kernel(attrs.get("kernel"))
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be >= 1, got {workers}")
     if cluster_config is not None and not cluster_config.is_file():
         raise InputError(f"--cluster-config: file {cluster_config} does not exist")
     settings = _settings_with(spec, executor, scheduler, workers, cluster_config, quiet or as_json)
-    StudyStore.open(store_path, command="resume").close()  # refuse now if another writer holds it
-    _run(lambda: StudyStore.open(store_path, command="resume"), spec, settings, as_json, quiet)
+    check_sweep_sparse(spec, settings)
+    try:
+        # refuse now if another writer holds it (this open prints what the user should know, once)
+        StudyStore.open(store_path, command="resume").close()
+        _run(lambda: StudyStore.open(store_path, command="resume", notice=lambda text: None), spec, settings,
+             as_json, quiet)
+    except OSError as exc:
+        raise _write_failed(exc, store_path, creating=False) from None
+
+
+def _stored_spec(store_path: Path, attrs: dict):
+    """The spec a store was created with, checked again as `sweep` checks a new one.
+
+    A store with an integrity record has its spec's digest checked on open; an older store
+    has none, so a spec edited into nonsense (a negative weight, pmax beyond the limit) is
+    caught here before it runs."""
+    from ..spec import MAX_DEPTH
+
+    try:
+        spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
+        if not 1 <= spec.pmin <= spec.pmax <= MAX_DEPTH:
+            raise ValueError(f"depths {spec.pmin}..{spec.pmax} outside 1..{MAX_DEPTH}")
+        for ens in spec.ensembles:
+            if ens.kind == "dense":
+                ens.mixture()
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        detail = f"{exc.args[0]!r} is missing" if isinstance(exc, KeyError) else str(exc)
+        raise InputError(
+            f"store {store_path} is damaged: its root attribute 'spec' cannot be used ({detail}); nothing was run: "
+            "restore the store from a backup (or start a new sweep)"
+        ) from None
+    return spec
 
 
 def _pin_kernel(recorded: str | None) -> None:
@@ -303,12 +364,16 @@ def status_text(progress: dict) -> str:
         done = e["done"]
         lines.append(f"  {e['label']}")
         if done:
-            values = "  ".join(f"p{d['p']}={d['value']:.6f}" for d in done)
+            values = "  ".join(f"p{d['p']}={fmt(d['value'])}" for d in done)
             lines.append(f"    done     p = {_ranges([d['p'] for d in done])}: {values}")
         r = e["running"]
-        if r is not None:
-            # a depth is only running while a writer holds the lock; otherwise it was stopped
-            state = "running" if lock is not None and lock.get("alive") else "stopped"
+        if r is not None and r.get("metadata_damaged") and r.get("active"):
+            lines.append(f"    running  p = {r['p']}: starting")  # its folder is there, its metadata not yet
+        elif r is not None and r.get("metadata_damaged"):
+            lines.append(f"    stopped  p = {r['p']}: its metadata cannot be read; resume starts this depth again")
+        elif r is not None:
+            # "running" only while a live writer holds the lock; otherwise the depth waits for resume
+            state, more = ("running", "") if r.get("active", True) else ("stopped", "; resume continues it")
             text = (f"    {state:<8} p = {r['p']}: {r['passes_cached']} passes checkpointed "
                     f"(~{r['evaluations_done']} evaluations), session {r['sessions']}")
             if r["inflight"] is not None:
@@ -316,7 +381,7 @@ def status_text(progress: dict) -> str:
                 text += f"; pass in flight: {f['chunks_done']}/{f['n_chunks']} chunks done"
             if r["repairs"]:
                 text += f"; {r['repairs']} repaired"
-            lines.append(text)
+            lines.append(text + more)
         todo = [p for p in e["todo"] if r is None or p != r["p"]]
         if todo:
             lines.append(f"    to do    p = {_ranges(todo)}")

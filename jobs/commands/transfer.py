@@ -37,6 +37,10 @@ from leadline.kernels.finite_size import (
 )
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 
+from leadline.kernels.exact import plan_chunks
+from leadline.kernels.numtext import fmt, fmt_list
+
+from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError
 from ..paths import check_output_file, write_text_atomic
 
@@ -111,14 +115,22 @@ def transfer_instance(instance: str | None, *, angles: str | None = None, store:
         check_output_file(output)
         if angles is None and store is None and depth is None:
             raise InputError("--output needs angles: give --angles, --store or --depth")
+    xi = _instance_mixture(inst, source_name)
     reference = None
     if angles is not None:
         reference = _reference_from_file(angles, depth)
     elif store is not None:
         reference = _reference_from_store(store, ensemble, depth)
+    elif depth is not None:
+        # the same depth and cost checks as `leadline optimize` (an optimization with gradients)
+        check_depth(depth, "--depth")
+        cost = check_cost(depth, plan_chunks(depth), None, gradient=True, option="--depth")
+        if not quiet and cost.core_seconds >= COST_NOTE_SECONDS:
+            print(f"leadline: {cost.line('one evaluation with gradient')}; an optimization runs tens to hundreds", file=sys.stderr)
+    if reference is not None and reference["kind"] == "infinite-size ensemble":
+        check_depth(len(reference["gamma"]), "--angles" if angles is not None else "--store")
 
     started = time.perf_counter()
-    xi = empirical_mixture(inst)
     out = {
         "instance": source_name,
         "n": inst.n,
@@ -174,7 +186,7 @@ def transfer_instance(instance: str | None, *, angles: str | None = None, store:
                 f"{shape_tolerance}): gamma is scaled by the total variance only and the angles are not optimal "
                 f"for this instance; --depth {gamma.size} optimizes for the instance's own mixture"
             )
-        out["predicted"] = inst.constant + inst.n * per_spin
+        out["predicted"] = _bounded(inst, inst.constant + inst.n * per_spin, notes)
     elif depth is not None:
         from leadline.kernels.optimize import optimize_depth
 
@@ -186,7 +198,7 @@ def transfer_instance(instance: str | None, *, angles: str | None = None, store:
         out.update(source=f"optimized for the instance's mixture {xi.rounded_spec()}", p=depth, shape_distance=0.0, same_shape=True)
         out["lambda"] = 1.0
         out["reference_xi"] = xi.spec()
-        out["predicted"] = inst.constant + inst.n * result.value
+        out["predicted"] = _bounded(inst, inst.constant + inst.n * result.value, notes)
         out["predicted_from"] = "constant + n V_p*, infinite-size ensemble of the instance's mixture"
     else:
         notes.append("no angles given (--angles, --store or --depth): only the mixture and the best value are reported")
@@ -303,13 +315,42 @@ def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, seed: int) -
     )
 
 
+def _bounded(inst, predicted: float, notes: list) -> float | None:
+    """The ensemble prediction, or None (with a note) where it leaves the range C can take.
+
+    |C(z) - constant| <= sum_S |w_S| for every string z, so a prediction beyond that bound is
+    not a value of this instance: the infinite-size ensemble describes instances with many
+    terms per spin, and one with few (a single term among many spins) is outside its reach.
+    """
+    reach = float(sum(abs(w) for w in inst.terms.values()))
+    if abs(predicted - inst.constant) <= reach * (1.0 + 1e-12):
+        return predicted
+    notes.append(
+        f"no ensemble prediction: constant + n V_p = {fmt(predicted)} lies outside the range every C(z) lies in, "
+        f"constant +- sum |weights| = {fmt(inst.constant)} +- {fmt(reach)}; the infinite-size ensemble describes "
+        f"instances with many terms per spin, and this one has {len(inst.terms)} term(s) on n = {inst.n} spins"
+    )
+    return None
+
+
+def _instance_mixture(inst, source: str) -> Mixture:
+    """The empirical mixture, or InputError when its weights leave the range leadline computes in."""
+    try:
+        return empirical_mixture(inst)
+    except MixtureError as exc:
+        raise InputError(
+            f"instance {source}: its mixture (w_q = sum of weight^2 / n) cannot be used: {exc}. "
+            "The cost scales exactly: for C/c the angles are c gamma and <C/c> = <C>/c"
+        ) from None
+
+
 # --------------------------------------------------------------------------- inputs
 def _read_instance(path: str | None):
     if path is None:
         raise InputError("give an instance file: leadline transfer INSTANCE (format: docs/transfer.md)")
     p = Path(path)
     try:
-        text = p.read_text()
+        text = p.read_text(encoding="utf-8-sig")  # UTF-8, a leading BOM accepted
     except FileNotFoundError:
         raise InputError(f"instance file {path} does not exist") from None
     except (OSError, UnicodeDecodeError) as exc:
@@ -440,7 +481,7 @@ def _write_csv(path: str, gamma, beta, out: dict) -> None:
 
 
 def _fmt(x, digits: int = 6) -> str:
-    return "-" if x is None else f"{x:.{digits}f}"
+    return "-" if x is None else fmt(x, digits)
 
 
 def report(out: dict, xi: Mixture) -> str:
@@ -461,10 +502,11 @@ def report(out: dict, xi: Mixture) -> str:
         lines += [
             f"angles from     = {out['source']}",
             f"depth p         = {out['p']}",
-            f"lambda          = {out['lambda']:.6f}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
-            "gamma           = " + ", ".join(f"{x:.6f}" for x in out["gamma"]) + "   (instance units: source gamma / lambda)",
-            "beta            = " + ", ".join(f"{x:.6f}" for x in out["beta"]),
-            f"predicted <C>   = {_fmt(out['predicted'])}   ({out['predicted_from']})",
+            f"lambda          = {fmt(out['lambda'])}   (xi_instance = lambda^2 xi_source; shape distance {out['shape_distance']:.3f})",
+            "gamma           = " + fmt_list(out["gamma"]) + "   (instance units: source gamma / lambda)",
+            "beta            = " + fmt_list(out["beta"]),
+            f"predicted <C>   = {_fmt(out['predicted'])}   "
+            + (f"({out['predicted_from']})" if out["predicted"] is not None else "(none: see the note below)"),
         ]
         if out["predicted_finite_degree"] is not None:
             lines.append(f"finite degree   = {_fmt(out['predicted_finite_degree'])}   (sparse ensemble of the same q and D)")

@@ -22,6 +22,7 @@ from leadline.kernels.extrapolate import (
     WEIGHT_POWER,
     Extrapolation,
 )
+from leadline.kernels.numtext import fmt
 
 from ._model import EnsembleReport, StudyReport
 from ._references import References
@@ -51,12 +52,12 @@ def _reference_lines(refs: References) -> list[str]:
     out = []
     if refs.ground_state is not None:
         unc = f" +- {refs.ground_state_uncertainty:.2g}" if refs.ground_state_uncertainty else ""
-        out.append(f"- ground state GS = {refs.ground_state:.6f}{unc} ({refs.ground_state_origin}: {refs.ground_state_source})")
+        out.append(f"- ground state GS = {fmt(refs.ground_state)}{unc} ({refs.ground_state_origin}: {refs.ground_state_source})")
     else:
         out.append("- ground state GS: not known")
     if refs.threshold is not None:
         unc = f" +- {refs.threshold_uncertainty:.2g}" if refs.threshold_uncertainty else ""
-        out.append(f"- algorithmic threshold ALG = {refs.threshold:.6f}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
+        out.append(f"- algorithmic threshold ALG = {fmt(refs.threshold)}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
     else:
         out.append("- algorithmic threshold ALG: not known")
     return out
@@ -114,7 +115,7 @@ def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[st
     else:
         out.append("Back-test: too few depths to hold any out; no fit can be weighted.")
     if ex.upper_bound is not None:
-        out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {ex.upper_bound:.6f} "
+        out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {fmt(ex.upper_bound)} "
                    "is flagged unphysical (weight 0).")
     if ex.uncertain_depths:
         out.append(f"{ex.uncertain_depths} depth(s) carry an uncertainty (approximate engine): fits weighted by "
@@ -208,7 +209,7 @@ def _ensemble_markdown(rep: EnsembleReport) -> list[str]:
     align.append("r")
     rows = []
     for r in rep.rows:
-        cells = [str(r.p), f"{r.inverse_depth:.4f}", f"{r.value:.6f}", _fmt(r.gain, "+.6f")]
+        cells = [str(r.p), f"{r.inverse_depth:.4f}", fmt(r.value), "-" if r.gain is None else fmt(r.gain, signed=True)]
         if has_gs:
             cells.append(_fmt(r.ratio_gs, ".4f"))
         if has_alg:

@@ -32,6 +32,7 @@ from leadline.kernels.extrapolate import (
     Extrapolation,
     extrapolate,
 )
+from leadline.kernels.numtext import fmt
 from leadline.kernels.reference import lookup_ground_state, union_bound
 
 from ._references import References, computed_references, ensemble_mixture, finite_or_none, resolve_references
@@ -93,10 +94,14 @@ def load_study(path: str | Path) -> Any:
         from leadline.storage import open_study
     except ImportError:  # pragma: no cover - the store package is part of the tool
         raise InputError("this installation has no study store support (leadline.storage.open_study)") from None
+    from leadline.storage.errors import StoreDamagedError
+
     try:
         return open_study(path)
     except InputError:
         raise
+    except StoreDamagedError as exc:  # its message names the store, the parts and what to do
+        raise InputError(str(exc)) from None
     except Exception as exc:  # any failure to open is a bad path from the user's point of view
         raise InputError(f"cannot read study store {str(path)!r}: {exc}") from None
 
@@ -278,7 +283,7 @@ def build_ensemble_report(
         allowed = shipped.uncertainty + (refs.ground_state_uncertainty or 0.0)
         verdict = "agrees with" if abs(gs - shipped.ground_state) <= allowed else "DIFFERS from"
         notes.append(
-            f"GS ({refs.ground_state_origin}) {verdict} the shipped value {shipped.ground_state:.6f} "
+            f"GS ({refs.ground_state_origin}) {verdict} the shipped value {fmt(shipped.ground_state)} "
             f"+- {shipped.uncertainty:.1g} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
         )
 
@@ -318,7 +323,7 @@ def build_ensemble_report(
             names = sorted({w.family for w in flagged}, key=list(FAMILIES).index)
             notes.append(
                 f"{len(flagged)} back-tested fit(s) ({', '.join(names)}) extrapolate above the upper "
-                f"bound ({extrap.bound_name}) = {extrap.upper_bound:.4f} (up to {top:.4f}): flagged unphysical and "
+                f"bound ({extrap.bound_name}) = {fmt(extrap.upper_bound, 4)} (up to {fmt(top, 4)}): flagged unphysical and "
                 "given weight 0 in the headline"
             )
         if extrap.declined is None and extrap.limit is None:

@@ -7,11 +7,13 @@ module level: the command line must start without it (tests/test_startup.py).
 from __future__ import annotations
 
 import math
+import os
 from pathlib import Path
 
 import numpy as np
 
 from leadline.kernels.extrapolate import FAMILIES, Extrapolation
+from leadline.kernels.numtext import fmt
 from leadline.kernels.sparse import scaled_value
 
 from ._model import StudyReport
@@ -108,7 +110,7 @@ def _draw_extrapolation(ax, ex: Extrapolation, color, label: str | None) -> None
         ax.plot([1.0 / p for p in bt.held_out], bt.actual, "o", mfc="none", mec=color, ms=10, mew=1.0)
     if ex.limit is not None:
         lim = ex.limit
-        text = f"{label}: V_inf ~ {lim.central:.4f} ({lim.low:.4f}..{lim.high:.4f}, estimate)" if label else None
+        text = f"{label}: V_inf ~ {fmt(lim.central, 4)} ({fmt(lim.low, 4)}..{fmt(lim.high, 4)}, estimate)" if label else None
         ax.errorbar([0.0], [lim.central], yerr=[[lim.central - lim.low], [lim.high - lim.central]], fmt="s",
                     color=color, capsize=4, ms=5, label=text)
 
@@ -177,11 +179,25 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
 
     output = Path(output)
     paths = [output, angle_plot_path(output)]
-
-    fig, _ = value_figure(report)
-    fig.savefig(paths[0], dpi=FIGURE_DPI)
-    plt.close(fig)
-    _angle_figure(report, paths[1])
+    # both figures are drawn into temporary files beside their final names and moved into place
+    # only when both are complete: a failed write (full disk, file-size limit) leaves no half file
+    temps = [p.with_name(f".{p.name}.{os.getpid()}.tmp") for p in paths]
+    try:
+        fig, _ = value_figure(report)
+        fig.savefig(temps[0], dpi=FIGURE_DPI, format="png")
+        plt.close(fig)
+        _angle_figure(report, temps[1])
+        for tmp, final in zip(temps, paths):
+            os.replace(tmp, final)
+    except OSError as exc:
+        if exc.errno:
+            failed = OSError(exc.errno, exc.strerror, str(output))
+            failed.add_note("no figure was written")
+            raise failed from None
+        raise
+    finally:
+        for tmp in temps:
+            tmp.unlink(missing_ok=True)
     return paths
 
 
@@ -215,10 +231,10 @@ def value_figure(report: StudyReport):
         refs = rep.references
         if refs.ground_state is not None:
             ax.axhline(refs.ground_state, color=color, ls="--", lw=1.0,
-                       label=f"  GS = {refs.ground_state:.4f} ({refs.ground_state_origin})")
+                       label=f"  GS = {fmt(refs.ground_state, 4)} ({refs.ground_state_origin})")
         if refs.threshold is not None:
             ax.axhline(refs.threshold, color=color, ls=":", lw=1.2,
-                       label=f"  ALG = {refs.threshold:.4f} ({refs.threshold_origin})")
+                       label=f"  ALG = {fmt(refs.threshold, 4)} ({refs.threshold_origin})")
     limits = value_axis_limits(report)
     if limits is not None:
         ax.set_ylim(*limits)
@@ -273,5 +289,5 @@ def _angle_figure(report: StudyReport, path: Path) -> None:
     for ax_ in axes[-1]:
         ax_.set_xlabel("(t - 1/2)/p  (position in the schedule)")
     fig.subplots_adjust(left=0.09, right=0.98, top=1 - 0.35 / (height * n), bottom=0.55 / (height * n), hspace=0.45, wspace=0.2)
-    fig.savefig(path, dpi=FIGURE_DPI)
+    fig.savefig(path, dpi=FIGURE_DPI, format="png")
     plt.close(fig)

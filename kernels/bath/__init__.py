@@ -5,10 +5,11 @@ for any mixture xi, from an equivalent form: one spin coupled to bosonic modes w
 correlations are xi' of the spin's own two-time correlations.  The state (spin x modes) is
 either a dense Fock-space array (small p, the reference) or a matrix product state with
 per-mode Fock cut-offs and a bond cap chi; the modes are the bath's principal modes
-(step-by-step form) or the causal Cholesky modes (one sweep).  :func:`evaluate_bath` runs two
-truncations and reports the larger one's value with |difference| as its error estimate.
+(step-by-step form) or the causal Cholesky modes (one sweep).  :func:`evaluate_bath` tightens
+the truncation until its error estimate meets the tolerance asked for.
 
-Modules (private): ``_dense``, ``_mps`` (the two states), ``_modes`` (bath modes and bases),
+Modules (private): ``_dense``, ``_mps``, ``_parity`` (the states: Fock array, dense-tensor MPS,
+parity block-sparse MPS), ``_modes`` (bath modes and bases),
 ``_engine`` (one run), ``_estimate`` (two runs and the error estimate).  May import: numpy,
 scipy.linalg and the contour layout of :mod:`leadline.kernels.exact`.  Names are imported on
 first use.
@@ -22,11 +23,15 @@ _WHERE = {
     "DenseState": "_dense",
     "BASES": "_engine",
     "BathRun": "_engine",
+    "BathLimitError": "_engine",
     "bath_correlations": "_engine",
     "run_bath": "_engine",
+    "readout_sweep": "_engine",
     "BathEvaluation": "_estimate",
     "evaluate_bath": "_estimate",
-    "larger_truncation": "_estimate",
+    "DEFAULT_TOLERANCE": "_estimate",
+    "DEFAULT_BOND_CAP": "_estimate",
+    "DEFAULT_FOCK_CAP": "_estimate",
     "bath_matrix": "_modes",
     "cholesky_row": "_modes",
     "fock_levels": "_modes",
@@ -34,6 +39,7 @@ _WHERE = {
     "mode_amplitudes": "_modes",
     "principal_factor": "_modes",
     "MPSState": "_mps",
+    "ParityMPS": "_parity",
 }
 
 __all__ = list(_WHERE)

@@ -48,6 +48,25 @@ class DenseState:
         """A one-spin unitary (the mixer)."""
         self.data = np.tensordot(U, self.data, axes=([1], [0]))
 
+    def mode_readout(self) -> tuple[np.ndarray, list]:
+        """(<Z b_k>, populations of mode k's Fock levels) for every mode k."""
+        K = self.data.ndim - 1
+        zb = np.zeros(K, complex)
+        pops = []
+        for k in range(K):
+            d = self.data.shape[k + 1]
+            x = np.moveaxis(self.data, k + 1, 1)
+            if d > 1:
+                lower = np.conj(x[:, :-1]) * x[:, 1:] * np.sqrt(np.arange(1, d)).reshape(1, -1, *([1] * (K - 1)))
+                zb[k] = lower[0].sum() - lower[1].sum()
+            pops.append(np.sum(np.abs(np.moveaxis(x, 1, 0)) ** 2, axis=tuple(range(1, K + 1))))
+        return zb, pops
+
+    def apply_mixer(self, beta: float) -> None:
+        """exp(-i beta X) on the spin."""
+        c, s = np.cos(beta), np.sin(beta)
+        self.apply_spin(np.array([[c, -1j * s], [-1j * s, c]]))
+
     def z_overlap(self, other: "DenseState") -> complex:
         """<self| Z |other>."""
         return complex(np.vdot(self.data[0], other.data[0]) - np.vdot(self.data[1], other.data[1]))

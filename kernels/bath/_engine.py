@@ -35,8 +35,9 @@ from ..exact import check_angles
 from ._dense import DenseState
 from ._modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mode_amplitudes, principal_factor
 from ._mps import MPSState
+from ._parity import ParityMPS
 
-__all__ = ["BathRun", "bath_correlations", "run_bath", "BASES"]
+__all__ = ["BathLimitError", "BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
 
 BASES = ("cholesky", "principal")
 
@@ -49,7 +50,7 @@ class BathRun:
     correlations: (p+1, p+1) spin correlations W(t, s), times 1..p+1
     fock        : Fock levels per mode (of the last step)
     chi         : bond cap (None: no cap)
-    max_bond    : largest bond dimension reached
+    largest_bond: largest bond dimension reached (JSON "largest_bond"; the cap is "bond_cap")
     discarded   : total discarded squared norm summed over every truncation of every state
     steps       : sweeps run (1 for the Cholesky sweep)
     step_change : max|W_m - W_{m-1}| of the last step (principal basis)
@@ -62,13 +63,17 @@ class BathRun:
     correlations: np.ndarray = field(repr=False)
     fock: list
     chi: int | None
-    max_bond: int
+    largest_bond: int
     discarded: float
     steps: int
     step_change: float
     wall_time: float
     eigenvalues: list | None = None
     reverse: bool = False
+    readout: str = "carried"
+    carried: list = field(default_factory=list)
+    top_population: float = 0.0
+    cutoff: float = 0.0
 
     def to_json(self) -> dict:
         return {
@@ -79,10 +84,14 @@ class BathRun:
             "engine": self.engine,
             "fock_levels": [int(d) for d in self.fock],
             "bond_cap": self.chi,
-            "max_bond": int(self.max_bond),
+            "cutoff": float(self.cutoff),
+            "largest_bond": int(self.largest_bond),
             "discarded_weight": float(self.discarded),
             "steps": int(self.steps),
             "step_change": float(self.step_change),
+            "readout": self.readout,
+            "carried_times": [int(s) + 1 for s in self.carried],
+            "top_level_population": float(self.top_population),
             "wall_time_s": float(self.wall_time),
         }
 
@@ -93,12 +102,19 @@ def _order_label(basis: str, reverse: bool) -> str:
     return "smallest-first" if reverse else "largest-first"
 
 
-def _make_state(engine: str, dims, chi, cutoff):
+ENGINES = ("mps", "dense-mps", "dense")
+
+
+def _make_state(engine: str, dims, chi, cutoff, parity=False):
+    """engine "mps": block-sparse by parity where the caller supports it (parity=True), else the
+    dense-tensor MPS; "dense-mps": always the dense-tensor MPS; "dense": the Fock-space array."""
     if engine == "dense":
         return DenseState.initial(list(dims))
-    if engine == "mps":
+    if engine == "mps" and parity:
+        return ParityMPS.initial(list(dims), chi=chi, cutoff=cutoff)
+    if engine in ("mps", "dense-mps"):
         return MPSState.initial(list(dims), chi=chi, cutoff=cutoff)
-    raise ValueError(f"unknown engine {engine!r}: use 'dense' or 'mps'")
+    raise ValueError(f"unknown engine {engine!r}: use one of {', '.join(ENGINES)}")
 
 
 def _mixer(b: float) -> np.ndarray:
@@ -145,6 +161,121 @@ def bath_correlations(mixture, g, b, *, C=None, dims=None, engine="mps", chi=Non
     return W, [psi, *chis]
 
 
+def levels_needed(pops, x, d: int, d_max: int, tol: float) -> int:
+    """Fock levels (d..d_max) a mode needs so that after the displacement exp(-i x b - i x* b^+)
+    its top two levels hold at most ``tol`` of the norm.
+
+    pops are the mode's level populations now; the populations after the displacement are
+    estimated level by level (|<m|U|n>|^2 pops[n], interference ignored), with U on d_max levels.
+    """
+    if x == 0 or d >= d_max:
+        return d
+    e, V = _quadrature(d_max)
+    U = (V * np.exp(-1j * abs(x) * e)[None, :]) @ V.T
+    after = (np.abs(U[:, : len(pops)]) ** 2) @ np.asarray(pops, float)
+    tail = np.cumsum(after[::-1])[::-1]  # tail[m] = population of levels >= m
+    for dn in range(d, d_max + 1):
+        if tail[max(dn - 2, 0)] <= tol:
+            return dn
+    return d_max
+
+
+_QUAD: dict = {}
+
+
+def _quadrature(d: int):
+    """Eigenvectors of b + b^+ on d levels (cached): the displacement generator up to a phase."""
+    if d not in _QUAD:
+        a = np.diag(np.sqrt(np.arange(1, d, dtype=float)), 1)
+        _QUAD[d] = np.linalg.eigh(a + a.T)
+    return _QUAD[d]
+
+
+def _back_substitute(W, t, zb, g, C, known) -> None:
+    """Row t of W from a_k = <psi_t| Z b_k |psi_t>, k < t (the modes' memory of the spin).
+
+    Heisenberg picture of exp(-i g_s Z B_s): b_k -> b_k - i g_s conj(C[s, k]) Z_s, and b_k
+    annihilates the vacuum, so a_k = -i sum_{s=k}^{t-1} g_s conj(C[s, k]) W(t, s): triangular
+    with diagonal g_k C[k, k].  Entries in ``known`` (s -> value, from carried states) are used
+    as given and their equation is skipped.
+    """
+    for k in range(t - 1, -1, -1):
+        if k in known:
+            W[t, k] = known[k]
+        else:
+            acc = 1j * zb[k] - np.dot(g[k + 1:t] * np.conj(C[k + 1:t, k]), W[t, k + 1:t])
+            W[t, k] = acc / (g[k] * C[k, k].real)
+        W[k, t] = np.conj(W[t, k])
+
+
+class BathLimitError(ValueError):
+    """The engine cannot reach what was asked within the limits it was given (one-line message)."""
+
+
+def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8, fock_max=None,
+                  fock_tol=None, reverse=True, pivot_tol=1e-3, deadline=None, progress=None):
+    """Spin correlations W (p+1 x p+1) of the causal Cholesky sweep, read from ONE state.
+
+    Before layer t, W(t, s) for s < t follows by back substitution (:func:`_back_substitute`)
+    from <psi_t| Z b_k |psi_t>, one left-to-right sweep of the state.  Where the pivot
+    |g_s C[s, s]| is below ``pivot_tol`` times the largest possible one (max|g| sqrt(xi'(1))),
+    dividing by it would amplify truncation errors: for those s alone chi_s = U(s -> now) Z psi_s
+    is carried and W(t, s) = <psi_t| Z |chi_s> is used instead.
+    Fock levels start at ``fock`` per mode; with ``fock_tol`` set (MPS), before each layer every
+    mode it drives gets the levels :func:`levels_needed` asks for (up to ``fock_max``).
+    deadline: time.perf_counter() value after which the sweep stops with BathLimitError;
+    progress(t, p, largest_bond) is called after every layer.
+    Returns (W, info) with info: states (psi and carried), fock levels, carried times, top-level
+    population (largest seen), pivots.
+    """
+    p = len(g)
+    dims = [int(fock)] * p
+    fock_max = int(fock) if fock_max is None else int(fock_max)
+    C = np.zeros((p, p), complex)
+    site = (lambda k: p - k) if reverse else (lambda k: k + 1)  # tensor index of mode k
+    chain = (lambda xs: list(xs)[::-1]) if reverse else list
+    psi = _make_state(engine, chain(dims), chi, cutoff, parity=True)
+    carried: dict[int, object] = {}
+    W = np.eye(p + 1, dtype=complex)
+    scale = float(np.max(np.abs(g))) * float(np.sqrt(max(np.real(mixture.dxi(1.0)), 0.0)))
+    top_max = 0.0
+    pivots = np.zeros(p)
+    for t in range(p + 1):
+        if t > 0:
+            zb_sites, pop_sites = psi.mode_readout()
+            zb = np.array([zb_sites[site(k) - 1] for k in range(p)])
+            pops = [pop_sites[site(k) - 1] for k in range(p)]
+            top_max = max(top_max, max(float(pops[k][-1]) for k in range(t)))
+            known = {s: psi.z_overlap(ch) for s, ch in carried.items()}
+            _back_substitute(W, t, zb, g, C, known)
+        if t == p:
+            break
+        row = mixture.dxi(W[t, : t + 1])
+        row[t] = np.real(row[t])
+        cholesky_row(C, t, row)
+        if fock_tol is not None and engine != "dense":
+            for k in range(t + 1):
+                need = levels_needed(pops[k] if k < t else np.ones(1), g[t] * C[t, k], dims[k], fock_max, fock_tol)
+                if need > dims[k]:
+                    dims[k] = need
+                    for st in [psi, *carried.values()]:
+                        st.pad_site(site(k), need)
+        pivots[t] = abs(g[t] * C[t, t].real)
+        if pivots[t] <= pivot_tol * scale:
+            carried[t] = psi.copy().apply_z()
+        ops = chain(layer_unitaries(g[t], C[t], dims))
+        for st in [psi, *carried.values()]:
+            st.apply_layer(ops)
+            st.apply_mixer(b[t])
+        if progress is not None:
+            progress(t + 1, p, max(psi.bond_dimensions(), default=1))
+        if deadline is not None and time.perf_counter() > deadline:
+            raise BathLimitError(f"time limit reached at layer {t + 1} of {p}")
+    info = {"states": [psi, *carried.values()], "fock": dims, "carried": sorted(carried), "top": top_max,
+            "pivots": pivots}
+    return W, info
+
+
 def _value(mixture, g, W) -> float:
     p = len(g)
     return float(2.0 * np.sum(np.asarray(g) * np.imag(mixture.xi(W[p, :p]))))
@@ -165,6 +296,12 @@ def run_bath(
     step_tol: float = 1e-12,
     guess: np.ndarray | None = None,
     reverse: bool | None = None,
+    readout: str = "modes",
+    fock_max: int | None = None,
+    fock_tol: float | None = None,
+    pivot_tol: float = 1e-3,
+    deadline: float | None = None,
+    progress=None,
 ) -> BathRun:
     """V_p(gamma, beta) from the bath form at one truncation.
 
@@ -177,6 +314,14 @@ def run_bath(
     reverse : MPS chain order.  Default: Cholesky modes newest first (spin, mode p, ..., mode 1:
             the spin sits beside the modes it is creating, measured to need about half the
             bond of the creation order); principal modes largest first (spin, largest, ...).
+    readout : Cholesky sweep only. "modes" (default): one state, W read from the modes'
+            memory (:func:`readout_sweep`, O(p^2 chi^3 d)); "carried": psi and every chi_s
+            carried through every layer (O(p^3 chi^3 d), the reference).
+    engine : "mps" (the parity block-sparse MPS in the readout; dense tensors elsewhere),
+            "dense-mps" (dense tensors always: the reference) or "dense" (the Fock-space array)
+    fock_max, fock_tol : readout only: a mode whose top Fock level holds more than fock_tol
+            gets two more levels, up to fock_max (default: fixed ``fock`` levels).
+    pivot_tol : readout only: relative size of g_s C[s, s] below which chi_s is carried.
     """
     t0 = time.perf_counter()
     g, b = check_angles(gamma, beta)
@@ -187,6 +332,17 @@ def run_bath(
         raise ValueError("fock must be >= 1")
     if reverse is None:
         reverse = basis == "cholesky"
+    if readout not in ("modes", "carried"):
+        raise ValueError(f"unknown readout {readout!r}: use 'modes' or 'carried'")
+    if basis == "cholesky" and readout == "modes":
+        W, info = readout_sweep(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, fock_max=fock_max,
+                                fock_tol=fock_tol, reverse=reverse, pivot_tol=pivot_tol, deadline=deadline,
+                                progress=progress)
+        states = info["states"]
+        return BathRun(_value(mixture, g, W), p, basis, engine, W, list(info["fock"]), chi,
+                       max(max(s.bond_dimensions(), default=1) for s in states),
+                       sum(s.discarded for s in states), 1, 0.0, time.perf_counter() - t0, reverse=reverse,
+                       readout="modes", carried=info["carried"], top_population=info["top"], cutoff=cutoff)
     if basis == "cholesky":
         W, states = bath_correlations(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, reverse=reverse)
         run = BathRun(_value(mixture, g, W), p, basis, engine, W, [fock] * p, chi,
@@ -201,7 +357,7 @@ def run_bath(
     steps = 0
     change = np.inf
     max_steps = p if max_steps is None else max_steps
-    max_bond = 1
+    largest_bond = 1
     discarded = 0.0
     while steps < max_steps and change > step_tol:
         WB = bath_matrix(mixture, W[:p, :p])
@@ -212,7 +368,7 @@ def run_bath(
         change = float(np.max(np.abs(Wn - W)))
         W = Wn
         steps += 1
-        max_bond = max(max(s.bond_dimensions(), default=1) for s in states)
+        largest_bond = max(max(s.bond_dimensions(), default=1) for s in states)
         discarded = sum(s.discarded for s in states)
-    return BathRun(_value(mixture, g, W), p, basis, engine, W, dims, chi, max_bond, discarded, steps,
+    return BathRun(_value(mixture, g, W), p, basis, engine, W, dims, chi, largest_bond, discarded, steps,
                    change, time.perf_counter() - t0, [float(x) for x in lam], reverse)

@@ -1,5 +1,8 @@
 """A small matrix product state over (spin, mode_1, ..., mode_K) for the bath sweep.
 
+Dense tensors: the reference for the parity block-sparse MPS of ``_parity`` (which the
+one-state readout uses by default), and the state of the carried-state and principal forms.
+
 Site 0 is the spin (dimension 2), site k the k-th bosonic mode cut to d_k Fock levels.
 Tensors have shape (left bond, physical, right bond).  The state is kept in mixed canonical
 form with its orthogonality centre on the spin, so the one-spin mixer costs nothing and each
@@ -23,7 +26,13 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-__all__ = ["MPSState"]
+__all__ = ["MPSState", "mixer_matrix"]
+
+
+def mixer_matrix(beta: float) -> np.ndarray:
+    """exp(-i beta X) in the Z basis."""
+    c, s = np.cos(beta), np.sin(beta)
+    return np.array([[c, -1j * s], [-1j * s, c]])
 
 
 def _svd(M: np.ndarray):
@@ -63,6 +72,10 @@ class MPSState:
 
     def apply_spin(self, U: np.ndarray) -> None:
         self.tensors[0] = np.einsum("ab,lbr->lar", U, self.tensors[0])
+
+    def apply_mixer(self, beta: float) -> None:
+        """exp(-i beta X) on the spin."""
+        self.apply_spin(mixer_matrix(beta))
 
     def bond_dimensions(self) -> list[int]:
         return [t.shape[2] for t in self.tensors[:-1]]
@@ -122,6 +135,40 @@ class MPSState:
             ts[j] = Vh[:keep].reshape(keep, d, Dr)
             ts[j - 1] = np.tensordot(ts[j - 1], U[:, :keep] * S[None, :], axes=([2], [0]))
         ts[0] /= np.linalg.norm(ts[0])
+
+    def mode_readout(self) -> tuple[np.ndarray, list]:
+        """(<Z b>, Fock-level populations) of every mode site 1..K, in one left-to-right sweep.
+
+        With the centre on the spin and every site to its right right-orthonormal, the part of
+        the chain right of site j contracts to the identity, so <Z_0 O_j> needs only the left
+        transfer matrices: E_Z (Z on the spin) and E_1 (no operator) carried site by site.
+        """
+        ts = self.tensors
+        Z = np.array([1.0, -1.0])
+        A = ts[0]
+        E = np.stack([np.einsum("lar,las->rs", np.conj(A) * Z[None, :, None], A),
+                      np.einsum("lar,las->rs", np.conj(A), A)])
+        zb = np.zeros(len(ts) - 1, complex)
+        pops = []
+        for j in range(1, len(ts)):
+            A = ts[j]
+            d = A.shape[1]
+            # M[e, n, m] = sum_{l,l',r} E[e,l,l'] conj(A[l,n,r]) A[l',m,r]  (reduced matrix of the site)
+            EA = np.einsum("elm,mnr->elnr", E, A, optimize=True)
+            M = np.einsum("lkr,elnr->ekn", np.conj(A), EA, optimize=True)
+            if d > 1:
+                zb[j - 1] = np.sum(np.diagonal(M[0], 1) * np.sqrt(np.arange(1, d)))
+            pops.append(np.real(np.diagonal(M[1])).copy())
+            E = np.einsum("lnr,elns->ers", np.conj(A), EA, optimize=True)
+        return zb, pops
+
+    def pad_site(self, j: int, d: int) -> None:
+        """Give site j (a mode) d >= its Fock levels; the new levels start empty (canonical form kept)."""
+        A = self.tensors[j]
+        if d > A.shape[1]:
+            B = np.zeros((A.shape[0], d, A.shape[2]), complex)
+            B[:, : A.shape[1], :] = A
+            self.tensors[j] = B
 
     def z_overlap(self, other: "MPSState") -> complex:
         """<self| Z |other>."""

@@ -39,6 +39,7 @@ final gradient is the real part.
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 from typing import Callable
@@ -231,8 +232,22 @@ def evaluate(
     fixed_point_check : run one extra forward pass and report max|G_{p+1} - G_p|
     contour : "growing" (default) or "full" (the baseline; module docstring)
     """
-    t0 = time.perf_counter()
     g, b = check_angles(gamma, beta)
+    k, normal = mixture.normal_form()
+    if k == 0:
+        return _evaluate(mixture, g, b, plan, run_pass, gradient, fixed_point_check, contour)
+    # exact rescaling (Mixture.normal_form): V(xi; g) = 2^k V(xi / 4^k; 2^k g), multiplications by powers of 2
+    ev = _evaluate(normal, np.ldexp(g, k), b, plan, run_pass, gradient, fixed_point_check, contour)
+    ev.value = math.ldexp(ev.value, k)
+    if ev.gradient is not None:
+        ev.gradient = {"gamma": np.ldexp(ev.gradient["gamma"], 2 * k), "beta": np.ldexp(ev.gradient["beta"], k)}
+    ev.residuals["imag_value"] = math.ldexp(ev.residuals["imag_value"], k)
+    ev.mixture, ev.gamma = mixture, g
+    return ev
+
+
+def _evaluate(mixture, g, b, plan, run_pass, gradient, fixed_point_check, contour) -> Evaluation:
+    t0 = time.perf_counter()
     p = g.size
     if contour not in CONTOURS:
         raise ValueError(f"unknown contour {contour!r}; choose one of {CONTOURS}")

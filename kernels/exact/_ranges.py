@@ -83,7 +83,8 @@ class RangeError(ValueError):
 def exponent_bound(mixture: Mixture, gamma) -> float:
     """E = 2 xi'(1) (sum_t |gamma_t|)^2, the bound on every partial exponent of every pass."""
     g = np.abs(np.asarray(gamma, dtype=float).reshape(-1))
-    return 2.0 * float(mixture.dxi(1.0)) * float(g.sum()) ** 2
+    s = float(g.sum())
+    return 2.0 * float(mixture.dxi(1.0)) * s * s  # inf, never OverflowError, for huge angles
 
 
 def pass_exponent_bound(M) -> float:
@@ -105,6 +106,9 @@ def p1_log_value(mixture: Mixture, gamma: float, beta: float) -> float:
     not vanish dominates once e is small, and the others are kept as long as they
     are representable relative to it.
     """
+    k, normal = mixture.normal_form()
+    if k:  # exact scaling (Mixture.normal_form): |V_1(xi; g)| = 2^k |V_1(xi / 4^k; 2^k g)|
+        return k * math.log(2.0) + p1_log_value(normal, math.ldexp(float(gamma), k), beta)
     g = float(gamma)
     C, S = math.cos(2 * beta), math.sin(2 * beta)
     if g == 0.0 or S == 0.0:

@@ -48,7 +48,8 @@ from typing import Callable
 import numpy as np
 
 from ._statevector import apply_phase, mix_qubit, walsh_hadamard
-from ..mixture import Mixture
+from ..mixture import WEIGHT_MAX, WEIGHT_MIN, Mixture, MixtureError
+from ..numtext import parse_float, parse_int
 
 __all__ = [
     "FORMAT",
@@ -152,12 +153,13 @@ class Instance:
 
 # --------------------------------------------------------------------------- parsing
 def _weight(value, where: str) -> float:
+    """A weight: ASCII decimal text (plain-text files) or a JSON number (never a JSON string)."""
     if isinstance(value, bool):
         raise InstanceError(f"{where}: weight {value!r} is not a number")
     try:
-        w = float(value)
-    except (TypeError, ValueError):
-        raise InstanceError(f"{where}: weight {value!r} is not a number") from None
+        w = parse_float(value) if isinstance(value, str) else float(value)
+    except (TypeError, ValueError, OverflowError):
+        raise InstanceError(f"{where}: weight {value!r} is not a number (ASCII decimal notation such as 1.5 or -2e-3)") from None
     if not math.isfinite(w):
         raise InstanceError(f"{where}: weight {value!r} is not finite")
     return w
@@ -167,11 +169,10 @@ def _index(value, where: str) -> int:
     if isinstance(value, bool):
         raise InstanceError(f"{where}: spin index {value!r} is not a whole number")
     if isinstance(value, str):
-        text = value.strip()
-        if text.lstrip("+-").isdigit():
-            i = int(text)
-        else:
-            raise InstanceError(f"{where}: spin index {value!r} is not a whole number")
+        try:
+            i = parse_int(value)
+        except ValueError:
+            raise InstanceError(f"{where}: spin index {value!r} is not a whole number (ASCII digits)") from None
     elif isinstance(value, (int, np.integer)):
         i = int(value)
     else:
@@ -249,7 +250,10 @@ def parse_instance_json(data, source: str = "instance") -> Instance:
             where = f"{source}, term {k}"
             if not isinstance(term, dict) or set(term) != {"weight", "spins"} or not isinstance(term["spins"], list):
                 raise InstanceError(f"{where}: each term is {{\"weight\": w, \"spins\": [i, ...]}}")
-            yield where, _weight(term["weight"], where), [_index(i, where) for i in term["spins"]]
+            weight, spins = term["weight"], term["spins"]
+            if isinstance(weight, str) or any(isinstance(i, str) for i in spins):
+                raise InstanceError(f"{where}: weights and spin indices are JSON numbers, not strings (got {json.dumps(term)})")
+            yield where, _weight(weight, where), [_index(i, where) for i in spins]
 
     return _build(entries(), n, source)
 
@@ -268,10 +272,19 @@ def parse_instance(text: str, source: str = "instance") -> Instance:
 # --------------------------------------------------------------------------- mixture
 def empirical_mixture(instance: Instance) -> Mixture:
     """xi(x) = sum_q w_q x^q with w_q = (1/n) sum over terms of order q of weight^2."""
-    weights: dict = {}
+    groups: dict = {}
     for S, w in instance.terms.items():
-        weights[len(S)] = weights.get(len(S), 0.0) + w * w
-    return Mixture.from_weights({q: v / instance.n for q, v in weights.items()})
+        groups.setdefault(len(S), []).append(abs(w))
+    weights = {}
+    for q, ws in groups.items():
+        # sum of squares relative to the largest, so that weights near 1e200 do not overflow w^2
+        top = max(ws)
+        log_w = 2.0 * math.log(top) + math.log(math.fsum((w / top) ** 2 for w in ws)) - math.log(instance.n)
+        if log_w > 709.0 or log_w < -745.0:
+            raise MixtureError(f"weight for q = {q} is about 1e{log_w / math.log(10.0):+.0f}, outside "
+                               f"{WEIGHT_MIN:g}..{WEIGHT_MAX:g}")
+        weights[q] = math.exp(log_w)
+    return Mixture.from_weights(weights)
 
 
 def shape_distance(a: Mixture, b: Mixture) -> float:

@@ -20,6 +20,8 @@ _WHERE = {
     "extrapolate_in_steps": "_functional",
     "ground_state": "_functional",
     "reference_energies": "_functional",
+    "ReferenceRangeError": "_functional",
+    "check_physical": "_functional",
     "step_functional": "_functional",
     "METHOD_VERSION": "_functional",
     "COARSE": "_functional",

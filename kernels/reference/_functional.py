@@ -63,6 +63,8 @@ __all__ = [
     "extrapolate_in_steps",
     "ground_state",
     "reference_energies",
+    "ReferenceRangeError",
+    "check_physical",
     "step_functional",
     "METHOD_VERSION",
 ]
@@ -215,6 +217,15 @@ class _NormalizedMixture:
         return 0.5 * (lo + hi)
 
 
+def _log_expm1(x: np.ndarray) -> np.ndarray:
+    """log(exp(x) - 1) for x >= 0 without overflow (x + log1p(-exp(-x)) for large x); -inf at 0."""
+    x = np.asarray(x, dtype=float)
+    big = x > 30.0
+    with np.errstate(divide="ignore", over="ignore"):
+        small = np.log(np.expm1(np.where(big, 0.0, x)))
+    return np.where(big, x + np.log1p(-np.exp(-np.where(big, x, 30.0))), small)
+
+
 class _Recursion:
     """P(d, m) for one normalized mixture: d (k,) variance increments (sum = budget), m (k,) values."""
 
@@ -243,8 +254,7 @@ class _Recursion:
             ymax = self.disc.grid_range * F.sigma
             y = ymax * self.leg_t
             e = F.eps(y)
-            with np.errstate(divide="ignore"):
-                log_core = np.log(np.expm1(m * e)) + m * y + self.leg_logw + math.log(ymax)
+            log_core = _log_expm1(m * e) + m * y + self.leg_logw + math.log(ymax)
             # phi_s(y - x) + phi_s(y + x), in logs, for x, y >= 0
             d2 = (y[None, :] - x[:, None]) ** 2 / (2.0 * s * s)
             log_pair = -d2 - math.log(s) - _LOG_SQRT_2PI + np.log1p(np.exp(-2.0 * x[:, None] * y[None, :] / (s * s)))
@@ -702,8 +712,87 @@ def reference_energies(
     max_steps: int = 10,
     discretization: Discretization | None = None,
 ) -> References:
-    """GS and ALG of one mixture, with uncertainties and the overlap-gap verdict."""
+    """GS and ALG of one mixture, with uncertainties and the overlap-gap verdict.
+
+    Both scale exactly with the mixture, GS(c xi) = sqrt(c) GS(xi) and the same for ALG
+    (the cost of c xi is sqrt(c) H), so a mixture with xi(1) outside [2^-6, 2^6] is computed as
+    its normal form xi / 4^k (:meth:`Mixture.normal_form`) and the energies are multiplied by
+    2^k; the tolerances then apply to the normal form.  Raises :class:`ReferenceRangeError`
+    when the result is not physical (a value outside (0, sqrt(2 ln 2 xi(1))], a non-finite
+    uncertainty): the functional's numerics failed for this mixture and nothing is returned.
+    """
     mix = _as_mixture(mixture)
+    k, normal = mix.normal_form()
+    if k:
+        refs = reference_energies(normal, gs_tol=gs_tol, alg_tol=alg_tol, max_steps=max_steps,
+                                  discretization=discretization)
+        return _rescaled(refs, mix, k)
+    refs = _reference_energies(mix, gs_tol, alg_tol, max_steps, discretization)
+    check_physical(refs, mix)
+    return refs
+
+
+class ReferenceRangeError(ValueError):
+    """The variational functional gave a value that cannot be a reference energy (numerics failed)."""
+
+
+def check_physical(refs: "References", mix: Mixture) -> None:
+    """Refuse (ReferenceRangeError) what cannot be GS or ALG: 0 < ALG <= GS <= sqrt(2 ln 2 xi(1))."""
+    top = math.sqrt(2.0 * math.log(2.0) * float(mix.xi(1.0)))
+    for name, value, unc, seq in (
+        ("ground state", refs.ground_state, refs.ground_state_uncertainty, refs.ground_state_k_sequence),
+        ("algorithmic threshold", refs.algorithmic_threshold, refs.algorithmic_threshold_uncertainty,
+         refs.algorithmic_threshold_k_sequence),
+    ):
+        bad = [v for v in [value, *seq] if not (math.isfinite(v) and 0.0 < v <= top * (1.0 + 1e-9) + abs(unc))]
+        if bad or not (math.isfinite(unc) and unc < value):
+            shown = bad[0] if bad else value
+            raise ReferenceRangeError(
+                f"the variational functional fails for xi = {mix.spec()}: its {name} came out as {shown:.6g} "
+                f"+- {unc:.2g}, outside (0, {top:.6g}] (0 < ALG <= GS <= sqrt(2 ln 2 xi(1))); "
+                "no reference energies for this mixture (large powers q make the step functional's "
+                "exponentials leave the double range)"
+            )
+
+
+def _rescaled(refs: "References", mix: Mixture, k: int) -> "References":
+    """References of xi / 4^k -> those of xi: energies times 2^k, the functional's gamma values / 2^k."""
+    def up(x):
+        return math.ldexp(float(x), k)
+
+    def details(d: dict) -> dict:
+        d = dict(d)
+        for key in ("value", "uncertainty", "best_bound", "numerical_error"):
+            if key in d:
+                d[key] = up(d[key])
+        if "k_sequence" in d:
+            d["k_sequence"] = [up(v) for v in d["k_sequence"]]
+        if "gamma_values" in d:
+            d["gamma_values"] = [math.ldexp(float(v), -k) for v in d["gamma_values"]]
+        return d
+
+    info = dict(refs.details)
+    for key in ("ground_state", "algorithmic_threshold"):
+        if key in info:
+            info[key] = details(info[key])
+    info["scaling"] = {"computed_for": refs.xi, "factor": up(1.0),
+                       "law": "GS(c xi) = sqrt(c) GS(xi); tolerances apply to the mixture computed for"}
+    return References(
+        xi=mix.spec(),
+        ground_state=up(refs.ground_state),
+        ground_state_uncertainty=up(refs.ground_state_uncertainty),
+        algorithmic_threshold=up(refs.algorithmic_threshold),
+        algorithmic_threshold_uncertainty=up(refs.algorithmic_threshold_uncertainty),
+        ground_state_k_sequence=[up(v) for v in refs.ground_state_k_sequence],
+        algorithmic_threshold_k_sequence=[up(v) for v in refs.algorithmic_threshold_k_sequence],
+        overlap_gap=refs.overlap_gap,
+        wall_time=refs.wall_time,
+        details=info,
+        method_version=refs.method_version,
+    )
+
+
+def _reference_energies(mix: Mixture, gs_tol, alg_tol, max_steps, discretization) -> "References":
     t0 = time.perf_counter()
     gs = ground_state(mix, gs_tol, max_steps=max_steps, discretization=discretization)
     alg = algorithmic_threshold(mix, alg_tol, max_steps=max_steps, discretization=discretization)

