@@ -35,8 +35,6 @@ __all__ = [
     "optimize_sparse",
     "evaluate_bath",
     "reference_energies",
-    "sweep",
-    "resume",
     "transfer",
     "open_study",
     "study_dataframe",
@@ -551,66 +549,6 @@ def transfer(instance: str | Path, *, angles: str | Path | None = None, store: s
 
 
 # ----------------------------------------------------------------- studies
-@_blas_capped
-def sweep(spec: str | Path) -> "StudyReader":
-    """Run the depth study of a spec file (TOML, docs/cli.md), as ``leadline sweep SPEC --quiet``.
-
-    Creates the store named in the spec (refused if it exists: continue one with :func:`resume`).
-
-    Parameters
-    ----------
-    spec : path
-        The study spec; its relative paths are taken relative to its folder.
-
-    Returns
-    -------
-    StudyReader
-        The store, opened for reading (as :func:`open_study`).
-    """
-    from .commands.sweep import _store_errors
-    from .spec import check_new_store, load_spec
-    from .sweep import create_store
-
-    spec_obj = load_spec(spec)
-    check_new_store(spec_obj.store)
-    _store_errors(_run_study)(lambda: create_store(spec_obj), spec_obj, spec_obj.compute_settings(quiet=True))
-    return open_study(spec_obj.store)
-
-
-@_blas_capped
-def resume(store: str | Path) -> "StudyReader":
-    """Continue a stopped study exactly where it was, as ``leadline resume STORE --quiet``.
-
-    Returns
-    -------
-    StudyReader
-        The store, opened for reading (as :func:`open_study`).
-    """
-    from leadline.storage import StudyStore, check_study
-    from leadline.storage.errors import StoreError
-
-    from .commands.sweep import _pin_kernel, _store_errors
-    from .spec import spec_from_json
-
-    try:
-        attrs = check_study(store)
-    except StoreError as exc:
-        raise InputError(str(exc)) from None
-    spec_obj = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
-    _pin_kernel(attrs.get("kernel"))
-    _store_errors(_run_study)(lambda: StudyStore.open(store, command="resume"), spec_obj,
-                              spec_obj.compute_settings(quiet=True))
-    return open_study(store)
-
-
-def _run_study(open_store, spec, settings) -> None:
-    from . import compute
-    from .sweep import run_study
-
-    with compute.open_compute(settings) as executor, open_store() as writer:
-        run_study(writer, spec, executor)
-
-
 def open_study(path: str | Path) -> "StudyReader":
     """Open a study store (written by ``leadline sweep``) for reading; never takes the lock.
 

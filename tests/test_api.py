@@ -102,7 +102,7 @@ def test_values_outside_the_double_range_raise_as_on_the_cli():
 
 def test_the_api_names_are_documented():
     for name in ("evaluate", "optimize", "evaluate_sparse", "optimize_sparse", "reference_energies",
-                 "open_study", "study_dataframe", "evaluate_bath", "sweep", "resume", "transfer"):
+                 "open_study", "study_dataframe", "evaluate_bath", "transfer"):
         fn = getattr(leadline, name)
         assert name in dir(leadline)
         doc = fn.__doc__ or ""
@@ -166,21 +166,6 @@ def test_a_finished_study_is_a_dataframe(small_study):
         for (_, row), depth in zip(rows.iterrows(), study.depths(label)):
             assert row["value"] == depth["value"] and list(row["gamma"]) == list(depth["gamma"])
     assert round(frame.loc[(frame.ensemble == "cut3") & (frame.p == 1), "value"].item(), 4) == 0.6925  # FGG 2014
-
-
-def test_sweep_and_resume_from_python_match_the_command_line(small_study, tmp_path):
-    """leadline.sweep writes the same depths as `leadline sweep` (Table 1 of Farhi et al. (2022)
-    for SK); resume of a finished study changes nothing; an existing store is refused."""
-    (tmp_path / "frame.toml").write_text(SPEC.replace('store = "frame.zarr"', f'store = "{tmp_path / "api.zarr"}"'))
-    study = leadline.sweep(tmp_path / "frame.toml")
-    cli = leadline.open_study(small_study)
-    for label in ("sk", "cut3"):
-        assert [d["value"] for d in study.depths(label)] == [d["value"] for d in cli.depths(label)]
-    assert [round(d["value"], 4) for d in study.depths("sk")] == [0.3033, 0.4075]
-    again = leadline.resume(tmp_path / "api.zarr")
-    assert [d["value"] for d in again.depths("sk")] == [d["value"] for d in study.depths("sk")]
-    with pytest.raises(leadline.InputError, match="already exists"):
-        leadline.sweep(tmp_path / "frame.toml")
 
 
 def test_transfer_from_python_is_the_cli_record(tmp_path):
