@@ -14,13 +14,13 @@ $(STAMP): pyproject.toml
 
 install: $(STAMP)
 
-## Run the whole test suite (what CI runs).
+## Run the whole test suite (what CI runs), one pytest worker per core.
 test: $(STAMP)
-	$(BIN)/python -m pytest -q tests
+	$(BIN)/python -m pytest -q -n auto tests
 
 ## Quick loop while editing: skip the slower checks.
 test-fast: $(STAMP)
-	$(BIN)/python -m pytest -q -m "not slow" tests
+	$(BIN)/python -m pytest -q -n auto -m "not slow" tests
 
 ## The demo study end to end: sweep on a local Dask cluster, table, plots.
 demo: $(STAMP)

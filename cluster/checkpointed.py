@@ -50,7 +50,10 @@ class CheckpointStats:
     """What the checkpointed run_pass did in this process."""
 
     passes_requested: int = 0
+    #: passes found in the store that an earlier session computed (a resumed depth)
     passes_reused: int = 0
+    #: passes asked for again after this session computed them (the optimizer revisiting a point)
+    passes_repeated: int = 0
     passes_computed: int = 0
     chunks_computed: int = 0
     chunks_reused: int = 0
@@ -86,6 +89,7 @@ class CheckpointedPasses:
         self.progress = progress
         self.stats = CheckpointStats()
         self._rate: tuple[float, float] | None = None  # (paths, seconds) of the largest pass computed here
+        self._computed_here: set[str] = set()  # keys of the passes this session computed
 
     def __call__(self, inp: PassInput, plan: ChunkPlan) -> np.ndarray:
         return self.run_pass(inp, plan)
@@ -101,7 +105,10 @@ class CheckpointedPasses:
         try:
             cached = self.depth.cached_pass(key, inp.backward)
             if cached is not None:
-                self.stats.passes_reused += 1
+                if key in self._computed_here:
+                    self.stats.passes_repeated += 1
+                else:
+                    self.stats.passes_reused += 1
                 return cached
             expected = self.expected_seconds(plan)
             if self.policy.flush_before(self.depth.pending_seconds, expected):
@@ -112,6 +119,7 @@ class CheckpointedPasses:
             else:
                 total = self._compute_whole(inp, plan, key)
             self.stats.passes_computed += 1
+            self._computed_here.add(key)
             crash_point("pass-computed")
             if self.policy.flush_after(self.depth.pending_seconds):
                 self.flush()

@@ -33,6 +33,7 @@ from typing import Callable, Mapping
 import numpy as np
 
 from leadline.kernels.exact import PassInput, pass_partials, ChunkPlan
+from leadline.storage.faults import crash_point
 
 from .errors import ChunkFailure, ExecutorError
 
@@ -57,6 +58,7 @@ def partials_and_worker(inp: PassInput, plan: ChunkPlan, chunks) -> tuple[list[n
         where = get_worker().address
     except (ImportError, ValueError):
         where = None
+    crash_point("chunk-task")  # fault injection (no-op unless armed in this worker)
     return pass_partials(inp, plan, chunks), where
 
 

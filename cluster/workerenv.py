@@ -9,14 +9,30 @@ the environment of the worker process before it starts: LocalCluster passes
 them to each nanny (``env=``), batch jobs export them in the job script, and
 ``dask worker`` processes started by hand get them from distributed's
 ``distributed.nanny.pre-spawn-environ`` default (or from the user's shell).
+
+The process that runs a command or a Python API call computes too (passes
+too small to ship, the bath engine, the optimizer's linear algebra).  There
+:func:`in_process_blas` caps BLAS at ``LEADLINE_BLAS_THREADS`` threads
+(default 1; ``auto`` leaves the libraries as they start): numpy's OpenBLAS
+otherwise starts one thread per core in every process, and on a machine that
+is already busy those threads wait on each other (measured in
+benchmarks/bench_blas.py, docs/performance.md).  Libraries
+already loaded are capped through threadpoolctl; the thread variables are
+set for the duration so a BLAS first loaded inside the call starts capped.
 """
 
 from __future__ import annotations
 
+import contextlib
 import ctypes
 import os
+from typing import Iterator
 
-__all__ = ["SINGLE_THREAD_ENV", "blas_threads", "worker_report"]
+__all__ = ["SINGLE_THREAD_ENV", "BLAS_THREADS_ENV", "blas_threads", "in_process_blas", "in_process_threads",
+           "worker_report"]
+
+#: threads of BLAS in the process that runs a command or an API call: a count >= 1, or "auto"
+BLAS_THREADS_ENV = "LEADLINE_BLAS_THREADS"
 
 #: environment of every worker process the tool starts
 SINGLE_THREAD_ENV = {
@@ -71,3 +87,49 @@ def worker_report() -> dict:
         "blas_threads": blas_threads(),
         **{k: os.environ.get(k) for k in SINGLE_THREAD_ENV},
     }
+
+
+def in_process_threads() -> int | None:
+    """BLAS threads for the calling process: ``$LEADLINE_BLAS_THREADS`` (default 1), None for "auto".
+
+    Raises ValueError (one line naming the variable) for anything else.
+    """
+    raw = os.environ.get(BLAS_THREADS_ENV, "").strip().lower()
+    if raw == "":
+        return 1
+    if raw == "auto":
+        return None
+    try:
+        n = int(raw)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise ValueError(f"{BLAS_THREADS_ENV}={os.environ[BLAS_THREADS_ENV]!r}: need a whole number >= 1 or 'auto'")
+    return n
+
+
+@contextlib.contextmanager
+def in_process_blas(threads: int | None = None) -> Iterator[int | None]:
+    """Cap BLAS/OpenMP threads of this process while the block runs; restore them after.
+
+    ``threads`` defaults to :func:`in_process_threads`; None (``auto``) changes nothing.
+    Nested uses are fine (the inner one restores what the outer one set).
+    """
+    if threads is None:
+        threads = in_process_threads()
+    if threads is None:
+        yield None
+        return
+    from threadpoolctl import threadpool_limits
+
+    saved = {k: os.environ.get(k) for k in SINGLE_THREAD_ENV}
+    os.environ.update({k: str(threads) for k in SINGLE_THREAD_ENV})
+    try:
+        with threadpool_limits(limits=threads):
+            yield threads
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v

@@ -35,10 +35,31 @@ __all__ = [
     "optimize_sparse",
     "evaluate_bath",
     "reference_energies",
+    "transfer",
     "open_study",
     "study_dataframe",
     "Ladder",
+    "Transfer",
 ]
+
+
+def _blas_capped(func):
+    """Run an API function with BLAS capped as on the command line (``LEADLINE_BLAS_THREADS``,
+    default 1; see cluster/workerenv.py); the process's own setting is restored afterwards."""
+    import functools
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        from leadline.cluster.workerenv import in_process_blas, in_process_threads
+
+        try:
+            threads = in_process_threads()
+        except ValueError as exc:
+            raise InputError(str(exc)) from None
+        with in_process_blas(threads):
+            return func(*args, **kwargs)
+
+    return wrapper
 
 
 # ----------------------------------------------------------------- helpers
@@ -162,6 +183,7 @@ class Ladder:
 
 
 # ----------------------------------------------------------------- dense
+@_blas_capped
 def evaluate(
     xi,
     gamma: Sequence[float],
@@ -287,6 +309,7 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 
 
+@_blas_capped
 def optimize(
     xi,
     depth: int,
@@ -371,6 +394,7 @@ def _sparse_problem(q, degree) -> tuple[int, int]:
     return check_sparse(q, degree, None)
 
 
+@_blas_capped
 def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, tolerance: float = 1e-6,
                   bond_cap: int = 256, fock_cap: int = 40, time_limit: float | None = None) -> "BathEvaluation":
     """V_p(gamma, beta) from the bosonic-bath engine (any depth), to an error estimate <= tolerance.
@@ -409,6 +433,7 @@ def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, toleranc
     return run_checked(mix, g, b, tolerance=tolerance, bond=bond_cap, fock=fock_cap, time_limit=time_limit)
 
 
+@_blas_capped
 def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float], *,
                     gradient: bool = False) -> "SparseEvaluation":
     """Satisfied fraction nu_p(D; gamma, beta) of Max-q-XORSAT on D-regular hypergraphs of large girth.
@@ -446,6 +471,7 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     return kernel(q, D, g, b, gradient=gradient)
 
 
+@_blas_capped
 def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | None = None, seed: int = 0,
                     gradient_tol: float = 1e-7, max_iterations: int = 500) -> Ladder:
     """Optimal angles and nu_p* of Max-q-XORSAT on D-regular large-girth hypergraphs.
@@ -488,6 +514,7 @@ def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol,
 
 
 # ----------------------------------------------------------------- references
+@_blas_capped
 def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_steps: int = 10,
                        cache: bool = True, cache_dir: str | Path | None = None) -> "References":
     """Ground-state energy density GS and algorithmic threshold ALG of a mixture.
@@ -534,6 +561,46 @@ def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_s
             with contextlib.suppress(OSError):
                 reference_cache.store(directory, key, refs)
     return refs
+
+
+# ----------------------------------------------------------------- transfer
+class Transfer(dict):
+    """What ``leadline transfer --json`` prints, as a dict (``["ratio"]``, ``["gamma"]``, ``["notes"]``, ...)."""
+
+    def to_json(self) -> dict:
+        return dict(self)
+
+
+@_blas_capped
+def transfer(instance: str | Path, *, angles: str | Path | None = None, store: str | Path | None = None,
+             ensemble: str | None = None, depth: int | None = None, max_spins: int | None = None,
+             shape_tolerance: float | None = None, seed: int = 0, output: str | Path | None = None) -> Transfer:
+    """Angles for a concrete instance file: rescaled ensemble angles, predicted <C>, exact check at small n.
+
+    As ``leadline transfer`` (docs/transfer.md): give ``angles`` (an angle file), ``store`` (a
+    study; ``ensemble`` and ``depth`` pick the optimum) or ``depth`` alone (optimize for the
+    instance's own mixture).  ``output`` writes the instance-unit angles as CSV.
+
+    Returns
+    -------
+    Transfer
+        A dict: ``xi``, ``gamma``, ``beta`` (instance units), ``predicted``, ``expectation``,
+        ``best``, ``ratio``, ``notes``, ...; ``.to_json()`` is what ``--json`` prints.
+    """
+    from .commands import transfer as command
+
+    def text(x):
+        return None if x is None else str(x)
+
+    options = {}
+    if max_spins is not None:
+        options["max_spins"] = int(max_spins)
+    if shape_tolerance is not None:
+        options["shape_tolerance"] = float(shape_tolerance)
+    return Transfer(command.transfer_instance(
+        text(instance), angles=text(angles), store=text(store), ensemble=ensemble, depth=depth, seed=seed,
+        output=text(output), quiet=True, **options,
+    ))
 
 
 # ----------------------------------------------------------------- studies

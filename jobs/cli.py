@@ -17,7 +17,7 @@ from typing import Optional
 
 import typer
 
-from .errors import InputError
+from .errors import InputError, Stopped
 from .renames import renamed_option
 
 app = typer.Typer(
@@ -120,11 +120,30 @@ def main(argv: list[str] | None = None) -> None:
     """Console entry point: user errors become one stderr line and exit code 2."""
     command = typer.main.get_command(app)
     strict_numbers(command)
+    interrupted, restore = _note_interrupts()
     try:
-        rv = command.main(args=argv, prog_name="leadline", standalone_mode=False)
+        _main(command, argv, interrupted)
+    finally:
+        restore()
+
+
+def _main(command, argv, interrupted: list[int]) -> None:
+    from leadline.cluster.workerenv import in_process_blas, in_process_threads
+
+    try:
+        try:
+            threads = in_process_threads()
+        except ValueError as exc:
+            raise InputError(str(exc)) from None
+        with in_process_blas(threads):
+            rv = command.main(args=argv, prog_name="leadline", standalone_mode=False)
     except InputError as exc:
         print(f"leadline: error: {exc}", file=sys.stderr)
         sys.exit(2)
+    except Stopped as exc:
+        # the command said what it kept and how to go on
+        print(f"leadline: {exc}", file=sys.stderr)
+        sys.exit(exc.exit_code)
     except KeyboardInterrupt:
         print("leadline: interrupted", file=sys.stderr)
         sys.exit(130)
@@ -162,7 +181,35 @@ def main(argv: list[str] | None = None) -> None:
             sys.exit(1)
         raise
     if isinstance(rv, int) and rv:
+        if rv == 130 and interrupted:
+            # typer turns Ctrl-C into a silent exit code 130
+            print("leadline: interrupted", file=sys.stderr)
         sys.exit(rv)
+
+
+def _note_interrupts():
+    """Record SIGINT arrivals (then raise KeyboardInterrupt as Python's default handler does).
+
+    typer returns Ctrl-C as a bare exit code, so this is how ``main`` knows that a 130 was an
+    interrupt.  Left alone where SIGINT is ignored or handled by someone else, or off the main
+    thread.  Returns (the arrivals, a function that puts the previous handler back).
+    """
+    import signal
+    import threading
+
+    seen: list[int] = []
+    if threading.current_thread() is not threading.main_thread():
+        return seen, lambda: None
+    previous = signal.getsignal(signal.SIGINT)
+    if previous is not signal.default_int_handler:
+        return seen, lambda: None
+
+    def handler(signum, frame):
+        seen.append(signum)
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGINT, handler)
+    return seen, lambda: signal.signal(signal.SIGINT, previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -26,7 +26,24 @@ from leadline.storage.faults import crash_point
 
 from .spec import EnsembleSpec, StudySpec
 
-__all__ = ["run_study", "depth_line"]
+__all__ = ["run_study", "depth_line", "create_store"]
+
+
+def create_store(spec: StudySpec, command: str = "sweep") -> StudyStore:
+    """The new store of ``spec`` (its path checked free beforehand), holding the writer lock."""
+    from leadline import __version__
+    from leadline.kernels.exact import resolve_implementation
+
+    return StudyStore.create(
+        spec.store,
+        name=spec.name,
+        spec=spec.to_json(),
+        spec_toml=spec.source_text,
+        ensembles=[e.description() for e in spec.ensembles],
+        writer=f"leadline {__version__}",
+        command=command,
+        extra={"kernel": resolve_implementation()},
+    )
 
 
 def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
@@ -191,14 +208,17 @@ def depth_line(line: dict) -> str:
     r, t = line["result"], line["timings"]
     s = t["this_session"]
     if r.get("method") == "bath":
+        reused = f", {t['bath_evaluations_reused']} reused" if t.get("bath_evaluations_reused") else ""
         return (
             f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)} +- {r['error_estimate']:.1e} (bath)  "
-            f"gradient norm {r['gradient_norm']:.1e} (noise {r['gradient_noise']:.1e})  {r['evaluations']} evaluations, "
-            f"{t['bath_evaluations_reused']} reused, {r['evaluation_s']:.3f} s each, "
-            f"{t['wall_time_s']:.2f} s"
+            f"gradient norm {r['gradient_norm']:.1e} (noise {r['gradient_noise']:.1e})  {r['evaluations']} evaluations"
+            f"{reused}, {r['evaluation_s']:.3f} s each, {t['wall_time_s']:.2f} s"
         )
-    passes = (f"{s['passes_computed']} passes computed, {s['passes_reused']} reused, "
-              if s["passes_requested"] else "")
+    passes = ""
+    if s["passes_requested"]:
+        # reuse is only mentioned when there was some (a resumed or replayed depth)
+        reused = f", {s['passes_reused']} reused" if s["passes_reused"] else ""
+        passes = f"{s['passes_computed']} passes computed{reused}, "
     return (
         f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  gradient norm {r['gradient_norm']:.1e}  "
         f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"

@@ -174,6 +174,10 @@ class Mixture:
         """Canonical text form, the inverse of :func:`parse_mixture`."""
         return ",".join(f"{q}:{_weight_text(w)}" for q, w in self.terms)
 
+    def rounded_spec(self, digits: int = 6) -> str:
+        """The q:w form with weights to ``digits`` significant digits, for reading (``spec()`` is exact)."""
+        return ",".join(f"{q}:{w:.{digits}g}" for q, w in self.terms)
+
     def label(self) -> str:
         """Human-readable form such as ``0.5 x^2 + x^3``."""
         parts = []

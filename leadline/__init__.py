@@ -9,6 +9,7 @@ Python API (documented with examples in docs/api.md)::
     leadline.optimize_sparse(3, 4, 2)
     leadline.evaluate_bath("2:0.5", [0.5], [0.392699])        # bosonic-bath engine, error estimate <= 1e-6
     leadline.reference_energies("2:0.5")                    # ground state and algorithmic threshold
+    leadline.transfer("graph.txt", depth=2)                 # angles for one instance, checked exactly
     study = leadline.open_study("runs/study.zarr")          # a study store, read-only
     leadline.study_dataframe(study)                         # finished depths as a pandas DataFrame
 
@@ -31,6 +32,7 @@ _API = (
     "optimize_sparse",
     "evaluate_bath",
     "reference_energies",
+    "transfer",
     "open_study",
     "study_dataframe",
 )

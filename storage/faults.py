@@ -27,6 +27,7 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   depth-arrays-written    a depth's angle arrays are on disk, its done flag is not
   depth-done              a depth's done flag is on disk
   depth-started           a depth is marked running, its optimizer not yet started
+  chunk-task              a worker has started a task of chunks (cluster/mapreduce.py), not computed it yet
   sparse-step-finished    a chunked sparse evaluation recorded a finished step (storage/sparse_scratch.py)
   sparse-band-task        a row-band task of a chunked sparse transform starts (cluster/sparse_vectors.py)
   bath-evaluations-cached a batch of bath evaluations of a depth is on disk (jobs/bath.py)
@@ -40,7 +41,7 @@ import os
 import signal
 import time
 
-__all__ = ["crash_point", "witness", "ENV_VAR", "AUDIT_ENV", "HOLD_ENV", "HOLD_FILE_ENV"]
+__all__ = ["crash_point", "witness", "rearm", "ENV_VAR", "AUDIT_ENV", "HOLD_ENV", "HOLD_FILE_ENV"]
 
 ENV_VAR = "LEADLINE_CRASH_AT"
 #: if set, every chunk recorded as finished appends "<depth group>/<pass key> <chunk>" to this file
@@ -87,6 +88,23 @@ def crash_point(name: str) -> None:
             if signum < 0:
                 raise OSError(-signum, os.strerror(-signum))
             os.kill(os.getpid(), signum)
+
+
+def rearm(**env: str | None) -> int:
+    """Set (or with None remove) these variables in this process and read the points afresh.
+
+    For tests that arm a process that is already running (a Dask worker, through
+    ``client.run``); returns the pid.
+    """
+    global _targets
+    for key, value in env.items():
+        if value is None:
+            os.environ.pop(key, None)
+        else:
+            os.environ[key] = value
+    _targets = None
+    _counts.clear()
+    return os.getpid()
 
 
 def _hold(name: str, count: int) -> None:

@@ -5,13 +5,19 @@ are a function of the test alone, no random seed per run), examples printed on f
 per-example deadline (a loaded CI machine must not turn a slow example into a failure).
 Choose another profile with ``HYPOTHESIS_PROFILE=explore`` (random, more examples) when hunting
 for new counterexamples by hand; its seed is printed with any failure.
+
+``make test`` runs one pytest worker per core (pytest-xdist), so each test process keeps BLAS
+at one thread, as leadline's own commands do (never more threads than cores).
 """
 
 from __future__ import annotations
 
 import os
 
-from hypothesis import HealthCheck, settings
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")  # before numpy loads here, and for every subprocess a test starts
+
+from hypothesis import HealthCheck, settings  # noqa: E402
 
 settings.register_profile(
     "ci",

@@ -22,7 +22,7 @@ def sk_ladder_markdown() -> str:
     depths = [{"p": int(r["p"]), "value": float(r["value"]), "gradient_norm": float(r["gradient_norm"])}
               for r in csv.DictReader(lines)]
     study = InMemoryStudy("sk p = 1..16", [({"label": "sk", "kind": "dense", "xi": "2:0.5"}, depths)])
-    return render_markdown(build_report(study, reference_cache_dir="no-cache"))
+    return render_markdown(build_report(study))
 
 
 def summary(text: str) -> str:

@@ -102,7 +102,7 @@ def test_values_outside_the_double_range_raise_as_on_the_cli():
 
 def test_the_api_names_are_documented():
     for name in ("evaluate", "optimize", "evaluate_sparse", "optimize_sparse", "reference_energies",
-                 "open_study", "study_dataframe"):
+                 "open_study", "study_dataframe", "evaluate_bath", "transfer"):
         fn = getattr(leadline, name)
         assert name in dir(leadline)
         doc = fn.__doc__ or ""
@@ -166,3 +166,72 @@ def test_a_finished_study_is_a_dataframe(small_study):
         for (_, row), depth in zip(rows.iterrows(), study.depths(label)):
             assert row["value"] == depth["value"] and list(row["gamma"]) == list(depth["gamma"])
     assert round(frame.loc[(frame.ensemble == "cut3") & (frame.p == 1), "value"].item(), 4) == 0.6925  # FGG 2014
+
+
+def test_transfer_from_python_is_the_cli_record(tmp_path):
+    # MaxCut on the 8-cycle at p = 1: every edge of a ring of girth 8 > 3 sees a tree, so <C> per
+    # edge is 3/4 at the optimum (Farhi, Goldstone, Gutmann, arXiv:1411.4028 (2014), the ring of disagrees)
+    ring = tmp_path / "ring8.txt"
+    ring.write_text("".join(f"-1 {i} {(i + 1) % 8}\n" for i in range(8)))
+    got = leadline.transfer(ring, depth=1)
+    cli = _cli_json("transfer", str(ring), "--depth", "1")
+    assert _strip(got.to_json()) == _strip(cli)
+    assert got["best"] == 8.0
+    with pytest.raises(leadline.InputError):
+        leadline.transfer(tmp_path / "missing.txt", depth=1)
+
+
+def test_evaluate_bath_takes_a_mixture_string():
+    # SK p = 1 optimum 1/sqrt(4e) (Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022))
+    bath = leadline.evaluate_bath("2:0.5", [0.5], [math.pi / 8])
+    assert abs(bath.value - 1 / math.sqrt(4 * math.e)) < 1e-6
+
+
+# ------------------------------------------------------------------ BLAS threads
+def _blas_threads() -> list[int]:
+    from threadpoolctl import threadpool_info
+
+    return [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+
+
+def test_api_and_command_line_compute_with_blas_capped(monkeypatch):
+    """threadpoolctl reports one BLAS thread inside a computation (the default), the number asked
+    for with LEADLINE_BLAS_THREADS, and the process's own setting again afterwards."""
+    import contextlib
+    import io
+
+    import numpy  # noqa: F401  (numpy's BLAS is loaded)
+    from threadpoolctl import threadpool_limits
+
+    from leadline.jobs.cli import main
+    from leadline.kernels import exact
+
+    real = exact.evaluate
+    seen: list[list[int]] = []
+
+    def spy(*args, **kwargs):
+        seen.append(_blas_threads())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(exact, "evaluate", spy)
+    from leadline.jobs.commands import evaluate as evaluate_command
+
+    monkeypatch.setattr(evaluate_command, "evaluate_kernel", spy)
+    monkeypatch.delenv("LEADLINE_BLAS_THREADS", raising=False)
+    with threadpool_limits(limits=2, user_api="blas"):
+        before = _blas_threads()
+        leadline.evaluate("2:0.5", [0.5], [0.3])
+        assert seen[-1] and set(seen[-1]) == {1}
+        assert _blas_threads() == before  # restored
+        with contextlib.redirect_stdout(io.StringIO()):
+            main(["evaluate", "--xi", "2:0.5", "--gamma", "0.5", "--beta", "0.3"])
+        assert set(seen[-1]) == {1} and _blas_threads() == before
+        monkeypatch.setenv("LEADLINE_BLAS_THREADS", "3")
+        leadline.evaluate("2:0.5", [0.5], [0.3])
+        assert set(seen[-1]) == {3}
+        monkeypatch.setenv("LEADLINE_BLAS_THREADS", "auto")
+        leadline.evaluate("2:0.5", [0.5], [0.3])
+        assert seen[-1] == before  # left as it was
+    monkeypatch.setenv("LEADLINE_BLAS_THREADS", "many")
+    with pytest.raises(leadline.InputError, match="LEADLINE_BLAS_THREADS"):
+        leadline.evaluate("2:0.5", [0.5], [0.3])

@@ -251,31 +251,47 @@ def test_external_scheduler_through_cli(process_cluster, reference_p5):
 
 
 # --------------------------------------------------------------------------- lost work
-def test_worker_killed_mid_pass_same_result(process_cluster):
-    inp, plan = _reference_pass(p=7, n_high=10)  # backward pass, 1024 chunks, ~1 s of work
+def test_worker_killed_mid_pass_same_result(process_cluster, tmp_path):
+    """A worker killed (SIGKILL) while it holds a task of the pass: the pass still ends with the
+    in-process numbers.  The victim is armed to hold at its first task (LEADLINE_HOLD_AT), so
+    the kill happens mid-pass by an event, never by timing."""
+    import threading
+
+    from leadline.storage.faults import HOLD_ENV, HOLD_FILE_ENV, rearm
+
+    inp, plan = _reference_pass(p=7, n_high=10)  # backward pass, 1024 chunks
     with InProcessExecutor() as ex:
         ref = ex.run_pass(inp, plan)
     ex = connect_scheduler(process_cluster.address, ComputeSettings(scheduler=process_cluster.address).resolved())
+    hold = tmp_path / "hold"
     with ex:
         process_cluster.wait_for_workers(ex.client, 2)
-        pid_of = ex.client.run(os.getpid)  # worker address -> pid
-        proc_of = {p.pid: p for p in process_cluster.workers}
+        victim_addr = sorted(ex.client.nthreads())[0]
+        victim_pid = ex.client.run(rearm, workers=[victim_addr],
+                                   **{HOLD_ENV: "chunk-task:1", HOLD_FILE_ENV: str(hold)})[victim_addr]
+        victim = {p.pid: p for p in process_cluster.workers}[victim_pid]
         seen: dict[int, int] = {}
         killed = {}
 
+        def kill_when_held():
+            while not hold.exists():  # the victim is inside a task: an event, not a delay
+                threading.Event().wait(0.01)
+            killed.update(chunks_done=len(seen), busy=len(ex.client.processing().get(victim_addr, ())),
+                          held=json.loads(hold.read_text()))
+            os.kill(victim.pid, signal.SIGKILL)  # a real kill, no clean shutdown
+            hold.unlink()
+
+        killer = threading.Thread(target=kill_when_held, daemon=True)
+        killer.start()
+
         def on_chunk(k, partial):
             seen[k] = seen.get(k, 0) + 1
-            if killed:
-                return
-            busy = [addr for addr, keys in ex.client.processing().items() if keys]
-            assert busy, "no worker busy: the pass is too short to kill mid-pass"
-            victim = proc_of[pid_of[busy[0]]]
-            os.kill(victim.pid, signal.SIGKILL)  # a real kill, no clean shutdown
-            killed.update(proc=victim, chunks_done=len(seen), busy=len(ex.client.processing()[busy[0]]))
 
         got = ex.run_pass(inp, plan, on_chunk=on_chunk)
+        killer.join(timeout=60)
         assert killed, "the kill never happened"
-        assert killed["proc"].wait(timeout=10) == -signal.SIGKILL
+        assert killed["held"]["pid"] == victim.pid and killed["held"]["point"] == "chunk-task"
+        assert victim.wait(timeout=10) == -signal.SIGKILL
         assert killed["chunks_done"] < plan.n_chunks and killed["busy"] > 0
         assert len(ex.client.nthreads()) == 1  # the scheduler saw the worker go
     np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12)

@@ -169,6 +169,15 @@ def test_sk_optimized_values_table1(sk_ladder, p):
     assert r.gradient_norm < 1e-5
 
 
+def test_converged_means_within_the_tolerance(sk_ladder):
+    """"converged" is said only when the largest gradient component is within gtol (1e-7 by
+    default); a run stopped by its iteration limit away from a stationary point is not."""
+    for r in sk_ladder.values():
+        assert r.converged == (r.gradient_norm <= 1e-7)
+    stopped = optimize_depth(parse_mixture("2:0.5"), 2, restarts=0, maxiter=1)
+    assert stopped.gradient_norm > 1e-7 and not stopped.converged
+
+
 @pytest.mark.slow
 def test_sk_optimized_values_table1_deeper(sk_ladder):
     # same table, p = 6..11, warm-started from p = 5 with no extra restarts

@@ -71,14 +71,6 @@ def _write_study(folder):
     return folder / "study.zarr"
 
 
-@pytest.fixture(scope="module", autouse=True)
-def empty_reference_cache(tmp_path_factory):
-    """Keep a user's cache of computed references out of these tests (they would take precedence)."""
-    with pytest.MonkeyPatch.context() as mp:
-        mp.setenv("LEADLINE_CACHE_DIR", str(tmp_path_factory.mktemp("no-reference-cache")))
-        yield
-
-
 @pytest.fixture(scope="module")
 def store_path(tmp_path_factory):
     return _write_study(tmp_path_factory.mktemp("report"))
@@ -397,47 +389,89 @@ def test_rendering_of_the_published_sk_series_held_in_memory():
 
 
 # ------------------------------------------- computed GS / ALG (kernels.reference)
+def _copy_with_references(store_path, folder, settings):
+    """A copy of the study store with GS/ALG computed by kernels.reference recorded in it
+    (what `leadline reference --store` does), at the given (coarse, quick) settings."""
+    import shutil
+
+    from leadline.kernels.reference import COARSE, reference_energies
+    from leadline.storage import StudyStore
+
+    copy = folder / "with-references.zarr"
+    shutil.copytree(store_path, copy)
+    with StudyStore.open(copy, command="reference") as writer:
+        for label in open_study(copy).ensembles():
+            xi = open_study(copy).ensemble(label)["xi"]
+            writer.save_references(label, reference_energies(xi, discretization=COARSE, **settings).to_json())
+    return copy
+
+
 @pytest.mark.slow
-def test_computed_references_fill_the_ratio_and_threshold_columns(study, tmp_path, capsys):
-    """GS and ALG computed by kernels.reference and cached are used, and bound every depth.
+def test_computed_references_fill_the_ratio_and_threshold_columns(store_path, tmp_path):
+    """GS and ALG computed by kernels.reference and recorded in the store are used, and bound
+    every depth; where the shipped ground state is more precise (SK), it wins and a note says so.
 
     Coarse settings keep this quick; their uncertainties are reported with the values.
     """
-    from leadline.jobs import reference_cache
-    from leadline.kernels.reference import COARSE, reference_energies
-
-    settings = dict(gs_tol=1e-2, alg_tol=1e-2, max_steps=3)
-    for label in study.ensembles():
-        xi = parse_mixture(study.ensemble(label)["xi"]).spec()
-        refs = reference_energies(xi, discretization=COARSE, **settings)
-        reference_cache.store(tmp_path, reference_cache.cache_key(xi, **settings), refs)
-
-    report = build_report(study, reference_cache_dir=tmp_path)
+    copy = _copy_with_references(store_path, tmp_path, dict(gs_tol=1e-2, alg_tol=1e-2, max_steps=3))
+    report = build_report(open_study(copy))
     for ens in report.ensembles:
         refs = ens.references
-        assert refs.ground_state_origin == "computed" and refs.threshold_origin == "computed"
+        assert refs.threshold_origin == "computed"
         # ALG <= GS: the threshold is an infimum over a larger class of gamma
         # (El Alaoui, Montanari, Sellke, Ann. Probab. 49 (2021))
-        assert refs.threshold <= refs.ground_state + refs.ground_state_uncertainty
+        assert refs.threshold <= refs.ground_state + (refs.ground_state_uncertainty or 0.0) + 2e-3
         for row in ens.rows:
             # a QAOA energy is an average of H, never above its maximum
             assert row.value < refs.ground_state - refs.ground_state_uncertainty
             assert row.ratio_alg == row.value / refs.threshold
             assert row.exceeds_alg is False
-    sk = report.ensembles[0].references
-    # Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002): 0.763166; coarse steps stay within 2e-3
-    assert sk.ground_state == pytest.approx(SK_PARISI, abs=2e-3)
-    # the shipped value is still shown as a cross-check next to the computed one
-    assert any("shipped value 0.763166" in n for n in report.ensembles[0].notes)
+    sk, mix = (e.references for e in report.ensembles)
+    # Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002): 0.763166 +- 1e-6 beats a coarse computation
+    assert sk.ground_state == SK_PARISI and sk.ground_state_origin == "shipped table"
+    assert any("the store also holds a computed GS" in n and "shipped value is more precise" in n
+               for n in report.ensembles[0].notes)
+    # no shipped value for the mixture: the computed one is used, and labelled so
+    assert mix.ground_state_origin == "computed"
     text = render_markdown(report)
     assert "V_p*/ALG" in text and "> ALG" in text and "computed" in text
     rows = list(csv.DictReader(io.StringIO(render_csv(report))))
     assert {r["exceeds_alg"] for r in rows if r["record"] == "depth"} == {"false"}
 
-    # the command line value still overrides the computed one, and is labelled as given
-    over = build_report(study, ground_states={"sk": 0.77}, reference_cache_dir=tmp_path).ensembles[0]
+    # the command line value still overrides the others, and is labelled as given
+    over = build_report(open_study(copy), ground_states={"sk": 0.77}).ensembles[0]
     assert over.references.ground_state == 0.77 and over.references.ground_state_origin == "command line"
     assert over.references.threshold_origin == "computed"
+
+
+def test_table_does_not_change_with_the_reference_cache(store_path, tmp_path, monkeypatch):
+    """The same store gives the same table whether the user-wide cache of `leadline reference`
+    is empty or holds a quick, less precise SK result (3 steps): the table never reads it."""
+    import contextlib
+
+    from leadline.jobs import reference_cache
+    from leadline.kernels.reference import COARSE, reference_energies
+
+    def table() -> str:
+        out = io.StringIO()
+        with contextlib.redirect_stdout(out):
+            main(["table", str(store_path), "--format", "json"])
+        return out.getvalue()
+
+    monkeypatch.setenv("LEADLINE_CACHE_DIR", str(tmp_path / "empty"))
+    empty = table()
+    cache = tmp_path / "filled"
+    settings = dict(gs_tol=1e-2, alg_tol=1e-2, max_steps=3)
+    for xi in ("2:0.5", "2:0.5,4:0.25"):
+        refs = reference_energies(xi, discretization=COARSE, **settings)
+        reference_cache.store(cache, reference_cache.cache_key(parse_mixture(xi).spec(), **settings), refs)
+    monkeypatch.setenv("LEADLINE_CACHE_DIR", str(cache))
+    assert table() == empty
+    sk = json.loads(empty)["ensembles"][0]
+    # the shipped Parisi value (Crisanti, Rizzo, Phys. Rev. E 65, 046137 (2002)), named as such
+    assert sk["references"]["ground_state"] == SK_PARISI
+    assert sk["references"]["ground_state_origin"] == "shipped table"
+    assert "Crisanti" in sk["references"]["ground_state_source"]
 
 
 # ------------------------------------------------------------------- demo

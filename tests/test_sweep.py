@@ -570,9 +570,46 @@ def test_sigterm_writes_the_waiting_passes_and_releases_the_lock(reference, tmp_
     # p = 1 runs 22 passes (11 evaluations, each 1 forward + 1 adjoint pass): the 30th is in p = 2
     r = run(["sweep", str(spec)], env=env_with(LEADLINE_CRASH_AT="pass-computed:30:TERM"))
     assert r.returncode == 128 + signal.SIGTERM, (r.returncode, r.stderr)
+    assert r.stderr.startswith(f"leadline: stopped by SIGTERM; saved in {store}:"), r.stderr
     assert not (store / LOCK_NAME).exists()
     batches = [e for e in zarr.open_group(str(store / "ensembles/sk/p002/passes"), mode="r").arrays()]
     assert len(batches) == 1 and len(batches[0][1].attrs["entries"]) == 8
+    r = run(["resume", str(store)])
+    assert r.returncode == 0, r.stderr
+    assert "8 reused" in [line for line in r.stdout.splitlines() if "p = 2" in line][0]
+    _compare_with_reference(reference, store)
+
+
+def test_ctrl_c_says_what_is_kept_and_how_to_resume(reference, tmp_path):
+    """A real SIGINT to a sweep held mid-depth (LEADLINE_HOLD_AT, an event, not a delay): exit 130,
+    stderr says which depths are done, how many passes of the stopped one are kept, and the resume
+    command; status calls the depth stopped (no writer), and resume ends with the uninterrupted numbers."""
+    spec = write_spec(tmp_path, "int.zarr", interval_s=30)
+    store = tmp_path / "int.zarr"
+    hold = tmp_path / "held"
+    # p = 1 runs 22 passes (11 evaluations, each 1 forward + 1 adjoint pass): the 30th is in p = 2
+    proc = subprocess.Popen([*LEADLINE, "sweep", str(spec)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            env=env_with(LEADLINE_HOLD_AT="pass-computed:30", LEADLINE_HOLD_FILE=hold))
+    held = wait_for_file(hold, proc)
+    assert held["pid"] == proc.pid
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, (proc.returncode, err)
+    assert "Traceback" not in err
+    assert err.splitlines() == [
+        f"leadline: interrupted; saved in {store}:",
+        "  sk: p = 1 done; p = 2 stopped with 8 passes saved",
+        f"continue with: leadline resume {store}",
+    ], err
+    # a fresh, uninterrupted depth says nothing about reuse (passes the optimizer asks for twice
+    # in one session are repeats, not work taken from a checkpoint)
+    assert "reused" not in reference["stdout"]
+    (p1,) = [line for line in out.splitlines() if "p = 1" in line]
+    assert "reused" not in p1 and "22 passes computed" in p1
+    assert not (store / LOCK_NAME).exists()
+    status = run(["status", str(store)])
+    assert "writer: none" in status.stdout
+    assert any(line.strip().startswith("stopped  p = 2: 8 passes saved") for line in status.stdout.splitlines()), status.stdout
     r = run(["resume", str(store)])
     assert r.returncode == 0, r.stderr
     assert "8 reused" in [line for line in r.stdout.splitlines() if "p = 2" in line][0]

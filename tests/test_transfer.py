@@ -581,3 +581,46 @@ def test_the_command_module_imports_no_heavy_library():
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "[]"
+
+
+def test_weighted_low_degree_graph_is_matched_to_the_sparse_ensemble(tmp_path):
+    """A weighted MaxCut on the Petersen graph (3-regular, girth 5; Holton & Sheehan, The
+    Petersen Graph, CUP 1993) is not the dense ensemble: transfer says which ensemble fits it
+    (degree 3, girth 5) and checks the sparse ensemble's own angles exactly; their <C> is the
+    scipy expm_multiply statevector's at those angles."""
+    weights = [1.0 if k % 3 else 2.0 for k in range(len(PETERSEN))]  # two sizes of weight
+    path = tmp_path / "weighted-petersen.txt"
+    path.write_text("".join(f"{w / 2}\n{-w / 2} {u} {v}\n" for w, (u, v) in zip(weights, PETERSEN)))
+    out = json.loads(run_cli("transfer", path, "--depth", "1", "--json").stdout)
+    assert out["sparse"] is None and out["degrees"] == {"q": 2, "min": 3, "max": 3, "mean": 3.0}
+    assert out["girth"] == 5
+    (note,) = [n for n in out["notes"] if "sparse ensemble (q = 2, D = 3)" in n]
+    assert "girth 5" in note and "large-degree limit" in note
+    alt = out["sparse_angles"]
+    assert alt["q"] == 2 and alt["degree"] == 3 and alt["p"] == 1
+    inst = parse_instance(path.read_text())
+    C = sp.diags(brute_diagonal(inst)).tocsr()
+    state = np.full(1 << inst.n, 2.0 ** (-inst.n / 2), dtype=complex)
+    state = expm_multiply(-1j * alt["gamma"][0] * C, state)
+    state = expm_multiply(-1j * alt["beta"][0] * mixer_matrix(inst.n), state)
+    expected = float(np.abs(state) ** 2 @ brute_diagonal(inst))
+    assert alt["expectation"] == pytest.approx(expected, abs=1e-10)
+    assert alt["ratio"] == pytest.approx(expected / out["best"], abs=1e-12)
+    assert alt["better"] == (alt["ratio"] > out["ratio"])
+    assert f"give ratio {alt['ratio']:.6f} against {out['ratio']:.6f}" in note
+    # the text report says the same in one note line
+    text = run_cli("transfer", path, "--depth", "1", "--quiet").stdout
+    assert "note: every spin is in 3 terms of order 2, girth 5" in text
+
+
+def test_mixtures_read_rounded_in_text_and_exact_in_json(tmp_path):
+    """A ring of 7 with weights 1/3 has xi = (1/9) x^2: the report's text reads 2:0.111111, the
+    JSON keeps the exact float (its shortest text that reads back to the same number)."""
+    path = tmp_path / "third.txt"
+    path.write_text("".join(f"{1 / 3!r} {i} {(i + 1) % 7}\n" for i in range(7)))
+    text = run_cli("transfer", path, "--depth", "1", "--quiet").stdout
+    assert "optimized for the instance's mixture 2:0.111111\n" in text, text
+    out = json.loads(run_cli("transfer", path, "--depth", "1", "--json").stdout)
+    exact = parse_mixture(out["xi"])
+    assert exact.spec() == out["xi"] and abs(exact.terms[0][1] - 1 / 9) < 1e-15 and out["xi"] != "2:0.111111"
+    assert parse_mixture("2:0.6696428571428571").rounded_spec() == "2:0.669643"

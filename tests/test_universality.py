@@ -44,7 +44,7 @@ def study():
 
 
 def test_view_lines_up_depths_and_approaches_the_dense_limit(study):
-    report = build_report(study, reference_cache_dir="/nonexistent-cache")
+    report = build_report(study)
     (view,) = report.universality
     assert view["q"] == 3 and view["dense_label"] == "pure3" and view["degrees"] == [4.0, 10000.0]
     for row in view["rows"]:
@@ -55,7 +55,7 @@ def test_view_lines_up_depths_and_approaches_the_dense_limit(study):
 
 
 def test_view_in_every_format(study):
-    report = build_report(study, reference_cache_dir="/nonexistent-cache")
+    report = build_report(study)
     md = render_markdown(report)
     assert "## Universality, q = 3" in md and "D=10000 diff" in md
     rows = [r for r in csv.DictReader(io.StringIO(render_csv(report))) if r["record"] == "universality"]

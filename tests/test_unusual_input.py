@@ -1,8 +1,11 @@
 """Extreme values and unusual input at the command line: one clear stderr line, exit 2, nothing written.
 
-Every case runs the real command in a subprocess from an empty (or snapshotted)
-folder and checks: exit code 2, exactly one stderr line starting with
-"leadline: error:", no traceback, no stdout, and no file created or changed.
+Every refusal runs the command line's entry point (``leadline.jobs.cli.main``, what the
+``leadline`` script calls) in this process, from an empty (or snapshotted) folder, and
+checks: exit code 2, exactly one stderr line starting with "leadline: error:", no
+traceback, no stdout, and no file created or changed.  In-process because a fresh
+interpreter per case cost most of this file's time; the commands that must run as their
+own process (a fault-injected kill, a read-only mount) still use a subprocess.
 """
 
 from __future__ import annotations
@@ -23,6 +26,27 @@ LEADLINE = [sys.executable, "-m", "leadline"]
 def run(*args, cwd=None, env=None):
     full_env = dict(os.environ, **(env or {}))
     return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, timeout=300, cwd=cwd, env=full_env)
+
+
+def run_here(*args, cwd: Path, env=None) -> subprocess.CompletedProcess:
+    """``leadline ARGS`` through its entry point in this process (cwd and env as given)."""
+    import contextlib
+    import io
+
+    from leadline.jobs.cli import main
+
+    out, err = io.StringIO(), io.StringIO()
+    with pytest.MonkeyPatch.context() as mp:
+        for key, value in (env or {}).items():
+            mp.setenv(key, value)
+        mp.chdir(cwd)
+        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+            try:
+                main(list(args))
+                code = 0
+            except SystemExit as exc:
+                code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 1)
+    return subprocess.CompletedProcess(list(args), code, out.getvalue(), err.getvalue())
 
 
 def snapshot(folder: Path) -> dict:
@@ -46,7 +70,7 @@ def assert_refused(r, fragment: str) -> str:
 
 def refused_in(folder: Path, args, fragment: str, env=None) -> str:
     before = snapshot(folder)
-    r = run(*args, cwd=folder, env=env)
+    r = run_here(*args, cwd=folder, env=env)
     line = assert_refused(r, fragment)
     assert snapshot(folder) == before, "a refused command changed its folder"
     return line

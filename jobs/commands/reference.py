@@ -13,6 +13,7 @@ from leadline.kernels.numtext import fmt
 from .. import reference_cache
 from ..errors import InputError
 from ..parsing import check_reference_settings, mixture_arg
+from ..report import short_of_tolerance
 
 
 def reference_command(
@@ -123,12 +124,15 @@ def _store_references(path: Path, only: str | None, gs_tol: float, alg_tol: floa
 
 def report(mix, refs, cached: bool) -> str:
     gs_d = refs.details.get("ground_state", {})
+    short = short_of_tolerance(refs)
     lines = [
         f"xi(x)                  = {mix.label()}",
         f"ground state GS        = {fmt(refs.ground_state)} +- {refs.ground_state_uncertainty:.1e}"
         f"   (k = {len(refs.ground_state_k_sequence)} steps, best bound {fmt(gs_d.get('best_bound', float('nan')))})",
+        *([f"                         {short['ground_state']}"] if "ground_state" in short else []),
         f"algorithmic threshold  = {fmt(refs.algorithmic_threshold)} +- {refs.algorithmic_threshold_uncertainty:.1e}"
         f"   (k = {len(refs.algorithmic_threshold_k_sequence)} steps)",
+        *([f"                         {short['algorithmic_threshold']}"] if "algorithmic_threshold" in short else []),
         "overlap gap            = "
         + ("yes: ALG < GS beyond the uncertainties" if refs.overlap_gap else "not detected (ALG = GS within the uncertainties)"),
         f"energies are max H/n with E[H H'] = n xi(R); {'from the cache' if cached else f'{refs.wall_time:.1f} s'}",

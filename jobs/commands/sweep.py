@@ -14,13 +14,12 @@ from typing import Optional
 
 import typer
 
-from leadline import __version__ as _version
-from leadline.kernels.exact import IMPLEMENTATION_ENV, resolve_implementation
+from leadline.kernels.exact import IMPLEMENTATION_ENV
 from leadline.kernels.numtext import fmt
 from leadline.storage.errors import StoreError
 
 from .. import compute
-from ..errors import InputError
+from ..errors import InputError, Stopped
 from ..spec import check_new_store, load_spec, spec_from_json
 from ._sparse import check_sweep_sparse
 
@@ -88,9 +87,17 @@ def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
         if not as_json:
             typer.echo(depth_line(line))
 
-    with _sigterm_as_exit(), compute.open_compute(settings) as executor:
-        with open_store() as store:
-            lines = run_study(store, spec, executor, report=report)
+    store_path = None
+    try:
+        with _sigterm_as_exit(), compute.open_compute(settings) as executor:
+            with open_store() as store:
+                store_path = store.path
+                lines = run_study(store, spec, executor, report=report)
+    except (KeyboardInterrupt, _Terminated) as exc:
+        # the lock is released and the passes computed so far are written: say what is kept
+        why = "interrupted" if isinstance(exc, KeyboardInterrupt) else "stopped by SIGTERM"
+        code = 130 if isinstance(exc, KeyboardInterrupt) else int(exc.code)
+        raise Stopped(stopped_text(why, store_path), code) from None
     if as_json:
         typer.echo(json.dumps({"store": str(store.path), "finished_now": lines, "progress": open_study(store.path).progress()}))
     elif not quiet:
@@ -140,24 +147,14 @@ def sweep_command(
 
     If it stops (killed, crashed, out of time), `leadline resume STORE` continues exactly where it was.
     """
-    from leadline.storage import StudyStore
+    from ..sweep import create_store
 
     spec = load_spec(spec_path)
     check_new_store(spec.store)
     settings = spec.compute_settings(quiet=quiet or as_json)
     check_sweep_sparse(spec, settings)
-    open_store = lambda: StudyStore.create(  # noqa: E731
-        spec.store,
-        name=spec.name,
-        spec=spec.to_json(),
-        spec_toml=spec.source_text,
-        ensembles=[e.description() for e in spec.ensembles],
-        writer=f"leadline {_version}",
-        command="sweep",
-        extra={"kernel": resolve_implementation()},
-    )
     try:
-        _run(open_store, spec, settings, as_json, quiet)
+        _run(lambda: create_store(spec), spec, settings, as_json, quiet)
     except OSError as exc:
         raise _write_failed(exc, spec.store, creating=True) from None
 
@@ -289,6 +286,35 @@ def status_command(
         typer.echo(status_text(progress))
 
 
+def stopped_text(why: str, store_path) -> str:
+    """What a stopped sweep kept and how to go on (printed on stderr)."""
+    from leadline.storage import open_study
+
+    if store_path is None:
+        return f"{why} before the store was created; nothing was written (run the sweep again)"
+    progress = open_study(store_path).progress()
+    lines = [f"{why}; saved in {store_path}:"]
+    for e in progress["ensembles"]:
+        parts = []
+        done = [d["p"] for d in e["done"]]
+        if done:
+            parts.append(f"p = {_ranges(done)} done")
+        r = e["running"]
+        if r is not None:
+            text = f"p = {r['p']} stopped with {r['passes_saved']} passes saved"
+            if r["inflight"] is not None:
+                text += f" and {r['inflight']['chunks_done']}/{r['inflight']['n_chunks']} chunks of the next"
+            parts.append(text)
+        if not parts:
+            parts.append("not started")
+        lines.append(f"  {e['label']}: " + "; ".join(parts))
+    if progress["complete"]:
+        lines.append("the study is complete")
+    else:
+        lines.append(f"continue with: leadline resume {store_path}")
+    return "\n".join(lines)
+
+
 def _duration(seconds: float | None) -> str:
     if seconds is None:
         return "unknown (no pass measured yet)"
@@ -345,7 +371,7 @@ def status_text(progress: dict) -> str:
         if r is not None and r.get("bath") and not r.get("metadata_damaged"):
             b = r["bath"]
             state = "running" if r.get("active", True) else "stopped"
-            text = f"    {state:<8} p = {r['p']} (bath): {b['evaluations_checkpointed']} evaluations checkpointed"
+            text = f"    {state:<8} p = {r['p']} (bath): {b['evaluations_saved']} evaluations saved"
             if b.get("value") is not None:
                 text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, gradient norm "
                          f"{b['gradient_norm']:.1e}")

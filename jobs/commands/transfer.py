@@ -48,6 +48,10 @@ from ..paths import check_output_file, write_text_atomic
 SPARSE_PREDICTION_MAX_P = 10
 #: cycles up to this length are searched for (longer when 2p + 2 is larger)
 GIRTH_SEARCH = 16
+#: a graph whose spins are all in at most this many terms counts as low-degree (sparse ensemble fits better)
+LOW_DEGREE = 16
+#: largest depth at which the sparse ensemble's angles are optimized and checked for a weighted low-degree graph
+SPARSE_ANGLES_MAX_P = 6
 #: default largest total-variation distance between normalized mixtures counted as "same shape"
 DEFAULT_SHAPE_TOLERANCE = 0.02
 
@@ -80,6 +84,19 @@ def transfer_command(
 
         leadline transfer graph.txt --store runs/sk.zarr --ensemble sk --output angles.csv
     """
+    out = transfer_instance(instance, angles=angles, store=store, ensemble=ensemble, depth=depth, max_spins=max_spins,
+                            shape_tolerance=shape_tolerance, seed=seed, output=output, quiet=quiet)
+    if as_json:
+        typer.echo(json.dumps(out))
+        return
+    typer.echo(report(out, parse_mixture(out["xi"])))
+
+
+def transfer_instance(instance: str | None, *, angles: str | None = None, store: str | None = None,
+                      ensemble: str | None = None, depth: int | None = None,
+                      max_spins: int = DEFAULT_STATEVECTOR_SPINS, shape_tolerance: float = DEFAULT_SHAPE_TOLERANCE,
+                      seed: int = 0, output: str | None = None, quiet: bool = True) -> dict:
+    """What `leadline transfer` computes (the object it prints with --json); InputError on bad input."""
     # ------------------------------------------------------------ validate everything first
     inst, source_name = _read_instance(instance)
     if angles is not None and store is not None:
@@ -142,6 +159,8 @@ def transfer_command(
         "p_best": None,
         "best_string": None,
         "statevector_memory_bytes": None,
+        "degrees": None,
+        "sparse_angles": None,
         "notes": [],
     }
     notes = out["notes"]
@@ -176,7 +195,7 @@ def transfer_command(
             result = optimize_depth(xi, p, previous=previous, previous_value=previous_value, seed=seed)
             previous, previous_value = (result.gamma, result.beta), result.value
         gamma, beta = result.gamma, result.beta
-        out.update(source=f"optimized for the instance's mixture {xi.spec()}", p=depth, shape_distance=0.0, same_shape=True)
+        out.update(source=f"optimized for the instance's mixture {xi.rounded_spec()}", p=depth, shape_distance=0.0, same_shape=True)
         out["lambda"] = 1.0
         out["reference_xi"] = xi.spec()
         out["predicted"] = _bounded(inst, inst.constant + inst.n * result.value, notes)
@@ -231,14 +250,69 @@ def transfer_command(
                 notes.append("best value <= 0: the ratio expectation/best is not reported")
     else:
         notes.append(f"n = {inst.n} > --max-spins {max_spins}: no exact check (at most {MAX_STATEVECTOR_SPINS})")
+    if structure is None:
+        _weighted_low_degree(inst, xi, gamma, beta, out, seed)
     out["wall_time_s"] = time.perf_counter() - started
 
     if output is not None and gamma is not None:
         _write_csv(output, gamma, beta, out)
-    if as_json:
-        typer.echo(json.dumps(out))
+    return out
+
+
+def _weighted_low_degree(inst, xi: Mixture, gamma, beta, out: dict, seed: int) -> None:
+    """A graph of one order whose spins are in few terms, with weights of several sizes: the dense
+    ensemble is only its D -> infinity limit.  Say which ensemble fits it (degree, girth) and, when
+    its degree is regular, compare the sparse ensemble's angles on the exact check."""
+    orders = inst.orders()
+    if len(orders) != 1:
         return
-    typer.echo(report(out, xi))
+    (q,) = orders
+    counts = np.zeros(inst.n, dtype=np.int64)
+    for S in inst.terms:
+        counts[list(S)] += 1
+    d_min, d_max = int(counts.min()), int(counts.max())
+    if q < 2 or d_max > LOW_DEGREE or d_min < 1:
+        return
+    sizes = np.abs(np.fromiter(inst.terms.values(), dtype=float))
+    unequal = not np.allclose(sizes, sizes[0], rtol=1e-12, atol=0)
+    p = None if gamma is None else int(np.asarray(gamma).size)
+    out["degrees"] = {"q": int(q), "min": d_min, "max": d_max, "mean": float(counts.mean())}
+    where = f"{d_min} terms" if d_min == d_max else f"{d_min} to {d_max} terms"
+    text = f"every spin is in {where} of order {q}"
+    if q == 2:
+        limit = max(GIRTH_SEARCH, 2 * (p or 0) + 2)
+        found = girth(inst.n, inst.edges(), limit=limit)
+        out["girth"], out["girth_above"] = found, (limit if found is None else None)
+        text += f", girth {found}" if found is not None else f", girth > {limit}"
+    D = round(float(counts.mean()))
+    text += ", weights of several sizes" if unequal else ""
+    text += (f": closer to the sparse ensemble (q = {q}, D = {D}) than to the dense one, "
+             "which is its large-degree limit")
+    notes = out["notes"]
+    if d_min != d_max or d_min < 2 or gamma is None or p > SPARSE_ANGLES_MAX_P or out["ratio"] is None:
+        depth = p or 2
+        notes.append(text + f"; sparse angles: leadline optimize --sparse-q {q} --degree {D} --depth {depth} "
+                     f"--output sparse.json, then leadline transfer {out['instance']} --angles sparse.json")
+        return
+    from leadline.kernels.sparse import optimize_sparse
+
+    ladder = previous = previous_value = None
+    for depth in range(1, p + 1):  # warm-started depth by depth, as `optimize --sparse-q` does
+        ladder = optimize_sparse(q, D, depth, previous=previous, previous_value=previous_value, seed=seed,
+                                 restarts=3 if depth <= 2 else 1)
+        previous, previous_value = (ladder.gamma, ladder.beta), ladder.value
+    xi_s, g_s, _ = sparse_reference(q, D, ladder.gamma, ladder.value)
+    g_inst = rescale_angles(xi, xi_s, g_s).gamma  # scaled by the weights' variance
+    check = statevector_check(inst, g_inst, ladder.beta)
+    better = check.ratio is not None and check.ratio > out["ratio"]
+    out["sparse_angles"] = {"q": int(q), "degree": D, "p": p, "gamma": [float(x) for x in g_inst],
+                            "beta": [float(x) for x in ladder.beta], "expectation": check.expectation,
+                            "ratio": check.ratio, "better": bool(better)}
+    notes.append(
+        text + f"; its optimal angles at p = {p} (instance units) give ratio {_fmt(check.ratio)} against "
+        f"{_fmt(out['ratio'])} for the angles above"
+        + (": they fit this instance better (`--json` has them under sparse_angles)" if better else "")
+    )
 
 
 def _bounded(inst, predicted: float, notes: list) -> float | None:

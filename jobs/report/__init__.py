@@ -36,6 +36,7 @@ _WHERE = {
     "TABLE_VERSION": "_model",
     "References": "_references",
     "resolve_references": "_references",
+    "short_of_tolerance": "_references",
     "render_markdown": "_markdown",
     "CSV_COLUMNS": "_csv_json",
     "render_csv": "_csv_json",

@@ -270,6 +270,22 @@ def build_ensemble_report(
         notes.append("algorithmic threshold not known for this ensemble: V_p*/ALG columns left out")
     mixture = ensemble_mixture(meta)
     shipped = lookup_ground_state(mixture) if mixture is not None else None
+    if computed is not None and getattr(computed, "details", None) is not None:
+        from ._references import short_of_tolerance
+
+        short = short_of_tolerance(computed)
+        for key, name, origin in (("ground_state", "GS", refs.ground_state_origin),
+                                  ("algorithmic_threshold", "ALG", refs.threshold_origin)):
+            if key in short and origin == "computed":
+                notes.append(f"the computed {name} uncertainty is {short[key]}")
+    stored_gs = finite_or_none(getattr(computed, "ground_state", None)) if computed is not None else None
+    if stored_gs is not None and refs.ground_state_origin == "shipped table":
+        stored_unc = finite_or_none(getattr(computed, "ground_state_uncertainty", None))
+        notes.append(
+            f"the store also holds a computed GS {stored_gs:.6f}"
+            + (f" +- {stored_unc:.1e}" if stored_unc is not None else "")
+            + "; the shipped value is more precise and is the one used"
+        )
     if gs is not None and shipped is not None and refs.ground_state_origin != "shipped table":
         allowed = shipped.uncertainty + (refs.ground_state_uncertainty or 0.0)
         verdict = "agrees with" if abs(gs - shipped.ground_state) <= allowed else "DIFFERS from"
@@ -314,7 +330,7 @@ def build_ensemble_report(
             names = sorted({w.family for w in flagged}, key=list(FAMILIES).index)
             notes.append(
                 f"{len(flagged)} back-tested fit(s) ({', '.join(names)}) extrapolate above the upper "
-                f"bound {extrap.bound_name} = {fmt(extrap.upper_bound, 4)} (up to {fmt(top, 4)}): flagged unphysical and "
+                f"bound ({extrap.bound_name}) = {fmt(extrap.upper_bound, 4)} (up to {fmt(top, 4)}): flagged unphysical and "
                 "given weight 0 in the headline"
             )
         if extrap.declined is None and extrap.limit is None:
@@ -339,7 +355,6 @@ def build_report(
     *,
     ground_states: Mapping[str | None, float] | None = None,
     target_ratios: Iterable[float] = DEFAULT_TARGET_RATIOS,
-    reference_cache_dir: str | Path | None = None,
     at_depths: Iterable[int] = (),
 ) -> StudyReport:
     """Report of every ensemble of ``study`` (StudyReader or InMemoryStudy), in spec order.
@@ -349,9 +364,6 @@ def build_report(
     ground_states : dict {label or None: value}, optional
         Ground-state values given on the command line; the key None applies
         to every ensemble without its own entry.
-    reference_cache_dir : path, optional
-        Cache of ``leadline reference`` to read computed GS/ALG from (default:
-        its default location).
     at_depths : iterable of int
         Depths at which V_p (and V_p/GS) is predicted from the extrapolation.
     """
@@ -362,7 +374,7 @@ def build_report(
         meta = dict(study.ensemble(label))
         meta.setdefault("label", label)
         override = ground_states.get(label, ground_states.get(None))
-        computed = computed_references(study, label, meta, reference_cache_dir)
+        computed = computed_references(study, label, meta)
         reports.append(
             build_ensemble_report(
                 meta, study.depths(label), ground_state=override, computed=computed, target_ratios=target_ratios,

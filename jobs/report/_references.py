@@ -3,28 +3,29 @@
 Energies are energy densities per spin (dimensionless) in the normalization
 E[H(z)H(z')] = n xi(R); the tool maximizes V_p.
 
-Precedence, highest first:
+A table is a function of its store (and of what its command line says): it never reads the
+user-wide cache of ``leadline reference --xi``, so the same store gives the same table
+whatever that cache holds.  Precedence, highest first:
 1. a ground-state value given on the command line (``--ground-state``);
 2. a value given in the study spec (stored in the ensemble's "reference");
-3. ground state and algorithmic threshold computed by ``kernels.reference``
-   and cached in the store (or found in the ensemble's "reference" with a
-   "computed" origin), else in the cache of ``leadline reference``;
-4. the table shipped in ``kernels.reference``.
+3. of the values computed by ``kernels.reference`` and recorded in the store
+   (``leadline reference --store``) and the table shipped in ``kernels.reference``,
+   the more precise one (smaller uncertainty; the shipped value on a tie).
+ALG has no shipped values: it comes from the spec or from the store.
 The table only reads: nothing here computes a reference energy.
 """
 
 from __future__ import annotations
 
-import json
 import math
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any, Mapping
 
 from leadline.kernels.mixture import Mixture, MixtureError, parse_mixture
 from leadline.kernels.reference import lookup_ground_state
 
-__all__ = ["References", "resolve_references", "computed_references", "ensemble_mixture", "finite_or_none"]
+__all__ = ["References", "resolve_references", "computed_references", "ensemble_mixture", "finite_or_none",
+           "short_of_tolerance"]
 
 
 @dataclass(frozen=True)
@@ -125,19 +126,23 @@ def resolve_references(
         )
         alg_origin = ref_origin
 
-    # 3. computed by kernels.reference (cached in the store)
+    # 3. computed by kernels.reference and recorded in the store, or the shipped table:
+    #    the more precise ground state wins
+    candidates = []
     if computed is not None:
         c_gs = finite_or_none(getattr(computed, "ground_state", None))
         c_alg = finite_or_none(getattr(computed, "algorithmic_threshold", None))
-        if gs is None and c_gs is not None:
-            gs, gs_origin = c_gs, "computed"
-            gs_src = getattr(computed, "source", None) or (
-                "leadline reference: zero-temperature Parisi functional, Auffinger & Chen, Ann. Probab. 45 (2017)"
-            )
-            gs_unc = finite_or_none(
-                getattr(computed, "ground_state_uncertainty", None)
-                or (getattr(computed, "uncertainties", None) or {}).get("ground_state")
-            )
+        if c_gs is not None:
+            candidates.append((
+                c_gs,
+                finite_or_none(
+                    getattr(computed, "ground_state_uncertainty", None)
+                    or (getattr(computed, "uncertainties", None) or {}).get("ground_state")
+                ),
+                getattr(computed, "source", None)
+                or "leadline reference: zero-temperature Parisi functional, Auffinger & Chen, Ann. Probab. 45 (2017)",
+                "computed",
+            ))
         if alg is None and c_alg is not None:
             alg, alg_origin = c_alg, "computed"
             alg_src = getattr(computed, "source", None) or (
@@ -147,60 +152,43 @@ def resolve_references(
                 getattr(computed, "algorithmic_threshold_uncertainty", None)
                 or (getattr(computed, "uncertainties", None) or {}).get("algorithmic_threshold")
             )
-
-    # 4. shipped table
-    if gs is None:
-        mixture = ensemble_mixture(meta)
-        match = lookup_ground_state(mixture) if mixture is not None else None
-        if match is not None:
-            gs, gs_unc, gs_src, gs_origin = match.ground_state, match.uncertainty, match.source, "shipped table"
+    mixture = ensemble_mixture(meta)
+    match = lookup_ground_state(mixture) if mixture is not None else None
+    if match is not None:
+        candidates.append((match.ground_state, match.uncertainty, match.source, "shipped table"))
+    if gs is None and candidates:
+        # smallest uncertainty first (unknown counts as worst); the shipped value on a tie
+        gs, gs_unc, gs_src, gs_origin = min(
+            candidates, key=lambda c: (math.inf if c[1] is None else c[1], c[3] != "shipped table")
+        )
 
     return References(gs, gs_unc, gs_src, gs_origin, alg, alg_unc, alg_src, alg_origin)
 
 
-def computed_references(study: Any, label: str, meta: Mapping, cache_dir: str | Path | None = None) -> Any:
-    """GS/ALG computed by ``kernels.reference`` for this ensemble, if cached; never computes.
+def computed_references(study: Any, label: str, meta: Mapping | None = None) -> Any:
+    """GS/ALG computed by ``kernels.reference`` and recorded in this study's store, or None; never computes.
 
-    Looks first for a cache in the study store (a reader method ``references(label)``, when
-    the store offers one), then in the reference cache of ``leadline reference``
-    (``cache_dir``, else ``$LEADLINE_CACHE_DIR`` / ``~/.cache/leadline``): every cached
-    entry for the same mixture and method version, the one with the tightest tolerances.
-    Computing takes seconds to minutes per mixture, so the table only reads.
+    Only the store is read (its reader method ``references(label)``, written by
+    ``leadline reference --store``): a table does not change with the state of any cache.
     """
     getter = getattr(study, "references", None)
-    if callable(getter):
-        try:
-            found = getter(label)
-        except (KeyError, LookupError, ValueError, NotImplementedError):
-            found = None
-        if found is not None:
-            return found
-    mixture = ensemble_mixture(meta)
-    if mixture is None:
+    if not callable(getter):
         return None
     try:
-        from leadline.kernels.mixture import parse_mixture
-        from leadline.kernels.reference import METHOD_VERSION, References as Computed
+        return getter(label)
+    except (KeyError, LookupError, ValueError, NotImplementedError):
+        return None
 
-        from .. import reference_cache
-    except ImportError:  # pragma: no cover - reference energies are part of the tool
-        return None
-    directory = Path(cache_dir) if cache_dir is not None else reference_cache.default_cache_dir()
-    folder = directory / "references"
-    if not folder.is_dir():
-        return None
-    best = None
-    for path in sorted(folder.glob("*.json")):
-        try:
-            data = json.loads(path.read_text())
-            key = data["key"]
-            # compare mixtures, not spellings (older caches wrote weights as "1.0")
-            if parse_mixture(key.get("xi")) != mixture or key.get("method_version") != METHOD_VERSION:
-                continue
-            refs = Computed.from_json(data["references"])
-        except (OSError, ValueError, KeyError, TypeError, AttributeError):
-            continue
-        rank = (float(key.get("gs_tol", 1.0)) + float(key.get("alg_tol", 1.0)), path.name)
-        if best is None or rank < best[0]:
-            best = (rank, refs)
-    return best[1] if best else None
+
+def short_of_tolerance(refs) -> dict[str, str]:
+    """{"ground_state" | "algorithmic_threshold": why} for each value whose uncertainty is above the
+    tolerance asked for (the step limit was reached first); empty when both met it."""
+    tols = refs.details.get("tolerances") or {}
+    out = {}
+    for key, unc, option in (("ground_state", refs.ground_state_uncertainty, "--gs-tol"),
+                             ("algorithmic_threshold", refs.algorithmic_threshold_uncertainty, "--alg-tol")):
+        tol = tols.get(key)
+        if tol is not None and unc > tol:
+            out[key] = (f"above the requested {option} {tol:.0e}: the limit of {tols.get('max_steps')} steps "
+                        "was reached first (raise --max-steps)")
+    return out
