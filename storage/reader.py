@@ -232,7 +232,7 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
         "repairs": len(attrs.get("repairs", [])),
         # a bath depth: the live state of its optimizer and its checkpointed evaluations
         "bath": None if not (bath_done or attrs.get("bath_progress")) else dict(
-            attrs.get("bath_progress") or {}, evaluations_checkpointed=bath_done,
+            attrs.get("bath_progress") or {}, evaluations_saved=bath_done,
             evaluation_cpu_s=bath_seconds / max(1, bath_done)),
     }
 
