@@ -382,7 +382,10 @@ source = "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"
                                  "source": "Parisi value, Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002)"}}
     depths = study.depths("sk")
     assert [d["p"] for d in depths] == [1, 2]
-    assert set(depths[0]) == {"p", "value", "gamma", "beta", "gradient_norm", "evaluations", "wall_time_s", "converged"}
+    assert set(depths[0]) == {"p", "value", "gamma", "beta", "gradient_norm", "evaluations", "wall_time_s", "converged",
+                              "method", "error_estimate"}
+    # exact depths say so and carry no error estimate (bath depths carry the engine's)
+    assert all(d["method"] == "exact" and d["error_estimate"] is None for d in depths)
     # Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Table 1
     assert depths[0]["value"] == pytest.approx(0.3033, abs=5e-5)
     assert depths[1]["value"] == pytest.approx(0.4075, abs=5e-5)
