@@ -256,12 +256,7 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
     from leadline.kernels.exact import plan_chunks
 
     t0 = time.perf_counter()
-    if initial is not None:
-        first = depth
-        previous = (initial.gamma, initial.beta)
-        previous_value = initial.value if initial.p == depth - 1 else None
-    else:
-        first, previous, previous_value = 1, None, None
+    first, previous, previous_value = _ladder_start(initial, depth)
     ladder, result = [], None
     for p in range(first, depth + 1):
         callback = None
@@ -273,6 +268,14 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
         ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
         previous, previous_value = (result.gamma, result.beta), result.value
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
+
+
+def _ladder_start(initial, depth: int):
+    """(first depth, previous angles, previous value) of a ladder to ``depth``: from ``initial``
+    (an AngleSet of depth ``depth - 1`` or ``depth``) only ``depth`` is optimized, else 1..depth."""
+    if initial is None:
+        return 1, None, None
+    return depth, (initial.gamma, initial.beta), (initial.value if initial.p == depth - 1 else None)
 
 
 def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=None, seed=0, gtol=1e-7,
@@ -287,12 +290,7 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
     from .bath import bath_restarts
 
     t0 = time.perf_counter()
-    if initial is not None:
-        first = depth
-        previous = (initial.gamma, initial.beta)
-        previous_value = initial.value if initial.p == depth - 1 else None
-    else:
-        first, previous, previous_value = 1, None, None
+    first, previous, previous_value = _ladder_start(initial, depth)
     ladder, result = [], None
     for p in range(first, depth + 1):
         callback = None

@@ -109,6 +109,16 @@ def optimize_command(
         )
     result, ladder, first, total_evals, wall = run.result, run.ladder, run.first_depth, run.evaluations_total, run.wall_time
 
+    if _write_and_json(run, mix, depth, output, as_json):
+        return
+    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
+    evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
+    typer.echo(optimum_report(header, result, evaluations, ladder, output))
+
+
+def _write_and_json(run, mix, depth: int, output, as_json: bool) -> bool:
+    """Write the angle file, warn when not converged, print JSON if asked; True when printed."""
+    result = run.result
     if output is not None:
         write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
     warning = convergence_warning(result)
@@ -116,10 +126,7 @@ def optimize_command(
         typer.echo(warning, err=True)
     if as_json:
         typer.echo(json.dumps(run.to_json()))
-        return
-    header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}", f"V_p*           = {fmt(result.value, 10)}"]
-    evaluations = f"{total_evals} over depths {first}..{depth} ({result.restarts} starts at p = {depth}), {wall:.1f} s"
-    typer.echo(optimum_report(header, result, evaluations, ladder, output))
+    return as_json
 
 
 def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gradient_tol, max_iterations, output, as_json) -> None:
@@ -138,13 +145,7 @@ def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gra
         except BathLimitError as exc:  # the engine cannot meet the tolerance at some point it was asked for
             raise InputError(f"{exc}; nothing written") from None
     result = run.result
-    if output is not None:
-        write_angles(output, AngleSet(p=depth, gamma=result.gamma, beta=result.beta, xi=mix.spec(), value=result.value))
-    warning = convergence_warning(result)
-    if warning:
-        typer.echo(warning, err=True)
-    if as_json:
-        typer.echo(json.dumps(run.to_json()))
+    if _write_and_json(run, mix, depth, output, as_json):
         return
     header = [f"xi(x)          = {mix.label()}", f"depth p        = {depth}",
               f"V_p*           = {result.value:.10f} +- {result.error_estimate:.1e} (bosonic bath)"]
