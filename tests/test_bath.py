@@ -317,6 +317,25 @@ def test_error_estimate_bounds_true_error_deeper(name, p):
     assert abs(res.value - exact) <= res.error_estimate <= 1e-6
 
 
+def test_loose_cutoff_breakdown_is_abandoned():
+    # SK at INTERP angles p = 14 (Zhou et al., PRX 10, 021067 (2020)) from the p = 12 optimum:
+    # at cut-off 1e-4 the readout's W stops giving a positive semidefinite bath (measured at
+    # layer 12); the ladder drops that run and still bounds the error against the exact iteration.
+    from leadline.kernels.bath._engine import BathBreakdown
+    from leadline.kernels.optimize import interpolate_angles
+
+    mix, g, b, _ = optimum("sk", 12)
+    while g.size < 14:
+        g, b = interpolate_angles(g, b)
+    with pytest.raises(BathBreakdown, match="not positive semidefinite at layer"):
+        run_bath(mix, g, b, fock=2, fock_max=40, fock_tol=1e-8, cutoff=1e-4, chi=256, check_psd=True)
+    run_bath(mix, g, b, fock=2, fock_max=40, fock_tol=1e-8, cutoff=1e-4, chi=256)  # unchecked: runs on
+    res = evaluate_bath(mix, g, b, tolerance=1e-4)
+    assert res.ladder[0]["value"] is None and res.ladder[0]["abandoned_at_layer"] <= 14
+    assert all(r["value"] is not None for r in res.ladder[1:])
+    assert abs(res.value - evaluate(mix, g, b).value) <= res.error_estimate <= 1e-4
+
+
 @pytest.mark.parametrize("spec", MIXTURES)
 def test_error_estimate_corner_cases(spec):
     # one mode (p = 1, closed form of Claes, van Dam 2021) and zero angles (tiny pivots)

@@ -149,6 +149,12 @@ def _run(evaluate_bath, BathLimitError, mix, g, b, tolerance, bond, fock, time_l
         raise InputError(str(exc)) from None
 
 
+def _rung(x: dict) -> str:
+    if x.get("value") is None:  # abandoned: the cut-off was too loose for the depth
+        return f"abandoned at layer {x['abandoned_at_layer']}"
+    return fmt(x["value"], 10)
+
+
 def report(mix, p: int, res) -> str:
     r = res.run
     carried = ", ".join(str(s + 1) for s in r.carried) or "none"
@@ -159,6 +165,6 @@ def report(mix, p: int, res) -> str:
         f"truncation = cut-off {r.cutoff:.0e}, bond {r.largest_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
         f"limiting: {res.limiting}",
         f"discarded  = {r.discarded:.1e}, top Fock level population {r.top_population:.1e}, carried states: {carried}",
-        "ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {fmt(x['value'], 10)}" for x in res.ladder),
+        "ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {_rung(x)}" for x in res.ladder),
         f"time       = {sum(x['wall_time_s'] for x in res.ladder):.2f} s",
     ])

@@ -37,7 +37,7 @@ from ._modes import bath_matrix, cholesky_row, fock_levels, layer_unitaries, mod
 from ._mps import MPSState
 from ._parity import ParityMPS
 
-__all__ = ["BathLimitError", "BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
+__all__ = ["BathBreakdown", "BathLimitError", "BathRun", "bath_correlations", "readout_sweep", "run_bath", "BASES"]
 
 BASES = ("cholesky", "principal")
 
@@ -212,8 +212,31 @@ class BathLimitError(ValueError):
     """The engine cannot reach what was asked within the limits it was given (one-line message)."""
 
 
+class BathBreakdown(ArithmeticError):
+    """A run's correlations W became inconsistent: the bath row xi'(W(t, .)) it gives is not that of
+    a positive semidefinite bath (Schur remainder clearly negative), so the run's cut-off is too
+    loose for this depth.  The readout's back substitution amplifies truncation errors with the
+    number of layers (measured for SK at INTERP angles, p = 40: breakdown at layer 13 at cut-off
+    1e-5, layer 27 at 1e-6, none to layer 40 at 1e-7); the ladder abandons such a run and goes
+    on with a tighter cut-off.  ``layer``: 1-based layer at which it was detected."""
+
+    def __init__(self, layer: int, remainder: float):
+        super().__init__(f"bath not positive semidefinite at layer {layer} (relative Schur remainder {remainder:.1e})")
+        self.layer = layer
+        self.remainder = remainder
+
+
+def breakdown_threshold(discarded: float) -> float:
+    """How negative the relative Schur remainder of a bath row may be before the run is abandoned:
+    rounding and truncation noise (W is off by about the square root of the discarded weight)
+    give small negative values where the true remainder is zero (a zero angle); a breakdown gives
+    values of order -1 (measured -1.8 at its onset, SK p = 40, cut-off 1e-5)."""
+    return -max(1e-6, 10.0 * float(np.sqrt(max(discarded, 0.0))))
+
+
 def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8, fock_max=None,
-                  fock_tol=None, reverse=True, pivot_tol=1e-3, deadline=None, progress=None):
+                  fock_tol=None, reverse=True, pivot_tol=1e-3, deadline=None, progress=None, trace=None,
+                  check_psd=False):
     """Spin correlations W (p+1 x p+1) of the causal Cholesky sweep, read from ONE state.
 
     Before layer t, W(t, s) for s < t follows by back substitution (:func:`_back_substitute`)
@@ -224,7 +247,10 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
     Fock levels start at ``fock`` per mode; with ``fock_tol`` set (MPS), before each layer every
     mode it drives gets the levels :func:`levels_needed` asks for (up to ``fock_max``).
     deadline: time.perf_counter() value after which the sweep stops with BathLimitError;
-    progress(t, p, largest_bond) is called after every layer.
+    progress(t, p, largest_bond) is called after every layer; trace (a list) gets one dict per
+    layer (bond, pivot, row norm, discarded weight so far, most Fock levels, carried states,
+    relative Schur remainder of the bath row).  check_psd: raise :class:`BathBreakdown` when a
+    bath row's relative Schur remainder falls below :func:`breakdown_threshold`.
     Returns (W, info) with info: states (psi and carried), fock levels, carried times, top-level
     population (largest seen), pivots.
     """
@@ -240,6 +266,7 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
     scale = float(np.max(np.abs(g))) * float(np.sqrt(max(np.real(mixture.dxi(1.0)), 0.0)))
     top_max = 0.0
     pivots = np.zeros(p)
+    layers: list[dict] = [] if trace is None else trace
     for t in range(p + 1):
         if t > 0:
             zb_sites, pop_sites = psi.mode_readout()
@@ -252,7 +279,10 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
             break
         row = mixture.dxi(W[t, : t + 1])
         row[t] = np.real(row[t])
-        cholesky_row(C, t, row)
+        rest = cholesky_row(C, t, row)
+        rel_rest = rest / max(float(np.real(row[t])), 1e-300)
+        if check_psd and rel_rest < breakdown_threshold(psi.discarded):
+            raise BathBreakdown(t + 1, rel_rest)
         if fock_tol is not None and engine != "dense":
             for k in range(t + 1):
                 need = levels_needed(pops[k] if k < t else np.ones(1), g[t] * C[t, k], dims[k], fock_max, fock_tol)
@@ -267,12 +297,16 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
         for st in [psi, *carried.values()]:
             st.apply_layer(ops)
             st.apply_mixer(b[t])
+        bond = max(psi.bond_dimensions(), default=1)
+        layers.append({"bond": int(bond), "pivot": float(pivots[t]), "row_norm": float(np.linalg.norm(C[t, : t + 1])),
+                       "discarded": float(psi.discarded), "max_fock": int(max(dims[: t + 1])),
+                       "carried": len(carried), "remainder": float(rel_rest)})
         if progress is not None:
-            progress(t + 1, p, max(psi.bond_dimensions(), default=1))
+            progress(t + 1, p, bond)
         if deadline is not None and time.perf_counter() > deadline:
             raise BathLimitError(f"time limit reached at layer {t + 1} of {p}")
     info = {"states": [psi, *carried.values()], "fock": dims, "carried": sorted(carried), "top": top_max,
-            "pivots": pivots}
+            "pivots": pivots, "layers": layers, "C": C}
     return W, info
 
 
@@ -302,6 +336,7 @@ def run_bath(
     pivot_tol: float = 1e-3,
     deadline: float | None = None,
     progress=None,
+    check_psd: bool = False,
 ) -> BathRun:
     """V_p(gamma, beta) from the bath form at one truncation.
 
@@ -322,6 +357,8 @@ def run_bath(
     fock_max, fock_tol : readout only: a mode whose top Fock level holds more than fock_tol
             gets two more levels, up to fock_max (default: fixed ``fock`` levels).
     pivot_tol : readout only: relative size of g_s C[s, s] below which chi_s is carried.
+    check_psd : readout only: raise :class:`BathBreakdown` when the run's W stops giving a
+            positive semidefinite bath (its cut-off is too loose for the depth).
     """
     t0 = time.perf_counter()
     g, b = check_angles(gamma, beta)
@@ -337,7 +374,7 @@ def run_bath(
     if basis == "cholesky" and readout == "modes":
         W, info = readout_sweep(mixture, g, b, engine=engine, chi=chi, cutoff=cutoff, fock=fock, fock_max=fock_max,
                                 fock_tol=fock_tol, reverse=reverse, pivot_tol=pivot_tol, deadline=deadline,
-                                progress=progress)
+                                progress=progress, check_psd=check_psd)
         states = info["states"]
         return BathRun(_value(mixture, g, W), p, basis, engine, W, list(info["fock"]), chi,
                        max(max(s.bond_dimensions(), default=1) for s in states),

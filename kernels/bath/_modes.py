@@ -37,12 +37,14 @@ def bath_matrix(mixture, W: np.ndarray) -> np.ndarray:
     return B
 
 
-def cholesky_row(C: np.ndarray, t: int, row: np.ndarray) -> None:
+def cholesky_row(C: np.ndarray, t: int, row: np.ndarray) -> float:
     """Fill row t of the lower-triangular factor C in place from bath row W_B(t, 0..t).
 
     Forward substitution: sum_{k<=s} C[t,k] conj(C[s,k]) = W_B(t,s) for s < t, then
     C[t,t] = sqrt(W_B(t,t) - sum_k |C[t,k]|^2).  A zero pivot (a bath row already spanned by
     earlier modes, e.g. a zero angle) leaves the rest of that column zero.
+    Returns the Schur remainder W_B(t,t) - sum_k |C[t,k]|^2 before it is clipped at 0 (negative:
+    the bath row is not consistent with a positive semidefinite bath, i.e. W is too inexact).
     """
     for s in range(t):
         acc = row[s] - np.dot(C[t, :s], np.conj(C[s, :s]))
@@ -50,6 +52,7 @@ def cholesky_row(C: np.ndarray, t: int, row: np.ndarray) -> None:
         C[t, s] = acc / piv if piv > 1e-14 else 0.0
     rest = float(np.real(row[t])) - float(np.sum(np.abs(C[t, :t]) ** 2))
     C[t, t] = np.sqrt(max(rest, 0.0))
+    return rest
 
 
 def principal_factor(WB: np.ndarray, rel_tol: float = 1e-13) -> tuple[np.ndarray, np.ndarray]:
