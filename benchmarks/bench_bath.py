@@ -11,8 +11,10 @@ Sections:
             one process), p = 10..16: where the bath is faster at equal or better accuracy
 * growth:   largest bond and CPU seconds of one run at a fixed cut-off (default 1e-7),
             p = 8, 16, .., MAX, the four mixtures
+* check:    the error estimate against the exact evaluation at INTERP angles p = 17..20
+            (tolerances 1e-6 and 1e-8), with both engines' CPU seconds (the crossover)
 * target:   evaluate_bath on the targets (SK p = 24 at 1e-6; with --p40 also SK and q = 3 at
-            p = 40 at 1e-5, which take long)
+            p = 40 at 1e-5, which take long; --cases NAME:P:TOL picks others)
 
 "seconds" are CPU seconds of this process (time.process_time) with one BLAS thread, so a busy
 machine does not inflate them; peak RSS is the process's maximum resident set.
@@ -32,13 +34,14 @@ import time
 import numpy as np
 
 from leadline.kernels.bath import evaluate_bath, run_bath
+from leadline.kernels.bath._engine import BathBreakdown
 from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.optimize import interpolate_angles
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 ANGLES = os.path.join(HERE, "data", "bath_angles.json")
 MIXTURES = ("sk", "q3", "q4", "mix24")
-SECTIONS = ("readout", "versus", "growth", "target")
+SECTIONS = ("readout", "versus", "growth", "target", "check")
 
 
 def _log(msg: str) -> None:
@@ -104,12 +107,45 @@ def versus_table(angles, ps, tol, record, rows):
         record()
 
 
+def check_table(angles, cases, tols, record, rows):
+    """The error estimate against the exact evaluation at INTERP angles beyond p = 12 (and the two
+    engines' CPU seconds, for the crossover): one row per (mixture, p, tolerance)."""
+    from leadline.kernels.exact import evaluate
+
+    for name, p in cases:
+        mix, g, b = schedule(angles, name, p)
+        c0 = time.process_time()
+        exact = evaluate(mix, g, b).value
+        t_exact = time.process_time() - c0
+        for tol in tols:
+            c0 = time.process_time()
+            res = evaluate_bath(mix, g, b, tolerance=tol)
+            t_bath = time.process_time() - c0
+            err = abs(res.value - exact)
+            rows.append({"name": name, "p": p, "tolerance": tol, "exact": exact, "exact_s": t_exact,
+                         "value": res.value, "error": err, "estimate": res.error_estimate, "bath_s": t_bath,
+                         "bounded": bool(err <= res.error_estimate), "largest_bond": res.run.largest_bond,
+                         "cutoff": res.run.cutoff, "limiting": res.limiting,
+                         "abandoned": sum(1 for r in res.ladder if r.get("value") is None)})
+            _log(f"check {name} p={p} tol {tol:g}: error {err:.1e} <= estimate {res.error_estimate:.1e}? "
+                 f"{err <= res.error_estimate}; exact {t_exact:.1f} s, bath {t_bath:.1f} s")
+            record()
+
+
 def growth_table(angles, names, ps, cutoff, record, rows, stop_after_s=600.0):
     for name in names:
         for p in ps:
             mix, g, b = schedule(angles, name, p)
             c0 = time.process_time()
-            r = run_bath(mix, g, b, fock=2, fock_max=40, fock_tol=cutoff**2, chi=1024, cutoff=cutoff)
+            try:
+                r = run_bath(mix, g, b, fock=2, fock_max=40, fock_tol=cutoff**2, chi=1024, cutoff=cutoff,
+                             check_psd=True)
+            except BathBreakdown as exc:  # the cut-off is too loose for this depth: deeper ones too
+                rows.append({"name": name, "p": p, "cutoff": cutoff, "breakdown_layer": exc.layer,
+                             "seconds": time.process_time() - c0})
+                _log(f"growth {name} p={p}: breakdown at layer {exc.layer}")
+                record()
+                break
             s = time.process_time() - c0
             rows.append({"name": name, "p": p, "cutoff": cutoff, "largest_bond": r.largest_bond, "seconds": s,
                          "max_fock": max(r.fock), "discarded": r.discarded, "value": r.value})
@@ -120,12 +156,21 @@ def growth_table(angles, names, ps, cutoff, record, rows, stop_after_s=600.0):
 
 
 def target_rows(angles, cases, record, rows):
-    for name, p, tol in cases:
+    for name, p, tol, *cap in cases:
         mix, g, b = schedule(angles, name, p)
         c0 = time.process_time()
+        last = {"k": -1}
+
+        def rung(k, cutoff, t, p_, bond, c0=c0):
+            if t == p_ or k != last["k"]:
+                last["k"] = k
+                _log(f"  {name} p={p_} run {k} cut-off {cutoff:.0e}: layer {t}, bond {bond}, "
+                     f"{time.process_time() - c0:.0f} CPU s")
+
         try:
-            res = evaluate_bath(mix, g, b, tolerance=tol)
-            row = {"name": name, "p": p, "tolerance": tol, "value": res.value, "estimate": res.error_estimate,
+            res = evaluate_bath(mix, g, b, tolerance=tol, progress=rung, **({"bond_cap": cap[0]} if cap else {}))
+            row = {"name": name, "p": p, "tolerance": tol, "bond_cap": res.run.chi, "value": res.value,
+                   "estimate": res.error_estimate,
                    "limiting": res.limiting, "largest_bond": res.run.largest_bond, "max_fock": max(res.run.fock),
                    "ladder": res.ladder}
         except ValueError as exc:
@@ -136,8 +181,10 @@ def target_rows(angles, cases, record, rows):
         record()
 
 
-def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS, growth_max=40,
-        growth_cutoff=1e-7, p40=False) -> dict:
+def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4], growth_max=40,
+        growth_cutoff=1e-7, p40=False, cases_arg=None, growth_names=None,
+        check_cases=("sk:17", "q3:17", "q4:17", "mix24:17", "sk:18", "sk:19", "sk:20"),
+        check_tols=(1e-6, 1e-8)) -> dict:
     """Run the measurements; returns a JSON-ready dict."""
     angles = load_angles()
     result = {"benchmark": "bath", "quick": quick}
@@ -158,9 +205,15 @@ def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS, gro
     if "versus" in sections:
         versus_table(angles, (10, 12, 14, 15, 16), 1e-8, record, rows("versus", []))
     if "growth" in sections:
-        growth_table(angles, MIXTURES, range(8, growth_max + 1, 8), growth_cutoff, record, rows("growth", []))
+        names = growth_names or MIXTURES
+        growth_table(angles, names, range(8, growth_max + 1, 8), growth_cutoff, record, rows("growth", []))
+    if "check" in sections:
+        cases = [(n, int(p)) for n, p in (c.split(":") for c in check_cases)]
+        check_table(angles, cases, check_tols, record, rows("check", []))
     if "target" in sections:
-        cases = [("sk", 24, 1e-6)] + ([("sk", 40, 1e-5), ("q3", 40, 1e-5)] if p40 else [])
+        cases = [("sk", 24, 1e-6)] + ([("q3", 40, 1e-5), ("sk", 40, 1e-5, 1024)] if p40 else [])
+        if cases_arg:
+            cases = [(c[0], int(c[1]), float(c[2]), *map(int, c[3:])) for c in (x.split(":") for x in cases_arg)]
         target_rows(angles, cases, record, rows("target", []))
     return result
 
@@ -168,14 +221,20 @@ def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS, gro
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
-    ap.add_argument("--section", nargs="+", choices=SECTIONS, default=list(SECTIONS))
+    ap.add_argument("--section", nargs="+", choices=SECTIONS, default=[s for s in SECTIONS if s != "check"])
     ap.add_argument("--growth-max", type=int, default=40)
     ap.add_argument("--growth-cutoff", type=float, default=1e-7)
+    ap.add_argument("--growth-names", nargs="+", choices=MIXTURES)
     ap.add_argument("--p40", action="store_true", help="target section: also SK and q = 3 at p = 40 (long)")
+    ap.add_argument("--cases", nargs="+",
+                    help="target section: these cases instead, as NAME:P:TOLERANCE[:BOND_CAP] (sk:40:1e-5:1024)")
+    ap.add_argument("--check", nargs="+", default=None, help="check section: NAME:P cases (default sk:17 .. sk:20)")
+    ap.add_argument("--check-tol", nargs="+", type=float, default=[1e-6, 1e-8])
     ap.add_argument("--json", help="write the results here (updated after every row)")
     args = ap.parse_args(argv)
     res = run(quick=args.quick, out_path=args.json, sections=args.section, growth_max=args.growth_max,
-              growth_cutoff=args.growth_cutoff, p40=args.p40)
+              growth_cutoff=args.growth_cutoff, p40=args.p40, cases_arg=args.cases, growth_names=args.growth_names,
+              check_tols=tuple(args.check_tol), **({"check_cases": tuple(args.check)} if args.check else {}))
     if not args.json:
         print(json.dumps(res, indent=1, default=float))
     return 0

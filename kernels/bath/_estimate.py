@@ -140,8 +140,8 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
             t_run = time.perf_counter()
             report = None if progress is None else (lambda t, p, bond, k=k, c=cutoff: progress(k, c, t, p, bond))
             try:
-                run = run_bath(mixture, g, b, fock=2, fock_max=fock_cap, fock_tol=fock_target(cutoff, tolerance), cutoff=cutoff,
-                               chi=bond_cap, engine=engine, deadline=deadline, progress=report, check_psd=True)
+                run = run_bath(mixture, g, b, fock=2, fock_max=fock_cap, fock_tol=fock_target(cutoff, tolerance),
+                               cutoff=cutoff, chi=bond_cap, engine=engine, deadline=deadline, progress=report, check_psd=True)
             except BathBreakdown as exc:  # too loose for this depth: worthless, try 10x tighter
                 ladder.append({"cutoff": cutoff, "value": None, "abandoned_at_layer": exc.layer,
                                "remainder": exc.remainder, "wall_time_s": time.perf_counter() - t_run})
