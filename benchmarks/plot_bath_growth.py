@@ -21,6 +21,7 @@ def plot(rows: list, out: str) -> None:
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
+    from matplotlib.ticker import FormatStrFormatter
 
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4))
     cutoffs = sorted({r["cutoff"] for r in rows})
@@ -35,7 +36,13 @@ def plot(rows: list, out: str) -> None:
         ax.set_xscale("log")
         ax.set_yscale("log")
         ax.set_xlabel("depth p")
+        ax.set_xticks([8, 16, 24, 32, 40])
+        ax.xaxis.set_major_formatter(FormatStrFormatter("%d"))
+        ax.xaxis.set_minor_formatter(FormatStrFormatter(""))
         ax.grid(True, which="both", alpha=0.3)
+    ax1.set_yticks([16, 32, 64, 128, 256])
+    ax1.yaxis.set_major_formatter(FormatStrFormatter("%d"))
+    ax1.yaxis.set_minor_formatter(FormatStrFormatter(""))
     ax1.set_ylabel("largest bond dimension")
     ax2.set_ylabel("CPU seconds of one run (one BLAS thread)")
     ax1.set_title(f"bond at cut-off {', '.join(f'{c:g}' for c in cutoffs)}")
