@@ -220,10 +220,11 @@ class BathBreakdown(ArithmeticError):
     1e-5, layer 27 at 1e-6, none to layer 40 at 1e-7); the ladder abandons such a run and goes
     on with a tighter cut-off.  ``layer``: 1-based layer at which it was detected."""
 
-    def __init__(self, layer: int, remainder: float):
+    def __init__(self, layer: int, remainder: float, bond: int = 0):
         super().__init__(f"bath not positive semidefinite at layer {layer} (relative Schur remainder {remainder:.1e})")
         self.layer = layer
         self.remainder = remainder
+        self.bond = bond  # largest bond of the state when it was detected
 
 
 def breakdown_threshold(discarded: float) -> float:
@@ -282,7 +283,7 @@ def readout_sweep(mixture, g, b, *, engine="mps", chi=None, cutoff=1e-16, fock=8
         rest = cholesky_row(C, t, row)
         rel_rest = rest / max(float(np.real(row[t])), 1e-300)
         if check_psd and rel_rest < breakdown_threshold(psi.discarded):
-            raise BathBreakdown(t + 1, rel_rest)
+            raise BathBreakdown(t + 1, rel_rest, max(psi.bond_dimensions(), default=1))
         if fock_tol is not None and engine != "dense":
             for k in range(t + 1):
                 need = levels_needed(pops[k] if k < t else np.ones(1), g[t] * C[t, k], dims[k], fock_max, fock_tol)

@@ -143,6 +143,11 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
                 run = run_bath(mixture, g, b, fock=2, fock_max=fock_cap, fock_tol=fock_target(cutoff, tolerance),
                                cutoff=cutoff, chi=bond_cap, engine=engine, deadline=deadline, progress=report, check_psd=True)
             except BathBreakdown as exc:  # too loose for this depth: worthless, try 10x tighter
+                if exc.bond >= bond_cap:  # ... unless the cap, not the cut-off, truncated it
+                    raise BathLimitError(
+                        f"cannot reach tolerance {tolerance:.1e}: the bond cap {bond_cap} binds (the run at cut-off "
+                        f"{cutoff:.0e} broke down at layer {exc.layer} with its bond at the cap); a larger --bond "
+                        f"needs more memory and time") from None
                 ladder.append({"cutoff": cutoff, "value": None, "abandoned_at_layer": exc.layer,
                                "remainder": exc.remainder, "wall_time_s": time.perf_counter() - t_run})
                 cutoff /= 10.0
