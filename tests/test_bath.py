@@ -317,6 +317,18 @@ def test_error_estimate_bounds_true_error_deeper(name, p):
     assert abs(res.value - exact) <= res.error_estimate <= 1e-6
 
 
+def test_per_layer_trace():
+    # one entry per layer; the relative Schur remainder of an accurate run lies in (0, 1]
+    # (1 at layer 1: the first bath row has no earlier modes; Cholesky of a positive definite matrix)
+    mix, g, b, _ = optimum("sk", 6)
+    trace = []
+    W, info = readout_sweep(mix, g, b, fock=12, chi=None, cutoff=1e-12, trace=trace)
+    assert len(trace) == 6 and trace[0]["remainder"] == pytest.approx(1.0)
+    assert all(0 < t["remainder"] <= 1 + 1e-12 for t in trace)
+    assert max(t["bond"] for t in trace) == max(info["states"][0].bond_dimensions())
+    assert [t["carried"] for t in trace] == [0] * 6
+
+
 def test_loose_cutoff_breakdown_is_abandoned():
     # SK at INTERP angles p = 14 (Zhou et al., PRX 10, 021067 (2020)) from the p = 12 optimum:
     # at cut-off 1e-4 the readout's W stops giving a positive semidefinite bath (measured at
