@@ -112,12 +112,14 @@ if where == "memory":
     from leadline.kernels.sparse import evaluate_sparse
     ev = evaluate_sparse(2, 3, g, b)
 else:
-    from leadline.cluster.sparse_vectors import ZarrBandStore
+    from leadline.cluster.sparse_vectors import LocalBandStore, ZarrBandStore
     from leadline.kernels.sparse import evaluate_chunked
     from leadline.storage.sparse_scratch import SparseScratch
     sc = SparseScratch.open(scratch, {"bench": p})
     if where == "disk":
-        ev = evaluate_chunked(2, 3, g, b, ZarrBandStore(sc, target_bits=bits), target_bits=bits, progress=progress)
+        store = LocalBandStore(sc, target_bits=bits)
+        ev = evaluate_chunked(2, 3, g, b, store, target_bits=bits, progress=progress)
+        store.close()
     else:
         from dask.distributed import Client, LocalCluster
         with LocalCluster(n_workers=workers, threads_per_worker=1, memory_limit=f"{gib}GiB", processes=True,
@@ -127,7 +129,9 @@ else:
             workers_rss = max(client.run(lambda: resource.getrusage(resource.RUSAGE_SELF).ru_maxrss).values())
     sc.remove()
 wall = time.perf_counter() - t0
-out = {"where": where, "p": p, "value": ev.value, "seconds": round(wall, 2),
+ru = resource.getrusage(resource.RUSAGE_SELF)
+out = {"where": where, "p": p, "value": ev.value, "seconds": round(wall, 2), "cpu_s": round(ru.ru_utime + ru.ru_stime, 2),
+       "sys_s": round(ru.ru_stime, 2), "load": [round(x, 2) for x in __import__("os").getloadavg()],
        "rss_mib": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1), "steps": steps}
 if where == "workers":
     out["worker_rss_mib"] = round(workers_rss / 1024, 1)
@@ -136,7 +140,7 @@ print(json.dumps(out))
 
 
 def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0, bits: int | None = None,
-                only: str | None = None) -> dict:
+                only: str | None = None, repeat: int = 1) -> dict:
     """In memory, then out of core (and on a local cluster if ``workers``), fresh processes, interleaved."""
     import os
     import subprocess
@@ -146,7 +150,7 @@ def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0,
     bits = bits or CHUNK_POINTS_BITS
     env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
     runs = []
-    for where in ["memory", "disk"] + (["workers"] if workers else []):
+    for where in (["memory", "disk"] + (["workers"] if workers else [])) * repeat:
         if only and where != only:
             continue
         r = subprocess.run([sys.executable, "-c", _CHILD, str(p), where, scratch, str(workers), str(worker_gib), str(bits)],
@@ -156,11 +160,16 @@ def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0,
         else:
             runs.append(json.loads(r.stdout.strip().splitlines()[-1]))
         print(json.dumps(runs[-1]), flush=True)
-    base = next((r["seconds"] for r in runs if r["where"] == "memory" and "seconds" in r), None)
-    for r in runs:
-        if base and "seconds" in r:
-            r["ratio_to_memory"] = round(r["seconds"] / base, 2)
-    return {"benchmark": "sparse-chunked", "p": p, "band_bits": bits, "runs": runs}
+    medians = {}
+    for where in ("memory", "disk", "workers"):
+        done = [r for r in runs if r["where"] == where and "seconds" in r]
+        if done:
+            medians[where] = {k: float(np.median([r[k] for r in done])) for k in ("seconds", "cpu_s", "rss_mib")}
+    if "memory" in medians:
+        for where, m in medians.items():
+            m["wall_ratio_to_memory"] = round(m["seconds"] / medians["memory"]["seconds"], 2)
+            m["cpu_ratio_to_memory"] = round(m["cpu_s"] / medians["memory"]["cpu_s"], 2)
+    return {"benchmark": "sparse-chunked", "p": p, "band_bits": bits, "runs": runs, "medians": medians}
 
 
 def run_published(pmax: int = 10) -> dict:
@@ -188,11 +197,12 @@ def main(argv=None) -> int:
     ap.add_argument("--worker-gib", type=float, default=6.0, help="memory limit of each worker (GiB)")
     ap.add_argument("--scratch", default="bench-sparse-scratch", help="scratch folder of the chunked runs")
     ap.add_argument("--band-bits", type=int, default=None, help="bands of about 2^BITS points")
+    ap.add_argument("--repeat", type=int, default=1, help="with --chunked: run the paths this many times, interleaved")
     ap.add_argument("--only", choices=["memory", "disk", "workers"], default=None, help="with --chunked: run only this path")
     ap.add_argument("--published", action="store_true", help="the MaxCut D = 3 ladder p = 1..10 against the table")
     a = ap.parse_args(argv)
     if a.chunked:
-        out = run_chunked(a.chunked, a.scratch, a.workers, a.worker_gib, a.band_bits, a.only)
+        out = run_chunked(a.chunked, a.scratch, a.workers, a.worker_gib, a.band_bits, a.only, a.repeat)
     elif a.published:
         out = run_published()
     else:

@@ -27,7 +27,7 @@ import numpy as np
 from leadline.kernels.sparse import rows_bits
 from leadline.storage.faults import crash_point
 
-__all__ = ["ZarrBandStore"]
+__all__ = ["ZarrBandStore", "LocalBandStore"]
 
 
 def _band_task(row_func, width, i, *blocks):
@@ -166,5 +166,244 @@ class ZarrBandStore:
     def finished(self):
         return self.scratch.finished()
 
-    def finish(self, m, residual):
-        self.scratch.finish(m, residual)
+    def state(self):
+        return self.scratch.state()
+
+    def finish(self, m, residual, state=None):
+        self.scratch.finish(m, residual, state)
+
+
+# --------------------------------------------------------------------------- out of core, direct I/O
+#: O_DIRECT needs buffers, offsets and sizes aligned to the device's block; 4096 covers the usual ones
+_ALIGN = 4096
+
+
+def _aligned(n: int) -> np.ndarray:
+    """An uninitialized complex buffer of n points, page aligned (anonymous mmap)."""
+    import mmap
+
+    return np.frombuffer(mmap.mmap(-1, 16 * max(n, 1)), dtype=complex)[:n]
+
+
+class _Chunks:
+    """Whole-chunk reads and writes of the uncompressed Zarr arrays of a scratch folder, with
+    O_DIRECT where the file system and the chunk size allow it (else ordinary buffered I/O)."""
+
+    def __init__(self):
+        import os
+
+        self.direct = getattr(os, "O_DIRECT", 0)
+
+    def _open(self, path, flags, nbytes):
+        import os
+
+        if self.direct and nbytes % _ALIGN == 0:
+            try:
+                return os.open(path, flags | self.direct, 0o644)
+            except OSError:  # tmpfs and some network file systems refuse O_DIRECT
+                self.direct = 0
+        return os.open(path, flags, 0o644)
+
+    def write(self, path, buf: np.ndarray) -> None:
+        import os
+
+        fd = self._open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, buf.nbytes)
+        try:
+            view = memoryview(buf).cast("B")
+            done = 0
+            while done < buf.nbytes:
+                done += os.pwrite(fd, view[done:], done)
+        finally:
+            os.close(fd)
+
+    def read(self, path, buf: np.ndarray) -> np.ndarray:
+        import os
+
+        fd = self._open(path, os.O_RDONLY, buf.nbytes)
+        try:
+            view = memoryview(buf).cast("B")
+            done = 0
+            while done < buf.nbytes:
+                got = os.preadv(fd, [view[done:]], done)
+                if got <= 0:
+                    raise OSError(f"{path}: chunk file shorter than {buf.nbytes} bytes")
+                done += got
+        finally:
+            os.close(fd)
+        return buf
+
+
+class LocalBandStore:
+    """Vector store of a chunked sparse evaluation out of core, in this process, without Dask.
+
+    Every vector is an uncompressed Zarr v3 array in the scratch folder (the same layout as
+    :class:`ZarrBandStore`: rows of a band x a block of columns per chunk, readable with plain
+    zarr), but this class reads and writes the chunk files itself: whole chunks, page-aligned
+    buffers, O_DIRECT (measured on the development machine: writing through the page cache cost
+    5x the time and most of it CPU; docs/performance.md), and a few I/O threads that read the
+    next band and write the previous one while this thread computes (the transform's arithmetic
+    and the file I/O overlap).  The column pass transforms the output array in place (column
+    blocks are disjoint), so a transform needs no second copy on disk.
+    """
+
+    def __init__(self, scratch, *, target_bits: int, io_threads: int = 2):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self.scratch = scratch
+        self.target_bits = int(target_bits)
+        self.files = _Chunks()
+        self.pool = ThreadPoolExecutor(max_workers=io_threads, thread_name_prefix="sparse-io")
+        self.passes = 0
+
+    def close(self):
+        self.pool.shutdown(wait=True)
+
+    # ---------------------------------------------------------------- layout
+    def _layout(self, n: int, bands: int):
+        B = rows_bits(n)
+        R, W = 1 << B, 1 << (n - B)
+        cols = max(1, min(W, (1 << self.target_bits) >> B))
+        return (R, W), (R // bands, cols)
+
+    def _create(self, name, n, bands):
+        shape, chunks = self._layout(n, bands)
+        self.scratch.create(name, shape, chunks)
+        for i in range(shape[0] // chunks[0]):
+            self.scratch.chunk_path(name, i, 0).parent.mkdir(parents=True, exist_ok=True)
+        return shape, chunks
+
+    def _meta(self, name):
+        arr = self.scratch.array(name)
+        return arr.shape, arr.chunks
+
+    def _read_rows(self, name, meta, r0, r1) -> np.ndarray:
+        """Rows r0..r1-1 of array ``name`` (whole row-chunks read, then sliced), flat."""
+        (R, W), (rc, cc) = meta
+        i0, i1 = r0 // rc, -(-r1 // rc)
+        nc = W // cc
+        buf = _aligned((i1 - i0) * rc * W).reshape(i1 - i0, nc, rc, cc)
+        for i in range(i0, i1):
+            for j in range(nc):
+                self.files.read(self.scratch.chunk_path(name, i, j), buf[i - i0, j])
+        rows = buf.transpose(0, 2, 1, 3).reshape((i1 - i0) * rc, W)
+        return rows[r0 - i0 * rc : r1 - i0 * rc].reshape(-1)
+
+    def _read_flat(self, name, meta, a, b) -> np.ndarray:
+        (R, W), _ = meta
+        r0, r1 = a // W, -(-b // W)
+        rows = self._read_rows(name, meta, r0, r1)
+        return rows[a - r0 * W : b - r0 * W]
+
+    def _write_band(self, name, meta, i, band):
+        """Band i (rows of one row-chunk) of array ``name``, as its chunk files."""
+        (R, W), (rc, cc) = meta
+        b2 = band.reshape(rc, W)
+        tile = _aligned(rc * cc).reshape(rc, cc)
+        for j in range(W // cc):
+            tile[...] = b2[:, j * cc : (j + 1) * cc]
+            self.files.write(self.scratch.chunk_path(name, i, j), tile)
+
+    def _read_column(self, name, meta, j) -> np.ndarray:
+        (R, W), (rc, cc) = meta
+        buf = _aligned(R * cc).reshape(R, cc)
+        for i in range(R // rc):
+            self.files.read(self.scratch.chunk_path(name, i, j), buf[i * rc : (i + 1) * rc])
+        return buf
+
+    def _write_column(self, name, meta, j, block):
+        (R, W), (rc, cc) = meta
+        block = block if block.flags.c_contiguous and block.ctypes.data % _ALIGN == 0 else self._copy_aligned(block)
+        for i in range(R // rc):
+            self.files.write(self.scratch.chunk_path(name, i, j), block[i * rc : (i + 1) * rc])
+
+    @staticmethod
+    def _copy_aligned(block):
+        out = _aligned(block.size).reshape(block.shape)
+        out[...] = block
+        return out
+
+    def _pipeline(self, count, load, work, store) -> None:
+        """for t in range(count): store(t, work(t, load(t))), with load(t + 1) and store(t - 1)
+        running on the I/O threads while work(t) runs here; an error anywhere stops the loop and
+        is raised after the writes in flight have ended (a failed store is never silent)."""
+        pending = []  # writes in flight (at most two: bounded memory)
+        nxt = self.pool.submit(load, 0) if count else None
+        try:
+            for t in range(count):
+                data = nxt.result()
+                nxt = self.pool.submit(load, t + 1) if t + 1 < count else None
+                out = work(t, data)
+                del data
+                pending.append(self.pool.submit(store, t, out))
+                del out
+                while len(pending) > 1:
+                    pending.pop(0).result()
+        finally:
+            for f in pending + ([nxt] if nxt is not None else []):
+                f.exception()  # wait for it
+        for f in pending:
+            f.result()
+
+    # ---------------------------------------------------------------- protocol
+    def put(self, name, flat):
+        flat = np.asarray(flat, dtype=complex).reshape(-1)
+        n = flat.size.bit_length() - 1
+        meta = self._create(name, n, 1)
+        self._write_band(name, meta, 0, flat)
+
+    def get(self, name):
+        meta = self._meta(name)
+        return self._read_rows(name, meta, 0, meta[0][0]).copy()
+
+    def values(self, name, idx):
+        arr = self.scratch.array(name)
+        W = arr.shape[1]
+        return np.array([arr[int(i) // W, int(i) % W] for i in idx], dtype=complex)
+
+    def drop(self, name):
+        self.scratch.delete(name)
+
+    def transform(self, out, row_func, srcs, out_n, bands, col_func=None):
+        srcs = [srcs] if isinstance(srcs, str) else list(srcs)
+        metas = [self._meta(s) for s in srcs]
+        sizes = [m[0][0] * m[0][1] for m in metas]
+        meta = self._create(out, out_n, bands)
+        partials = [None] * bands
+
+        def load(i):
+            return [self._read_flat(s, m, i * (S // bands), (i + 1) * (S // bands)) for s, m, S in zip(srcs, metas, sizes)]
+
+        def work(i, parts):
+            band, part = (lambda r: r if isinstance(r, tuple) else (r, None))(row_func(*parts, i))
+            partials[i] = part
+            return band
+
+        self._pipeline(bands, load, work, lambda i, band: self._write_band(out, meta, i, band))
+        self.passes += 1
+        if col_func is not None:
+            (R, W), (rc, cc) = meta
+            self._pipeline(W // cc, lambda j: self._read_column(out, meta, j), lambda j, blk: col_func(blk),
+                           lambda j, blk: self._write_column(out, meta, j, blk))
+            self.passes += 1
+        return partials
+
+    def reduce(self, func, src, bands):
+        meta = self._meta(src)
+        S = meta[0][0] * meta[0][1]
+        out = [None] * bands
+
+        def work(i, x):
+            out[i] = func(x, i)
+
+        self._pipeline(bands, lambda i: self._read_flat(src, meta, i * (S // bands), (i + 1) * (S // bands)), work,
+                       lambda i, r: None)
+        return out
+
+    def finished(self):
+        return self.scratch.finished()
+
+    def state(self):
+        return self.scratch.state()
+
+    def finish(self, m, residual, state=None):
+        self.scratch.finish(m, residual, state)

@@ -161,6 +161,35 @@ def test_kill_9_during_checkpointed_evaluation_resumes_without_recomputing(tmp_p
     assert not scratch.exists()  # removed after success
 
 
+def test_kill_9_during_the_reverse_sweep_resumes_without_recomputing(tmp_path):
+    """The gradient's reverse sweep is checkpointed stage by stage like the forward steps: killed
+    after its second stage (the root's adjoint, then step 7), the resumed run computes only the
+    stages after it and gives the uninterrupted gradient."""
+    from leadline.kernels.sparse import reverse_stage
+
+    p = 7
+    scratch = tmp_path / "scratch"
+    audit = tmp_path / "audit.txt"
+    env = {"LEADLINE_CHUNK_AUDIT": str(audit)}
+    # finish calls: steps 2..7 (6), the root (7th), the root's adjoint (8th), reverse step 7 (9th)
+    first = _evaluate_cli(tmp_path, p, scratch, {**env, "LEADLINE_CRASH_AT": "sparse-step-finished:9"}, ["--gradient"])
+    assert first.returncode == -signal.SIGKILL, first.stderr
+    assert json.loads((scratch / "progress.json").read_text())["step"] == reverse_stage(p, 7)
+    second = _evaluate_cli(tmp_path, p, scratch, env, ["--gradient"])
+    assert second.returncode == 0, second.stderr
+    assert "resuming after reverse sweep step 7" in second.stderr
+    assert "reverse sweep: step 6 done" in second.stderr
+    assert "reverse sweep: step 7 done" not in second.stderr and "step 7/7 done" not in second.stderr
+    stages = sorted(map(int, audit.read_text().split()[1::2]))
+    assert stages == list(range(2, reverse_stage(p, 3) + 1))  # every checkpoint written once over both runs
+    here = json.loads(_evaluate_cli(tmp_path, p, None, None, ["--gradient"]).stdout)
+    got = json.loads(second.stdout)
+    assert got["value"] == pytest.approx(here["value"], abs=1e-14)
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(got["gradient"][k], here["gradient"][k], rtol=0, atol=1e-14)
+    assert not scratch.exists()
+
+
 def _refused(r, words):
     assert r.returncode == 2, (r.returncode, r.stderr)
     lines = r.stderr.strip().splitlines()

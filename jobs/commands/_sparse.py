@@ -233,6 +233,16 @@ def transform_map(settings):
         yield ex.run_map
 
 
+def _stage_name(done: int, p: int) -> str:
+    """A checkpoint of a chunked evaluation in words (kernels.sparse ``reverse_stage`` numbering)."""
+    if done <= p:
+        return f"step {done}"
+    if done == p + 1:
+        return "the root"
+    m = 2 * p + 3 - done
+    return "the reverse sweep's root" if m == p + 1 else f"reverse sweep step {m}"
+
+
 @contextlib.contextmanager
 def scratch_runner(path: SparsePath, settings, label=None, client=None):
     """``chunked(q, D, g, b, gradient)`` for :func:`evaluate_sparse`: each evaluation in the scratch
@@ -241,7 +251,7 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
     ``label`` (the optimizer) every evaluation uses the subfolder "<label>" afresh."""
     import time
 
-    from leadline.cluster.sparse_vectors import ZarrBandStore
+    from leadline.cluster.sparse_vectors import LocalBandStore, ZarrBandStore
     from leadline.kernels.sparse import CHUNK_POINTS_BITS, evaluate_chunked
     from leadline.storage.errors import StoreError
     from leadline.storage.sparse_scratch import SparseScratch
@@ -263,7 +273,7 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
             raise InputError(str(exc)) from None
         p = g.size
         if not quiet and (label is None or not announced):
-            typer.echo(path.describe(p) + (f"; resuming after step {scratch.finished()[0]}" if scratch.resumed else ""),
+            typer.echo(path.describe(p) + (f"; resuming after {_stage_name(scratch.finished()[0], p)}" if scratch.resumed else ""),
                        err=True)
             announced.append(p)
         start = time.perf_counter()
@@ -274,8 +284,13 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
                     "reverse sweep: root" if -m > p else f"reverse sweep: step {-m}")
                 typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
 
-        store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=client)
-        ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        store = (ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=client) if client is not None
+                 else LocalBandStore(scratch, target_bits=CHUNK_POINTS_BITS))
+        try:
+            ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        finally:
+            if client is None:
+                store.close()
         scratch.remove()
         return ev
 
