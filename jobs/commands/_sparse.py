@@ -105,15 +105,18 @@ SCRATCH_HELP = ("Sparse ensembles: keep the step vectors as Zarr arrays in this 
                 "every worker sees) and record every finished step there, so a killed run given the same folder "
                 "resumes after its last finished step. Removed after success.")
 
-#: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py:
-#: the root's input, its outer transform and that transform's row-pass copy)
-SCRATCH_VECTORS = 3.0
+#: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py):
+#: out of core the root's input and its outer transform (the column pass works in place); on
+#: workers that exchange through the folder also the transform's row-pass copy
+SCRATCH_VECTORS = 2.0
+SCRATCH_VECTORS_WORKERS = 3.0
 #: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25 = 1.67), plus
 #: at most three more of the last size at once (the root's outer transform, an adjoint and its
 #: row-pass copy): 4.7 counted from the order of writes in kernels/sparse/_chunked.py, rounded up
 SCRATCH_VECTORS_GRADIENT = 6.0
-#: complex numbers a task of the chunked path holds at most, in bands of 2^CHUNK_POINTS_BITS points
-#: (a band in, a band out, a column block and a transform scratch)
+#: complex numbers a task of the chunked path holds at most, in bands or column blocks (a band in, a
+#: band out, a column block and a transform scratch; out of core: a block read ahead, one computed,
+#: two being written)
 BANDS_PER_TASK = 4
 #: leave this much of the scratch file system free (other users of a shared disk)
 DISK_MARGIN = 1.1
@@ -192,13 +195,16 @@ def plan_sparse_path(p: int, settings, scratch: str | None, gradient: bool, opti
     if scratch is None:
         check_sparse_depth(p, settings, option, gradient=gradient)
         return SparsePath("memory", SPARSE_VECTORS * vec * (GRADIENT_MEMORY_FACTOR if gradient else 1.0), 0.0)
-    disk = (SCRATCH_VECTORS_GRADIENT if gradient else SCRATCH_VECTORS) * vec
+    disk = (SCRATCH_VECTORS_GRADIENT if gradient else SCRATCH_VECTORS_WORKERS if distributed else SCRATCH_VECTORS) * vec
     path = check_scratch(scratch, disk)
     task = BANDS_PER_TASK * 16.0 * 2**CHUNK_POINTS_BITS
     if distributed:
         workers = max(1, int(getattr(settings, "workers", None) or 1))
         # a transform's row bands and their rechunked copy, spread over the workers
         return SparsePath("workers", max(task, 2.0 * vec / workers), disk, path)
+    from leadline.cluster.sparse_vectors import LocalBandStore
+
+    task = BANDS_PER_TASK * 16.0 * LocalBandStore.largest_block(p, CHUNK_POINTS_BITS)
     return SparsePath("disk", min(task, 2.5 * vec), disk, path)
 
 
