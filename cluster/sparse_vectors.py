@@ -172,6 +172,9 @@ class ZarrBandStore:
     def finish(self, m, residual, state=None):
         self.scratch.finish(m, residual, state)
 
+    def rewind(self, m, residual):
+        self.scratch.rewind(m, residual)
+
 
 # --------------------------------------------------------------------------- out of core, direct I/O
 #: the smallest chunk file of :class:`LocalBandStore` (2^15 points, 512 KiB) where the vector allows
@@ -249,8 +252,12 @@ class LocalBandStore:
     5x the time and most of it CPU; docs/performance.md), and a few I/O threads that read the
     next band and write the previous one while this thread computes (the transform's arithmetic
     and the file I/O overlap).  The column pass transforms the output array in place (column
-    blocks are disjoint), so a transform needs no second copy on disk.
+    blocks are disjoint), so a transform needs no second copy on disk; a transform whose output
+    has its source's name overwrites the source band by band (``in_place``: the root's transform,
+    which then needs no room beside the largest vector).
     """
+
+    in_place = True
 
     def __init__(self, scratch, *, target_bits: int, io_threads: int = 2):
         from concurrent.futures import ThreadPoolExecutor
@@ -322,13 +329,16 @@ class LocalBandStore:
         return rows[a - r0 * W : b - r0 * W]
 
     def _write_band(self, name, meta, i, band):
-        """Band i (rows of one row-chunk) of array ``name``, as its chunk files."""
+        """Band i (whole row-chunks: band i of the array cut into bands of ``band.size`` points) of
+        array ``name``, as its chunk files."""
         (R, W), (rc, cc) = meta
-        b2 = band.reshape(rc, W)
+        per = band.size // (rc * W)  # row-chunks per band
+        b3 = band.reshape(per, rc, W)
         tile = _aligned(rc * cc).reshape(rc, cc)
-        for j in range(W // cc):
-            tile[...] = b2[:, j * cc : (j + 1) * cc]
-            self.files.write(self.scratch.chunk_path(name, i, j), tile)
+        for ii in range(per):
+            for j in range(W // cc):
+                tile[...] = b3[ii, :, j * cc : (j + 1) * cc]
+                self.files.write(self.scratch.chunk_path(name, i * per + ii, j), tile)
 
     def _read_column(self, name, meta, j) -> np.ndarray:
         (R, W), (rc, cc) = meta
@@ -394,7 +404,13 @@ class LocalBandStore:
         srcs = [srcs] if isinstance(srcs, str) else list(srcs)
         metas = [self._meta(s) for s in srcs]
         sizes = [m[0][0] * m[0][1] for m in metas]
-        meta = self._create(out, out_n, bands)
+        if out in srcs:  # in place: band i is read before it is overwritten, and no other band reads it
+            meta = metas[0]
+            (R, W), (rc, cc) = meta
+            if srcs != [out] or sizes[0] != 1 << out_n or (R // bands) % rc:
+                raise ValueError(f"transform of {out!r} in place needs it as the only source, cut into whole row-chunks")
+        else:
+            meta = self._create(out, out_n, bands)
         partials = [None] * bands
 
         def load(i):
@@ -405,7 +421,11 @@ class LocalBandStore:
             partials[i] = part
             return band
 
-        self._pipeline(bands, load, work, lambda i, band: self._write_band(out, meta, i, band))
+        def store(i, band):
+            self._write_band(out, meta, i, band)
+            crash_point("sparse-band-written")
+
+        self._pipeline(bands, load, work, store)
         self.passes += 1
         if col_func is not None:
             (R, W), (rc, cc) = meta
@@ -434,3 +454,6 @@ class LocalBandStore:
 
     def finish(self, m, residual, state=None):
         self.scratch.finish(m, residual, state)
+
+    def rewind(self, m, residual):
+        self.scratch.rewind(m, residual)

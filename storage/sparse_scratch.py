@@ -124,5 +124,10 @@ class SparseScratch:
         witness("sparse-step", [step])
         crash_point("sparse-step-finished")
 
+    def rewind(self, step: int, residual: float) -> None:
+        """Record ``step`` as the last finished one again (its vector is still complete; the next
+        step's is about to be overwritten in place), without counting it as a newly finished step."""
+        _write_json(self.path / PROGRESS, {"step": int(step), "sum_fH": float(residual), "state": None})
+
     def remove(self) -> None:
         shutil.rmtree(self.path, ignore_errors=True)

@@ -182,6 +182,25 @@ def test_kill_9_during_checkpointed_evaluation_resumes_without_recomputing(tmp_p
     assert not scratch.exists()  # removed after success
 
 
+def test_kill_9_while_the_root_overwrites_the_last_step_in_place(tmp_path):
+    """Out of core the root's transform overwrites the last step's vector band by band (no room for a
+    second copy of the largest vector); killed after it wrote a band, the run resumes at that step
+    (its input is kept until the root is done) and gives the same value."""
+    p = 7
+    scratch = tmp_path / "scratch"
+    # one band per transform at p = 7: steps 3..7 write 10 bands, the root's transform the 11th
+    first = _evaluate_cli(tmp_path, p, scratch, {"LEADLINE_CRASH_AT": "sparse-band-written:11"})
+    assert first.returncode == -signal.SIGKILL, first.stderr
+    assert "step 7/7 done" in first.stderr
+    assert json.loads((scratch / "progress.json").read_text())["step"] == 6
+    second = _evaluate_cli(tmp_path, p, scratch)
+    assert second.returncode == 0, second.stderr
+    assert "resuming after step 6" in second.stderr and "step 7/7 done" in second.stderr
+    g, b = _angles(p, 3, 5)  # the angles of _evaluate_cli
+    assert json.loads(second.stdout)["value"] == pytest.approx(evaluate_sparse(2, 3, g, b).value, abs=1e-14)
+    assert not scratch.exists()
+
+
 def test_kill_9_during_the_reverse_sweep_resumes_without_recomputing(tmp_path):
     """The gradient's reverse sweep is checkpointed stage by stage like the forward steps: killed
     after its second stage (the root's adjoint, then step 7), the resumed run computes only the

@@ -106,9 +106,10 @@ SCRATCH_HELP = ("Sparse ensembles: keep the step vectors as Zarr arrays in this 
                 "resumes after its last finished step. Removed after success.")
 
 #: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py):
-#: out of core the root's input and its outer transform (the column pass works in place); on
-#: workers that exchange through the folder also the transform's row-pass copy
-SCRATCH_VECTORS = 2.0
+#: out of core step p's input, outer transform and result (1/4 + 1/4 + 1: the column pass and the
+#: root's transform work in place); on workers the root's input, its outer transform and the
+#: transform's row-pass copy when they exchange through the folder
+SCRATCH_VECTORS = 1.5
 SCRATCH_VECTORS_WORKERS = 3.0
 #: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25 = 1.67), plus
 #: at most three more of the last size at once (the root's outer transform, an adjoint and its

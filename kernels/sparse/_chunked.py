@@ -26,6 +26,8 @@ has the Zarr/Dask one) -- all a recursion needs:
     reduce(func, src, bands) -> [func(band_i, i) for every band], in band order
     values(name, flat_indices) -> array;  put(name, flat);  get(name) -> flat;  drop(name)
     finished() -> (last finished step, its residual max) or (0, 0.0);  finish(m, residual, state=None)
+    rewind(m, residual): record m as the last finished step again (no new step: before a vector is
+        overwritten in place); optional ``in_place`` attribute: transform(out, ..., srcs=[out]) works
     state() -> the JSON-able ``state`` of the last finish (the root's sum, the angle adjoints so far)
 
 Checkpoints: ``finish(m, ...)`` is called once ``h{m}`` is complete; a store that persists
@@ -252,6 +254,9 @@ class BandStore:
         self._done = (m, residual)
         self._state = state
 
+    def rewind(self, m, residual):
+        self._done = (m, residual)
+
 
 # --------------------------------------------------------------------------- the recursion
 def _combine_spec(spec, parts) -> None:
@@ -310,6 +315,12 @@ def evaluate_chunked(q, degree, gamma, beta, store, *, gradient: bool = False,
     def layout(m):
         return band_bits(2 * m - 3, m, target_bits - 2)  # the step's X has 4x the points of phat
 
+    # the root's transform may overwrite z{p} (a store that can, no reverse sweep that needs z{p}, and
+    # its bands whole row-chunks of z{p}): the largest vector then needs no second copy beside it
+    kr = band_bits(2 * p - 1, p + 1, target_bits)
+    in_place = bool(getattr(store, "in_place", False)) and not gradient and kr <= layout(p)
+    root_in = f"z{p}" if in_place else "phat_root"
+
     for m in range(done + 1, p + 1):
         ts = time.perf_counter()
         N = 1 << n_sites(m)
@@ -328,25 +339,27 @@ def evaluate_chunked(q, degree, gamma, beta, store, *, gradient: bool = False,
         store.finish(m, dev_max)
         if not gradient:
             store.drop(phat)
-            store.drop(f"z{m - 1}")
+            if not (m == p and in_place):
+                store.drop(f"z{m - 1}")
         transforms += 2
         report(m, ts)
     # root: the same with the single middle site (time 0); with the gradient it is a checkpoint too
     N = 1 << n_sites(p)
     coef = 0.5j * float(2**q) / N
-    kr = band_bits(2 * p - 1, p + 1, target_bits)
     if done <= p:
         ts = time.perf_counter()
         sp = _Split(p, b, 1, True)
-        store.transform("phat_root", functools.partial(_outer_band, A2=0.5 * sp.A, B=sp.B, D=D), f"z{p}", 2 * p - 1,
+        if in_place:  # z{p} is about to be overwritten: a run killed from here on redoes step p from z{p-1}
+            store.rewind(p - 1, dev_max)
+        store.transform(root_in, functools.partial(_outer_band, A2=0.5 * sp.A, B=sp.B, D=D), f"z{p}", 2 * p - 1,
                         1 << kr, functools.partial(_column_block, k=kr))
         R1 = 1 << (sp.nr - 1)
-        total = _Split(p, b, 1, False).M[0] @ store.values("phat_root", [0, R1, 2 * R1, 3 * R1])
+        total = _Split(p, b, 1, False).M[0] @ store.values(root_in, [0, R1, 2 * R1, 3 * R1])
         root_norm = abs(2.0 * total - 1.0)
         check(root_norm, p, "root")
         dev_max = max(dev_max, root_norm)
         spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
-        parts = store.reduce(functools.partial(_root_band, M=sp.M, spec=spec, q=q, p=p), "phat_root", 1 << kr)
+        parts = store.reduce(functools.partial(_root_band, M=sp.M, spec=spec, q=q, p=p), root_in, 1 << kr)
         acc = complex(np.sum(np.array(parts, dtype=complex)))
         transforms += 1
         if gradient:
@@ -362,7 +375,8 @@ def evaluate_chunked(q, degree, gamma, beta, store, *, gradient: bool = False,
         grad = _backward_chunked(q, D, g, b, coef, store, small_L, T, tmp, layout, kr, residuals, report, acc)
         transforms += 3 * (p - 2) + 2 + 4
     else:
-        store.drop("phat_root")
+        store.drop(root_in)
+        store.drop(f"z{p - 1}")
     return _result(q, D, g, b, corr, residuals, grad, t0, transforms)
 
 
