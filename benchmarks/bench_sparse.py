@@ -124,8 +124,13 @@ else:
         from dask.distributed import Client, LocalCluster
         with LocalCluster(n_workers=workers, threads_per_worker=1, memory_limit=f"{gib}GiB", processes=True,
                           dashboard_address=None, host="127.0.0.1") as cl, Client(cl) as client:
+            def cpu():
+                ru = resource.getrusage(resource.RUSAGE_SELF)
+                return ru.ru_utime + ru.ru_stime
+            c0 = sum(client.run(cpu).values())
             ev = evaluate_chunked(2, 3, g, b, ZarrBandStore(sc, target_bits=bits, client=client), target_bits=bits,
                                   progress=progress)
+            workers_cpu = sum(client.run(cpu).values()) - c0
             workers_rss = max(client.run(lambda: resource.getrusage(resource.RUSAGE_SELF).ru_maxrss).values())
     sc.remove()
 wall = time.perf_counter() - t0
@@ -135,6 +140,7 @@ out = {"where": where, "p": p, "value": ev.value, "seconds": round(wall, 2), "cp
        "rss_mib": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1), "steps": steps}
 if where == "workers":
     out["worker_rss_mib"] = round(workers_rss / 1024, 1)
+    out["workers_cpu_s"] = round(workers_cpu, 2)
 print(json.dumps(out))
 """
 
