@@ -138,9 +138,9 @@ class SparsePath:
         if self.kind == "disk":
             return (f"sparse path = out of core, about {_size(self.memory_bytes)} per process, "
                     f"{_size(self.disk_bytes)} in {self.scratch}")
-        return (f"sparse path = on the Dask workers, up to {_size(self.memory_bytes)} per worker (a transform that "
-                f"does not fit in half the workers' memory exchanges through the folder instead), "
-                f"{_size(self.disk_bytes)} in {self.scratch}")
+        return (f"sparse path = on the Dask workers, up to {_size(self.memory_bytes)} per worker (workers on this "
+                f"machine, and a transform that does not fit in half the workers' memory, exchange through the "
+                f"folder), {_size(self.disk_bytes)} in {self.scratch}")
 
 
 def _size(nbytes: float) -> str:
