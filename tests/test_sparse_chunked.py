@@ -118,6 +118,8 @@ def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
         with Client(cluster.address, timeout=30) as client:
             cluster.wait_for_workers(client, 2)
             store = _zarr_store(tmp_path, "rechunk", target=10, client=client)
+            # left to choose, the store exchanges through the folder: every worker is on this machine
+            assert type(store)(store.scratch, target_bits=10, client=client).exchange_for(10) == "disk"
             killed = {}
             stop = threading.Event()
 
@@ -229,6 +231,22 @@ def test_kill_9_during_the_reverse_sweep_resumes_without_recomputing(tmp_path):
     for k in ("gamma", "beta"):
         np.testing.assert_allclose(got["gradient"][k], here.gradient[k], rtol=0, atol=1e-14)
     assert not scratch.exists()
+
+
+def test_scratch_on_a_local_cluster_from_the_command_line(tmp_path):
+    """`evaluate --scratch DIR --executor local`: the vectors on two Dask worker processes (exchange
+    through DIR, the local-cluster default), value and gradient equal to the in-memory recursion."""
+    p = 6
+    r = _evaluate_cli(tmp_path, p, tmp_path / "scratch", None, ["--gradient", "--executor", "local", "--workers", "2"])
+    assert r.returncode == 0, r.stderr
+    assert "sparse path = on the Dask workers" in r.stderr
+    g, b = _angles(p, 3, 5)  # the angles of _evaluate_cli
+    here = evaluate_sparse(2, 3, g, b, gradient=True)
+    got = json.loads(r.stdout)
+    assert got["value"] == pytest.approx(here.value, abs=1e-14)
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(got["gradient"][k], here.gradient[k], rtol=0, atol=1e-14)
+    assert not (tmp_path / "scratch").exists()
 
 
 def _refused(r, words):
