@@ -122,7 +122,7 @@ class VectorFiles:
             os.close(fd)
 
     def read_chunk(self, path, buf: np.ndarray) -> np.ndarray:
-        fd = self._open(path, os.O_RDONLY, buf.nbytes)
+        fd = self._open(path, os.O_RDONLY, buf.nbytes if buf.ctypes.data % _ALIGN == 0 else 1)
         try:
             view = memoryview(buf).cast("B")
             done = 0
