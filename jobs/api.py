@@ -495,6 +495,12 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
                          ensemble=ensemble_json(q, D))
 
 
+def sparse_default_restarts(p: int) -> int:
+    """Seeded extra starts of the sparse ladder at depth p when none are asked for (INTERP alone
+    suffices past p = 6: measured on MaxCut D = 3 up to p = 10, benchmarks/bench_sparse.py --published)."""
+    return 3 if p <= 2 else 1 if p <= 6 else 0
+
+
 def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol, max_iterations, ensemble,
                   evaluate_kw=None) -> Ladder:
     """The depth loop shared by :func:`optimize_sparse` and ``leadline optimize --sparse-q``."""
@@ -503,7 +509,7 @@ def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol,
     previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
     ladder, result = [], None
     for p in range(first, depth + 1):
-        n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
+        n_restarts = restarts if restarts is not None else sparse_default_restarts(p)
         result = kernel(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
                         seed=seed, gtol=gradient_tol, maxiter=max_iterations, evaluate_kw=evaluate_kw)
         previous, previous_value = (result.gamma, result.beta), result.value
