@@ -164,7 +164,7 @@ def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0,
 
 
 def run_published(pmax: int = 10) -> dict:
-    from leadline.jobs.api import sparse_ladder
+    from leadline.jobs.ladders import sparse_ladder
     from leadline.kernels.sparse import optimize_sparse
 
     t0 = time.perf_counter()
