@@ -645,6 +645,12 @@ def status(store: str | Path) -> dict:
     one in progress, what is left, the writer (if any) and the estimated time left.
 
     Reads only (never takes the lock), so it works while a sweep runs.
+
+    Returns
+    -------
+    dict
+        ``complete``, ``depths``, ``ensembles`` (per ensemble: ``done``, ``running``, ``todo``),
+        ``lock``, ``estimated_seconds_left``, ... (docs/store.md).
     """
     return open_study(store).progress()
 
