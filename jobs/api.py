@@ -628,6 +628,10 @@ def resume(store: str | Path, *, executor: str | None = None, scheduler: str | N
     StudyRun
         As :func:`sweep`; ``.to_json()`` is what ``leadline resume --json`` prints.
     """
+    import os
+
+    from leadline.kernels.exact import IMPLEMENTATION_ENV
+
     from .commands import sweep as command
 
     _where_overrides(workers, batch_file)
@@ -636,8 +640,15 @@ def resume(store: str | Path, *, executor: str | None = None, scheduler: str | N
     def prepare():
         return command.prepare_resume(path, executor, scheduler, workers, batch_file, quiet)
 
-    return _run_study(prepare, lambda spec: command.open_for_resume(path), creating=False,
-                      store_path=lambda s: path, quiet=quiet)
+    kernel = os.environ.get(IMPLEMENTATION_ENV)
+    try:
+        return _run_study(prepare, lambda spec: command.open_for_resume(path), creating=False,
+                          store_path=lambda s: path, quiet=quiet)
+    finally:  # the study's chunk kernel is pinned for the resume only, not for the rest of the session
+        if kernel is None:
+            os.environ.pop(IMPLEMENTATION_ENV, None)
+        else:
+            os.environ[IMPLEMENTATION_ENV] = kernel
 
 
 def status(store: str | Path) -> dict:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import signal
 import subprocess
 import sys
@@ -108,10 +109,12 @@ def test_sweep_from_a_dict_is_the_command_s_study(from_python, tmp_path):
     assert {**a.spec, "store": None} == {**b.spec, "store": None}
 
 
-def test_resume_and_status_are_the_commands(from_python):
+def test_resume_and_status_are_the_commands(from_python, monkeypatch):
     folder, run = from_python
+    monkeypatch.delenv("LEADLINE_KERNEL", raising=False)
     again = leadline.resume(run.store)
     assert again.finished_now == [] and again.rows == run.rows
+    assert "LEADLINE_KERNEL" not in os.environ  # the study's kernel was pinned for the resume only
     proc = subprocess.run(CLI + ["status", str(run.store), "--json"], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert leadline.status(run.store) == json.loads(proc.stdout)
@@ -128,7 +131,7 @@ def test_ctrl_c_says_what_is_kept_and_resume_gives_the_uninterrupted_numbers(fro
         import leadline
         leadline.sweep({spec!r})
     """)
-    env = {k: v for k, v in __import__("os").environ.items() if not k.startswith("LEADLINE_")}
+    env = {k: v for k, v in os.environ.items() if not k.startswith("LEADLINE_")}
     # p = 1 of SK runs 22 passes (11 evaluations, a forward and an adjoint pass each): the 30th is in p = 2
     env.update(LEADLINE_HOLD_AT="pass-computed:30", LEADLINE_HOLD_FILE=str(hold))
     proc = subprocess.Popen([sys.executable, "-c", script], cwd=tmp_path, env=env, stdout=subprocess.PIPE,
