@@ -317,7 +317,7 @@ def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, toleranc
         Error asked for; the engine tightens its truncation until its estimate meets it.
     fock, bond : int
         Most Fock levels per mode and largest bond dimension it may use (as ``--fock``,
-        ``--bond``; the JSON calls them ``fock_cap`` and ``bond_cap``).
+        ``--bond``; the JSON's ``truncation`` shows ``bond_cap`` and the ``fock_levels`` used).
     time_limit : float or None
         Wall seconds allowed.
 
