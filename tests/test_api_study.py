@@ -215,3 +215,26 @@ def test_old_keywords_are_refused_with_the_new_name():
     # every renamed command-line option is known under its Python spelling too
     for old in RENAMED_OPTIONS:
         assert old.lstrip("-").replace("-", "_") in RENAMED_KEYWORDS, old
+
+
+def test_where_passes_run_is_overridden_for_one_run_on_the_command_line_and_in_python(tmp_path, monkeypatch):
+    """A spec that names a scheduler nobody runs: `--executor inprocess` (and `executor="inprocess"`)
+    runs the study here without trying it, and the stored spec keeps its [compute] for later runs."""
+    monkeypatch.chdir(tmp_path)
+    unreachable = {"executor": "scheduler", "scheduler": "tcp://127.0.0.1:9"}
+    single = dict(SPEC, depths={"pmax": 1}, ensemble=SPEC["ensemble"][:1])
+    run = leadline.sweep(dict(single, study={"name": "a", "store": "a.zarr"}, compute=unreachable),
+                         executor="inprocess")
+    (tmp_path / "b.toml").write_text(SPEC_TOML.replace('"py"', '"b"').replace("py.zarr", "b.zarr")
+                                     .replace("pmax = 2", "pmax = 1").split("[[ensemble]]\nlabel = \"cut3\"")[0]
+                                     .replace('executor = "inprocess"',
+                                              'executor = "scheduler"\nscheduler = "tcp://127.0.0.1:9"'))
+    proc = subprocess.run(CLI + ["sweep", "b.toml", "--executor", "inprocess", "--json"], capture_output=True,
+                          text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    assert _results(json.loads(proc.stdout)["finished_now"]) == _results(run.finished_now)
+    assert leadline.open_study("b.zarr").spec["compute"]["scheduler"] == "tcp://127.0.0.1:9"
+    bad = subprocess.run(CLI + ["sweep", "b.toml", "--executor", "batch"], capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and "store" in bad.stderr  # b.zarr exists: refused before anything else
+    bad = subprocess.run(CLI + ["resume", "b.zarr", "--executor", "batch"], capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and bad.stderr.strip().endswith("executor 'batch' needs a batch file"), bad.stderr

@@ -158,6 +158,10 @@ def _sigterm_as_exit():
 @_store_errors
 def sweep_command(
     spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); every key is described in docs/cli.md."),
+    executor: Optional[str] = typer.Option(None, "--executor", help="Override [compute] executor for this run: auto, inprocess, local, scheduler, batch."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Override [compute] scheduler (address of a running Dask scheduler)."),
+    workers: Optional[int] = typer.Option(None, "--workers", help="Override [compute] workers."),
+    batch_file: Optional[Path] = typer.Option(None, "--batch-file", help="Override [compute] batch-file (batch-cluster TOML)."),
     quiet: bool = compute.quiet_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
 ) -> None:
@@ -168,11 +172,14 @@ def sweep_command(
         leadline sweep study.toml          # creates the store named in [study] store
 
     If it stops (killed, crashed, out of time), `leadline resume STORE` continues exactly where it was.
+    Where passes run is the spec's [compute] unless --executor, --scheduler, --workers or --batch-file
+    say otherwise (for this run only; `resume` takes the same options).
     """
     from ..sweep import create_store
 
     spec = load_spec(spec_path)
-    settings = prepare_sweep(spec, quiet=quiet or as_json)
+    _check_overrides(workers, batch_file)
+    settings = prepare_sweep(spec, executor, scheduler, workers, batch_file, quiet=quiet or as_json)
     try:
         _run(lambda: create_store(spec), spec, settings, as_json, quiet)
     except OSError as exc:
@@ -227,15 +234,19 @@ def prepare_resume(store_path: Path, executor=None, scheduler=None, workers=None
     check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
     spec = _stored_spec(store_path, attrs)
     _pin_kernel(attrs.get("kernel"))
-    if workers is not None and workers < 1:
-        raise InputError(f"--workers must be >= 1, got {workers}")
-    if batch_file is not None and not Path(batch_file).is_file():
-        raise InputError(f"--batch-file: file {batch_file} does not exist")
+    _check_overrides(workers, batch_file)
     settings = _settings_with(spec, executor, scheduler, workers, batch_file, quiet)
     check_sweep_sparse(spec, settings)
     # refuse now if another writer holds it (this open prints what the user should know, once)
     StudyStore.open(store_path, command="resume").close()
     return spec, settings
+
+
+def _check_overrides(workers, batch_file) -> None:
+    if workers is not None and workers < 1:
+        raise InputError(f"--workers must be >= 1, got {workers}")
+    if batch_file is not None and not Path(batch_file).is_file():
+        raise InputError(f"--batch-file: file {batch_file} does not exist")
 
 
 def open_for_resume(store_path: Path):
@@ -294,8 +305,11 @@ def _settings_with(spec, executor, scheduler, workers, batch_file, quiet):
     changes: dict = {"quiet": quiet}
     if executor is not None:
         changes["mode"] = executor
-        if executor not in ("scheduler", "batch"):
-            changes.update(scheduler=None, batch_file=None)
+        # the spec's address or file stays only for the executor that uses it
+        if executor != "scheduler":
+            changes["scheduler"] = None
+        if executor != "batch":
+            changes["batch_file"] = None
     if scheduler is not None:
         changes.update(mode=executor or "scheduler", scheduler=scheduler.strip(), batch_file=None)
     if batch_file is not None:
