@@ -296,7 +296,7 @@ def _pin_kernel(recorded: str | None) -> None:
 
 
 def _settings_with(spec, executor, scheduler, workers, batch_file, quiet):
-    """The spec's compute settings with the command-line overrides of `resume`."""
+    """The spec's compute settings with the overrides of `sweep` and `resume` (this run only)."""
     from dataclasses import replace
 
     from leadline.cluster import ExecutorConfigError
