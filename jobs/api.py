@@ -533,7 +533,7 @@ class StudyRun:
         return {"store": str(self.store), "finished_now": list(self.finished_now), "progress": self.progress}
 
 
-def _run_study(prepare, open_store, *, creating: bool, store_path, quiet: bool) -> StudyRun:
+def _run_study(prepare, open_store, *, creating: bool, store_path: Path, quiet: bool) -> StudyRun:
     """The sweep (or resume) loop of the command line, with its errors as exceptions:
     InputError for the store's and the spec's problems, OSError (the command's message) when
     the system refused a write, KeyboardInterrupt (saying what was kept) on Ctrl-C."""
@@ -555,7 +555,7 @@ def _run_study(prepare, open_store, *, creating: bool, store_path, quiet: bool) 
     except StoreError as exc:
         raise InputError(str(exc)) from None
     except OSError as exc:
-        raise OSError(exc.errno, command.write_failed_text(exc, Path(store_path(spec)), creating)) from None
+        raise OSError(exc.errno, command.write_failed_text(exc, store_path, creating)) from None
     reader = open_study(path)
     return StudyRun(store=Path(path), finished_now=lines, progress=reader.progress(), rows=study_rows(reader))
 
@@ -610,7 +610,7 @@ def sweep(spec, *, executor: str | None = None, scheduler: str | None = None, wo
     def prepare():
         return parsed, command.prepare_sweep(parsed, executor, scheduler, workers, batch_file, quiet)
 
-    return _run_study(prepare, create_store, creating=True, store_path=lambda s: parsed.store, quiet=quiet)
+    return _run_study(prepare, create_store, creating=True, store_path=parsed.store, quiet=quiet)
 
 
 @_keywords
@@ -643,7 +643,7 @@ def resume(store: str | Path, *, executor: str | None = None, scheduler: str | N
     kernel = os.environ.get(IMPLEMENTATION_ENV)
     try:
         return _run_study(prepare, lambda spec: command.open_for_resume(path), creating=False,
-                          store_path=lambda s: path, quiet=quiet)
+                          store_path=path, quiet=quiet)
     finally:  # the study's chunk kernel is pinned for the resume only, not for the rest of the session
         if kernel is None:
             os.environ.pop(IMPLEMENTATION_ENV, None)
