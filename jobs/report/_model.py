@@ -297,7 +297,7 @@ def build_ensemble_report(
         verdict = "agrees with" if abs(gs - shipped.ground_state) <= allowed else "DIFFERS from"
         notes.append(
             f"GS ({refs.ground_state_origin}) {verdict} the shipped value {fmt(shipped.ground_state)} "
-            f"+- {shipped.uncertainty:.1g} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
+            f"+- {shipped.uncertainty:.1e} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
         )
 
     # ALG below GS beyond both uncertainties (an overlap gap): only then is "the depth where
