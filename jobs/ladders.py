@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Ladder", "optimize_ladder", "bath_ladder", "sparse_ladder", "ladder_start"]
+__all__ = ["Ladder", "optimize_ladder", "bath_ladder", "sparse_ladder", "sparse_default_restarts", "ladder_start"]
 
 
 @dataclass
@@ -141,6 +141,12 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 
 
+def sparse_default_restarts(p: int) -> int:
+    """Seeded extra starts of the sparse ladder at depth p when none are asked for (INTERP alone
+    suffices past p = 6: measured on MaxCut D = 3 up to p = 10, benchmarks/bench_sparse.py --published)."""
+    return 3 if p <= 2 else 1 if p <= 6 else 0
+
+
 def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol, max_iterations, ensemble,
                   evaluate_kw=None) -> Ladder:
     """The depth loop shared by :func:`optimize_sparse` and ``leadline optimize --sparse-q``."""
@@ -149,7 +155,7 @@ def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol,
     previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
     ladder, result = [], None
     for p in range(first, depth + 1):
-        n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
+        n_restarts = restarts if restarts is not None else sparse_default_restarts(p)
         result = kernel(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
                         seed=seed, gtol=gradient_tol, maxiter=max_iterations, evaluate_kw=evaluate_kw)
         previous, previous_value = (result.gamma, result.beta), result.value
