@@ -179,10 +179,10 @@ def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0,
 
 
 def run_published(pmax: int = 10, write: str | None = None) -> dict:
-    """The optimizer's MaxCut D = 3 ladder p = 1..pmax (the restarts per depth of `optimize --sparse-q 2 --degree 3`, jobs.api.sparse_ladder;
+    """The optimizer's MaxCut D = 3 ladder p = 1..pmax (the restarts per depth of `optimize --sparse-q 2 --degree 3`, jobs.ladders.sparse_ladder;
     gradient-tol 1e-9) against the published table; ``write``: also the optimal angles as a CSV (the
     test data of tests/test_sparse.py, which checks the table's values at them)."""
-    from leadline.jobs.api import sparse_default_restarts
+    from leadline.jobs.ladders import sparse_default_restarts
     from leadline.kernels.sparse import optimize_sparse
 
     t0 = time.perf_counter()

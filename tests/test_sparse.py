@@ -293,7 +293,7 @@ def _stored_optima() -> dict:
 def test_maxcut_3regular_published_optima_to_p6():
     """The optimizer's ladder (INTERP warm starts, default restarts) reaches the published optima:
     t <= v < t + 1e-4 for the truncated table value t (arXiv:2503.12789, Table 1)."""
-    from leadline.jobs.api import sparse_ladder
+    from leadline.jobs.ladders import sparse_ladder
 
     run = sparse_ladder(optimize_sparse, 2, 3, 6, None, restarts=None, seed=0, gradient_tol=1e-9, max_iterations=500, ensemble=None)
     for row, t in zip(run.ladder, PUBLISHED_MAXCUT_D3):

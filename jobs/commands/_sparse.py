@@ -352,7 +352,7 @@ def optimize_xorsat(sparse_q, degree, *, xi, depth, restarts=None, seed=0, gradi
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
     from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
-    from ..api import sparse_ladder
+    from ..ladders import sparse_ladder
     from ..parsing import check_optimizer_options, warm_start
     from ..paths import check_output_file
 
