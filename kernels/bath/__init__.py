@@ -44,6 +44,8 @@ _WHERE = {
     "optimize_bath_depth": "_optimize",
     "bath_point": "_optimize",
     "fourier_basis": "_optimize",
+    "preconditioner": "_optimize",
+    "search_settings": "_optimize",
     "ParityMPS": "_parity",
 }
 
