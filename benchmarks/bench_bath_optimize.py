@@ -95,7 +95,7 @@ def _identity(p: int) -> np.ndarray:
     return 0.3 * np.eye(2 * p)  # 0.3: about the step from the gradient to the optimum (SK p = 10-12)
 
 
-def compare(depths, engine: dict, log=_log) -> list[dict]:
+def compare(depths, engine: dict, log=_log, schemes=None) -> list[dict]:
     """The optimizer's schemes against each other, each from INTERP of the exact p - 1 optimum.
 
     default        : search at the fixed cut-off tolerance/10, exact-Hessian preconditioner
@@ -103,6 +103,7 @@ def compare(depths, engine: dict, log=_log) -> list[dict]:
     ladder search  : every search point evaluated to the tolerance by the full ladder
     search at tol  : the search at the cut-off tolerance itself (looser)
     smooth q = 4   : only the 4 smoothest Fourier modes per schedule move
+    forward 1e-4   : forward differences (2p + 1 evaluations per gradient) with step 1e-4
     """
     from leadline.kernels.bath import _optimize, optimize_bath_depth
     from leadline.kernels.mixture import parse_mixture
@@ -112,11 +113,16 @@ def compare(depths, engine: dict, log=_log) -> list[dict]:
     for p in depths:
         before, exact = _exact(p - 1), _exact(p)
         variants = [("default", {}, None), ("identity start", {"inverse_hessian": _identity(p)}, None),
-                    ("ladder search", {}, "ladder"), ("search at tol", {}, 1.0), ("smooth q = 4", {"stages": (4,)}, None)]
+                    ("ladder search", {}, "ladder"), ("search at tol", {}, 1.0), ("smooth q = 4", {"stages": (4,)}, None),
+                    ("forward 1e-4", {}, "forward")]
         for name, kwargs, search in variants:
-            saved = _optimize.SEARCH_CUTOFF, _optimize.search_settings
+            if schemes and name not in schemes:
+                continue
+            saved = _optimize.SEARCH_CUTOFF, _optimize.search_settings, _optimize.DIFFERENCES, _optimize.STEP
             if search == "ladder":
                 _optimize.search_settings = lambda eng: dict(eng)
+            elif search == "forward":
+                _optimize.DIFFERENCES, _optimize.STEP = "forward", 1e-4
             elif search is not None:
                 _optimize.SEARCH_CUTOFF = search
             try:
@@ -124,7 +130,8 @@ def compare(depths, engine: dict, log=_log) -> list[dict]:
                 r = optimize_bath_depth(mix, p, engine=engine, previous=(before["gamma"], before["beta"]),
                                         previous_value=before["value"], **kwargs)
             finally:
-                _optimize.SEARCH_CUTOFF, _optimize.search_settings = saved
+                (_optimize.SEARCH_CUTOFF, _optimize.search_settings, _optimize.DIFFERENCES,
+                 _optimize.STEP) = saved
             row = {"p": p, "scheme": name, "error": r.value - exact["value"], "error_estimate": r.error_estimate,
                    "evaluations": r.evaluations, "gradients": r.gradients, "cpu_s": time.process_time() - c0,
                    "message": r.message, "load": os.getloadavg()[0]}
@@ -179,6 +186,7 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--targets", type=int, nargs=2, metavar=("PMIN", "PMAX"))
     ap.add_argument("--compare", type=int, nargs="+")
+    ap.add_argument("--schemes", nargs="+", help="only these schemes of --compare (names as printed)")
     ap.add_argument("--gradient-errors", action="store_true")
     ap.add_argument("--tolerance", type=float, default=1e-6)
     ap.add_argument("--json", default=None)
@@ -187,7 +195,7 @@ def main(argv=None) -> int:
     if args.targets:
         out = {"engine": engine, "rows": targets(*args.targets, engine, out_path=args.json)}
     elif args.compare:
-        out = {"engine": engine, "compare": compare(args.compare, engine)}
+        out = {"engine": engine, "compare": compare(args.compare, engine, schemes=args.schemes)}
     elif args.gradient_errors:
         out = {"gradient_errors": gradient_errors()}
     else:

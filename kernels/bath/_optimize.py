@@ -122,6 +122,9 @@ def default_stages(p: int) -> tuple[int, ...]:
 #: central-difference step in Fourier coordinates (measured at SK p = 12: gradient error ~ the
 #: value error of the truncation at 1e-3 and 1e-4, 5e-5 from the h^2 term at 1e-2)
 STEP = 1e-3
+#: "central" (4p + 1 evaluations per gradient) or "forward" (2p + 1; measured against each other in
+#: benchmarks/bench_bath_optimize.py --compare)
+DIFFERENCES = "central"
 #: the search runs at this fraction of the tolerance as its fixed cut-off
 SEARCH_CUTOFF = 0.1
 #: depth of the exact Hessian used as the preconditioner (resampled schedule, padded to p)
@@ -255,8 +258,9 @@ class _Search:
         """(value, estimate, gradient) at x; ``known`` = (value, estimate) at x if evaluated already."""
         x = np.asarray(x, float)
         points = [] if known is not None else [x]
+        signs = (1.0, -1.0) if DIFFERENCES == "central" else (1.0,)
         for j in range(x.size):
-            for sign in (1.0, -1.0):
+            for sign in signs:
                 y = x.copy()
                 y[j] += sign * STEP
                 points.append(y)
@@ -266,7 +270,10 @@ class _Search:
         self.gradients += 1
         values = np.array([o[0] for o in out])
         value, error = float(values[0]), float(out[0][1])
-        grad = (values[1::2] - values[2::2]) / (2.0 * STEP)
+        if len(signs) == 2:
+            grad = (values[1::2] - values[2::2]) / (2.0 * STEP)
+        else:
+            grad = (values[1:] - value) / STEP
         if self.best is None or value > self.best[0]:
             self.best = (value, error, x.copy(), grad)
         self.record["values"].append(value)
