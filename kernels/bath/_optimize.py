@@ -16,9 +16,9 @@ What makes a depth cheap (each measured, docs/bath.md):
 
 * **One truncation for the search.**  Every point of the search is one engine run at the
   fixed cut-off ``tolerance / 10`` (no ladder): at a fixed cut-off V is a smooth function of
-  the angles, so central differences with step h = 1e-3 give the gradient of that truncation
-  to about its value error; a gradient bias d moves the value of the optimum by d^2 / (2
-  lambda_min), negligible.  Only the final point gets the full ladder of
+  the angles, so central differences with step h = 1e-3 give the gradient to about 2e-5 at
+  cut-off 1e-7 (SK p = 12); a gradient bias d moves the value reached by d^2 / (2 lambda_min),
+  negligible.  Only the final point gets the full ladder of
   :func:`evaluate_bath` (V_p* with its error estimate).
 * **A preconditioner.**  BFGS starts from the exact Hessian (kernels.exact reverse-mode
   gradient, central differences) at depth p0 = min(p, 10) of the start schedule resampled to
