@@ -57,7 +57,7 @@ def _row(p, r, c0, w0, exact, start) -> dict:
             "published_lower_bound": low, "reaches_lower_bound": low is not None and round(r.value, 4) >= low,
             "gradient_norm": r.gradient_norm, "gradient_noise": r.gradient_noise, "evaluations": r.evaluations,
             "gradients": r.gradients, "evaluation_cpu_s": r.evaluation_seconds, "cpu_s": time.process_time() - c0,
-            "wall_s": time.perf_counter() - w0, "message": r.message,
+            "wall_s": time.perf_counter() - w0, "message": r.message, "load": os.getloadavg()[0],
             "gamma": [float(x) for x in r.gamma], "beta": [float(x) for x in r.beta]}
 
 
@@ -175,6 +175,22 @@ def gradient_errors(p: int = 12, log=_log) -> list[dict]:
     return rows
 
 
+def markdown(rows: list[dict]) -> str:
+    """The table of a --targets run as docs/bath.md shows it."""
+    lines = ["| p | start (INTERP of) | V_p (bath) | estimate | exact V_p* | published | gradient norm (noise bound) "
+             "| evaluations (gradients) | CPU s per evaluation | CPU s | wall s |",
+             "|---|---|---|---|---|---|---|---|---|---|---|"]
+    for r in rows:
+        pub = (f"{r['published']:.4f} ({'agrees' if r['agrees_4_decimals'] else 'differs'})" if r["published"]
+               else f">= {r['published_lower_bound']:.4f} ({'reached' if r['reaches_lower_bound'] else 'not reached'})"
+               if r.get("published_lower_bound") else "-")
+        exact = "-" if r["exact"] is None else f"{r['exact']:.7f}"
+        lines.append(f"| {r['p']} | {r['start']} p - 1 | {r['value']:.7f} | {r['error_estimate']:.1e} | {exact} | {pub} "
+                     f"| {r['gradient_norm']:.1e} ({r['gradient_noise']:.1e}) | {r['evaluations']} ({r['gradients']}) "
+                     f"| {r['evaluation_cpu_s']:.2f} | {r['cpu_s']:.0f} | {r['wall_s']:.0f} |")
+    return "\n".join(lines)
+
+
 def run(quick: bool = False) -> dict:
     """`make bench`: the scheme comparison at p = 10 (quick: p = 6)."""
     engine = {"tolerance": 1e-6}
@@ -190,7 +206,12 @@ def main(argv=None) -> int:
     ap.add_argument("--gradient-errors", action="store_true")
     ap.add_argument("--tolerance", type=float, default=1e-6)
     ap.add_argument("--json", default=None)
+    ap.add_argument("--markdown", metavar="JSON", help="print the table of a --targets JSON file and exit")
     args = ap.parse_args(argv)
+    if args.markdown:
+        with open(args.markdown) as fh:
+            print(markdown(json.load(fh)["rows"]))
+        return 0
     engine = {"tolerance": args.tolerance}
     if args.targets:
         out = {"engine": engine, "rows": targets(*args.targets, engine, out_path=args.json)}
