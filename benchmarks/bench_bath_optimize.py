@@ -14,6 +14,7 @@ Sections:
                        norm, evaluations, CPU s per depth); --json FILE is rewritten after each depth
   --compare P [P ...]  at each depth P (from INTERP of the exact p - 1 optimum) the gradient and
                        search schemes of the optimizer against each other: CPU s and V - V_p*
+  --hessians           eigenvalues of -Hessian(V) at the exact optima p = 9..13 (exact engine)
   --gradient-errors    central against forward differences at fixed cut-offs (SK p = 12, from
                        INTERP of p = 11) against the exact reverse-mode gradient
 
@@ -191,6 +192,21 @@ def markdown(rows: list[dict]) -> str:
     return "\n".join(lines)
 
 
+def hessians(depths=(9, 10, 11, 12, 13), log=_log) -> list[dict]:
+    """Eigenvalues of -Hessian(V) (Fourier coordinates) at the exact SK optima: how much it changes with p."""
+    from leadline.kernels.bath import preconditioner
+    from leadline.kernels.mixture import parse_mixture
+
+    mix = parse_mixture(XI)
+    rows = []
+    for p in depths:
+        opt = _exact(p)
+        w = 1.0 / np.linalg.eigvalsh(preconditioner(mix, opt["gamma"], opt["beta"], p, depth=p))
+        rows.append({"p": p, "smallest": float(w.min()), "largest": float(w.max())})
+        log(f"p = {p}: eigenvalues of -Hessian at the exact optimum {w.min():.2f} .. {w.max():.2f}")
+    return rows
+
+
 def run(quick: bool = False) -> dict:
     """`make bench`: the scheme comparison at p = 10 (quick: p = 6)."""
     engine = {"tolerance": 1e-6}
@@ -204,6 +220,7 @@ def main(argv=None) -> int:
     ap.add_argument("--compare", type=int, nargs="+")
     ap.add_argument("--schemes", nargs="+", help="only these schemes of --compare (names as printed)")
     ap.add_argument("--gradient-errors", action="store_true")
+    ap.add_argument("--hessians", action="store_true")
     ap.add_argument("--tolerance", type=float, default=1e-6)
     ap.add_argument("--json", default=None)
     ap.add_argument("--markdown", metavar="JSON", help="print the table of a --targets JSON file and exit")
@@ -217,6 +234,8 @@ def main(argv=None) -> int:
         out = {"engine": engine, "rows": targets(*args.targets, engine, out_path=args.json)}
     elif args.compare:
         out = {"engine": engine, "compare": compare(args.compare, engine, schemes=args.schemes)}
+    elif args.hessians:
+        out = {"hessians": hessians()}
     elif args.gradient_errors:
         out = {"gradient_errors": gradient_errors()}
     else:
