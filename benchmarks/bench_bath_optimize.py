@@ -15,6 +15,8 @@ Sections:
   --compare P [P ...]  at each depth P (from INTERP of the exact p - 1 optimum) the gradient and
                        search schemes of the optimizer against each other: CPU s and V - V_p*
   --hessians           eigenvalues of -Hessian(V) at the exact optima p = 9..13 (exact engine)
+  --extrapolate JSON   the SK headline of `leadline table` with the bath depths > 16 of a --targets run
+                       added to the exact p <= 16 (tests/sk_optima.csv)
   --gradient-errors    central against forward differences at fixed cut-offs (SK p = 12, from
                        INTERP of p = 11) against the exact reverse-mode gradient
 
@@ -207,6 +209,24 @@ def hessians(depths=(9, 10, 11, 12, 13), log=_log) -> list[dict]:
     return rows
 
 
+def extrapolation(rows: list[dict]) -> str:
+    """The V_inf headline of `leadline table` for the SK study to p = 16 (tests/sk_optima.csv) with the
+    bath depths p > 16 of a --targets run added (weighted by their estimates, as a sweep's table does)."""
+    import csv
+    from pathlib import Path
+
+    from leadline.jobs.report import InMemoryStudy, build_report, render_markdown
+    from leadline.tests.extrapolation_calibration import SK_LADDER
+
+    lines = [ln for ln in Path(SK_LADDER).read_text().splitlines() if ln.strip() and not ln.startswith("#")]
+    depths = [{"p": int(r["p"]), "value": float(r["value"]), "gradient_norm": float(r["gradient_norm"])}
+              for r in csv.DictReader(lines)]
+    depths += [{"p": r["p"], "value": r["value"], "gradient_norm": r["gradient_norm"], "method": "bath",
+                "error_estimate": r["error_estimate"]} for r in rows if r["p"] > depths[-1]["p"]]
+    text = render_markdown(build_report(InMemoryStudy("sk", [({"label": "sk", "kind": "dense", "xi": XI}, depths)])))
+    return "\n".join(ln for ln in text.splitlines() if ln.startswith("V_inf"))
+
+
 def run(quick: bool = False) -> dict:
     """`make bench`: the scheme comparison at p = 10 (quick: p = 6)."""
     engine = {"tolerance": 1e-6}
@@ -224,7 +244,13 @@ def main(argv=None) -> int:
     ap.add_argument("--tolerance", type=float, default=1e-6)
     ap.add_argument("--json", default=None)
     ap.add_argument("--markdown", metavar="JSON", help="print the table of a --targets JSON file and exit")
+    ap.add_argument("--extrapolate", metavar="JSON", help="print the SK headline with the bath depths > 16 of a "
+                    "--targets JSON file added to tests/sk_optima.csv, and exit")
     args = ap.parse_args(argv)
+    if args.extrapolate:
+        with open(args.extrapolate) as fh:
+            print(extrapolation(json.load(fh)["rows"]))
+        return 0
     if args.markdown:
         with open(args.markdown) as fh:
             print(markdown(json.load(fh)["rows"]))
