@@ -12,14 +12,14 @@ with the same one-line message the command line prints.
 from __future__ import annotations
 
 import contextlib
-import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterator, Sequence
 
 import numpy as np
 
 from .errors import InputError
+from .ladders import Ladder, bath_ladder, optimize_ladder, sparse_ladder
 
 if TYPE_CHECKING:
     from leadline.kernels.exact import Evaluation
@@ -36,9 +36,13 @@ __all__ = [
     "evaluate_bath",
     "reference_energies",
     "transfer",
+    "sweep",
+    "resume",
+    "status",
     "open_study",
     "study_dataframe",
     "Ladder",
+    "StudyRun",
     "Transfer",
 ]
 
@@ -58,6 +62,28 @@ def _blas_capped(func):
             raise InputError(str(exc)) from None
         with in_process_blas(threads):
             return func(*args, **kwargs)
+
+    return wrapper
+
+
+def _keywords(func):
+    """Refuse an old keyword (``gtol=``, ``memory_mb=``, ...) with one line naming the new one
+    (jobs/renames.py), instead of Python's bare "unexpected keyword argument"."""
+    import functools
+    import inspect
+
+    parameters = frozenset(inspect.signature(func).parameters)
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        for keyword in kwargs:
+            if keyword not in parameters:
+                from .renames import renamed_keyword
+
+                text = renamed_keyword(func.__name__, keyword, parameters)
+                if text is not None:
+                    raise TypeError(text)
+        return func(*args, **kwargs)
 
     return wrapper
 
@@ -105,11 +131,13 @@ def _start(angles, depth: int):
 
 
 @contextlib.contextmanager
-def _executor(executor: str, scheduler: str | None, workers: int | None, memory_mib: float) -> Iterator[Any]:
+def _executor(executor: str, scheduler: str | None, workers: int | None, memory_mib: float,
+              batch_file: str | Path | None = None) -> Iterator[Any]:
     """An executor like the command line's (quiet), closed on exit."""
     from . import compute
 
-    settings = compute.settings_from_options(executor, scheduler, workers, 1, memory_mib, None, True)
+    batch = None if batch_file is None else str(batch_file)
+    settings = compute.settings_from_options(executor, scheduler, workers, 1, memory_mib, batch, True)
     with compute.open_compute(settings) as ex:
         yield ex
 
@@ -120,69 +148,8 @@ def _budget(memory_mib: float) -> int:
     return int(check_memory_mib(memory_mib, "memory_mib") * 2**20)
 
 
-# ----------------------------------------------------------------- results
-@dataclass
-class Ladder:
-    """Optimum at the last depth of a ladder of depths, each warm-starting the next.
-
-    Attributes
-    ----------
-    result : OptimizationResult or SparseOptimization
-        The optimum at the last depth (value, gamma, beta, gradient_norm,
-        evaluations, restarts, converged, message, history).
-    ladder : list of dict
-        ``{"p", "value", "evaluations"}`` per depth optimized, in order.
-    wall_time : float
-        Seconds for the whole ladder.
-    ensemble : dict or None
-        ``{"kind": "sparse", "q", "degree"}`` for sparse runs, else None.
-    """
-
-    result: Any
-    ladder: list = field(default_factory=list)
-    wall_time: float = 0.0
-    ensemble: dict | None = None
-
-    @property
-    def value(self) -> float:
-        """V_p* (dense) or nu_p* (sparse) at the last depth."""
-        return float(self.result.value)
-
-    @property
-    def gamma(self) -> np.ndarray:
-        return self.result.gamma
-
-    @property
-    def beta(self) -> np.ndarray:
-        return self.result.beta
-
-    @property
-    def p(self) -> int:
-        return int(self.result.p)
-
-    @property
-    def first_depth(self) -> int:
-        return int(self.ladder[0]["p"]) if self.ladder else self.p
-
-    @property
-    def evaluations_total(self) -> int:
-        return int(sum(r["evaluations"] for r in self.ladder))
-
-    def to_json(self) -> dict:
-        """The object ``leadline optimize --json`` prints."""
-        out = self.result.to_json()
-        if self.ensemble is not None:
-            out["ensemble"] = dict(self.ensemble)
-            out["ladder"] = list(self.ladder)
-            out["wall_time_s"] = float(self.wall_time)
-        else:
-            out["evaluations_total"] = self.evaluations_total
-            out["wall_time_s"] = float(self.wall_time)
-            out["ladder"] = list(self.ladder)
-        return out
-
-
 # ----------------------------------------------------------------- dense
+@_keywords
 @_blas_capped
 def evaluate(
     xi,
@@ -195,6 +162,7 @@ def evaluate(
     executor: str = "auto",
     scheduler: str | None = None,
     workers: int | None = None,
+    batch_file: str | Path | None = None,
 ) -> "Evaluation":
     """Exact infinite-size QAOA energy density V_p(gamma, beta) of a mixed-spin glass.
 
@@ -211,9 +179,10 @@ def evaluate(
         One extra pass; ``residuals["fixed_point"]`` = max|G_(p+1) - G_p|.
     memory_mib : float
         Memory budget of one chunk task (sets the chunk plan).
-    executor, scheduler, workers
+    executor, scheduler, workers, batch_file
         Where passes run, as on the command line: ``"auto"``, ``"inprocess"``,
-        ``"local"``; ``scheduler="tcp://host:8786"`` for a running Dask cluster.
+        ``"local"``, ``"scheduler"`` (the Dask scheduler at ``scheduler="tcp://host:8786"``),
+        ``"batch"`` (SLURM/PBS jobs described by the TOML file ``batch_file``; docs/clusters.md).
 
     Returns
     -------
@@ -238,75 +207,14 @@ def evaluate(
     check_representable(mix, g, "gamma", beta=b)  # the same range as the command line
     check_depth(g.size, "gamma/beta")
     plan = plan_chunks(g.size, _budget(memory_mib))
-    with _executor(executor, scheduler, workers, memory_mib) as ex:
+    with _executor(executor, scheduler, workers, memory_mib, batch_file) as ex:
         result = evaluate_kernel(mix, g, b, plan=plan, run_pass=ex.run_pass, gradient=gradient,
                                  fixed_point_check=check_fixed_point)
     check_underflow(result.value, mix, g, "gamma")
     return result
 
 
-def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts=None, seed=0, gradient_tol=1e-7,
-                    max_iterations=500, on_evaluation=None) -> Ladder:
-    """Optimize depths in turn up to ``depth`` (from ``initial``, an AngleSet, if given).
-
-    The loop shared by :func:`optimize` and ``leadline optimize``.  ``on_evaluation(value, p)``
-    is called after every evaluation (the command line's progress bar).
-    """
-    from leadline.kernels.optimize import optimize_depth
-    from leadline.kernels.exact import plan_chunks
-
-    t0 = time.perf_counter()
-    first, previous, previous_value = _ladder_start(initial, depth)
-    ladder, result = [], None
-    for p in range(first, depth + 1):
-        callback = None
-        if on_evaluation is not None:
-            callback = lambda info, p=p: on_evaluation(info.get("value"), p)  # noqa: E731
-        result = optimize_depth(mix, p, run_pass=run_pass, callback=callback, plan=plan_chunks(p, budget),
-                                previous=previous, previous_value=previous_value, restarts=restarts,
-                                seed=seed, gtol=gradient_tol, maxiter=max_iterations)
-        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
-        previous, previous_value = (result.gamma, result.beta), result.value
-    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
-
-
-def _ladder_start(initial, depth: int):
-    """(first depth, previous angles, previous value) of a ladder to ``depth``: from ``initial``
-    (an AngleSet of depth ``depth - 1`` or ``depth``) only ``depth`` is optimized, else 1..depth."""
-    if initial is None:
-        return 1, None, None
-    return depth, (initial.gamma, initial.beta), (initial.value if initial.p == depth - 1 else None)
-
-
-def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=None, seed=0, gtol=1e-7,
-                maxiter=500, on_evaluation=None):
-    """Optimize depths in turn up to ``depth`` with the bath engine (from ``initial``, an AngleSet).
-
-    Shared by :func:`leadline.optimize` (``method="bath"``) and ``leadline optimize --method bath``.
-    ``on_evaluation(info, p)`` is called after every gradient (the progress line).
-    """
-    from leadline.kernels.bath import optimize_bath_depth
-
-    from .bath import bath_restarts
-
-    t0 = time.perf_counter()
-    first, previous, previous_value = _ladder_start(initial, depth)
-    ladder, result = [], None
-    for p in range(first, depth + 1):
-        callback = None
-        if on_evaluation is not None:
-            callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
-        result = optimize_bath_depth(
-            mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
-            restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol, maxiter=maxiter,
-            callback=callback,
-        )
-        ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
-                       "evaluations": result.evaluations})
-        previous, previous_value = (result.gamma, result.beta), result.value
-    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
-
-
+@_keywords
 @_blas_capped
 def optimize(
     xi,
@@ -321,6 +229,7 @@ def optimize(
     executor: str = "auto",
     scheduler: str | None = None,
     workers: int | None = None,
+    batch_file: str | Path | None = None,
     method: str = "exact",
     tolerance: float | None = None,
     fock: int | None = None,
@@ -345,7 +254,7 @@ def optimize(
         Extra seeded starts per depth (default 8 at p <= 2, 4 at p <= 4, 2 at p <= 8, else 0).
     seed, gradient_tol, max_iterations
         Seed of the random starts; gradient tolerance; iteration cap per local run.
-    memory_mib, executor, scheduler, workers
+    memory_mib, executor, scheduler, workers, batch_file
         As for :func:`evaluate` (``memory_mib``: exact method only, default 256).
     method : str
         ``"exact"`` (default: the exact iteration and its reverse-mode gradient) or
@@ -375,12 +284,12 @@ def optimize(
         check_depth(depth, "depth")
     initial = _start(angles, depth)
     if use_bath:
-        with _executor(executor, scheduler, workers, 256.0) as ex:
+        with _executor(executor, scheduler, workers, 256.0, batch_file) as ex:
             return bath_ladder(mix, depth, initial, run_map=ex.run_map, engine=engine_settings(tolerance, fock, bond),
                                restarts=restarts, seed=seed, gtol=gradient_tol, maxiter=max_iterations)
     memory_mib = 256.0 if memory_mib is None else memory_mib
     budget = _budget(memory_mib)
-    with _executor(executor, scheduler, workers, memory_mib) as ex:
+    with _executor(executor, scheduler, workers, memory_mib, batch_file) as ex:
         return optimize_ladder(mix, depth, initial, run_pass=ex.run_pass, budget=budget, restarts=restarts,
                                seed=seed, gradient_tol=gradient_tol, max_iterations=max_iterations)
 
@@ -392,9 +301,10 @@ def _sparse_problem(q, degree) -> tuple[int, int]:
     return check_sparse(q, degree, None)
 
 
+@_keywords
 @_blas_capped
 def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, tolerance: float = 1e-6,
-                  bond_cap: int = 256, fock_cap: int = 40, time_limit: float | None = None) -> "BathEvaluation":
+                  fock: int = 40, bond: int = 256, time_limit: float | None = None) -> "BathEvaluation":
     """V_p(gamma, beta) from the bosonic-bath engine (any depth), to an error estimate <= tolerance.
 
     Parameters
@@ -405,8 +315,9 @@ def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, toleranc
         Angles in radians (t = 1 acts first).
     tolerance : float
         Error asked for; the engine tightens its truncation until its estimate meets it.
-    bond_cap, fock_cap : int
-        Largest bond dimension and most Fock levels per mode it may use.
+    fock, bond : int
+        Most Fock levels per mode and largest bond dimension it may use (as ``--fock``,
+        ``--bond``; the JSON's ``truncation`` shows ``bond_cap`` and the ``fock_levels`` used).
     time_limit : float or None
         Wall seconds allowed.
 
@@ -428,9 +339,10 @@ def evaluate_bath(xi, gamma: Sequence[float], beta: Sequence[float], *, toleranc
 
     mix = _mixture(xi)
     g, b = _angles(gamma, beta)
-    return run_checked(mix, g, b, tolerance=tolerance, bond=bond_cap, fock=fock_cap, time_limit=time_limit)
+    return run_checked(mix, g, b, tolerance=tolerance, bond=bond, fock=fock, time_limit=time_limit)
 
 
+@_keywords
 @_blas_capped
 def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float], *,
                     gradient: bool = False) -> "SparseEvaluation":
@@ -469,6 +381,7 @@ def evaluate_sparse(q: int, degree, gamma: Sequence[float], beta: Sequence[float
     return kernel(q, D, g, b, gradient=gradient)
 
 
+@_keywords
 @_blas_capped
 def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | None = None, seed: int = 0,
                     gradient_tol: float = 1e-7, max_iterations: int = 500) -> Ladder:
@@ -495,23 +408,8 @@ def optimize_sparse(q: int, degree, depth: int, *, angles=None, restarts: int | 
                          ensemble=ensemble_json(q, D))
 
 
-def sparse_ladder(kernel, q, D, depth, initial, *, restarts, seed, gradient_tol, max_iterations, ensemble,
-                  evaluate_kw=None) -> Ladder:
-    """The depth loop shared by :func:`optimize_sparse` and ``leadline optimize --sparse-q``."""
-    t0 = time.perf_counter()
-    first, previous = (depth, (initial.gamma, initial.beta)) if initial is not None else (1, None)
-    previous_value = initial.value if initial is not None and initial.p == depth - 1 else None
-    ladder, result = [], None
-    for p in range(first, depth + 1):
-        n_restarts = restarts if restarts is not None else (3 if p <= 2 else 1 if p <= 6 else 0)
-        result = kernel(q, D, p, previous=previous, previous_value=previous_value, restarts=n_restarts,
-                        seed=seed, gtol=gradient_tol, maxiter=max_iterations, evaluate_kw=evaluate_kw)
-        previous, previous_value = (result.gamma, result.beta), result.value
-        ladder.append({"p": p, "value": result.value, "evaluations": result.evaluations})
-    return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0, ensemble=ensemble)
-
-
 # ----------------------------------------------------------------- references
+@_keywords
 @_blas_capped
 def reference_energies(xi, *, gs_tol: float = 1e-4, alg_tol: float = 1e-3, max_steps: int = 10,
                        cache: bool = True, cache_dir: str | Path | None = None) -> "References":
@@ -569,6 +467,7 @@ class Transfer(dict):
         return dict(self)
 
 
+@_keywords
 @_blas_capped
 def transfer(instance: str | Path, *, angles: str | Path | None = None, store: str | Path | None = None,
              ensemble: str | None = None, depth: int | None = None, max_spins: int | None = None,
@@ -602,6 +501,171 @@ def transfer(instance: str | Path, *, angles: str | Path | None = None, store: s
 
 
 # ----------------------------------------------------------------- studies
+@dataclass
+class StudyRun:
+    """What :func:`sweep` or :func:`resume` did, and the study's rows afterwards.
+
+    Attributes
+    ----------
+    store : Path
+        The study store.
+    finished_now : list of dict
+        One record per depth finished by this call (``label``, ``p``, ``result``,
+        ``timings``), as in ``leadline sweep --json``.
+    progress : dict
+        What ``leadline status --json`` prints (``progress["complete"]``, ...).
+    rows : list of dict
+        Every finished depth of the study, one dict per (ensemble, p), with the columns of
+        :func:`study_dataframe`.
+    """
+
+    store: Path
+    finished_now: list
+    progress: dict
+    rows: list
+
+    @property
+    def complete(self) -> bool:
+        return bool(self.progress.get("complete"))
+
+    def to_json(self) -> dict:
+        """The object ``leadline sweep --json`` (and ``resume --json``) prints."""
+        return {"store": str(self.store), "finished_now": list(self.finished_now), "progress": self.progress}
+
+
+def _run_study(prepare, open_store, *, creating: bool, store_path: Path, quiet: bool) -> StudyRun:
+    """The sweep (or resume) loop of the command line, with its errors as exceptions:
+    InputError for the store's and the spec's problems, OSError (the command's message) when
+    the system refused a write, KeyboardInterrupt (saying what was kept) on Ctrl-C."""
+    from leadline.storage.errors import StoreError
+
+    from .commands import sweep as command
+    from .sweep import depth_line
+
+    def report(line: dict) -> None:
+        if not quiet:
+            print(depth_line(line), flush=True)
+
+    def stopped(exc, path):
+        return KeyboardInterrupt(command.stopped_text("interrupted", path))
+
+    try:
+        spec, settings = prepare()
+        path, lines = command.run_into(lambda: open_store(spec), spec, settings, report=report, stopped=stopped)
+    except StoreError as exc:
+        raise InputError(str(exc)) from None
+    except OSError as exc:
+        raise OSError(exc.errno, command.write_failed_text(exc, store_path, creating)) from None
+    reader = open_study(path)
+    return StudyRun(store=Path(path), finished_now=lines, progress=reader.progress(), rows=study_rows(reader))
+
+
+def _where_overrides(workers, batch_file):
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise InputError(f"workers must be an integer >= 1, got {workers!r}")
+    if batch_file is not None and not Path(batch_file).is_file():
+        raise InputError(f"batch_file: file {batch_file} does not exist")
+
+
+@_keywords
+@_blas_capped
+def sweep(spec, *, executor: str | None = None, scheduler: str | None = None, workers: int | None = None,
+          batch_file: str | Path | None = None, quiet: bool = True) -> StudyRun:
+    """Run a depth study, as ``leadline sweep SPEC.toml``: every ensemble at p = pmin..pmax,
+    warm-started, checkpointed into a new Zarr store (the spec's ``[study] store``).
+
+    Parameters
+    ----------
+    spec : path or dict
+        The study spec (docs/cli.md): a TOML file, or a dict of its tables with the keys
+        spelled as in the file (``{"study": {"name": ..., "store": ...}, "depths": {"pmax": 3},
+        "ensemble": [{"label": "sk", "xi": "2:0.5"}]}``; relative paths from the working folder).
+    executor : str, optional
+        Where passes run, overriding ``[compute]`` for this run: ``"auto"``, ``"inprocess"``,
+        ``"local"``, ``"scheduler"`` (with ``scheduler``), ``"batch"`` (with ``batch_file``).
+    scheduler : str, optional
+        Address of a running Dask scheduler (``"tcp://host:8786"``).
+    workers : int, optional
+        Worker processes of a local Dask cluster.
+    batch_file : path, optional
+        Batch-cluster TOML file (docs/clusters.md).
+    quiet : bool
+        False: print a line per finished depth and the progress bars, as the command does.
+
+    Returns
+    -------
+    StudyRun
+        ``.rows`` (every finished depth), ``.finished_now``, ``.progress``, ``.store``;
+        ``.to_json()`` is what ``leadline sweep --json`` prints.  If it stops (Ctrl-C raises
+        KeyboardInterrupt saying what was kept, a crash, a kill), :func:`resume` continues it
+        exactly where it was.
+    """
+    from .commands import sweep as command
+    from .spec import load_spec, spec_from_dict
+    from .sweep import create_store
+
+    _where_overrides(workers, batch_file)
+    parsed = spec_from_dict(spec) if isinstance(spec, dict) else load_spec(spec)
+
+    def prepare():
+        return parsed, command.prepare_sweep(parsed, executor, scheduler, workers, batch_file, quiet)
+
+    return _run_study(prepare, create_store, creating=True, store_path=parsed.store, quiet=quiet)
+
+
+@_keywords
+@_blas_capped
+def resume(store: str | Path, *, executor: str | None = None, scheduler: str | None = None,
+           workers: int | None = None, batch_file: str | Path | None = None, quiet: bool = True) -> StudyRun:
+    """Continue a stopped study, as ``leadline resume STORE``: finished depths, passes and
+    chunks are not recomputed, and the numbers are those of an uninterrupted run.
+
+    ``executor``, ``scheduler``, ``workers``, ``batch_file`` and ``quiet`` as for
+    :func:`sweep` (the chunk plan stays the spec's).  A complete study returns at once.
+
+    Returns
+    -------
+    StudyRun
+        As :func:`sweep`; ``.to_json()`` is what ``leadline resume --json`` prints.
+    """
+    import os
+
+    from leadline.kernels.exact import IMPLEMENTATION_ENV
+
+    from .commands import sweep as command
+
+    _where_overrides(workers, batch_file)
+    path = Path(store)
+
+    def prepare():
+        return command.prepare_resume(path, executor, scheduler, workers, batch_file, quiet)
+
+    kernel = os.environ.get(IMPLEMENTATION_ENV)
+    try:
+        return _run_study(prepare, lambda spec: command.open_for_resume(path), creating=False,
+                          store_path=path, quiet=quiet)
+    finally:  # the study's chunk kernel is pinned for the resume only, not for the rest of the session
+        if kernel is None:
+            os.environ.pop(IMPLEMENTATION_ENV, None)
+        else:
+            os.environ[IMPLEMENTATION_ENV] = kernel
+
+
+def status(store: str | Path) -> dict:
+    """How far a study got, as ``leadline status STORE --json``: depths done per ensemble, the
+    one in progress, what is left, the writer (if any) and the estimated time left.
+
+    Reads only (never takes the lock), so it works while a sweep runs.
+
+    Returns
+    -------
+    dict
+        ``complete``, ``depths``, ``ensembles`` (per ensemble: ``done``, ``running``, ``todo``),
+        ``lock``, ``estimated_seconds_left``, ... (docs/store.md).
+    """
+    return open_study(store).progress()
+
+
 def open_study(path: str | Path) -> "StudyReader":
     """Open a study store (written by ``leadline sweep``) for reading; never takes the lock.
 
@@ -645,6 +709,16 @@ def study_dataframe(study) -> Any:
     except ImportError:  # pragma: no cover - depends on the installation
         raise ImportError("study_dataframe needs pandas: pip install 'leadline[pandas]'") from None
     reader = study if hasattr(study, "depths") else open_study(study)
+    return pd.DataFrame(study_rows(reader), columns=list(ROW_COLUMNS))
+
+
+#: the columns of :func:`study_rows` and :func:`study_dataframe`
+ROW_COLUMNS = ("ensemble", "kind", "xi", "q", "degree", "p", "value", "gradient_norm", "evaluations",
+               "converged", "wall_time_s", "gamma", "beta")
+
+
+def study_rows(reader) -> list[dict]:
+    """The finished depths of an open study, one dict per (ensemble, p) (the DataFrame's rows)."""
     rows = []
     for label in reader.ensembles():
         meta = reader.ensemble(label)
@@ -664,6 +738,4 @@ def study_dataframe(study) -> Any:
                 "gamma": list(d["gamma"]),
                 "beta": list(d["beta"]),
             })
-    columns = ["ensemble", "kind", "xi", "q", "degree", "p", "value", "gradient_norm", "evaluations",
-               "converged", "wall_time_s", "gamma", "beta"]
-    return pd.DataFrame(rows, columns=columns)
+    return rows

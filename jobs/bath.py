@@ -3,7 +3,7 @@
 The kernel is :func:`leadline.kernels.bath.optimize_bath_depth`; this module turns the user's
 options into its engine settings, checks the options the bath method does not have (and the
 reverse), and gives sweeps a ``run_map`` that checkpoints every bath evaluation.  The depth
-ladder (:func:`leadline.jobs.api.bath_ladder`) lives next to the exact one in api.py.
+ladder (:func:`leadline.jobs.ladders.bath_ladder`) lives next to the exact one in ladders.py.
 """
 
 from __future__ import annotations

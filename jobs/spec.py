@@ -73,7 +73,7 @@ from .errors import InputError
 from .parsing import MAX_GRADIENT_TOL, MIN_MEMORY_MIB
 from .renames import renamed_spec_key
 
-__all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
+__all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_dict", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
 #: deepest exact depth a spec may ask for (2^61 paths per pass: far beyond any machine already)
 MAX_DEPTH = 30
@@ -471,6 +471,23 @@ def load_spec(path: str | os.PathLike) -> StudySpec:
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"cannot read spec file {path}: {exc}") from None
     return parse_spec(text, path.resolve().parent, origin=f"spec {path}")
+
+
+def spec_from_dict(doc: dict, base: str | os.PathLike | None = None) -> StudySpec:
+    """Validate a spec given as a dict of the TOML file's tables (keys spelled as in the file);
+    relative paths are taken relative to ``base`` (default: the working folder).
+
+    The dict is written out as TOML first (tomli-w) and read back by the same checks as a
+    file, so the store records a spec text that `leadline sweep` would accept as it is."""
+    import tomli_w
+
+    if not isinstance(doc, dict):
+        raise InputError(f"a spec is a path to a TOML file or a dict of its tables, got {type(doc).__name__}")
+    try:
+        text = tomli_w.dumps(doc)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"spec dict cannot be written as TOML ({exc}): use str, int, float, bool, lists and dicts") from None
+    return parse_spec(text, Path(base if base is not None else Path.cwd()).resolve(), origin="spec dict")
 
 
 def spec_from_json(data: dict, text: str = "") -> StudySpec:

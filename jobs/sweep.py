@@ -219,7 +219,8 @@ def depth_line(line: dict) -> str:
         # reuse is only mentioned when there was some (a resumed or replayed depth)
         reused = f", {s['passes_reused']} reused" if s["passes_reused"] else ""
         passes = f"{s['passes_computed']} passes computed{reused}, "
+    stopped = " (not converged)" if r.get("converged") is False else ""
     return (
-        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  gradient norm {r['gradient_norm']:.1e}  "
-        f"{r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
+        f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  gradient norm {r['gradient_norm']:.1e}"
+        f"{stopped}  {r['evaluations']} evaluations, {passes}{t['wall_time_s']:.2f} s"
     )

@@ -10,6 +10,9 @@ Python API (documented with examples in docs/api.md)::
     leadline.evaluate_bath("2:0.5", [0.5], [0.392699])        # bosonic-bath engine, error estimate <= 1e-6
     leadline.reference_energies("2:0.5")                    # ground state and algorithmic threshold
     leadline.transfer("graph.txt", depth=2)                 # angles for one instance, checked exactly
+    run = leadline.sweep("study.toml")                      # a depth study into a Zarr store (or a dict spec)
+    leadline.resume("runs/study.zarr")                      # continue a stopped study where it was
+    leadline.status("runs/study.zarr")                      # how far it got (as `leadline status --json`)
     study = leadline.open_study("runs/study.zarr")          # a study store, read-only
     leadline.study_dataframe(study)                         # finished depths as a pandas DataFrame
 
@@ -33,6 +36,9 @@ _API = (
     "evaluate_bath",
     "reference_energies",
     "transfer",
+    "sweep",
+    "resume",
+    "status",
     "open_study",
     "study_dataframe",
 )

@@ -3,7 +3,7 @@
 A store keeps, in its root attribute ``integrity`` (schema 3 and later), a record written when it
 was created and extended by every finished depth::
 
-    {"version": 1,
+    {"format_version": 1,
      "identity": {"name": "<digest>", "spec": "<digest>", "spec_toml": ..., "kernel": ..., "created_utc": ...},
      "ensembles": {"<label>": "<digest of the ensemble group's attributes without 'computed_reference'>"},
      "finished": {"<label>": {"<p>": "<digest of the depth's 'result' attribute>"}}}
@@ -38,12 +38,16 @@ import numpy as np
 
 from . import layout as L
 
-__all__ = ["RECORD", "IDENTITY", "Finding", "Contents", "Unreadable", "digest", "read_attrs", "new_record", "inspect",
+__all__ = ["RECORD", "IDENTITY", "current_record", "Finding", "Contents", "Unreadable", "digest", "read_attrs", "new_record", "inspect",
            "describe_findings", "ensemble_digest"]
 
 #: root attribute holding the record
 RECORD = "integrity"
 RECORD_VERSION = 1
+#: the key of the record's layout version, named like every layout version (the first records
+#: of schema 3 called it "version"; the next write of the record renames it, :func:`current_record`)
+RECORD_VERSION_KEY = "format_version"
+
 #: root attributes fixed at creation (covered by the record when present)
 IDENTITY = ("name", "spec", "spec_toml", "kernel", "created_utc")
 #: how many parts one error line names before "and N more"
@@ -91,11 +95,19 @@ def read_attrs(folder: Path) -> dict:
 def new_record(root_attrs: dict, ensembles: dict[str, dict]) -> dict:
     """The record of a store whose root and ensemble attributes are as given (read back from disk)."""
     return {
-        "version": RECORD_VERSION,
+        RECORD_VERSION_KEY: RECORD_VERSION,
         "identity": {k: digest(root_attrs[k]) for k in IDENTITY if k in root_attrs},
         "ensembles": {label: ensemble_digest(attrs) for label, attrs in ensembles.items()},
         "finished": {label: {} for label in ensembles},
     }
+
+
+def current_record(record: dict) -> dict:
+    """A copy of a record with this release's key names."""
+    record = dict(record)
+    if "version" in record:
+        record.setdefault(RECORD_VERSION_KEY, record.pop("version"))
+    return record
 
 
 @dataclass

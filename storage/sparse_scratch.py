@@ -92,6 +92,12 @@ class SparseScratch:
     def array(self, name: str) -> zarr.Array:
         return zarr.open_array(str(self.path / "vectors.zarr" / name), mode="r+", zarr_format=3)
 
+    def chunk_path(self, name: str, i: int, j: int) -> Path:
+        """The file of chunk (i, j) of array ``name``: Zarr v3's default chunk key ("c/i/j"); an
+        uncompressed chunk is its raw little-endian bytes in C order, so a process may read and
+        write it directly (``cluster.sparse_vectors.LocalBandStore``) and plain zarr still reads the array."""
+        return self.path / "vectors.zarr" / name / "c" / str(int(i)) / str(int(j))
+
     def delete(self, name: str) -> None:
         shutil.rmtree(self.path / "vectors.zarr" / name, ignore_errors=True)
 
@@ -104,11 +110,24 @@ class SparseScratch:
             return 0, 0.0
         return int(rec["step"]), float(rec["sum_fH"])
 
-    def finish(self, step: int, residual: float) -> None:
-        """Record step ``step`` as finished (its vector is complete on disk)."""
-        _write_json(self.path / PROGRESS, {"step": int(step), "sum_fH": float(residual)})
+    def state(self):
+        """The ``state`` recorded with the last finished step (None if none)."""
+        try:
+            return json.loads((self.path / PROGRESS).read_text()).get("state")
+        except FileNotFoundError:
+            return None
+
+    def finish(self, step: int, residual: float, state=None) -> None:
+        """Record step ``step`` as finished (its vector is complete on disk), with ``state``
+        (JSON: what the evaluation needs beyond the vectors to go on from there)."""
+        _write_json(self.path / PROGRESS, {"step": int(step), "sum_fH": float(residual), "state": state})
         witness("sparse-step", [step])
         crash_point("sparse-step-finished")
+
+    def rewind(self, step: int, residual: float) -> None:
+        """Record ``step`` as the last finished one again (its vector is still complete; the next
+        step's is about to be overwritten in place), without counting it as a newly finished step."""
+        _write_json(self.path / PROGRESS, {"step": int(step), "sum_fH": float(residual), "state": None})
 
     def remove(self) -> None:
         shutil.rmtree(self.path, ignore_errors=True)

@@ -345,7 +345,7 @@ class StudyStore:
         changes = {"spec": spec, "migrated": migrated}
         record = root.get(I.RECORD)
         if isinstance(record, dict) and isinstance(record.get("identity"), dict):
-            changes[I.RECORD] = dict(record, identity=dict(record["identity"], spec=I.digest(spec)))
+            changes[I.RECORD] = dict(I.current_record(record), identity=dict(record["identity"], spec=I.digest(spec)))
         self.root.attrs.update(changes)
         self.root.attrs[L.VERSION] = L.SCHEMA_VERSION
         if L.OLD_VERSION in self.root.attrs:
@@ -385,9 +385,9 @@ class StudyStore:
 
     def _reconcile(self, contents: "I.Contents", notice) -> None:
         """Record finished depths the record does not list yet (a kill right after a depth's done flag)."""
-        record = dict(self.root.attrs[I.RECORD])
+        record = I.current_record(self.root.attrs[I.RECORD])
         finished = {label: dict(v) for label, v in record["finished"].items()}
-        changed = False
+        changed = "version" in self.root.attrs[I.RECORD]  # an old key name: written anew with this one
         for label in contents.ensembles:
             mine = finished.setdefault(label, {})
             for p, attrs in contents.done(label).items():
@@ -402,7 +402,7 @@ class StudyStore:
     def _record_finished(self, label: str, p: int, directory: Path) -> None:
         """Add depth p of ``label`` to the record, with the digest of its result as it reads back."""
         result = I.read_attrs(directory)["result"]
-        record = dict(self.root.attrs[I.RECORD])
+        record = I.current_record(self.root.attrs[I.RECORD])
         finished = {k: dict(v) for k, v in record["finished"].items()}
         finished.setdefault(label, {})[str(p)] = I.digest(result)
         self.lock.verify()

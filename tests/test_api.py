@@ -102,7 +102,7 @@ def test_values_outside_the_double_range_raise_as_on_the_cli():
 
 def test_the_api_names_are_documented():
     for name in ("evaluate", "optimize", "evaluate_sparse", "optimize_sparse", "reference_energies",
-                 "open_study", "study_dataframe", "evaluate_bath", "transfer"):
+                 "open_study", "study_dataframe", "evaluate_bath", "transfer", "sweep", "resume", "status"):
         fn = getattr(leadline, name)
         assert name in dir(leadline)
         doc = fn.__doc__ or ""

@@ -189,8 +189,15 @@ def test_pure_q_spin_approaches_random_energy_model():
 
 def test_references_json_round_trip():
     refs = reference_energies("1:2", gs_tol=1e-4, alg_tol=1e-3)
-    again = References.from_json(json.loads(json.dumps(refs.to_json())))
+    record = refs.to_json()
+    again = References.from_json(json.loads(json.dumps(record)))
     assert again == refs
+    # seconds carry their unit in the JSON name (docs/cli.md glossary); the old name still reads
+    assert "wall_time_s" in record and "wall_time" not in record
+    assert "wall_time_s" in record["details"]["ground_state"]
+    old = dict(record, wall_time=record["wall_time_s"])
+    del old["wall_time_s"]
+    assert References.from_json(old) == refs
     assert refs.ground_state == pytest.approx(2 / math.sqrt(math.pi))
     assert not refs.overlap_gap
 

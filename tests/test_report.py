@@ -495,6 +495,26 @@ def test_fits_above_the_union_bound_are_flagged():
     assert any("upper bound" in n and "0.8326" in n for n in rep.notes)
 
 
+def test_a_depth_that_did_not_converge_is_said_in_the_table_and_the_sweep_line():
+    # SK values of Farhi, Goldstone, Gutmann, Zhou, Quantum 6, 759 (2022), Table 1; p = 3 marked as the
+    # optimizer records a run stopped before the gradient tolerance (converged false, gradient norm above it)
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": 2e-7 if p == 3 else 5e-8,
+               "converged": p != 3} for p, v in list(SK_PUBLISHED.items())[:4]]
+    study = InMemoryStudy("stopped", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    report = build_report(study)
+    notes = [n for n in report.ensembles[0].notes if n.startswith("not converged")]
+    assert len(notes) == 1 and notes[0].startswith("not converged at p = 3:")
+    assert "Note: not converged at p = 3:" in render_markdown(report)
+    assert json.loads(render_json(report))["ensembles"][0]["depths"][2]["converged"] is False
+    from leadline.jobs.sweep import depth_line
+
+    timings = {"wall_time_s": 0.1, "this_session": {"passes_requested": 0}}
+    line = {"label": "sk", "p": 3, "result": dict(depths[2], evaluations=9), "timings": timings}
+    assert "gradient norm 2.0e-07 (not converged)  9 evaluations" in depth_line(line)
+    line["result"]["converged"] = True
+    assert "(not converged)" not in depth_line(line)
+
+
 def test_plot_draws_every_family_and_the_back_test(tmp_path):
     """The figure of a back-tested extrapolation (published SK values, in memory) has the documented size."""
     from matplotlib.image import imread

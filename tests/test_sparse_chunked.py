@@ -58,24 +58,45 @@ def _same_gradient(got, ref):
 
 
 def _zarr_store(tmp_path, exchange, target=12, client=None):
-    from leadline.cluster.sparse_vectors import ZarrBandStore
+    """exchange "local": the out-of-core store of this process (direct chunk-file I/O); "disk" and
+    "rechunk": the Dask one, exchanging through the folder or by Dask's rechunk."""
+    from leadline.cluster.sparse_vectors import LocalBandStore, ZarrBandStore
     from leadline.storage.sparse_scratch import SparseScratch
 
     scratch = SparseScratch.open(tmp_path / f"scratch-{exchange}", {"test": exchange})
+    if exchange == "local":
+        return LocalBandStore(scratch, target_bits=target)
     return ZarrBandStore(scratch, target_bits=target, client=client, exchange=exchange)
 
 
-@pytest.mark.parametrize("q,D,p", [(2, 3, 6), (3, 4, 5)])
-@pytest.mark.parametrize("exchange", ["disk", "rechunk"])
+@pytest.mark.parametrize("exchange,q,D,p", [("local", 2, 3, 6), ("local", 3, 4, 5), ("rechunk", 2, 3, 6), ("disk", 3, 4, 5)])
 def test_zarr_store_equals_in_memory(tmp_path, q, D, p, exchange):
+    from leadline.kernels.sparse import reverse_stage
+
     g, b = _angles(p, D, 7)
     ref = evaluate_sparse(q, D, g, b, gradient=True)
     store = _zarr_store(tmp_path, exchange, target=10)
     got = evaluate_chunked(q, D, g, b, store, target_bits=10, gradient=True)
     assert abs(got.value - ref.value) <= 1e-14
     _same_gradient(got, ref)
-    assert store.scratch.finished()[0] == p  # every step recorded
+    assert store.scratch.finished()[0] == reverse_stage(p, 3)  # every step and reverse stage recorded
     assert [f.name for f in (store.scratch.path / "vectors.zarr").iterdir()] == ["zarr.json"]  # nothing left
+
+
+def test_out_of_core_vectors_are_zarr_arrays(tmp_path):
+    """The out-of-core store writes the chunk files itself; plain zarr reads the same numbers back
+    (zarr-python, the reference implementation of the Zarr v3 format)."""
+    import zarr
+
+    store = _zarr_store(tmp_path, "local", target=10)
+    x = np.random.default_rng(1).standard_normal(1 << 13) + 1j * np.random.default_rng(2).standard_normal(1 << 13)
+    store.put("v", x)
+    store.transform("w", lambda band, i: 2.0 * band, "v", 13, 4)  # 4 bands, each written as its chunk files
+    arr = zarr.open_array(str(store.scratch.path / "vectors.zarr" / "w"), mode="r")
+    assert arr.chunks != arr.shape
+    np.testing.assert_array_equal(np.asarray(arr[...]).reshape(-1), 2.0 * x)
+    np.testing.assert_array_equal(store.get("w"), 2.0 * x)
+    store.close()
 
 
 def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
@@ -97,6 +118,8 @@ def test_worker_killed_during_a_transform_same_value(tmp_path, monkeypatch):
         with Client(cluster.address, timeout=30) as client:
             cluster.wait_for_workers(client, 2)
             store = _zarr_store(tmp_path, "rechunk", target=10, client=client)
+            # left to choose, the store exchanges through the folder: every worker is on this machine
+            assert type(store)(store.scratch, target_bits=10, client=client).exchange_for(10) == "disk"
             killed = {}
             stop = threading.Event()
 
@@ -154,11 +177,76 @@ def test_kill_9_during_checkpointed_evaluation_resumes_without_recomputing(tmp_p
     assert second.returncode == 0, second.stderr
     assert "resuming after step 4" in second.stderr
     assert "step 5/7 done" in second.stderr and "step 4/7 done" not in second.stderr
-    here = _evaluate_cli(tmp_path, p, None)
-    assert json.loads(second.stdout)["value"] == pytest.approx(json.loads(here.stdout)["value"], abs=1e-14)
+    g, b = _angles(p, 3, 5)  # the angles of _evaluate_cli
+    assert json.loads(second.stdout)["value"] == pytest.approx(evaluate_sparse(2, 3, g, b).value, abs=1e-14)
     steps = audit.read_text().split()[1::2]
     assert sorted(map(int, steps)) == list(range(2, p + 1))  # every step recorded once over both runs
     assert not scratch.exists()  # removed after success
+
+
+def test_kill_9_while_the_root_overwrites_the_last_step_in_place(tmp_path):
+    """Out of core the root's transform overwrites the last step's vector band by band (no room for a
+    second copy of the largest vector); killed after it wrote a band, the run resumes at that step
+    (its input is kept until the root is done) and gives the same value."""
+    p = 7
+    scratch = tmp_path / "scratch"
+    # one band per transform at p = 7: steps 3..7 write 10 bands, the root's transform the 11th
+    first = _evaluate_cli(tmp_path, p, scratch, {"LEADLINE_CRASH_AT": "sparse-band-written:11"})
+    assert first.returncode == -signal.SIGKILL, first.stderr
+    assert "step 7/7 done" in first.stderr
+    assert json.loads((scratch / "progress.json").read_text())["step"] == 6
+    second = _evaluate_cli(tmp_path, p, scratch)
+    assert second.returncode == 0, second.stderr
+    assert "resuming after step 6" in second.stderr and "step 7/7 done" in second.stderr
+    g, b = _angles(p, 3, 5)  # the angles of _evaluate_cli
+    assert json.loads(second.stdout)["value"] == pytest.approx(evaluate_sparse(2, 3, g, b).value, abs=1e-14)
+    assert not scratch.exists()
+
+
+def test_kill_9_during_the_reverse_sweep_resumes_without_recomputing(tmp_path):
+    """The gradient's reverse sweep is checkpointed stage by stage like the forward steps: killed
+    after its second stage (the root's adjoint, then step 7), the resumed run computes only the
+    stages after it and gives the uninterrupted gradient."""
+    from leadline.kernels.sparse import reverse_stage
+
+    p = 7
+    scratch = tmp_path / "scratch"
+    audit = tmp_path / "audit.txt"
+    env = {"LEADLINE_CHUNK_AUDIT": str(audit)}
+    # finish calls: steps 2..7 (6), the root (7th), the root's adjoint (8th), reverse step 7 (9th)
+    first = _evaluate_cli(tmp_path, p, scratch, {**env, "LEADLINE_CRASH_AT": "sparse-step-finished:9"}, ["--gradient"])
+    assert first.returncode == -signal.SIGKILL, first.stderr
+    assert json.loads((scratch / "progress.json").read_text())["step"] == reverse_stage(p, 7)
+    second = _evaluate_cli(tmp_path, p, scratch, env, ["--gradient"])
+    assert second.returncode == 0, second.stderr
+    assert "resuming after reverse sweep step 7" in second.stderr
+    assert "reverse sweep: step 6 done" in second.stderr
+    assert "reverse sweep: step 7 done" not in second.stderr and "step 7/7 done" not in second.stderr
+    stages = sorted(map(int, audit.read_text().split()[1::2]))
+    assert stages == list(range(2, reverse_stage(p, 3) + 1))  # every checkpoint written once over both runs
+    g, b = _angles(p, 3, 5)  # the angles of _evaluate_cli
+    here = evaluate_sparse(2, 3, g, b, gradient=True)
+    got = json.loads(second.stdout)
+    assert got["value"] == pytest.approx(here.value, abs=1e-14)
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(got["gradient"][k], here.gradient[k], rtol=0, atol=1e-14)
+    assert not scratch.exists()
+
+
+def test_scratch_on_a_local_cluster_from_the_command_line(tmp_path):
+    """`evaluate --scratch DIR --executor local`: the vectors on two Dask worker processes (exchange
+    through DIR, the local-cluster default), value and gradient equal to the in-memory recursion."""
+    p = 6
+    r = _evaluate_cli(tmp_path, p, tmp_path / "scratch", None, ["--gradient", "--executor", "local", "--workers", "2"])
+    assert r.returncode == 0, r.stderr
+    assert "sparse path = on the Dask workers" in r.stderr
+    g, b = _angles(p, 3, 5)  # the angles of _evaluate_cli
+    here = evaluate_sparse(2, 3, g, b, gradient=True)
+    got = json.loads(r.stdout)
+    assert got["value"] == pytest.approx(here.value, abs=1e-14)
+    for k in ("gamma", "beta"):
+        np.testing.assert_allclose(got["gradient"][k], here.gradient[k], rtol=0, atol=1e-14)
+    assert not (tmp_path / "scratch").exists()
 
 
 def _refused(r, words):

@@ -193,8 +193,9 @@ def write_old_names_store(path: Path, schema: int) -> None:
 
     if schema == 2:
         del root.attrs[I.RECORD]
-    else:  # the record as that release wrote it: over the old spec
-        record = root.attrs[I.RECORD]
+    else:  # the record as that release wrote it: over the old spec, its layout version called "version"
+        record = I.current_record(root.attrs[I.RECORD])
+        record["version"] = record.pop("format_version")
         root.attrs[I.RECORD] = dict(record, identity=dict(record["identity"], spec=I.digest(old_spec)))
 
 
@@ -231,7 +232,34 @@ def test_old_names_store_reads_with_new_names_and_resume_renames_in_place(tmp_pa
     assert ens["computed_reference"]["ground_state"] == 0.763166 and "references" not in ens
     session = root["ensembles/sk/p001"].attrs["timings"]["this_session"]
     assert "passes_reused" in session and "passes_from_cache" not in session
+    assert attrs["integrity"]["format_version"] == 1 and "version" not in attrs["integrity"]
     # the renamed store passes its own integrity check; p = 2 ran after the upgrade: SK optimum of
     # Quantum 6, 759 (2022), Table 1
     depths = open_study(path).depths("sk")
     assert [d["p"] for d in depths] == [1, 2] and depths[1]["value"] == pytest.approx(0.4075, abs=5e-5)
+
+
+def test_a_record_with_the_old_version_key_is_renamed_by_the_next_writer(tmp_path, capsys):
+    """Schema-4 stores of the first releases called the integrity record's layout version
+    "version" (every other layout version is "format_version"): such a store passes its check on
+    open unchanged, and the next writer renames the key, values kept."""
+    from leadline.jobs.cli import main
+    from leadline.storage import integrity as I
+
+    spec = tmp_path / "v.toml"
+    spec.write_text('[study]\nname = "v"\nstore = "v.zarr"\n[depths]\npmax = 1\n[optimizer]\nrestarts = 0\n'
+                    '[compute]\nexecutor = "inprocess"\n[[ensemble]]\nlabel = "sk"\nxi = "2:0.5"\n')
+    main(["sweep", str(spec), "--quiet"])
+    path = tmp_path / "v.zarr"
+    root = zarr.open_group(str(path), mode="r+")
+    record = root.attrs[I.RECORD]
+    assert record["format_version"] == 1 and "version" not in record  # what this release writes
+    old = {("version" if k == "format_version" else k): v for k, v in record.items()}
+    root.attrs[I.RECORD] = old
+    before = _tree(path)
+    assert open_study(path).depths("sk")[0]["p"] == 1 and _tree(path) == before  # reads, changes nothing
+    capsys.readouterr()
+    main(["resume", str(path), "--quiet"])
+    assert capsys.readouterr().err == ""
+    after = zarr.open_group(str(path), mode="r").attrs[I.RECORD]
+    assert after == record

@@ -105,15 +105,19 @@ SCRATCH_HELP = ("Sparse ensembles: keep the step vectors as Zarr arrays in this 
                 "every worker sees) and record every finished step there, so a killed run given the same folder "
                 "resumes after its last finished step. Removed after success.")
 
-#: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py:
-#: the root's input, its outer transform and that transform's row-pass copy)
-SCRATCH_VECTORS = 3.0
+#: vectors of 2^(2p-1) points a chunked evaluation keeps on disk at most (kernels/sparse/_chunked.py):
+#: out of core step p's input, outer transform and result (1/4 + 1/4 + 1: the column pass and the
+#: root's transform work in place); on workers the root's input, its outer transform and the
+#: transform's row-pass copy when they exchange through the folder
+SCRATCH_VECTORS = 1.5
+SCRATCH_VECTORS_WORKERS = 3.0
 #: with the gradient every step's two vectors stay for the reverse sweep (4/3 x 1.25 = 1.67), plus
 #: at most three more of the last size at once (the root's outer transform, an adjoint and its
 #: row-pass copy): 4.7 counted from the order of writes in kernels/sparse/_chunked.py, rounded up
 SCRATCH_VECTORS_GRADIENT = 6.0
-#: complex numbers a task of the chunked path holds at most, in bands of 2^CHUNK_POINTS_BITS points
-#: (a band in, a band out, a column block and a transform scratch)
+#: complex numbers a task of the chunked path holds at most, in bands or column blocks (a band in, a
+#: band out, a column block and a transform scratch; out of core: a block read ahead, one computed,
+#: two being written)
 BANDS_PER_TASK = 4
 #: leave this much of the scratch file system free (other users of a shared disk)
 DISK_MARGIN = 1.1
@@ -134,9 +138,9 @@ class SparsePath:
         if self.kind == "disk":
             return (f"sparse path = out of core, about {_size(self.memory_bytes)} per process, "
                     f"{_size(self.disk_bytes)} in {self.scratch}")
-        return (f"sparse path = on the Dask workers, up to {_size(self.memory_bytes)} per worker (a transform that "
-                f"does not fit in half the workers' memory exchanges through the folder instead), "
-                f"{_size(self.disk_bytes)} in {self.scratch}")
+        return (f"sparse path = on the Dask workers, up to {_size(self.memory_bytes)} per worker (workers on this "
+                f"machine, and a transform that does not fit in half the workers' memory, exchange through the "
+                f"folder), {_size(self.disk_bytes)} in {self.scratch}")
 
 
 def _size(nbytes: float) -> str:
@@ -192,13 +196,16 @@ def plan_sparse_path(p: int, settings, scratch: str | None, gradient: bool, opti
     if scratch is None:
         check_sparse_depth(p, settings, option, gradient=gradient)
         return SparsePath("memory", SPARSE_VECTORS * vec * (GRADIENT_MEMORY_FACTOR if gradient else 1.0), 0.0)
-    disk = (SCRATCH_VECTORS_GRADIENT if gradient else SCRATCH_VECTORS) * vec
+    disk = (SCRATCH_VECTORS_GRADIENT if gradient else SCRATCH_VECTORS_WORKERS if distributed else SCRATCH_VECTORS) * vec
     path = check_scratch(scratch, disk)
     task = BANDS_PER_TASK * 16.0 * 2**CHUNK_POINTS_BITS
     if distributed:
         workers = max(1, int(getattr(settings, "workers", None) or 1))
         # a transform's row bands and their rechunked copy, spread over the workers
         return SparsePath("workers", max(task, 2.0 * vec / workers), disk, path)
+    from leadline.cluster.sparse_vectors import LocalBandStore
+
+    task = BANDS_PER_TASK * 16.0 * LocalBandStore.largest_block(p, CHUNK_POINTS_BITS)
     return SparsePath("disk", min(task, 2.5 * vec), disk, path)
 
 
@@ -233,6 +240,16 @@ def transform_map(settings):
         yield ex.run_map
 
 
+def _stage_name(done: int, p: int) -> str:
+    """A checkpoint of a chunked evaluation in words (kernels.sparse ``reverse_stage`` numbering)."""
+    if done <= p:
+        return f"step {done}"
+    if done == p + 1:
+        return "the root"
+    m = 2 * p + 3 - done
+    return "the reverse sweep's root" if m == p + 1 else f"reverse sweep step {m}"
+
+
 @contextlib.contextmanager
 def scratch_runner(path: SparsePath, settings, label=None, client=None):
     """``chunked(q, D, g, b, gradient)`` for :func:`evaluate_sparse`: each evaluation in the scratch
@@ -241,7 +258,7 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
     ``label`` (the optimizer) every evaluation uses the subfolder "<label>" afresh."""
     import time
 
-    from leadline.cluster.sparse_vectors import ZarrBandStore
+    from leadline.cluster.sparse_vectors import LocalBandStore, ZarrBandStore
     from leadline.kernels.sparse import CHUNK_POINTS_BITS, evaluate_chunked
     from leadline.storage.errors import StoreError
     from leadline.storage.sparse_scratch import SparseScratch
@@ -263,7 +280,7 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
             raise InputError(str(exc)) from None
         p = g.size
         if not quiet and (label is None or not announced):
-            typer.echo(path.describe(p) + (f"; resuming after step {scratch.finished()[0]}" if scratch.resumed else ""),
+            typer.echo(path.describe(p) + (f"; resuming after {_stage_name(scratch.finished()[0], p)}" if scratch.resumed else ""),
                        err=True)
             announced.append(p)
         start = time.perf_counter()
@@ -274,8 +291,13 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
                     "reverse sweep: root" if -m > p else f"reverse sweep: step {-m}")
                 typer.echo(f"  {what} done in {seconds:.1f} s ({time.perf_counter() - start:.0f} s so far)", err=True)
 
-        store = ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=client)
-        ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        store = (ZarrBandStore(scratch, target_bits=CHUNK_POINTS_BITS, client=client) if client is not None
+                 else LocalBandStore(scratch, target_bits=CHUNK_POINTS_BITS))
+        try:
+            ev = evaluate_chunked(q, D, g, b, store, gradient=gradient, target_bits=CHUNK_POINTS_BITS, progress=progress)
+        finally:
+            if client is None:
+                store.close()
         scratch.remove()
         return ev
 
@@ -330,7 +352,7 @@ def optimize_xorsat(sparse_q, degree, *, xi, depth, restarts=None, seed=0, gradi
     With ``start`` (an angle file of depth P-1 or P) only depth P is optimized, from it.
     """
     from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
-    from ..api import sparse_ladder
+    from ..ladders import sparse_ladder
     from ..parsing import check_optimizer_options, warm_start
     from ..paths import check_output_file
 

@@ -12,7 +12,7 @@ from leadline.kernels.numtext import fmt
 
 from .. import compute
 from ..angles import AngleSet, convergence_warning, optimum_report, write_angles
-from ..api import bath_ladder, optimize_ladder
+from ..ladders import bath_ladder, optimize_ladder
 from ..bath import check_optimize_method, engine_settings
 from ..cost import COST_NOTE_SECONDS, check_cost, check_depth
 from ..errors import InputError

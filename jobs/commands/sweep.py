@@ -49,14 +49,12 @@ def _store_errors(func):
     return wrapper
 
 
-def _write_failed(exc: OSError, store: Path, creating: bool):
-    """One error line (exit 1) for a write the operating system refused (full disk, file-size limit, ...).
+def write_failed_text(exc: OSError, store: Path, creating: bool) -> str:
+    """What to say when the operating system refused a write (full disk, file-size limit, ...).
 
     Every store write is ordered so that a failure at any point leaves a store that resume
     can use (as a kill does), and a store being created is removed with its hidden folder.
     """
-    import click
-
     from ..paths import os_error_text
 
     try:  # as the user would type it: relative to the working folder when inside it
@@ -65,43 +63,67 @@ def _write_failed(exc: OSError, store: Path, creating: bool):
         shown = Path(store)
     store = shown
     if creating and not Path(store).exists():
-        return click.ClickException(f"could not create store {store}: {os_error_text(exc)}; nothing was created")
-    return click.ClickException(
+        return f"could not create store {store}: {os_error_text(exc)}; nothing was created"
+    return (
         f"writing store {store} failed: {os_error_text(exc)}; every finished depth and checkpoint written before "
         f"is kept: make room, then `leadline resume {store}`"
     )
 
 
-def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
+def _write_failed(exc: OSError, store: Path, creating: bool):
+    """The command line's error line (exit 1) for :func:`write_failed_text`."""
+    import click
+
+    return click.ClickException(write_failed_text(exc, store, creating))
+
+
+def run_into(open_store, spec, settings, *, report=None, stopped=None) -> tuple[Path, list[dict]]:
     """Start the executor, then open (or create) the store and sweep holding its lock.
 
-    The executor comes first so that an unreachable scheduler or a bad batch
-    file is reported before the store is created.  The report is printed once
-    the lock is released.
+    The executor comes first so that an unreachable scheduler or a bad batch file is
+    reported before the store is created.  Returns the store's path and one record per
+    depth finished now (``report(record)`` after each).  When Ctrl-C (or SIGTERM, under
+    :func:`_sigterm_as_exit`) stops it, the lock is released and the passes computed so far
+    are written; then ``stopped(exc, store_path)`` gives the exception to raise instead.
     """
+    from ..sweep import run_study
+
+    store_path = None
+    try:
+        with compute.open_compute(settings) as executor:
+            with open_store() as store:
+                store_path = store.path
+                lines = run_study(store, spec, executor, report=report)
+    except (KeyboardInterrupt, _Terminated) as exc:
+        if stopped is None:
+            raise
+        raise stopped(exc, store_path) from None
+    return store_path, lines
+
+
+def _run(open_store, spec, settings, as_json: bool, quiet: bool) -> None:
+    """The command line's run: a line per finished depth (or one JSON object), what was kept
+    when stopped, and the status report at the end."""
     from leadline.storage import open_study
 
-    from ..sweep import depth_line, run_study
+    from ..sweep import depth_line
 
     def report(line: dict) -> None:
         if not as_json:
             typer.echo(depth_line(line))
 
-    store_path = None
-    try:
-        with _sigterm_as_exit(), compute.open_compute(settings) as executor:
-            with open_store() as store:
-                store_path = store.path
-                lines = run_study(store, spec, executor, report=report)
-    except (KeyboardInterrupt, _Terminated) as exc:
+    def stopped(exc, store_path):
         # the lock is released and the passes computed so far are written: say what is kept
         why = "interrupted" if isinstance(exc, KeyboardInterrupt) else "stopped by SIGTERM"
         code = 130 if isinstance(exc, KeyboardInterrupt) else int(exc.code)
-        raise Stopped(stopped_text(why, store_path), code) from None
+        return Stopped(stopped_text(why, store_path), code)
+
+    with _sigterm_as_exit():
+        store_path, lines = run_into(open_store, spec, settings, report=report, stopped=stopped)
     if as_json:
-        typer.echo(json.dumps({"store": str(store.path), "finished_now": lines, "progress": open_study(store.path).progress()}))
+        typer.echo(json.dumps({"store": str(store_path), "finished_now": lines, "progress": open_study(store_path).progress()}))
     elif not quiet:
-        typer.echo(status_text(open_study(store.path).progress()))
+        typer.echo(status_text(open_study(store_path).progress()))
 
 
 class _Terminated(SystemExit):
@@ -136,6 +158,10 @@ def _sigterm_as_exit():
 @_store_errors
 def sweep_command(
     spec_path: Path = typer.Argument(..., metavar="SPEC.toml", help="Study spec (TOML); every key is described in docs/cli.md."),
+    executor: Optional[str] = typer.Option(None, "--executor", help="Override [compute] executor for this run: auto, inprocess, local, scheduler, batch."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Override [compute] scheduler (address of a running Dask scheduler)."),
+    workers: Optional[int] = typer.Option(None, "--workers", help="Override [compute] workers."),
+    batch_file: Optional[Path] = typer.Option(None, "--batch-file", help="Override [compute] batch-file (batch-cluster TOML)."),
     quiet: bool = compute.quiet_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
 ) -> None:
@@ -146,17 +172,29 @@ def sweep_command(
         leadline sweep study.toml          # creates the store named in [study] store
 
     If it stops (killed, crashed, out of time), `leadline resume STORE` continues exactly where it was.
+    Where passes run is the spec's [compute] unless --executor, --scheduler, --workers or --batch-file
+    say otherwise (for this run only; `resume` takes the same options).
     """
     from ..sweep import create_store
 
     spec = load_spec(spec_path)
-    check_new_store(spec.store)
-    settings = spec.compute_settings(quiet=quiet or as_json)
-    check_sweep_sparse(spec, settings)
+    _check_overrides(workers, batch_file)
+    settings = prepare_sweep(spec, executor, scheduler, workers, batch_file, quiet=quiet or as_json)
     try:
         _run(lambda: create_store(spec), spec, settings, as_json, quiet)
     except OSError as exc:
         raise _write_failed(exc, spec.store, creating=True) from None
+
+
+def prepare_sweep(spec, executor=None, scheduler=None, workers=None, batch_file=None, quiet=True):
+    """Everything a new sweep checks before it writes anything; returns its compute settings.
+
+    The store must not exist yet; ``executor``, ``scheduler``, ``workers``, ``batch_file``
+    (None: the spec's [compute]) change where passes run, as they do for `resume`."""
+    check_new_store(spec.store)
+    settings = _settings_with(spec, executor, scheduler, workers, batch_file, quiet)
+    check_sweep_sparse(spec, settings)
+    return settings
 
 
 @_store_errors
@@ -177,26 +215,45 @@ def resume_command(
 
     The chunk plan (memory-mib) stays the one of the spec; where passes run may be changed.
     """
+    try:
+        spec, settings = prepare_resume(store_path, executor, scheduler, workers, batch_file, quiet or as_json)
+        _run(lambda: open_for_resume(store_path), spec, settings, as_json, quiet)
+    except OSError as exc:
+        raise _write_failed(exc, store_path, creating=False) from None
+
+
+def prepare_resume(store_path: Path, executor=None, scheduler=None, workers=None, batch_file=None, quiet=True):
+    """Everything `resume` checks before it computes: the store (readable, undamaged, not held
+    by a live writer), its spec, the overrides of where passes run; returns (spec, settings).
+    Pins the chunk kernel the study started with (``LEADLINE_KERNEL``)."""
     from leadline.storage import StudyStore, check_study
     from leadline.storage.study import check_contents
 
+    store_path = Path(store_path)
     attrs = check_study(store_path)
     check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
     spec = _stored_spec(store_path, attrs)
     _pin_kernel(attrs.get("kernel"))
+    _check_overrides(workers, batch_file)
+    settings = _settings_with(spec, executor, scheduler, workers, batch_file, quiet)
+    check_sweep_sparse(spec, settings)
+    # refuse now if another writer holds it (this open prints what the user should know, once)
+    StudyStore.open(store_path, command="resume").close()
+    return spec, settings
+
+
+def _check_overrides(workers, batch_file) -> None:
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be >= 1, got {workers}")
-    if batch_file is not None and not batch_file.is_file():
+    if batch_file is not None and not Path(batch_file).is_file():
         raise InputError(f"--batch-file: file {batch_file} does not exist")
-    settings = _settings_with(spec, executor, scheduler, workers, batch_file, quiet or as_json)
-    check_sweep_sparse(spec, settings)
-    try:
-        # refuse now if another writer holds it (this open prints what the user should know, once)
-        StudyStore.open(store_path, command="resume").close()
-        _run(lambda: StudyStore.open(store_path, command="resume", notice=lambda text: None), spec, settings,
-             as_json, quiet)
-    except OSError as exc:
-        raise _write_failed(exc, store_path, creating=False) from None
+
+
+def open_for_resume(store_path: Path):
+    """The store of a resume, opened for writing (its lock taken) after :func:`prepare_resume`."""
+    from leadline.storage import StudyStore
+
+    return StudyStore.open(store_path, command="resume", notice=lambda text: None)
 
 
 def _stored_spec(store_path: Path, attrs: dict):
@@ -239,7 +296,7 @@ def _pin_kernel(recorded: str | None) -> None:
 
 
 def _settings_with(spec, executor, scheduler, workers, batch_file, quiet):
-    """The spec's compute settings with the command-line overrides of `resume`."""
+    """The spec's compute settings with the overrides of `sweep` and `resume` (this run only)."""
     from dataclasses import replace
 
     from leadline.cluster import ExecutorConfigError
@@ -248,12 +305,15 @@ def _settings_with(spec, executor, scheduler, workers, batch_file, quiet):
     changes: dict = {"quiet": quiet}
     if executor is not None:
         changes["mode"] = executor
-        if executor not in ("scheduler", "batch"):
-            changes.update(scheduler=None, batch_file=None)
+        # the spec's address or file stays only for the executor that uses it
+        if executor != "scheduler":
+            changes["scheduler"] = None
+        if executor != "batch":
+            changes["batch_file"] = None
     if scheduler is not None:
         changes.update(mode=executor or "scheduler", scheduler=scheduler.strip(), batch_file=None)
     if batch_file is not None:
-        changes.update(mode=executor or "batch", batch_file=batch_file.resolve(), scheduler=None)
+        changes.update(mode=executor or "batch", batch_file=Path(batch_file).resolve(), scheduler=None)
     if workers is not None:
         changes["workers"] = workers
     try:

@@ -51,12 +51,12 @@ def _markdown_table(header: list[str], rows: list[list[str]], align: list[str]) 
 def _reference_lines(refs: References) -> list[str]:
     out = []
     if refs.ground_state is not None:
-        unc = f" +- {refs.ground_state_uncertainty:.2g}" if refs.ground_state_uncertainty else ""
+        unc = f" +- {refs.ground_state_uncertainty:.1e}" if refs.ground_state_uncertainty else ""
         out.append(f"- ground state GS = {fmt(refs.ground_state)}{unc} ({refs.ground_state_origin}: {refs.ground_state_source})")
     else:
         out.append("- ground state GS: not known")
     if refs.threshold is not None:
-        unc = f" +- {refs.threshold_uncertainty:.2g}" if refs.threshold_uncertainty else ""
+        unc = f" +- {refs.threshold_uncertainty:.1e}" if refs.threshold_uncertainty else ""
         out.append(f"- algorithmic threshold ALG = {fmt(refs.threshold)}{unc} ({refs.threshold_origin}: {refs.threshold_source})")
     else:
         out.append("- algorithmic threshold ALG: not known")

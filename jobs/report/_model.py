@@ -257,6 +257,12 @@ def build_ensemble_report(
         )
 
     notes: list[str] = []
+    stopped = [r.p for r in rows if r.converged is False]
+    if stopped:
+        notes.append(
+            f"not converged at p = {', '.join(map(str, stopped))}: the optimizer stopped before the gradient norm "
+            "reached the gradient tolerance (gradient-tol), so V_p* there may lie slightly below that depth's optimum"
+        )
     if meta.get("kind") == "sparse":
         pass  # a satisfied fraction has no ground-state ratio; the universality view compares it
     elif gs is None:
@@ -291,7 +297,7 @@ def build_ensemble_report(
         verdict = "agrees with" if abs(gs - shipped.ground_state) <= allowed else "DIFFERS from"
         notes.append(
             f"GS ({refs.ground_state_origin}) {verdict} the shipped value {fmt(shipped.ground_state)} "
-            f"+- {shipped.uncertainty:.1g} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
+            f"+- {shipped.uncertainty:.1e} ({shipped.source}); difference {gs - shipped.ground_state:+.1e}"
         )
 
     # ALG below GS beyond both uncertainties (an overlap gap): only then is "the depth where

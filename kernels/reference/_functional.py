@@ -518,6 +518,22 @@ def extrapolate_in_steps(values) -> tuple[float, float, str]:
     return v[-1], last_change, "last value (no power-law fit)"
 
 
+def _seconds_named(record: dict) -> dict:
+    """JSON names carry the unit of a plain number of seconds (``wall_time_s``)."""
+    record = dict(record)
+    if "wall_time" in record:
+        record["wall_time_s"] = record.pop("wall_time")
+    return record
+
+
+def _seconds_read(data: dict) -> dict:
+    """The dataclass fields from JSON written by this release (``wall_time_s``) or an older one."""
+    data = dict(data)
+    if "wall_time_s" in data:
+        data["wall_time"] = data.pop("wall_time_s")
+    return data
+
+
 @dataclass
 class ReferenceValue:
     """One reference energy (maximum energy density, caller's units of xi).
@@ -553,11 +569,11 @@ class ReferenceValue:
         return len(self.k_sequence)
 
     def to_json(self) -> dict:
-        return asdict(self)
+        return _seconds_named(asdict(self))
 
     @classmethod
     def from_json(cls, data: dict) -> "ReferenceValue":
-        return cls(**data)
+        return cls(**_seconds_read(data))
 
 
 def _exact_field_only(nmix: _NormalizedMixture, kind: str, tol: float) -> ReferenceValue:
@@ -697,11 +713,14 @@ class References:
     method_version: int = METHOD_VERSION
 
     def to_json(self) -> dict:
-        return asdict(self)
+        out = _seconds_named(asdict(self))
+        out["details"] = {k: _seconds_named(v) if isinstance(v, dict) and "wall_time" in v else v
+                          for k, v in out["details"].items()}
+        return out
 
     @classmethod
     def from_json(cls, data: dict) -> "References":
-        return cls(**data)
+        return cls(**_seconds_read(data))
 
 
 def reference_energies(

@@ -45,6 +45,7 @@ _WHERE = {
     "rows_bits": "_chunked",
     "band_bits": "_chunked",
     "step_sizes": "_chunked",
+    "reverse_stage": "_chunked",
     "CHUNK_POINTS_BITS": "_chunked",
 }
 

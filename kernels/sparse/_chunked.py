@@ -25,11 +25,16 @@ has the Zarr/Dask one) -- all a recursion needs:
         (2^B rows) over the high bits (the exchange); without, the bands are the output
     reduce(func, src, bands) -> [func(band_i, i) for every band], in band order
     values(name, flat_indices) -> array;  put(name, flat);  get(name) -> flat;  drop(name)
-    finished() -> (last finished step, its residual max) or (0, 0.0);  finish(m, residual)
+    finished() -> (last finished step, its residual max) or (0, 0.0);  finish(m, residual, state=None)
+    rewind(m, residual): record m as the last finished step again (no new step: before a vector is
+        overwritten in place); optional ``in_place`` attribute: transform(out, ..., srcs=[out]) works
+    state() -> the JSON-able ``state`` of the last finish (the root's sum, the angle adjoints so far)
 
 Checkpoints: ``finish(m, ...)`` is called once ``h{m}`` is complete; a store that persists
 (the Zarr one) records it, so a run that dies resumes at step ``finished() + 1`` and no
-finished step is computed again.  Steps 1 and 2 (and every depth p < 3) are a few points and
+finished step is computed again.  With the gradient the root (m = p + 1) and every stage of the
+reverse sweep (:func:`reverse_stage`: the root's adjoint, then steps p .. 3) are checkpoints
+too, with the angle adjoints summed so far in the record's ``state``.  Steps 1 and 2 (and every depth p < 3) are a few points and
 run whole.
 
 A step's result is kept as Z = message - 1 (``z{m}``); the next step's row pass raises it to
@@ -54,9 +59,9 @@ from ._adjoint import root_adjoint_rows, small_step_adjoint, step_adjoint_rows
 from ._growing import _evaluate_growing, build_rows, root_rows, whole_step
 from ._spectra import _PhaseSpectrum
 from ._steps import _chain_beta_bar, _Chunk, _exp_times, _log_power, _Split
-from ._transforms import _hadamard_bits, _Transformers, wht_inplace
+from ._transforms import _Transformers, columns_inplace, wht_inplace
 
-__all__ = ["BandStore", "evaluate_chunked", "band_bits", "rows_bits", "step_sizes", "CHUNK_POINTS_BITS"]
+__all__ = ["BandStore", "evaluate_chunked", "band_bits", "rows_bits", "step_sizes", "reverse_stage", "CHUNK_POINTS_BITS"]
 
 #: default band size: about 2^22 points (64 MiB of complex numbers) per row band and column
 #: block, so a task holds a few times that (a modest footprint, common practice for chunked arrays)
@@ -184,10 +189,12 @@ def _power_adjoint_band(hbar, z, i, *, D: float):
 
 
 def _column_block(block: np.ndarray, *, k: int) -> np.ndarray:
-    """A block of columns (2^B rows): transform over the top k bits of its row index."""
-    flat = np.ascontiguousarray(block, dtype=complex).reshape(-1)
-    lo = (flat.size.bit_length() - 1) - k
-    return _hadamard_bits(flat, np.empty_like(flat), lo, lo + k).reshape(block.shape)
+    """A block of columns (2^B rows): transform over the top k bits of its row index (in place
+    when the block is a C-contiguous complex array; returns the result)."""
+    out = block if block.dtype == complex and block.flags.c_contiguous and block.flags.writeable else (
+        np.ascontiguousarray(block, dtype=complex).copy())
+    columns_inplace(out.reshape(1 << k, -1))
+    return out
 
 
 def _band_call(row_func, parts, i):
@@ -204,6 +211,7 @@ class BandStore:
     def __init__(self):
         self.vectors: dict[str, np.ndarray] = {}
         self._done = (0, 0.0)
+        self._state = None
 
     def put(self, name, flat):
         self.vectors[name] = np.array(flat, dtype=complex).reshape(-1)
@@ -239,7 +247,14 @@ class BandStore:
     def finished(self):
         return self._done
 
-    def finish(self, m, residual):
+    def state(self):
+        return self._state
+
+    def finish(self, m, residual, state=None):
+        self._done = (m, residual)
+        self._state = state
+
+    def rewind(self, m, residual):
         self._done = (m, residual)
 
 
@@ -300,6 +315,12 @@ def evaluate_chunked(q, degree, gamma, beta, store, *, gradient: bool = False,
     def layout(m):
         return band_bits(2 * m - 3, m, target_bits - 2)  # the step's X has 4x the points of phat
 
+    # the root's transform may overwrite z{p} (a store that can, no reverse sweep that needs z{p}, and
+    # its bands whole row-chunks of z{p}): the largest vector then needs no second copy beside it
+    kr = band_bits(2 * p - 1, p + 1, target_bits)
+    in_place = bool(getattr(store, "in_place", False)) and not gradient and kr <= layout(p)
+    root_in = f"z{p}" if in_place else "phat_root"
+
     for m in range(done + 1, p + 1):
         ts = time.perf_counter()
         N = 1 << n_sites(m)
@@ -318,44 +339,74 @@ def evaluate_chunked(q, degree, gamma, beta, store, *, gradient: bool = False,
         store.finish(m, dev_max)
         if not gradient:
             store.drop(phat)
-            store.drop(f"z{m - 1}")
+            if not (m == p and in_place):
+                store.drop(f"z{m - 1}")
         transforms += 2
         report(m, ts)
-    # root: the same with the single middle site (time 0)
-    ts = time.perf_counter()
+    # root: the same with the single middle site (time 0); with the gradient it is a checkpoint too
     N = 1 << n_sites(p)
     coef = 0.5j * float(2**q) / N
-    sp = _Split(p, b, 1, True)
-    kr = band_bits(2 * p - 1, p + 1, target_bits)
-    store.transform("phat_root", functools.partial(_outer_band, A2=0.5 * sp.A, B=sp.B, D=D), f"z{p}", 2 * p - 1,
-                    1 << kr, functools.partial(_column_block, k=kr))
-    R1 = 1 << (sp.nr - 1)
-    total = _Split(p, b, 1, False).M[0] @ store.values("phat_root", [0, R1, 2 * R1, 3 * R1])
-    root_norm = abs(2.0 * total - 1.0)
-    check(root_norm, p, "root")
-    dev_max = max(dev_max, root_norm)
-    spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
-    parts = store.reduce(functools.partial(_root_band, M=sp.M, spec=spec, q=q, p=p), "phat_root", 1 << kr)
-    acc = complex(np.sum(np.array(parts, dtype=complex)))
-    transforms += 1
-    report(p + 1, ts)
+    if done <= p:
+        ts = time.perf_counter()
+        sp = _Split(p, b, 1, True)
+        if in_place:  # z{p} is about to be overwritten: a run killed from here on redoes step p from z{p-1}
+            store.rewind(p - 1, dev_max)
+        store.transform(root_in, functools.partial(_outer_band, A2=0.5 * sp.A, B=sp.B, D=D), f"z{p}", 2 * p - 1,
+                        1 << kr, functools.partial(_column_block, k=kr))
+        R1 = 1 << (sp.nr - 1)
+        total = _Split(p, b, 1, False).M[0] @ store.values(root_in, [0, R1, 2 * R1, 3 * R1])
+        root_norm = abs(2.0 * total - 1.0)
+        check(root_norm, p, "root")
+        dev_max = max(dev_max, root_norm)
+        spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
+        parts = store.reduce(functools.partial(_root_band, M=sp.M, spec=spec, q=q, p=p), root_in, 1 << kr)
+        acc = complex(np.sum(np.array(parts, dtype=complex)))
+        transforms += 1
+        if gradient:
+            store.finish(p + 1, dev_max, {"acc": _pack([acc])})
+        report(p + 1, ts)
+    else:
+        acc = _unpack(store.state()["acc"])[0]
     corr = 2.0 * coef * acc
     nu_c = 0.5 + 0.5 * corr
     residuals = {"sum_fH": dev_max, "imag_value": float(abs(nu_c.imag))}
     grad = None
     if gradient:
-        grad = _backward_chunked(q, D, g, b, coef, store, small_L, T, tmp, layout, kr, residuals, report)
+        grad = _backward_chunked(q, D, g, b, coef, store, small_L, T, tmp, layout, kr, residuals, report, acc)
         transforms += 3 * (p - 2) + 2 + 4
     else:
-        store.drop("phat_root")
+        store.drop(root_in)
+        store.drop(f"z{p - 1}")
     return _result(q, D, g, b, corr, residuals, grad, t0, transforms)
 
 
-def _backward_chunked(q, D, g, b, coef, store, small_L, T, tmp, layout, kr, residuals, report):
-    """The reverse sweep of :func:`_backward_growing` on the store's bands (same row functions)."""
+def _pack(z) -> list:
+    """Complex numbers as JSON-exact [re, im] pairs (a float's repr reads back to the same bits)."""
+    return [[float(x.real), float(x.imag)] for x in np.asarray(z, dtype=complex).reshape(-1)]
+
+
+def _unpack(pairs) -> np.ndarray:
+    return np.array([complex(re, im) for re, im in pairs], dtype=complex)
+
+
+def reverse_stage(p: int, m: int) -> int:
+    """The checkpoint number of the reverse sweep's stage m (m = p + 1: the root's adjoint, then
+    m = p .. 3: the split steps), after the forward steps 1..p and the root (p + 1)."""
+    return p + 2 + (p + 1 - m)
+
+
+def _backward_chunked(q, D, g, b, coef, store, small_L, T, tmp, layout, kr, residuals, report, acc):
+    """The reverse sweep of :func:`_backward_growing` on the store's bands (same row functions),
+    checkpointed after every stage: the adjoint H3bar of the next step down (``h3bar{m}``) is
+    complete in the store and the angle adjoints so far are in the record, so a killed sweep
+    resumes after its last finished stage; a stage's inputs are dropped only after its record."""
     p = g.size
+    done, _ = store.finished()
     gamma_bar = np.zeros(p, dtype=complex)
     beta_bar = np.zeros(p, dtype=complex)
+    if done >= reverse_stage(p, p + 1):
+        state = store.state()
+        gamma_bar, beta_bar = _unpack(state["gamma_bar"]), _unpack(state["beta_bar"])
 
     def add_theta_bar(theta_bar, m):
         Gam_bar = 0.5 * theta_bar  # theta = Gamma / 2
@@ -363,53 +414,58 @@ def _backward_chunked(q, D, g, b, coef, store, small_L, T, tmp, layout, kr, resi
         gamma_bar[:m] += Gam_bar[:m] - Gam_bar[n - 1 : m : -1]
 
     def outer_adjoint(sp, m_of_z, n, k):
-        """pbar -> h3bar through the outer factors of ``sp`` (H from z{m_of_z}); chain adjoints."""
-        parts = store.transform("h3bar", functools.partial(_outer_adjoint_band, A=sp.A, B=sp.B, D=D),
+        """pbar -> h3bar{m_of_z} through the outer factors of ``sp`` (H from z{m_of_z}); chain adjoints."""
+        parts = store.transform(f"h3bar{m_of_z}", functools.partial(_outer_adjoint_band, A=sp.A, B=sp.B, D=D),
                                 ["pbar", f"z{m_of_z}"], n, 1 << k, None)
-        store.drop("pbar")
         Abar = np.concatenate([x[0] for x in parts])
         Bbar = np.sum([x[1] for x in parts], axis=0)
         _chain_beta_bar(Abar, sp.A, sp.m, 0, beta_bar)
         _chain_beta_bar(Bbar, sp.B, sp.m, sp.c + sp.k, beta_bar, fixed_first=False)
 
-    ts = time.perf_counter()
-    sp = _Split(p, b, 1, True)
-    spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
-    parts = store.transform("pbar", functools.partial(_root_adjoint_band, M=sp.M, spec=spec, q=q, p=p, coef=coef),
-                            "phat_root", 2 * p - 1, 1 << kr, functools.partial(_column_block, k=kr))
-    store.drop("phat_root")
-    _combine_spec(spec, [x[0] for x in parts])
-    add_theta_bar(spec.theta_bar(), p)
-    sp.matrix_beta_bar(np.sum([x[1] for x in parts], axis=0), beta_bar)
-    outer_adjoint(sp, p, 2 * p - 1, kr)
-    report(-(p + 1), ts)
+    def finish(m, *names):
+        store.finish(reverse_stage(p, m), residuals["sum_fH"],
+                     {"acc": _pack([acc]), "gamma_bar": _pack(gamma_bar), "beta_bar": _pack(beta_bar)})
+        for name in names:
+            store.drop(name)
+
+    if done < reverse_stage(p, p + 1):
+        ts = time.perf_counter()
+        sp = _Split(p, b, 1, True)
+        spec = _PhaseSpectrum(g, "sin", 1.0, p + 2)
+        parts = store.transform("pbar", functools.partial(_root_adjoint_band, M=sp.M, spec=spec, q=q, p=p, coef=coef),
+                                "phat_root", 2 * p - 1, 1 << kr, functools.partial(_column_block, k=kr))
+        _combine_spec(spec, [x[0] for x in parts])
+        add_theta_bar(spec.theta_bar(), p)
+        sp.matrix_beta_bar(np.sum([x[1] for x in parts], axis=0), beta_bar)
+        outer_adjoint(sp, p, 2 * p - 1, kr)
+        finish(p + 1, "phat_root", "pbar")
+        report(-(p + 1), ts)
     for m in range(p, 2, -1):
+        if done >= reverse_stage(p, m):
+            continue
         ts = time.perf_counter()
         N = 1 << n_sites(m)
         k = layout(m)
-        store.transform("xbar", functools.partial(_power_adjoint_band, D=D), ["h3bar", f"z{m}"], 2 * m - 1, 1 << k,
+        store.transform("xbar", functools.partial(_power_adjoint_band, D=D), [f"h3bar{m}", f"z{m}"], 2 * m - 1, 1 << k,
                         functools.partial(_column_block, k=k))
-        store.drop("h3bar")
-        store.drop(f"z{m}")
         sp = _Split(m, b[:m], 3, False)
         spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, m + 3)
         parts = store.transform("pbar", functools.partial(_step_adjoint_band, M=sp.M, spec=spec, q=q, m=m),
                                 [f"phat{m}", "xbar"], 2 * m - 3, 1 << k, functools.partial(_column_block, k=k))
-        store.drop("xbar")
-        store.drop(f"phat{m}")
         _combine_spec(spec, [x[0] for x in parts])
         add_theta_bar(spec.theta_bar(), m)
         sp.matrix_beta_bar(np.sum([x[1] for x in parts], axis=0), beta_bar)
         outer_adjoint(sp, m - 1, 2 * m - 3, k)
+        finish(m, f"h3bar{m}", f"z{m}", f"phat{m}", "xbar", "pbar")
         report(-m, ts)
-    H3bar = np.array(store.get("h3bar"))
-    store.drop("h3bar")
-    store.drop("z2")
+    H3bar = np.array(store.get("h3bar2"))
     for m in (2, 1):
         N = 1 << n_sites(m)
         _exp_times(H3bar, small_L[m - 1], D, tmp)
         Xf_bar = T.inplace(H3bar)
         spec = _PhaseSpectrum(g[:m], "cos", float(2 ** (q - 1)) / N, 2 * m)
         H3bar = small_step_adjoint(m, Xf_bar, small_L[0] if m == 2 else None, q, D, b, spec, T, beta_bar, add_theta_bar)
+    store.drop("h3bar2")
+    store.drop("z2")
     residuals["imag_gradient"] = float(max(np.max(np.abs(gamma_bar.imag)), np.max(np.abs(beta_bar.imag))))
     return {"gamma": gamma_bar.real.copy(), "beta": beta_bar.real.copy()}

@@ -130,15 +130,31 @@ def wht_inplace(x: np.ndarray, scratch: tuple[np.ndarray, np.ndarray] | None = N
             row[...] = out
     if h == 0:
         return x
-    X2 = x.reshape(1 << h, B)
-    wbits = min(lbits, max(0, BLOCK_BITS - h))
+    columns_inplace(x.reshape(1 << h, B), (s1, s2))
+    return x
+
+
+def columns_inplace(X2: np.ndarray, scratch: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+    """Transform every column of the C-contiguous complex (2^h, W) array ``X2`` over its h row
+    bits, in place, a block of columns at a time (about 2^BLOCK_BITS points gathered into a small
+    scratch and transformed in cache); returns X2.  ``scratch``: two complex buffers of
+    >= max(2^BLOCK_BITS, 2^h) points."""
+    rows, W = X2.shape
+    h = rows.bit_length() - 1
+    if rows != 1 << h:
+        raise ValueError(f"{rows} rows is not a power of 2")
+    wbits = min(W.bit_length() - 1, max(0, BLOCK_BITS - h))
     w = 1 << wbits
-    for j0 in range(0, B, w):
+    need = w << h
+    if scratch is None or min(s.size for s in scratch) < need:
+        scratch = (np.empty(need, dtype=complex), np.empty(need, dtype=complex))
+    s1, s2 = scratch
+    for j0 in range(0, W, w):
         blk = s1[: w << h]
         blk.reshape(1 << h, w)[...] = X2[:, j0 : j0 + w]
         out = _hadamard_bits(blk, s2[: blk.size], wbits, wbits + h)
         X2[:, j0 : j0 + w] = out.reshape(1 << h, w)
-    return x
+    return X2
 
 
 def wht_blocked(x: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
