@@ -68,6 +68,48 @@ def test_bath_optimizer_finds_the_exact_optimum(xi, p):
     assert np.max(np.abs(got.gamma - exact.gamma)) < 2e-3 and np.max(np.abs(got.beta - exact.beta)) < 2e-3
 
 
+def test_search_runs_at_one_cutoff_and_the_preconditioner_saves_gradients():
+    """SK p = 4 from INTERP of the exact p = 3 optimum: the search evaluates single runs at the fixed
+    cut-off tolerance / 10, only the final point gets the ladder; the exact-Hessian preconditioner
+    reaches the optimum in at most 6 gradients, where BFGS from a scaled identity needs more."""
+    from leadline.kernels.bath import optimize_bath_depth
+
+    mix, before, exact = _exact_ladder("2:0.5", 4)
+    results = []
+    for kwargs in ({}, {"inverse_hessian": 0.3 * np.eye(8)}):
+        settings = []
+
+        def run_map(func, tasks):
+            tasks = list(tasks)
+            settings.extend(t[3] for t in tasks)
+            return [func(t) for t in tasks]
+
+        r = optimize_bath_depth(mix, 4, engine=ENGINE, run_map=run_map, previous=(before.gamma, before.beta),
+                                previous_value=before.value, **kwargs)
+        assert abs(r.value - exact.value) <= 1e-6 and round(r.value, 4) == SK_TABLE_1[4] and r.converged
+        assert r.evaluations == len(settings)
+        ladders = [s for s in settings if "cutoff" not in s]
+        assert ladders == [ENGINE]  # the final point only
+        assert all(s["cutoff"] == pytest.approx(ENGINE["tolerance"] / 10) for s in settings if "cutoff" in s)
+        results.append(r)
+    preconditioned, identity = results
+    assert preconditioned.gradients <= 6 < identity.gradients
+
+
+def test_preconditioner_is_positive_definite_and_padded():
+    from leadline.kernels.bath import preconditioner
+
+    mix = parse_mixture("2:0.5")
+    g = np.linspace(0.3, 0.6, 14)
+    b = np.linspace(0.6, 0.1, 14)
+    H = preconditioner(mix, g, b, 14, depth=4)  # exact Hessian at depth 4, padded to 14 modes
+    assert H.shape == (28, 28) and np.allclose(H, H.T, atol=1e-12)
+    assert np.linalg.eigvalsh(H).min() > 0
+    # modes beyond depth 4 are uncoupled: the padded block is diagonal
+    inv = np.linalg.inv(H)
+    assert np.allclose(inv[4:14, 4:14], np.diag(np.diag(inv[4:14, 4:14])), atol=1e-9)
+
+
 def test_same_bits_on_one_and_two_workers():
     """One bath optimization step whose evaluations run on a LocalCluster of 1 and of 2 workers."""
     from leadline.cluster import ComputeSettings
@@ -184,13 +226,24 @@ BAD_OPTIMIZE = {
     "bath on sparse": (["--method", "bath", "--sparse-q", "3", "--degree", "4"], "not --sparse-q/--degree"),
     "unknown method": (["--method", "fast"], "--method must be one of exact, bath"),
     "fock too small": (["--method", "bath", "--fock", "1"], "--fock must be between 4 and 200"),
+    "fock with exact": (["--fock", "8"], "--fock applies only to --method bath"),
+    "bond with exact": (["--bond", "64"], "--bond applies only to --method bath"),
+    "scratch with bath": (["--method", "bath", "--scratch", "x"], "--scratch is for sparse ensembles"),
+    "tolerance not a number": (["--method", "bath", "--tolerance", "nan"], "--tolerance must be between"),
+    "bath below its start depth": (["--method", "bath", "--depth", "5", "--angles", "{p2}"], "not --depth 5"),
 }
 
 
 @pytest.mark.parametrize("case", sorted(BAD_OPTIMIZE))
 def test_bad_optimize_options_one_line_exit_2(case, tmp_path):
     args, needle = BAD_OPTIMIZE[case]
+    if "{p2}" in args:  # a depth-2 angle file: a bath depth below which nothing starts
+        (tmp_path / "p2.json").write_text(json.dumps({"format": "leadline.angles", "format_version": 1, "xi": "2:0.5",
+                                                      "p": 2, "gamma": [0.4, 0.6], "beta": [0.5, 0.3]}))
+        args = [a.replace("{p2}", str(tmp_path / "p2.json")) for a in args]
     base = ["optimize", "--depth", "3", "--output", str(tmp_path / "out.json")]
+    if "--depth" in args:
+        base = ["optimize", "--output", str(tmp_path / "out.json")]
     if "--sparse-q" not in args:
         base += ["--xi", "2:0.5"]
     r = _run([*base, *args])
@@ -207,7 +260,26 @@ BAD_SPECS = {
     "bath-from too deep": ("pmax = 40", "bath-from = 35", "exact depths end at 30"),
     "bad bond": ("pmax = 5", "bath-from = 3\nbath-bond = 0", "bath-bond must be between 4 and 4096"),
     "bad tolerance": ("pmax = 5", "bath-from = 3\nbath-tolerance = 2.0", "bath-tolerance must be between"),
+    "bath-from not an integer": ("pmax = 5", "bath-from = 2.5", "bath-from must be an integer"),
+    "bath-from as a string": ("pmax = 5", 'bath-from = "3"', "bath-from must be an integer"),
+    "bath-from 1": ("pmax = 5", "bath-from = 1", "bath-from must be >= 2"),
+    "tolerance as a string": ("pmax = 5", 'bath-from = 3\nbath-tolerance = "1e-6"', "bath-tolerance must be a number"),
+    "fock not an integer": ("pmax = 5", "bath-from = 3\nbath-fock = 8.0", "bath-fock must be an integer"),
 }
+
+
+@pytest.mark.parametrize("kwargs,needle", [
+    ({"method": "exact", "tolerance": 1e-7}, "--tolerance applies only to --method bath"),
+    ({"method": "exact", "bond": 64}, "--bond applies only to --method bath"),
+    ({"method": "bath", "memory_mib": 64}, "--memory-mib sets the chunk plan"),
+    ({"method": "bath", "fock": 2}, "--fock must be between"),
+])
+def test_api_refuses_mixed_method_options(kwargs, needle):
+    import leadline
+    from leadline.jobs.errors import InputError
+
+    with pytest.raises(InputError, match=needle.replace("-", "\\-")):
+        leadline.optimize("2:0.5", 3, **kwargs)
 
 
 @pytest.mark.parametrize("case", sorted(BAD_SPECS))

@@ -12,7 +12,8 @@ Modules (private): ``_dense``, ``_mps``, ``_parity`` (the states: Fock array, de
 parity block-sparse MPS), ``_modes`` (bath modes and bases),
 ``_engine`` (one run), ``_estimate`` (the tolerance ladder and its error estimate), ``_optimize``
 (optimal angles by noise-aware finite differences).  May import: numpy,
-scipy.linalg and the contour layout of :mod:`leadline.kernels.exact`.  Names are imported on
+scipy.linalg and the contour layout of :mod:`leadline.kernels.exact` (``_optimize`` also its
+evaluation, for the exact-Hessian preconditioner, and :mod:`leadline.kernels.optimize`).  Names are imported on
 first use.
 """
 
@@ -44,6 +45,8 @@ _WHERE = {
     "optimize_bath_depth": "_optimize",
     "bath_point": "_optimize",
     "fourier_basis": "_optimize",
+    "preconditioner": "_optimize",
+    "search_settings": "_optimize",
     "ParityMPS": "_parity",
 }
 

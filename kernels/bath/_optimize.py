@@ -1,30 +1,45 @@
-"""Optimal angles with the bath engine: finite differences of a smooth schedule, noise-aware.
+"""Optimal angles with the bath engine: preconditioned quasi-Newton on finite differences.
 
 The bath engine gives V_p with a truncation error estimate but no derivative, so the gradient
-is a finite difference.  The angles are written in an orthonormal Fourier basis of the
-schedules (the FOURIER parametrization of Zhou, Wang, Choi, Pichler, Lukin, Phys. Rev. X 10,
-021067 (2020), eq. (7), normalized here):
+is a finite difference.  The angles move in an orthonormal Fourier basis of the schedules
+(the FOURIER parametrization of Zhou, Wang, Choi, Pichler, Lukin, Phys. Rev. X 10, 021067
+(2020), eq. (7), normalized here), as a displacement of the start:
 
-    gamma_i = sum_k u_k S[i, k],  S[i, k] = sqrt(2/p) sin((k - 1/2)(i - 1/2) pi / p)
-    beta_i  = sum_k v_k C[i, k],  C[i, k] = sqrt(2/p) cos((k - 1/2)(i - 1/2) pi / p)
+    gamma_i = gamma0_i + sum_k u_k S[i, k],  S[i, k] = sqrt(2/p) sin((k - 1/2)(i - 1/2) pi / p)
+    beta_i  = beta0_i  + sum_k v_k C[i, k],  C[i, k] = sqrt(2/p) cos((k - 1/2)(i - 1/2) pi / p)
 
 With q = p coefficients this is an orthogonal change of the 2p angles (nothing is lost); with
-q < p only the q smoothest modes move.  ``stages`` lists the q of each stage, the last one
-usually p: a few smooth coefficients first (a gradient costs 4q + 1 evaluations), then all
-of them.  Each stage runs scipy's BFGS on -V_p with central differences; the 4q + 1
-evaluations of one gradient are independent and go through ``run_map`` (in order, so the
-result does not depend on where they ran).
+q < p only the q smoothest modes move (``stages``; measured: the step from INTERP to the
+optimum is not smooth, so all p are the default).
 
-Noise: every evaluation carries the engine's error estimate e.  The difference step is
-h = clip(e^(1/3), 1e-4, 1e-2) (balancing e/h against h^2 of central differences); a stage
-stops when the gradient's largest component is below max(gtol, e/h) (the gradient noise
-level) or when an iteration gains less than e.  The result reports V_p* with its estimate,
-the gradient norm and that noise level.
+What makes a depth cheap (each measured, docs/bath.md):
+
+* **One truncation for the search.**  Every point of the search is one engine run at the
+  fixed cut-off ``tolerance / 10`` (no ladder): at a fixed cut-off V is a smooth function of
+  the angles, so central differences with step h = 1e-3 give the gradient to about 2e-5 at
+  cut-off 1e-7 (SK p = 12); a gradient bias d moves the value reached by d^2 / (2 lambda_min),
+  negligible.  Only the final point gets the full ladder of
+  :func:`evaluate_bath` (V_p* with its error estimate).
+* **A preconditioner.**  BFGS starts from the exact Hessian (kernels.exact reverse-mode
+  gradient, central differences) at depth p0 = min(p, 10) of the start schedule resampled to
+  p0 layers, in the same Fourier coordinates, padded to p modes (mode k has the same shape at
+  every depth); its eigenvalues are made positive.  From INTERP this takes the optimizer to
+  the optimum in a handful of gradients instead of the dozens from an identity start.
+* **Line searches on values.**  A trial step costs one evaluation, not a gradient: the step
+  along the quasi-Newton direction is accepted (or refined by a parabola through the values)
+  before the next gradient is taken.
+
+Stopping: when the predicted gain of the next quasi-Newton step, g^T H g / 2, is below
+tolerance / 10, when the largest gradient component is below ``gtol``, or when a line search
+finds no gain.  The report gives V_p* with the final ladder's estimate e, the gradient norm
+of the search's last gradient and its noise bound e_c / h (e_c: the value error estimate of
+the search's runs; a bound that assumes the truncation error were not smooth in the angles).
 
 Determinism: the evaluations are pure functions of (mixture, angles, engine settings), the
-optimizer is deterministic, and ``run_map`` returns results in task order, so the same inputs
-give the same bits on any number of workers; a depth that is replayed with evaluations read
-back from a checkpoint follows the same path.
+preconditioner is computed in process with one BLAS thread, the optimizer is deterministic,
+and ``run_map`` returns results in task order, so the same inputs give the same bits on any
+number of workers; a depth that is replayed with evaluations read back from a checkpoint
+follows the same path.
 """
 
 from __future__ import annotations
@@ -40,7 +55,7 @@ from ..mixture import Mixture
 from ..optimize import canonical_angles, start_candidates
 
 __all__ = ["BathOptimization", "optimize_bath_depth", "bath_point", "fourier_basis", "default_stages",
-           "difference_step"]
+           "difference_step", "search_settings", "preconditioner"]
 
 
 @dataclass
@@ -100,26 +115,58 @@ def fourier_basis(p: int, q: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def default_stages(p: int) -> tuple[int, ...]:
-    """Coefficients per stage: all 2p angles (measured the cheapest way to the optimum, docs/bath.md)."""
+    """Coefficients per stage: all 2p angles (the step from INTERP to the optimum is not smooth, docs/bath.md)."""
     return (p,)
 
 
-def difference_step(error_estimate: float) -> float:
-    """Central-difference step for a value known to ``error_estimate``: e^(1/3) in [1e-4, 1e-2]."""
-    return float(min(1e-2, max(1e-4, max(float(error_estimate), 1e-15) ** (1.0 / 3.0))))
+#: central-difference step in Fourier coordinates (measured at SK p = 12: gradient error ~ the
+#: value error of the truncation at 1e-3 and 1e-4, 5e-5 from the h^2 term at 1e-2)
+STEP = 1e-3
+#: "central" (4p + 1 evaluations per gradient) or "forward" (2p + 1; measured against each other in
+#: benchmarks/bench_bath_optimize.py --compare)
+DIFFERENCES = "central"
+#: the search runs at this fraction of the tolerance as its fixed cut-off
+SEARCH_CUTOFF = 0.1
+#: depth of the exact Hessian used as the preconditioner (resampled schedule, padded to p)
+HESSIAN_DEPTH = 10
+
+
+def difference_step(error_estimate: float | None = None) -> float:
+    """Central-difference step in Fourier coordinates (fixed: the search's runs are smooth in the angles)."""
+    return STEP
+
+
+def search_settings(engine: dict) -> dict:
+    """Engine settings of one search run: a fixed cut-off of tolerance / 10 (no ladder)."""
+    from ._estimate import DEFAULT_BOND_CAP, DEFAULT_FOCK_CAP, DEFAULT_TOLERANCE
+
+    tolerance = float(engine.get("tolerance", DEFAULT_TOLERANCE))
+    return {"cutoff": SEARCH_CUTOFF * tolerance, "fock_cap": int(engine.get("fock_cap", DEFAULT_FOCK_CAP)),
+            "bond_cap": int(engine.get("bond_cap", DEFAULT_BOND_CAP))}
 
 
 def bath_point(task) -> tuple[float, float, float]:
-    """One bath evaluation (the unit of distributed work): (value, error_estimate, seconds).
+    """One bath evaluation (the unit of distributed work): (value, error_estimate, CPU seconds).
 
-    ``task`` = (mixture, gamma, beta, engine keyword arguments of ``evaluate_bath``).  A
-    module-level function of plain data, so Dask can ship it to any worker.
+    ``task`` = (mixture, gamma, beta, settings): ``settings`` with a ``cutoff`` is one engine
+    run at that truncation (estimate: its discarded weight plus the square root of its top
+    Fock level population); otherwise the keyword arguments of ``evaluate_bath`` (the ladder
+    to a tolerance).  A module-level function of plain data, so Dask can ship it to any worker.
     """
-    from ._estimate import evaluate_bath
+    from ._estimate import _one_thread, evaluate_bath
+    from ._engine import run_bath
 
     mixture, gamma, beta, engine = task
+    engine = dict(engine)
+    g, b = np.asarray(gamma, float), np.asarray(beta, float)
     t0 = time.process_time()
-    res = evaluate_bath(mixture, np.asarray(gamma, float), np.asarray(beta, float), **dict(engine))
+    if "cutoff" in engine:
+        c = float(engine["cutoff"])
+        with _one_thread():
+            run = run_bath(mixture, g, b, fock=2, fock_max=int(engine["fock_cap"]), fock_tol=c * c, cutoff=c,
+                           chi=int(engine["bond_cap"]))
+        return float(run.value), float(run.discarded + np.sqrt(run.top_population)), time.process_time() - t0
+    res = evaluate_bath(mixture, g, b, **engine)
     return float(res.value), float(res.error_estimate), time.process_time() - t0
 
 
@@ -127,108 +174,179 @@ def _local_map(func, tasks) -> list:
     return [func(t) for t in tasks]
 
 
-class _Objective:
-    """-V_p and its central-difference gradient in Fourier coordinates, one map per point."""
+def _resample(x, p0: int) -> np.ndarray:
+    """A schedule of p layers at the p0 midpoints (i - 1/2) / p0 (linear, ends held)."""
+    x = np.asarray(x, float)
+    t = (np.arange(x.size) + 0.5) / x.size
+    return np.interp((np.arange(p0) + 0.5) / p0, t, x)
 
-    def __init__(self, mixture, p, q, engine, run_map, step, callback, record):
+
+def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int = HESSIAN_DEPTH) -> np.ndarray:
+    """Inverse of a positive-definite model of -Hessian(V) in the Fourier coordinates of depth p.
+
+    The exact Hessian (central differences of the exact reverse-mode gradient, step 1e-4) at
+    depth p0 = min(p, depth) of the schedule resampled to p0 layers, in p0's Fourier
+    coordinates; modes k <= p0 keep their entries, higher modes get the diagonal of mode p0
+    (mode k has the same shape at every depth); eigenvalues below 1e-2 of the largest are
+    raised to it.  Returns the (2q, 2q) block of the first q modes per schedule.
+    """
+    from ..exact import evaluate
+    from ._estimate import _one_thread
+
+    p = len(gamma)
+    p0 = min(p, depth)
+    g0, b0 = _resample(gamma, p0), _resample(beta, p0)
+    S, C = fourier_basis(p0, p0)
+    h = 1e-4
+    n0 = 2 * p0
+    H0 = np.zeros((n0, n0))
+    with _one_thread():
+        for j in range(n0):
+            grads = []
+            for sign in (1.0, -1.0):
+                e = np.zeros(n0)
+                e[j] = sign * h
+                ev = evaluate(mixture, g0 + S @ e[:p0], b0 + C @ e[p0:], gradient=True)
+                grads.append(np.concatenate([S.T @ ev.gradient["gamma"], C.T @ ev.gradient["beta"]]))
+            H0[:, j] = -(grads[0] - grads[1]) / (2 * h)
+    H0 = 0.5 * (H0 + H0.T)
+    w, U = np.linalg.eigh(H0)
+    w = np.maximum(np.abs(w), 1e-2 * np.max(np.abs(w)))
+    H0 = (U * w) @ U.T
+    # pad to q modes per schedule: index k of gamma -> k, of beta -> q + k
+    H = np.zeros((2 * q, 2 * q))
+    m = min(p0, q)
+    src = [*range(m), *range(p0, p0 + m)]
+    dst = [*range(m), *range(q, q + m)]
+    H[np.ix_(dst, dst)] = H0[np.ix_(src, src)]
+    for k in range(m, q):
+        H[k, k] = H0[p0 - 1, p0 - 1]
+        H[q + k, q + k] = H0[n0 - 1, n0 - 1]
+    return np.linalg.inv(H)
+
+
+class _Search:
+    """V_p at one truncation along the search, and its central-difference gradient, one map per batch."""
+
+    def __init__(self, mixture, p, q, g0, b0, settings, run_map, callback, record):
         self.mixture, self.p, self.q = mixture, p, q
+        self.g0, self.b0 = np.asarray(g0, float), np.asarray(b0, float)
         self.S, self.C = fourier_basis(p, q)
-        self.engine = dict(engine)
+        self.settings = dict(settings)
         self.run_map = run_map
-        self.step = step
         self.callback = callback
         self.record = record
         self.evaluations = 0
         self.gradients = 0
         self.seconds = 0.0
-        self.last = None  # (x, value, error, gradient)
-        self.known: dict = {}  # x.tobytes() -> (value, error, seconds) already evaluated
         self.best = None  # (value, error, x, gradient)
 
     def angles(self, x):
-        return self.S @ x[: self.q], self.C @ x[self.q:]
+        return self.g0 + self.S @ x[: self.q], self.b0 + self.C @ x[self.q:]
 
-    def __call__(self, x):
-        x = np.asarray(x, float)
-        h = self.step
-        known = self.known.pop(x.tobytes(), None)  # the start, evaluated once to choose h
-        points = [x]
-        for j in range(x.size):
-            for sign in (1.0, -1.0):
-                y = x.copy()
-                y[j] += sign * h
-                points.append(y)
-        tasks = []
-        for y in points[(0 if known is None else 1):]:
-            g, b = self.angles(y)
-            tasks.append((self.mixture, g, b, self.engine))
-        out = self.run_map(bath_point, tasks)
-        if known is not None:
-            out = [known, *out]
-        self.evaluations += len(tasks)
-        self.gradients += 1
+    def _map(self, points):
+        out = self.run_map(bath_point, [(self.mixture, *self.angles(y), self.settings) for y in points])
+        self.evaluations += len(points)
         self.seconds += float(sum(o[2] for o in out))
+        return out
+
+    def values(self, points) -> list[tuple[float, float]]:
+        """(value, estimate) at each point: the line search's trial steps."""
+        return [(o[0], o[1]) for o in self._map(points)]
+
+    def gradient(self, x, known=None):
+        """(value, estimate, gradient) at x; ``known`` = (value, estimate) at x if evaluated already."""
+        x = np.asarray(x, float)
+        points = [] if known is not None else [x]
+        signs = (1.0, -1.0) if DIFFERENCES == "central" else (1.0,)
+        for j in range(x.size):
+            for sign in signs:
+                y = x.copy()
+                y[j] += sign * STEP
+                points.append(y)
+        out = self._map(points)
+        if known is not None:
+            out = [(*known, 0.0), *out]
+        self.gradients += 1
         values = np.array([o[0] for o in out])
         value, error = float(values[0]), float(out[0][1])
-        grad = (values[1::2] - values[2::2]) / (2.0 * h)
-        self.last = (x.copy(), value, error, grad)
+        if len(signs) == 2:
+            grad = (values[1::2] - values[2::2]) / (2.0 * STEP)
+        else:
+            grad = (values[1:] - value) / STEP
         if self.best is None or value > self.best[0]:
             self.best = (value, error, x.copy(), grad)
         self.record["values"].append(value)
         if self.callback is not None:
-            self.callback({"evaluation": self.evaluations, "evaluations": len(tasks), "value": value,
+            self.callback({"evaluation": self.evaluations, "evaluations": len(points), "value": value,
                            "error_estimate": error, "best_value": self.best[0], "best_error_estimate": self.best[1],
                            "gradient_norm": float(np.max(np.abs(grad))),
                            "evaluation_s": self.seconds / max(1, self.evaluations)})
-        return -value, -grad
+        return value, error, grad
 
 
-def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, record):
-    """One BFGS run on q Fourier coefficients per schedule, from angles (g0, b0)."""
-    from scipy.optimize import minimize  # here, not at import: keeps the command line light
+def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, record, hessian=None):
+    """One preconditioned BFGS run on q Fourier coefficients per schedule, from angles (g0, b0).
 
-    S, C = fourier_basis(p, q)
-    x0 = np.concatenate([S.T @ g0, C.T @ b0])  # projection (exact when q = p)
-    probe = run_map(bath_point, [(mixture, S @ x0[:q], C @ x0[q:], dict(engine))])[0]
-    step = difference_step(probe[1])
-    obj = _Objective(mixture, p, q, engine, run_map, step, callback, record)
-    obj.evaluations, obj.seconds = 1, probe[2]
-    obj.known[np.asarray(x0, float).tobytes()] = probe
-    noise = probe[1] / step
-    target = max(gtol, noise)
-
-    class _Done(Exception):
-        pass
-
-    previous = [None]
-
-    def stop_check(xk):
-        # noise-aware stopping: a gradient below its noise level, or a gain below the estimate
-        x, value, error, grad = obj.last
-        if not np.array_equal(x, xk):
-            return
-        if np.max(np.abs(grad)) <= max(gtol, error / step):
-            raise _Done("gradient below max(gtol, its noise level)")
-        if previous[0] is not None and value - previous[0] < error:
-            raise _Done("gain of the last iteration below the error estimate")
-        previous[0] = value
-
-    message = "iteration limit"
-    try:
-        res = minimize(obj, x0, jac=True, method="BFGS", callback=stop_check,
-                       options={"maxiter": maxiter, "gtol": target, "norm": np.inf})
-        message = str(res.message)
-    except _Done as done:
-        message = str(done)
-    value, error, x, grad = obj.best
+    Maximizes V_p at the search truncation; the final point is evaluated to the tolerance.
+    """
+    settings = search_settings(engine)
+    tolerance = float(engine.get("tolerance", 1e-6))
+    search = _Search(mixture, p, q, g0, b0, settings, run_map, callback, record)
+    Hinv = preconditioner(mixture, g0, b0, q) if hessian is None else np.array(hessian, float)
+    n = 2 * q
+    x = np.zeros(n)
+    value, error, grad = search.gradient(x)
+    message, converged = "iteration limit", False
+    for _ in range(maxiter):
+        d = Hinv @ grad
+        predicted = float(grad @ d)  # first-order gain of the full step; g^T H g / 2 is the quadratic model's
+        if np.max(np.abs(grad)) <= gtol:
+            message, converged = "gradient below gtol", True
+            break
+        if predicted / 2.0 <= SEARCH_CUTOFF * tolerance:
+            message, converged = "predicted gain of the next step below tolerance / 10", True
+            break
+        # line search on values: the full step, refined by the parabola through V(0), V'(0), V(1)
+        (v1, e1), = search.values([x + d])
+        steps = [(1.0, v1, e1)]
+        curvature = v1 - value - predicted
+        if curvature < 0:
+            a = min(max(-predicted / (2.0 * curvature), 0.1), 4.0)
+            if not 0.7 <= a <= 1.4:
+                (va, ea), = search.values([x + a * d])
+                steps.append((a, va, ea))
+        a, v_new, e_new = max(steps, key=lambda s: s[1])
+        tries = 0
+        while v_new <= value and tries < 3:
+            a *= 0.25
+            (v_new, e_new), = search.values([x + a * d])
+            tries += 1
+        if v_new <= value:
+            message, converged = "no gain along the quasi-Newton direction (at the search truncation)", True
+            break
+        x_new = x + a * d
+        v_new, e_new, g_new = search.gradient(x_new, known=(v_new, e_new))
+        s, y = x_new - x, -(g_new - grad)  # BFGS on -V
+        sy = float(s @ y)
+        if sy > 1e-12 * float(np.linalg.norm(s) * np.linalg.norm(y)):
+            rho = 1.0 / sy
+            V = np.eye(n) - rho * np.outer(s, y)
+            Hinv = V @ Hinv @ V.T + rho * np.outer(s, s)
+        x, value, error, grad = x_new, v_new, e_new, g_new
+    search_value, search_error, x, grad = search.best
+    g, b = search.angles(x)
+    # the final point to the tolerance (the ladder of evaluate_bath), one checkpointed task
+    final = run_map(bath_point, [(mixture, g, b, dict(engine))])[0]
+    search.evaluations += 1
+    search.seconds += final[2]
     gnorm = float(np.max(np.abs(grad)))
-    g, b = obj.angles(x)
-    noise = error / step
     return {
-        "value": value, "error_estimate": error, "gamma": g, "beta": b, "gradient_norm": gnorm,
-        "gradient_noise": noise, "converged": gnorm <= max(10 * gtol, 10 * noise) or "below" in message,
-        "message": message, "evaluations": obj.evaluations, "gradients": obj.gradients, "seconds": obj.seconds,
-        "q": q, "step": step,
+        "value": float(final[0]), "error_estimate": float(final[1]), "gamma": g, "beta": b, "gradient_norm": gnorm,
+        "gradient_noise": max(search_error, abs(search_value - final[0])) / STEP, "converged": converged,
+        "message": message, "evaluations": search.evaluations, "gradients": search.gradients,
+        "seconds": search.seconds, "q": q, "step": STEP, "search_value": search_value,
+        "inverse_hessian": Hinv,
     }
 
 
@@ -247,18 +365,23 @@ def optimize_bath_depth(
     gtol: float = 1e-6,
     maxiter: int = 200,
     callback: Callable[[dict], None] | None = None,
+    inverse_hessian=None,
 ) -> BathOptimization:
     """Maximize V_p over the angles with the bath engine (finite differences, noise-aware).
 
-    engine : keyword arguments of :func:`evaluate_bath` (fixed for the whole depth, so every
-        difference compares values of the same truncation)
+    engine : keyword arguments of :func:`evaluate_bath` (``tolerance``, ``fock_cap``, ``bond_cap``):
+        the final point's ladder; the search runs at the fixed cut-off tolerance / 10
+        (:func:`search_settings`), so every difference compares values of the same truncation
     run_map : ``run_map(func, tasks) -> [func(t) for t in tasks]`` in task order (an
         executor's ``run_map``; default: in this process)
     previous, previous_value, starts, restarts, seed : as for the exact optimizer
         (INTERP warm start from depth p-1; default here: no extra starts)
     stages : Fourier coefficients per schedule of each stage (default :func:`default_stages`)
-    gtol : stop when the largest gradient component is below max(gtol, its noise level)
-    maxiter : iteration cap of each stage
+    gtol : stop when the largest gradient component is below gtol (the search also stops when
+        the predicted gain of its next step is below tolerance / 10)
+    maxiter : iteration cap (quasi-Newton iterations) of each stage
+    inverse_hessian : (2p, 2p) starting inverse Hessian of -V in Fourier coordinates (default:
+        :func:`preconditioner`, the exact Hessian at depth <= 10 padded to p)
     callback : called after each gradient with a dict (evaluation, evaluations, value,
         error_estimate, best_value, best_error_estimate (of the stage), gradient_norm, evaluation_s)
     """
@@ -286,12 +409,12 @@ def optimize_bath_depth(
         for q in stages:
             record = {"start": index, "kind": kind, "coefficients": q, "values": []}
             out = _stage(mixture, p, q, g, b, engine=engine, run_map=run_map, gtol=gtol, maxiter=maxiter,
-                         callback=callback, record=record)
+                         callback=callback, record=record, hessian=inverse_hessian if q == p else None)
             g, b = out["gamma"], out["beta"]
             for key in ("evaluations", "gradients", "seconds"):
                 totals[key] += out[key]
             record.update({k: out[k] for k in ("value", "error_estimate", "gradient_norm", "gradient_noise",
-                                               "message", "evaluations", "step")})
+                                               "message", "evaluations", "step", "search_value")})
             history.append(record)
         if best is None or out["value"] > best["value"]:
             best = out
