@@ -17,6 +17,14 @@ import os
 for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")  # before numpy loads here, and for every subprocess a test starts
 
+import signal  # noqa: E402
+
+# A shell's background job (`nohup ... &`, a CI runner) starts with SIGINT ignored, every process
+# it starts inherits that, and Python then installs no KeyboardInterrupt handler: the tests that
+# press Ctrl-C on a sweep they started need the disposition of an interactive session.
+if signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
+    signal.signal(signal.SIGINT, signal.default_int_handler)
+
 from hypothesis import HealthCheck, settings  # noqa: E402
 
 settings.register_profile(
