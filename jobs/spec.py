@@ -12,7 +12,8 @@ Layout (version 1; every key is checked, unknown keys are errors)::
                                      # continues with the bath engine from a depth <= 30)
 
     [optimizer]                      # all optional
-    restarts = 2                     # extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, 0 after)
+    restarts = 2                     # extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, 0 after;
+                                     # sparse ensembles 3 at p<=2, 1 at p<=6, 0 after)
     seed = 0                         # seeds every random start (default 0)
     gradient-tol = 1e-7              # stop when the gradient norm (largest component) is below this
     max-iterations = 500             # iteration cap of each local quasi-Newton run

@@ -79,8 +79,11 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     from leadline.kernels.sparse import optimize_sparse
 
     from .commands import _sparse as sparse_cli
+    from .ladders import sparse_default_restarts
 
-    kwargs = {} if spec.restarts is None else {"restarts": spec.restarts}
+    # the same default as `leadline optimize --sparse-q` (INTERP alone past p = 6): without it the
+    # kernel's own default (3 seeded restarts) made every deep sweep depth about 4x dearer
+    restarts = spec.restarts if spec.restarts is not None else sparse_default_restarts(p)
     chunked = contextlib.nullcontext(None)
     if not sparse_cli.fits_in_memory(p, gradient=True):
         # past memory: every evaluation on chunked vectors in the folder beside the store
@@ -92,7 +95,7 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
         result = optimize_sparse(
             ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
             seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations,
-            evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, **kwargs,
+            evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, restarts=restarts,
         )
     return result, CheckpointStats()
 

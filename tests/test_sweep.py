@@ -614,3 +614,26 @@ def test_ctrl_c_says_what_is_kept_and_how_to_resume(reference, tmp_path):
     assert r.returncode == 0, r.stderr
     assert "8 reused" in [line for line in r.stdout.splitlines() if "p = 2" in line][0]
     _compare_with_reference(reference, store)
+
+
+@pytest.mark.parametrize("p", [1, 5, 12])
+def test_sparse_sweep_depth_uses_the_command_lines_default_restarts(p, monkeypatch, tmp_path):
+    """A sweep's sparse depth with no `restarts` in the spec starts the optimizer as
+    `leadline optimize --sparse-q` does (jobs.ladders.sparse_default_restarts: INTERP alone past
+    p = 6), not with the kernel's 3 seeded restarts, which made deep depths about 4x dearer."""
+    import leadline.kernels.sparse as sparse_kernels
+    from leadline.jobs.ladders import sparse_default_restarts
+    from leadline.jobs.spec import spec_from_dict
+    from leadline.jobs.sweep import _optimize_sparse
+
+    spec = spec_from_dict({"study": {"name": "mc", "store": str(tmp_path / "mc.zarr")}, "depths": {"pmax": 12},
+                           "ensemble": [{"label": "mc", "kind": "sparse", "q": 2, "degree": 3}]})
+    seen = {}
+    monkeypatch.setattr(sparse_kernels, "optimize_sparse", lambda *a, **kw: seen.update(kw) or "result")
+
+    class Executor:
+        settings = None
+
+    result, _ = _optimize_sparse(spec.ensembles[0], spec, p, None, Executor(), None, None)
+    assert result == "result" and seen["restarts"] == sparse_default_restarts(p)
+    assert sparse_default_restarts(1) == 3 and sparse_default_restarts(12) == 0

@@ -31,7 +31,7 @@ def optimize_command(
         "Without it, depths 1..p are optimized in turn, each warm-starting the next.",
     ),
     restarts: Optional[int] = typer.Option(
-        None, "--restarts", help="Extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, else 0)."
+        None, "--restarts", help="Extra seeded starts per depth (default: 8 at p<=2, 4 at p<=4, 2 at p<=8, else 0; with --sparse-q 3 at p<=2, 1 at p<=6, else 0)."
     ),
     seed: int = typer.Option(0, "--seed", help="Seed of the random and perturbed starts (results are reproducible)."),
     gradient_tol: float = typer.Option(1e-7, "--gradient-tol", help="Stop when the gradient norm (the largest component of dV/d(gamma, beta)) is below this."),
