@@ -98,50 +98,101 @@ def _identity(p: int) -> np.ndarray:
     return 0.3 * np.eye(2 * p)  # 0.3: about the step from the gradient to the optimum (SK p = 10-12)
 
 
-def compare(depths, engine: dict, log=_log, schemes=None) -> list[dict]:
-    """The optimizer's schemes against each other, each from INTERP of the exact p - 1 optimum.
+#: the optimizer's module settings of each scheme (the rest as the default); "previous" is the scheme
+#: before hybrid differences: central differences h = 1e-3, the exact Hessian at depth 10 by central
+#: differences
+SCHEMES = {
+    "default": {},
+    "previous": {"DIFFERENCES": "central", "STEP": 1e-3, "HESSIAN_DEPTH": 10, "HESSIAN_DIFFERENCES": "central"},
+    "central": {"DIFFERENCES": "central"},
+    "hybrid h = 1e-3": {"STEP": 1e-3},
+    "Hessian p0 = 10": {"HESSIAN_DEPTH": 10},
+    "carried Hessian": {},
+    "identity start": {},
+    "ladder search": {},
+    "search at tol": {"SEARCH_CUTOFF": 1.0},
+    "smooth q = 4": {},
+    "forward 1e-4": {"DIFFERENCES": "forward"},
+}
+#: the schemes of a plain --compare (the rest on request with --schemes)
+DEFAULT_SCHEMES = ("default", "previous", "central", "hybrid h = 1e-3", "Hessian p0 = 10")
 
-    default        : search at the fixed cut-off tolerance/10, exact-Hessian preconditioner
-    identity start : the same without the preconditioner (BFGS from 0.3 x identity)
-    ladder search  : every search point evaluated to the tolerance by the full ladder
-    search at tol  : the search at the cut-off tolerance itself (looser)
-    smooth q = 4   : only the 4 smoothest Fourier modes per schedule move
-    forward 1e-4   : forward differences (2p + 1 evaluations per gradient) with step 1e-4
+
+def compare(depths, engine: dict, log=_log, schemes=None) -> list[dict]:
+    """The optimizer's schemes against each other, each from INTERP of the exact p - 1 optimum, interleaved
+    (every scheme at depth p before depth p + 1).
+
+    default         : hybrid differences (forward, curvature-corrected, h = 1e-4; central before a stop),
+                      the exact Hessian at depth 13 (forward differences of the exact gradient)
+    previous        : central differences h = 1e-3, exact Hessian at depth 10 (central differences)
+    central         : the default with central differences throughout
+    hybrid h = 1e-3 : the default with step 1e-3
+    Hessian p0 = 10 : the default with the exact Hessian at depth 10
+    carried Hessian : the default started from the final BFGS matrix of a default run at p - 1 (from
+                      INTERP of the exact p - 2 optimum; its CPU not counted), padded to p
+    identity start  : no preconditioner (BFGS from 0.3 x identity)
+    ladder search   : every search point evaluated to the tolerance by the full ladder
+    search at tol   : the search at the cut-off tolerance itself (looser)
+    smooth q = 4    : only the 4 smoothest Fourier modes per schedule move
+    forward 1e-4    : forward differences throughout, uncorrected, no central check
     """
-    from leadline.kernels.bath import _optimize, optimize_bath_depth
+    from leadline.kernels.bath import _optimize, optimize_bath_depth, pad_inverse_hessian
     from leadline.kernels.mixture import parse_mixture
 
     mix = parse_mixture(XI)
+    names = [n for n in SCHEMES if n in (schemes or DEFAULT_SCHEMES)]
     rows = []
     for p in depths:
         before, exact = _exact(p - 1), _exact(p)
-        variants = [("default", {}, None), ("identity start", {"inverse_hessian": _identity(p)}, None),
-                    ("ladder search", {}, "ladder"), ("search at tol", {}, 1.0), ("smooth q = 4", {"stages": (4,)}, None),
-                    ("forward 1e-4", {}, "forward")]
-        for name, kwargs, search in variants:
-            if schemes and name not in schemes:
-                continue
-            saved = _optimize.SEARCH_CUTOFF, _optimize.search_settings, _optimize.DIFFERENCES, _optimize.STEP
-            if search == "ladder":
-                _optimize.search_settings = lambda eng: dict(eng)
-            elif search == "forward":
-                _optimize.DIFFERENCES, _optimize.STEP = "forward", 1e-4
-            elif search is not None:
-                _optimize.SEARCH_CUTOFF = search
+        for name in names:
+            kwargs = {}
+            saved = {k: getattr(_optimize, k) for k in
+                     ("SEARCH_CUTOFF", "search_settings", "DIFFERENCES", "STEP", "HESSIAN_DEPTH", "HESSIAN_DIFFERENCES")}
             try:
+                for key, value in SCHEMES[name].items():
+                    setattr(_optimize, key, value)
+                if name == "ladder search":
+                    _optimize.search_settings = lambda eng: dict(eng)
+                elif name == "identity start":
+                    kwargs = {"inverse_hessian": _identity(p)}
+                elif name == "smooth q = 4":
+                    kwargs = {"stages": (4,)}
+                elif name == "carried Hessian":
+                    two = _exact(p - 2)
+                    r1 = optimize_bath_depth(mix, p - 1, engine=engine, previous=(two["gamma"], two["beta"]),
+                                             previous_value=two["value"])
+                    kwargs = {"inverse_hessian": pad_inverse_hessian(r1.inverse_hessian, p)}
                 c0 = time.process_time()
                 r = optimize_bath_depth(mix, p, engine=engine, previous=(before["gamma"], before["beta"]),
                                         previous_value=before["value"], **kwargs)
             finally:
-                (_optimize.SEARCH_CUTOFF, _optimize.search_settings, _optimize.DIFFERENCES,
-                 _optimize.STEP) = saved
-            row = {"p": p, "scheme": name, "error": r.value - exact["value"], "error_estimate": r.error_estimate,
+                for key, value in saved.items():
+                    setattr(_optimize, key, value)
+            pub = PUBLISHED.get(p)
+            row = {"p": p, "scheme": name, "value": r.value,
+                   "error": None if exact is None else r.value - exact["value"], "error_estimate": r.error_estimate,
+                   "published": pub, "agrees_4_decimals": pub is not None and round(r.value, 4) == pub,
                    "evaluations": r.evaluations, "gradients": r.gradients, "cpu_s": time.process_time() - c0,
                    "message": r.message, "load": os.getloadavg()[0]}
             rows.append(row)
-            log(f"p = {p} {name:15s}: V - V* = {row['error']:+.1e} (+- {r.error_estimate:.1e}), {r.gradients} gradients, "
+            ref = (f"V - V* = {row['error']:+.1e}" if exact is not None else
+                   f"V = {r.value:.7f} (published {pub}: {'agrees' if row['agrees_4_decimals'] else 'differs'})")
+            log(f"p = {p} {name:15s}: {ref} (+- {r.error_estimate:.1e}), {r.gradients} gradients, "
                 f"{r.evaluations} evaluations, {row['cpu_s']:.1f} CPU s, load {row['load']:.1f}")
     return rows
+
+
+def compare_markdown(rows: list[dict]) -> str:
+    """The table of a --compare run as docs/bath.md shows it."""
+    lines = ["| p | scheme | V - V_p* (exact) | published (4 decimals) | estimate | gradients | evaluations | CPU s "
+             "| load |", "|---|---|---|---|---|---|---|---|---|"]
+    for r in rows:
+        err = "-" if r["error"] is None else f"{r['error']:.1e}"
+        pub = "-" if r.get("published") is None else (
+            f"{r['published']:.4f} ({'agrees' if r['agrees_4_decimals'] else 'differs'})")
+        lines.append(f"| {r['p']} | {r['scheme']} | {err} | {pub} | {r['error_estimate']:.1e} | {r['gradients']} "
+                     f"| {r['evaluations']} | {r['cpu_s']:.1f} | {r['load']:.1f} |")
+    return "\n".join(lines)
 
 
 def gradient_errors(p: int = 12, log=_log) -> list[dict]:
@@ -230,7 +281,7 @@ def extrapolation(rows: list[dict]) -> str:
 def run(quick: bool = False) -> dict:
     """`make bench`: the scheme comparison at p = 10 (quick: p = 6)."""
     engine = {"tolerance": 1e-6}
-    return {"engine": engine, "compare": compare([6] if quick else [10], engine)}
+    return {"engine": engine, "compare": compare([6] if quick else [10], engine, schemes=("default", "previous"))}
 
 
 def main(argv=None) -> int:
@@ -243,7 +294,7 @@ def main(argv=None) -> int:
     ap.add_argument("--hessians", action="store_true")
     ap.add_argument("--tolerance", type=float, default=1e-6)
     ap.add_argument("--json", default=None)
-    ap.add_argument("--markdown", metavar="JSON", help="print the table of a --targets JSON file and exit")
+    ap.add_argument("--markdown", metavar="JSON", help="print the table of a --targets or --compare JSON file and exit")
     ap.add_argument("--extrapolate", metavar="JSON", help="print the SK headline with the bath depths > 16 of a "
                     "--targets JSON file added to tests/sk_optima.csv, and exit")
     args = ap.parse_args(argv)
@@ -253,13 +304,24 @@ def main(argv=None) -> int:
         return 0
     if args.markdown:
         with open(args.markdown) as fh:
-            print(markdown(json.load(fh)["rows"]))
+            data = json.load(fh)
+        print(markdown(data["rows"]) if "rows" in data else compare_markdown(data["compare"]))
         return 0
     engine = {"tolerance": args.tolerance}
     if args.targets:
         out = {"engine": engine, "rows": targets(*args.targets, engine, out_path=args.json)}
     elif args.compare:
-        out = {"engine": engine, "compare": compare(args.compare, engine, schemes=args.schemes)}
+        rows = []
+
+        def save(_rows=rows):
+            if args.json:
+                with open(args.json, "w") as fh:
+                    json.dump({"engine": engine, "compare": _rows}, fh, indent=1)
+
+        for p in args.compare:  # the JSON file rewritten after each depth
+            rows += compare([p], engine, schemes=args.schemes)
+            save()
+        out = {"engine": engine, "compare": rows}
     elif args.hessians:
         out = {"hessians": hessians()}
     elif args.gradient_errors:

@@ -110,6 +110,98 @@ def test_preconditioner_is_positive_definite_and_padded():
     assert np.allclose(inv[4:14, 4:14], np.diag(np.diag(inv[4:14, 4:14])), atol=1e-9)
 
 
+class _Smooth:
+    """A run_map that ignores the engine: V = -(z - z*)^T A (z - z*) / 2 + c sum (z - z*)^3 over the 2p
+    angles z = (gamma, beta), with its closed-form gradient; counts the evaluations."""
+
+    def __init__(self, p, seed=3):
+        rng = np.random.default_rng(seed)
+        B = rng.normal(size=(2 * p, 2 * p))
+        self.A = B @ B.T / (2 * p) + np.diag(np.linspace(0.2, 9.0, 2 * p))  # spread as SK's -Hessian, 0.2 .. 9
+        self.star = np.concatenate([np.linspace(0.3, 0.6, p), np.linspace(0.6, 0.1, p)])
+        self.c = 0.05
+        self.count = 0
+
+    def value(self, z):
+        d = z - self.star
+        return float(-0.5 * d @ self.A @ d + self.c * np.sum(d ** 3))
+
+    def gradient(self, z):
+        d = z - self.star
+        return -self.A @ d + 3 * self.c * d ** 2
+
+    def __call__(self, func, tasks):
+        tasks = list(tasks)
+        self.count += len(tasks)
+        return [(self.value(np.concatenate([t[1], t[2]])), 0.0, 0.0) for t in tasks]
+
+
+def test_forward_differences_lose_their_bias_and_the_central_one_reuses_them():
+    """Forward differences with the curvature term h V_jj / 2 removed are accurate to O(h^2) (Taylor);
+    the central difference at the same point then costs only the 2p backward points."""
+    from leadline.kernels.bath import _optimize, fourier_basis
+
+    p = 5
+    f = _Smooth(p)
+    g0, b0 = np.linspace(0.25, 0.55, p), np.linspace(0.55, 0.15, p)
+    search = _optimize._Search(parse_mixture("2:0.5"), p, p, g0, b0, {}, f, None, {"values": []})
+    S, C = fourier_basis(p, p)
+    Q = np.block([[S, np.zeros((p, p))], [np.zeros((p, p)), C]])  # angles = start + Q x
+    x = np.full(2 * p, 0.01)
+    exact = Q.T @ f.gradient(np.concatenate([g0, b0]) + Q @ x)
+    curvature = np.diag(Q.T @ f.A @ Q)  # -V_jj of the quadratic part, as the BFGS model would give it
+    h = _optimize.STEP
+    _, _, plain = search.gradient(x, kind="forward")
+    assert f.count == 2 * p + 1
+    assert np.max(np.abs(plain - exact)) > 0.4 * h * np.max(curvature)  # the bias h V''/2 is there
+    _, _, fwd = search.gradient(x, kind="forward", curvature=curvature)
+    # what is left: h/2 times the cubic term's share of V_jj, and O(h^2)
+    assert np.max(np.abs(fwd - exact)) < 2e-6 < 0.01 * np.max(np.abs(plain - exact))
+    before = f.count
+    _, _, central = search.gradient(x, kind="central")
+    assert f.count - before == 2 * p  # V(x) and V(x + h e_j) reused
+    assert np.max(np.abs(central - exact)) < 50 * h * h
+
+
+def test_hybrid_search_stops_where_central_differences_do(monkeypatch):
+    """On the smooth function above (started 0.02 off its maximum, BFGS from its exact inverse Hessian)
+    the hybrid search reaches the maximum as the central one does -- its stop is confirmed by a central
+    gradient -- with fewer evaluations."""
+    from leadline.kernels.bath import _optimize, fourier_basis, optimize_bath_depth
+
+    p = 6
+    counts = {}
+    for mode in ("central", "hybrid"):
+        monkeypatch.setattr(_optimize, "DIFFERENCES", mode)
+        f = _Smooth(p)
+        S, C = fourier_basis(p, p)
+        Q = np.block([[S, np.zeros((p, p))], [np.zeros((p, p)), C]])
+        start = (f.star[:p] + 0.02 * np.cos(np.arange(p)), f.star[p:] - 0.02 * np.sin(np.arange(p)))
+        r = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[start],
+                                restarts=0, inverse_hessian=np.linalg.inv(Q.T @ f.A @ Q))
+        z = np.concatenate([r.gamma, r.beta])
+        assert r.converged and abs(r.value) < 1e-8 and np.max(np.abs(z - f.star)) < 1e-4, (mode, r.value, r.message)
+        counts[mode] = f.count
+    assert counts["hybrid"] < counts["central"], counts
+
+
+def test_carried_inverse_hessian_is_padded_mode_by_mode():
+    from leadline.kernels.bath import pad_inverse_hessian
+
+    q, p = 3, 5
+    rng = np.random.default_rng(0)
+    B = rng.normal(size=(2 * q, 2 * q))
+    H = B @ B.T + np.eye(2 * q)
+    out = pad_inverse_hessian(H, p)
+    assert out.shape == (2 * p, 2 * p) and np.allclose(out, out.T)
+    idx = [0, 1, 2, 5, 6, 7]  # gamma modes 1..3, beta modes 1..3 at depth 5
+    assert np.array_equal(out[np.ix_(idx, idx)], H)
+    assert out[3, 3] == out[4, 4] == H[2, 2] and out[8, 8] == out[9, 9] == H[5, 5]
+    assert np.linalg.eigvalsh(out).min() > 0
+    with pytest.raises(ValueError):
+        pad_inverse_hessian(np.eye(12), p)
+
+
 def test_same_bits_on_one_and_two_workers():
     """One bath optimization step whose evaluations run on a LocalCluster of 1 and of 2 workers."""
     from leadline.cluster import ComputeSettings

@@ -46,6 +46,7 @@ _WHERE = {
     "bath_point": "_optimize",
     "fourier_basis": "_optimize",
     "preconditioner": "_optimize",
+    "pad_inverse_hessian": "_optimize",
     "search_settings": "_optimize",
     "ParityMPS": "_parity",
 }

@@ -55,7 +55,7 @@ from ..mixture import Mixture
 from ..optimize import canonical_angles, start_candidates
 
 __all__ = ["BathOptimization", "optimize_bath_depth", "bath_point", "fourier_basis", "default_stages",
-           "difference_step", "search_settings", "preconditioner"]
+           "difference_step", "search_settings", "preconditioner", "pad_inverse_hessian"]
 
 
 @dataclass
@@ -80,6 +80,9 @@ class BathOptimization:
     engine: dict = field(default_factory=dict)
     stages: list = field(default_factory=list)
     history: list = field(default_factory=list)
+    #: the search's final inverse BFGS matrix ((2p, 2p), Fourier coordinates of depth p): the start of
+    #: depth p + 1 after :func:`pad_inverse_hessian` (not in to_json; sweeps store it separately)
+    inverse_hessian: np.ndarray | None = None
 
     def to_json(self) -> dict:
         return {
@@ -119,16 +122,22 @@ def default_stages(p: int) -> tuple[int, ...]:
     return (p,)
 
 
-#: central-difference step in Fourier coordinates (measured at SK p = 12: gradient error ~ the
-#: value error of the truncation at 1e-3 and 1e-4, 5e-5 from the h^2 term at 1e-2)
-STEP = 1e-3
-#: "central" (4p + 1 evaluations per gradient) or "forward" (2p + 1; measured against each other in
-#: benchmarks/bench_bath_optimize.py --compare)
-DIFFERENCES = "central"
+#: difference step in Fourier coordinates (measured at SK p = 12: central gradient error ~ the value
+#: error of the truncation at 1e-3 and 1e-4, 5e-5 from the h^2 term at 1e-2; 1e-4 keeps the
+#: forward differences' curvature-corrected bias below that, docs/bath.md)
+STEP = 1e-4
+#: "hybrid" (forward differences, 2p evaluations per gradient, with their h V''/2 bias removed by the
+#: quasi-Newton model's curvature; central ones, 2p more at the same point, before any stop and from
+#: then on), "central" (4p + 1 per gradient) or "forward" (2p + 1, uncorrected); measured against
+#: each other in benchmarks/bench_bath_optimize.py --compare
+DIFFERENCES = "hybrid"
 #: the search runs at this fraction of the tolerance as its fixed cut-off
 SEARCH_CUTOFF = 0.1
-#: depth of the exact Hessian used as the preconditioner (resampled schedule, padded to p)
-HESSIAN_DEPTH = 10
+#: depth of the exact Hessian used as the preconditioner (resampled schedule, padded to p); 13 saves
+#: gradients over 10 at p >= 13 for about 7 CPU s (docs/bath.md, "A cheaper depth")
+HESSIAN_DEPTH = 13
+#: differences of the exact gradient that give that Hessian: "forward" (2 p0 + 1 gradients) or "central" (4 p0)
+HESSIAN_DIFFERENCES = "forward"
 
 
 def difference_step(error_estimate: float | None = None) -> float:
@@ -181,10 +190,11 @@ def _resample(x, p0: int) -> np.ndarray:
     return np.interp((np.arange(p0) + 0.5) / p0, t, x)
 
 
-def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int = HESSIAN_DEPTH) -> np.ndarray:
+def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int | None = None) -> np.ndarray:
     """Inverse of a positive-definite model of -Hessian(V) in the Fourier coordinates of depth p.
 
-    The exact Hessian (central differences of the exact reverse-mode gradient, step 1e-4) at
+    The exact Hessian (forward differences of the exact reverse-mode gradient, step 1e-4:
+    2 p0 + 1 exact gradients; central ones with ``HESSIAN_DIFFERENCES = "central"``) at
     depth p0 = min(p, depth) of the schedule resampled to p0 layers, in p0's Fourier
     coordinates; modes k <= p0 keep their entries, higher modes get the diagonal of mode p0
     (mode k has the same shape at every depth); eigenvalues below 1e-2 of the largest are
@@ -194,21 +204,26 @@ def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int = HESSIAN_D
     from ._estimate import _one_thread
 
     p = len(gamma)
-    p0 = min(p, depth)
+    p0 = min(p, HESSIAN_DEPTH if depth is None else depth)
     g0, b0 = _resample(gamma, p0), _resample(beta, p0)
     S, C = fourier_basis(p0, p0)
     h = 1e-4
     n0 = 2 * p0
+
+    def grad_at(e):
+        ev = evaluate(mixture, g0 + S @ e[:p0], b0 + C @ e[p0:], gradient=True)
+        return np.concatenate([S.T @ ev.gradient["gamma"], C.T @ ev.gradient["beta"]])
+
     H0 = np.zeros((n0, n0))
     with _one_thread():
+        centre = grad_at(np.zeros(n0)) if HESSIAN_DIFFERENCES == "forward" else None
         for j in range(n0):
-            grads = []
-            for sign in (1.0, -1.0):
-                e = np.zeros(n0)
-                e[j] = sign * h
-                ev = evaluate(mixture, g0 + S @ e[:p0], b0 + C @ e[p0:], gradient=True)
-                grads.append(np.concatenate([S.T @ ev.gradient["gamma"], C.T @ ev.gradient["beta"]]))
-            H0[:, j] = -(grads[0] - grads[1]) / (2 * h)
+            e = np.zeros(n0)
+            e[j] = h
+            if centre is not None:  # the exact gradient has no noise: forward differences suffice
+                H0[:, j] = -(grad_at(e) - centre) / h
+            else:
+                H0[:, j] = -(grad_at(e) - grad_at(-e)) / (2 * h)
     H0 = 0.5 * (H0 + H0.T)
     w, U = np.linalg.eigh(H0)
     w = np.maximum(np.abs(w), 1e-2 * np.max(np.abs(w)))
@@ -223,6 +238,27 @@ def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int = HESSIAN_D
         H[k, k] = H0[p0 - 1, p0 - 1]
         H[q + k, q + k] = H0[n0 - 1, n0 - 1]
     return np.linalg.inv(H)
+
+
+def pad_inverse_hessian(Hinv, p: int) -> np.ndarray:
+    """The (2p, 2p) start of depth p from the final inverse BFGS matrix of depth p' < p.
+
+    Mode k has the same shape at every depth (:func:`fourier_basis`), so the (2p', 2p') matrix keeps
+    its entries for modes k <= p' of each schedule; the new modes are uncoupled, each with the
+    diagonal entry of the last mode of its schedule (as :func:`preconditioner` pads its Hessian).
+    """
+    Hinv = np.asarray(Hinv, float)
+    q = Hinv.shape[0] // 2
+    if Hinv.shape != (2 * q, 2 * q) or not 1 <= q <= p:
+        raise ValueError(f"an inverse Hessian of 2 x 1..{p} modes is needed, got shape {Hinv.shape}")
+    out = np.zeros((2 * p, 2 * p))
+    src = [*range(q), *range(q, 2 * q)]
+    dst = [*range(q), *range(p, p + q)]
+    out[np.ix_(dst, dst)] = Hinv[np.ix_(src, src)]
+    for k in range(q, p):
+        out[k, k] = Hinv[q - 1, q - 1]
+        out[p + k, p + k] = Hinv[2 * q - 1, 2 * q - 1]
+    return out
 
 
 class _Search:
@@ -240,6 +276,7 @@ class _Search:
         self.gradients = 0
         self.seconds = 0.0
         self.best = None  # (value, error, x, gradient)
+        self.forward = None  # (x, V(x + h e_j), (V(x), estimate)) of the last forward gradient
 
     def angles(self, x):
         return self.g0 + self.S @ x[: self.q], self.b0 + self.C @ x[self.q:]
@@ -254,12 +291,22 @@ class _Search:
         """(value, estimate) at each point: the line search's trial steps."""
         return [(o[0], o[1]) for o in self._map(points)]
 
-    def gradient(self, x, known=None):
-        """(value, estimate, gradient) at x; ``known`` = (value, estimate) at x if evaluated already."""
+    def gradient(self, x, known=None, kind="central", curvature=None):
+        """(value, estimate, gradient) at x; ``known`` = (value, estimate) at x if evaluated already.
+
+        ``kind`` "forward": (V(x + h e_j) - V(x)) / h + h c_j / 2, c_j = ``curvature`` (the model's
+        -V_jj, removing the leading bias; zero if None); "central": (V(x + h e_j) - V(x - h e_j)) / 2h,
+        reusing the forward points of the last forward gradient at the same x.
+        """
         x = np.asarray(x, float)
+        n = x.size
+        reuse = None
+        if kind == "central" and self.forward is not None and np.array_equal(self.forward[0], x):
+            reuse = self.forward[1]
+            known = self.forward[2]
         points = [] if known is not None else [x]
-        signs = (1.0, -1.0) if DIFFERENCES == "central" else (1.0,)
-        for j in range(x.size):
+        signs = (-1.0,) if reuse is not None else (1.0, -1.0) if kind == "central" else (1.0,)
+        for j in range(n):
             for sign in signs:
                 y = x.copy()
                 y[j] += sign * STEP
@@ -270,11 +317,16 @@ class _Search:
         self.gradients += 1
         values = np.array([o[0] for o in out])
         value, error = float(values[0]), float(out[0][1])
-        if len(signs) == 2:
+        if reuse is not None:
+            grad = (reuse - values[1:]) / (2.0 * STEP)
+        elif kind == "central":
             grad = (values[1::2] - values[2::2]) / (2.0 * STEP)
         else:
             grad = (values[1:] - value) / STEP
-        if self.best is None or value > self.best[0]:
+            if curvature is not None:
+                grad = grad + 0.5 * STEP * np.asarray(curvature, float)
+            self.forward = (x.copy(), values[1:].copy(), (value, error))
+        if self.best is None or value > self.best[0] or (value == self.best[0] and np.array_equal(x, self.best[2])):
             self.best = (value, error, x.copy(), grad)
         self.record["values"].append(value)
         if self.callback is not None:
@@ -296,15 +348,37 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
     Hinv = preconditioner(mixture, g0, b0, q) if hessian is None else np.array(hessian, float)
     n = 2 * q
     x = np.zeros(n)
-    value, error, grad = search.gradient(x)
+    # hybrid: forward differences while far from the optimum, central ones before any stop and after
+    kind = "central" if DIFFERENCES == "central" else "forward"
+
+    def take_gradient(x, known=None):
+        curvature = None
+        if kind == "forward" and DIFFERENCES == "hybrid":
+            curvature = np.diag(np.linalg.inv(Hinv))
+        return search.gradient(x, known=known, kind=kind, curvature=curvature)
+
+    def confirm():
+        """Before a stop on a forward gradient: the central one at the same point (hybrid only)."""
+        nonlocal kind, value, error, grad
+        if kind != "forward" or DIFFERENCES != "hybrid":
+            return False
+        kind = "central"
+        value, error, grad = take_gradient(x)
+        return True
+
+    value, error, grad = take_gradient(x)
     message, converged = "iteration limit", False
     for _ in range(maxiter):
         d = Hinv @ grad
         predicted = float(grad @ d)  # first-order gain of the full step; g^T H g / 2 is the quadratic model's
         if np.max(np.abs(grad)) <= gtol:
+            if confirm():
+                continue
             message, converged = "gradient below gtol", True
             break
         if predicted / 2.0 <= SEARCH_CUTOFF * tolerance:
+            if confirm():
+                continue
             message, converged = "predicted gain of the next step below tolerance / 10", True
             break
         # line search on values: the full step, refined by the parabola through V(0), V'(0), V(1)
@@ -323,10 +397,12 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
             (v_new, e_new), = search.values([x + a * d])
             tries += 1
         if v_new <= value:
+            if confirm():
+                continue
             message, converged = "no gain along the quasi-Newton direction (at the search truncation)", True
             break
         x_new = x + a * d
-        v_new, e_new, g_new = search.gradient(x_new, known=(v_new, e_new))
+        v_new, e_new, g_new = take_gradient(x_new, known=(v_new, e_new))
         s, y = x_new - x, -(g_new - grad)  # BFGS on -V
         sy = float(s @ y)
         if sy > 1e-12 * float(np.linalg.norm(s) * np.linalg.norm(y)):
@@ -431,4 +507,5 @@ def optimize_bath_depth(
         converged=bool(best["converged"]), message=best["message"], wall_time=time.perf_counter() - t0,
         evaluation_seconds=totals["seconds"] / max(1, totals["evaluations"]), engine=engine,
         stages=list(stages), history=history,
+        inverse_hessian=best["inverse_hessian"] if best["q"] == p else None,
     )
