@@ -16,12 +16,18 @@ What makes a depth cheap (each measured, docs/bath.md):
 
 * **One truncation for the search.**  Every point of the search is one engine run at the
   fixed cut-off ``tolerance / 10`` (no ladder): at a fixed cut-off V is a smooth function of
-  the angles, so central differences with step h = 1e-3 give the gradient to about 2e-5 at
-  cut-off 1e-7 (SK p = 12); a gradient bias d moves the value reached by d^2 / (2 lambda_min),
-  negligible.  Only the final point gets the full ladder of
+  the angles, so central differences with step h = 1e-3 or 1e-4 give the gradient to about
+  2e-5 at cut-off 1e-7 (SK p = 12); a gradient bias d moves the value reached by
+  d^2 / (2 lambda_min), negligible.  Only the final point gets the full ladder of
   :func:`evaluate_bath` (V_p* with its error estimate).
+* **Hybrid differences.**  Far from the optimum a gradient is a forward difference (2p
+  evaluations; the point itself is known from the line search) whose leading bias h V_jj / 2
+  is removed with the curvature of the quasi-Newton model (the diagonal of its inverse);
+  before any stop the central difference at the same point is taken (2p more evaluations,
+  the forward points are reused) and used from then on, so the stop is decided as accurately
+  as with central differences throughout.
 * **A preconditioner.**  BFGS starts from the exact Hessian (kernels.exact reverse-mode
-  gradient, central differences) at depth p0 = min(p, 10) of the start schedule resampled to
+  gradient, forward differences) at depth p0 = min(p, 13) of the start schedule resampled to
   p0 layers, in the same Fourier coordinates, padded to p modes (mode k has the same shape at
   every depth); its eigenvalues are made positive.  From INTERP this takes the optimizer to
   the optimum in a handful of gradients instead of the dozens from an identity start.
