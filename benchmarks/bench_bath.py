@@ -164,7 +164,7 @@ def target_rows(angles, cases, record, rows):
         def rung(k, cutoff, t, p_, bond, c0=c0):
             if t == p_ or k != last["k"]:
                 last["k"] = k
-                _log(f"  {name} p={p_} run {k} cut-off {cutoff:.0e}: layer {t}, bond {bond}, "
+                _log(f"  {name} p={p_} run {k} cut-off {cutoff:.2g}: layer {t}, bond {bond}, "
                      f"{time.process_time() - c0:.0f} CPU s")
 
         try:
