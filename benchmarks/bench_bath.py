@@ -10,11 +10,13 @@ Sections:
 * versus:   evaluate_bath at tolerance 1e-8 against the exact evaluation (leadline.kernels.exact,
             one process), p = 10..16: where the bath is faster at equal or better accuracy
 * growth:   largest bond and CPU seconds of one run at a fixed cut-off (default 1e-7),
-            p = 8, 16, .., MAX, the four mixtures
+            p = 8, 16, .., MAX (default 56), the four mixtures (a mixture stops at the first
+            depth whose run breaks down at that cut-off)
 * check:    the error estimate against the exact evaluation at INTERP angles p = 17..20
             (tolerances 1e-6 and 1e-8), with both engines' CPU seconds (the crossover)
-* target:   evaluate_bath on the targets (SK p = 24 at 1e-6; with --p40 also SK and q = 3 at
-            p = 40 at 1e-5, which take long; --cases NAME:P:TOL picks others)
+* target:   evaluate_bath on the targets (SK p = 24 at 1e-6, and SK and q = 3 at p = 40 at 1e-5,
+            which take about 15 CPU minutes: run() and `make bench` include them, the command
+            line only with --p40; --cases NAME:P:TOL picks others)
 
 "seconds" are CPU seconds of this process (time.process_time) with one BLAS thread, so a busy
 machine does not inflate them; peak RSS is the process's maximum resident set.
@@ -181,8 +183,8 @@ def target_rows(angles, cases, record, rows):
         record()
 
 
-def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4], growth_max=40,
-        growth_cutoff=1e-7, p40=False, cases_arg=None, growth_names=None,
+def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4], growth_max=56,
+        growth_cutoff=1e-7, p40=True, cases_arg=None, growth_names=None,
         check_cases=("sk:17", "q3:17", "q4:17", "mix24:17", "sk:18", "sk:19", "sk:20"),
         check_tols=(1e-6, 1e-8)) -> dict:
     """Run the measurements; returns a JSON-ready dict."""
@@ -222,7 +224,7 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--section", nargs="+", choices=SECTIONS, default=[s for s in SECTIONS if s != "check"])
-    ap.add_argument("--growth-max", type=int, default=40)
+    ap.add_argument("--growth-max", type=int, default=56)
     ap.add_argument("--growth-cutoff", type=float, default=1e-7)
     ap.add_argument("--growth-names", nargs="+", choices=MIXTURES)
     ap.add_argument("--p40", action="store_true", help="target section: also SK and q = 3 at p = 40 (long)")
