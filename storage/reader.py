@@ -200,6 +200,7 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
     passes = bath_done = 0
     seconds = bath_seconds = 0.0
     paths = 0.0
+    sparse = []  # the saved evaluations of a sparse depth: (value, gradient norm, seconds)
     try:
         for name, arr in (g[L.PASSES].arrays() if g is not None else ()):
             if L.parse_batch_name(name) is None:
@@ -208,6 +209,10 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
                 if entry.get("kind") == "bath":  # a bath evaluation, not a pass
                     bath_done += 1
                     bath_seconds += float(entry.get("wall_s", 0.0))
+                    continue
+                if entry.get("kind") == "sparse":  # a sparse evaluation (value and gradient)
+                    sparse.append((float(entry.get("value", float("nan"))), float(entry.get("gradient_norm", float("nan"))),
+                                   float(entry.get("wall_s", 0.0))))
                     continue
                 passes += 1
                 seconds += float(entry.get("wall_s", 0.0))
@@ -234,7 +239,18 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
         "bath": None if not (bath_done or attrs.get("bath_progress")) else dict(
             attrs.get("bath_progress") or {}, evaluations_saved=bath_done,
             evaluation_cpu_s=bath_seconds / max(1, bath_done)),
+        "sparse": _sparse_running(sparse),
     }
+
+
+def _sparse_running(saved: list[tuple[float, float, float]]) -> dict | None:
+    """A sparse depth in progress, from its saved evaluations: how many, the best value among them
+    (with that evaluation's gradient max-norm) and the mean seconds per evaluation; None if none."""
+    if not saved:
+        return None
+    value, gradient_norm, _ = max(saved, key=lambda e: e[0] if e[0] == e[0] else -np.inf)
+    return {"evaluations_saved": len(saved), "value": value, "gradient_norm": gradient_norm,
+            "evaluation_s": sum(s for *_, s in saved) / len(saved)}
 
 
 def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> float | None:
