@@ -140,7 +140,9 @@ class _Timed:
         out = self.func(*args)
         band = out[0] if isinstance(out, tuple) else out
         points = band.size if isinstance(band, np.ndarray) else args[0].size
-        _add(self.key, time.perf_counter() - t, time.thread_time() - c, points, 16 * points)
+        # keyed by size too: at p = 14..17 phat bands have 2^20 points, step and root bands 2^22
+        _add(f"{self.key} 2^{int(points).bit_length() - 1}", time.perf_counter() - t, time.thread_time() - c, points,
+             16 * points)
         return out
 
 transforms = []
