@@ -19,6 +19,7 @@ on a local Dask cluster of N workers; each run in a fresh process, so its peak R
 Usage:  python benchmarks/bench_sparse.py [--max-p 13] [--stop-after 180] [--json out.json]
         python benchmarks/bench_sparse.py --chunked 14 [--workers 2 --worker-gib 6] [--scratch DIR] [--bands]
         python benchmarks/bench_sparse.py --published
+        python benchmarks/bench_sparse.py --plan p14.json [p15.json] [--target-p 17]
 """
 
 from __future__ import annotations
@@ -268,6 +269,42 @@ def run_chunked(p: int, scratch: str, workers: int = 0, worker_gib: float = 6.0,
     return {"benchmark": "sparse-chunked", "p": p, "band_bits": bits, "runs": runs, "medians": medians}
 
 
+def plan(files: list[str], target_p: int = 17) -> dict:
+    """The p = ``target_p`` cluster plan of docs/clusters.md from ``--chunked P --bands`` results
+    (their JSON files): per-band CPU rates measured where the tasks ran, totals of each run scaled
+    by 4 per depth (every vector of the recursion has 4x the points one depth up; the band sizes
+    stay), and the sizes the recursion's layout gives at ``target_p`` (computed, exact)."""
+    from leadline.cluster.sparse_vectors import largest_block
+    from leadline.kernels.sparse import CHUNK_POINTS_BITS as T, band_bits
+
+    gib, rows = 2.0**30, []
+    runs = [r for f in files for r in json.load(open(f))["runs"] if "tasks" in r]
+    P = target_p
+    k = band_bits(2 * P - 3, P, T - 2)
+    sizes = {"Z of the last step (GiB)": 16 * 2.0 ** (2 * P - 1) / gib, "phat of the last step (GiB)": 16 * 2.0 ** (2 * P - 3) / gib,
+             "bands of the last step's vectors": 2**k, "points per band: phat / Z / root": f"2^{2 * P - 3 - k} / 2^{2 * P - 1 - k} / "
+             f"2^{2 * P - 1 - band_bits(2 * P - 1, P + 1, T)}", "largest block (points)": f"2^{largest_block(P, T).bit_length() - 1}",
+             # every transform with a column pass moves its output vector once between the halves
+             "rechunk exchange per value (GiB)": (sum(16 * (2.0 ** (2 * m - 3) + 2.0 ** (2 * m - 1)) for m in range(3, P + 1))
+                                                  + 16 * 2.0 ** (2 * P - 1)) / gib}
+    for r in runs:
+        scale = 4.0 ** (P - r["p"])
+        line = {"where": r["where"], "p": r["p"], "load": r["load"], "seconds": r["seconds"],
+                "cpu_s": r["cpu_s"] + r.get("workers_cpu_s", 0.0), "rss_mib": r.get("worker_rss_mib", r["rss_mib"])}
+        for key, t in r["tasks"].items():
+            line[key] = {"calls": t["calls"], "cpu_s_per_call": round(t["cpu_s"] / t["calls"], 4),
+                         "ns_cpu_per_point": round(1e9 * t["cpu_s"] / t["points"], 2),
+                         "MB_per_wall_s": round(t["bytes"] / max(t["wall_s"], 1e-9) / 1e6, 1)}
+        io = {k2: r["tasks"][k2]["bytes"] / gib for k2 in ("chunk read", "chunk write") if k2 in r["tasks"]}
+        line["folder_read_gib"], line["folder_write_gib"] = round(io.get("chunk read", 0), 2), round(io.get("chunk write", 0), 2)
+        line[f"scaled to p = {P}"] = {"cpu_hours": round(line["cpu_s"] * scale / 3600, 2),
+                                      "folder_read_gib": round(io.get("chunk read", 0) * scale),
+                                      "folder_write_gib": round(io.get("chunk write", 0) * scale)}
+        rows.append(line)
+        print(json.dumps(line), flush=True)
+    return {"benchmark": "sparse-plan", "target_p": P, "sizes": sizes, "runs": rows}
+
+
 def run_published(pmax: int = 10, write: str | None = None) -> dict:
     """The optimizer's MaxCut D = 3 ladder p = 1..pmax (the restarts per depth of `optimize --sparse-q 2 --degree 3`, jobs.ladders.sparse_ladder;
     gradient-tol 1e-9) against the published table; ``write``: also the optimal angles as a CSV (the
@@ -319,9 +356,14 @@ def main(argv=None) -> int:
     ap.add_argument("--bands", action="store_true", help="with --chunked: time every row task, column task and "
                     "chunk-file read/write where it runs (the per-band rates of docs/clusters.md)")
     ap.add_argument("--published", action="store_true", help="the MaxCut D = 3 ladder p = 1..10 against the table")
+    ap.add_argument("--plan", nargs="+", default=None, metavar="JSON",
+                    help="the cluster plan from --chunked P --bands results (docs/clusters.md)")
+    ap.add_argument("--target-p", type=int, default=17, help="with --plan: the depth planned for")
     ap.add_argument("--write-angles", default=None, help="with --published: write the optimal angles to this CSV")
     a = ap.parse_args(argv)
-    if a.chunked:
+    if a.plan:
+        out = plan(a.plan, a.target_p)
+    elif a.chunked:
         out = run_chunked(a.chunked, a.scratch, a.workers, a.worker_gib, a.band_bits, a.only, a.repeat, a.bands)
     elif a.published:
         out = run_published(write=a.write_angles)
