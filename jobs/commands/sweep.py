@@ -377,7 +377,7 @@ def stopped_text(why: str, store_path) -> str:
 
 def _duration(seconds: float | None) -> str:
     if seconds is None:
-        return "unknown (no pass measured yet)"
+        return "unknown (nothing measured yet for a depth left)"
     if seconds < 90:
         return f"~{seconds:.0f} s"
     if seconds < 5400:
@@ -464,8 +464,9 @@ def status_text(progress: dict) -> str:
     if progress["complete"]:
         lines.append("complete")
     else:
-        lines.append(f"estimated time left: {_duration(progress['estimated_seconds_left'])} "
-                     "(measured seconds per path x mean evaluations per depth)")
+        basis = ("finished depths' measured cost, scaled per depth: a rough guide"
+                 if progress.get("estimate_basis") == "depth costs" else "measured seconds per path x mean evaluations per depth")
+        lines.append(f"estimated time left: {_duration(progress['estimated_seconds_left'])} ({basis})")
     return "\n".join(lines)
 
 
