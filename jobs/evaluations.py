@@ -34,7 +34,8 @@ class SavedEvaluations:
     """The evaluations of one depth in its store: look up, record, write when the policy says.
 
     ``kind`` is the entry kind written (one of ``storage.layout.EVALUATION_KINDS``); ``computed``
-    and ``reused`` count this session's evaluations, ``seconds`` the computed ones' seconds.
+    counts this session's evaluations, ``reused`` those read back that an earlier session computed
+    (not the optimizer asking again for angles of this session), ``seconds`` the computed ones' seconds.
     """
 
     kind = ""
@@ -46,11 +47,12 @@ class SavedEvaluations:
         self.computed = 0
         self.reused = 0
         self.seconds = 0.0
+        self._mine: set[str] = set()
 
     def lookup(self, key: str) -> np.ndarray | None:
         """The recorded numbers of evaluation ``key`` (complex128; the values are the real parts), or None."""
         cached = self.depth.cached_pass(key, backward=False)
-        if cached is not None:
+        if cached is not None and key not in self._mine:
             self.reused += 1
         return cached
 
@@ -60,6 +62,7 @@ class SavedEvaluations:
                  "paths": 0.0, "wall_s": float(seconds), **meta}
         # chunk 0 witnessed when written: the kill tests' audit file lists every evaluation saved
         self.depth.add_pass(key, np.asarray(numbers, dtype=np.complex128), entry, chunks_to_witness=(0,))
+        self._mine.add(key)
         self.computed += 1
         self.seconds += float(seconds)
 
