@@ -10,11 +10,15 @@ Sections:
 * versus:   evaluate_bath at tolerance 1e-8 against the exact evaluation (leadline.kernels.exact,
             one process), p = 10..16: where the bath is faster at equal or better accuracy
 * growth:   largest bond and CPU seconds of one run at a fixed cut-off (default 1e-7),
-            p = 8, 16, .., MAX, the four mixtures
+            p = 8, 16, .., MAX (default 56), the four mixtures (a mixture stops at the first
+            depth whose run breaks down at that cut-off)
 * check:    the error estimate against the exact evaluation at INTERP angles p = 17..20
             (tolerances 1e-6 and 1e-8), with both engines' CPU seconds (the crossover)
-* target:   evaluate_bath on the targets (SK p = 24 at 1e-6; with --p40 also SK and q = 3 at
-            p = 40 at 1e-5, which take long; --cases NAME:P:TOL picks others)
+* onset:    the layer at which runs at cut-offs 1e-5, 1e-6, 1e-7 break down (SK p = 60; on request),
+            until one reaches the last layer: what the ladder extrapolates its first cut-off from
+* target:   evaluate_bath on the targets (SK p = 24 at 1e-6, and SK and q = 3 at p = 40 at 1e-5,
+            which take about 15 CPU minutes: run() and `make bench` include them, the command
+            line only with --p40; --cases NAME:P:TOL picks others)
 
 "seconds" are CPU seconds of this process (time.process_time) with one BLAS thread, so a busy
 machine does not inflate them; peak RSS is the process's maximum resident set.
@@ -41,7 +45,7 @@ from leadline.kernels.optimize import interpolate_angles
 HERE = os.path.dirname(os.path.abspath(__file__))
 ANGLES = os.path.join(HERE, "data", "bath_angles.json")
 MIXTURES = ("sk", "q3", "q4", "mix24")
-SECTIONS = ("readout", "versus", "growth", "target", "check")
+SECTIONS = ("readout", "versus", "growth", "target", "check", "onset")
 
 
 def _log(msg: str) -> None:
@@ -155,6 +159,29 @@ def growth_table(angles, names, ps, cutoff, record, rows, stop_after_s=600.0):
                 break
 
 
+def onset_rows(angles, cases, cutoffs, record, rows):
+    """Layer at which one run per cut-off breaks down (the ladder's cheap first runs and what it
+    extrapolates from), loosest first, until a run reaches the last layer."""
+    for name, p in cases:
+        mix, g, b = schedule(angles, name, p)
+        for cutoff in cutoffs:
+            c0 = time.process_time()
+            try:
+                r = run_bath(mix, g, b, fock=2, fock_max=40, fock_tol=cutoff**2, chi=1024, cutoff=cutoff,
+                             check_psd=True)
+            except BathBreakdown as exc:
+                rows.append({"name": name, "p": p, "cutoff": cutoff, "breakdown_layer": exc.layer, "bond": exc.bond,
+                             "seconds": time.process_time() - c0})
+                _log(f"onset {name} p={p} cut-off {cutoff:g}: breakdown at layer {exc.layer}, bond {exc.bond}")
+                record()
+                continue
+            rows.append({"name": name, "p": p, "cutoff": cutoff, "breakdown_layer": None,
+                         "largest_bond": r.largest_bond, "seconds": time.process_time() - c0})
+            _log(f"onset {name} p={p} cut-off {cutoff:g}: no breakdown, bond {r.largest_bond}")
+            record()
+            break
+
+
 def target_rows(angles, cases, record, rows):
     for name, p, tol, *cap in cases:
         mix, g, b = schedule(angles, name, p)
@@ -164,7 +191,7 @@ def target_rows(angles, cases, record, rows):
         def rung(k, cutoff, t, p_, bond, c0=c0):
             if t == p_ or k != last["k"]:
                 last["k"] = k
-                _log(f"  {name} p={p_} run {k} cut-off {cutoff:.0e}: layer {t}, bond {bond}, "
+                _log(f"  {name} p={p_} run {k} cut-off {cutoff:.2g}: layer {t}, bond {bond}, "
                      f"{time.process_time() - c0:.0f} CPU s")
 
         try:
@@ -181,10 +208,10 @@ def target_rows(angles, cases, record, rows):
         record()
 
 
-def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4], growth_max=40,
-        growth_cutoff=1e-7, p40=False, cases_arg=None, growth_names=None,
+def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4], growth_max=56,
+        growth_cutoff=1e-7, p40=True, cases_arg=None, growth_names=None,
         check_cases=("sk:17", "q3:17", "q4:17", "mix24:17", "sk:18", "sk:19", "sk:20"),
-        check_tols=(1e-6, 1e-8)) -> dict:
+        check_tols=(1e-6, 1e-8), onset_cases=("sk:60",)) -> dict:
     """Run the measurements; returns a JSON-ready dict."""
     angles = load_angles()
     result = {"benchmark": "bath", "quick": quick}
@@ -210,6 +237,9 @@ def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4],
     if "check" in sections:
         cases = [(n, int(p)) for n, p in (c.split(":") for c in check_cases)]
         check_table(angles, cases, check_tols, record, rows("check", []))
+    if "onset" in sections:
+        onset_rows(angles, [(n, int(p)) for n, p in (c.split(":") for c in onset_cases)], (1e-5, 1e-6, 1e-7), record,
+                   rows("onset", []))
     if "target" in sections:
         cases = [("sk", 24, 1e-6)] + ([("q3", 40, 1e-5), ("sk", 40, 1e-5, 1024)] if p40 else [])
         if cases_arg:
@@ -221,8 +251,8 @@ def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4],
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
-    ap.add_argument("--section", nargs="+", choices=SECTIONS, default=[s for s in SECTIONS if s != "check"])
-    ap.add_argument("--growth-max", type=int, default=40)
+    ap.add_argument("--section", nargs="+", choices=SECTIONS, default=[s for s in SECTIONS if s not in ("check", "onset")])
+    ap.add_argument("--growth-max", type=int, default=56)
     ap.add_argument("--growth-cutoff", type=float, default=1e-7)
     ap.add_argument("--growth-names", nargs="+", choices=MIXTURES)
     ap.add_argument("--p40", action="store_true", help="target section: also SK and q = 3 at p = 40 (long)")

@@ -132,6 +132,8 @@ class ProgressDisplay:
         prog = self._ensure()
         if prog is None:
             return
+        if self._t_first is None:  # an optimization without passes (bath, sparse): the delay starts here
+            self._t_first = time.perf_counter()
         if label != self._label:  # a new optimization (e.g. the next depth)
             self._label, self._evaluations, self._best = label, 0, None
         self._evaluations += count

@@ -9,6 +9,7 @@ ladder (:func:`leadline.jobs.ladders.bath_ladder`) lives next to the exact one i
 from __future__ import annotations
 
 from .errors import InputError
+from .evaluations import SavedEvaluations, evaluation_key
 
 __all__ = ["DEFAULT_FOCK", "DEFAULT_TAIL", "DEFAULT_BOND", "DEFAULT_BASIS", "engine_settings",
            "check_optimize_method", "bath_restarts", "CheckpointedEvaluations"]
@@ -68,7 +69,7 @@ def bath_restarts(restarts: int | None, warm: bool, p: int) -> int:
     return 0 if warm else default_restarts(p)
 
 
-class CheckpointedEvaluations:
+class CheckpointedEvaluations(SavedEvaluations):
     """A ``run_map`` for bath evaluations that reads finished ones from the depth's store.
 
     Every evaluation is keyed by a content fingerprint of (mixture, angles, engine settings)
@@ -76,45 +77,30 @@ class CheckpointedEvaluations:
     seconds), following the checkpoint policy (at once when ``interval-s = 0``).  A depth
     that is killed and resumed replays the deterministic optimizer; every evaluation it had
     finished is read back bit for bit, so the resumed depth follows the same path and gives
-    the same numbers.  ``on_progress(info)`` is called after each batch (live status).
+    the same numbers (jobs/evaluations.py).
     """
 
-    def __init__(self, depth, executor, *, on_progress=None):
-        self.depth = depth
+    kind = "bath"
+    crash_name = "bath-evaluations-cached"
+
+    def __init__(self, depth, executor):
+        super().__init__(depth)
         self.executor = executor
-        self.on_progress = on_progress
-        self.computed = 0
-        self.reused = 0
-        self.seconds = 0.0
 
     @staticmethod
     def key(task) -> str:
-        import hashlib
-        import json
-
-        import numpy as np
-
         mixture, gamma, beta, engine = task
-        h = hashlib.sha256()
-        h.update(json.dumps({"xi": mixture.spec(), "engine": engine}, sort_keys=True).encode())
-        h.update(np.ascontiguousarray(gamma, dtype="<f8").tobytes())
-        h.update(np.ascontiguousarray(beta, dtype="<f8").tobytes())
-        return "bath-" + h.hexdigest()[:32]
+        return evaluation_key("bath", {"xi": mixture.spec(), "engine": engine}, gamma, beta)
 
     def __call__(self, func, tasks) -> list:
-        import numpy as np
-
-        from leadline.storage.faults import crash_point
-
         tasks = list(tasks)
         keys = [self.key(t) for t in tasks]
         out: list = [None] * len(tasks)
         missing = []
         for i, key in enumerate(keys):
-            cached = self.depth.cached_pass(key, backward=False)
+            cached = self.lookup(key)
             if cached is not None:
                 out[i] = (float(cached[0].real), float(cached[1].real), float(cached[2].real))
-                self.reused += 1
             else:
                 missing.append(i)
         if missing:
@@ -122,12 +108,6 @@ class CheckpointedEvaluations:
             results = run_map(func, [tasks[i] for i in missing]) if run_map else [func(tasks[i]) for i in missing]
             for i, res in zip(missing, results):
                 out[i] = tuple(float(x) for x in res)
-                meta = {"kind": "bath", "step": int(len(tasks[i][1])), "plan": None, "n_chunks": 1,
-                        "completions": [1], "paths": 0.0, "wall_s": float(res[2])}
-                self.depth.add_pass(keys[i], np.array(out[i], dtype=np.complex128), meta)
-                self.computed += 1
-                self.seconds += float(res[2])
-            if self.depth.policy.flush_after(self.depth.pending_seconds):
-                self.depth.flush()
-                crash_point("bath-evaluations-cached")
+                self.record(keys[i], out[i], len(tasks[i][1]), float(res[2]))
+            self.write_if_due()
         return out

@@ -51,8 +51,11 @@ Layout (version 1; every key is checked, unknown keys are errors)::
 
 Extension point: ensemble kinds are the entries of :data:`ENSEMBLE_KINDS`
 (TOML table -> stored description) and of ``jobs.sweep.OPTIMIZERS`` (how a
-depth is optimized).  Sparse depths run in this process and are checkpointed
-per depth only (an interrupted sparse depth is re-run from its start).
+depth is optimized; each returns the result, its CheckpointStats and its saved
+evaluations or None).  Sparse depths run in this process and save every
+evaluation (value and gradient) in the depth's store as the checkpoint policy
+says: an interrupted sparse depth replays the saved ones and continues
+(jobs/evaluations.py).
 
 :func:`load_spec` validates everything and never writes anything; every
 problem is one :class:`~leadline.jobs.errors.InputError` line.

@@ -47,6 +47,7 @@ def create_store(spec: StudySpec, command: str = "sweep") -> StudyStore:
 
 
 def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
+    """An exact depth of a dense ensemble: passes and chunks checkpointed (cluster/checkpointed.py)."""
     plan = plan_chunks(p, spec.memory_budget)
     passes = CheckpointedPasses(depth, executor)
     try:
@@ -71,14 +72,18 @@ def _optimize_dense(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor,
         except Exception:  # noqa: BLE001 - the original error is the one to report
             pass
         raise
-    return result, passes.stats
+    return result, passes.stats, None
 
 
 def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
-    """Max-q-XORSAT on a D-regular hypertree: in process, checkpointed per depth only."""
-    from leadline.kernels.sparse import optimize_sparse
+    """Max-q-XORSAT on a D-regular hypertree: in process, every evaluation checkpointed in the store.
+
+    A resumed depth replays the optimizer and reads back the evaluations the killed run had
+    written (jobs/evaluations.py); it ends with the same bits as an uninterrupted one."""
+    from leadline.kernels.sparse import optimize_sparse, value_and_grad
 
     from .commands import _sparse as sparse_cli
+    from .evaluations import CheckpointedSparseEvaluations
     from .ladders import sparse_default_restarts
 
     # the same default as `leadline optimize --sparse-q` (INTERP alone past p = 6): without it the
@@ -91,13 +96,33 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
                                            f"ensemble {ens.label!r}")
         chunked = sparse_cli.scratch_runner(path, executor.settings, label=f"{ens.label}-p{p}",
                                             client=getattr(executor, "client", None))
+    progress = getattr(executor, "progress", None)
     with chunked as run_chunked:
-        result = optimize_sparse(
-            ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
-            seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations,
-            evaluate_kw={"chunked": run_chunked} if run_chunked is not None else None, restarts=restarts,
-        )
-    return result, CheckpointStats()
+        evaluate_kw = {"chunked": run_chunked} if run_chunked is not None else {}
+        evaluations = CheckpointedSparseEvaluations(
+            depth, ens.q, ens.degree, lambda g, b: value_and_grad(ens.q, ens.degree, g, b, **evaluate_kw))
+
+        def live(info: dict) -> None:
+            if progress is not None:  # the sweep's progress line (the store's entries feed `leadline status`)
+                seconds = evaluations.last_seconds
+                progress.evaluation_done(
+                    info["best_value"], label=f"{ens.label} p = {p}",
+                    detail=(f", {evaluations.reused} reused" if evaluations.reused else "")
+                    + (f", {seconds:.3g} s per evaluation" if seconds is not None else ""))
+
+        try:
+            result = optimize_sparse(
+                ens.q, ens.degree, p, previous=previous, previous_value=previous_value,
+                seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations,
+                evaluate_kw=evaluate_kw or None, restarts=restarts, evaluate=evaluations, callback=live,
+            )
+        finally:
+            # finished or stopped (Ctrl-C, SIGTERM, a failure): the waiting evaluations are kept
+            try:
+                depth.flush()
+            except Exception:  # noqa: BLE001 - the original error (if any) is the one to report
+                pass
+    return result, CheckpointStats(seconds_in_passes=evaluations.seconds), evaluations
 
 
 def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
@@ -130,8 +155,7 @@ def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, 
             depth.flush()
         except Exception:  # noqa: BLE001 - the original error (if any) is the one to report
             pass
-    stats = CheckpointStats()
-    return result, stats, evaluations
+    return result, CheckpointStats(), evaluations
 
 
 #: how each ensemble kind optimizes one depth (extension point, see jobs/spec.py ENSEMBLE_KINDS)
@@ -163,11 +187,10 @@ def run_study(
             depth = store.depth(ens.label, p, plan)
             crash_point("depth-started")
             t0, c0 = time.perf_counter(), time.process_time()
-            bath = None
-            if ens.method(p) == "bath":
-                result, stats, bath = _optimize_bath(ens, spec, p, depth, executor, previous, previous_value)
-            else:
-                result, stats = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
+            optimizer = _optimize_bath if ens.method(p) == "bath" else OPTIMIZERS[ens.kind]
+            # saved: the checkpointed evaluations of a bath or sparse depth (None: passes, dense)
+            result, stats, saved = optimizer(ens, spec, p, depth, executor, previous, previous_value)
+            bath = saved if ens.method(p) == "bath" else None
             session_s = time.perf_counter() - t0
             session_cpu_s = time.process_time() - c0
             pass_compute_s = depth.pass_seconds()
@@ -192,9 +215,17 @@ def run_study(
                     "bath_evaluations_reused": bath.reused,
                     "bath_evaluation_cpu_s": result.evaluation_seconds * result.evaluations,
                 })
+            elif saved is not None:
+                # evaluations instead of passes: their seconds over every session, plus this session's rest
+                timings.update({
+                    "pass_compute_s": 0.0, "passes": 0, "paths": 0.0,
+                    "wall_time_s": pass_compute_s + overhead_s, "optimizer_overhead_s": overhead_s,
+                    "sparse_evaluations": result.evaluations, "sparse_evaluations_computed": saved.computed,
+                    "sparse_evaluations_reused": saved.reused, "sparse_evaluation_s": pass_compute_s,
+                })
             record = result.to_json()
             record["wall_time_s"] = timings["wall_time_s"]
-            record["plan"] = plan.to_json() if bath is None else None
+            record["plan"] = plan.to_json() if plan is not None else None
             record.setdefault("method", "exact")
             store.finish_depth(ens.label, p, record, timings)
             previous = (result.gamma, result.beta)
@@ -222,6 +253,8 @@ def depth_line(line: dict) -> str:
         # reuse is only mentioned when there was some (a resumed or replayed depth)
         reused = f", {s['passes_reused']} reused" if s["passes_reused"] else ""
         passes = f"{s['passes_computed']} passes computed{reused}, "
+    if t.get("sparse_evaluations_reused"):  # a resumed sparse depth: evaluations read back from the store
+        passes = f"{t['sparse_evaluations_reused']} reused, "
     stopped = " (not converged)" if r.get("converged") is False else ""
     return (
         f"{line['label']:<12} p = {line['p']:<3d} V_p* = {fmt(r['value'], 12)}  gradient norm {r['gradient_norm']:.1e}"

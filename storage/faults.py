@@ -31,6 +31,7 @@ Points (see storage/study.py, cluster/checkpointed.py and jobs/sweep.py):
   sparse-step-finished    a chunked sparse evaluation recorded a finished step (storage/sparse_scratch.py)
   sparse-band-task        a row-band task of a chunked sparse transform starts (cluster/sparse_vectors.py)
   bath-evaluations-cached a batch of bath evaluations of a depth is on disk (jobs/bath.py)
+  sparse-evaluations-cached a batch of a sparse depth's evaluations is on disk (jobs/evaluations.py)
 """
 
 from __future__ import annotations

@@ -133,6 +133,9 @@ PASSES = "passes"
 INFLIGHT = "inflight"
 PARTIALS = "partials"
 LEDGER = "ledger"
+#: kinds of pass-batch entries that hold an optimizer's evaluation, not a pass (no path weights):
+#: "bath" (value, error estimate, CPU seconds) and "sparse" (value, then the gradient in gamma and in beta)
+EVALUATION_KINDS = ("bath", "sparse")
 #: columns of the ledger array, in order
 LEDGER_COLUMNS = ("serial", "crc32", "completions", "wall_us")
 SERIAL, CRC, COMPLETIONS, WALL_US = range(4)

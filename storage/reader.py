@@ -125,6 +125,7 @@ class StudyReader:
         pass_rates = []  # (seconds, path-passes)
         lock = self.lock_holder()
         writing = lock is not None and bool(lock.get("alive"))
+        kinds = {e["label"]: e.get("kind", "dense") for e in self.spec.get("ensembles", [])}
         for label in self.ensembles():
             done, running = [], None
             for p, attrs in self._depth_attrs(label):
@@ -137,8 +138,9 @@ class StudyReader:
                     done.append({"p": p, "value": r.get("value"), "evaluations": r.get("evaluations"),
                                  "wall_time_s": r.get("wall_time_s"), "method": r.get("method", "exact"),
                                  "error_estimate": r.get("error_estimate")})
-                    finished_timings.append((p, r.get("evaluations") or 0, t.get("pass_compute_s", r.get("wall_time_s") or 0.0),
-                                             t.get("paths")))
+                    if r.get("method", "exact") == "exact" and kinds.get(label, "dense") == "dense":
+                        finished_timings.append((p, r.get("evaluations") or 0,
+                                                 t.get("pass_compute_s", r.get("wall_time_s") or 0.0), t.get("paths")))
                     if t.get("pass_compute_s") and t.get("passes"):
                         paths = t.get("paths") or t["passes"] * 2.0 ** (2 * p + 1)
                         pass_rates.append((t["pass_compute_s"], paths))
@@ -150,6 +152,7 @@ class StudyReader:
             todo = [p for p in range(pmin, pmax + 1) if p not in done_ps]
             ensembles.append({"label": label, "done": done, "running": running, "todo": todo})
         eta = _estimate_seconds_left(ensembles, finished_timings, pass_rates, self.spec)
+        described = {e["label"]: e for e in self.spec.get("ensembles", [])}
         return {
             "name": self.name,
             "path": str(self.path),
@@ -157,6 +160,9 @@ class StudyReader:
             "ensembles": ensembles,
             "complete": all(not e["todo"] for e in ensembles),
             "estimated_seconds_left": eta,
+            # what the estimate rests on: exact path-pass rates only, or also finished bath/sparse depths
+            "estimate_basis": "depth costs" if any(_scaled_kind(described.get(e["label"], {}), p) for e in ensembles
+                                                   for p in e["todo"]) else "pass rates",
             "lock": lock,
             "store": store_usage(self.path),
         }
@@ -200,6 +206,7 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
     passes = bath_done = 0
     seconds = bath_seconds = 0.0
     paths = 0.0
+    sparse = []  # the saved evaluations of a sparse depth: (value, gradient norm, seconds)
     try:
         for name, arr in (g[L.PASSES].arrays() if g is not None else ()):
             if L.parse_batch_name(name) is None:
@@ -208,6 +215,10 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
                 if entry.get("kind") == "bath":  # a bath evaluation, not a pass
                     bath_done += 1
                     bath_seconds += float(entry.get("wall_s", 0.0))
+                    continue
+                if entry.get("kind") == "sparse":  # a sparse evaluation (value and gradient)
+                    sparse.append((float(entry.get("value", float("nan"))), float(entry.get("gradient_norm", float("nan"))),
+                                   float(entry.get("wall_s", 0.0))))
                     continue
                 passes += 1
                 seconds += float(entry.get("wall_s", 0.0))
@@ -234,47 +245,102 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
         "bath": None if not (bath_done or attrs.get("bath_progress")) else dict(
             attrs.get("bath_progress") or {}, evaluations_saved=bath_done,
             evaluation_cpu_s=bath_seconds / max(1, bath_done)),
+        "sparse": _sparse_running(sparse),
     }
 
 
-def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> float | None:
-    """Crude estimate: remaining passes times the measured seconds per path-pass.
+def _sparse_running(saved: list[tuple[float, float, float]]) -> dict | None:
+    """A sparse depth in progress, from its saved evaluations: how many, the best value among them
+    (with that evaluation's gradient max-norm) and the mean seconds per evaluation; None if none."""
+    if not saved:
+        return None
+    value, gradient_norm, _ = max(saved, key=lambda e: e[0] if e[0] == e[0] else -np.inf)
+    return {"evaluations_saved": len(saved), "value": value, "gradient_norm": gradient_norm,
+            "evaluation_s": sum(s for *_, s in saved) / len(saved)}
 
-    Evaluations per depth are taken as the mean over finished depths (or
-    30 per start when none is finished).  Path visits of one evaluation with
-    its gradient: measured at the deepest finished depth (the stored timings
-    count them) and scaled by 4 per depth (every pass visits 2^(2m+1) paths of
-    a depth-m contour); without such a record, 2p+1 passes of 2^(2p+1) paths.
-    Dense ensembles only.
+
+#: growth of one bath evaluation's cost per depth: the engine's growth table at cut-off 1e-7 (SK,
+#: 1.27x per depth from p = 16 to 24 and 1.25x from 24 to 32, docs/bath.md); a depth also needs
+#: 4p + 1 evaluations per gradient, so a bath depth grows by 1.27 (4p + 1) / (4p - 3) per depth
+BATH_EVALUATION_GROWTH = 1.27
+#: growth of a sparse depth's cost per depth: the recursion's work is 4x per depth (measured
+#: 1.07, 4.46, 17.3 s per evaluation at p = 12, 13, 14, docs/performance.md), the evaluations
+#: per depth about flat (216..307 at p = 10..12 on MaxCut D = 3)
+SPARSE_DEPTH_GROWTH = 4.0
+
+
+def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> float | None:
+    """Crude estimate of the time left, or None where a depth left has nothing to measure from.
+
+    Exact depths: remaining passes times the measured seconds per path-pass.  Evaluations
+    per depth are taken as the mean over finished exact depths (or 30 per start when none is
+    finished).  Path visits of one evaluation with its gradient: measured at the deepest
+    finished depth (the stored timings count them) and scaled by 4 per depth (every pass
+    visits 2^(2m+1) paths of a depth-m contour); without such a record, 2p+1 passes of
+    2^(2p+1) paths.  Bath depths and sparse depths: the last finished depth of that ensemble
+    and method, scaled by a cost model (:func:`_scaled_depth_seconds`).  A depth with no such
+    measurement makes the whole estimate unknown rather than leaving it out.
     """
+    described = {e["label"]: e for e in spec.get("ensembles", [])}
+    left = 0.0
+    for e in ensembles:
+        desc = described.get(e["label"], {})
+        for p in e["todo"]:
+            if desc.get("kind", "dense") != "dense":
+                cost = _scaled_depth_seconds(e, p, "exact", lambda q: SPARSE_DEPTH_GROWTH ** q)
+            elif _scaled_kind(desc, p):
+                cost = _scaled_depth_seconds(e, p, "bath", lambda q: BATH_EVALUATION_GROWTH ** q * (4 * q + 1))
+            else:
+                cost = _exact_depth_seconds(e, p, finished_timings, pass_rates, spec)
+            if cost is None:
+                return None
+            left += cost
+    return left
+
+
+def _scaled_kind(desc: dict, p: int) -> bool:
+    """Whether depth p of this ensemble is priced from finished depths (bath or sparse) rather than passes."""
+    bath_from = (desc.get("bath") or {}).get("from")
+    return desc.get("kind", "dense") != "dense" or (bath_from is not None and p >= int(bath_from))
+
+
+def _scaled_depth_seconds(e: dict, p: int, method: str, model) -> float | None:
+    """The wall time of the deepest finished depth of this ensemble and method, times
+    model(p) / model(p_last): the cost model's ratio from that depth to p; the checkpointed
+    evaluations of a running bath or sparse depth count as done."""
+    done = sorted((d["p"], d["wall_time_s"]) for d in e["done"]
+                  if d.get("method", "exact") == method and d.get("wall_time_s"))
+    if not done:
+        return None
+    p_last, w_last = done[-1]
+    cost = w_last * model(max(p, p_last)) / model(p_last)
+    running = e.get("running")
+    if running is not None and running["p"] == p and running.get("bath"):
+        b = running["bath"]
+        cost = max(0.1 * cost, cost - b.get("evaluations_saved", 0) * b.get("evaluation_cpu_s", 0.0))
+    elif running is not None and running["p"] == p and running.get("sparse"):
+        sp = running["sparse"]  # a sparse depth's saved evaluations count as done too
+        cost = max(0.1 * cost, cost - sp["evaluations_saved"] * sp["evaluation_s"])
+    return cost
+
+
+def _exact_depth_seconds(e: dict, p: int, finished_timings, pass_rates, spec) -> float | None:
     if not pass_rates:
-        return None if any(e["todo"] for e in ensembles) else 0.0
+        return None
     seconds = sum(s for s, _ in pass_rates)
     work = sum(w for _, w in pass_rates)
     if work <= 0:
         return None
     rate = seconds / work
     if finished_timings:
-        evals = float(np.mean([e for _, e, *_ in finished_timings]))
+        evals = float(np.mean([n for _, n, *_ in finished_timings]))
     else:
         restarts = spec.get("optimizer", {}).get("restarts")
         evals = 30.0 * (1 + (restarts if restarts is not None else 2))
-    measured = [(p, paths / e) for p, e, _, paths in finished_timings if paths and e]
+    measured = [(q, paths / n) for q, n, _, paths in finished_timings if paths and n]
     base = max(measured) if measured else None
-
-    def paths_per_evaluation(p: int) -> float:
-        if base is not None:
-            return base[1] * 4.0 ** (p - base[0])
-        return (2 * p + 1) * 2.0 ** (2 * p + 1)
-
-    left = 0.0
-    kinds = {e["label"]: e.get("kind", "dense") for e in spec.get("ensembles", [])}
-    for e in ensembles:
-        if kinds.get(e["label"], "dense") != "dense":
-            continue  # sparse depths have no passes to measure; not estimated
-        for p in e["todo"]:
-            work = evals * paths_per_evaluation(p)
-            if e["running"] is not None and e["running"]["p"] == p:
-                work = max(work - e["running"]["paths"], paths_per_evaluation(p))
-            left += work * rate
-    return left
+    per_evaluation = base[1] * 4.0 ** (p - base[0]) if base is not None else (2 * p + 1) * 2.0 ** (2 * p + 1)
+    work = evals * per_evaluation
+    if e["running"] is not None and e["running"]["p"] == p:
+        work = max(work - e["running"]["paths"], per_evaluation)
+    return work * rate

@@ -644,7 +644,7 @@ class DepthStore:
         completions = record.get("completions", [])
         if len(completions) != int(record.get("n_chunks", -1)) or min(completions, default=0) < 1:
             return "chunk accounting: not every chunk was completed"
-        if not backward and record.get("kind") != "bath":  # a bath evaluation has no path weights
+        if not backward and record.get("kind") not in L.EVALUATION_KINDS:  # an evaluation has no path weights
             m = int(record["step"])
             dev = float(np.max(np.abs(np.diag(total[: 2 * m + 1]) - 1.0)))
             if not dev <= float(record.get("sum_w_allowed", sum_w_tolerance(m))):

@@ -348,6 +348,34 @@ def test_loose_cutoff_breakdown_is_abandoned():
     assert abs(res.value - evaluate(mix, g, b).value) <= res.error_estimate <= 1e-4
 
 
+def test_ladder_jumps_past_the_predicted_breakdown():
+    # Two breakdowns give the layers gained per decade of cut-off; the ladder jumps to half a decade
+    # past the predicted onset at layer p.  Measured SK p = 40 at INTERP angles (docs/bath.md):
+    # breakdowns at layers 13 (1e-5) and 27 (1e-6), 14 layers per decade: 10^-(13/14 + 0.5) x 1e-6.
+    from leadline.kernels.bath import cutoff_after_breakdown
+
+    assert cutoff_after_breakdown([(1e-5, 13), (1e-6, 27)], 40) == pytest.approx(3.7e-8)
+    assert cutoff_after_breakdown([(1e-6, 27)], 40) == pytest.approx(1e-7)  # one breakdown: plain 10x
+    assert cutoff_after_breakdown([(1e-5, 13), (1e-6, 13)], 40) == pytest.approx(1e-7)  # no trend: plain
+    assert cutoff_after_breakdown([(1e-5, 20), (1e-6, 21)], 40) == pytest.approx(1e-10)  # at most 3 decades more
+    assert cutoff_after_breakdown([(1e-5, 30), (1e-6, 39)], 40) == pytest.approx(1e-7)  # at least 10x
+
+
+def test_jumped_ladder_bounds_the_true_error():
+    # SK at INTERP angles p = 15 from the p = 12 optimum (Zhou et al., PRX 10, 021067 (2020)), tolerance
+    # 1e-3: cut-offs 1e-3 and 1e-4 break down (layers 7 and 12), the ladder jumps past 1e-5 and its
+    # estimate still bounds the error against the exact iteration.
+    from leadline.kernels.optimize import interpolate_angles
+
+    mix, g, b, _ = optimum("sk", 12)
+    while g.size < 15:
+        g, b = interpolate_angles(g, b)
+    res = evaluate_bath(mix, g, b, tolerance=1e-3)
+    assert [r.get("abandoned_at_layer") for r in res.ladder[:2]] == [7, 12]
+    assert 1e-6 < res.ladder[2]["cutoff"] < 1e-5
+    assert abs(res.value - evaluate(mix, g, b).value) <= res.error_estimate <= 1e-3
+
+
 @pytest.mark.parametrize("spec", MIXTURES)
 def test_error_estimate_corner_cases(spec):
     # one mode (p = 1, closed form of Claes, van Dam 2021) and zero angles (tiny pivots)

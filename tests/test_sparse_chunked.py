@@ -302,3 +302,49 @@ def test_sweep_refuses_a_sparse_depth_that_fits_nowhere(tmp_path):
                        cwd=tmp_path, env=env)
     _refused(r, "GiB free")
     assert sorted(os.listdir(tmp_path)) == ["s.toml"]  # no store, no scratch folder
+
+
+CHUNKED_SWEEP = ('[study]\nname = "t"\nstore = "s.zarr"\n[depths]\npmin = 3\npmax = 3\n[optimizer]\nrestarts = 0\n'
+                 'max-iterations = 2\n[compute]\nexecutor = "inprocess"\n[checkpoint]\ninterval-s = 0\n'
+                 '[[ensemble]]\nlabel = "mc"\nkind = "sparse"\nq = 2\ndegree = 3\n')
+
+
+def _chunked_sweep(folder: Path, command: list[str], **extra):
+    # the memory check pretends a 1 kB machine (LEADLINE_SPARSE_MEMORY_BYTES): p = 3 runs chunked out of core
+    env = {**os.environ, "LEADLINE_SPARSE_MEMORY_BYTES": "1000", **extra}
+    if "LEADLINE_CRASH_AT" not in extra:
+        env.pop("LEADLINE_CRASH_AT", None)
+    return subprocess.run([*LEADLINE, *command], capture_output=True, text=True, timeout=300, cwd=folder, env=env)
+
+
+def test_sweep_killed_inside_a_chunked_evaluation_resumes_it_and_its_saved_evaluations(tmp_path):
+    """A sweep's sparse depth on chunked vectors (p = 3 out of core, two optimizer iterations),
+    kill -9 in the middle of its second evaluation: resume reads the first evaluation back from the
+    store, continues the second from its last finished step in the scratch folder (no step of
+    either computed again: the audit file) and ends with the uninterrupted sweep's bits."""
+    (tmp_path / "ref").mkdir()
+    (tmp_path / "ref" / "s.toml").write_text(CHUNKED_SWEEP)
+    ref_audit = tmp_path / "ref-audit.txt"
+    ref = _chunked_sweep(tmp_path / "ref", ["sweep", "s.toml", "--quiet"], LEADLINE_CHUNK_AUDIT=str(ref_audit))
+    assert ref.returncode == 0, ref.stderr
+    stages = [line for line in ref_audit.read_text().splitlines() if line.startswith("sparse-step ")]
+    evaluations = [line for line in ref_audit.read_text().splitlines() if not line.startswith("sparse-step ")]
+    assert len(evaluations) >= 2 and len(stages) % len(evaluations) == 0
+    per_evaluation = len(stages) // len(evaluations)
+
+    (tmp_path / "s.toml").write_text(CHUNKED_SWEEP)
+    audit = tmp_path / "audit.txt"
+    first = _chunked_sweep(tmp_path, ["sweep", "s.toml"], LEADLINE_CHUNK_AUDIT=str(audit),
+                           LEADLINE_CRASH_AT=f"sparse-step-finished:{per_evaluation + 2}")
+    assert first.returncode == -signal.SIGKILL, first.stderr
+    second = _chunked_sweep(tmp_path, ["resume", "s.zarr"], LEADLINE_CHUNK_AUDIT=str(audit))
+    assert second.returncode == 0, second.stderr
+    assert "resuming after" in second.stderr
+    assert "evaluations, 1 reused," in second.stdout.splitlines()[0], second.stdout
+    lines = audit.read_text().splitlines()
+    assert sorted(lines) == sorted(ref_audit.read_text().splitlines())  # every stage and evaluation once
+    want = json.loads((tmp_path / "ref" / "s.zarr" / "ensembles" / "mc" / "p003" / "zarr.json").read_text())
+    got = json.loads((tmp_path / "s.zarr" / "ensembles" / "mc" / "p003" / "zarr.json").read_text())
+    for key in ("value", "gamma", "beta", "history"):
+        assert got["attributes"]["result"][key] == want["attributes"]["result"][key], key
+    assert not (tmp_path / "s.zarr.sparse-scratch").exists()  # removed after the depth

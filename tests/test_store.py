@@ -488,3 +488,30 @@ def test_policy_flushes_before_a_pass_that_would_exceed_the_interval():
     assert every.flush_after(0.0) and every.chunk_ledger(0.0, 2)
     assert CheckpointPolicy.from_spec({"checkpoint": {"interval_s": 5, "keep_passes": True}}) == CheckpointPolicy(5.0, True)
     assert CheckpointPolicy.from_spec({}) == CheckpointPolicy()
+
+
+def test_time_left_scales_bath_and_sparse_depths_by_their_own_cost_model():
+    """`status`'s estimate: a bath depth left is priced from the last finished bath depth (the
+    4p + 1 evaluations of a gradient, 1.27x per depth for one evaluation), a sparse depth 4x per
+    depth from the last finished sparse depth, never from exact path rates (that priced SK p = 18
+    by bath at 1.9e9 hours); a depth with nothing of its kind to measure from makes it unknown."""
+    from leadline.storage.reader import _estimate_seconds_left
+
+    spec = {"ensembles": [{"label": "sk", "kind": "dense", "bath": {"from": 3}},
+                          {"label": "mc", "kind": "sparse"}]}
+
+    def ens(label, done, todo, running=None):
+        return {"label": label, "done": [dict(p=p, wall_time_s=w, method=m) for p, w, m in done],
+                "todo": todo, "running": running}
+
+    running_bath = {"p": 4, "paths": 0.0, "bath": {"evaluations_saved": 10, "evaluation_cpu_s": 1.0}}
+    sk = ens("sk", [(1, 1.0, "exact"), (2, 2.0, "exact"), (3, 100.0, "bath")], [4, 5], running_bath)
+    mc = ens("mc", [(1, 1.0, "exact"), (2, 10.0, "exact")], [3])
+    passes = [(1.0, 2.0 ** 5)]  # exact rates: not used for bath or sparse depths
+    got = _estimate_seconds_left([sk, mc], [(2, 10, 2.0, 2.0 ** 5)], passes, spec)
+    bath4 = 100.0 * 1.27 * 17 / 13 - 10 * 1.0
+    bath5 = 100.0 * 1.27 ** 2 * 21 / 13
+    assert got == pytest.approx(bath4 + bath5 + 10.0 * 4)
+    # nothing of its kind finished yet: unknown, not a partial sum
+    assert _estimate_seconds_left([ens("sk", [(1, 1.0, "exact"), (2, 2.0, "exact")], [3])], [], passes, spec) is None
+    assert _estimate_seconds_left([ens("mc", [], [1, 2])], [], [], spec) is None

@@ -515,6 +515,70 @@ def test_sparse_ensemble_killed_mid_depth_then_resumed(sparse_reference, tmp_pat
     assert out["finished_now"][0]["result"]["value"] == got[2]["value"]
 
 
+SPARSE_KILL_SPEC = spec_text({"study": 'name = "mc"\nstore = "mc.zarr"', "depths": "pmin = 1\npmax = 3"},
+                             extra="[checkpoint]\ninterval-s = 0",
+                             ensemble='[[ensemble]]\nlabel = "maxcut-d3"\nkind = "sparse"\nq = 2\ndegree = 3')
+
+
+def _sparse_depths(store: Path) -> dict:
+    root = zarr.open_group(str(store), mode="r")
+    return {p: dict(root[f"ensembles/maxcut-d3/p{p:03d}"].attrs["result"]) for p in (1, 2, 3)}
+
+
+def test_sparse_depth_killed_mid_optimization_resumes_its_saved_evaluations(tmp_path):
+    """kill -9 in the middle of a sparse depth (p = 3, MaxCut D = 3, every evaluation written at once):
+    `status` shows the depth's saved evaluations and best value; `resume` reads those back (none
+    computed again: the store's counts and an independent audit line per written evaluation) and
+    ends with the uninterrupted sweep's values, angles and optimizer history to the bit."""
+    (tmp_path / "ref").mkdir()
+    (tmp_path / "ref" / "study.toml").write_text(SPARSE_KILL_SPEC)
+    ref_audit = tmp_path / "ref-audit.txt"
+    r = run(["sweep", str(tmp_path / "ref" / "study.toml"), "--quiet"], env=env_with(LEADLINE_CHUNK_AUDIT=ref_audit))
+    assert r.returncode == 0, r.stderr
+    want = _sparse_depths(tmp_path / "ref" / "mc.zarr")
+    n1, n2, n3 = (want[p]["evaluations"] for p in (1, 2, 3))
+    assert n3 > 20
+    # the reference wrote each evaluation once (the optimizer never asked for the same angles twice)
+    assert len(audit_lines(ref_audit)) == len(set(audit_lines(ref_audit))) == n1 + n2 + n3
+
+    (tmp_path / "study.toml").write_text(SPARSE_KILL_SPEC)
+    store, hold, audit = tmp_path / "mc.zarr", tmp_path / "held", tmp_path / "audit.txt"
+    saved = n3 // 2  # the kill comes after this many evaluations of p = 3 are in the store
+    proc = subprocess.Popen([*LEADLINE, "sweep", str(tmp_path / "study.toml"), "--quiet"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            env=env_with(LEADLINE_CHUNK_AUDIT=audit, LEADLINE_HOLD_FILE=hold,
+                                         LEADLINE_HOLD_AT=f"sparse-evaluations-cached:{n1 + n2 + saved}"))
+    try:
+        assert wait_for_file(hold, proc)["point"] == "sparse-evaluations-cached"
+        status = run(["status", str(store)])
+        line = next(x for x in status.stdout.splitlines() if "p = 3" in x)
+        assert line.split()[0] == "running" and f"{saved} evaluations saved" in line, status.stdout
+        assert "best value so far = 0.79" in line and "s per evaluation" in line, line
+        proc.send_signal(signal.SIGKILL)
+        assert proc.wait(timeout=60) == -signal.SIGKILL
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    hold.unlink()
+    running = json.loads(run(["status", str(store), "--json"]).stdout)["ensembles"][0]["running"]
+    assert running["p"] == 3 and not running["active"] and running["sparse"]["evaluations_saved"] == saved
+    r = run(["resume", str(store), "--json"], env=env_with(LEADLINE_CHUNK_AUDIT=audit))
+    assert r.returncode == 0, r.stderr
+    (line,) = json.loads(r.stdout)["finished_now"]
+    t = line["timings"]
+    assert line["p"] == 3 and t["sparse_evaluations_reused"] == saved
+    assert t["sparse_evaluations_computed"] == n3 - saved and t["sessions"] == 2
+    lines = audit_lines(audit)
+    assert len(lines) == len(set(lines)) == n1 + n2 + n3  # no saved evaluation written twice
+    assert set(lines) == set(audit_lines(ref_audit))  # the same evaluations as the uninterrupted sweep
+    got = _sparse_depths(store)
+    for p in (1, 2, 3):
+        for key in ("value", "gamma", "beta", "gradient_norm", "evaluations", "history"):
+            assert got[p][key] == want[p][key], (p, key)
+    assert 0.7923 <= got[3]["value"] < 0.7924  # arXiv:2503.12789, Table 1 (MaxCut, D = 3, p = 3), 4 digits: 0.7923
+
+
 @pytest.mark.slow
 def test_kills_between_batched_checkpoints_resume_bit_for_bit(reference, tmp_path):
     """The default kind of policy: small passes wait in memory and are written in batches.
@@ -634,6 +698,6 @@ def test_sparse_sweep_depth_uses_the_command_lines_default_restarts(p, monkeypat
     class Executor:
         settings = None
 
-    result, _ = _optimize_sparse(spec.ensembles[0], spec, p, None, Executor(), None, None)
+    result, _, _ = _optimize_sparse(spec.ensembles[0], spec, p, None, Executor(), None, None)
     assert result == "result" and seen["restarts"] == sparse_default_restarts(p)
     assert sparse_default_restarts(1) == 3 and sparse_default_restarts(12) == 0

@@ -139,7 +139,7 @@ def _run(evaluate_bath, BathLimitError, mix, g, b, tolerance, bond, fock, time_l
 
     def progress(run, cutoff, t, p, largest):
         if not quiet and time.perf_counter() - t0 > 10.0:
-            print(f"leadline: bath run {run + 1} (cut-off {cutoff:.0e}): layer {t}/{p}, bond {largest}, "
+            print(f"leadline: bath run {run + 1} (cut-off {cutoff:.2g}): layer {t}/{p}, bond {largest}, "
                   f"{time.perf_counter() - t0:.0f} s", file=sys.stderr, flush=True)
 
     try:
@@ -162,9 +162,9 @@ def report(mix, p: int, res) -> str:
         f"xi(x)      = {mix.label()}",
         f"depth p    = {p}",
         f"V_p        = {fmt(res.value, 12)} +- {res.error_estimate:.1e} (bosonic bath; tolerance {res.tolerance:.0e})",
-        f"truncation = cut-off {r.cutoff:.0e}, bond {r.largest_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
+        f"truncation = cut-off {r.cutoff:.2g}, bond {r.largest_bond} (cap {r.chi}), Fock levels {min(r.fock)}..{max(r.fock)}; "
         f"limiting: {res.limiting}",
         f"discarded  = {r.discarded:.1e}, top Fock level population {r.top_population:.1e}, carried states: {carried}",
-        "ladder     = " + ", ".join(f"{x['cutoff']:.0e}: {_rung(x)}" for x in res.ladder),
+        "ladder     = " + ", ".join(f"{x['cutoff']:.2g}: {_rung(x)}" for x in res.ladder),
         f"time       = {sum(x['wall_time_s'] for x in res.ladder):.2f} s",
     ])

@@ -273,9 +273,14 @@ def scratch_runner(path: SparsePath, settings, label=None, client=None):
                        "beta": [float(x).hex() for x in b], "band_bits": CHUNK_POINTS_BITS, "gradient": bool(gradient)}
         folder = path.scratch if label is None else path.scratch / label
         try:
-            if label is not None and folder.exists():
+            try:
+                # the same evaluation stopped in this folder (a resumed sweep replays up to it): continue it
+                scratch = SparseScratch.open(folder, fingerprint)
+            except StoreError:
+                if label is None:
+                    raise
                 SparseScratch(folder, {}).remove()  # the optimizer's previous evaluation (other angles)
-            scratch = SparseScratch.open(folder, fingerprint)
+                scratch = SparseScratch.open(folder, fingerprint)
         except StoreError as exc:
             raise InputError(str(exc)) from None
         p = g.size

@@ -377,7 +377,7 @@ def stopped_text(why: str, store_path) -> str:
 
 def _duration(seconds: float | None) -> str:
     if seconds is None:
-        return "unknown (no pass measured yet)"
+        return "unknown (nothing measured yet for a depth left)"
     if seconds < 90:
         return f"~{seconds:.0f} s"
     if seconds < 5400:
@@ -437,6 +437,12 @@ def status_text(progress: dict) -> str:
                          f"{b['gradient_norm']:.1e}")
             text += f", {b['evaluation_cpu_s']:.3f} CPU s per evaluation, session {r['sessions']}"
             lines.append(text)
+        elif r is not None and r.get("sparse") and not r.get("metadata_damaged"):
+            sp = r["sparse"]
+            state, more = ("running", "") if r.get("active", True) else ("stopped", "; resume continues it")
+            lines.append(f"    {state:<8} p = {r['p']}: {sp['evaluations_saved']} evaluations saved, best value so far = "
+                         f"{sp['value']:.10f} (gradient norm {sp['gradient_norm']:.1e}), {sp['evaluation_s']:.3g} s per "
+                         f"evaluation, session {r['sessions']}{more}")
         elif r is not None and r.get("metadata_damaged") and r.get("active"):
             lines.append(f"    running  p = {r['p']}: starting")  # its folder is there, its metadata not yet
         elif r is not None and r.get("metadata_damaged"):
@@ -458,8 +464,9 @@ def status_text(progress: dict) -> str:
     if progress["complete"]:
         lines.append("complete")
     else:
-        lines.append(f"estimated time left: {_duration(progress['estimated_seconds_left'])} "
-                     "(measured seconds per path x mean evaluations per depth)")
+        basis = ("finished depths' measured cost, scaled per depth: a rough guide"
+                 if progress.get("estimate_basis") == "depth costs" else "measured seconds per path x mean evaluations per depth")
+        lines.append(f"estimated time left: {_duration(progress['estimated_seconds_left'])} ({basis})")
     return "\n".join(lines)
 
 

@@ -31,6 +31,7 @@ _WHERE = {
     "readout_sweep": "_engine",
     "BathEvaluation": "_estimate",
     "evaluate_bath": "_estimate",
+    "cutoff_after_breakdown": "_estimate",
     "DEFAULT_TOLERANCE": "_estimate",
     "DEFAULT_BOND_CAP": "_estimate",
     "DEFAULT_FOCK_CAP": "_estimate",

@@ -13,7 +13,9 @@ c_k = tolerance / 10^k, k = 0, 1, ... and stops at the first k >= 2 with
 and discarded_k <= discarded_(k-1) / 2 (or below 1e-4 tolerance), reporting V_k = V(c_k).
 A run whose W stops giving a positive semidefinite bath (:class:`BathBreakdown`: its cut-off is
 too loose for the depth, the readout amplifies truncation errors with the layers) is abandoned
-where that shows, listed in the ladder with ``abandoned_at_layer``, and not used by the estimate.
+where that shows, listed in the ladder with ``abandoned_at_layer``, and not used by the estimate;
+after two such runs the ladder jumps to the cut-off whose predicted breakdown lies half a decade
+past the last layer (:func:`cutoff_after_breakdown`), and goes on 10x per step from there.
 The truncation errors fall several-fold per step of the ladder (measured for SK, pure q = 3,
 q = 4 and 2+4, docs/bath.md), so the first term exceeds the error of V_k whenever they fall at
 least 1.5x per step; the step before (at a third of its size) catches two runs that agree by accident although the
@@ -41,7 +43,7 @@ import numpy as np
 from ..exact import check_angles
 from ._engine import BathBreakdown, BathLimitError, BathRun, run_bath
 
-__all__ = ["BathEvaluation", "evaluate_bath", "DEFAULT_TOLERANCE", "DEFAULT_BOND_CAP", "DEFAULT_FOCK_CAP"]
+__all__ = ["BathEvaluation", "cutoff_after_breakdown", "evaluate_bath", "DEFAULT_TOLERANCE", "DEFAULT_BOND_CAP", "DEFAULT_FOCK_CAP"]
 
 DEFAULT_TOLERANCE = 1e-6
 DEFAULT_BOND_CAP = 256
@@ -129,12 +131,13 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
     deadline = None if time_limit is None else t0 + float(time_limit)
     runs: list[BathRun] = []
     ladder = []
+    abandoned: list[tuple[float, int]] = []  # (cut-off, layer) of every run that broke down
     cutoff = float(tolerance)
     with _one_thread():
         while True:
             if cutoff < SMALLEST_CUTOFF:
                 raise BathLimitError(
-                    f"cannot reach tolerance {tolerance:.1e}: cut-off at rounding level ({cutoff:.0e}); "
+                    f"cannot reach tolerance {tolerance:.1e}: cut-off at rounding level ({cutoff:.2g}); "
                     f"estimate {_estimate(runs):.1e}")
             k = len(runs)
             t_run = time.perf_counter()
@@ -146,14 +149,15 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
                 if exc.bond >= bond_cap:  # ... unless the cap, not the cut-off, truncated it
                     raise BathLimitError(
                         f"cannot reach tolerance {tolerance:.1e}: the bond cap {bond_cap} binds (the run at cut-off "
-                        f"{cutoff:.0e} broke down at layer {exc.layer} with its bond at the cap); a larger --bond "
+                        f"{cutoff:.2g} broke down at layer {exc.layer} with its bond at the cap); a larger --bond "
                         f"needs more memory and time") from None
                 ladder.append({"cutoff": cutoff, "value": None, "abandoned_at_layer": exc.layer,
                                "remainder": exc.remainder, "wall_time_s": time.perf_counter() - t_run})
-                cutoff /= 10.0
+                abandoned.append((cutoff, exc.layer))
+                cutoff = cutoff_after_breakdown(abandoned, g.size)
                 continue
             except BathLimitError as exc:
-                last = f"; last estimate {_estimate(runs):.1e} at cut-off {runs[-1].cutoff:.0e}" if len(runs) > 1 else ""
+                last = f"; last estimate {_estimate(runs):.1e} at cut-off {runs[-1].cutoff:.2g}" if len(runs) > 1 else ""
                 raise BathLimitError(f"cannot reach tolerance {tolerance:.1e} within --time-limit {time_limit:g} s: "
                                      f"{exc}{last}") from None
             runs.append(run)
@@ -172,8 +176,38 @@ def evaluate_bath(mixture, gamma, beta, *, tolerance: float = DEFAULT_TOLERANCE,
                 if all(capped):
                     raise BathLimitError(
                         f"cannot reach tolerance {tolerance:.1e}: the bond cap {bond_cap} binds "
-                        f"(estimate {est:.1e} at cut-off {cutoff:.0e}); a larger --bond needs more memory and time")
+                        f"(estimate {est:.1e} at cut-off {cutoff:.2g}); a larger --bond needs more memory and time")
             cutoff /= 10.0
+
+
+BREAKDOWN_HEADROOM = 0.5  # decades of cut-off beyond the predicted onset at which the first valid run starts
+MAX_JUMP = 3.0  # most decades the ladder jumps past the plain 10x step after a breakdown
+
+
+def cutoff_after_breakdown(abandoned: list, p: int) -> float:
+    """The next cut-off of the ladder after the run at ``abandoned[-1]`` = (cut-off, layer) broke down.
+
+    Plain: 10x tighter.  After two breakdowns the layer at which runs break down is extrapolated
+    linearly in log10(cut-off) (measured linear for SK at INTERP angles, p = 40: layers 13, 27 at
+    1e-5, 1e-6, onset near 40 at 1e-7, docs/bath.md), and the ladder jumps to the cut-off whose
+    predicted breakdown lies ``BREAKDOWN_HEADROOM`` decades past layer p.  A run just inside its
+    onset is valid but far off (SK p = 40 at 1e-7: 2e-5 where 1e-8 was 8e-7 off), and as the
+    loosest of the three runs the estimate uses, it alone pushed the estimate above 1e-5 at
+    1e-9.  The estimate itself is unchanged: three valid runs a decade apart.  The jump is at
+    least the plain 10x and at most ``MAX_JUMP`` decades more; the cut-off is rounded to two
+    significant digits (it is printed).
+    """
+    c, layer = abandoned[-1]
+    plain = c / 10.0
+    if len(abandoned) < 2:
+        return plain
+    c0, layer0 = abandoned[-2]
+    per_decade = (layer - layer0) / np.log10(c0 / c)
+    if not np.isfinite(per_decade) or per_decade <= 0:
+        return plain
+    decades = (p - layer) / per_decade + BREAKDOWN_HEADROOM
+    decades = min(max(decades, 1.0), 1.0 + MAX_JUMP)
+    return float(f"{c * 10.0 ** -decades:.2g}")
 
 
 def _estimate(runs: list) -> float:

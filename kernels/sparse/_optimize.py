@@ -85,6 +85,8 @@ def optimize_sparse(
     gtol: float = 1e-8,  # 1e-9 is not always reachable: the value stops changing in double precision first
     maxiter: int = 500,
     evaluate_kw: dict | None = None,
+    evaluate=None,
+    callback=None,
 ) -> SparseOptimization:
     """Maximize nu_p(D; gamma, beta) with scipy L-BFGS-B and the exact gradient.
 
@@ -97,6 +99,13 @@ def optimize_sparse(
     start is added as a safety net, so nu*_p >= nu*_{p-1}.  The result is in the canonical form of
     :func:`leadline.kernels.optimize.canonical_angles` for xi = x^q (same symmetries).
     ``gradient_norm`` is the max-norm of the gradient at the optimum.
+
+    ``evaluate(gamma, beta) -> (value, grad_gamma, grad_beta)``, if given, replaces
+    ``value_and_grad(q, degree, gamma, beta, **evaluate_kw)`` for the optimizer's evaluations
+    (a sweep's store returns recorded ones; it must give the same bits for the same angles).
+    ``callback(info)`` is called after each of them with {"evaluations", "value",
+    "gradient_norm", "best_value"} (the max-norm of this evaluation's gradient; the best value
+    of this optimization so far).
     """
     from scipy.optimize import minimize
 
@@ -132,6 +141,10 @@ def optimize_sparse(
     history = []
     best = None
     evaluations = 0
+    best_seen = -math.inf
+    if evaluate is None:
+        def evaluate(g, b):
+            return value_and_grad(q, D, g, b, **evaluate_kw)
     if previous is not None and previous_value is not None and len(previous[0]) == p - 1:
         # safety net (as in optimize_depth): the padded start (g_p = b_p = 0) reproduces
         # nu*_{p-1}; it is tried last and only used if every other start ends below it
@@ -144,11 +157,16 @@ def optimize_sparse(
         values = []
 
         def fun(x):
-            nonlocal evaluations
+            nonlocal evaluations, best_seen
             evaluations += 1
-            val, gg, gb = value_and_grad(q, D, x[:p], x[p:], **evaluate_kw)
+            val, gg, gb = evaluate(x[:p], x[p:])
             values.append(float(val))
-            return -val, -np.concatenate([gg, gb])
+            grad = np.concatenate([gg, gb])
+            if callback is not None:
+                best_seen = max(best_seen, float(val))
+                callback({"evaluations": evaluations, "value": float(val),
+                          "gradient_norm": float(np.max(np.abs(grad))), "best_value": best_seen})
+            return -val, -grad
 
         x0 = np.clip(np.concatenate([g0, b0]), lower, upper)
         res = minimize(fun, x0, jac=True, method="L-BFGS-B", bounds=list(zip(lower, upper)),
