@@ -13,7 +13,9 @@ Sections:
                        ones from INTERP of this run's result at p - 1 (V, estimate, gradient
                        norm, evaluations, CPU s per depth); --json FILE is rewritten after each depth
   --compare P [P ...]  at each depth P (from INTERP of the exact p - 1 optimum) the gradient and
-                       search schemes of the optimizer against each other: CPU s and V - V_p*
+                       search schemes of the optimizer against each other, interleaved depth by
+                       depth: CPU s and V - V_p* (--schemes: which ones, names of SCHEMES;
+                       --json FILE rewritten after each depth, --markdown FILE prints its table)
   --hessians           eigenvalues of -Hessian(V) at the exact optima p = 9..13 (exact engine)
   --extrapolate JSON   the SK headline of `leadline table` with the bath depths > 16 of a --targets run
                        added to the exact p <= 16 (tests/sk_optima.csv)
@@ -21,7 +23,8 @@ Sections:
                        INTERP of p = 11) against the exact reverse-mode gradient
 
 Usage:  OMP_NUM_THREADS=1 nice -n 5 python benchmarks/bench_bath_optimize.py --targets 13 20 [--json FILE]
-        OMP_NUM_THREADS=1 python benchmarks/bench_bath_optimize.py --compare 10 11 12
+        OMP_NUM_THREADS=1 nice -n 5 python benchmarks/bench_bath_optimize.py --compare 13 14 15 16 17 \
+            --schemes default previous --json FILE     (the current scheme against the previous one)
 """
 
 from __future__ import annotations
