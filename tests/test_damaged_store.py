@@ -334,7 +334,7 @@ def test_store_written_before_the_record_opens_and_gets_one(finished, work):
 
 @pytest.mark.parametrize("edit, says", [
     (lambda spec: spec["ensembles"][0].update(xi="2:-1"), "weight w in '2:-1' is negative"),
-    (lambda spec: spec["depths"].update(pmax=40), "depths 1..40 outside 1..30"),
+    (lambda spec: spec["depths"].update(pmax=40), "pmax = 40 is beyond 30"),
     (lambda spec: spec.pop("optimizer"), "'optimizer' is missing"),
 ])
 def test_store_without_record_and_an_unusable_spec_does_not_run(work, edit, says):

@@ -701,3 +701,18 @@ def test_sparse_sweep_depth_uses_the_command_lines_default_restarts(p, monkeypat
     result, _, _ = _optimize_sparse(spec.ensembles[0], spec, p, None, Executor(), None, None)
     assert result == "result" and seen["restarts"] == sparse_default_restarts(p)
     assert sparse_default_restarts(1) == 3 and sparse_default_restarts(12) == 0
+
+
+def test_store_of_a_sweep_past_exact_depths_can_be_resumed(tmp_path):
+    """A spec with pmax above 30 continued by the bath engine is accepted by `sweep`; its store
+    must be accepted again by `status` and `resume` (they once refused it as damaged: "depths
+    1..32 outside 1..30"), while a dense ensemble without bath-from still stops at 30."""
+    spec = tmp_path / "deep.toml"
+    spec.write_text(spec_text({"depths": "pmin = 1\npmax = 32"},
+                              ensemble='[[ensemble]]\nlabel = "sk"\nxi = "2:0.5"\nbath-from = 2'))
+    r = run(["sweep", str(spec), "--quiet"], env=env_with(LEADLINE_CRASH_AT="depth-done:1"))
+    assert r.returncode == -signal.SIGKILL
+    r = run(["status", str(tmp_path / "s.zarr")])
+    assert r.returncode == 0 and "done     p = 1:" in r.stdout and "p = 2..32" in r.stdout, r.stderr
+    r = run(["resume", str(tmp_path / "s.zarr"), "--quiet"], env=env_with(LEADLINE_CRASH_AT="depth-started:2"))
+    assert r.returncode == -signal.SIGKILL, r.stderr  # it ran on into the first bath depth

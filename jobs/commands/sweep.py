@@ -262,12 +262,16 @@ def _stored_spec(store_path: Path, attrs: dict):
     A store with an integrity record has its spec's digest checked on open; an older store
     has none, so a spec edited into nonsense (a negative weight, pmax beyond the limit) is
     caught here before it runs."""
-    from ..spec import MAX_DEPTH
+    from ..spec import _check_depths
 
     try:
         spec = spec_from_json(attrs["spec"], attrs.get("spec_toml", ""))
-        if not 1 <= spec.pmin <= spec.pmax <= MAX_DEPTH:
-            raise ValueError(f"depths {spec.pmin}..{spec.pmax} outside 1..{MAX_DEPTH}")
+        if not 1 <= spec.pmin <= spec.pmax:
+            raise ValueError(f"depths {spec.pmin}..{spec.pmax} are not a range of depths from 1")
+        try:  # the limits `sweep` applies: pmax beyond 30 only for ensembles continued by the bath engine
+            _check_depths(spec.ensembles, spec.pmin, spec.pmax)
+        except InputError as exc:
+            raise ValueError(str(exc)) from None
         for ens in spec.ensembles:
             if ens.kind == "dense":
                 ens.mixture()
