@@ -716,3 +716,24 @@ def test_store_of_a_sweep_past_exact_depths_can_be_resumed(tmp_path):
     assert r.returncode == 0 and "done     p = 1:" in r.stdout and "p = 2..32" in r.stdout, r.stderr
     r = run(["resume", str(tmp_path / "s.zarr"), "--quiet"], env=env_with(LEADLINE_CRASH_AT="depth-started:2"))
     assert r.returncode == -signal.SIGKILL, r.stderr  # it ran on into the first bath depth
+
+
+def test_stop_message_counts_saved_evaluations_of_bath_and_sparse_depths(monkeypatch):
+    """A sweep stopped in a bath or sparse depth says how many evaluations it kept (it said
+    "0 passes saved" after a SIGTERM in an SK bath depth with 367 evaluations saved)."""
+    import leadline.storage as storage
+    from leadline.jobs.commands.sweep import stopped_text
+
+    def running(p, **kind):
+        return {"p": p, "passes_saved": 0, "inflight": None, "bath": None, "sparse": None, **kind}
+
+    progress = {"complete": False, "ensembles": [
+        {"label": "sk", "done": [{"p": 1}], "running": running(2, bath={"evaluations_saved": 367})},
+        {"label": "mc", "done": [], "running": running(1, sparse={"evaluations_saved": 1})},
+        {"label": "mix", "done": [], "running": running(1, passes_saved=8)},
+    ]}
+    monkeypatch.setattr(storage, "open_study", lambda path: type("S", (), {"progress": lambda self: progress})())
+    text = stopped_text("stopped by SIGTERM", "s.zarr")
+    assert "sk: p = 1 done; p = 2 stopped with 367 evaluations saved" in text
+    assert "mc: p = 1 stopped with 1 evaluation saved" in text
+    assert "mix: p = 1 stopped with 8 passes saved" in text

@@ -365,7 +365,9 @@ def stopped_text(why: str, store_path) -> str:
             parts.append(f"p = {_ranges(done)} done")
         r = e["running"]
         if r is not None:
-            text = f"p = {r['p']} stopped with {r['passes_saved']} passes saved"
+            saved = (r.get("bath") or {}).get("evaluations_saved") or (r.get("sparse") or {}).get("evaluations_saved")
+            text = (f"p = {r['p']} stopped with {_count(saved, 'evaluation')} saved" if saved
+                    else f"p = {r['p']} stopped with {_count(r['passes_saved'], 'pass', 'passes')} saved")
             if r["inflight"] is not None:
                 text += f" and {r['inflight']['chunks_done']}/{r['inflight']['n_chunks']} chunks of the next"
             parts.append(text)
@@ -377,6 +379,11 @@ def stopped_text(why: str, store_path) -> str:
     else:
         lines.append(f"continue with: leadline resume {store_path}")
     return "\n".join(lines)
+
+
+def _count(n: int, one: str, many: str | None = None) -> str:
+    """'1 evaluation', '2 evaluations'."""
+    return f"{n} {one if n == 1 else (many or one + 's')}"
 
 
 def _duration(seconds: float | None) -> str:
@@ -435,7 +442,7 @@ def status_text(progress: dict) -> str:
         if r is not None and r.get("bath") and not r.get("metadata_damaged"):
             b = r["bath"]
             state = "running" if r.get("active", True) else "stopped"
-            text = f"    {state:<8} p = {r['p']} (bath): {b['evaluations_saved']} evaluations saved"
+            text = f"    {state:<8} p = {r['p']} (bath): {_count(b['evaluations_saved'], 'evaluation')} saved"
             if b.get("value") is not None:
                 text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, gradient norm "
                          f"{b['gradient_norm']:.1e}")
@@ -444,7 +451,7 @@ def status_text(progress: dict) -> str:
         elif r is not None and r.get("sparse") and not r.get("metadata_damaged"):
             sp = r["sparse"]
             state, more = ("running", "") if r.get("active", True) else ("stopped", "; resume continues it")
-            lines.append(f"    {state:<8} p = {r['p']}: {sp['evaluations_saved']} evaluations saved, best value so far = "
+            lines.append(f"    {state:<8} p = {r['p']}: {_count(sp['evaluations_saved'], 'evaluation')} saved, best value so far = "
                          f"{sp['value']:.10f} (gradient norm {sp['gradient_norm']:.1e}), {sp['evaluation_s']:.3g} s per "
                          f"evaluation, session {r['sessions']}{more}")
         elif r is not None and r.get("metadata_damaged") and r.get("active"):
