@@ -111,11 +111,14 @@ def versus_table(angles, ps, tol, record, rows):
         record()
 
 
-def check_table(angles, cases, tols, record, rows):
+def check_table(angles, cases, tols, record, rows, bond_cap=None):
     """The error estimate against the exact evaluation at INTERP angles beyond p = 12 (and the two
-    engines' CPU seconds, for the crossover): one row per (mixture, p, tolerance)."""
+    engines' CPU seconds, for the crossover): one row per (mixture, p, tolerance).  A tolerance the
+    engine refuses within its caps (BathLimitError) is a row with the refusal, not a crash."""
+    from leadline.kernels.bath import BathLimitError
     from leadline.kernels.exact import evaluate
 
+    caps = {} if bond_cap is None else {"bond_cap": bond_cap}
     for name, p in cases:
         mix, g, b = schedule(angles, name, p)
         c0 = time.process_time()
@@ -123,7 +126,14 @@ def check_table(angles, cases, tols, record, rows):
         t_exact = time.process_time() - c0
         for tol in tols:
             c0 = time.process_time()
-            res = evaluate_bath(mix, g, b, tolerance=tol)
+            try:
+                res = evaluate_bath(mix, g, b, tolerance=tol, **caps)
+            except BathLimitError as exc:
+                rows.append({"name": name, "p": p, "tolerance": tol, "exact": exact, "exact_s": t_exact,
+                             "refused": str(exc), "bath_s": time.process_time() - c0})
+                _log(f"check {name} p={p} tol {tol:g}: refused ({exc}); exact {t_exact:.1f} s")
+                record()
+                continue
             t_bath = time.process_time() - c0
             err = abs(res.value - exact)
             rows.append({"name": name, "p": p, "tolerance": tol, "exact": exact, "exact_s": t_exact,
@@ -211,7 +221,7 @@ def target_rows(angles, cases, record, rows):
 def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4], growth_max=56,
         growth_cutoff=1e-7, p40=True, cases_arg=None, growth_names=None,
         check_cases=("sk:17", "q3:17", "q4:17", "mix24:17", "sk:18", "sk:19", "sk:20"),
-        check_tols=(1e-6, 1e-8), onset_cases=("sk:60",)) -> dict:
+        check_tols=(1e-6, 1e-8), onset_cases=("sk:60",), check_bond=None) -> dict:
     """Run the measurements; returns a JSON-ready dict."""
     angles = load_angles()
     result = {"benchmark": "bath", "quick": quick}
@@ -236,7 +246,7 @@ def run(quick: bool = False, out_path: str | None = None, sections=SECTIONS[:4],
         growth_table(angles, names, range(8, growth_max + 1, 8), growth_cutoff, record, rows("growth", []))
     if "check" in sections:
         cases = [(n, int(p)) for n, p in (c.split(":") for c in check_cases)]
-        check_table(angles, cases, check_tols, record, rows("check", []))
+        check_table(angles, cases, check_tols, record, rows("check", []), bond_cap=check_bond)
     if "onset" in sections:
         onset_rows(angles, [(n, int(p)) for n, p in (c.split(":") for c in onset_cases)], (1e-5, 1e-6, 1e-7), record,
                    rows("onset", []))
@@ -260,11 +270,13 @@ def main(argv=None) -> int:
                     help="target section: these cases instead, as NAME:P:TOLERANCE[:BOND_CAP] (sk:40:1e-5:1024)")
     ap.add_argument("--check", nargs="+", default=None, help="check section: NAME:P cases (default sk:17 .. sk:20)")
     ap.add_argument("--check-tol", nargs="+", type=float, default=[1e-6, 1e-8])
+    ap.add_argument("--check-bond", type=int, default=None, help="check section: bond cap (default: the engine's)")
     ap.add_argument("--json", help="write the results here (updated after every row)")
     args = ap.parse_args(argv)
     res = run(quick=args.quick, out_path=args.json, sections=args.section, growth_max=args.growth_max,
               growth_cutoff=args.growth_cutoff, p40=args.p40, cases_arg=args.cases, growth_names=args.growth_names,
-              check_tols=tuple(args.check_tol), **({"check_cases": tuple(args.check)} if args.check else {}))
+              check_tols=tuple(args.check_tol), check_bond=args.check_bond,
+              **({"check_cases": tuple(args.check)} if args.check else {}))
     if not args.json:
         print(json.dumps(res, indent=1, default=float))
     return 0
