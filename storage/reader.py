@@ -244,7 +244,9 @@ def _running_info_quiet(p: int, g, attrs: dict | None, writing: bool) -> dict:
         # a bath depth: the live state of its optimizer and its checkpointed evaluations
         "bath": None if not (bath_done or attrs.get("bath_progress")) else dict(
             attrs.get("bath_progress") or {}, evaluations_saved=bath_done,
-            evaluation_cpu_s=bath_seconds / max(1, bath_done)),
+            # before the first batch is written, the optimizer's live figure (None if it has none)
+            evaluation_cpu_s=(bath_seconds / bath_done) if bath_done
+            else (attrs.get("bath_progress") or {}).get("evaluation_s")),
         "sparse": _sparse_running(sparse),
     }
 
@@ -317,7 +319,7 @@ def _scaled_depth_seconds(e: dict, p: int, method: str, model) -> float | None:
     running = e.get("running")
     if running is not None and running["p"] == p and running.get("bath"):
         b = running["bath"]
-        cost = max(0.1 * cost, cost - b.get("evaluations_saved", 0) * b.get("evaluation_cpu_s", 0.0))
+        cost = max(0.1 * cost, cost - b.get("evaluations_saved", 0) * (b.get("evaluation_cpu_s") or 0.0))
     elif running is not None and running["p"] == p and running.get("sparse"):
         sp = running["sparse"]  # a sparse depth's saved evaluations count as done too
         cost = max(0.1 * cost, cost - sp["evaluations_saved"] * sp["evaluation_s"])

@@ -515,3 +515,28 @@ def test_time_left_scales_bath_and_sparse_depths_by_their_own_cost_model():
     # nothing of its kind finished yet: unknown, not a partial sum
     assert _estimate_seconds_left([ens("sk", [(1, 1.0, "exact"), (2, 2.0, "exact")], [3])], [], passes, spec) is None
     assert _estimate_seconds_left([ens("mc", [], [1, 2])], [], [], spec) is None
+
+
+def test_status_of_a_bath_depth_before_its_first_saved_evaluation_uses_the_live_figure():
+    """A bath depth whose first batch of evaluations is not yet written: its seconds per evaluation
+    come from the optimizer's live progress attribute (was shown as "0.000 CPU s per evaluation"),
+    and with no figure at all the status line leaves the figure out (common practice: show what
+    is known, nothing invented)."""
+    from leadline.storage.reader import _running_info
+
+    live = {"bath_progress": {"value": 0.41, "error_estimate": 1e-7, "gradient_norm": 1e-3,
+                              "evaluation_s": 0.25, "evaluations": 3}}
+    info = _running_info(3, None, live, writing=True)
+    assert info["bath"]["evaluations_saved"] == 0 and info["bath"]["evaluation_cpu_s"] == 0.25
+    bare = {"bath_progress": {"value": 0.41, "error_estimate": 1e-7, "gradient_norm": 1e-3}}
+    assert _running_info(3, None, bare, writing=True)["bath"]["evaluation_cpu_s"] is None
+    from leadline.jobs.commands.sweep import status_text
+
+    def text(running):
+        return status_text({"name": "s", "path": "s.zarr", "depths": (1, 3), "lock": None, "complete": False, "estimated_seconds_left": None,
+                            "ensembles": [{"label": "sk", "done": [], "todo": [3], "running": running}]})
+
+    assert "0.250 CPU s per evaluation" in text(info)
+    bare_line = text(_running_info(3, None, bare, writing=True))
+    assert "p = 3 (bath): 0 evaluations saved, best V so far = 0.4100000000" in bare_line
+    assert "per evaluation" not in bare_line

@@ -446,7 +446,9 @@ def status_text(progress: dict) -> str:
             if b.get("value") is not None:
                 text += (f", best V so far = {b['value']:.10f} +- {b['error_estimate']:.1e}, gradient norm "
                          f"{b['gradient_norm']:.1e}")
-            text += f", {b['evaluation_cpu_s']:.3f} CPU s per evaluation, session {r['sessions']}"
+            if b.get("evaluation_cpu_s") is not None:
+                text += f", {b['evaluation_cpu_s']:.3f} CPU s per evaluation"
+            text += f", session {r['sessions']}"
             lines.append(text)
         elif r is not None and r.get("sparse") and not r.get("metadata_damaged"):
             sp = r["sparse"]
