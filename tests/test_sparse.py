@@ -321,6 +321,24 @@ def test_maxcut_3regular_optimizer_reaches_the_published_optimum_from_interp(p):
     assert t <= res.value < t + 1e-4, (p, res.value, t)
 
 
+
+def test_interp_alone_when_no_restarts_are_asked_for():
+    """A warm-started depth with restarts = 0 (the ladder's default past p = 6) runs INTERP only: the
+    linear ramp used to run too and cost 2-4x the INTERP run while ending lower from p = 9 on (the
+    MaxCut D = 3 sweep p = 7..13, docs/sparse.md). Same value and evaluations as the explicit INTERP-only
+    call; with a restart asked for, the ramp and the seeded point run as before."""
+    prev = _stored_optima()[4]
+    alone = optimize_sparse(2, 3, 5, previous=prev, restarts=0, gtol=1e-9)
+    explicit = optimize_sparse(2, 3, 5, previous=prev, starts=[], gtol=1e-9)
+    assert [h["start"] for h in alone.history] == [0]
+    assert alone.value == explicit.value and alone.evaluations == explicit.evaluations
+    assert PUBLISHED_MAXCUT_D3[4] <= alone.value < PUBLISHED_MAXCUT_D3[4] + 1e-4  # arXiv:2503.12789, Table 1
+    more = optimize_sparse(2, 3, 5, previous=prev, restarts=1, gtol=1e-9)
+    assert [h["start"] for h in more.history] == [0, 1, 2]
+    cold = optimize_sparse(2, 3, 3, restarts=0, gtol=1e-9)  # no warm start: the ramp is the start
+    assert [h["start"] for h in cold.history] == [0]
+
+
 # ----------------------------------------------------------------------------- universality
 @pytest.mark.parametrize("q", [2, 3, 4])
 @pytest.mark.parametrize("p", [1, 2, 3])

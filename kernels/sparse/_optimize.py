@@ -93,9 +93,11 @@ def optimize_sparse(
     Starts (deterministic for fixed inputs and ``seed``): the explicit ``starts``
     list of (gamma, beta) if given (then only those and ``previous``); else the
     ``previous`` optimum at depth p-1 warm-started by INTERP
-    (:func:`leadline.kernels.optimize.interpolate_angles`), a linear ramp with gamma
-    scaled by 1/sqrt(D) (common practice for QAOA on regular graphs), and
-    ``restarts`` seeded random points.  With ``previous_value`` (nu*_{p-1}) the padded
+    (:func:`leadline.kernels.optimize.interpolate_angles`), then, unless INTERP is the only start
+    asked for (``previous`` given and ``restarts`` = 0), a linear ramp with gamma scaled by
+    1/sqrt(D) (common practice for QAOA on regular graphs) and ``restarts`` seeded random points.
+    (Measured on the MaxCut D = 3 ladder p = 7..13: INTERP converged in 38-73 evaluations and gave
+    the optimum at every depth; the ramp took 52-267 evaluations and ended lower from p = 9 on.)  With ``previous_value`` (nu*_{p-1}) the padded
     start is added as a safety net, so nu*_p >= nu*_{p-1}.  The result is in the canonical form of
     :func:`leadline.kernels.optimize.canonical_angles` for xi = x^q (same symmetries).
     ``gradient_norm`` is the max-norm of the gradient at the optimum.
@@ -125,10 +127,12 @@ def optimize_sparse(
     elif previous is not None and len(previous[0]) == p:
         candidates.append((np.asarray(previous[0], float), np.asarray(previous[1], float)))
     if starts is None:
+        interp_alone = bool(candidates) and restarts == 0  # a warm start from ``previous`` and nothing else asked for
         if p == 1:
             candidates.insert(0, _grid_start(q, D, evaluate_kw))
         tt = (np.arange(p) + 0.5) / p
-        candidates.append((1.2 * scale * tt, 0.6 * (1.0 - tt)))  # linear ramp
+        if not interp_alone:
+            candidates.append((1.2 * scale * tt, 0.6 * (1.0 - tt)))  # linear ramp
         for _ in range(restarts):
             candidates.append((rng.uniform(0.1, 1.2, p) * scale, rng.uniform(0.05, 0.7, p)))
     # search box: gamma multiplies an integer count, so V is 2 pi periodic in each g_t; beyond
