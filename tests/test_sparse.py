@@ -321,7 +321,6 @@ def test_maxcut_3regular_optimizer_reaches_the_published_optimum_from_interp(p):
     assert t <= res.value < t + 1e-4, (p, res.value, t)
 
 
-
 def test_interp_alone_when_no_restarts_are_asked_for():
     """A warm-started depth with restarts = 0 (the ladder's default past p = 6) runs INTERP only: the
     linear ramp used to run too and cost 2-4x the INTERP run while ending lower from p = 9 on (the

@@ -520,8 +520,7 @@ def test_time_left_scales_bath_and_sparse_depths_by_their_own_cost_model():
 def test_status_of_a_bath_depth_before_its_first_saved_evaluation_uses_the_live_figure():
     """A bath depth whose first batch of evaluations is not yet written: its seconds per evaluation
     come from the optimizer's live progress attribute (was shown as "0.000 CPU s per evaluation"),
-    and with no figure at all the status line leaves the figure out (common practice: show what
-    is known, nothing invented)."""
+    and with no figure at all the status line leaves the figure out."""
     from leadline.storage.reader import _running_info
 
     live = {"bath_progress": {"value": 0.41, "error_estimate": 1e-7, "gradient_norm": 1e-3,
@@ -533,7 +532,8 @@ def test_status_of_a_bath_depth_before_its_first_saved_evaluation_uses_the_live_
     from leadline.jobs.commands.sweep import status_text
 
     def text(running):
-        return status_text({"name": "s", "path": "s.zarr", "depths": (1, 3), "lock": None, "complete": False, "estimated_seconds_left": None,
+        return status_text({"name": "s", "path": "s.zarr", "depths": (1, 3), "lock": None, "complete": False,
+                            "estimated_seconds_left": None,
                             "ensembles": [{"label": "sk", "done": [], "todo": [3], "running": running}]})
 
     assert "0.250 CPU s per evaluation" in text(info)

@@ -97,8 +97,9 @@ def optimize_sparse(
     asked for (``previous`` given and ``restarts`` = 0), a linear ramp with gamma scaled by
     1/sqrt(D) (common practice for QAOA on regular graphs) and ``restarts`` seeded random points.
     (Measured on the MaxCut D = 3 ladder p = 7..13: INTERP converged in 38-73 evaluations and gave
-    the optimum at every depth; the ramp took 52-267 evaluations and ended lower from p = 9 on.)  With ``previous_value`` (nu*_{p-1}) the padded
-    start is added as a safety net, so nu*_p >= nu*_{p-1}.  The result is in the canonical form of
+    the optimum at every depth; the ramp took 52-267 evaluations and ended lower from p = 9 on.)
+    With ``previous_value`` (nu*_{p-1}) the padded start is added as a safety net, so
+    nu*_p >= nu*_{p-1}.  The result is in the canonical form of
     :func:`leadline.kernels.optimize.canonical_angles` for xi = x^q (same symmetries).
     ``gradient_norm`` is the max-norm of the gradient at the optimum.
 
