@@ -91,6 +91,7 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
 
     t0 = time.perf_counter()
     first, previous, previous_value = ladder_start(initial, depth)
+    earlier = None  # the optimum of p - 2 once the ladder has made it (the extrapolated start)
     ladder, result = [], None
     for p in range(first, depth + 1):
         callback = None
@@ -125,6 +126,7 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
 
     t0 = time.perf_counter()
     first, previous, previous_value = ladder_start(initial, depth)
+    earlier = None  # the optimum of p - 2 once the ladder has made it (the extrapolated start)
     ladder, result = [], None
     for p in range(first, depth + 1):
         callback = None
@@ -132,11 +134,12 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
             callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
         result = optimize_bath_depth(
             mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
-            restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol, maxiter=maxiter,
-            callback=callback,
+            earlier=earlier, restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol,
+            maxiter=maxiter, callback=callback,
         )
         ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
                        "evaluations": result.evaluations})
+        earlier = previous
         previous, previous_value = (result.gamma, result.beta), result.value
     return Ladder(result=result, ladder=ladder, wall_time=time.perf_counter() - t0)
 

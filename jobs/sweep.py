@@ -125,8 +125,13 @@ def _optimize_sparse(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor
     return result, CheckpointStats(seconds_in_passes=evaluations.seconds), evaluations
 
 
-def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value):
-    """A depth past exact reach: the bath optimizer, its evaluations checkpointed one by one."""
+def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, previous, previous_value,
+                   earlier=None):
+    """A depth past exact reach: the bath optimizer, its evaluations checkpointed one by one.
+
+    ``earlier``: the optimum of depth p-2 (the extrapolated start); a resumed sweep reads it from
+    the store, so the replay starts where the uninterrupted run did.
+    """
     from leadline.kernels.bath import optimize_bath_depth
 
     from .bath import CheckpointedEvaluations, bath_restarts
@@ -147,7 +152,7 @@ def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, 
     try:
         result = optimize_bath_depth(
             ens.mixture(), p, engine=ens.bath_engine(), run_map=evaluations, previous=previous,
-            previous_value=previous_value, restarts=bath_restarts(spec.restarts, previous is not None, p),
+            previous_value=previous_value, earlier=earlier, restarts=bath_restarts(spec.restarts, previous is not None, p),
             seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations, callback=live,
         )
     finally:
@@ -176,10 +181,11 @@ def run_study(
     """
     done_now = []
     for ens in spec.ensembles:
-        previous = previous_value = None
+        previous = previous_value = earlier = None
         for p in range(spec.pmin, spec.pmax + 1):
             stored = store.finished_depth(ens.label, p)
             if stored is not None:
+                earlier = previous
                 previous = (np.asarray(stored["gamma"], dtype=float), np.asarray(stored["beta"], dtype=float))
                 previous_value = float(stored["value"])
                 continue
@@ -187,9 +193,12 @@ def run_study(
             depth = store.depth(ens.label, p, plan)
             crash_point("depth-started")
             t0, c0 = time.perf_counter(), time.process_time()
-            optimizer = _optimize_bath if ens.method(p) == "bath" else OPTIMIZERS[ens.kind]
             # saved: the checkpointed evaluations of a bath or sparse depth (None: passes, dense)
-            result, stats, saved = optimizer(ens, spec, p, depth, executor, previous, previous_value)
+            if ens.method(p) == "bath":
+                result, stats, saved = _optimize_bath(ens, spec, p, depth, executor, previous, previous_value,
+                                                      earlier=earlier)
+            else:
+                result, stats, saved = OPTIMIZERS[ens.kind](ens, spec, p, depth, executor, previous, previous_value)
             bath = saved if ens.method(p) == "bath" else None
             session_s = time.perf_counter() - t0
             session_cpu_s = time.process_time() - c0
@@ -228,6 +237,7 @@ def run_study(
             record["plan"] = plan.to_json() if plan is not None else None
             record.setdefault("method", "exact")
             store.finish_depth(ens.label, p, record, timings)
+            earlier = previous
             previous = (result.gamma, result.beta)
             previous_value = float(result.value)
             line = {"label": ens.label, "p": p, "result": record, "timings": timings}

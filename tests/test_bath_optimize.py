@@ -185,6 +185,59 @@ def test_hybrid_search_stops_where_central_differences_do(monkeypatch):
     assert counts["hybrid"] < counts["central"], counts
 
 
+def test_stall_rule_stops_where_the_last_three_gradients_gained_less_than_tolerance_over_5():
+    from leadline.kernels.bath import stalled
+
+    tol = 1e-6
+    assert not stalled([0.5, 0.6, 0.6, 0.6], tol) and not stalled([0.6, 0.6, 0.6], tol)  # 3 gains need 4 values
+    assert stalled([0.5, 0.6, 0.6 + 1e-8, 0.6 + 2e-8, 0.6 + 1.5e-7], tol)  # 1.5e-7 over the last 3 < 2e-7
+    assert not stalled([0.5, 0.6, 0.6 + 1e-8, 0.6 + 2e-8, 0.6 + 2.5e-7], tol)
+    assert not stalled([0.6, 0.6, 0.6, 0.6 + 3e-7], tol)  # a late gain above tolerance / 5 keeps it going
+
+
+def test_search_stops_on_the_stall_rule(monkeypatch):
+    """BFGS from a scaled identity on the smooth function: with the rule off it takes many gradients to
+    the maximum; with the stall threshold raised above the gains (tolerance x 1e6) it stops on the rule
+    after 3 gradients past its first."""
+    from leadline.kernels.bath import _optimize, optimize_bath_depth
+
+    p = 6
+    out = {}
+    for fraction in (0.0, 1e6):
+        monkeypatch.setattr(_optimize, "STALL_FRACTION", fraction)
+        f = _Smooth(p)
+        start = (f.star[:p] + 0.02 * np.cos(np.arange(p)), f.star[p:] - 0.02 * np.sin(np.arange(p)))
+        out[fraction] = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f,
+                                            starts=[start], restarts=0, inverse_hessian=0.05 * np.eye(2 * p))
+    off, on = out[0.0], out[1e6]
+    assert not off.message.startswith("gain over") and off.gradients > 8 and abs(off.value) < 1e-8
+    assert on.message.startswith("gain over the last 3 gradients below tolerance") and on.converged
+    assert on.gradients == 4 or on.gradients == 5  # 4 values span 3 gains (+ the central confirmation)
+
+
+def test_extrapolated_start_is_the_linear_trend_of_the_last_two_optima():
+    """2 I(x_{p-1}) - I(I(x_{p-2})) with INTERP I (Zhou et al., Phys. Rev. X 10, 021067 (2020), eq. B1):
+    schedules that are samples of one linear ramp at every depth are continued exactly, and the start
+    is used only from depth 5 with both optima of the right depths."""
+    from leadline.kernels.mixture import parse_mixture as mix_of
+    from leadline.kernels.optimize import EXTRAPOLATE_FROM, extrapolated_start, interpolate_angles, start_candidates
+
+    x3, x4 = np.array([0.2, 0.3, 0.4]), np.array([0.1, 0.25, 0.35, 0.45])
+    g, b = extrapolated_start((x4, x4[::-1]), (x3, x3[::-1]))
+    i4 = interpolate_angles(x4, x4[::-1])
+    ii3 = interpolate_angles(*interpolate_angles(x3, x3[::-1]))
+    assert np.allclose(g, i4[0] + (i4[0] - ii3[0])) and np.allclose(b, i4[1] + (i4[1] - ii3[1]))
+    # the optimum at p - 1 equal to INTERP of p - 2's: no correction, the start is INTERP
+    x4i = interpolate_angles(x3, x3)[0]
+    assert np.allclose(extrapolated_start((x4i, x4i), (x3, x3))[0], interpolate_angles(x4i, x4i)[0])
+    m = mix_of("2:0.5")
+    kinds = [c[2] for c in start_candidates(m, 5, previous=(x4, x4), earlier=(x3, x3), restarts=0)]
+    assert EXTRAPOLATE_FROM == 5 and kinds == ["extrapolated"]
+    x2, x3b = np.array([0.2, 0.3]), np.array([0.2, 0.3, 0.4])
+    assert [c[2] for c in start_candidates(m, 4, previous=(x3b, x3b), earlier=(x2, x2), restarts=0)] == ["interp"]
+    assert [c[2] for c in start_candidates(m, 5, previous=(x4, x4), restarts=0)] == ["interp"]
+
+
 def test_carried_inverse_hessian_is_padded_mode_by_mode():
     from leadline.kernels.bath import pad_inverse_hessian
 
@@ -230,7 +283,7 @@ name = "bath-kill"
 store = "{store}"
 
 [depths]
-pmax = 3
+pmax = {pmax}
 
 [optimizer]
 restarts = 0
@@ -244,7 +297,7 @@ interval-s = 0
 [[ensemble]]
 label = "sk"
 xi = "2:0.5"
-bath-from = 3
+bath-from = {pmax}
 bath-tolerance = 1e-6
 """
 
@@ -263,17 +316,20 @@ def _depths(store: Path) -> dict:
     return {d["p"]: d for d in open_study(store).depths("sk")}
 
 
-def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path):
+@pytest.mark.parametrize("pmax", [3, 5])
+def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path, pmax):
+    """At p = 5 the bath depth starts from the extrapolated start, so the resumed run must read the
+    optima of p = 3 and 4 back from the store to replay it."""
     import os
     import time
 
     (tmp_path / "ref").mkdir()
-    (tmp_path / "ref" / "s.toml").write_text(SPEC.format(store="ref.zarr"))
+    (tmp_path / "ref" / "s.toml").write_text(SPEC.format(store="ref.zarr", pmax=pmax))
     ref = _run(["sweep", str(tmp_path / "ref" / "s.toml"), "--quiet"])
     assert ref.returncode == 0, ref.stderr
-    assert "(bath)" in ref.stdout.splitlines()[2] and "+-" in ref.stdout.splitlines()[2]
+    assert "(bath)" in ref.stdout.splitlines()[pmax - 1] and "+-" in ref.stdout.splitlines()[pmax - 1]
 
-    (tmp_path / "s.toml").write_text(SPEC.format(store="k.zarr"))
+    (tmp_path / "s.toml").write_text(SPEC.format(store="k.zarr", pmax=pmax))
     store, hold = tmp_path / "k.zarr", tmp_path / "held"
     env = dict(os.environ, LEADLINE_HOLD_AT="bath-evaluations-cached:4", LEADLINE_HOLD_FILE=str(hold))
     env.pop("LEADLINE_CRASH_AT", None)
@@ -288,7 +344,7 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path):
         status = _run(["status", str(store)])
         assert status.returncode == 0, status.stderr
         line = next(x for x in status.stdout.splitlines() if x.strip().startswith("running"))
-        assert "p = 3 (bath)" in line and "best V so far = 0.4" in line and "+-" in line and "per evaluation" in line
+        assert f"p = {pmax} (bath)" in line and "best V so far = 0." in line and "+-" in line and "per evaluation" in line
         proc.send_signal(signal.SIGKILL)
         assert proc.wait(timeout=60) == -signal.SIGKILL
     finally:
@@ -300,13 +356,15 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path):
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
     (line,) = out["finished_now"]
-    assert line["p"] == 3 and line["timings"]["bath_evaluations_reused"] > 10
+    assert line["p"] == pmax and line["timings"]["bath_evaluations_reused"] > 10
     got, want = _depths(store), _depths(tmp_path / "ref" / "ref.zarr")
-    for p in (1, 2, 3):
+    history = open_study(store).depth("sk", pmax)["result"]["history"]
+    assert history[0]["kind"] == ("extrapolated" if pmax >= 5 else "interp")
+    for p in range(1, pmax + 1):
         assert got[p]["value"] == want[p]["value"]
         assert got[p]["gamma"] == want[p]["gamma"] and got[p]["beta"] == want[p]["beta"]
-    assert got[3]["method"] == "bath" and got[3]["error_estimate"] == want[3]["error_estimate"] > 0
-    assert got[2]["method"] == "exact" and got[2]["error_estimate"] is None
+    assert got[pmax]["method"] == "bath" and got[pmax]["error_estimate"] == want[pmax]["error_estimate"] > 0
+    assert got[pmax - 1]["method"] == "exact" and got[pmax - 1]["error_estimate"] is None
     table = _run(["table", str(store)]).stdout
     assert "| exact" in table and "bath +- " in table
 

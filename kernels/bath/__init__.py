@@ -48,6 +48,7 @@ _WHERE = {
     "fourier_basis": "_optimize",
     "preconditioner": "_optimize",
     "pad_inverse_hessian": "_optimize",
+    "stalled": "_optimize",
     "search_settings": "_optimize",
     "ParityMPS": "_parity",
 }

@@ -27,19 +27,22 @@ What makes a depth cheap (each measured, docs/bath.md):
   the forward points are reused) and used from then on, so the stop is decided as accurately
   as with central differences throughout.
 * **A preconditioner.**  BFGS starts from the exact Hessian (kernels.exact reverse-mode
-  gradient, forward differences) at depth p0 = min(p, 13) of the start schedule resampled to
-  p0 layers, in the same Fourier coordinates, padded to p modes (mode k has the same shape at
-  every depth); its eigenvalues are made positive.  From INTERP this takes the optimizer to
-  the optimum in a handful of gradients instead of the dozens from an identity start.
+  gradient, forward differences) at depth p0 = min(p, 13) (15 from p = 20) of the start
+  schedule resampled to p0 layers, in the same Fourier coordinates, padded to p modes (mode k
+  has the same shape at every depth); its eigenvalues are made positive.  From INTERP this
+  takes the optimizer to the optimum in a handful of gradients instead of the dozens from an
+  identity start.
 * **Line searches on values.**  A trial step costs one evaluation, not a gradient: the step
   along the quasi-Newton direction is accepted (or refined by a parabola through the values)
   before the next gradient is taken.
 
 Stopping: when the predicted gain of the next quasi-Newton step, g^T H g / 2, is below
-tolerance / 10, when the largest gradient component is below ``gtol``, or when a line search
-finds no gain.  The report gives V_p* with the final ladder's estimate e, the gradient norm
-of the search's last gradient and its noise bound e_c / h (e_c: the value error estimate of
-the search's runs; a bound that assumes the truncation error were not smooth in the angles).
+tolerance / 10, when the last 3 gradients together gained less than tolerance / 5 (the gradient's
+noise keeps the predicted gain up in the flat tail of deep depths), when the largest gradient
+component is below ``gtol``, or when a line search finds no gain.  The report gives V_p* with
+the final ladder's estimate e, the gradient norm of the search's last gradient and its noise
+bound e_c / h (e_c: the value error estimate of the search's runs; a bound that assumes the
+truncation error were not smooth in the angles).
 
 Determinism: the evaluations are pure functions of (mixture, angles, engine settings), the
 preconditioner is computed in process with one BLAS thread, the optimizer is deterministic,
@@ -61,7 +64,7 @@ from ..mixture import Mixture
 from ..optimize import canonical_angles, start_candidates
 
 __all__ = ["BathOptimization", "optimize_bath_depth", "bath_point", "fourier_basis", "default_stages",
-           "difference_step", "search_settings", "preconditioner", "pad_inverse_hessian"]
+           "difference_step", "stalled", "search_settings", "preconditioner", "pad_inverse_hessian"]
 
 
 @dataclass
@@ -139,11 +142,28 @@ STEP = 1e-4
 DIFFERENCES = "hybrid"
 #: the search runs at this fraction of the tolerance as its fixed cut-off
 SEARCH_CUTOFF = 0.1
+#: stop when the last STALL_GRADIENTS gradients together gained less than STALL_FRACTION x tolerance: the
+#: tail of a deep depth gains 1e-8 .. 1e-7 per gradient while the predicted gain of the noisy gradient
+#: stays above tolerance / 10 (measured on the SK and q = 3 sweeps' records at p = 17..22: 23% fewer
+#: gradients, the value reached at most 8e-7 below the longer run's, docs/bath.md "Stopping")
+STALL_GRADIENTS = 3
+STALL_FRACTION = 0.2
 #: depth of the exact Hessian used as the preconditioner (resampled schedule, padded to p); 13 saves
 #: gradients over 10 at p >= 13 for about 7 CPU s (docs/bath.md, "A cheaper depth")
 HESSIAN_DEPTH = 13
+#: from depth DEEP_HESSIAN_FROM on the exact Hessian is taken at DEEP_HESSIAN_DEPTH (measured at SK p = 20
+#: and 21: 1.30x and 1.36x less CPU per depth than at 13; at p = 17 it cost more than it saved,
+#: docs/bath.md "What a deeper preconditioner saves")
+DEEP_HESSIAN_FROM = 20
+DEEP_HESSIAN_DEPTH = 15
 #: differences of the exact gradient that give that Hessian: "forward" (2 p0 + 1 gradients) or "central" (4 p0)
 HESSIAN_DIFFERENCES = "forward"
+
+
+def stalled(values, tolerance: float) -> bool:
+    """True when the values at the last STALL_GRADIENTS + 1 gradients rose by less than STALL_FRACTION x tolerance."""
+    k = STALL_GRADIENTS
+    return len(values) > k and values[-1] - values[-1 - k] < STALL_FRACTION * tolerance
 
 
 def difference_step(error_estimate: float | None = None) -> float:
@@ -196,13 +216,18 @@ def _resample(x, p0: int) -> np.ndarray:
     return np.interp((np.arange(p0) + 0.5) / p0, t, x)
 
 
+def hessian_depth(p: int) -> int:
+    """Depth of the preconditioner's exact Hessian for a depth-p search (before min(p, .))."""
+    return DEEP_HESSIAN_DEPTH if p >= DEEP_HESSIAN_FROM else HESSIAN_DEPTH
+
+
 def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int | None = None) -> np.ndarray:
     """Inverse of a positive-definite model of -Hessian(V) in the Fourier coordinates of depth p.
 
     The exact Hessian (forward differences of the exact reverse-mode gradient, step 1e-4:
     2 p0 + 1 exact gradients; central ones with ``HESSIAN_DIFFERENCES = "central"``) at
-    depth p0 = min(p, depth) of the schedule resampled to p0 layers, in p0's Fourier
-    coordinates; modes k <= p0 keep their entries, higher modes get the diagonal of mode p0
+    depth p0 = min(p, depth) (default :func:`hessian_depth`) of the schedule resampled to p0
+    layers, in p0's Fourier coordinates; modes k <= p0 keep their entries, higher modes get the diagonal of mode p0
     (mode k has the same shape at every depth); eigenvalues below 1e-2 of the largest are
     raised to it.  Returns the (2q, 2q) block of the first q modes per schedule.
     """
@@ -210,7 +235,7 @@ def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int | None = No
     from ._estimate import _one_thread
 
     p = len(gamma)
-    p0 = min(p, HESSIAN_DEPTH if depth is None else depth)
+    p0 = min(p, hessian_depth(p) if depth is None else depth)
     g0, b0 = _resample(gamma, p0), _resample(beta, p0)
     S, C = fourier_basis(p0, p0)
     h = 1e-4
@@ -387,6 +412,12 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
                 continue
             message, converged = "predicted gain of the next step below tolerance / 10", True
             break
+        if stalled(record["values"], tolerance):
+            if confirm():
+                continue
+            message = f"gain over the last {STALL_GRADIENTS} gradients below tolerance / {1 / STALL_FRACTION:g}"
+            converged = True
+            break
         # line search on values: the full step, refined by the parabola through V(0), V'(0), V(1)
         (v1, e1), = search.values([x + d])
         steps = [(1.0, v1, e1)]
@@ -440,6 +471,7 @@ def optimize_bath_depth(
     run_map: Callable | None = None,
     previous: tuple | None = None,
     previous_value: float | None = None,
+    earlier: tuple | None = None,
     starts: list | None = None,
     restarts: int | None = 0,
     seed: int = 0,
@@ -458,12 +490,14 @@ def optimize_bath_depth(
         executor's ``run_map``; default: in this process)
     previous, previous_value, starts, restarts, seed : as for the exact optimizer
         (INTERP warm start from depth p-1; default here: no extra starts)
+    earlier : the optimum (gamma, beta) of depth p-2: with it the warm start is the extrapolated
+        start (:func:`leadline.kernels.optimize.extrapolated_start`, from p = 5), not INTERP
     stages : Fourier coefficients per schedule of each stage (default :func:`default_stages`)
     gtol : stop when the largest gradient component is below gtol (the search also stops when
         the predicted gain of its next step is below tolerance / 10)
     maxiter : iteration cap (quasi-Newton iterations) of each stage
     inverse_hessian : (2p, 2p) starting inverse Hessian of -V in Fourier coordinates (default:
-        :func:`preconditioner`, the exact Hessian at depth <= 10 padded to p)
+        :func:`preconditioner`, the exact Hessian at depth min(p, hessian_depth(p)) padded to p)
     callback : called after each gradient with a dict (evaluation, evaluations, value,
         error_estimate, best_value, best_error_estimate (of the stage), gradient_norm, evaluation_s)
     """
@@ -475,7 +509,8 @@ def optimize_bath_depth(
     stages = tuple(default_stages(p) if stages is None else stages)
     if not stages or any(not 1 <= q <= p for q in stages):
         raise ValueError(f"every stage needs 1..p = {p} coefficients, got {stages}")
-    candidates = start_candidates(mixture, p, previous=previous, starts=starts, restarts=restarts, seed=seed)
+    candidates = start_candidates(mixture, p, previous=previous, starts=starts, restarts=restarts, seed=seed,
+                                  earlier=earlier)
     if previous is not None and previous_value is not None and len(previous[0]) == p - 1:
         # the padded start reproduces V*_{p-1}: tried when no start beats it (as the exact optimizer)
         padded = (np.concatenate([previous[0], [0.0]]), np.concatenate([previous[1], [0.0]]), "padded")
