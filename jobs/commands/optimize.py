@@ -153,7 +153,7 @@ def _optimize_bath(mix, depth, initial, settings, engine, *, restarts, seed, gra
                    f"p = {depth}, {result.evaluation_seconds:.3f} CPU s each), {run.wall_time:.1f} s")
     text = optimum_report(header, result, evaluations, run.ladder, output)
     text = text.replace(f"gradient norm  = {result.gradient_norm:.1e}",
-                        f"gradient norm  = {result.gradient_norm:.1e} (noise level {result.gradient_noise:.1e})")
+                        f"gradient norm  = {result.gradient_norm:.1e} (noise {result.gradient_noise:.1e})")
     typer.echo(text)
 
 

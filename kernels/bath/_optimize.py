@@ -40,8 +40,8 @@ Stopping: when the predicted gain of the next quasi-Newton step, g^T H g / 2, is
 tolerance / 10, when the last 3 gradients together gained less than tolerance / 5 (the gradient's
 noise keeps the predicted gain up in the flat tail of deep depths), when the largest gradient
 component is below ``gtol``, or when a line search finds no gain.  The report gives V_p* with
-the final ladder's estimate e, the gradient norm of the search's last gradient and its noise
-bound e_c / h (e_c: the value error estimate of the search's runs; a bound that assumes the
+the final ladder's estimate e, the gradient norm of the search's last gradient and its noise,
+a bound e_c / h (e_c: the value error estimate of the search's runs; a bound that assumes the
 truncation error were not smooth in the angles).
 
 Determinism: the evaluations are pure functions of (mixture, angles, engine settings), the
