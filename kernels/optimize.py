@@ -164,7 +164,7 @@ def interpolate_angles(gamma, beta) -> tuple[np.ndarray, np.ndarray]:
 
 
 #: the extrapolated start is used from this depth on (below it INTERP alone was closer to the optimum:
-#: SK and pure q = 3 at p = 3, 4; from p = 5 on closer, docs/bath.md "An extrapolated start")
+#: SK and pure q = 3 at p = 3, 4; from p = 5 on closer, docs/bath.md "Fewer gradients per deep depth")
 EXTRAPOLATE_FROM = 5
 
 
@@ -173,8 +173,8 @@ def extrapolated_start(previous, earlier) -> tuple[np.ndarray, np.ndarray]:
 
     INTERP of the p-1 optimum, plus INTERP of how far that optimum moved from its own INTERP start:
     x = I(x*_{p-1}) + I(x*_{p-1} - I(x*_{p-2})) = 2 I(x*_{p-1}) - I(I(x*_{p-2})) (I is linear), a linear
-    extrapolation of the schedules in depth.  Measured 6-10x closer to the optimum than INTERP at
-    p = 8..22 (SK and pure q = 3, docs/bath.md).
+    extrapolation of the schedules in depth.  Measured 4-10x closer to the optimum than INTERP at
+    p = 10..23 (SK and pure q = 3, docs/bath.md).
     """
     g1, b1 = interpolate_angles(*previous)
     g2, b2 = interpolate_angles(*interpolate_angles(*earlier))

@@ -145,7 +145,7 @@ SEARCH_CUTOFF = 0.1
 #: stop when the last STALL_GRADIENTS gradients together gained less than STALL_FRACTION x tolerance: the
 #: tail of a deep depth gains 1e-8 .. 1e-7 per gradient while the predicted gain of the noisy gradient
 #: stays above tolerance / 10 (measured on the SK and q = 3 sweeps' records at p = 17..22: 23% fewer
-#: gradients, the value reached at most 8e-7 below the longer run's, docs/bath.md "Stopping")
+#: gradients, the value reached at most 1e-6 below the longer run's, docs/bath.md "Fewer gradients per deep depth")
 STALL_GRADIENTS = 3
 STALL_FRACTION = 0.2
 #: depth of the exact Hessian used as the preconditioner (resampled schedule, padded to p); 13 saves
@@ -153,7 +153,7 @@ STALL_FRACTION = 0.2
 HESSIAN_DEPTH = 13
 #: from depth DEEP_HESSIAN_FROM on the exact Hessian is taken at DEEP_HESSIAN_DEPTH (measured at SK p = 20
 #: and 21: 1.30x and 1.36x less CPU per depth than at 13; at p = 17 it cost more than it saved,
-#: docs/bath.md "What a deeper preconditioner saves")
+#: docs/bath.md "Fewer gradients per deep depth")
 DEEP_HESSIAN_FROM = 20
 DEEP_HESSIAN_DEPTH = 15
 #: differences of the exact gradient that give that Hessian: "forward" (2 p0 + 1 gradients) or "central" (4 p0)
