@@ -197,7 +197,7 @@ def test_stall_rule_stops_where_the_last_three_gradients_gained_less_than_tolera
 
 def test_search_stops_on_the_stall_rule(monkeypatch):
     """BFGS from a scaled identity on the smooth function: with the rule off it takes many gradients to
-    the maximum; with the stall threshold raised above the gains (tolerance x 1e6) it stops on the rule
+    the maximum; with the stall threshold raised above the gains (tolerance x 1e6) it makes the stall stop
     after 3 gradients past its first."""
     from leadline.kernels.bath import _optimize, optimize_bath_depth
 
