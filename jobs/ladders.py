@@ -133,8 +133,8 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
         if on_evaluation is not None:
             callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
         result = optimize_bath_depth(
-            mix, p, engine=engine, run_map=run_map, previous=previous, previous_value=previous_value,
-            earlier=earlier, restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol,
+            mix, p, engine=engine, run_map=run_map, hessian_map=run_map, previous=previous,
+            previous_value=previous_value, earlier=earlier, restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol,
             maxiter=maxiter, callback=callback,
         )
         ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,

@@ -152,7 +152,8 @@ def _optimize_bath(ens: EnsembleSpec, spec: StudySpec, p: int, depth, executor, 
     try:
         result = optimize_bath_depth(
             ens.mixture(), p, engine=ens.bath_engine(), run_map=evaluations, previous=previous,
-            previous_value=previous_value, earlier=earlier, restarts=bath_restarts(spec.restarts, previous is not None, p),
+            previous_value=previous_value, earlier=earlier, hessian_map=getattr(executor, "run_map", None),
+            restarts=bath_restarts(spec.restarts, previous is not None, p),
             seed=spec.seed, gtol=spec.gradient_tol, maxiter=spec.max_iterations, callback=live,
         )
     finally:

@@ -108,6 +108,15 @@ def test_preconditioner_is_positive_definite_and_padded():
     # modes beyond depth 4 are uncoupled: the padded block is diagonal
     inv = np.linalg.inv(H)
     assert np.allclose(inv[4:14, 4:14], np.diag(np.diag(inv[4:14, 4:14])), atol=1e-9)
+    # its exact gradients are 2 x 4 + 1 independent tasks of one map (an executor's on a cluster)
+    calls = []
+
+    def run_map(func, tasks):
+        tasks = list(tasks)
+        calls.append(len(tasks))
+        return [func(t) for t in reversed(tasks)][::-1]  # computed in another order, returned in task order
+
+    assert np.array_equal(preconditioner(mix, g, b, 14, depth=4, run_map=run_map), H) and calls == [9]
 
 
 class _Smooth:
@@ -256,7 +265,8 @@ def test_carried_inverse_hessian_is_padded_mode_by_mode():
 
 
 def test_same_bits_on_one_and_two_workers():
-    """One bath optimization step whose evaluations run on a LocalCluster of 1 and of 2 workers."""
+    """One bath optimization step whose evaluations and preconditioner gradients run on a LocalCluster
+    of 1 and of 2 workers, and the same in this process: the same bits."""
     from leadline.cluster import ComputeSettings
     from leadline.cluster.executor import start_local_cluster
     from leadline.kernels.bath import optimize_bath_depth
@@ -268,9 +278,12 @@ def test_same_bits_on_one_and_two_workers():
     for workers in (1, 2):
         with start_local_cluster(ComputeSettings(mode="local", workers=workers).resolved()) as ex:
             assert len(ex.client.nthreads()) == workers or ex.client.wait_for_workers(workers) is None
-            r = optimize_bath_depth(mix, 2, engine=engine, run_map=ex.run_map, previous=previous, maxiter=2)
+            r = optimize_bath_depth(mix, 2, engine=engine, run_map=ex.run_map, hessian_map=ex.run_map,
+                                    previous=previous, maxiter=2)
         results.append(r)
-    one, two = results
+    results.append(optimize_bath_depth(mix, 2, engine=engine, previous=previous, maxiter=2))
+    one, two, here = results
+    assert here.value == one.value and here.gamma.tobytes() == one.gamma.tobytes()
     assert one.value == two.value and one.error_estimate == two.error_estimate
     assert one.gamma.tobytes() == two.gamma.tobytes() and one.beta.tobytes() == two.beta.tobytes()
     assert one.evaluations == two.evaluations > 9

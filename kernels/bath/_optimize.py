@@ -64,7 +64,8 @@ from ..mixture import Mixture
 from ..optimize import canonical_angles, start_candidates
 
 __all__ = ["BathOptimization", "optimize_bath_depth", "bath_point", "fourier_basis", "default_stages",
-           "difference_step", "stalled", "search_settings", "preconditioner", "pad_inverse_hessian"]
+           "difference_step", "stalled", "search_settings", "preconditioner", "pad_inverse_hessian",
+           "exact_fourier_gradient", "hessian_depth"]
 
 
 @dataclass
@@ -221,40 +222,56 @@ def hessian_depth(p: int) -> int:
     return DEEP_HESSIAN_DEPTH if p >= DEEP_HESSIAN_FROM else HESSIAN_DEPTH
 
 
-def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int | None = None) -> np.ndarray:
+def exact_fourier_gradient(task) -> np.ndarray:
+    """The exact gradient of V_p0 in p0's Fourier coordinates at displacement e of (g0, b0) (one task).
+
+    ``task`` = (mixture, g0, b0, e); computed with one BLAS thread, so the bits do not depend on
+    where it runs (a module-level function of plain data, shipped to a Dask worker as is).
+    """
+    from ..exact import evaluate
+    from ._estimate import _one_thread
+
+    mixture, g0, b0, e = task
+    p0 = len(g0)
+    S, C = fourier_basis(p0, p0)
+    with _one_thread():
+        ev = evaluate(mixture, g0 + S @ e[:p0], b0 + C @ e[p0:], gradient=True)
+        return np.concatenate([S.T @ ev.gradient["gamma"], C.T @ ev.gradient["beta"]])
+
+
+def preconditioner(mixture: Mixture, gamma, beta, q: int, depth: int | None = None,
+                   run_map: Callable | None = None) -> np.ndarray:
     """Inverse of a positive-definite model of -Hessian(V) in the Fourier coordinates of depth p.
 
     The exact Hessian (forward differences of the exact reverse-mode gradient, step 1e-4:
     2 p0 + 1 exact gradients; central ones with ``HESSIAN_DIFFERENCES = "central"``) at
     depth p0 = min(p, depth) (default :func:`hessian_depth`) of the schedule resampled to p0
-    layers, in p0's Fourier coordinates; modes k <= p0 keep their entries, higher modes get the diagonal of mode p0
-    (mode k has the same shape at every depth); eigenvalues below 1e-2 of the largest are
-    raised to it.  Returns the (2q, 2q) block of the first q modes per schedule.
+    layers, in p0's Fourier coordinates; modes k <= p0 keep their entries, higher modes get the
+    diagonal of mode p0 (mode k has the same shape at every depth); eigenvalues below 1e-2 of the
+    largest are raised to it.  Returns the (2q, 2q) block of the first q modes per schedule.
+    The exact gradients are independent tasks (:func:`exact_fourier_gradient`), mapped with
+    ``run_map`` (an executor's, so a cluster computes them side by side; default: in this process).
     """
-    from ..exact import evaluate
-    from ._estimate import _one_thread
-
     p = len(gamma)
     p0 = min(p, hessian_depth(p) if depth is None else depth)
     g0, b0 = _resample(gamma, p0), _resample(beta, p0)
-    S, C = fourier_basis(p0, p0)
     h = 1e-4
     n0 = 2 * p0
-
-    def grad_at(e):
-        ev = evaluate(mixture, g0 + S @ e[:p0], b0 + C @ e[p0:], gradient=True)
-        return np.concatenate([S.T @ ev.gradient["gamma"], C.T @ ev.gradient["beta"]])
-
-    H0 = np.zeros((n0, n0))
-    with _one_thread():
-        centre = grad_at(np.zeros(n0)) if HESSIAN_DIFFERENCES == "forward" else None
-        for j in range(n0):
+    steps = []  # displacements whose exact gradients are needed, the centre first for forward differences
+    if HESSIAN_DIFFERENCES == "forward":
+        steps.append(np.zeros(n0))
+    for j in range(n0):
+        for sign in ((1.0,) if HESSIAN_DIFFERENCES == "forward" else (1.0, -1.0)):
             e = np.zeros(n0)
-            e[j] = h
-            if centre is not None:  # the exact gradient has no noise: forward differences suffice
-                H0[:, j] = -(grad_at(e) - centre) / h
-            else:
-                H0[:, j] = -(grad_at(e) - grad_at(-e)) / (2 * h)
+            e[j] = sign * h
+            steps.append(e)
+    grads = (run_map or _local_map)(exact_fourier_gradient, [(mixture, g0, b0, e) for e in steps])
+    H0 = np.zeros((n0, n0))
+    for j in range(n0):
+        if HESSIAN_DIFFERENCES == "forward":  # the exact gradient has no noise: forward differences suffice
+            H0[:, j] = -(grads[1 + j] - grads[0]) / h
+        else:
+            H0[:, j] = -(grads[2 * j] - grads[2 * j + 1]) / (2 * h)
     H0 = 0.5 * (H0 + H0.T)
     w, U = np.linalg.eigh(H0)
     w = np.maximum(np.abs(w), 1e-2 * np.max(np.abs(w)))
@@ -368,7 +385,8 @@ class _Search:
         return value, error, grad
 
 
-def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, record, hessian=None):
+def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, record, hessian=None,
+           hessian_map=None):
     """One preconditioned BFGS run on q Fourier coefficients per schedule, from angles (g0, b0).
 
     Maximizes V_p at the search truncation; the final point is evaluated to the tolerance.
@@ -376,7 +394,7 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
     settings = search_settings(engine)
     tolerance = float(engine.get("tolerance", 1e-6))
     search = _Search(mixture, p, q, g0, b0, settings, run_map, callback, record)
-    Hinv = preconditioner(mixture, g0, b0, q) if hessian is None else np.array(hessian, float)
+    Hinv = preconditioner(mixture, g0, b0, q, run_map=hessian_map) if hessian is None else np.array(hessian, float)
     n = 2 * q
     x = np.zeros(n)
     # hybrid: forward differences while far from the optimum, central ones before any stop and after
@@ -480,6 +498,7 @@ def optimize_bath_depth(
     maxiter: int = 200,
     callback: Callable[[dict], None] | None = None,
     inverse_hessian=None,
+    hessian_map: Callable | None = None,
 ) -> BathOptimization:
     """Maximize V_p over the angles with the bath engine (finite differences, noise-aware).
 
@@ -498,6 +517,8 @@ def optimize_bath_depth(
     maxiter : iteration cap (quasi-Newton iterations) of each stage
     inverse_hessian : (2p, 2p) starting inverse Hessian of -V in Fourier coordinates (default:
         :func:`preconditioner`, the exact Hessian at depth min(p, hessian_depth(p)) padded to p)
+    hessian_map : ``run_map`` for the preconditioner's exact gradients (an executor's ``run_map``,
+        not a checkpointing one: they are not bath evaluations; default: in this process)
     callback : called after each gradient with a dict (evaluation, evaluations, value,
         error_estimate, best_value, best_error_estimate (of the stage), gradient_norm, evaluation_s)
     """
@@ -526,7 +547,8 @@ def optimize_bath_depth(
         for q in stages:
             record = {"start": index, "kind": kind, "coefficients": q, "values": []}
             out = _stage(mixture, p, q, g, b, engine=engine, run_map=run_map, gtol=gtol, maxiter=maxiter,
-                         callback=callback, record=record, hessian=inverse_hessian if q == p else None)
+                         callback=callback, record=record, hessian=inverse_hessian if q == p else None,
+                         hessian_map=hessian_map)
             g, b = out["gamma"], out["beta"]
             for key in ("evaluations", "gradients", "seconds"):
                 totals[key] += out[key]
