@@ -78,7 +78,8 @@ def env_with(**extra) -> dict:
     return env
 
 
-def run(args, env=None, cwd=None, timeout=180):
+# generous: a local Dask cluster on a machine starved of CPU took longer than 180 s once (passes in ~1 min idle)
+def run(args, env=None, cwd=None, timeout=400):
     return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, env=env or env_with(), cwd=cwd,
                           timeout=timeout)
 
