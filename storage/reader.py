@@ -146,6 +146,12 @@ class StudyReader:
                         pass_rates.append((t["pass_compute_s"], paths))
                 elif pmin <= p <= pmax:
                     running = _running_info(p, self._depth_group(label, p), attrs, writing)
+                    desc = next((e for e in self.spec.get("ensembles", []) if e.get("label") == label), {})
+                    bath_from = (desc.get("bath") or {}).get("from")
+                    if (running["bath"] is None and desc.get("kind", "dense") == "dense" and bath_from is not None
+                            and p >= int(bath_from)):
+                        # a bath depth before its first saved evaluation (its preconditioner is computed first)
+                        running["bath"] = {"evaluations_saved": 0, "evaluation_cpu_s": None}
                     if running["pass_compute_s"] > 0 and running["paths"]:
                         pass_rates.append((running["pass_compute_s"], running["paths"]))
             done_ps = {d["p"] for d in done}

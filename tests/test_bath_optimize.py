@@ -382,6 +382,32 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path, pmax):
     assert "| exact" in table and "bath +- " in table
 
 
+def test_status_of_a_bath_depth_before_its_first_evaluation(tmp_path):
+    """Held right after the bath depth p = 3 started (before its preconditioner and first evaluation):
+    status names it a bath depth with no evaluation saved, not an exact depth with 0 passes."""
+    import os
+    import time
+
+    (tmp_path / "s.toml").write_text(SPEC.format(store="h.zarr", pmax=3))
+    store, hold = tmp_path / "h.zarr", tmp_path / "held"
+    env = dict(os.environ, LEADLINE_HOLD_AT="depth-started:3", LEADLINE_HOLD_FILE=str(hold))
+    env.pop("LEADLINE_CRASH_AT", None)
+    proc = subprocess.Popen([*LEADLINE, "sweep", str(tmp_path / "s.toml"), "--quiet"], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, env=env)
+    try:
+        deadline = time.monotonic() + 240
+        while not hold.exists():
+            assert proc.poll() is None and time.monotonic() < deadline
+            time.sleep(0.05)
+        status = _run(["status", str(store)])
+        assert status.returncode == 0, status.stderr
+        line = next(x for x in status.stdout.splitlines() if x.strip().startswith("running"))
+        assert "p = 3 (bath): 0 evaluations saved" in line and "passes" not in line, line
+    finally:
+        proc.kill()
+        proc.wait()
+
+
 # ------------------------------------------------------------------ bad input
 BAD_OPTIMIZE = {
     "exact option with bath": (["--method", "bath", "--memory-mib", "64"], "--memory-mib sets the chunk plan"),
