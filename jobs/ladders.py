@@ -91,7 +91,6 @@ def optimize_ladder(mix, depth: int, initial, *, run_pass, budget: int, restarts
 
     t0 = time.perf_counter()
     first, previous, previous_value = ladder_start(initial, depth)
-    earlier = None  # the optimum of p - 2 once the ladder has made it (the extrapolated start)
     ladder, result = [], None
     for p in range(first, depth + 1):
         callback = None
@@ -134,8 +133,8 @@ def bath_ladder(mix, depth: int, initial, *, run_map, engine: dict, restarts=Non
             callback = lambda info, p=p: on_evaluation(info, p)  # noqa: E731
         result = optimize_bath_depth(
             mix, p, engine=engine, run_map=run_map, hessian_map=run_map, previous=previous,
-            previous_value=previous_value, earlier=earlier, restarts=bath_restarts(restarts, previous is not None, p), seed=seed, gtol=gtol,
-            maxiter=maxiter, callback=callback,
+            previous_value=previous_value, earlier=earlier, restarts=bath_restarts(restarts, previous is not None, p),
+            seed=seed, gtol=gtol, maxiter=maxiter, callback=callback,
         )
         ladder.append({"p": p, "value": result.value, "error_estimate": result.error_estimate,
                        "evaluations": result.evaluations})

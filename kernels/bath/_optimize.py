@@ -45,7 +45,8 @@ a bound e_c / h (e_c: the value error estimate of the search's runs; a bound tha
 truncation error were not smooth in the angles).
 
 Determinism: the evaluations are pure functions of (mixture, angles, engine settings), the
-preconditioner is computed in process with one BLAS thread, the optimizer is deterministic,
+preconditioner's exact gradients are computed with one BLAS thread wherever they run (a map
+like the evaluations), the optimizer is deterministic,
 and ``run_map`` returns results in task order, so the same inputs give the same bits on any
 number of workers; a depth that is replayed with evaluations read back from a checkpoint
 follows the same path.
@@ -394,7 +395,10 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
     settings = search_settings(engine)
     tolerance = float(engine.get("tolerance", 1e-6))
     search = _Search(mixture, p, q, g0, b0, settings, run_map, callback, record)
-    Hinv = preconditioner(mixture, g0, b0, q, run_map=hessian_map) if hessian is None else np.array(hessian, float)
+    if hessian is None:
+        Hinv = preconditioner(mixture, g0, b0, q, run_map=hessian_map)
+    else:
+        Hinv = np.array(hessian, float)
     n = 2 * q
     x = np.zeros(n)
     # hybrid: forward differences while far from the optimum, central ones before any stop and after
