@@ -126,6 +126,7 @@ class StudyReader:
         lock = self.lock_holder()
         writing = lock is not None and bool(lock.get("alive"))
         kinds = {e["label"]: e.get("kind", "dense") for e in self.spec.get("ensembles", [])}
+        described = {e["label"]: e for e in self.spec.get("ensembles", [])}
         for label in self.ensembles():
             done, running = [], None
             for p, attrs in self._depth_attrs(label):
@@ -146,10 +147,7 @@ class StudyReader:
                         pass_rates.append((t["pass_compute_s"], paths))
                 elif pmin <= p <= pmax:
                     running = _running_info(p, self._depth_group(label, p), attrs, writing)
-                    desc = next((e for e in self.spec.get("ensembles", []) if e.get("label") == label), {})
-                    bath_from = (desc.get("bath") or {}).get("from")
-                    if (running["bath"] is None and desc.get("kind", "dense") == "dense" and bath_from is not None
-                            and p >= int(bath_from)):
+                    if running["bath"] is None and _bath_depth(described.get(label, {}), p):
                         # a bath depth before its first saved evaluation (its preconditioner is computed first)
                         running["bath"] = {"evaluations_saved": 0, "evaluation_cpu_s": None}
                     if running["pass_compute_s"] > 0 and running["paths"]:
@@ -158,7 +156,6 @@ class StudyReader:
             todo = [p for p in range(pmin, pmax + 1) if p not in done_ps]
             ensembles.append({"label": label, "done": done, "running": running, "todo": todo})
         eta = _estimate_seconds_left(ensembles, finished_timings, pass_rates, self.spec)
-        described = {e["label"]: e for e in self.spec.get("ensembles", [])}
         return {
             "name": self.name,
             "path": str(self.path),
@@ -306,10 +303,15 @@ def _estimate_seconds_left(ensembles, finished_timings, pass_rates, spec) -> flo
     return left
 
 
+def _bath_depth(desc: dict, p: int) -> bool:
+    """Whether depth p of this (stored) ensemble description runs the bath engine (bath-from <= p)."""
+    bath_from = (desc.get("bath") or {}).get("from")
+    return bath_from is not None and p >= int(bath_from)
+
+
 def _scaled_kind(desc: dict, p: int) -> bool:
     """Whether depth p of this ensemble is priced from finished depths (bath or sparse) rather than passes."""
-    bath_from = (desc.get("bath") or {}).get("from")
-    return desc.get("kind", "dense") != "dense" or (bath_from is not None and p >= int(bath_from))
+    return desc.get("kind", "dense") != "dense" or _bath_depth(desc, p)
 
 
 def _scaled_depth_seconds(e: dict, p: int, method: str, model) -> float | None:

@@ -325,6 +325,26 @@ def _run(args, env=None, timeout=300):
     return subprocess.run([*LEADLINE, *args], capture_output=True, text=True, env=full, timeout=timeout)
 
 
+def _held_sweep(spec: Path, hold_at: str, hold: Path) -> subprocess.Popen:
+    """`leadline sweep SPEC` in a subprocess, returned once it holds at crash point ``hold_at``
+    (``name:count``; it writes ``hold`` there and waits)."""
+    import os
+    import time
+
+    env = dict(os.environ, LEADLINE_HOLD_AT=hold_at, LEADLINE_HOLD_FILE=str(hold))
+    env.pop("LEADLINE_CRASH_AT", None)
+    proc = subprocess.Popen([*LEADLINE, "sweep", str(spec), "--quiet"], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, env=env)
+    deadline = time.monotonic() + 240
+    while not hold.exists():
+        if proc.poll() is not None or time.monotonic() > deadline:
+            proc.kill()
+            proc.wait()
+            raise AssertionError(f"the sweep did not reach {hold_at} (exit {proc.returncode})")
+        time.sleep(0.05)
+    return proc
+
+
 def _depths(store: Path) -> dict:
     return {d["p"]: d for d in open_study(store).depths("sk")}
 
@@ -333,9 +353,6 @@ def _depths(store: Path) -> dict:
 def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path, pmax):
     """At p = 5 the bath depth starts from the extrapolated start, so the resumed run must read the
     optima of p = 3 and 4 back from the store to replay it."""
-    import os
-    import time
-
     (tmp_path / "ref").mkdir()
     (tmp_path / "ref" / "s.toml").write_text(SPEC.format(store="ref.zarr", pmax=pmax))
     ref = _run(["sweep", str(tmp_path / "ref" / "s.toml"), "--quiet"])
@@ -344,15 +361,8 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path, pmax):
 
     (tmp_path / "s.toml").write_text(SPEC.format(store="k.zarr", pmax=pmax))
     store, hold = tmp_path / "k.zarr", tmp_path / "held"
-    env = dict(os.environ, LEADLINE_HOLD_AT="bath-evaluations-cached:4", LEADLINE_HOLD_FILE=str(hold))
-    env.pop("LEADLINE_CRASH_AT", None)
-    proc = subprocess.Popen([*LEADLINE, "sweep", str(tmp_path / "s.toml"), "--quiet"], stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, env=env)
+    proc = _held_sweep(tmp_path / "s.toml", "bath-evaluations-cached:4", hold)
     try:
-        deadline = time.monotonic() + 240
-        while not hold.exists():
-            assert proc.poll() is None and time.monotonic() < deadline
-            time.sleep(0.05)
         # status while the bath depth runs: depth, current V, estimate, time per evaluation
         status = _run(["status", str(store)])
         assert status.returncode == 0, status.stderr
@@ -385,20 +395,10 @@ def test_kill_mid_bath_depth_then_resume_gives_the_same_bits(tmp_path, pmax):
 def test_status_of_a_bath_depth_before_its_first_evaluation(tmp_path):
     """Held right after the bath depth p = 3 started (before its preconditioner and first evaluation):
     status names it a bath depth with no evaluation saved, not an exact depth with 0 passes."""
-    import os
-    import time
-
     (tmp_path / "s.toml").write_text(SPEC.format(store="h.zarr", pmax=3))
-    store, hold = tmp_path / "h.zarr", tmp_path / "held"
-    env = dict(os.environ, LEADLINE_HOLD_AT="depth-started:3", LEADLINE_HOLD_FILE=str(hold))
-    env.pop("LEADLINE_CRASH_AT", None)
-    proc = subprocess.Popen([*LEADLINE, "sweep", str(tmp_path / "s.toml"), "--quiet"], stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, env=env)
+    store = tmp_path / "h.zarr"
+    proc = _held_sweep(tmp_path / "s.toml", "depth-started:3", tmp_path / "held")
     try:
-        deadline = time.monotonic() + 240
-        while not hold.exists():
-            assert proc.poll() is None and time.monotonic() < deadline
-            time.sleep(0.05)
         status = _run(["status", str(store)])
         assert status.returncode == 0, status.stderr
         line = next(x for x in status.stdout.splitlines() if x.strip().startswith("running"))
