@@ -496,3 +496,44 @@ def test_bath_from_on_a_sparse_ensemble_is_refused(tmp_path, capsys):
     with pytest.raises(SystemExit) as exc:
         main(["sweep", str(spec)])
     assert exc.value.code == 2 and "applies to dense ensembles" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("forward_again", [False, True])
+def test_after_a_confirmation_that_does_not_stop_the_gradients_are_forward_again(monkeypatch, forward_again):
+    """A stop check (here the stall rule, forced once) is confirmed by a central gradient at the same
+    point; when that one does not stop the search, the next gradients are forward differences again
+    (``FORWARD_AFTER_CONFIRM``) or stay central (the previous rule), and either way the search reaches
+    the maximum."""
+    from leadline.kernels.bath import _optimize, fourier_basis, optimize_bath_depth
+
+    p = 6
+    monkeypatch.setattr(_optimize, "FORWARD_AFTER_CONFIRM", forward_again)
+    calls = {"stalled": 0}
+
+    def stalled_once(values, tolerance):  # the second check says "stalled", no other does
+        calls["stalled"] += 1
+        return calls["stalled"] == 2
+
+    monkeypatch.setattr(_optimize, "stalled", stalled_once)
+    kinds = []
+    original = _optimize._Search.gradient
+
+    def gradient(self, x, known=None, kind="central", curvature=None):
+        kinds.append(kind)
+        return original(self, x, known=known, kind=kind, curvature=curvature)
+
+    monkeypatch.setattr(_optimize._Search, "gradient", gradient)
+    f = _Smooth(p)
+    S, C = fourier_basis(p, p)
+    Q = np.block([[S, np.zeros((p, p))], [np.zeros((p, p)), C]])
+    start = (f.star[:p] + 0.02 * np.cos(np.arange(p)), f.star[p:] - 0.02 * np.sin(np.arange(p)))
+    r = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[start],
+                            restarts=0, inverse_hessian=0.5 * np.linalg.inv(Q.T @ f.A @ Q))  # a preconditioner off by 2x
+    z = np.concatenate([r.gamma, r.beta])
+    assert r.converged and abs(r.value) < 1e-8 and np.max(np.abs(z - f.star)) < 1e-4, (r.value, r.message)
+    assert kinds[:3] == ["forward", "forward", "central"], kinds  # the forced stop check, confirmed centrally
+    assert len(kinds) > 3, kinds
+    if forward_again:
+        assert kinds[3] == "forward" and kinds[-1] == "central", kinds  # forward again; the stop confirmed
+    else:
+        assert set(kinds[2:]) == {"central"}, kinds
