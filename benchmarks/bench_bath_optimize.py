@@ -21,8 +21,14 @@ Sections:
                        added to the exact p <= 16 (tests/sk_optima.csv)
   --gradient-errors    central against forward differences at fixed cut-offs (SK p = 12, from
                        INTERP of p = 11) against the exact reverse-mode gradient
+  --sweep-depth STORE LABEL P
+                       depth P of ensemble LABEL as a sweep runs it (start extrapolated from the
+                       store's optima of P - 1 and P - 2, the engine settings of its P - 1, no
+                       restarts), in this process; with --forward-after-confirm and/or --stages Q..
+                       to try those settings against the store's own depth P (one JSON line)
 
 Usage:  OMP_NUM_THREADS=1 nice -n 5 python benchmarks/bench_bath_optimize.py --targets 13 20 [--json FILE]
+        OMP_NUM_THREADS=1 python benchmarks/bench_bath_optimize.py --sweep-depth sk-deep.zarr sk 26 --forward-after-confirm
         OMP_NUM_THREADS=1 nice -n 5 python benchmarks/bench_bath_optimize.py --compare 13 14 15 16 17 \
             --schemes default previous --json FILE     (the current scheme against the previous one)
 """
@@ -287,6 +293,40 @@ def run(quick: bool = False) -> dict:
     return {"engine": engine, "compare": compare([6] if quick else [10], engine, schemes=("default", "previous"))}
 
 
+def sweep_depth(store: str, label: str, p: int, *, forward_after_confirm: bool = False, stages=None) -> dict:
+    """Depth p of a stored sweep's ensemble rerun as the sweep runs it, with optimizer settings to try."""
+    from leadline.jobs.api import open_study
+    from leadline.kernels.bath import _optimize, optimize_bath_depth
+    from leadline.kernels.mixture import parse_mixture
+
+    reader = open_study(store)
+    done = {}
+    for q in (p - 2, p - 1, p):
+        attrs = reader.depth(label, q) or {}
+        if attrs.get("state") == "done" and attrs.get("result"):
+            done[q] = attrs["result"]  # with the optimizer's record (engine, gradients, CPU per evaluation)
+    if p - 1 not in done or p - 2 not in done:
+        raise SystemExit(f"{store}: ensemble {label} needs finished depths {p - 2} and {p - 1}")
+    previous, earlier = done[p - 1], done[p - 2]
+    engine = dict(previous.get("engine") or {"tolerance": 1e-6})
+    _optimize.FORWARD_AFTER_CONFIRM = bool(forward_after_confirm)
+    t = time.process_time()
+    res = optimize_bath_depth(
+        parse_mixture(reader.ensemble(label)["xi"]), p, engine=engine,
+        previous=(np.array(previous["gamma"]), np.array(previous["beta"])), previous_value=previous["value"],
+        earlier=(np.array(earlier["gamma"]), np.array(earlier["beta"])), restarts=0,
+        stages=tuple(stages) if stages else None)
+    cpu = time.process_time() - t
+    stored = done.get(p, {})
+    return {"label": label, "p": p, "forward_after_confirm": bool(forward_after_confirm), "stages": res.stages,
+            "value": res.value, "estimate": res.error_estimate, "gradients": res.gradients,
+            "evaluations": res.evaluations, "cpu_s": cpu, "message": res.message,
+            "values": [h["values"] for h in res.history],
+            "stored_value": stored.get("value"), "stored_gradients": stored.get("gradients"),
+            "stored_evaluations": stored.get("evaluations"),
+            "stored_cpu_s": (stored.get("evaluation_s") or 0.0) * (stored.get("evaluations") or 0)}
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
@@ -300,7 +340,15 @@ def main(argv=None) -> int:
     ap.add_argument("--markdown", metavar="JSON", help="print the table of a --targets or --compare JSON file and exit")
     ap.add_argument("--extrapolate", metavar="JSON", help="print the SK headline with the bath depths > 16 of a "
                     "--targets JSON file added to tests/sk_optima.csv, and exit")
+    ap.add_argument("--sweep-depth", nargs=3, metavar=("STORE", "LABEL", "P"))
+    ap.add_argument("--forward-after-confirm", action="store_true")
+    ap.add_argument("--stages", type=int, nargs="+")
     args = ap.parse_args(argv)
+    if args.sweep_depth:
+        store, label, p = args.sweep_depth
+        print(json.dumps(sweep_depth(store, label, int(p), forward_after_confirm=args.forward_after_confirm,
+                                     stages=args.stages)))
+        return 0
     if args.extrapolate:
         with open(args.extrapolate) as fh:
             print(extrapolation(json.load(fh)["rows"]))
