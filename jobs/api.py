@@ -616,12 +616,15 @@ def sweep(spec, *, executor: str | None = None, scheduler: str | None = None, wo
 @_keywords
 @_blas_capped
 def resume(store: str | Path, *, executor: str | None = None, scheduler: str | None = None,
-           workers: int | None = None, batch_file: str | Path | None = None, quiet: bool = True) -> StudyRun:
+           workers: int | None = None, batch_file: str | Path | None = None, quiet: bool = True,
+           pmax: int | None = None) -> StudyRun:
     """Continue a stopped study, as ``leadline resume STORE``: finished depths, passes and
     chunks are not recomputed, and the numbers are those of an uninterrupted run.
 
     ``executor``, ``scheduler``, ``workers``, ``batch_file`` and ``quiet`` as for
     :func:`sweep` (the chunk plan stays the spec's).  A complete study returns at once.
+    ``pmax`` continues the study deeper, as ``--pmax``: the store's [depths] pmax is raised to it
+    for good (never lowered), and the new depths are warm-started from the finished ones.
 
     Returns
     -------
@@ -638,11 +641,12 @@ def resume(store: str | Path, *, executor: str | None = None, scheduler: str | N
     path = Path(store)
 
     def prepare():
-        return command.prepare_resume(path, executor, scheduler, workers, batch_file, quiet)
+        return command.prepare_resume(path, executor, scheduler, workers, batch_file, quiet, pmax=pmax,
+                                      pmax_name="pmax")
 
     kernel = os.environ.get(IMPLEMENTATION_ENV)
     try:
-        return _run_study(prepare, lambda spec: command.open_for_resume(path), creating=False,
+        return _run_study(prepare, lambda spec: command.open_for_resume(path, spec), creating=False,
                           store_path=path, quiet=quiet)
     finally:  # the study's chunk kernel is pinned for the resume only, not for the rest of the session
         if kernel is None:

@@ -77,7 +77,7 @@ from .errors import InputError
 from .parsing import MAX_GRADIENT_TOL, MIN_MEMORY_MIB
 from .renames import renamed_spec_key
 
-__all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_dict", "spec_from_json", "check_new_store", "MAX_DEPTH", "ENSEMBLE_KINDS"]
+__all__ = ["StudySpec", "EnsembleSpec", "load_spec", "spec_from_dict", "spec_from_json", "check_new_store", "raised_spec_text", "MAX_DEPTH", "ENSEMBLE_KINDS"]
 
 #: deepest exact depth a spec may ask for (2^61 paths per pass: far beyond any machine already)
 MAX_DEPTH = 30
@@ -532,6 +532,24 @@ def spec_from_json(data: dict, text: str = "") -> StudySpec:
         keep_passes=bool(k.get("keep_passes", False)),
         source_text=text,
     )
+
+
+_PMAX_LINE = re.compile(r"(?m)^([^#\n]*\bpmax\s*=\s*)(\d+)")
+
+
+def raised_spec_text(text: str, old: int, new: int, when: str) -> str:
+    """The spec text of a study whose deepest depth `leadline resume --pmax` raised from ``old`` to
+    ``new``: its pmax line rewritten (when there is exactly one and the result still reads as
+    pmax = new), and a closing comment saying when and from what."""
+    note = f"\n# [depths] pmax raised from {old} to {new} by `leadline resume --pmax {new}` ({when})\n"
+    if len(_PMAX_LINE.findall(text)) == 1:
+        rewritten = _PMAX_LINE.sub(lambda m: f"{m.group(1)}{new}", text)
+        try:
+            if int(tomllib.loads(rewritten)["depths"]["pmax"]) == new:
+                return rewritten.rstrip("\n") + "\n" + note
+        except (tomllib.TOMLDecodeError, KeyError, TypeError, ValueError):
+            pass
+    return text.rstrip("\n") + "\n" + note
 
 
 def check_new_store(path: Path) -> None:

@@ -6,7 +6,8 @@ without leadline in docs/store.md::
     <store>/                                 root group
         attrs: format, format_version, name, spec, spec_toml, created_utc, writer,
                kernel, integrity (the store's record of itself: storage/integrity.py),
-               migrated (list of layout upgrades, when any)
+               migrated (list of layout upgrades, when any),
+               depths_raised (list of raises of pmax by `leadline resume --pmax`, when any)
     <store>/ensembles/<label>/               one group per ensemble of the spec
         attrs: label, kind, xi, q, degree, reference (as the spec gives it)
                [, computed_reference (written by `leadline reference --store`)]
@@ -80,6 +81,9 @@ SCHEMA_VERSION = 4
 READABLE_SCHEMAS = (1, 2, 3, 4)
 #: ensemble attribute with the GS/ALG computed by `leadline reference --store`
 COMPUTED_REFERENCE = "computed_reference"
+#: root attribute listing the raises of the study's deepest depth by `leadline resume --pmax`
+#: ([{"from": 32, "to": 40, "utc": ...}, ...]; absent when never raised)
+DEPTHS_RAISED = "depths_raised"
 
 #: names schema 4 changed: (where, old name) -> new name
 RENAMED_IN_4 = {

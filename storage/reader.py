@@ -160,6 +160,8 @@ class StudyReader:
             "name": self.name,
             "path": str(self.path),
             "depths": [pmin, pmax],
+            # raises of pmax by `leadline resume --pmax` ([] when the spec's pmax is the one it was created with)
+            "depths_raised": list(self._root.attrs.get(L.DEPTHS_RAISED, [])),
             "ensembles": ensembles,
             "complete": all(not e["todo"] for e in ensembles),
             "estimated_seconds_left": eta,

@@ -432,6 +432,32 @@ class StudyStore:
     def spec(self) -> dict:
         return self.attrs["spec"]
 
+    def raise_pmax(self, pmax: int, spec_toml: str) -> bool:
+        """Let the study continue past its deepest depth, to ``pmax``; False if it already goes that far.
+
+        The stored spec's [depths] pmax, its text (``spec_toml``, the caller's rewrite) and the
+        record's digests of both change in one write of the root attributes, and the raise is
+        appended to the root attribute ``depths_raised``.  Finished depths are not touched, so a
+        kill before or after the write leaves a store that opens (with the old or the new pmax)."""
+        attrs = self.root.attrs.asdict()
+        spec = L.current_spec(attrs["spec"])
+        old = int(spec["depths"]["pmax"])
+        if pmax <= old:
+            return False
+        spec = dict(spec, depths=dict(spec["depths"], pmax=int(pmax)))
+        raised = list(attrs.get(L.DEPTHS_RAISED, [])) + [{"from": old, "to": int(pmax), "utc": utc_now()}]
+        changes = {"spec": spec, "spec_toml": spec_toml, L.DEPTHS_RAISED: raised}
+        record = attrs.get(I.RECORD)
+        if isinstance(record, dict) and isinstance(record.get("identity"), dict):
+            identity = dict(record["identity"])
+            for key, value in (("spec", spec), ("spec_toml", spec_toml)):
+                if key in identity:
+                    identity[key] = I.digest(value)
+            changes[I.RECORD] = dict(I.current_record(record), identity=identity)
+        self.lock.verify()
+        self.root.attrs.update(changes)
+        return True
+
     def ensure_ensembles(self, ensembles: list[dict]) -> None:
         """Create the ensemble groups that are missing (idempotent, kill-safe)."""
         self.lock.verify()

@@ -238,3 +238,23 @@ def test_where_passes_run_is_overridden_for_one_run_on_the_command_line_and_in_p
     assert bad.returncode == 2 and "store" in bad.stderr  # b.zarr exists: refused before anything else
     bad = subprocess.run(CLI + ["resume", "b.zarr", "--executor", "batch"], capture_output=True, text=True, timeout=120)
     assert bad.returncode == 2 and bad.stderr.strip().endswith("executor 'batch' needs a batch file"), bad.stderr
+
+
+def test_resume_pmax_continues_every_ensemble_deeper(from_python, tmp_path):
+    """`leadline.resume(store, pmax=3)` continues a finished p <= 2 study of a dense and a sparse
+    ensemble to p = 3, as `leadline resume --pmax 3`: SK V_3* = 0.4726 (Farhi, Goldstone, Gutmann,
+    Zhou, Quantum 6, 759 (2022), Table 1) and MaxCut on 3-regular graphs of large girth at p = 3,
+    0.7923 (arXiv:2503.12789, Table 1, 4 digits); a lower pmax is refused with one line."""
+    import shutil
+
+    folder, run = from_python
+    store = tmp_path / "deeper.zarr"
+    shutil.copytree(run.store, store)
+    with pytest.raises(leadline.InputError, match="pmax 1 is below the study's pmax 2"):
+        leadline.resume(store, pmax=1)
+    deeper = leadline.resume(store, pmax=3)
+    assert sorted((line["label"], line["p"]) for line in deeper.finished_now) == [("cut3", 3), ("sk", 3)]
+    values = {(r["ensemble"], r["p"]): r["value"] for r in deeper.rows}
+    assert round(values["sk", 3], 4) == 0.4726 and math.floor(values["cut3", 3] * 1e4) / 1e4 == 0.7923
+    assert all(values[key] == r["value"] for r in run.rows for key in [(r["ensemble"], r["p"])])
+    assert leadline.status(store)["depths"] == [1, 3]

@@ -738,3 +738,76 @@ def test_stop_message_counts_saved_evaluations_of_bath_and_sparse_depths(monkeyp
     assert "sk: p = 1 done; p = 2 stopped with 367 evaluations saved" in text
     assert "mc: p = 1 stopped with 1 evaluation saved" in text
     assert "mix: p = 1 stopped with 8 passes saved" in text
+
+
+def _root_attrs(store: Path) -> dict:
+    return json.loads((store / "zarr.json").read_text())["attributes"]
+
+
+def test_resume_pmax_continues_a_finished_study_deeper(reference, tmp_path):
+    """`resume --pmax P` raises a finished study's deepest depth for good: a kill right after the
+    raise leaves a store that a plain `resume` finishes, the finished depths are untouched, the new
+    depth warm-starts from them and reaches the published optimum (Farhi, Goldstone, Gutmann,
+    Zhou, Quantum 6, 759 (2022), Table 1: SK V_4* = 0.5157), and the store says what was raised."""
+    import shutil
+    import tomllib
+
+    store = tmp_path / "s.zarr"
+    shutil.copytree(reference["store"], store)
+    before = {p: _depth_attrs(store, p)["result"] for p in (1, 2, 3)}
+    r = run(["resume", str(store), "--pmax", "4", "--quiet"], env=env_with(LEADLINE_CRASH_AT="depth-started:1"))
+    assert r.returncode == -signal.SIGKILL, r.stderr  # the raise was written, then p = 4 began
+    r = run(["status", str(store)])
+    assert r.returncode == 0 and "depths 1..4 (pmax raised from 3 on " in r.stdout, r.stdout + r.stderr
+    r = run(["resume", str(store)])
+    assert r.returncode == 0, r.stderr
+    assert "sk           p = 4 " in r.stdout
+    after = {p: _depth_attrs(store, p)["result"] for p in (1, 2, 3, 4)}
+    assert all(after[p] == before[p] for p in (1, 2, 3))
+    assert round(after[4]["value"], 4) == 0.5157  # Table 1, Farhi et al. (2022)
+    attrs = _root_attrs(store)
+    assert attrs["spec"]["depths"]["pmax"] == 4
+    assert [(e["from"], e["to"]) for e in attrs["depths_raised"]] == [(3, 4)]
+    assert tomllib.loads(attrs["spec_toml"])["depths"]["pmax"] == 4
+    assert "# [depths] pmax raised from 3 to 4 by `leadline resume --pmax 4`" in attrs["spec_toml"]
+    status = json.loads(run(["status", str(store), "--json"]).stdout)
+    assert status["depths"] == [1, 4] and status["complete"] and len(status["depths_raised"]) == 1
+
+
+def _depth_attrs(store: Path, p: int) -> dict:
+    return json.loads((store / "ensembles" / "sk" / f"p{p:03d}" / "zarr.json").read_text())["attributes"]
+
+
+@pytest.mark.parametrize("pmax, message", [
+    ("2", "--pmax 2 is below the study's pmax 3: a study's depths can be raised, not lowered"),
+    ("31", "--pmax 31: [depths] pmax = 31 is beyond 30"),
+    ("x", "Invalid value for '--pmax': 'x' is not a whole number"),
+])
+def test_resume_pmax_refuses_a_lower_or_impossible_depth_and_writes_nothing(reference, tmp_path, pmax, message):
+    import shutil
+
+    store = tmp_path / "s.zarr"
+    shutil.copytree(reference["store"], store)
+    tree, root = _tree(store), (store / "zarr.json").read_bytes()
+    r = run(["resume", str(store), "--pmax", pmax])
+    assert r.returncode == 2 and message in " ".join(r.stderr.split()), r.stderr
+    assert _tree(store) == tree and (store / "zarr.json").read_bytes() == root
+    r = run(["resume", str(store), "--pmax", "3"])  # its own pmax: nothing to raise, nothing to do
+    assert r.returncode == 0 and "depths_raised" not in _root_attrs(store), r.stderr
+
+
+def test_raised_spec_text_rewrites_the_one_pmax_or_only_comments():
+    import tomllib
+
+    from leadline.jobs.spec import raised_spec_text
+
+    text = '[study]\nname = "s"\n\n[depths]\npmin = 1\npmax = 32   # one night\n'
+    out = raised_spec_text(text, 32, 40, "2026-12-04T00:00:00Z")
+    assert tomllib.loads(out)["depths"]["pmax"] == 40 and "pmax = 40   # one night" in out
+    assert out.endswith("# [depths] pmax raised from 32 to 40 by `leadline resume --pmax 40` (2026-12-04T00:00:00Z)\n")
+    inline = 'depths = { pmin = 1, pmax = 3 }\n# pmax = 9 was too deep\n'
+    assert tomllib.loads(raised_spec_text(inline, 3, 5, "t"))["depths"]["pmax"] == 5
+    # two candidate lines (one inside a string): the text is kept as written, with the comment
+    odd = '[depths]\npmax = 3\n[[ensemble]]\nlabel = "a"\nsource = """\npmax = 3 in the paper"""\n'
+    out = raised_spec_text(odd, 3, 5, "t")
+    assert out.startswith(odd.rstrip("\n")) and "pmax raised from 3 to 5" in out

@@ -204,27 +204,37 @@ def resume_command(
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Override [compute] scheduler (address of a running Dask scheduler)."),
     workers: Optional[int] = typer.Option(None, "--workers", help="Override [compute] workers."),
     batch_file: Optional[Path] = typer.Option(None, "--batch-file", help="Override [compute] batch-file (batch-cluster TOML)."),
+    pmax: Optional[int] = typer.Option(
+        None, "--pmax", metavar="P",
+        help="Continue the study deeper, to depth P: its [depths] pmax is raised for good (recorded in the store); "
+             "finished depths are kept and warm-start the new ones."),
     quiet: bool = compute.quiet_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object at the end instead of report lines."),
 ) -> None:
     """Continue a stopped sweep exactly where it was; finished depths, passes and chunks are not recomputed.
 
-    Example:
+    Examples:
 
         leadline resume runs/study.zarr
+
+        leadline resume runs/study.zarr --pmax 40    # go on to p = 40
 
     The chunk plan (memory-mib) stays the one of the spec; where passes run may be changed.
     """
     try:
-        spec, settings = prepare_resume(store_path, executor, scheduler, workers, batch_file, quiet or as_json)
-        _run(lambda: open_for_resume(store_path), spec, settings, as_json, quiet)
+        spec, settings = prepare_resume(store_path, executor, scheduler, workers, batch_file, quiet or as_json,
+                                        pmax=pmax)
+        _run(lambda: open_for_resume(store_path, spec), spec, settings, as_json, quiet)
     except OSError as exc:
         raise _write_failed(exc, store_path, creating=False) from None
 
 
-def prepare_resume(store_path: Path, executor=None, scheduler=None, workers=None, batch_file=None, quiet=True):
+def prepare_resume(store_path: Path, executor=None, scheduler=None, workers=None, batch_file=None, quiet=True,
+                   pmax=None, pmax_name="--pmax"):
     """Everything `resume` checks before it computes: the store (readable, undamaged, not held
-    by a live writer), its spec, the overrides of where passes run; returns (spec, settings).
+    by a live writer), its spec, the overrides of where passes run, a raised deepest depth
+    ``pmax`` (None: the spec's; named ``pmax_name`` in messages); returns (spec, settings), the
+    spec with the raised pmax (written to the store by :func:`open_for_resume`).
     Pins the chunk kernel the study started with (``LEADLINE_KERNEL``)."""
     from leadline.storage import StudyStore, check_study
     from leadline.storage.study import check_contents
@@ -233,6 +243,8 @@ def prepare_resume(store_path: Path, executor=None, scheduler=None, workers=None
     attrs = check_study(store_path)
     check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
     spec = _stored_spec(store_path, attrs)
+    if pmax is not None:
+        spec = _raised(spec, pmax, pmax_name)
     _pin_kernel(attrs.get("kernel"))
     _check_overrides(workers, batch_file)
     settings = _settings_with(spec, executor, scheduler, workers, batch_file, quiet)
@@ -249,11 +261,45 @@ def _check_overrides(workers, batch_file) -> None:
         raise InputError(f"--batch-file: file {batch_file} does not exist")
 
 
-def open_for_resume(store_path: Path):
-    """The store of a resume, opened for writing (its lock taken) after :func:`prepare_resume`."""
-    from leadline.storage import StudyStore
+def _raised(spec, pmax, name: str):
+    """``spec`` continued to depth ``pmax`` (checked as `sweep` checks [depths] pmax); the same spec
+    when ``pmax`` is its own."""
+    import dataclasses
 
-    return StudyStore.open(store_path, command="resume", notice=lambda text: None)
+    from ..spec import _check_depths
+
+    if isinstance(pmax, bool) or not isinstance(pmax, int):
+        raise InputError(f"{name} must be a whole number, got {pmax!r}")
+    if pmax < spec.pmax:
+        raise InputError(f"{name} {pmax} is below the study's pmax {spec.pmax}: a study's depths can be raised, "
+                         "not lowered (its finished depths stay in the store)")
+    if pmax == spec.pmax:
+        return spec
+    try:
+        _check_depths(spec.ensembles, spec.pmin, pmax)
+    except InputError as exc:
+        raise InputError(f"{name} {pmax}: {exc}; nothing was changed") from None
+    return dataclasses.replace(spec, pmax=pmax)
+
+
+def open_for_resume(store_path: Path, spec=None):
+    """The store of a resume, opened for writing (its lock taken) after :func:`prepare_resume`;
+    with the spec :func:`prepare_resume` returned, a raised pmax is written to the store."""
+    from leadline.storage import StudyStore
+    from leadline.storage.study import utc_now
+
+    from ..spec import raised_spec_text
+
+    store = StudyStore.open(store_path, command="resume", notice=lambda text: None)
+    try:
+        stored = int(store.spec["depths"]["pmax"])
+        if spec is not None and spec.pmax > stored:
+            text = raised_spec_text(store.attrs.get("spec_toml", ""), stored, spec.pmax, utc_now())
+            store.raise_pmax(spec.pmax, text)
+    except BaseException:
+        store.close()
+        raise
+    return store
 
 
 def _stored_spec(store_path: Path, attrs: dict):
@@ -420,7 +466,9 @@ def _ranges(ps: list[int]) -> str:
 def status_text(progress: dict) -> str:
     """The `leadline status` report."""
     pmin, pmax = progress["depths"]
-    lines = [f"study {progress['name']!r}  store {progress['path']}  depths {pmin}..{pmax}"]
+    raised = progress.get("depths_raised") or []
+    since = f" (pmax raised from {raised[0]['from']} on {raised[0]['utc'][:10]})" if raised else ""
+    lines = [f"study {progress['name']!r}  store {progress['path']}  depths {pmin}..{pmax}{since}"]
     usage = progress.get("store")
     if usage is not None:
         lines.append(f"store size: {_size(usage['bytes'])} in {usage['files']} files")
