@@ -811,3 +811,22 @@ def test_raised_spec_text_rewrites_the_one_pmax_or_only_comments():
     odd = '[depths]\npmax = 3\n[[ensemble]]\nlabel = "a"\nsource = """\npmax = 3 in the paper"""\n'
     out = raised_spec_text(odd, 3, 5, "t")
     assert out.startswith(odd.rstrip("\n")) and "pmax raised from 3 to 5" in out
+
+
+def test_a_copied_store_resumes_where_it_is_now(reference, tmp_path):
+    """A store copied elsewhere (to a cluster, say) resumes with its new location as the study's
+    store, so a sparse depth's scratch folder is made beside it (common practice: a moved
+    dataset is used where it is)."""
+    import shutil
+
+    from leadline.jobs.commands.sweep import prepare_resume
+
+    store = tmp_path / "moved" / "s.zarr"
+    shutil.copytree(reference["store"], store)
+    saved = dict(os.environ)
+    try:
+        spec, _ = prepare_resume(store, executor="inprocess")
+    finally:  # it pins the study's chunk kernel in os.environ, as `resume` does for its run
+        os.environ.clear()
+        os.environ.update(saved)
+    assert spec.store == store.resolve() and spec.store != Path(reference["store"]).resolve()

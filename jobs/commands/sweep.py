@@ -7,6 +7,7 @@ stderr line with exit code 2.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 from pathlib import Path
@@ -242,7 +243,9 @@ def prepare_resume(store_path: Path, executor=None, scheduler=None, workers=None
     store_path = Path(store_path)
     attrs = check_study(store_path)
     check_contents(store_path, attrs)  # a damaged store is refused before its spec is used
-    spec = _stored_spec(store_path, attrs)
+    # where the store is now (it may have been copied, e.g. to a cluster): a sparse depth's scratch
+    # folder goes beside it, not beside the path it was created at
+    spec = dataclasses.replace(_stored_spec(store_path, attrs), store=store_path.resolve())
     if pmax is not None:
         spec = _raised(spec, pmax, pmax_name)
     _pin_kernel(attrs.get("kernel"))
@@ -264,8 +267,6 @@ def _check_overrides(workers, batch_file) -> None:
 def _raised(spec, pmax, name: str):
     """``spec`` continued to depth ``pmax`` (checked as `sweep` checks [depths] pmax); the same spec
     when ``pmax`` is its own."""
-    import dataclasses
-
     from ..spec import _check_depths
 
     if isinstance(pmax, bool) or not isinstance(pmax, int):
