@@ -432,12 +432,12 @@ class StudyStore:
     def spec(self) -> dict:
         return self.attrs["spec"]
 
-    def raise_pmax(self, pmax: int, spec_toml: str) -> bool:
+    def raise_pmax(self, pmax: int, spec_toml: str, utc: str | None = None) -> bool:
         """Let the study continue past its deepest depth, to ``pmax``; False if it already goes that far.
 
         The stored spec's [depths] pmax, its text (``spec_toml``, the caller's rewrite) and the
         record's digests of both change in one write of the root attributes, and the raise is
-        appended to the root attribute ``depths_raised``.  Finished depths are not touched, so a
+        appended to the root attribute ``depths_raised`` (at ``utc``, default now).  Finished depths are not touched, so a
         kill before or after the write leaves a store that opens (with the old or the new pmax)."""
         attrs = self.root.attrs.asdict()
         spec = L.current_spec(attrs["spec"])
@@ -445,7 +445,7 @@ class StudyStore:
         if pmax <= old:
             return False
         spec = dict(spec, depths=dict(spec["depths"], pmax=int(pmax)))
-        raised = list(attrs.get(L.DEPTHS_RAISED, [])) + [{"from": old, "to": int(pmax), "utc": utc_now()}]
+        raised = list(attrs.get(L.DEPTHS_RAISED, [])) + [{"from": old, "to": int(pmax), "utc": utc or utc_now()}]
         changes = {"spec": spec, "spec_toml": spec_toml, L.DEPTHS_RAISED: raised}
         record = attrs.get(I.RECORD)
         if isinstance(record, dict) and isinstance(record.get("identity"), dict):

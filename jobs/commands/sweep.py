@@ -295,8 +295,8 @@ def open_for_resume(store_path: Path, spec=None):
     try:
         stored = int(store.spec["depths"]["pmax"])
         if spec is not None and spec.pmax > stored:
-            text = raised_spec_text(store.attrs.get("spec_toml", ""), stored, spec.pmax, utc_now())
-            store.raise_pmax(spec.pmax, text)
+            when = utc_now()  # the same moment in the spec text's comment and in the store's list
+            store.raise_pmax(spec.pmax, raised_spec_text(store.attrs.get("spec_toml", ""), stored, spec.pmax, when), when)
     except BaseException:
         store.close()
         raise
