@@ -172,10 +172,7 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     beta_t against (t - 1/2)/p, one curve per depth p (darker = deeper), one
     row of two panels per ensemble.
     """
-    import matplotlib
-
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
+    plt = _pyplot()
 
     output = Path(output)
     paths = [output, angle_plot_path(output)]
@@ -201,12 +198,29 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     return paths
 
 
-def value_figure(report: StudyReport):
-    """(figure, main axes) of V_p* against 1/p (see :func:`write_plots`); the inset is ``ax.child_axes``."""
+def _pyplot():
+    """matplotlib.pyplot on the Agg backend, its font cache kept quiet.
+
+    On a machine where matplotlib has never run, its first import scans the fonts and writes a
+    cache, and says so on stderr ("building the font cache", or "Could not save font_manager
+    cache" when the disk is full or a file-size limit is set): lines about matplotlib's own files,
+    not the user's figure, that would break the one-line error a failed `plot` promises. Only that
+    logger is quieted, to errors.
+    """
+    import logging
+
+    logging.getLogger("matplotlib.font_manager").setLevel(logging.ERROR)
     import matplotlib
 
     matplotlib.use("Agg", force=True)
     import matplotlib.pyplot as plt
+
+    return plt
+
+
+def value_figure(report: StudyReport):
+    """(figure, main axes) of V_p* against 1/p (see :func:`write_plots`); the inset is ``ax.child_axes``."""
+    plt = _pyplot()
 
     fig, ax = plt.subplots(figsize=FIGURE_SIZE_INCHES, dpi=FIGURE_DPI)
     colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
@@ -261,7 +275,7 @@ def value_figure(report: StudyReport):
 
 
 def _angle_figure(report: StudyReport, path: Path) -> None:
-    import matplotlib.pyplot as plt
+    plt = _pyplot()
 
     n = max(1, len(report.ensembles))
     width, height = ANGLE_PANEL_INCHES
