@@ -31,6 +31,19 @@ same family with the same window size is fitted to the depths just before
 them, and its predictions at the held-out depths are compared with V_p*.  The
 back-test error e is the largest absolute prediction error.
 
+Windows and hold-out grow with the ladder (:func:`window_sizes`,
+:func:`default_holdout`): up to ``REFERENCE_DEPTHS`` depths a family with m
+parameters is fitted over the last m+1 .. m+1+``EXTRA_WINDOWS`` depths and a
+quarter of the depths (1 to 3) is held out, the geometry the SK calibration
+chose; with n > ``REFERENCE_DEPTHS`` depths both are multiplied by
+n / ``REFERENCE_DEPTHS`` (rounded), so that a window and the hold-out keep the
+same share of the ladder, and of 1/p, as in the calibration.  Counted in
+depths they would shrink in 1/p as the ladder deepens: at p = 33 a cubic over
+the last 5 depths spans 1/p = 0.030 .. 0.034 and reaches V_inf through
+least-squares weights summing to ~1.6e4 in absolute value, so a 1e-6 error in
+V_p* moves it by ~1e-2, and 3 held-out depths move 1/p by 0.002, too little
+for the back-test to tell the fits apart.
+
 Weights, no cliff: a fit's weight falls smoothly with its back-test error,
 ``1 / (1 + (e / T)^4)`` with the scale T = max(``SCALE_GAIN_FRACTION`` x the
 rise of V_p* over the held-out depths, ``SCALE_BEST_FACTOR`` x the smallest
@@ -88,6 +101,7 @@ __all__ = [
     "fit_power_law",
     "fit_anchored_power_law",
     "default_holdout",
+    "window_sizes",
     "extrapolate",
     "depth_for_ratio",
     "back_test_weight",
@@ -120,11 +134,11 @@ SCALE_GAIN_FRACTION = 0.1  # weight scale: 10 % of the rise of V_p* over the hel
 SCALE_BEST_FACTOR = 3.0  # ... or 3 x the smallest back-test error, whichever is larger
 WEIGHT_POWER = 4  # weight 1 / (1 + (e / T)^4): 0.5 at e = T, 0.06 at 2 T, 0.012 at 3 T
 BACKTEST_GROWTH = 0.75  # the back-test error, grown with distance, counts as 0.75 standard deviation (calibrated)
-REFERENCE_DEPTHS = 12  # with n < 12 depths every prediction's spread grows by sqrt(12 / n)
+REFERENCE_DEPTHS = 12  # with n < 12 depths every prediction's spread grows by sqrt(12 / n); beyond, windows grow by n / 12
 COVERAGE = 0.95  # the range is the central 95 % of the weighted mixture
 MIN_DEPTHS = 8  # fewer depths: no headline number, each family's value in words
 MIN_FAMILIES = 2  # fewer families with a back-tested physical fit: no headline number
-EXTRA_WINDOWS = 3  # windows of n_params + 1 .. n_params + 1 + EXTRA_WINDOWS depths
+EXTRA_WINDOWS = 3  # windows of n_params + 1 .. n_params + 1 + EXTRA_WINDOWS depths (x n / 12 beyond 12 depths)
 ALPHA_RANGE = (0.05, 6.0)  # exponents the free power law may take
 EXACT_SIGMA_FRACTION = 1e-3  # an exact depth beside uncertain ones: sigma = 1e-3 x the smallest given
 
@@ -655,9 +669,36 @@ def depth_for_ratio(amplitude: float, exponent: float, reference: float, ratio: 
     return _clean((amplitude / ((1.0 - ratio) * reference)) ** (1.0 / exponent))
 
 
-def default_holdout(n: int) -> int:
-    """Held-out depths of the back-test: a quarter of the depths, 1 to 3."""
-    return max(1, min(3, n // 4))
+def _ladder_scale(n: int) -> float:
+    """How much longer than the calibrated ladder n depths are (1 up to REFERENCE_DEPTHS)."""
+    return max(1.0, n / REFERENCE_DEPTHS)
+
+
+def _round_half_up(x: float) -> int:
+    return int(math.floor(x + 0.5))
+
+
+def default_holdout(n: int, *, scaled: bool = True) -> int:
+    """Held-out depths of the back-test: a quarter of the depths, 1 to 3 up to
+    ``REFERENCE_DEPTHS`` depths, a quarter (rounded) beyond (8 of 33).  ``scaled=False``: 1 to 3
+    at any n (the rule before the windows grew with the ladder, kept for comparison)."""
+    if n <= REFERENCE_DEPTHS or not scaled:
+        return max(1, min(3, n // 4))
+    return _round_half_up(n / 4)
+
+
+def window_sizes(n: int, n_params: int, *, scaled: bool = True) -> list[int]:
+    """Window sizes (numbers of last depths) of a family with ``n_params`` parameters over n depths.
+
+    n_params + 1 .. n_params + 1 + ``EXTRA_WINDOWS`` up to ``REFERENCE_DEPTHS`` depths; beyond,
+    each multiplied by n / ``REFERENCE_DEPTHS`` and rounded, so a window keeps its share of the
+    ladder (SK, 33 depths: the cubic's windows are 14, 17, 19, 22 depths instead of 5 .. 8).
+    Sizes above n, or too small to leave a degree of freedom, are left out. ``scaled=False``:
+    never multiplied (the rule before, kept for comparison).
+    """
+    f = _ladder_scale(n) if scaled else 1.0
+    sizes = {_round_half_up((n_params + 1 + j) * f) for j in range(EXTRA_WINDOWS + 1)}
+    return sorted(k for k in sizes if n_params + 1 <= k <= n)
 
 
 @dataclass
@@ -704,6 +745,7 @@ class Extrapolation:
     last_value: float | None = None
     uncertain_depths: int = 0
     back_test_growth: float = BACKTEST_GROWTH
+    window_scale: float = 1.0  # windows and hold-out x this (n / REFERENCE_DEPTHS beyond REFERENCE_DEPTHS depths)
     _bands: dict = field(default_factory=dict, repr=False, compare=False)  # depth -> Estimate
 
     @property
@@ -820,6 +862,7 @@ class Extrapolation:
             "families": {f.name: f.description for f in FAMILIES.values()},
             "families_used": self.families_used,
             "held_out_count": self.holdout,  # how many last depths each back-test holds out
+            "window_scale": self.window_scale,  # windows and hold-out x this (n / 12 beyond 12 depths)
             "weight_rule": (
                 f"weight = 1 / (1 + (back-test error / scale)^{WEIGHT_POWER}) / (windows of the family), "
                 f"scale = max({SCALE_GAIN_FRACTION:g} x held-out gain, {SCALE_BEST_FACTOR:g} x smallest "
@@ -854,10 +897,6 @@ class Extrapolation:
         }
 
 
-def _windows(n_usable: int, n_params: int) -> list[int]:
-    return list(range(n_params + 1, min(n_usable, n_params + 1 + EXTRA_WINDOWS) + 1))
-
-
 def extrapolate(
     depths: Sequence[int],
     values: Sequence[float],
@@ -875,6 +914,7 @@ def extrapolate(
     min_depths: int = MIN_DEPTHS,
     min_families: int = MIN_FAMILIES,
     back_test_growth: float = BACKTEST_GROWTH,
+    scale_windows: bool = True,
 ) -> Extrapolation | None:
     """Fit every family over its windows, back-test each, and form the headline numbers.
 
@@ -908,6 +948,10 @@ def extrapolate(
     back_test_growth : float
         How many standard deviations the grown back-test error counts for
         (default :data:`BACKTEST_GROWTH`, chosen by the SK calibration).
+    scale_windows : bool
+        True (default): beyond ``REFERENCE_DEPTHS`` depths the windows and the hold-out grow in
+        proportion to the depths (:func:`window_sizes`, :func:`default_holdout`).  False: the fixed
+        windows and hold-out of the earlier rule, for comparison (docs/extrapolation.md).
 
     Returns
     -------
@@ -918,7 +962,7 @@ def extrapolate(
     n = p.size
     if n < 2:
         return None
-    h = default_holdout(n) if holdout is None else int(holdout)
+    h = default_holdout(n, scaled=scale_windows) if holdout is None else int(holdout)
     if not 1 <= h < n:
         raise ValueError(f"holdout must be between 1 and {n - 1}, got {h}")
     names = list(FAMILIES) if families is None else list(families)
@@ -942,7 +986,7 @@ def extrapolate(
         fam = FAMILIES[name]
         if fam.needs_ground_state and gs is None:
             continue
-        for k in _windows(n, fam.n_params):
+        for k in window_sizes(n, fam.n_params, scaled=scale_windows):
             fit = fit_family(name, p[-k:], v[-k:], gs, sig(n - k, n))
             if fit is None:
                 continue
@@ -987,7 +1031,8 @@ def extrapolate(
     result = Extrapolation(fits, h, scale, gain, gs, bound, None, bound_name=bound_name, n_depths=n,
                            last_depth=int(p[-1]), last_value=float(v[-1]),
                            uncertain_depths=0 if s is None else int(np.sum(s > 0)),
-                           back_test_growth=float(back_test_growth))
+                           back_test_growth=float(back_test_growth),
+                           window_scale=_ladder_scale(n) if scale_windows else 1.0)
     n_families = len({w.family for w in fits if w.used and w.weight > 0})
     if n < min_depths:
         result.declined = f"too few depths for an extrapolation ({n}, at least {min_depths} needed)"

@@ -7,6 +7,12 @@ to which V_p* is conjectured to converge (Basso, Farhi, Marwaha, Villalonga, Zho
 arXiv:2110.14206). The values at p = 1..16 are this tool's own exact optima; their published
 source for SK is the table of Basso et al. The docs paste :func:`render_calibration`;
 tests/test_extrapolate.py re-runs it.
+
+The deep ladder (:func:`load_deep_ladder`, :func:`calibrate_deep`) adds this tool's SK sweep to
+p = 33 (tests/sk_deep_optima.csv: exact to 16, bosonic bath beyond, with the engine's error
+estimates): from p <= k, k = 12..32, the range should contain every later value to p = 33 and the
+Parisi value. tests/test_extrapolate_deep.py re-runs it; docs/extrapolation.md pastes
+:func:`render_deep_calibration`.
 """
 
 from __future__ import annotations
@@ -20,6 +26,8 @@ from leadline.kernels.mixture import parse_mixture
 from leadline.kernels.reference import union_bound
 
 SK_LADDER = Path(__file__).with_name("sk_optima.csv")
+SK_DEEP_LADDER = Path(__file__).with_name("sk_deep_optima.csv")
+DEEP_K_RANGE = range(12, 34)
 PARISI = 0.763166  # Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002); shipped with +- 1e-6
 PARISI_UNCERTAINTY = 1e-6
 K_RANGE = range(6, 13)
@@ -31,6 +39,20 @@ def load_ladder(path: Path = SK_LADDER) -> dict[int, float]:
     return {int(r["p"]): float(r["value"]) for r in csv.DictReader(lines)}
 
 
+def load_deep_ladder() -> tuple[dict[int, float], dict[int, float | None]]:
+    """({p: V_p*}, {p: estimate or None}) of the SK ladder p = 1..33: tests/sk_optima.csv for
+    p <= 12 (full precision) and tests/sk_deep_optima.csv beyond (12 decimals; bath depths with
+    the engine's error estimate)."""
+    values = {p: v for p, v in load_ladder().items() if p <= 12}
+    estimates: dict[int, float | None] = {p: None for p in values}
+    lines = [ln for ln in SK_DEEP_LADDER.read_text().splitlines() if ln.strip() and not ln.startswith("#")]
+    for r in csv.DictReader(lines):
+        p = int(r["p"])
+        values[p] = float(r["value"])
+        estimates[p] = float(r["estimate"]) if r["estimate"] else None
+    return values, estimates
+
+
 @dataclass(frozen=True)
 class CalibrationRow:
     k: int
@@ -38,6 +60,7 @@ class CalibrationRow:
     limit: tuple[float, float, float]  # central, low, high of V_inf (computed even when declined)
     later: dict  # {p: (central, low, high)} at p = k+1..pmax
     truth: dict  # {p: V_p*}
+    beyond: dict = None  # {p: (central, low, high)} at requested depths past the ladder (extra_depths)
 
     @property
     def later_contained(self) -> int:
@@ -52,9 +75,14 @@ class CalibrationRow:
         """Smallest distance of a later value to the nearer end of its range, over the range's width."""
         return min(min(self.truth[p] - lo, hi - self.truth[p]) / (hi - lo) for p, (_, lo, hi) in self.later.items())
 
+    @property
+    def width(self) -> float:
+        return self.limit[2] - self.limit[1]
+
 
 def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
-              back_test_growth: float = BACKTEST_GROWTH) -> list[CalibrationRow]:
+              back_test_growth: float = BACKTEST_GROWTH, estimates: dict | None = None,
+              scale_windows: bool = True, extra_depths=()) -> list[CalibrationRow]:
     """For each k: the extrapolation of p <= k as `leadline table --at-depth k+1..pmax` forms it.
 
     The table declines below MIN_DEPTHS depths; the range it would print is computed anyway
@@ -69,14 +97,17 @@ def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
         values = [ladder[p] for p in depths]
         later = list(range(k + 1, pmax + 1))
         kwargs = dict(ground_state=PARISI, ground_state_uncertainty=PARISI_UNCERTAINTY, upper_bound=bound,
-                      at_depths=later, target_ratios=(), back_test_growth=back_test_growth)
+                      at_depths=[*later, *extra_depths], target_ratios=(), back_test_growth=back_test_growth,
+                      scale_windows=scale_windows,
+                      uncertainties=None if estimates is None else [estimates.get(p) for p in depths])
         table = extrapolate(depths, values, **kwargs)
         forced = table if table.declined is None else extrapolate(depths, values, min_depths=0, **kwargs)
         lim = forced.limit
         out.append(CalibrationRow(
             k, table.declined, (lim.central, lim.low, lim.high),
-            {p: (e.central, e.low, e.high) for p, e in forced.at_depth.items()},
+            {p: (e.central, e.low, e.high) for p, e in forced.at_depth.items() if p in later},
             {p: ladder[p] for p in later},
+            {p: (e.central, e.low, e.high) for p, e in forced.at_depth.items() if p not in later},
         ))
     return out
 
@@ -116,4 +147,29 @@ def render_growth_scan(growths=(0.25, 0.35, 0.4, 0.5, 0.75, 1.0)) -> str:
         r8 = next(r for r in rows if r.k == 8)
         lines.append(f"| {g:6.2f} | {'yes' if ok else 'no':<48} | {worst:12.2f} | {r8.limit[2] - r8.limit[1]:20.4f} | "
                      f"{r8.later[16][2] - r8.later[16][1]:19.4f} |")
+    return "\n".join(lines)
+
+
+def calibrate_deep(ks=DEEP_K_RANGE, scale_windows: bool = True) -> list[CalibrationRow]:
+    """:func:`calibrate` on the SK ladder p = 1..33 with its bath depths' estimates, also at p = 160."""
+    values, estimates = load_deep_ladder()
+    return calibrate(values, ks, estimates=estimates, scale_windows=scale_windows, extra_depths=(160,))
+
+
+def render_deep_calibration(rows: list[CalibrationRow], fixed: list[CalibrationRow] | None = None) -> str:
+    """The deep-ladder table of docs/extrapolation.md (with ``fixed``: the earlier rule's width beside)."""
+    lines = ["|  k |  V_inf | V_inf range      |  width | Parisi in range | later depths in range | worst margin "
+             "| V_160/GS range   |" + (" width, fixed windows |" if fixed else ""),
+             "|---:|-------:|------------------|-------:|-----------------|----------------------:|-------------:"
+             "|------------------|" + ("---------------------:|" if fixed else "")]
+    by_k = {r.k: r for r in fixed or ()}
+    for r in rows:
+        _, lo, hi = r.beyond[160]
+        margin = f"{r.worst_margin:12.2f}" if r.later else " " * 12
+        line = (f"| {r.k:2d} | {r.limit[0]:.4f} | {r.limit[1]:.4f} .. {r.limit[2]:.4f} | {r.width:.4f} | "
+                f"{'yes' if r.parisi_contained else 'NO':<15} | {f'{r.later_contained} of {len(r.later)}':>21} | {margin} "
+                f"| {lo / PARISI:.4f} .. {hi / PARISI:.4f} |")
+        if fixed:
+            line += f" {by_k[r.k].width:20.4f} |"
+        lines.append(line)
     return "\n".join(lines)

@@ -112,6 +112,10 @@ def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[st
             f"max({SCALE_GAIN_FRACTION:g} x the rise over the held-out depths, {SCALE_BEST_FACTOR:g} x the smallest "
             "error); a family's windows share its weight."
         )
+        if ex.window_scale > 1.0:
+            out.append(f"With {ex.n_depths} depths the windows and the hold-out are {ex.window_scale:.2f} times those "
+                       f"calibrated on {REFERENCE_DEPTHS} depths ({ex.n_depths}/{REFERENCE_DEPTHS}), so that each keeps "
+                       "its share of the ladder.")
     else:
         out.append("Back-test: too few depths to hold any out; no fit can be weighted.")
     if ex.upper_bound is not None:

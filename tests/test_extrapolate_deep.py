@@ -1,0 +1,116 @@
+"""The extrapolation rule on a deep ladder: this tool's SK sweep to p = 33 (tests/sk_deep_optima.csv).
+
+The values are checked against the published SK tables first; then, from the depths p <= k
+(k = 12..32), the headline range must contain V_p* at every later depth to p = 33 and the Parisi
+value, and the windows that grow with the ladder must keep the range from swinging when one depth
+is added (the fixed windows of the earlier rule widened it 4.7x from p <= 32 to p <= 33).
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+
+from leadline.kernels.extrapolate import FAMILIES, REFERENCE_DEPTHS, default_holdout, extrapolate, window_sizes
+from leadline.tests.extrapolation_calibration import (
+    DEEP_K_RANGE,
+    PARISI,
+    calibrate_deep,
+    load_deep_ladder,
+    load_ladder,
+)
+
+# Basso, Farhi, Marwaha, Villalonga, Zhou, "The Quantum Approximate Optimization Algorithm at High
+# Depth for MaxCut on Large-Girth Regular Graphs and the Sherrington-Kirkpatrick Model", TQC 2022,
+# arXiv:2110.14206: Table 1 (optimal SK energies, 4 decimals) at p = 17 and Table 2 (values at good,
+# not proven optimal, angles: lower bounds on the optimum) at p = 18, 19, 20.
+BASSO_TABLE1_P17 = 0.6773
+BASSO_TABLE2 = {18: 0.6813, 19: 0.6848, 20: 0.6879}
+# Boulebnane, Khan, Liu, Larson, Herman, Shaydulin, Pistoia, arXiv:2505.07929 (2025), abstract: at
+# p = 160 the optimized infinite-size SK energy is within eps <~ 2.2 % of the Parisi value: V_160 / GS
+# ~ 0.978 at their angles, so the optimum V_160* / GS is at least about that.
+PUBLISHED_RATIO_AT_160 = 1.0 - 0.022
+
+
+@pytest.fixture(scope="module")
+def deep_rows():
+    return calibrate_deep()
+
+
+@pytest.fixture(scope="module")
+def fixed_rows():
+    return calibrate_deep(ks=(32, 33), scale_windows=False)
+
+
+def test_the_deep_ladder_matches_the_published_sk_values():
+    values, estimates = load_deep_ladder()
+    assert sorted(values) == list(range(1, 34))
+    assert round(values[17], 4) == BASSO_TABLE1_P17
+    for p, published in BASSO_TABLE2.items():
+        assert values[p] > published, (p, values[p])
+    # the exact depths p = 13..16 are those of tests/sk_optima.csv (6 decimals there)
+    short = load_ladder()
+    for p in range(13, 17):
+        assert values[p] == pytest.approx(short[p], abs=5e-7) and estimates[p] is None
+    # bath depths carry the engine's estimate; V_p* never decreases (depth p can emulate p - 1)
+    assert all(estimates[p] is not None and 0 < estimates[p] < 1e-6 for p in range(17, 34))
+    assert all(values[p + 1] > values[p] for p in range(1, 33))
+
+
+def test_windows_and_hold_out_grow_with_the_ladder():
+    for n in range(2, REFERENCE_DEPTHS + 1):  # up to 12 depths: the calibrated rule, unchanged
+        assert default_holdout(n) == max(1, min(3, n // 4))
+        for m in (2, 3, 4):
+            assert window_sizes(n, m) == list(range(m + 1, min(n, m + 4) + 1))
+    # 33 depths: x 33/12; the cubic (4 parameters) over 14..22 depths instead of 5..8, 8 held out
+    assert window_sizes(33, 4) == [14, 17, 19, 22] and default_holdout(33) == 8
+    assert window_sizes(33, 4, scaled=False) == [5, 6, 7, 8] and default_holdout(33, scaled=False) == 3
+    # a window keeps its share of the ladder in 1/p: the cubic's widest window at k = 12 spans
+    # 1/p = 1/5 .. 1/12, at 33 depths 1/12 .. 1/33; its first depth is p_last x 5/12 in both
+    for n in (16, 24, 33, 48):
+        for m in (2, 3, 4):
+            sizes = window_sizes(n, m)
+            assert len(sizes) == 4 and sizes[-1] <= n
+            assert sizes[-1] / n == pytest.approx((m + 4) / REFERENCE_DEPTHS, abs=0.5 / n)
+
+
+def test_the_deep_range_contains_every_later_depth_and_the_parisi_value(deep_rows):
+    """From p <= k, k = 12..32, 231 predictions of later V_p* (to p = 33) and 22 of V_inf."""
+    assert [r.k for r in deep_rows] == list(DEEP_K_RANGE)
+    for r in deep_rows:
+        assert r.declined is None
+        assert r.later_contained == len(r.later) == 33 - r.k, r
+        assert r.parisi_contained, r
+        if r.later:
+            assert r.worst_margin > 0.03, r  # inside, not at an edge
+
+
+def test_the_deep_range_narrows_and_does_not_swing(deep_rows, fixed_rows):
+    width = {r.k: r.width for r in deep_rows}
+    assert width[33] < width[16] / 2  # more depths narrow it
+    last = [width[k] for k in range(28, 34)]
+    assert max(last) < 1.5 * min(last)  # no single depth moves it by more than half
+    # the fixed windows: a cubic over p = 29..33 reaches V_inf with weights summing to ~1.6e4, and
+    # the 1e-6 shortfalls of V_p* swing the range 4.7x wider from p <= 32 to p <= 33
+    fixed = {r.k: r.width for r in fixed_rows}
+    assert fixed[33] > 3 * fixed[32]
+
+
+def test_the_deep_prediction_at_p160_meets_the_published_value(deep_rows):
+    r33 = deep_rows[-1]
+    central, low, high = (x / PARISI for x in r33.beyond[160])
+    assert high >= PUBLISHED_RATIO_AT_160  # the range does not contradict V_160* / GS >~ 0.978
+    assert central >= PUBLISHED_RATIO_AT_160 - 0.005
+    assert low <= central <= high
+
+
+def test_every_family_and_window_at_33_depths_is_fitted_and_back_tested():
+    values, estimates = load_deep_ladder()
+    depths = sorted(values)
+    ex = extrapolate(depths, [values[p] for p in depths], uncertainties=[estimates[p] for p in depths],
+                     ground_state=PARISI, ground_state_uncertainty=1e-6)
+    assert ex.window_scale == pytest.approx(33 / 12) and ex.holdout == 8
+    assert {w.family for w in ex.fits} == set(FAMILIES)
+    assert all(w.back_test is not None and math.isfinite(w.back_test_error) for w in ex.fits)
+    assert ex.to_json()["window_scale"] == pytest.approx(2.75)
