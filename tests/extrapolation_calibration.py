@@ -23,11 +23,13 @@ from pathlib import Path
 
 from leadline.kernels.extrapolate import BACKTEST_GROWTH, MIN_DEPTHS, extrapolate
 from leadline.kernels.mixture import parse_mixture
-from leadline.kernels.reference import union_bound
+from leadline.kernels.reference import lookup_ground_state, union_bound
 
 SK_LADDER = Path(__file__).with_name("sk_optima.csv")
 SK_DEEP_LADDER = Path(__file__).with_name("sk_deep_optima.csv")
+Q3_DEEP_LADDER = Path(__file__).with_name("q3_deep_optima.csv")
 DEEP_K_RANGE = range(12, 34)
+Q3_K_RANGE = range(12, 25)
 PARISI = 0.763166  # Crisanti & Rizzo, Phys. Rev. E 65, 046137 (2002); shipped with +- 1e-6
 PARISI_UNCERTAINTY = 1e-6
 K_RANGE = range(6, 13)
@@ -39,13 +41,19 @@ def load_ladder(path: Path = SK_LADDER) -> dict[int, float]:
     return {int(r["p"]): float(r["value"]) for r in csv.DictReader(lines)}
 
 
-def load_deep_ladder() -> tuple[dict[int, float], dict[int, float | None]]:
-    """({p: V_p*}, {p: estimate or None}) of the SK ladder p = 1..33: tests/sk_optima.csv for
+def load_deep_ladder(name: str = "sk") -> tuple[dict[int, float], dict[int, float | None]]:
+    """({p: V_p*}, {p: estimate or None}) of a deep ladder. "sk": p = 1..33, tests/sk_optima.csv for
     p <= 12 (full precision) and tests/sk_deep_optima.csv beyond (12 decimals; bath depths with
-    the engine's error estimate)."""
-    values = {p: v for p, v in load_ladder().items() if p <= 12}
+    the engine's error estimate); "q3": the pure 3-spin ladder p = 1..24 of tests/q3_deep_optima.csv."""
+    if name == "sk":
+        values = {p: v for p, v in load_ladder().items() if p <= 12}
+        path = SK_DEEP_LADDER
+    elif name == "q3":
+        values, path = {}, Q3_DEEP_LADDER
+    else:
+        raise ValueError(f"unknown ladder {name!r} (sk or q3)")
     estimates: dict[int, float | None] = {p: None for p in values}
-    lines = [ln for ln in SK_DEEP_LADDER.read_text().splitlines() if ln.strip() and not ln.startswith("#")]
+    lines = [ln for ln in path.read_text().splitlines() if ln.strip() and not ln.startswith("#")]
     for r in csv.DictReader(lines):
         p = int(r["p"])
         values[p] = float(r["value"])
@@ -61,6 +69,7 @@ class CalibrationRow:
     later: dict  # {p: (central, low, high)} at p = k+1..pmax
     truth: dict  # {p: V_p*}
     beyond: dict = None  # {p: (central, low, high)} at requested depths past the ladder (extra_depths)
+    ground_state: float = PARISI  # the GS whose containment is checked (SK: the Parisi value)
 
     @property
     def later_contained(self) -> int:
@@ -68,7 +77,8 @@ class CalibrationRow:
 
     @property
     def parisi_contained(self) -> bool:
-        return self.limit[1] <= PARISI <= self.limit[2]
+        """The ground state (for SK the Parisi value) is inside the V_inf range."""
+        return self.limit[1] <= self.ground_state <= self.limit[2]
 
     @property
     def worst_margin(self) -> float:
@@ -82,7 +92,8 @@ class CalibrationRow:
 
 def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
               back_test_growth: float = BACKTEST_GROWTH, estimates: dict | None = None,
-              scale_windows: bool = True, extra_depths=()) -> list[CalibrationRow]:
+              scale_windows: bool = True, extra_depths=(), mixture: str = "2:0.5",
+              ground_state: float = PARISI, ground_state_uncertainty: float = PARISI_UNCERTAINTY) -> list[CalibrationRow]:
     """For each k: the extrapolation of p <= k as `leadline table --at-depth k+1..pmax` forms it.
 
     The table declines below MIN_DEPTHS depths; the range it would print is computed anyway
@@ -90,13 +101,13 @@ def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
     """
     ladder = load_ladder() if ladder is None else ladder
     pmax = max(ladder)
-    bound = union_bound(parse_mixture("2:0.5"))
+    bound = union_bound(parse_mixture(mixture))
     out = []
     for k in ks:
         depths = [p for p in sorted(ladder) if p <= k]
         values = [ladder[p] for p in depths]
         later = list(range(k + 1, pmax + 1))
-        kwargs = dict(ground_state=PARISI, ground_state_uncertainty=PARISI_UNCERTAINTY, upper_bound=bound,
+        kwargs = dict(ground_state=ground_state, ground_state_uncertainty=ground_state_uncertainty, upper_bound=bound,
                       at_depths=[*later, *extra_depths], target_ratios=(), back_test_growth=back_test_growth,
                       scale_windows=scale_windows,
                       uncertainties=None if estimates is None else [estimates.get(p) for p in depths])
@@ -108,6 +119,7 @@ def calibrate(ladder: dict[int, float] | None = None, ks=K_RANGE,
             {p: (e.central, e.low, e.high) for p, e in forced.at_depth.items() if p in later},
             {p: ladder[p] for p in later},
             {p: (e.central, e.low, e.high) for p, e in forced.at_depth.items() if p not in later},
+            ground_state,
         ))
     return out
 
@@ -150,15 +162,23 @@ def render_growth_scan(growths=(0.25, 0.35, 0.4, 0.5, 0.75, 1.0)) -> str:
     return "\n".join(lines)
 
 
-def calibrate_deep(ks=DEEP_K_RANGE, scale_windows: bool = True) -> list[CalibrationRow]:
-    """:func:`calibrate` on the SK ladder p = 1..33 with its bath depths' estimates, also at p = 160."""
-    values, estimates = load_deep_ladder()
-    return calibrate(values, ks, estimates=estimates, scale_windows=scale_windows, extra_depths=(160,))
+def calibrate_deep(ks=None, scale_windows: bool = True, ladder: str = "sk") -> list[CalibrationRow]:
+    """:func:`calibrate` on a deep ladder (:func:`load_deep_ladder`) with its bath depths' estimates,
+    also at p = 160. SK: k = 12..33 against the Parisi value. q3: k = 12..24 against the shipped
+    pure 3-spin ground state 1.15 +- 0.002 (a value from memory, see kernels/reference)."""
+    values, estimates = load_deep_ladder(ladder)
+    if ladder == "sk":
+        return calibrate(values, DEEP_K_RANGE if ks is None else ks, estimates=estimates,
+                         scale_windows=scale_windows, extra_depths=(160,))
+    match = lookup_ground_state(parse_mixture("3:1"))
+    return calibrate(values, Q3_K_RANGE if ks is None else ks, estimates=estimates, scale_windows=scale_windows,
+                     extra_depths=(160,), mixture="3:1", ground_state=match.ground_state,
+                     ground_state_uncertainty=match.uncertainty)
 
 
 def render_deep_calibration(rows: list[CalibrationRow], fixed: list[CalibrationRow] | None = None) -> str:
     """The deep-ladder table of docs/extrapolation.md (with ``fixed``: the earlier rule's width beside)."""
-    lines = ["|  k |  V_inf | V_inf range      |  width | Parisi in range | later depths in range | worst margin "
+    lines = ["|  k |  V_inf | V_inf range      |  width |   GS in range   | later depths in range | worst margin "
              "| V_160/GS range   |" + (" width, fixed windows |" if fixed else ""),
              "|---:|-------:|------------------|-------:|-----------------|----------------------:|-------------:"
              "|------------------|" + ("---------------------:|" if fixed else "")]
@@ -168,7 +188,7 @@ def render_deep_calibration(rows: list[CalibrationRow], fixed: list[CalibrationR
         margin = f"{r.worst_margin:12.2f}" if r.later else " " * 12
         line = (f"| {r.k:2d} | {r.limit[0]:.4f} | {r.limit[1]:.4f} .. {r.limit[2]:.4f} | {r.width:.4f} | "
                 f"{'yes' if r.parisi_contained else 'NO':<15} | {f'{r.later_contained} of {len(r.later)}':>21} | {margin} "
-                f"| {lo / PARISI:.4f} .. {hi / PARISI:.4f} |")
+                f"| {lo / r.ground_state:.4f} .. {hi / r.ground_state:.4f} |")
         if fixed:
             line += f" {by_k[r.k].width:20.4f} |"
         lines.append(line)

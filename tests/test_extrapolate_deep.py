@@ -3,7 +3,8 @@
 The values are checked against the published SK tables first; then, from the depths p <= k
 (k = 12..32), the headline range must contain V_p* at every later depth to p = 33 and the Parisi
 value, and the windows that grow with the ladder must keep the range from swinging when one depth
-is added (the fixed windows of the earlier rule widened it 4.7x from p <= 32 to p <= 33).
+is added (the fixed windows of the earlier rule widened it 4.7x from p <= 32 to p <= 33); the same
+back-test on the pure 3-spin sweep to p = 24 (tests/q3_deep_optima.csv).
 """
 
 from __future__ import annotations
@@ -114,3 +115,43 @@ def test_every_family_and_window_at_33_depths_is_fitted_and_back_tested():
     assert {w.family for w in ex.fits} == set(FAMILIES)
     assert all(w.back_test is not None and math.isfinite(w.back_test_error) for w in ex.fits)
     assert ex.to_json()["window_scale"] == pytest.approx(2.75)
+
+
+# ---------------------------------------------- the pure 3-spin ladder (tests/q3_deep_optima.csv)
+def claes_van_dam_p1(xi, dxi1):
+    """max over (gamma, beta) of V_1 = 2 g Im xi(cos 2b - i sin 2b exp(-2 xi'(1) g^2)) (Claes, van Dam,
+    Quantum 5, 542 (2021), the p = 1 energy of a mixed-spin model at infinite size; sign of g chosen
+    so that the maximum is positive)."""
+    import numpy as np
+    from scipy.optimize import minimize
+
+    def v(x):
+        g, b = x
+        return 2 * g * np.imag(xi(np.cos(2 * b) - 1j * np.sin(2 * b) * np.exp(-2 * dxi1 * g * g)))
+
+    starts = [(g, b) for g in np.linspace(-1, 1, 9) for b in np.linspace(-0.7, 0.7, 8)]
+    runs = [minimize(lambda x: -v(x), s, method="Nelder-Mead", options={"xatol": 1e-12, "fatol": 1e-15, "maxiter": 4000})
+            for s in starts]
+    return max(-r.fun for r in runs)
+
+
+def test_the_q3_ladder_starts_at_the_closed_form_and_increases():
+    values, estimates = load_deep_ladder("q3")
+    assert sorted(values) == list(range(1, 25))
+    assert values[1] == pytest.approx(claes_van_dam_p1(lambda z: z ** 3, 3.0), abs=1e-9)
+    assert all(values[p + 1] > values[p] for p in range(1, 24))
+    assert all((estimates[p] is None) == (p <= 16) for p in values)
+
+
+def test_the_q3_range_contains_every_later_depth_and_the_ground_state():
+    """From p <= k, k = 12..23, of the pure 3-spin ladder: every later V_p* (to p = 24) and the shipped
+    ground state 1.15 +- 0.002 (from memory: 0.8132 x sqrt(2), Montanari & Ricci-Tersenghi 2003)."""
+    rows = calibrate_deep(ladder="q3")
+    assert rows[0].ground_state == pytest.approx(1.15)
+    for r in rows:
+        assert r.declined is None and r.parisi_contained, r
+        assert r.later_contained == len(r.later) == 24 - r.k, r
+        if r.later:
+            assert r.worst_margin > 0.03, r
+    assert rows[-1].width < rows[4].width  # p <= 24 narrower than p <= 16
+
