@@ -155,3 +155,29 @@ def test_the_q3_range_contains_every_later_depth_and_the_ground_state():
             assert r.worst_margin > 0.03, r
     assert rows[-1].width < rows[4].width  # p <= 24 narrower than p <= 16
 
+
+
+def test_the_optimizers_shortfalls_do_not_move_the_deep_range():
+    """A bath V_p* can lie below the optimum by the optimizer's last gains (up to ~1e-6). Raising every
+    bath depth by a random shortfall of up to 1e-6 moves the p <= 33 range by far less than its width:
+    the windows no longer amplify it (with the last 5 depths a cubic did, a thousandfold)."""
+    import numpy as np
+
+    values, estimates = load_deep_ladder()
+    depths = sorted(values)
+
+    def limit(vals, scale_windows=True):
+        return extrapolate(depths, vals, uncertainties=[estimates[p] for p in depths], ground_state=PARISI,
+                           ground_state_uncertainty=1e-6, scale_windows=scale_windows).limit
+
+    base = limit([values[p] for p in depths])
+    rng = np.random.default_rng(0)
+    for _ in range(3):
+        raised = [values[p] + (rng.uniform(0.0, 1e-6) if estimates[p] else 0.0) for p in depths]
+        moved = limit(raised)
+        assert abs(moved.low - base.low) < 1e-4 and abs(moved.central - base.central) < 1e-4, (moved, base)
+    # the fixed windows, for contrast: the same kind of shortfall moves their low end by more than 1e-3
+    fixed = limit([values[p] for p in depths], scale_windows=False)
+    shifts = [abs(limit([values[p] + (rng.uniform(0.0, 1e-6) if estimates[p] else 0.0) for p in depths],
+                        scale_windows=False).low - fixed.low) for _ in range(3)]
+    assert max(shifts) > 1e-3, shifts
