@@ -22,7 +22,7 @@ Fit families (each over several windows "the last w finished depths"):
   known ground-state energy GS (the conjecture V_p* -> GS, as for SK); V_inf =
   GS by assumption, not by fit.  Only when GS is known.
 
-Depths may carry an uncertainty (depths from an approximate engine); the fits
+Depths may carry an uncertainty (the bath engine's error estimate); the fits
 are then weighted least squares with weights 1/sigma^2 (exact depths get a
 sigma far below any given one), and standard errors come from the covariance.
 

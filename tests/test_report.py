@@ -636,6 +636,6 @@ def test_depth_uncertainties_in_the_records_weight_the_fits():
     report = build_report(_sk_ladder_study(12, uncertainty=lambda p: 2e-5 if p > 9 else None))
     ex = report.ensembles[0].extrapolation
     assert ex.uncertain_depths == 3 and all(w.fit.sigmas is not None for w in ex.fits)
-    assert "3 depth(s) carry an uncertainty" in render_markdown(report)
+    assert "3 depth(s) carry an error estimate (bath engine)" in render_markdown(report)
     plain = build_report(_sk_ladder_study(12)).ensembles[0].extrapolation
     assert plain.uncertain_depths == 0 and all(w.fit.sigmas is None for w in plain.fits)

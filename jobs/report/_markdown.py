@@ -122,8 +122,8 @@ def _extrapolation_markdown(ex: Extrapolation, value_name: str = "V") -> list[st
         out.append(f"A fit whose curve rises above the upper bound ({ex.bound_name}) = {fmt(ex.upper_bound)} "
                    "is flagged unphysical (weight 0).")
     if ex.uncertain_depths:
-        out.append(f"{ex.uncertain_depths} depth(s) carry an uncertainty (approximate engine): fits weighted by "
-                   "1/uncertainty^2, exact depths far above them.")
+        out.append(f"{ex.uncertain_depths} depth(s) carry an error estimate (bath engine): fits weighted by "
+                   "1/estimate^2, exact depths far above them.")
     out.append("")
     rows = []
     for w in ex.fits:
