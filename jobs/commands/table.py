@@ -33,8 +33,9 @@ def table_command(
     known, V_p*/ALG and whether V_p* exceeds ALG where the algorithmic threshold
     is known, the final gradient norm; then the extrapolation: fit families
     (polynomials in 1/p of degree 1-3, a free power law V_inf - A p^-alpha, the
-    power law anchored at GS) over several windows, each back-tested on held-out
-    depths and weighted by its back-test error; from 8 depths on, the headline
+    power law anchored at GS) over several windows of the last depths (longer
+    beyond 12 depths, in proportion), each back-tested on held-out depths and
+    weighted by its back-test error; from 8 depths on, the headline
     V_inf with a range from the weighted fits, and the predicted depths for
     ratios 0.95, 0.99 and ALG (fewer depths: what each family gives, no
     headline). Extrapolations are estimates, not bounds (docs/extrapolation.md).
