@@ -533,6 +533,34 @@ def test_plot_draws_every_family_and_the_back_test(tmp_path):
     assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 20
 
 
+def test_plot_marks_the_bath_depths(tmp_path, drawn):
+    """Exact depths are dots, bath-engine depths diamonds with their error estimate as an error bar and
+    a legend entry naming them (this tool's SK sweep to p = 33, tests/sk_deep_optima.csv), in the
+    figure and in its inset."""
+    from leadline.jobs.report._plots import BATH_MARKER
+    from leadline.tests.extrapolation_calibration import load_deep_ladder
+
+    values, estimates = load_deep_ladder()
+    depths = [{"p": p, "value": v, "gamma": [], "beta": [], "gradient_norm": None, "error_estimate": estimates[p],
+               "method": "bath" if estimates[p] else "exact"} for p, v in sorted(values.items())]
+    study = InMemoryStudy("deep", [({"label": "sk", "kind": "dense", "xi": "2:0.5", "reference": {}}, depths)])
+    write_plots(build_report(study), tmp_path / "deep.png")
+    (ax,) = [a for a in drawn[0].axes if a.get_xlabel()]
+
+    def series(axes, marker):
+        return [line for line in axes.get_lines() if line.get_linestyle() == "None" and line.get_marker() == marker]
+
+    (dots,) = [line for line in series(ax, "o") if line.get_label().startswith("sk: ")]  # (not the held-out rings)
+    (diamonds,) = series(ax, BATH_MARKER)
+    assert list(dots.get_xdata()) == [1.0 / p for p in range(1, 17)]
+    assert list(diamonds.get_xdata()) == [1.0 / p for p in range(17, 34)]
+    assert list(diamonds.get_ydata()) == [values[p] for p in range(17, 34)]
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert f"  bath engine, p = 17..33 (error estimate <= {max(estimates[p] for p in range(17, 34)):.1e})" in labels
+    (inset,) = [a for a in ax.child_axes if getattr(a, "get_title", lambda: "")().startswith("zoom")]
+    assert series(inset, BATH_MARKER) and all(x < 1.0 / 16 for x in series(inset, BATH_MARKER)[0].get_xdata())
+
+
 # ----------------------------------------------- honest extrapolation output
 def _sk_ladder_study(pmax, name="sk-ladder", kind="dense", uncertainty=None):
     """The stored SK optima of this tool (tests/sk_optima.csv) up to pmax, held in memory."""

@@ -21,7 +21,8 @@ def plot_command(
 ) -> None:
     """Two figures of a study: V_p* vs 1/p per ensemble, and the optimal angle schedules.
 
-    FILE.png: stored V_p* (markers), each extrapolation family's curve out to
+    FILE.png: stored V_p* (dots: exact depths, diamonds: bath-engine depths),
+    each extrapolation family's curve out to
     1/p = 0 (one line style per family; faint when not used), the held-out
     depths of the back-test (rings) with the back-test predictions (x), the
     headline V_inf and its range at 1/p = 0 (an estimate, not a bound), and

@@ -122,6 +122,29 @@ def inset_extent(report: StudyReport) -> float | None:
     return 1.1 / min(firsts) if firsts else None
 
 
+#: marker of depths from the bosonic-bath engine (exact depths: "o"), so a figure says which is which
+BATH_MARKER = "D"
+
+
+def _draw_values(ax, rows, color, label: str | None = None, ms: float | None = None) -> None:
+    """V_p* of a dense ensemble: exact depths as dots, bath-engine depths as diamonds with their error
+    estimate as an error bar (too small to see at most scales; the legend states the largest)."""
+    size = {} if ms is None else {"ms": ms}
+    exact = [r for r in rows if r.method != "bath"]
+    bath = [r for r in rows if r.method == "bath"]
+    if exact:
+        ax.plot([r.inv_p for r in exact], [r.value for r in exact], "o", color=color, label=label, **size)
+    if bath:
+        largest = max((r.error_estimate or 0.0) for r in bath)
+        bath_label = None
+        if label is not None:
+            first = f"{label}, " if not exact else "  "
+            bath_label = (f"{first}bath engine, p = {bath[0].p}..{bath[-1].p} (error estimate <= {largest:.1e})"
+                          if len(bath) > 1 else f"{first}bath engine, p = {bath[0].p} (error estimate {largest:.1e})")
+        ax.errorbar([r.inv_p for r in bath], [r.value for r in bath], yerr=[r.error_estimate or 0.0 for r in bath],
+                    fmt=BATH_MARKER, color=color, label=bath_label, **({"ms": 0.8 * ms} if ms else {"ms": 5}))
+
+
 def _draw_zoom(ax, report: StudyReport, zoomed) -> None:
     """Inset (upper right) magnifying the last depths and the fits out to 1/p = 0."""
     x_max = inset_extent(report)
@@ -129,8 +152,7 @@ def _draw_zoom(ax, report: StudyReport, zoomed) -> None:
         return
     inset = ax.inset_axes([0.47, 0.4, 0.5, 0.46])
     for rep, color in zoomed:
-        rows = [r for r in rep.rows if r.inv_p <= x_max]
-        inset.plot([r.inv_p for r in rows], [r.value for r in rows], "o", color=color, ms=4)
+        _draw_values(inset, [r for r in rep.rows if r.inv_p <= x_max], color, ms=4)
         _draw_extrapolation(inset, rep.extrapolation, color, None)
         if rep.references.ground_state is not None:
             inset.axhline(rep.references.ground_state, color=color, ls="--", lw=1.0)
@@ -161,7 +183,8 @@ def write_plots(report: StudyReport, output: Path) -> list[Path]:
     """Write the two figures; return their paths.
 
     ``output`` (FILE.png, 1100 x 550 pixels, legend at the right): V_p* against 1/p per ensemble,
-    markers for the stored values, each fit family's curve out to 1/p = 0 (one
+    markers for the stored values (dots: exact depths; diamonds: bath-engine depths, with their
+    error estimate as an error bar), each fit family's curve out to 1/p = 0 (one
     line style per family, its best back-tested window; faint when the family
     is not used), the held-out depths of the back-test ringed with the
     back-test predictions marked x, the headline V_inf and its range as an
@@ -238,7 +261,7 @@ def value_figure(report: StudyReport):
             ax.plot(x, y, "x--", color=color, lw=0.8,
                     label=f"{rep.label}: q = {rep.q}, D = {rep.degree:g}, sqrt(D)(nu*-1/2)2/sqrt(q)")
             continue
-        ax.plot(x, y, "o", color=color, label=f"{rep.label}: {rep.description}")
+        _draw_values(ax, rep.rows, color, label=f"{rep.label}: {rep.description}")
         if rep.extrapolation is not None:
             _draw_extrapolation(ax, rep.extrapolation, color, rep.label)
             zoomed.append((rep, color))
