@@ -537,3 +537,135 @@ def test_after_a_confirmation_that_does_not_stop_the_gradients_are_forward_again
         assert kinds[3] == "forward" and kinds[-1] == "central", kinds  # forward again; the stop confirmed
     else:
         assert set(kinds[2:]) == {"central"}, kinds
+
+
+# ------------------------------------------------- engine breakdowns never become V_p*
+class _BreaksDown(_Smooth):
+    """The smooth run_map, with chosen calls returning what a broken-down engine run gave at SK p = 20 in a
+    sweep (V = 2.4e17 with error estimate 0.17, 10 radians from the optimum): ``trial`` breaks the first
+    line-search trial, ``gradient`` one point of the second gradient, ``final`` the final ladder."""
+
+    def __init__(self, p, where):
+        super().__init__(p)
+        self.where, self.batches, self.trials, self.calls = where, 0, 0, []
+
+    def __call__(self, func, tasks):
+        tasks = list(tasks)
+        out = super().__call__(func, tasks)
+        self.calls.append([np.concatenate([t[1], t[2]]) for t in tasks])
+        search = all("cutoff" in t[3] for t in tasks)
+        if search and len(tasks) == 1:
+            self.trials += 1
+            if self.where == "trial" and self.trials == 1:
+                out[0] = (2.4e17, 0.17, 0.0)
+        elif search:
+            self.batches += 1
+            if self.where == "gradient" and self.batches == 2:
+                out[3] = (-6.6e19, 0.29, 0.0)
+        elif self.where == "final":
+            out[0] = (float("nan"), 0.0, 0.0)
+        return out
+
+
+def _smooth_start(f, p):
+    return (f.star[:p] + 0.02 * np.cos(np.arange(p)), f.star[p:] - 0.02 * np.sin(np.arange(p)))
+
+
+def test_a_broken_down_trial_step_is_no_gain():
+    from leadline.kernels.bath import optimize_bath_depth
+
+    p = 6
+    f = _BreaksDown(p, "trial")
+    r = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[_smooth_start(f, p)],
+                            restarts=0, inverse_hessian=0.05 * np.eye(2 * p))
+    assert r.converged and abs(r.value) < 1e-8, (r.value, r.message)  # backtracked and went on to the maximum (0)
+    assert sum(h.get("breakdowns", 0) for h in r.history) == 1
+
+
+def test_a_breakdown_beside_the_search_point_ends_the_search_at_the_best_point():
+    from leadline.kernels.bath import optimize_bath_depth
+
+    p = 6
+    f = _BreaksDown(p, "gradient")
+    r = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[_smooth_start(f, p)],
+                            restarts=0, inverse_hessian=0.05 * np.eye(2 * p))
+    assert not r.converged and "broke down" in r.message
+    # reported: the best point before it, evaluated again by the final (ladder) run; never the broken value
+    z = np.concatenate([r.gamma, r.beta])
+    assert r.value == pytest.approx(f.value(z), abs=1e-15) and -1.0 < r.value <= 0.0
+    assert r.value >= f.value(np.concatenate(_smooth_start(f, p)))
+
+
+def test_a_broken_down_final_point_is_refused():
+    from leadline.kernels.bath import EngineBreakdown, optimize_bath_depth
+
+    p = 6
+    f = _BreaksDown(p, "final")
+    with pytest.raises(EngineBreakdown, match="final point"):
+        optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[_smooth_start(f, p)],
+                            restarts=0, inverse_hessian=0.05 * np.eye(2 * p))
+
+
+def test_trial_steps_are_at_most_max_step_long():
+    """A quasi-Newton model far too large (100 x I, as after an update across a tiny noisy step) proposes
+    steps of several radians; every trial stays within MAX_STEP of the point it starts from, and the
+    search still reaches the maximum."""
+    from leadline.kernels.bath import _optimize, optimize_bath_depth
+
+    p = 6
+    f = _BreaksDown(p, "none")
+    r = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[_smooth_start(f, p)],
+                            restarts=0, inverse_hessian=100.0 * np.eye(2 * p))
+    assert abs(r.value) < 1e-8, (r.value, r.message)
+    base, longest = None, 0.0
+    for points in f.calls:
+        if len(points) > 1:
+            base = np.mean(points, axis=0)  # a gradient's stencil: its centre, to within the step 1e-4
+        elif base is not None:
+            longest = max(longest, float(np.linalg.norm(points[0] - base)))
+    assert 0.1 < longest <= _optimize.MAX_STEP + 1e-3, longest
+
+
+def test_plausible_values_of_an_engine_run():
+    """No energy density exceeds the first-moment bound sqrt(2 ln 2 xi(1)) (0.8326 for SK; Derrida,
+    Phys. Rev. B 24, 2613 (1981), the random energy model bound): beyond it, not finite, or with an
+    error estimate above 1e-2, a run broke down."""
+    from leadline.kernels.bath import plausible
+
+    sk = parse_mixture("2:0.5")
+    assert plausible(sk, 0.7633, 1e-7) and plausible(sk, -0.5, 1e-6) and plausible(sk, 0.83, 1e-3)
+    assert not plausible(sk, 0.84, 1e-7) and not plausible(sk, 2.4e17, 0.17) and not plausible(sk, 0.5, 0.02)
+    assert not plausible(sk, float("nan"), 0.0) and not plausible(sk, 0.5, float("inf"))
+
+
+def test_a_spoiled_model_is_started_again_from_the_preconditioner(monkeypatch):
+    """After the model's first update its directions gain nothing (what updates across short, noisy steps
+    did at SK p = 20: ten trial steps along two directions, all below the current value; emulated here by
+    the next ten trials returning no gain): the model starts again from the preconditioner once, and the
+    search reaches the maximum instead of stopping where it was."""
+    from leadline.kernels.bath import _optimize, optimize_bath_depth
+
+    real_update, real_values = _optimize.bfgs_update, _optimize._Search.values
+    state = {"updated": False, "blocked": 0}
+
+    def update(Hinv, s, y):
+        out = real_update(Hinv, s, y)
+        state["updated"] = state["updated"] or out is not None
+        return out
+
+    def values(self, points):
+        out = real_values(self, points)
+        if state["updated"] and state["blocked"] < 10:
+            state["blocked"] += len(points)
+            return [(-np.inf, e) for _, e in out]
+        return out
+
+    monkeypatch.setattr(_optimize, "bfgs_update", update)
+    monkeypatch.setattr(_optimize._Search, "values", values)
+    p = 6
+    f = _BreaksDown(p, "none")
+    r = optimize_bath_depth(parse_mixture("2:0.5"), p, engine={"tolerance": 1e-8}, run_map=f, starts=[_smooth_start(f, p)],
+                            restarts=0, inverse_hessian=0.05 * np.eye(2 * p))
+    assert state["blocked"] == 10
+    assert sum(h.get("model_restarts", 0) for h in r.history) == 1
+    assert r.converged and abs(r.value) < 1e-8, (r.value, r.message)

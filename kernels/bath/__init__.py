@@ -49,6 +49,8 @@ _WHERE = {
     "preconditioner": "_optimize",
     "pad_inverse_hessian": "_optimize",
     "stalled": "_optimize",
+    "EngineBreakdown": "_optimize",
+    "plausible": "_optimize",
     "exact_fourier_gradient": "_optimize",
     "hessian_depth": "_optimize",
     "search_settings": "_optimize",

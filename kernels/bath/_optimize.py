@@ -34,7 +34,14 @@ What makes a depth cheap (each measured, docs/bath.md):
   identity start.
 * **Line searches on values.**  A trial step costs one evaluation, not a gradient: the step
   along the quasi-Newton direction is accepted (or refined by a parabola through the values)
-  before the next gradient is taken.
+  before the next gradient is taken.  No trial step is longer than ``MAX_STEP`` radians, and a
+  direction with no gain first sends the model back to the preconditioner once (a BFGS restart).
+
+Breakdowns: an engine run far from the optimum can break down (seen at SK p = 20: V = 2.4e17 with
+error estimate 0.17 at a trial 2.5 radians away).  A run whose value is outside the first-moment
+bound or whose own estimate is above ``BREAKDOWN_ESTIMATE`` (:func:`plausible`) is no gain for a line
+search; next to a gradient it ends the search at the best point so far (not converged, the message
+says so); at the final point it raises :class:`EngineBreakdown`.  No such value is ever reported.
 
 Stopping: when the predicted gain of the next quasi-Newton step, g^T H g / 2, is below
 tolerance / 10, when the last 3 gradients together gained less than tolerance / 5 (the gradient's
@@ -65,6 +72,7 @@ from ..mixture import Mixture
 from ..optimize import canonical_angles, start_candidates
 
 __all__ = ["BathOptimization", "optimize_bath_depth", "bath_point", "fourier_basis", "default_stages",
+           "EngineBreakdown", "plausible",
            "difference_step", "stalled", "search_settings", "preconditioner", "pad_inverse_hessian",
            "exact_fourier_gradient", "hessian_depth"]
 
@@ -150,6 +158,16 @@ DIFFERENCES = "hybrid"
 FORWARD_AFTER_CONFIRM = False
 #: the search runs at this fraction of the tolerance as its fixed cut-off
 SEARCH_CUTOFF = 0.1
+#: longest trial step of a line search (2-norm in Fourier coordinates = 2-norm of the change of the
+#: 2p angles, radians): a quasi-Newton model updated across a tiny, noisy step can point 10 radians
+#: away (seen at SK p = 20: |d| = 9.8), where the truncated engine breaks down; 0.5 is several times
+#: any step the SK and q = 3 sweeps took from INTERP (common practice: a step-length limit, as in
+#: line searches that cap the step at a multiple of the variables' size)
+MAX_STEP = 0.5
+#: an engine run whose own error estimate is above this, or whose value lies outside the first-moment
+#: bound |V| <= sqrt(2 ln 2 xi(1)) (no energy density exceeds it), broke down: a line search treats it as
+#: no gain, a gradient next to it ends the search, and the final point must not be one
+BREAKDOWN_ESTIMATE = 1e-2
 #: stop when the last STALL_GRADIENTS gradients together gained less than STALL_FRACTION x tolerance: the
 #: tail of a deep depth gains 1e-8 .. 1e-7 per gradient while the predicted gain of the noisy gradient
 #: stays above tolerance / 10 (measured on the SK and q = 3 sweeps' records at p = 17..22: 23% fewer
@@ -316,6 +334,29 @@ def pad_inverse_hessian(Hinv, p: int) -> np.ndarray:
     return out
 
 
+def bfgs_update(Hinv: np.ndarray, s: np.ndarray, y: np.ndarray) -> np.ndarray | None:
+    """The BFGS update of the inverse Hessian for step s and gradient change y (of the function
+    minimized, -V); None (no update) when s.y is not clearly positive."""
+    sy = float(s @ y)
+    if not sy > 1e-12 * float(np.linalg.norm(s) * np.linalg.norm(y)):
+        return None
+    rho = 1.0 / sy
+    V = np.eye(s.size) - rho * np.outer(s, y)
+    return V @ Hinv @ V.T + rho * np.outer(s, s)
+
+
+class EngineBreakdown(RuntimeError):
+    """The bath engine returned a value it cannot have (outside the first-moment bound, not finite,
+    or with an error estimate above BREAKDOWN_ESTIMATE) where the optimizer needed a number."""
+
+
+def plausible(mixture: Mixture, value: float, estimate: float) -> bool:
+    """Whether one engine run's (value, error estimate) can be trusted at all (see BREAKDOWN_ESTIMATE)."""
+    bound = math.sqrt(2.0 * math.log(2.0) * float(mixture.xi(1.0)))
+    return (math.isfinite(value) and math.isfinite(estimate) and estimate <= BREAKDOWN_ESTIMATE
+            and abs(value) <= bound + estimate)
+
+
 class _Search:
     """V_p at one truncation along the search, and its central-difference gradient, one map per batch."""
 
@@ -343,8 +384,16 @@ class _Search:
         return out
 
     def values(self, points) -> list[tuple[float, float]]:
-        """(value, estimate) at each point: the line search's trial steps."""
-        return [(o[0], o[1]) for o in self._map(points)]
+        """(value, estimate) at each point: the line search's trial steps; a breakdown (see
+        :func:`plausible`) counts as -inf, no gain, and is recorded."""
+        out = []
+        for o in self._map(points):
+            if plausible(self.mixture, o[0], o[1]):
+                out.append((o[0], o[1]))
+            else:
+                self.record["breakdowns"] = self.record.get("breakdowns", 0) + 1
+                out.append((-math.inf, o[1]))
+        return out
 
     def gradient(self, x, known=None, kind="central", curvature=None):
         """(value, estimate, gradient) at x; ``known`` = (value, estimate) at x if evaluated already.
@@ -367,6 +416,11 @@ class _Search:
                 y[j] += sign * STEP
                 points.append(y)
         out = self._map(points)
+        bad = [o for o in out if not plausible(self.mixture, o[0], o[1])]
+        if bad:
+            self.record["breakdowns"] = self.record.get("breakdowns", 0) + len(bad)
+            raise EngineBreakdown(f"the bath engine broke down next to the search point ({len(bad)} of "
+                                  f"{len(out)} difference points: value {bad[0][0]:.3g}, estimate {bad[0][1]:.1e})")
         if known is not None:
             out = [(*known, 0.0), *out]
         self.gradients += 1
@@ -406,6 +460,8 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
     else:
         Hinv = np.array(hessian, float)
     n = 2 * q
+    H0 = np.array(Hinv, float)  # the preconditioner: where a model that stopped gaining starts again
+    fresh = True  # the model is H0 (no update since the start or the last restart)
     x = np.zeros(n)
     # hybrid: forward differences while far from the optimum, central ones before any stop and after
     kind = "central" if DIFFERENCES == "central" else "forward"
@@ -427,62 +483,76 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
 
     value, error, grad = take_gradient(x)
     message, converged = "iteration limit", False
-    for _ in range(maxiter):
-        d = Hinv @ grad
-        predicted = float(grad @ d)  # first-order gain of the full step; g^T H g / 2 is the quadratic model's
-        if np.max(np.abs(grad)) <= gtol:
-            if confirm():
-                continue
-            message, converged = "gradient below gtol", True
-            break
-        if predicted / 2.0 <= SEARCH_CUTOFF * tolerance:
-            if confirm():
-                continue
-            message, converged = "predicted gain of the next step below tolerance / 10", True
-            break
-        if stalled(record["values"], tolerance):
-            if confirm():
-                continue
-            message = f"gain over the last {STALL_GRADIENTS} gradients below tolerance / {1 / STALL_FRACTION:g}"
-            converged = True
-            break
-        # line search on values: the full step, refined by the parabola through V(0), V'(0), V(1)
-        (v1, e1), = search.values([x + d])
-        steps = [(1.0, v1, e1)]
-        curvature = v1 - value - predicted
-        if curvature < 0:
-            a = min(max(-predicted / (2.0 * curvature), 0.1), 4.0)
-            if not 0.7 <= a <= 1.4:
-                (va, ea), = search.values([x + a * d])
-                steps.append((a, va, ea))
-        a, v_new, e_new = max(steps, key=lambda s: s[1])
-        tries = 0
-        while v_new <= value and tries < 3:
-            a *= 0.25
-            (v_new, e_new), = search.values([x + a * d])
-            tries += 1
-        if v_new <= value:
-            if confirm():
-                continue
-            message, converged = "no gain along the quasi-Newton direction (at the search truncation)", True
-            break
-        x_new = x + a * d
-        if FORWARD_AFTER_CONFIRM and DIFFERENCES == "hybrid":
-            kind = "forward"
-        v_new, e_new, g_new = take_gradient(x_new, known=(v_new, e_new))
-        s, y = x_new - x, -(g_new - grad)  # BFGS on -V
-        sy = float(s @ y)
-        if sy > 1e-12 * float(np.linalg.norm(s) * np.linalg.norm(y)):
-            rho = 1.0 / sy
-            V = np.eye(n) - rho * np.outer(s, y)
-            Hinv = V @ Hinv @ V.T + rho * np.outer(s, s)
-        x, value, error, grad = x_new, v_new, e_new, g_new
+    try:
+        for _ in range(maxiter):
+            d = Hinv @ grad
+            predicted = float(grad @ d)  # first-order gain of the full step; g^T H g / 2 is the quadratic model's
+            norm_d = float(np.linalg.norm(d))
+            a_max = 4.0 if norm_d <= 0 else min(4.0, MAX_STEP / norm_d)  # no trial step longer than MAX_STEP
+            if np.max(np.abs(grad)) <= gtol:
+                if confirm():
+                    continue
+                message, converged = "gradient below gtol", True
+                break
+            if predicted / 2.0 <= SEARCH_CUTOFF * tolerance:
+                if confirm():
+                    continue
+                message, converged = "predicted gain of the next step below tolerance / 10", True
+                break
+            if stalled(record["values"], tolerance):
+                if confirm():
+                    continue
+                message = f"gain over the last {STALL_GRADIENTS} gradients below tolerance / {1 / STALL_FRACTION:g}"
+                converged = True
+                break
+            # line search on values: the full step (at most MAX_STEP long), refined by the parabola
+            # through V(0), V'(0) and V there
+            a0 = min(1.0, a_max)
+            (v1, e1), = search.values([x + a0 * d])
+            steps = [(a0, v1, e1)]
+            curvature = (v1 - value - predicted * a0) / (a0 * a0)
+            if curvature < 0:
+                a = min(max(-predicted / (2.0 * curvature), 0.1 * a0), a_max)
+                if not 0.7 * a0 <= a <= 1.4 * a0:
+                    (va, ea), = search.values([x + a * d])
+                    steps.append((a, va, ea))
+            a, v_new, e_new = max(steps, key=lambda s: s[1])
+            tries = 0
+            while v_new <= value and tries < 3:
+                a *= 0.25
+                (v_new, e_new), = search.values([x + a * d])
+                tries += 1
+            if v_new <= value:
+                if confirm():
+                    continue
+                if not fresh:
+                    # updates across short, noisy steps can spoil the model (seen at SK p = 20: a step 40x
+                    # shorter than proposed, then directions with no gain): start it again from the
+                    # preconditioner once before stopping (common practice: restarting BFGS)
+                    Hinv, fresh = H0.copy(), True
+                    record["model_restarts"] = record.get("model_restarts", 0) + 1
+                    continue
+                message, converged = "no gain along the quasi-Newton direction (at the search truncation)", True
+                break
+            x_new = x + a * d
+            if FORWARD_AFTER_CONFIRM and DIFFERENCES == "hybrid":
+                kind = "forward"
+            v_new, e_new, g_new = take_gradient(x_new, known=(v_new, e_new))
+            updated = bfgs_update(Hinv, x_new - x, -(g_new - grad))  # BFGS on -V
+            if updated is not None:
+                Hinv, fresh = updated, False
+            x, value, error, grad = x_new, v_new, e_new, g_new
+    except EngineBreakdown as exc:  # a gradient next to a breakdown: keep the best point so far
+        message, converged = str(exc), False
     search_value, search_error, x, grad = search.best
     g, b = search.angles(x)
     # the final point to the tolerance (the ladder of evaluate_bath), one checkpointed task
     final = run_map(bath_point, [(mixture, g, b, dict(engine))])[0]
     search.evaluations += 1
     search.seconds += final[2]
+    if not plausible(mixture, final[0], final[1]):
+        raise EngineBreakdown(f"the bath engine broke down at the final point (value {final[0]:.3g}, "
+                              f"estimate {final[1]:.1e}): no V_p* to report")
     gnorm = float(np.max(np.abs(grad)))
     return {
         "value": float(final[0]), "error_estimate": float(final[1]), "gamma": g, "beta": b, "gradient_norm": gnorm,
