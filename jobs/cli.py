@@ -123,8 +123,22 @@ def main(argv: list[str] | None = None) -> None:
     interrupted, restore = _note_interrupts()
     try:
         _main(command, argv, interrupted)
+    except SystemExit as exc:
+        if exc.code not in (0, None):
+            _quiet_leftovers()
+        raise
     finally:
         restore()
+
+
+def _quiet_leftovers() -> None:
+    """After the one line of a failed command: background writes that the failure cut short (zarr's
+    asyncio tasks, when a full disk stops a store write) can report their own exceptions when they are
+    collected at exit ("Future exception was never retrieved"), lines about consequences of the error
+    already reported that would break its one-line promise. asyncio's logger is kept to critical."""
+    import logging
+
+    logging.getLogger("asyncio").setLevel(logging.CRITICAL)
 
 
 def _main(command, argv, interrupted: list[int]) -> None:
