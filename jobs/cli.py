@@ -179,6 +179,10 @@ def _main(command, argv, interrupted: list[int]) -> None:
             sys.exit(130)
         if "Exit" in kinds:
             sys.exit(getattr(exc, "exit_code", 0))
+        if "EngineBreakdown" in kinds:
+            # the bath engine gave a value it cannot have where a result was due: nothing was reported
+            print(f"leadline: error: {exc}", file=sys.stderr)
+            sys.exit(1)
         if "PassRangeError" in kinds:
             # a pass whose weights left the double range (kernels/exact/_ranges.py): one line, like bad input
             print(f"leadline: error: {exc}", file=sys.stderr)

@@ -669,3 +669,23 @@ def test_a_spoiled_model_is_started_again_from_the_preconditioner(monkeypatch):
     assert state["blocked"] == 10
     assert sum(h.get("model_restarts", 0) for h in r.history) == 1
     assert r.converged and abs(r.value) < 1e-8, (r.value, r.message)
+
+
+BROKEN_FINAL = """
+import sys
+import leadline.kernels.bath._optimize as O
+real = O.bath_point
+O.bath_point = lambda task: (float("nan"), 0.0, 0.0) if "cutoff" not in task[3] else real(task)
+from leadline.jobs.cli import main
+main(sys.argv[1:])
+"""
+
+
+def test_optimize_refuses_a_broken_down_final_point_in_one_line(tmp_path):
+    """`optimize --method bath` whose final (ladder) evaluation breaks down: one line, exit 1, no angle file."""
+    r = subprocess.run([sys.executable, "-c", BROKEN_FINAL, "optimize", "--xi", "2:0.5", "--depth", "2", "--method", "bath",
+                        "--output", str(tmp_path / "a.json")], capture_output=True, text=True, timeout=300)
+    lines = r.stderr.strip().splitlines()
+    assert r.returncode == 1 and len(lines) == 1, r.stderr
+    assert lines[0].startswith("leadline: error: the bath engine broke down at the final point of depth")
+    assert not (tmp_path / "a.json").exists() and r.stdout.strip() == ""

@@ -551,8 +551,9 @@ def _stage(mixture, p, q, g0, b0, *, engine, run_map, gtol, maxiter, callback, r
     search.evaluations += 1
     search.seconds += final[2]
     if not plausible(mixture, final[0], final[1]):
-        raise EngineBreakdown(f"the bath engine broke down at the final point (value {final[0]:.3g}, "
-                              f"estimate {final[1]:.1e}): no V_p* to report")
+        raise EngineBreakdown(f"the bath engine broke down at the final point of depth {p} (value "
+                              f"{final[0]:.3g}, estimate {final[1]:.1e}): no V_p* to report; a larger bond "
+                              "dimension or more Fock levels (--bond, --fock; spec: bath-bond, bath-fock) may carry it")
     gnorm = float(np.max(np.abs(grad)))
     return {
         "value": float(final[0]), "error_estimate": float(final[1]), "gamma": g, "beta": b, "gradient_norm": gnorm,
