@@ -21,6 +21,9 @@ from leadline.tests.extrapolation_calibration import (
     load_deep_ladder,
     load_ladder,
 )
+# Boulebnane et al., arXiv:2505.07929 (2025): V_160 / GS ~ 0.978 at their angles, so the optimum is at
+# least about that (the constant and its full source: tests/test_extrapolate.py)
+from leadline.tests.test_extrapolate import PUBLISHED_RATIO_AT_160
 
 # Basso, Farhi, Marwaha, Villalonga, Zhou, "The Quantum Approximate Optimization Algorithm at High
 # Depth for MaxCut on Large-Girth Regular Graphs and the Sherrington-Kirkpatrick Model", TQC 2022,
@@ -28,10 +31,6 @@ from leadline.tests.extrapolation_calibration import (
 # not proven optimal, angles: lower bounds on the optimum) at p = 18, 19, 20.
 BASSO_TABLE1_P17 = 0.6773
 BASSO_TABLE2 = {18: 0.6813, 19: 0.6848, 20: 0.6879}
-# Boulebnane, Khan, Liu, Larson, Herman, Shaydulin, Pistoia, arXiv:2505.07929 (2025), abstract: at
-# p = 160 the optimized infinite-size SK energy is within eps <~ 2.2 % of the Parisi value: V_160 / GS
-# ~ 0.978 at their angles, so the optimum V_160* / GS is at least about that.
-PUBLISHED_RATIO_AT_160 = 1.0 - 0.022
 
 
 @pytest.fixture(scope="module")

@@ -13,7 +13,8 @@ parity block-sparse MPS), ``_modes`` (bath modes and bases),
 ``_engine`` (one run), ``_estimate`` (the tolerance ladder and its error estimate), ``_optimize``
 (optimal angles by noise-aware finite differences).  May import: numpy,
 scipy.linalg and the contour layout of :mod:`leadline.kernels.exact` (``_optimize`` also its
-evaluation, for the exact-Hessian preconditioner, and :mod:`leadline.kernels.optimize`).  Names are imported on
+evaluation, for the exact-Hessian preconditioner, :mod:`leadline.kernels.optimize`, and the
+first-moment bound of :mod:`leadline.kernels.reference`).  Names are imported on
 first use.
 """
 

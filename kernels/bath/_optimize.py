@@ -352,7 +352,9 @@ class EngineBreakdown(RuntimeError):
 
 def plausible(mixture: Mixture, value: float, estimate: float) -> bool:
     """Whether one engine run's (value, error estimate) can be trusted at all (see BREAKDOWN_ESTIMATE)."""
-    bound = math.sqrt(2.0 * math.log(2.0) * float(mixture.xi(1.0)))
+    from ..reference import union_bound
+
+    bound = union_bound(mixture)
     return (math.isfinite(value) and math.isfinite(estimate) and estimate <= BREAKDOWN_ESTIMATE
             and abs(value) <= bound + estimate)
 
